@@ -1,0 +1,75 @@
+"""Plain-text formatting shared by result ``summary()`` methods and reports."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+__all__ = ["fmt", "format_table"]
+
+
+def fmt(value: object, digits: int = 4) -> str:
+    """A number to ``digits`` significant figures; None/NaN as '-'; others as str.
+
+    Examples
+    --------
+    >>> fmt(3.14159), fmt(None), fmt(1234567.0), fmt(0.000123456)
+    ('3.142', '-', '1.235e+06', '0.0001235')
+    """
+    if value is None:
+        return "-"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float) or hasattr(value, "__float__"):
+        try:
+            x = float(value)  # type: ignore[arg-type]
+        except (TypeError, ValueError):
+            return str(value)
+        if math.isnan(x):
+            return "-"
+        if math.isinf(x):
+            return "inf" if x > 0 else "-inf"
+        if x == 0:
+            return "0"
+        mag = math.floor(math.log10(abs(x)))
+        if mag >= 6 or mag < -5:
+            return f"{x:.{digits - 1}e}"
+        decimals = max(digits - 1 - mag, 0)
+        return f"{x:.{decimals}f}"
+    return str(value)
+
+
+def format_table(headers: Sequence[str], rows: Sequence[Sequence[object]],
+                 *, digits: int = 4) -> str:
+    """An aligned plain-text table: text left-aligned, numbers right-aligned.
+
+    Examples
+    --------
+    >>> print(format_table(["name", "value [mg/L]"], [["a", 1.5], ["bb", 10.25]]))
+    name  value [mg/L]
+    ----  ------------
+    a            1.500
+    bb           10.25
+    """
+    cells = [[fmt(c, digits) for c in row] for row in rows]
+    numeric = [
+        all(isinstance(row[j], int | float) and not isinstance(row[j], bool) or row[j] is None
+            for row in rows) if rows else False
+        for j in range(len(headers))
+    ]
+    widths = [
+        max([len(h), *(len(r[j]) for r in cells)]) for j, h in enumerate(headers)
+    ]
+
+    def line(values: Sequence[str], is_header: bool = False) -> str:
+        parts = []
+        for j, v in enumerate(values):
+            right = numeric[j]
+            parts.append(v.rjust(widths[j]) if right else v.ljust(widths[j]))
+        return "  ".join(parts).rstrip()
+
+    out = [line(headers, True), "  ".join("-" * w for w in widths)]
+    out += [line(r) for r in cells]
+    return "\n".join(out)

@@ -1,0 +1,489 @@
+"""Closed-form one-compartment kinetics for intravenous doses (pure numpy).
+
+Everything here takes and returns plain numbers or numpy arrays in canonical
+units (h, mg, L, mg/L, L/h, mg/h, 1/h) and broadcasts.  Nothing here knows about
+units, files or pydantic; validation happens at the boundary (``schema``,
+``units``).
+
+The body is one well-stirred compartment of volume ``V`` cleared at rate
+``CL``: ``V dC/dt = input(t) - CL C``.  A constant-rate infusion ``R0`` is a
+step input into the first-order system ``G(s) = (1/CL) / (1 + (V/CL) s)``:
+gain ``1/CL``, time constant ``tau = V/CL = 1/k``, plateau ``R0/CL``.  Doses
+superpose because the system is linear.
+
+References
+----------
+.. [1] Gibaldi M, Perrier D. *Pharmacokinetics*, 2nd ed. Marcel Dekker, 1982,
+       ch. 1-3 (one-compartment model, constant-rate infusion, multiple dosing).
+.. [2] Bourne DWA. *Basic Pharmacokinetics*, ch. 6 (intravenous infusion).
+.. [3] Bauer LA. *Applied Clinical Pharmacokinetics*, ch. 2 (intermittent
+       infusion steady-state equations) -- from memory.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = [
+    "LN2",
+    "concentration",
+    "concentration_repeated",
+    "derived_parameters",
+    "expand_doses",
+    "plateau_concentration",
+    "resolve_clearance_volume",
+    "steady_state_intermittent",
+    "steady_state_periodic",
+    "steady_state_profile",
+    "time_to_fraction",
+]
+
+LN2 = float(np.log(2.0))
+
+
+def _infused_fraction(k, u, duration):
+    """``(1 - exp(-k u)) / (k d)`` for infusions, 1 for boluses (``d = 0``).
+
+    Written with ``expm1`` so that long half-lives (small ``k u``) keep full
+    relative precision.
+    """
+    kd = k * duration
+    with np.errstate(invalid="ignore", divide="ignore"):
+        frac = -np.expm1(-k * u) / kd
+    return np.where(duration > 0, frac, 1.0)
+
+
+def derived_parameters(clearance, volume):
+    """Elimination rate, half-life and time constant from clearance and volume.
+
+    ``k = CL / V``, ``t½ = ln 2 / k``, ``tau = V / CL = 1 / k`` [1]_.
+
+    Parameters
+    ----------
+    clearance : float or ndarray, L/h
+    volume : float or ndarray, L
+
+    Returns
+    -------
+    dict of str to float or ndarray
+        ``clearance`` (L/h), ``volume`` (L), ``elimination_rate`` (1/h),
+        ``half_life`` (h), ``time_constant`` (h).
+
+    References
+    ----------
+    .. [1] Gibaldi & Perrier, *Pharmacokinetics*, 2nd ed., ch. 1.
+
+    Examples
+    --------
+    >>> p = derived_parameters(4.0, 40.0)
+    >>> round(p["half_life"], 4)
+    6.9315
+    """
+    clearance = np.asarray(clearance, dtype=float)
+    volume = np.asarray(volume, dtype=float)
+    k = clearance / volume
+    out = {
+        "clearance": clearance,
+        "volume": volume,
+        "elimination_rate": k,
+        "half_life": LN2 / k,
+        "time_constant": volume / clearance,
+    }
+    if all(np.ndim(v) == 0 for v in out.values()):
+        return {key: float(v) for key, v in out.items()}
+    return out
+
+
+def resolve_clearance_volume(
+    *, clearance=None, volume=None, half_life=None, elimination_rate=None, time_constant=None
+):
+    """Clearance and volume from any two of the five one-compartment parameters.
+
+    ``k = CL/V = ln 2 / t½ = 1 / tau``.  Among ``half_life``,
+    ``elimination_rate`` and ``time_constant`` only one is used (they all fix
+    ``k``); consistency of over-determined input is checked at the boundary.
+
+    Parameters
+    ----------
+    clearance : float or ndarray, L/h, optional
+    volume : float or ndarray, L, optional
+    half_life : float or ndarray, h, optional
+    elimination_rate : float or ndarray, 1/h, optional
+    time_constant : float or ndarray, h, optional
+
+    Returns
+    -------
+    clearance, volume : float or ndarray
+        L/h and L.
+
+    Raises
+    ------
+    ValueError
+        When the given parameters do not fix both clearance and volume.
+
+    Examples
+    --------
+    >>> resolve_clearance_volume(clearance=4.2, half_life=8.0)[1]  # doctest: +ELLIPSIS
+    48.47...
+    """
+    k = None
+    if elimination_rate is not None:
+        k = np.asarray(elimination_rate, dtype=float)
+    elif half_life is not None:
+        k = LN2 / np.asarray(half_life, dtype=float)
+    elif time_constant is not None:
+        k = 1.0 / np.asarray(time_constant, dtype=float)
+    if clearance is not None and volume is not None:
+        return clearance, volume
+    if clearance is not None and k is not None:
+        return clearance, clearance / k
+    if volume is not None and k is not None:
+        return k * volume, volume
+    raise ValueError(
+        "need two of clearance, volume and one of half_life / elimination_rate / time_constant"
+    )
+
+
+def expand_doses(start, amount, duration, every=None, count=None):
+    """Expand repeated dose events into single events (vectorised, no loop).
+
+    Event ``i`` is given ``count[i]`` times at ``start[i] + j * every[i]``,
+    ``j = 0 .. count[i] - 1``.
+
+    Parameters
+    ----------
+    start, amount, duration : array_like, shape (n,), h, mg, h
+    every : array_like, shape (n,), h, optional
+        Interval between repeats (ignored where ``count == 1``).
+    count : array_like of int, shape (n,), optional
+        Number of doses (1 when omitted).
+
+    Returns
+    -------
+    start, amount, duration : ndarray, shape (sum(count),)
+        Single events sorted by start time.
+
+    Examples
+    --------
+    >>> expand_doses([0.0], [100.0], [0.5], every=[8.0], count=[3])[0]
+    array([ 0.,  8., 16.])
+    """
+    start = np.atleast_1d(np.asarray(start, dtype=float))
+    amount = np.atleast_1d(np.asarray(amount, dtype=float))
+    duration = np.atleast_1d(np.asarray(duration, dtype=float))
+    if count is None:
+        return _sorted_events(start, amount, duration)
+    count = np.atleast_1d(np.asarray(count, dtype=np.int64))
+    every = np.zeros_like(start) if every is None else np.atleast_1d(np.asarray(every, float))
+    every = np.where(np.isnan(every), 0.0, every)
+    owner = np.repeat(np.arange(start.size), count)
+    first = np.cumsum(count) - count
+    j = np.arange(owner.size) - first[owner]
+    return _sorted_events(start[owner] + j * every[owner], amount[owner], duration[owner])
+
+
+def _sorted_events(start, amount, duration):
+    order = np.argsort(start, kind="stable")
+    return start[order], amount[order], duration[order]
+
+
+def concentration(t, start, amount, duration, clearance, volume):
+    """Concentration after any set of bolus and zero-order infusion events.
+
+    Superposition of closed-form single-event responses [1]_ [2]_.  For an
+    event starting at ``s`` with amount ``A`` infused over ``d`` (``d = 0`` is a
+    bolus), with ``k = CL/V``, ``u = clip(t - s, 0, d)`` the time infused so far
+    and ``w = t - s - u`` the time since the infusion ended::
+
+        C(t) = sum_events  A / (V k d) * (1 - exp(-k u)) * exp(-k w)     (d > 0)
+        C(t) = sum_events  A / V * exp(-k (t - s))                         (d = 0)
+
+    for ``t >= s`` and 0 before.  During an infusion this is
+    ``(R0/CL)(1 - exp(-k (t - s)))`` with ``R0 = A/d``; after it,
+    ``C(end) exp(-k (t - end))``.  The result is right-continuous: a bolus at
+    ``t`` is included at ``t``.
+
+    Parameters
+    ----------
+    t : array_like, shape (..., T), h
+        Times.
+    start, amount, duration : array_like, shape (..., E), h, mg, h
+        Single dose events (see :func:`expand_doses` for repeats).  Pad ragged
+        event lists with ``amount = 0``.
+    clearance : float or array_like, shape (...), L/h
+    volume : float or array_like, shape (...), L
+
+    Returns
+    -------
+    ndarray, shape (..., T), mg/L
+
+    References
+    ----------
+    .. [1] Gibaldi & Perrier, *Pharmacokinetics*, 2nd ed., ch. 1-2.
+    .. [2] Bourne, *Basic Pharmacokinetics*, ch. 6.
+
+    Examples
+    --------
+    >>> c = concentration([8.0], [0.0], [240.0], [240.0 / 30.0], 3.0, 34.62)
+    >>> round(float(c[0]), 3)  # 30 mg/h for 8 h, CL 3 L/h, t½ 8 h: half of 10 mg/L
+    5.0
+    """
+    t = np.asarray(t, dtype=float)[..., :, None]
+    start = np.asarray(start, dtype=float)[..., None, :]
+    amount = np.asarray(amount, dtype=float)[..., None, :]
+    duration = np.asarray(duration, dtype=float)[..., None, :]
+    clearance = np.asarray(clearance, dtype=float)[..., None, None]
+    volume = np.asarray(volume, dtype=float)[..., None, None]
+    k = clearance / volume
+    is_bolus = duration <= 0
+    # per-event coefficient: A/(V k d) for infusions, A/V for boluses
+    coef = amount / (volume * np.where(is_bolus, 1.0, k * duration))
+    dt = t - start
+    u = np.clip(dt, 0.0, duration)
+    w = np.maximum(dt - u, 0.0)
+    # (1 - exp(-k u)) for infusions; 1 for boluses (u is 0 there)
+    rise = is_bolus - np.expm1(-k * u)
+    term = coef * rise * np.exp(-k * w)
+    return np.where(dt >= 0, term, 0.0).sum(axis=-1)
+
+
+def concentration_repeated(t, dose, duration, interval, clearance, volume, count=None):
+    """Concentration under a regular train of equal doses, in closed form.
+
+    Doses of ``dose`` infused over ``duration <= interval`` at times
+    ``0, interval, 2 interval, ...`` (``count`` of them, unlimited when
+    ``None``).  With ``x = t``, ``m`` doses started by ``x`` (at most ``count``),
+    ``y = x - (m-1) tau`` the time since the last started dose and
+    ``P = dose/V (1 - exp(-k d))/(k d)`` the level at the end of one infusion::
+
+        C(t) = c1(y) + P exp(-k (y + tau - d)) (1 - exp(-k (m-1) tau)) / (1 - exp(-k tau))
+
+    where ``c1`` is the single-dose response.  This is the multiple-dosing
+    geometric series of [1]_ (ch. 3); it equals :func:`concentration` on the
+    expanded events.
+
+    Parameters
+    ----------
+    t : array_like, h
+        Times after the first dose; broadcast with the other arguments.
+    dose : array_like, mg
+    duration : array_like, h
+        Infusion time of each dose (0 for boluses); must not exceed ``interval``.
+    interval : array_like, h
+    clearance : array_like, L/h
+    volume : array_like, L
+    count : array_like of int, optional
+        Number of doses; ``None`` for an unending train.
+
+    Returns
+    -------
+    ndarray, mg/L
+
+    References
+    ----------
+    .. [1] Gibaldi & Perrier, *Pharmacokinetics*, 2nd ed., ch. 3.
+
+    Examples
+    --------
+    >>> float(concentration_repeated(0.0, 100.0, 0.0, 12.0, 5.0, 50.0))
+    2.0
+    """
+    t, dose, duration, interval, clearance, volume = np.broadcast_arrays(
+        *(np.asarray(a, dtype=float) for a in (t, dose, duration, interval, clearance, volume))
+    )
+    k = clearance / volume
+    started = np.floor(t / interval) + 1.0
+    if count is not None:
+        started = np.minimum(started, np.asarray(count, dtype=float))
+    started = np.maximum(started, 0.0)
+    y = t - (started - 1.0) * interval
+    peak_one = dose / volume * _infused_fraction(k, duration, duration)
+    u = np.clip(y, 0.0, duration)
+    w = np.maximum(y - u, 0.0)
+    current = dose / volume * _infused_fraction(k, u, duration) * np.exp(-k * w)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        series = np.expm1(-k * (started - 1.0) * interval) / np.expm1(-k * interval)
+    earlier = peak_one * np.exp(-k * (y + interval - duration)) * series
+    out = np.where(started >= 2, current + earlier, current)
+    return np.where(t >= 0, out, 0.0)
+
+
+def plateau_concentration(rate, clearance):
+    """Plateau (steady-state) concentration of a constant-rate infusion.
+
+    ``Css = R0 / CL`` [1]_.
+
+    Parameters
+    ----------
+    rate : float or ndarray, mg/h
+    clearance : float or ndarray, L/h
+
+    Returns
+    -------
+    float or ndarray, mg/L
+
+    References
+    ----------
+    .. [1] Bourne, *Basic Pharmacokinetics*, ch. 6; Gibaldi & Perrier, ch. 2.
+
+    Examples
+    --------
+    >>> plateau_concentration(30.0, 3.0)
+    10.0
+    """
+    return np.asarray(rate, dtype=float) / np.asarray(clearance, dtype=float) + 0.0
+
+
+def time_to_fraction(fraction, clearance, volume):
+    """Time for a constant-rate infusion to reach a fraction of its plateau.
+
+    ``t_f = -ln(1 - f) V / CL = -ln(1 - f) / k`` (from ``C/Css = 1 - exp(-k t)``,
+    [1]_).  In half-lives: ``-log2(1 - f)``; 0.5 -> 1, 0.9 -> 3.32, 0.99 -> 6.64.
+
+    Parameters
+    ----------
+    fraction : float or ndarray
+        In (0, 1).
+    clearance : float or ndarray, L/h
+    volume : float or ndarray, L
+
+    Returns
+    -------
+    float or ndarray, h
+
+    References
+    ----------
+    .. [1] Gibaldi & Perrier, *Pharmacokinetics*, 2nd ed., ch. 2.
+
+    Examples
+    --------
+    >>> round(time_to_fraction(0.5, 1.0, 8.0 / LN2), 6)
+    8.0
+    """
+    fraction = np.asarray(fraction, dtype=float)
+    return -np.log1p(-fraction) * np.asarray(volume, float) / np.asarray(clearance, float) + 0.0
+
+
+def steady_state_intermittent(dose, duration, interval, clearance, volume):
+    """Steady-state peak, trough and average of repeated short infusions.
+
+    For ``dose`` infused over ``T = duration`` every ``tau = interval``
+    (``T <= tau``), with ``k = CL/V`` and ``k0 = dose/T`` [1]_ [2]_::
+
+        peak    = k0 (1 - exp(-k T)) / (V k (1 - exp(-k tau)))   (end of infusion)
+        trough  = peak exp(-k (tau - T))                           (just before a dose)
+        average = dose / (CL tau)
+
+    A bolus (``T = 0``) gives ``peak = (dose/V) / (1 - exp(-k tau))``.
+
+    Parameters
+    ----------
+    dose : float or ndarray, mg
+    duration : float or ndarray, h
+    interval : float or ndarray, h
+    clearance : float or ndarray, L/h
+    volume : float or ndarray, L
+
+    Returns
+    -------
+    peak, trough, average : float or ndarray, mg/L
+
+    References
+    ----------
+    .. [1] Bauer, *Applied Clinical Pharmacokinetics*, ch. 2 -- from memory.
+    .. [2] Gibaldi & Perrier, *Pharmacokinetics*, 2nd ed., ch. 3.
+
+    Examples
+    --------
+    >>> [round(x, 3) for x in steady_state_intermittent(100.0, 0.0, 8.0, 5.0, 40.0)]
+    [5.0, 2.5, 2.5]
+    """
+    dose, duration, interval, clearance, volume = (
+        np.asarray(a, dtype=float) for a in (dose, duration, interval, clearance, volume)
+    )
+    k = clearance / volume
+    peak = dose / volume * _infused_fraction(k, duration, duration) / -np.expm1(-k * interval)
+    trough = peak * np.exp(-k * (interval - duration))
+    average = dose / (clearance * interval)
+    return peak + 0.0, trough + 0.0, average + 0.0
+
+
+def steady_state_profile(phase, offset, amount, duration, interval, clearance, volume, left=False):
+    """Periodic steady-state concentration of events repeated every ``interval``.
+
+    Each event ``e`` (amount ``A``, infusion time ``d <= tau``) recurs at
+    ``offset + j tau`` forever.  At phase ``theta`` within the interval, with
+    ``y = (theta - offset) mod tau`` and ``P = A/V (1 - exp(-k d))/(k d)``::
+
+        Css(theta) = sum_e  c1(y) + P exp(-k (y + tau - d)) / (1 - exp(-k tau))
+
+    (the infinite geometric series of [1]_, ch. 3).  With ``left=True`` the
+    limit from the left is returned at event starts (``y = tau`` instead of 0),
+    i.e. the trough just before a dose.
+
+    Parameters
+    ----------
+    phase : array_like, shape (..., P), h
+    offset, amount, duration : array_like, shape (..., E), h, mg, h
+    interval : float or array_like, shape (...), h
+    clearance, volume : float or array_like, shape (...), L/h, L
+    left : bool
+
+    Returns
+    -------
+    ndarray, shape (..., P), mg/L
+
+    References
+    ----------
+    .. [1] Gibaldi & Perrier, *Pharmacokinetics*, 2nd ed., ch. 3.
+    """
+    phase = np.asarray(phase, dtype=float)[..., :, None]
+    offset = np.asarray(offset, dtype=float)[..., None, :]
+    amount = np.asarray(amount, dtype=float)[..., None, :]
+    duration = np.asarray(duration, dtype=float)[..., None, :]
+    interval = np.asarray(interval, dtype=float)[..., None, None]
+    volume = np.asarray(volume, dtype=float)[..., None, None]
+    k = np.asarray(clearance, dtype=float)[..., None, None] / volume
+    y = np.mod(phase - offset, interval)
+    if left:
+        y = np.where(y <= 0, interval, y)
+    u = np.clip(y, 0.0, duration)
+    w = np.maximum(y - u, 0.0)
+    current = amount / volume * _infused_fraction(k, u, duration) * np.exp(-k * w)
+    peak_one = amount / volume * _infused_fraction(k, duration, duration)
+    earlier = peak_one * np.exp(-k * (y + interval - duration)) / -np.expm1(-k * interval)
+    return (current + earlier).sum(axis=-1)
+
+
+def steady_state_periodic(offset, amount, duration, interval, clearance, volume):
+    """Peak, trough and average of the periodic steady state of repeated events.
+
+    Between event boundaries the steady-state curve is ``a + b exp(-k theta)``,
+    hence monotone, so its extremes lie at event starts and ends; both one-sided
+    limits are evaluated there.  Average = ``sum(A) / (CL tau)`` [1]_.
+
+    Parameters
+    ----------
+    offset, amount, duration : array_like, shape (E,), h, mg, h
+        Events of one interval (``duration <= interval``).
+    interval : float, h
+    clearance, volume : float, L/h, L
+
+    Returns
+    -------
+    peak, trough, average : float, mg/L
+
+    References
+    ----------
+    .. [1] Gibaldi & Perrier, *Pharmacokinetics*, 2nd ed., ch. 3.
+    """
+    offset = np.mod(np.atleast_1d(np.asarray(offset, dtype=float)), interval)
+    duration = np.atleast_1d(np.asarray(duration, dtype=float))
+    amount = np.atleast_1d(np.asarray(amount, dtype=float))
+    marks = np.mod(np.concatenate([offset, offset + duration]), interval)
+    args = (offset, amount, duration, interval, clearance, volume)
+    values = np.concatenate(
+        [steady_state_profile(marks, *args), steady_state_profile(marks, *args, left=True)]
+    )
+    average = amount.sum() / (clearance * interval)
+    return float(values.max()), float(values.min()), float(average)

@@ -1,0 +1,92 @@
+"""Matplotlib figures (Agg backend).  Functions return Figures; callers save them.
+
+Every figure carries the short caution in its footer.  The look is plain and
+greyscale-readable: black lines, grey bands, dashed reference lines.
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+
+from . import model  # noqa: E402
+from .report import CAUTION_SHORT, UnitConverter, write_atomic  # noqa: E402
+from .schema import expand_events  # noqa: E402
+
+__all__ = ["figure_bytes", "new_figure", "profile_figure", "save_figure"]
+
+
+def new_figure(width: float = 7.5, height: float = 4.6) -> tuple[Figure, plt.Axes]:
+    """A figure with one axis and the caution footer."""
+    fig = Figure(figsize=(width, height), layout="constrained")
+    ax = fig.add_subplot()
+    fig.text(0.01, 0.005, CAUTION_SHORT, fontsize=6.5, color="0.25", ha="left", va="bottom")
+    fig.get_layout_engine().set(h_pad=0.25)
+    ax.grid(True, color="0.88", linewidth=0.6)
+    return fig, ax
+
+
+def figure_bytes(fig: Figure, fmt: str = "png") -> bytes:
+    """The figure rendered to bytes (PNG or SVG)."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format=fmt, dpi=120)
+    return buf.getvalue()
+
+
+def save_figure(fig: Figure, path: str | Path) -> Path:
+    """Save atomically; the format follows the file suffix."""
+    path = Path(path)
+    return write_atomic(path, figure_bytes(fig, path.suffix.lstrip(".") or "png"))
+
+
+def profile_figure(pred, conv: UnitConverter | None = None) -> Figure:
+    """Concentration-time course of one scenario.
+
+    Shows the plateau (dashed), the times to 50 % and 90 % of plateau counted
+    from the first infusion start (dotted), the target window (grey band) and
+    dose starts (ticks on the time axis).
+    """
+    from .predict import plot_grid
+
+    conv = conv or UnitConverter()
+    p = pred.parameters
+    grid = plot_grid(pred.time, pred.doses)
+    start, amount, duration = expand_events(pred.doses)
+    conc = model.concentration(grid, start, amount, duration, p["clearance"], p["volume"])
+    fig, ax = new_figure()
+    ax.plot(conv(grid, "time"), conv(conc, "concentration"), color="black", lw=1.6,
+            label="predicted concentration")
+    target = pred.target
+    if target is not None and target.low is not None:
+        ax.axhspan(conv(target.low, "concentration"), conv(target.high, "concentration"),
+                   color="0.85", zorder=0, label="target window")
+    if target is not None and target.plateau is not None:
+        ax.axhline(conv(target.plateau, "concentration"), color="0.4", lw=1.0, ls="-.",
+                   label="target plateau")
+    if pred.plateau_concentration is not None:
+        ax.axhline(conv(pred.plateau_concentration, "concentration"), color="0.3", lw=1.0,
+                   ls="--", label="plateau")
+        infusions = [d.start for d in pred.doses if d.duration > 0]
+        t0 = min(infusions) if infusions else 0.0
+        for f, style in ((0.5, ":"), (0.9, (0, (1, 3)))):
+            tf = t0 + pred.time_to_fraction.get(f, model.time_to_fraction(f, p["clearance"],
+                                                                           p["volume"]))
+            if tf <= grid[-1]:
+                ax.axvline(conv(tf, "time"), color="0.35", lw=1.0, ls=style,
+                           label=f"{f:.0%} of plateau ({conv(tf, 'time'):.3g} "
+                                 f"{conv.unit('time')}, plain infusion)")
+    ax.plot(conv(start, "time"), np.zeros_like(start), "|", color="0.2", ms=10,
+            label="dose starts")
+    ax.set_xlabel(f"time [{conv.unit('time')}]")
+    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_title(f"{pred.name}: one-compartment prediction", fontsize=10)
+    ax.set_ylim(bottom=0)
+    ax.legend(fontsize=7, loc="best", frameon=False)
+    return fig

@@ -1,0 +1,298 @@
+"""Predict a scenario: profile, plateau, time to plateau, steady state, target flags.
+
+Builds on :mod:`pkcalc.model` only; inputs are validated canonical
+:class:`~pkcalc.schema.ScenarioInput` objects (or the :func:`predict` keyword
+form with plain numbers in canonical units).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import model
+from ._format import fmt, format_table
+from .plausibility import parameter_warnings
+from .schema import DoseEvent, ScenarioInput, Target, expand_events
+
+__all__ = [
+    "FRACTIONS",
+    "ScenarioPrediction",
+    "SteadyState",
+    "default_times",
+    "plot_grid",
+    "predict",
+    "predict_scenario",
+]
+
+#: Fractions of plateau reported by default.
+FRACTIONS = (0.5, 0.9, 0.95, 0.99)
+
+#: A plateau within this relative distance of its target counts as on target (common practice).
+TARGET_RTOL = 0.10
+
+#: Points of the automatic time grid.
+DEFAULT_POINTS = 601
+
+
+@dataclass(frozen=True)
+class SteadyState:
+    """Periodic steady state of repeated doses (mg/L; interval in h)."""
+
+    peak: float
+    trough: float
+    average: float
+    interval: float
+
+
+@dataclass(frozen=True)
+class ScenarioPrediction:
+    """What one scenario predicts, in canonical units.
+
+    Attributes
+    ----------
+    name : str
+    parameters : dict of str to float
+        ``clearance`` (L/h), ``volume`` (L), ``elimination_rate`` (1/h),
+        ``half_life`` (h), ``time_constant`` (h).
+    plateau_concentration : float or None, mg/L
+        Plateau of the maintenance input: the final constant infusion rate
+        divided by clearance, or for repeated doses the average steady-state
+        level ``sum(dose)/(CL tau)``.  None when no sustained input is given.
+    plateau_basis : str
+        How the plateau was obtained, in words.
+    time_to_fraction : dict of float to float, h
+        Time for a constant-rate infusion to reach each fraction of its plateau.
+    time, concentration : ndarray, h and mg/L
+        The profile at the requested (or automatic) times.
+    steady_state : SteadyState or None
+        For repeated doses.
+    target : Target or None
+    flags : list of str
+        Target or window checks that failed, in plain words.
+    warnings : list of str
+        Plausibility and modelling warnings.
+    """
+
+    name: str
+    parameters: dict[str, float]
+    plateau_concentration: float | None
+    plateau_basis: str
+    time_to_fraction: dict[float, float]
+    time: np.ndarray
+    concentration: np.ndarray
+    steady_state: SteadyState | None
+    doses: tuple[DoseEvent, ...]
+    target: Target | None = None
+    flags: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    weight: float | None = None
+
+    def concentration_at(self, t) -> np.ndarray:
+        """Concentration (mg/L) at any times ``t`` (h) under this scenario's doses."""
+        start, amount, duration = expand_events(self.doses)
+        return model.concentration(np.atleast_1d(np.asarray(t, float)), start, amount, duration,
+                                   self.parameters["clearance"], self.parameters["volume"])
+
+    def to_frame(self):
+        """The profile as a DataFrame with columns ``time [h]``, ``concentration [mg/L]``."""
+        import pandas as pd
+
+        return pd.DataFrame({"time [h]": self.time, "concentration [mg/L]": self.concentration})
+
+    def summary(self) -> str:
+        """A plain-text summary in canonical units (no caution; reports add it)."""
+        p = self.parameters
+        rows = [
+            ["clearance", p["clearance"], "L/h"],
+            ["volume", p["volume"], "L"],
+            ["elimination rate", p["elimination_rate"], "1/h"],
+            ["half-life", p["half_life"], "h"],
+            ["time constant", p["time_constant"], "h"],
+            ["plateau", self.plateau_concentration, "mg/L"],
+        ]
+        rows += [[f"time to {f:.0%} of plateau", t, "h"] for f, t in self.time_to_fraction.items()]
+        if self.steady_state is not None:
+            ss = self.steady_state
+            rows += [["steady-state peak", ss.peak, "mg/L"],
+                     ["steady-state trough", ss.trough, "mg/L"],
+                     ["steady-state average", ss.average, "mg/L"]]
+        text = [f"Scenario: {self.name}", format_table(["quantity", "value", "unit"], rows)]
+        text += [f"FLAG: {f}" for f in self.flags]
+        text += [f"warning: {w}" for w in self.warnings]
+        return "\n".join(text)
+
+
+# --------------------------------------------------------------------------- helpers
+def _events_span(doses: Sequence[DoseEvent]) -> float:
+    return max((d.end for d in doses), default=0.0)
+
+
+def default_times(doses: Sequence[DoseEvent], half_life: float,
+                  points: int = DEFAULT_POINTS) -> np.ndarray:
+    """Automatic times: 0 to the end of dosing plus five half-lives.
+
+    Five half-lives is where about 97 % of a dose has been eliminated (common practice).
+    """
+    horizon = _events_span(doses) + 5.0 * half_life
+    return np.linspace(0.0, horizon, points)
+
+
+def plot_grid(times: np.ndarray, doses: Sequence[DoseEvent], points: int = 1201) -> np.ndarray:
+    """A dense grid for drawing: the profile's span, event starts and ends, and a
+    point just before each bolus so that its jump is drawn vertically."""
+    t_max = float(times.max()) if times.size else 0.0
+    start, _, duration = expand_events(doses)
+    marks = np.concatenate([start, start + duration])
+    eps = 1e-9 * max(t_max, 1.0)
+    before_bolus = start[duration == 0] - eps
+    grid = np.concatenate([np.linspace(0.0, t_max, points), times, marks, before_bolus])
+    grid = grid[(grid >= 0) & (grid <= t_max)]
+    return np.unique(grid)
+
+
+def _rate_segments(doses: Sequence[DoseEvent]) -> tuple[np.ndarray, np.ndarray]:
+    """Piecewise-constant total infusion rate: breakpoints and rate after each."""
+    start, amount, duration = expand_events([d for d in doses if d.duration > 0])
+    if start.size == 0:
+        return np.empty(0), np.empty(0)
+    rate = amount / duration
+    marks = np.concatenate([start, start + duration])
+    steps = np.concatenate([rate, -rate])
+    order = np.argsort(marks, kind="stable")
+    marks, steps = marks[order], steps[order]
+    uniq, idx = np.unique(marks, return_index=True)
+    level = np.cumsum(steps)
+    # the level after all changes at a breakpoint
+    last_idx = np.append(idx[1:] - 1, steps.size - 1)
+    return uniq, np.clip(level[last_idx], 0.0, None)
+
+
+def _plateau(doses: Sequence[DoseEvent], clearance: float,
+             trains: list[DoseEvent]) -> tuple[float | None, str]:
+    if trains:
+        rate = sum(d.amount / d.every for d in trains)  # type: ignore[operator]
+        return float(model.plateau_concentration(rate, clearance)), (
+            f"average steady-state level of the repeated doses: mean input {rate:.4g} mg/h / CL"
+        )
+    _, level = _rate_segments(doses)
+    positive = level[level > 1e-12 * (level.max() if level.size else 1.0)]
+    if positive.size == 0:
+        return None, "no constant-rate infusion: no plateau"
+    rate = float(positive[-1])
+    return float(model.plateau_concentration(rate, clearance)), (
+        f"final infusion rate {rate:.4g} mg/h / CL"
+    )
+
+
+def _steady_state(trains: list[DoseEvent], clearance: float, volume: float,
+                  warnings: list[str]) -> SteadyState | None:
+    if not trains:
+        return None
+    tau = trains[0].every
+    assert tau is not None
+    if any(not np.isclose(d.every, tau, rtol=1e-9) for d in trains):  # type: ignore[arg-type]
+        warnings.append("repeated doses have different intervals: no common steady state reported")
+        return None
+    if any(d.duration > tau for d in trains):
+        warnings.append("an infusion lasts longer than its interval: steady state not reported")
+        return None
+    peak, trough, avg = model.steady_state_periodic(
+        [d.start for d in trains], [d.amount for d in trains], [d.duration for d in trains],
+        tau, clearance, volume,
+    )
+    return SteadyState(peak, trough, avg, float(tau))
+
+
+def _target_flags(target: Target | None, plateau: float | None, ss: SteadyState | None,
+                  profile_max: float) -> list[str]:
+    if target is None:
+        return []
+    flags = []
+    if target.plateau is not None and plateau is not None:
+        rel = plateau / target.plateau - 1.0
+        if abs(rel) > TARGET_RTOL:
+            flags.append(
+                f"plateau {fmt(plateau)} mg/L is {rel:+.0%} from the target {fmt(target.plateau)}"
+                f" mg/L (more than {TARGET_RTOL:.0%})"
+            )
+    if target.plateau is not None and plateau is None:
+        flags.append("a plateau target is given but the regimen has no sustained input")
+    for label, value in (("plateau", plateau),
+                         ("steady-state peak", ss.peak if ss else None),
+                         ("steady-state trough", ss.trough if ss else None)):
+        if value is None:
+            continue
+        if target.high is not None and value > target.high:
+            flags.append(f"{label} {fmt(value)} mg/L is above the window high {fmt(target.high)}"
+                         " mg/L")
+        if target.low is not None and value < target.low:
+            flags.append(f"{label} {fmt(value)} mg/L is below the window low {fmt(target.low)}"
+                         " mg/L")
+    if target.high is not None and profile_max > target.high:
+        flags.append(f"the profile reaches {fmt(profile_max)} mg/L, above the window high "
+                     f"{fmt(target.high)} mg/L")
+    return flags
+
+
+# --------------------------------------------------------------------------- entry points
+def predict_scenario(scenario: ScenarioInput, fractions: Sequence[float] = FRACTIONS
+                     ) -> ScenarioPrediction:
+    """Predict one validated scenario.
+
+    Parameters
+    ----------
+    scenario : ScenarioInput
+        Canonical, validated input (see :func:`pkcalc.schema.load_scenario_file`).
+    fractions : sequence of float
+        Fractions of plateau for the time-to-fraction table.
+
+    Returns
+    -------
+    ScenarioPrediction
+    """
+    cl, v = scenario.clearance, scenario.volume
+    params = model.derived_parameters(cl, v)
+    doses = scenario.doses
+    times = scenario.times if scenario.times is not None else default_times(
+        doses, params["half_life"])
+    start, amount, duration = expand_events(doses)
+    conc = model.concentration(times, start, amount, duration, cl, v)
+    trains = [d for d in doses if d.count > 1]
+    warnings = parameter_warnings(cl, v, scenario.weight)
+    plateau, basis = _plateau(doses, cl, trains)
+    ss = _steady_state(trains, cl, v, warnings)
+    if trains and any(d.count == 1 for d in doses):
+        warnings.append("steady state considers only the repeated doses; single doses wash out")
+    dense = plot_grid(times, doses)
+    profile_max = float(model.concentration(dense, start, amount, duration, cl, v).max())
+    flags = _target_flags(scenario.target, plateau, ss, profile_max)
+    ttf = {f: float(model.time_to_fraction(f, cl, v)) for f in fractions}
+    return ScenarioPrediction(
+        name=scenario.name, parameters=params, plateau_concentration=plateau,
+        plateau_basis=basis, time_to_fraction=ttf, time=times, concentration=conc,
+        steady_state=ss, doses=doses, target=scenario.target, flags=flags, warnings=warnings,
+        weight=scenario.weight,
+    )
+
+
+def predict(*, clearance: float, volume: float, doses: Sequence[DoseEvent],
+            times=None, name: str = "scenario", target: Target | None = None,
+            weight: float | None = None) -> ScenarioPrediction:
+    """Predict from plain numbers in canonical units (L/h, L, h, mg).
+
+    Examples
+    --------
+    >>> from pkcalc.schema import DoseEvent
+    >>> r = predict(clearance=3.0, volume=34.62, doses=[DoseEvent(0.0, 6000.0, 200.0)])
+    >>> round(r.plateau_concentration, 6)
+    10.0
+    """
+    if not (clearance > 0 and volume > 0):
+        raise ValueError("clearance and volume must be positive")
+    t = None if times is None else np.asarray(times, dtype=float)
+    scenario = ScenarioInput(name, float(clearance), float(volume), tuple(doses), t, weight,
+                             target)
+    return predict_scenario(scenario)

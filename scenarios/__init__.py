@@ -1,0 +1,1 @@
+"""Scenario files shipped with pkcalc (invented demo data and reference cases)."""
