@@ -11,9 +11,9 @@ to licensed clinicians and pharmacists following local protocols.
 
 __version__ = "0.1.0"
 
-from .errors import PkcalcInputError, PkcalcWarning, Problem  # noqa: E402
-from .predict import ScenarioPrediction, SteadyState, predict, predict_scenario  # noqa: E402
-from .schema import DoseEvent, ScenarioInput, Target, load_scenario_file  # noqa: E402
+from .errors import PkcalcInputError, PkcalcWarning, Problem
+from .predict import ScenarioPrediction, SteadyState, predict, predict_scenario
+from .schema import DoseEvent, ScenarioInput, Target, load_scenario_file
 
 __all__ = [
     "DoseEvent",

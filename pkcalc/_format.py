@@ -55,7 +55,7 @@ def format_table(headers: Sequence[str], rows: Sequence[Sequence[object]],
     """
     cells = [[fmt(c, digits) for c in row] for row in rows]
     numeric = [
-        all(isinstance(row[j], int | float) and not isinstance(row[j], bool) or row[j] is None
+        all((isinstance(row[j], int | float) and not isinstance(row[j], bool)) or row[j] is None
             for row in rows) if rows else False
         for j in range(len(headers))
     ]

@@ -12,13 +12,13 @@ from pathlib import Path
 import matplotlib
 
 matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-from matplotlib.figure import Figure  # noqa: E402
+import matplotlib.pyplot as plt
+import numpy as np
+from matplotlib.figure import Figure
 
-from . import model  # noqa: E402
-from .report import CAUTION_SHORT, UnitConverter, write_atomic  # noqa: E402
-from .schema import expand_events  # noqa: E402
+from . import model
+from .report import CAUTION_SHORT, UnitConverter, write_atomic
+from .schema import expand_events
 
 __all__ = ["figure_bytes", "new_figure", "profile_figure", "save_figure"]
 

@@ -252,7 +252,20 @@ class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 
 
-class DoseSpec(_Strict):
+class _Lenient(BaseModel):
+    """Unknown keys are kept and reported together with every other problem."""
+
+    model_config = ConfigDict(extra="allow", frozen=True, populate_by_name=True)
+
+    def unknown_keys(self, col: _Collector, where: str = "") -> None:
+        accepted = ", ".join(
+            (f.alias or name) for name, f in type(self).model_fields.items()
+        )
+        for key in self.model_extra or {}:
+            col.add("unknown key (check the spelling)", f"{where}{key}", accepted)
+
+
+class DoseSpec(_Lenient):
     """A dose event as written: ``start`` and two of ``amount``, ``rate``, ``duration``."""
 
     start: QuantityText
@@ -260,11 +273,14 @@ class DoseSpec(_Strict):
     rate: QuantityText | None = None
     duration: QuantityText | None = None
     every: QuantityText | None = None
-    count: int | None = Field(default=None, ge=1)
+    count: int | None = None
 
     def to_event(self, col: _Collector, where: str) -> DoseEvent | None:
         """Canonical event; problems go to ``col`` with field names under ``where``."""
         n0 = len(col.problems)
+        self.unknown_keys(col, f"{where}.")
+        if self.count is not None and self.count < 1:
+            col.add(f"count must be 1 or more, got {self.count}", f"{where}.count")
         start = col.q(self.start, "time", f"{where}.start", nonnegative=True)
         amount = col.q(self.amount, "amount", f"{where}.amount", nonnegative=True)
         rate = col.q(self.rate, "rate", f"{where}.rate", nonnegative=True)
@@ -309,7 +325,7 @@ class DoseSpec(_Strict):
         return DoseEvent(start, amount, duration, every if count > 1 else None, count)
 
 
-class TimeRange(_Strict):
+class TimeRange(_Lenient):
     """Evenly spaced times ``from``, ``from + step``, ... up to ``to`` (inclusive)."""
 
     from_: QuantityText = Field(alias="from")
@@ -317,13 +333,14 @@ class TimeRange(_Strict):
     step: QuantityText
 
 
-class TargetSpec(_Strict):
+class TargetSpec(_Lenient):
     """A plateau target and/or a window ``[low, high]`` (concentrations)."""
 
     plateau: QuantityText | None = None
     window: list[QuantityText] | None = Field(default=None, min_length=2, max_length=2)
 
     def to_target(self, col: _Collector) -> Target:
+        self.unknown_keys(col, "target.")
         plateau = col.q(self.plateau, "concentration", "target.plateau", positive=True)
         low = high = None
         if self.window is not None:
@@ -342,6 +359,7 @@ def _resolve_times(spec: list[QuantityText] | TimeRange | None, col: _Collector)
     if spec is None:
         return None
     if isinstance(spec, TimeRange):
+        spec.unknown_keys(col, "times.")
         t0 = col.q(spec.from_, "time", "times.from", nonnegative=True)
         t1 = col.q(spec.to, "time", "times.to", nonnegative=True)
         step = col.q(spec.step, "time", "times.step", positive=True)
@@ -370,7 +388,7 @@ def _resolve_times(spec: list[QuantityText] | TimeRange | None, col: _Collector)
     return times
 
 
-class ScenarioSpec(_Strict):
+class ScenarioSpec(_Lenient):
     """One ``[[scenarios]]`` entry of a scenario file (DESIGN.md §5).
 
     Validation converts every quantity to canonical units and checks the
@@ -394,6 +412,7 @@ class ScenarioSpec(_Strict):
     @model_validator(mode="after")
     def _to_canonical(self) -> ScenarioSpec:
         col = _Collector()
+        self.unknown_keys(col)
         weight = col.q(self.weight, "weight", "weight", positive=True)
         col.weight = weight
         values = {

@@ -1,0 +1,93 @@
+"""Scenario predictions: plateau basis, steady state, target flags, warnings."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from pkcalc import model
+from pkcalc.predict import predict
+from pkcalc.schema import DoseEvent, Target
+
+
+def test_plateau_is_final_rate_over_clearance():
+    # [calc] Css = R0/CL for the final maintenance rate (Bourne, Basic Pharmacokinetics ch. 6).
+    doses = [DoseEvent(0, 400, 0.5), DoseEvent(0.5, 35 * 47.5, 47.5), DoseEvent(48, 32 * 48, 48)]
+    r = predict(clearance=4.2, volume=48.0, doses=doses)
+    assert r.plateau_concentration == pytest.approx(32 / 4.2)
+    assert "32 mg/h" in r.plateau_basis
+
+
+def test_no_plateau_for_boluses_only():
+    r = predict(clearance=4.2, volume=48.0, doses=[DoseEvent(0, 400, 0)])
+    assert r.plateau_concentration is None
+    assert r.steady_state is None
+
+
+def test_steady_state_of_repeated_infusions():
+    # Steady state of a train equals the Bauer (from memory) closed form in model.
+    r = predict(clearance=5.5, volume=30.0, doses=[DoseEvent(0, 800, 1, every=8, count=9)])
+    peak, trough, avg = model.steady_state_intermittent(800, 1, 8, 5.5, 30.0)
+    ss = r.steady_state
+    assert (ss.peak, ss.trough, ss.average) == (pytest.approx(peak), pytest.approx(trough),
+                                                 pytest.approx(avg))
+    assert r.plateau_concentration == pytest.approx(800 / (5.5 * 8))
+
+
+def test_different_intervals_warn():
+    doses = [DoseEvent(0, 100, 1, every=8, count=3), DoseEvent(0, 100, 1, every=12, count=3)]
+    r = predict(clearance=5.0, volume=30.0, doses=doses)
+    assert r.steady_state is None
+    assert any("different intervals" in w for w in r.warnings)
+
+
+def test_time_to_fraction():
+    r = predict(clearance=4.2, volume=4.2 * 8 / model.LN2, doses=[DoseEvent(0, 100, 10)])
+    assert r.time_to_fraction[0.5] == pytest.approx(8.0)
+    assert r.time_to_fraction[0.9] == pytest.approx(8.0 * np.log2(10))
+    assert r.time_to_fraction[0.99] == pytest.approx(8.0 * np.log2(100))
+
+
+@pytest.mark.parametrize(
+    ("target", "n_flags", "match"),
+    [
+        (Target(plateau=10.0), 0, None),
+        (Target(plateau=8.0), 1, "from the target"),
+        (Target(low=5.0, high=9.0), 2, "above the window high"),
+        (Target(low=11.0, high=20.0), 1, "below the window low"),
+    ],
+)
+def test_target_flags(target, n_flags, match):
+    r = predict(clearance=3.0, volume=30.0, doses=[DoseEvent(0, 30 * 100, 100)], target=target)
+    assert len(r.flags) == n_flags
+    if match:
+        assert match in r.flags[0]
+
+
+def test_overshoot_of_loading_dose_flagged():
+    doses = [DoseEvent(0, 1000, 0), DoseEvent(0, 30 * 100, 100)]
+    r = predict(clearance=3.0, volume=30.0, doses=doses, target=Target(None, 5.0, 20.0))
+    assert any("the profile reaches" in f for f in r.flags)
+
+
+def test_plausibility_warning():
+    r = predict(clearance=4.0, volume=4000.0, doses=[DoseEvent(0, 100, 0)])
+    assert any("volume" in w for w in r.warnings)
+
+
+def test_default_times_cover_dosing_and_washout():
+    r = predict(clearance=1.0, volume=10.0, doses=[DoseEvent(0, 100, 24)])
+    assert r.time[0] == 0 and r.time[-1] == pytest.approx(24 + 5 * 10 * model.LN2)
+
+
+def test_result_frame_and_summary():
+    r = predict(clearance=3.0, volume=30.0, doses=[DoseEvent(0, 300, 1)], times=[0, 1, 2])
+    frame = r.to_frame()
+    assert list(frame.columns) == ["time [h]", "concentration [mg/L]"]
+    assert "half-life" in r.summary()
+    assert r.concentration_at([1.0])[0] == pytest.approx(r.concentration[1])
+
+
+def test_predict_refuses_nonpositive():
+    with pytest.raises(ValueError, match="positive"):
+        predict(clearance=0.0, volume=1.0, doses=[DoseEvent(0, 1, 0)])
