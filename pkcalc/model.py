@@ -123,7 +123,7 @@ def resolve_clearance_volume(
 
     Examples
     --------
-    >>> resolve_clearance_volume(clearance=4.2, half_life=8.0)[1]  # doctest: +ELLIPSIS
+    >>> float(resolve_clearance_volume(clearance=4.2, half_life=8.0)[1])  # doctest: +ELLIPSIS
     48.47...
     """
     k = None
@@ -328,7 +328,7 @@ def plateau_concentration(rate, clearance):
 
     Examples
     --------
-    >>> plateau_concentration(30.0, 3.0)
+    >>> float(plateau_concentration(30.0, 3.0))
     10.0
     """
     return np.asarray(rate, dtype=float) / np.asarray(clearance, dtype=float) + 0.0
@@ -357,7 +357,7 @@ def time_to_fraction(fraction, clearance, volume):
 
     Examples
     --------
-    >>> round(time_to_fraction(0.5, 1.0, 8.0 / LN2), 6)
+    >>> round(float(time_to_fraction(0.5, 1.0, 8.0 / LN2)), 6)
     8.0
     """
     fraction = np.asarray(fraction, dtype=float)
@@ -395,8 +395,8 @@ def steady_state_intermittent(dose, duration, interval, clearance, volume):
 
     Examples
     --------
-    >>> [round(x, 3) for x in steady_state_intermittent(100.0, 0.0, 8.0, 5.0, 40.0)]
-    [5.0, 2.5, 2.5]
+    >>> [round(float(x), 3) for x in steady_state_intermittent(100.0, 0.0, 8.0, 5.0, 40.0)]
+    [3.955, 1.455, 2.5]
     """
     dose, duration, interval, clearance, volume = (
         np.asarray(a, dtype=float) for a in (dose, duration, interval, clearance, volume)

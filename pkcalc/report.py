@@ -46,6 +46,9 @@ CAUTION_SHORT = (
     "clinicians and pharmacists under local protocols."
 )
 
+#: Profiles with at most this many points are printed in full on the terminal.
+PROFILE_ROWS = 25
+
 _BOLD, _RED, _RESET = "\033[1m", "\033[31m", "\033[0m"
 
 
@@ -218,6 +221,17 @@ def predict_scenario_text(pred, conv: UnitConverter) -> str:
                          u("concentration")])
     lines = [f"Scenario: {pred.name}", format_table(["quantity", "value", "unit"], rows),
              f"plateau basis: {pred.plateau_basis}"]
+    t, c = conv(pred.time, "time"), conv(pred.concentration, "concentration")
+    if t.size <= PROFILE_ROWS:
+        lines.append(format_table([f"time [{u('time')}]", f"concentration [{u('concentration')}]"],
+                                  [[float(a), float(b)] for a, b in zip(t, c, strict=True)]))
+    elif t.size:
+        i = int(np.argmax(c))
+        lines.append(
+            f"profile: {t.size} points from {fmt(t[0])} to {fmt(t[-1])} {u('time')}; highest "
+            f"{fmt(c[i])} {u('concentration')} at {fmt(t[i])} {u('time')}; last "
+            f"{fmt(c[-1])} {u('concentration')} (all points: --json or --out)"
+        )
     if pred.target is not None:
         lines.append("target check: " + ("all met" if not pred.flags else
                                          f"{len(pred.flags)} flag(s)"))
