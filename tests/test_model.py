@@ -219,6 +219,18 @@ def test_neonatal_phenobarbital_half_life():
     assert p["half_life"] == pytest.approx(141.6, abs=0.05)
 
 
+def test_theophylline_loading_with_salt_factor_winter():
+    # From memory: the classic theophylline worked example of Winter, *Basic
+    # Clinical Pharmacokinetics* (V 0.5 L/kg, 70 kg, target 15 mg/L, given as
+    # aminophylline with S = 0.8): LD = V C / S = 656 mg of aminophylline.
+    # The numbers are recomputed from the formula, not trusted from memory.
+    v, target, s = 0.5 * 70, 15.0, 0.8
+    ld_salt = v * target / s
+    assert ld_salt == pytest.approx(656.25)
+    # giving S x LD of drug as a bolus reaches the target at once
+    assert model.concentration([0.0], [0.0], [s * ld_salt], [0.0], 2.8, v)[0] == pytest.approx(15)
+
+
 def test_loading_dose_flat_profile_any_parameters():
     # [calc] LD = Css V as a bolus with R0 = Css CL gives a flat profile.
     t = np.linspace(0, 100, 51)
