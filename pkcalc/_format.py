@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
-__all__ = ["fmt", "format_table"]
+__all__ = ["fmt", "format_table", "short"]
 
 
 def fmt(value: object, digits: int = 4) -> str:
@@ -39,6 +39,23 @@ def fmt(value: object, digits: int = 4) -> str:
         decimals = max(digits - 1 - mag, 0)
         return f"{x:.{decimals}f}"
     return str(value)
+
+
+def short(value: object, digits: int = 4) -> str:
+    """A number in running text: ``digits`` significant figures, no trailing zeros.
+
+    Examples
+    --------
+    >>> short(0.5), short(12.0), short(9.80321), short(None)
+    ('0.5', '12', '9.803', '-')
+    """
+    if value is None:
+        return "-"
+    try:
+        x = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return str(value)
+    return "-" if math.isnan(x) else f"{x:.{digits}g}"
 
 
 def format_table(headers: Sequence[str], rows: Sequence[Sequence[object]],

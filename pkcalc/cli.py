@@ -23,6 +23,18 @@ EXAMPLES = {
   pkcalc predict scenarios/demo.toml
   pkcalc predict scenarios/demo.toml --json > prediction.json
   pkcalc predict scenarios/demo.toml --out results/""",
+    "design": """examples:
+  pkcalc design --clearance "4 L/h" --half-life "8 h" --plateau "10 mg/L"
+  pkcalc design --clearance "4 L/h" --half-life "8 h" --plateau "10 mg/L" --loading-time "30 min"
+  pkcalc design --clearance "5.5 L/h" --volume "30 L" --peak-max "30 mg/L" --trough-min "8 mg/L" \\
+                --infusion-time "1 h" --dose-step "50 mg"
+  pkcalc design --clearance "5.5 L/h" --volume "30 L" --peak "25 mg/L" --trough "5 mg/L" \\
+                --infusion-time "30 min"
+  pkcalc design scenarios/demo-design.toml --out design-results/
+
+A scenario file holds a [scenarios.design] table per scenario, for designs
+(continuous, intermittent) and adjustments from measured levels
+(proportional, chiou, sawchuk_zaske); see scenarios/demo-design.toml.""",
     "demo": """examples:
   pkcalc demo --out demo-output""",
 }
@@ -140,6 +152,120 @@ def cmd_predict(args: argparse.Namespace) -> int:
     return _predict_files(args.scenario, args.out, args.json)
 
 
+# --------------------------------------------------------------------------- design
+_DESIGN_OPTIONS = ("plateau", "loading_time", "peak", "trough", "peak_min", "peak_max",
+                   "trough_min", "trough_max", "infusion_time", "dose_step", "rate_step",
+                   "max_rate", "max_dose", "max_loading", "salt_factor", "max_loading_ratio")
+_PARAM_OPTIONS = ("clearance", "volume", "half_life", "elimination_rate", "time_constant",
+                  "weight")
+
+
+def _design_from_options(args: argparse.Namespace):
+    from pydantic import ValidationError
+
+    from .errors import Problem
+    from .schema import DesignCaseSpec, validation_problems
+
+    raw: dict = {"name": "command line"}
+    raw.update({k: getattr(args, k) for k in _PARAM_OPTIONS if getattr(args, k) is not None})
+    design = {k: getattr(args, k) for k in _DESIGN_OPTIONS if getattr(args, k) is not None}
+    if args.window:
+        design["window"] = list(args.window)
+    if args.intervals:
+        design["intervals"] = [x.strip() for x in args.intervals.split(",") if x.strip()]
+    raw["design"] = design
+    try:
+        return DesignCaseSpec.model_validate(raw).resolved
+    except ValidationError as exc:
+        problems = validation_problems(exc)
+    except PkcalcInputError as exc:
+        problems = exc.problems
+
+    def option(field: str | None) -> str | None:
+        if not field:
+            return None
+        name = field.split(".", 1)[1] if field.startswith("design.") else field
+        name = name.split("[")[0].split(".")[0]
+        return "--" + name.replace("_", "-")
+
+    raise PkcalcInputError([Problem(p.message, item="command line", field=option(p.field),
+                                    expected=p.expected) for p in problems])
+
+
+def cmd_design(args: argparse.Namespace) -> int:
+    from .schema import OutputUnits, load_design_file
+
+    quick = any(getattr(args, k) is not None for k in (*_DESIGN_OPTIONS, *_PARAM_OPTIONS,
+                                                        "window", "intervals"))
+    if args.scenario and quick:
+        raise PkcalcInputError("give a scenario file or command-line parameters, not both",
+                               expected="pkcalc design FILE.toml, or pkcalc design --clearance "
+                                        "... --half-life ... --plateau ...")
+    if args.scenario:
+        sfile = load_design_file(args.scenario)
+        return _design_run(sfile.scenarios, sfile.failures, sfile.title, sfile.output.units(),
+                           [args.scenario], args.json, args.out)
+    if quick:
+        return _design_run([_design_from_options(args)], [], None, OutputUnits().units(), [],
+                           args.json, args.out)
+    raise PkcalcInputError("nothing to design", expected="a scenario file, or "
+                           "--clearance/--half-life with --plateau or --peak/--trough")
+
+
+def _design_run(cases, failures, title, units, inputs, as_json: bool, out_dir) -> int:
+    from . import report
+    from .design import run_design
+
+    results, run_failures = [], list(failures)
+    for case in cases:
+        try:
+            results.append(run_design(case))
+        except ValueError as exc:  # infeasible requests the schema could not foresee
+            label = f"scenario '{case.name}'"
+            run_failures.append((label, PkcalcInputError(
+                str(exc), file=inputs[0] if inputs else None, item=label)))
+    if not results:
+        raise PkcalcInputError([p for _, err in run_failures for p in err.problems])
+    conv = report.UnitConverter(units)
+    doc = report.design_json(results, conv, title=title, failures=run_failures)
+    if as_json:
+        _emit(report.dumps(doc))
+    else:
+        _emit(report.design_text(results, conv, title=title, failures=run_failures,
+                                 colour=_colour()))
+    if out_dir:
+        written = write_design_outputs(Path(out_dir), results, conv, doc, inputs)
+        if not as_json:
+            _emit(f"wrote {len(written)} files to {out_dir}")
+    return EXIT_PARTIAL if run_failures else EXIT_OK
+
+
+def write_design_outputs(out: Path, results, conv, doc, inputs) -> list[Path]:
+    """design.json, regimens.csv, one plot per design, CAUTION.txt."""
+    import pandas as pd
+
+    from . import report
+    from .plots import design_figure, save_figure
+
+    slugs = unique_slugs([r.name for r in results])
+    targets = [out / "design.json", out / "regimens.csv", out / "CAUTION.txt"]
+    targets += [out / f"design-{s}.png" for s in slugs]
+    check_not_input(targets, inputs)
+    written = [report.write_caution_file(out)]
+    frames = []
+    for res, s in zip(results, slugs, strict=True):
+        frame = res.to_frame()
+        frame.insert(0, "scenario", res.name)
+        frames.append(frame)
+        fig = design_figure(res, conv)
+        if fig is not None:
+            written.append(save_figure(fig, out / f"design-{s}.png"))
+    written.append(report.write_atomic(out / "regimens.csv",
+                                       pd.concat(frames).to_csv(index=False)))
+    written.append(report.write_atomic(out / "design.json", report.dumps(doc)))
+    return written
+
+
 def demo_path(name: str = "demo.toml") -> Path:
     """Path of a scenario file shipped with pkcalc."""
     from importlib.resources import files
@@ -148,8 +274,15 @@ def demo_path(name: str = "demo.toml") -> Path:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    out = args.out or "pkcalc-demo"
-    return _predict_files(str(demo_path()), out, False)
+    from .schema import load_design_file
+
+    out = Path(args.out or "pkcalc-demo")
+    codes = [_predict_files(str(demo_path()), str(out / "predict"), False)]
+    design_file = demo_path("demo-design.toml")
+    sfile = load_design_file(design_file)
+    codes.append(_design_run(sfile.scenarios, sfile.failures, sfile.title,
+                             sfile.output.units(), [str(design_file)], False, out / "design"))
+    return max(codes)
 
 
 # --------------------------------------------------------------------------- parser
@@ -175,6 +308,34 @@ def build_parser() -> argparse.ArgumentParser:
     p = _add(sub, "predict", cmd_predict,
              "Concentration course, plateau, time to plateau and steady state of scenarios.")
     p.add_argument("scenario", metavar="SCENARIO.toml", help="scenario file (DESIGN.md §5)")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.add_argument("--out", metavar="DIR", help="write CSV, JSON and PNG files to DIR")
+
+    p = _add(sub, "design", cmd_design,
+             "Design a regimen to a target, or adjust one from measured levels.")
+    p.add_argument("scenario", nargs="?", metavar="SCENARIO.toml",
+                   help="scenario file with [scenarios.design] tables")
+    for name in _PARAM_OPTIONS:
+        p.add_argument("--" + name.replace("_", "-"), metavar="Q", help=f"{name} with unit")
+    p.add_argument("--plateau", metavar="Q", help="target plateau (continuous infusion)")
+    p.add_argument("--window", nargs=2, metavar=("LOW", "HIGH"), help="acceptable plateau range")
+    p.add_argument("--loading-time", metavar="Q", help="loading dose duration (default: bolus)")
+    for name in ("peak", "trough"):
+        p.add_argument(f"--{name}", metavar="Q", help=f"target steady-state {name}")
+        p.add_argument(f"--{name}-min", metavar="Q", help=f"lowest acceptable {name}")
+        p.add_argument(f"--{name}-max", metavar="Q", help=f"highest acceptable {name}")
+    p.add_argument("--infusion-time", metavar="Q", help="duration of each intermittent dose")
+    p.add_argument("--intervals", metavar="LIST",
+                   help='practical intervals, e.g. "6 h,8 h,12 h,24 h" (default 6-48 h)')
+    p.add_argument("--dose-step", metavar="Q", help="round doses to this step (default 10 mg)")
+    p.add_argument("--rate-step", metavar="Q", help="round rates to this step (default 0.1 mg/h)")
+    p.add_argument("--max-rate", metavar="Q", help="flag rates above this")
+    p.add_argument("--max-dose", metavar="Q", help="flag doses above this")
+    p.add_argument("--max-loading", metavar="Q", help="flag loading doses above this")
+    p.add_argument("--max-loading-ratio", type=float, metavar="N",
+                   help="flag loading doses above N maintenance doses (default 3)")
+    p.add_argument("--salt-factor", type=float, metavar="S",
+                   help="fraction of the product that is active drug (default 1)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--out", metavar="DIR", help="write CSV, JSON and PNG files to DIR")
 

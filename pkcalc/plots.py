@@ -90,3 +90,58 @@ def profile_figure(pred, conv: UnitConverter | None = None) -> Figure:
     ax.set_ylim(bottom=0)
     ax.legend(fontsize=7, loc="best", frameon=False)
     return fig
+
+
+def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
+    """Predicted course of each proposed regimen with the target window.
+
+    Continuous designs: five half-lives after the loading dose.  Intermittent
+    designs: until steady state (five half-lives, at least four intervals).
+    Returns None when clearance or volume is unknown (nothing to draw).
+    """
+    conv = conv or UnitConverter()
+    cl, v = result.clearance, result.volume
+    if not cl or not v or not result.regimens:
+        return None
+    half_life = model.LN2 * v / cl
+    fig, ax = new_figure()
+    styles = ["-", "--", ":", "-."]
+    greys = ["black", "0.35", "0.55", "0.7"]
+    shown = result.regimens[:4]
+    tmax = max(
+        (max(5 * half_life, 4 * r.interval) + r.interval) if r.interval
+        else (r.loading_time or 0.0) + 5 * half_life
+        for r in shown
+    )
+    for i, reg in enumerate(shown):
+        horizon = tmax
+        events = reg.events(result.salt_factor, horizon)
+        if not events:
+            continue
+        start, amount, duration = expand_events(events)
+        t = np.unique(np.concatenate([np.linspace(0, horizon, 2000), start, start + duration]))
+        c = model.concentration(t, start, amount, duration, cl, v)
+        ax.plot(conv(t, "time"), conv(c, "concentration"), color=greys[i], ls=styles[i],
+                lw=1.6 if i == 0 else 1.1, label=f"#{i + 1} {reg.label}")
+    tgt = result.target
+    window = tgt.get("window")
+    if window and window[0] is not None and window[1] is not None:
+        ax.axhspan(conv(window[0], "concentration"), conv(window[1], "concentration"),
+                   color="0.88", zorder=0, label="target window")
+    for key, label in (("peak_limits", "peak limits"), ("trough_limits", "trough limits")):
+        lims = tgt.get(key) or [None, None]
+        for j, x in enumerate(lims):
+            if x is not None:
+                ax.axhline(conv(x, "concentration"), color="0.45", lw=0.9,
+                           ls=(0, (4, 2)) if key == "peak_limits" else (0, (1, 2)),
+                           label=label if j == 0 or lims[0] is None else None)
+    if tgt.get("plateau") is not None:
+        ax.axhline(conv(tgt["plateau"], "concentration"), color="0.3", lw=0.9, ls="-.",
+                   label="target plateau")
+    ax.set_xlim(0, conv(tmax, "time") if tmax else None)
+    ax.set_ylim(bottom=0)
+    ax.set_xlabel(f"time [{conv.unit('time')}]")
+    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_title(f"{result.name}\nproposed regimens: a calculation, not an order", fontsize=9)
+    ax.legend(fontsize=7, loc="best", frameon=False)
+    return fig

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import model
-from ._format import fmt, format_table
+from ._format import format_table, short
 from .plausibility import parameter_warnings
 from .schema import DoseEvent, ScenarioInput, Target, expand_events
 
@@ -215,8 +215,8 @@ def _target_flags(target: Target | None, plateau: float | None, ss: SteadyState 
         rel = plateau / target.plateau - 1.0
         if abs(rel) > TARGET_RTOL:
             flags.append(
-                f"plateau {fmt(plateau)} mg/L is {rel:+.0%} from the target {fmt(target.plateau)}"
-                f" mg/L (more than {TARGET_RTOL:.0%})"
+                f"plateau {short(plateau)} mg/L is {rel:+.0%} from the target "
+                f"{short(target.plateau)} mg/L (more than {TARGET_RTOL:.0%})"
             )
     if target.plateau is not None and plateau is None:
         flags.append("a plateau target is given but the regimen has no sustained input")
@@ -226,14 +226,14 @@ def _target_flags(target: Target | None, plateau: float | None, ss: SteadyState 
         if value is None:
             continue
         if target.high is not None and value > target.high:
-            flags.append(f"{label} {fmt(value)} mg/L is above the window high {fmt(target.high)}"
-                         " mg/L")
+            flags.append(f"{label} {short(value)} mg/L is above the window high "
+                         f"{short(target.high)} mg/L")
         if target.low is not None and value < target.low:
-            flags.append(f"{label} {fmt(value)} mg/L is below the window low {fmt(target.low)}"
+            flags.append(f"{label} {short(value)} mg/L is below the window low {short(target.low)}"
                          " mg/L")
     if target.high is not None and profile_max > target.high:
-        flags.append(f"the profile reaches {fmt(profile_max)} mg/L, above the window high "
-                     f"{fmt(target.high)} mg/L")
+        flags.append(f"the profile reaches {short(profile_max)} mg/L, above the window high "
+                     f"{short(target.high)} mg/L")
     return flags
 
 

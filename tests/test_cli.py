@@ -130,4 +130,5 @@ def test_demo_writes_outputs(run_cli, tmp_path):
     r = run_cli("demo", "--out", tmp_path / "demo")
     assert r.code == 0, r.err
     assert r.out.startswith("!!!")  # the caution block comes first
-    assert (tmp_path / "demo" / "predict.json").exists()
+    assert (tmp_path / "demo" / "predict" / "predict.json").exists()
+    assert (tmp_path / "demo" / "design" / "design.json").exists()
