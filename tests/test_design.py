@@ -160,7 +160,6 @@ def test_continuous_design_lands_on_target(loading_time):
     if loading_time > 0:
         # the loading infusion sized for its duration reaches the target at its end
         sized = res.regimens[1]
-        t, c = course(sized, cl, v, horizon=loading_time)
         exact = sized.exact["loading_dose"]
         assert model.concentration([loading_time], [0.0], [exact], [loading_time], cl, v)[0] \
             == pytest.approx(target)
@@ -170,7 +169,7 @@ def test_continuous_design_lands_on_target(loading_time):
 
 def test_bolus_loading_gives_flat_profile():
     res = design_continuous(3.0, 30.0, 10.0, rate_step=None, loading_step=None)
-    t, c = course(res.regimens[0], 3.0, 30.0, horizon=100.0)
+    _, c = course(res.regimens[0], 3.0, 30.0, horizon=100.0)
     np.testing.assert_allclose(c, 10.0, rtol=1e-12)
 
 
@@ -302,7 +301,8 @@ volume = "40 L"
 [scenarios.design]
 method = "chiou"
 rate = "30 mg/h"
-samples = [ {{ time = "{t1}", concentration = "{c1}" }}, {{ time = "{t2}", concentration = "{c2}" }} ]
+samples = [ {{ time = "{t1}", concentration = "{c1}" }},
+            {{ time = "{t2}", concentration = "{c2}" }} ]
 plateau = "8 mg/L"
 """
 
