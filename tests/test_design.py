@@ -152,7 +152,7 @@ def test_continuous_design_lands_on_target(loading_time):
     res = design_continuous(cl, v, target, loading_time=loading_time, rate_step=0.5,
                             loading_step=25.0)
     for reg in res.regimens:
-        t, c = course(reg, cl, v, horizon=200.0)
+        _, c = course(reg, cl, v, horizon=200.0)
         assert c[-1] == pytest.approx(reg.predicted["plateau"], rel=1e-4)
         assert reg.predicted["plateau"] == pytest.approx(target, abs=0.25 / cl)  # rounding
         if reg.loading_dose:
