@@ -1,0 +1,232 @@
+"""Shared pieces of regimen design: limits, rounding, basic target formulas,
+and the result types."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+from .._format import format_table, short
+from ..schema import DoseEvent
+
+#: Practical dosing intervals, h (configurable per design).
+DEFAULT_INTERVALS = (6.0, 8.0, 12.0, 24.0, 36.0, 48.0)
+#: Default rounding steps: dose 10 mg, loading dose 10 mg, rate 0.1 mg/h.
+DEFAULT_DOSE_STEP = 10.0
+DEFAULT_RATE_STEP = 0.1
+#: Warn when a loading dose exceeds this many maintenance doses per interval
+#: (continuous infusion: per 24 h of maintenance). Common practice, no source.
+DEFAULT_MAX_LOADING_RATIO = 3.0
+#: Acceptance around a target when no limits are stated (common practice).
+DEFAULT_TARGET_TOLERANCE = 0.20
+#: How close to the target a level counts as "at target" for time-to-target.
+NEAR_TARGET = 0.05
+
+
+# --------------------------------------------------------------------------- small pieces
+@dataclass(frozen=True)
+class Limits:
+    """A closed interval ``[low, high]``; either end may be None (open)."""
+
+    low: float | None = None
+    high: float | None = None
+
+    def __post_init__(self) -> None:
+        if self.low is not None and self.high is not None and self.low > self.high:
+            raise ValueError(f"limit low {self.low:g} is above high {self.high:g}")
+
+    @classmethod
+    def around(cls, target: float, tolerance: float) -> Limits:
+        return cls(target * (1 - tolerance), target * (1 + tolerance))
+
+    def violation(self, value: float | None, label: str) -> str | None:
+        """A plain-words flag when ``value`` lies outside, else None."""
+        if value is None:
+            return None
+        if self.high is not None and value > self.high * (1 + 1e-12):
+            return f"{label} {short(value)} mg/L is above its limit {short(self.high)} mg/L"
+        if self.low is not None and value < self.low * (1 - 1e-12):
+            return f"{label} {short(value)} mg/L is below its limit {short(self.low)} mg/L"
+        return None
+
+    def text(self) -> str:
+        lo = "-" if self.low is None else short(self.low)
+        hi = "-" if self.high is None else short(self.high)
+        return f"{lo} to {hi} mg/L"
+
+
+def round_to_step(value: float, step: float | None) -> float:
+    """Nearest multiple of ``step`` (at least one step); ``step=None`` keeps the value."""
+    if step is None or step <= 0:
+        return float(value)
+    return float(max(round(value / step), 1) * step)
+
+
+def rate_for_target(target, clearance, salt_factor=1.0):
+    """Maintenance rate for a plateau: ``R0 = Css CL / S`` (mg/h of product).
+
+    Examples
+    --------
+    >>> rate_for_target(10.0, 2.8)
+    28.0
+    """
+    return target * clearance / salt_factor
+
+
+def loading_dose_for_target(target, volume, salt_factor=1.0, current=0.0):
+    """Loading dose: ``LD = (Ctarget - Ccurrent) V / S`` (mg of product).
+
+    ``current`` gives the incremental loading dose of Winter (from memory).
+
+    Examples
+    --------
+    >>> loading_dose_for_target(10.0, 35.0)
+    350.0
+    """
+    return (target - current) * volume / salt_factor
+
+
+def loading_infusion_for_target(target, clearance, volume, loading_time, salt_factor=1.0):
+    """Loading amount infused over ``T`` that reaches the target at its end.
+
+    From ``C(T) = (R/CL)(1 - exp(-kT)) = Ctarget``:
+    ``LD = Ctarget CL T / (1 - exp(-kT)) / S``; it tends to ``Ctarget V / S``
+    as ``T -> 0`` [calc].
+    """
+    k = clearance / volume
+    if loading_time <= 0:
+        return target * volume / salt_factor
+    return target * clearance * loading_time / -math.expm1(-k * loading_time) / salt_factor
+
+
+# --------------------------------------------------------------------------- results
+@dataclass(frozen=True)
+class Regimen:
+    """One proposed regimen with its re-predicted metrics.
+
+    Attributes
+    ----------
+    label : str
+    rate : float or None, mg/h
+        Continuous maintenance rate (product).
+    loading_dose : float or None, mg
+    loading_time : float or None, h
+        Duration of the loading dose (0: bolus).
+    dose : float or None, mg
+        Intermittent dose (product).
+    interval : float or None, h
+    infusion_time : float or None, h
+    predicted : dict of str to float or None, mg/L
+        ``plateau``, ``peak``, ``trough``, ``average``, ``auc_24`` (mg h/L),
+        and for continuous designs ``highest`` / ``lowest_after_loading``.
+    meets_target : bool or None
+    flags : tuple of str
+    exact : dict of str to float
+        The unrounded design values.
+    """
+
+    label: str
+    rate: float | None = None
+    loading_dose: float | None = None
+    loading_time: float | None = None
+    dose: float | None = None
+    interval: float | None = None
+    infusion_time: float | None = None
+    predicted: dict[str, float | None] = field(default_factory=dict)
+    meets_target: bool | None = None
+    flags: tuple[str, ...] = ()
+    exact: dict[str, float] = field(default_factory=dict)
+
+    def events(self, salt_factor: float = 1.0, horizon: float | None = None) -> list[DoseEvent]:
+        """Dose events of the regimen in drug amounts (``S x`` product), for prediction.
+
+        Continuous maintenance starts after the loading dose ends and runs to
+        ``horizon``; intermittent doses repeat up to ``horizon``.
+        """
+        out = []
+        t_load = self.loading_time or 0.0
+        if self.loading_dose:
+            out.append(DoseEvent(0.0, salt_factor * self.loading_dose, t_load))
+        if self.rate is not None and horizon is not None:
+            start = t_load if self.loading_dose else 0.0
+            out.append(DoseEvent(start, salt_factor * self.rate * (horizon - start),
+                                 horizon - start))
+        if self.dose is not None and self.interval is not None and horizon is not None:
+            first = self.interval if self.loading_dose else 0.0
+            n = max(math.floor((horizon - first) / self.interval) + 1, 1)
+            out.append(DoseEvent(first, salt_factor * self.dose, self.infusion_time or 0.0,
+                                 self.interval if n > 1 else None, n))
+        return out
+
+
+@dataclass
+class DesignResult:
+    """A design or adjustment: estimates, proposed regimens, notes and warnings.
+
+    Attributes
+    ----------
+    name : str
+    method : str
+        ``continuous``, ``intermittent``, ``proportional``, ``chiou`` or ``sawchuk_zaske``.
+    clearance, volume : float or None
+        Parameters used for the proposals (L/h, L).
+    estimates : dict of str to float
+        Individual estimates from levels (adjustment methods).
+    target : dict
+        The target as understood (plateau, window, peak and trough limits).
+    regimens : list of Regimen
+        Proposals, best first.
+    notes, warnings : list of str
+    salt_factor : float
+    """
+
+    name: str
+    method: str
+    clearance: float | None
+    volume: float | None
+    regimens: list[Regimen]
+    target: dict[str, object] = field(default_factory=dict)
+    estimates: dict[str, float] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    salt_factor: float = 1.0
+
+    @property
+    def best(self) -> Regimen | None:
+        """The first proposal."""
+        return self.regimens[0] if self.regimens else None
+
+    def to_frame(self):
+        """One row per proposed regimen (canonical units in the headers)."""
+        import pandas as pd
+
+        rows = []
+        for r in self.regimens:
+            row = {"label": r.label, "rate [mg/h]": r.rate, "loading_dose [mg]": r.loading_dose,
+                   "loading_time [h]": r.loading_time, "dose [mg]": r.dose,
+                   "interval [h]": r.interval, "infusion_time [h]": r.infusion_time}
+            row.update({f"predicted_{k} [{'mg*h/L' if k == 'auc_24' else 'mg/L'}]": v
+                        for k, v in r.predicted.items()})
+            row["meets_target"] = r.meets_target
+            row["flags"] = " | ".join(r.flags)
+            rows.append(row)
+        return pd.DataFrame(rows)
+
+    def summary(self) -> str:
+        """Plain-text summary in canonical units (reports add the caution)."""
+        lines = [f"Design: {self.name} ({self.method})"]
+        if self.estimates:
+            lines.append(format_table(["estimate", "value"],
+                                      [[k, v] for k, v in self.estimates.items()]))
+        for r in self.regimens:
+            mark = "meets target" if r.meets_target else "FLAG"
+            parts = [f"{k}={short(getattr(r, k))}" for k in
+                     ("rate", "loading_dose", "loading_time", "dose", "interval",
+                      "infusion_time") if getattr(r, k) is not None]
+            pred = ", ".join(f"{k} {short(v)}" for k, v in r.predicted.items() if v is not None)
+            lines.append(f"- {r.label}: {' '.join(parts)} -> {pred} [{mark}]")
+            lines += [f"    flag: {f}" for f in r.flags]
+        lines += [f"note: {n}" for n in self.notes]
+        lines += [f"warning: {w}" for w in self.warnings]
+        return "\n".join(lines)
+

@@ -1,0 +1,172 @@
+"""Caution, unit conversion for display, JSON envelope, atomic file writes."""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import tempfile
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .. import __version__
+from ..units import CANONICAL, display_factor
+
+#: The clinical-use caution carried by every human-facing output.
+CAUTION = (
+    "CAUTION: These results are model estimates for research and review. They assume "
+    "linear one-compartment kinetics and the inputs as given. They are not dosing orders: "
+    "dosing decisions belong to licensed clinicians and pharmacists following local "
+    "protocols and product labelling. Check every number before any clinical use."
+)
+
+#: One-line form for plot footers.
+CAUTION_SHORT = (
+    "Model estimates for research and review only; dosing decisions belong to licensed "
+    "clinicians and pharmacists under local protocols."
+)
+
+#: Profiles with at most this many points are printed in full on the terminal.
+PROFILE_ROWS = 25
+
+_BOLD, _RED, _RESET = "\033[1m", "\033[31m", "\033[0m"
+
+
+def _wrap(text: str, width: int) -> list[str]:
+    import textwrap
+
+    return textwrap.wrap(text, width)
+
+
+def caution_block(colour: bool = False, width: int = 78, extra: str | None = None) -> str:
+    """The caution as a boxed block for the top of terminal output."""
+    lines = _wrap(CAUTION, width - 4)
+    if extra:
+        lines += ["", *_wrap(extra, width - 4)]
+    bar = "!" * width
+    body = [f"! {line.ljust(width - 4)} !" for line in lines]
+    block = "\n".join([bar, *body, bar])
+    return f"{_BOLD}{_RED}{block}{_RESET}" if colour else block
+
+
+class UnitConverter:
+    """Converts canonical numbers to display units.
+
+    Parameters
+    ----------
+    units : mapping of kind to unit text, optional
+        Display units; kinds not given stay canonical.
+    """
+
+    def __init__(self, units: Mapping[str, str | None] | None = None) -> None:
+        chosen = {k: v for k, v in (units or {}).items() if v}
+        self.units: dict[str, str] = {
+            k: chosen.get(k, CANONICAL[k])
+            for k in ("time", "amount", "volume", "concentration", "clearance", "rate",
+                      "elimination_rate")
+        }
+        self._factor = {k: display_factor(u, k) for k, u in self.units.items()}
+        self.units["auc"] = f"{self.units['concentration']}*{self.units['time']}"
+        self._factor["auc"] = self._factor["concentration"] * self._factor["time"]
+
+    def __call__(self, value: Any, kind: str) -> Any:
+        """Convert a number, array or None from canonical to the display unit of ``kind``."""
+        if value is None:
+            return None
+        factor = self._factor[kind]
+        if isinstance(value, np.ndarray):
+            return value * factor
+        return float(value) * factor
+
+    def unit(self, kind: str) -> str:
+        return self.units[kind]
+
+
+def _num(x: Any) -> Any:
+    """JSON-safe number: NaN/inf -> None, numpy -> float."""
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def _list(a: Iterable[float]) -> list[Any]:
+    return [_num(v) for v in a]
+
+
+def json_document(kind: str, units: UnitConverter | None, body: dict[str, Any]) -> dict[str, Any]:
+    """The common envelope of every JSON output: version, units map, caution."""
+    doc: dict[str, Any] = {"pkcalc_version": __version__, "command": kind}
+    if units is not None:
+        doc["units"] = {k: v for k, v in units.units.items() if k != "auc"}
+    doc["caution"] = CAUTION
+    doc.update(body)
+    return doc
+
+
+def dumps(doc: dict[str, Any]) -> str:
+    """JSON text (NaN refused: values were made JSON-safe before)."""
+    return json.dumps(doc, indent=2, allow_nan=False)
+
+
+def failures_json(failures) -> list[dict[str, Any]]:
+    """Failed items (name, problems) as JSON objects."""
+    return [{"item": label, "problems": [p.to_dict() for p in err.problems]}
+            for label, err in failures]
+
+
+def warnings_text(items: Iterable[tuple[str, Iterable[str]]]) -> str:
+    """A separate block listing warnings per item; empty string when there are none."""
+    lines = []
+    for name, warns in items:
+        lines += [f"  {name}: {w}" for w in warns]
+    return "Warnings:\n" + "\n".join(lines) if lines else ""
+
+
+def assemble_text(sections: Iterable[str], warnings: Iterable[tuple[str, Iterable[str]]], *,
+                  title: str | None = None, failures=(), colour: bool = False,
+                  extra_caution: str | None = None) -> str:
+    """A terminal document: caution block first, title, sections, warnings, failures."""
+    parts = [caution_block(colour, extra=extra_caution)]
+    if title:
+        parts.append(title)
+    parts += list(sections)
+    parts += [b for b in (warnings_text(warnings), failures_text(failures)) if b]
+    return "\n\n".join(parts) + "\n"
+
+
+def failures_text(failures) -> str:
+    """Problems of items that could not be computed."""
+    if not failures:
+        return ""
+    lines = ["Not computed (input problems):"]
+    for _label, err in failures:
+        lines += [f"  {p}" for p in err.problems]
+    return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------- files
+def write_atomic(path: str | Path, data: str | bytes) -> Path:
+    """Write a file atomically: a temporary file in the same folder, then rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    mode = "wb" if isinstance(data, bytes) else "w"
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, mode, **({} if mode == "wb" else {"encoding": "utf-8"})) as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path
+
+
+def write_caution_file(out_dir: str | Path) -> Path:
+    """``CAUTION.txt`` beside files written with ``--out``."""
+    text = CAUTION + "\n\npkcalc " + __version__ + "\n"
+    return write_atomic(Path(out_dir) / "CAUTION.txt", text)
+

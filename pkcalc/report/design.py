@@ -1,0 +1,165 @@
+"""Terminal and JSON output of ``pkcalc design``."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+from .._format import fmt, format_table
+from .base import (
+    UnitConverter,
+    _num,
+    assemble_text,
+    failures_json,
+    json_document,
+)
+
+# --------------------------------------------------------------------------- design
+DESIGN_CAUTION = (
+    "This design is a calculation to be checked by a licensed pharmacist or clinician under "
+    "local protocols. It is not an order."
+)
+
+_ESTIMATE_KIND = {
+    "clearance": "clearance", "clearance_exact": "clearance", "clearance_chiou": "clearance",
+    "volume": "volume", "elimination_rate": "elimination_rate", "half_life": "time",
+    "pause_before_new_rate": "time", "time_to_within_target_without_loading": "time",
+    "peak_at_end_of_infusion": "concentration", "trough_at_end_of_interval": "concentration",
+    "pre_dose_level": "concentration",
+}
+_PREDICTED_KIND = {"auc_24": "auc", "time_to_within_5pct": "time"}
+_REGIMEN_KIND = {"rate": "rate", "loading_dose": "amount", "loading_time": "time",
+                 "dose": "amount", "interval": "time", "infusion_time": "time"}
+
+
+def _conv_any(conv: UnitConverter, key: str, value: Any, table: Mapping[str, str],
+              default: str | None = "concentration") -> Any:
+    kind = table.get(key, default)
+    if value is None or kind is None:
+        return _num(value)
+    return _num(conv(value, kind))
+
+
+def design_regimen_dict(r, conv: UnitConverter, scenario: str) -> dict[str, Any]:
+    out: dict[str, Any] = {"scenario": scenario, "label": r.label}
+    for key, kind in _REGIMEN_KIND.items():
+        out[key] = _num(conv(getattr(r, key), kind))
+    predicted = {k: None for k in ("plateau", "peak", "trough", "average")}
+    predicted.update({k: _conv_any(conv, k, v, _PREDICTED_KIND) for k, v in r.predicted.items()})
+    out["predicted"] = predicted
+    out["meets_target"] = r.meets_target
+    out["flags"] = list(r.flags)
+    out["exact"] = {k: _conv_any(conv, k, v, {**_REGIMEN_KIND, **_ESTIMATE_KIND}, None)
+                    for k, v in r.exact.items()}
+    return out
+
+
+def _target_dict(target: Mapping[str, Any], conv: UnitConverter) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for k, v in target.items():
+        kind = "time" if k == "infusion_time" else "concentration"
+        if isinstance(v, list | tuple):
+            out[k] = [_conv_any(conv, k, x, {}, kind) for x in v]
+        else:
+            out[k] = _conv_any(conv, k, v, {}, kind)
+    return out
+
+
+def design_json(results, conv: UnitConverter, *, title: str | None = None,
+                failures=()) -> dict[str, Any]:
+    """The ``pkcalc design --json`` document: top-level ``regimens`` (DESIGN.md §6)
+    plus ``designs`` with each scenario's estimates, target and notes."""
+    regimens, designs = [], []
+    for res in results:
+        regs = [design_regimen_dict(r, conv, res.name) for r in res.regimens]
+        regimens += regs
+        designs.append({
+            "name": res.name, "method": res.method,
+            "parameters": {"clearance": _num(conv(res.clearance, "clearance")),
+                           "volume": _num(conv(res.volume, "volume"))},
+            "estimates": {k: _conv_any(conv, k, v, _ESTIMATE_KIND, None)
+                          for k, v in res.estimates.items()},
+            "target": _target_dict(res.target, conv),
+            "salt_factor": res.salt_factor,
+            "regimens": regs, "notes": list(res.notes), "warnings": list(res.warnings),
+        })
+    return json_document("design", conv, {
+        "design_caution": DESIGN_CAUTION, "title": title, "regimens": regimens,
+        "designs": designs, "failures": failures_json(failures),
+    })
+
+
+def design_result_text(res, conv: UnitConverter) -> str:
+    u = conv.unit
+    lines = [f"Design: {res.name}  (method: {res.method.replace('_', ' ')})"]
+    if res.clearance is not None or res.volume is not None:
+        lines.append(f"parameters used: clearance {fmt(conv(res.clearance, 'clearance'))} "
+                     f"{u('clearance')}, volume {fmt(conv(res.volume, 'volume'))} {u('volume')}")
+    if res.estimates:
+        rows = []
+        for k, v in res.estimates.items():
+            kind = _ESTIMATE_KIND.get(k)
+            rows.append([k.replace("_", " "), conv(v, kind) if kind else v,
+                         u(kind) if kind else ("%" if k.endswith("percent") else "")])
+        lines += ["Individual estimates from the measured levels:",
+                  format_table(["estimate", "value", "unit"], rows)]
+    tgt = _target_dict(res.target, conv)
+    tparts = []
+    for k, v in tgt.items():
+        if v is None or v == [None, None]:
+            continue
+        text = " to ".join(fmt(x) for x in v) if isinstance(v, list) else fmt(v)
+        unit = u("time") if k == "infusion_time" else u("concentration")
+        tparts.append(f"{k.replace('_', ' ')} {text} {unit}")
+    if tparts:
+        lines.append("Target: " + "; ".join(str(p) for p in tparts))
+    columns = [
+        ("#", None, None), ("regimen", None, None),
+        (f"rate [{u('rate')}]", "rate", "rate"),
+        (f"loading [{u('amount')}]", "loading_dose", "amount"),
+        (f"loading time [{u('time')}]", "loading_time", "time"),
+        (f"dose [{u('amount')}]", "dose", "amount"),
+        (f"every [{u('time')}]", "interval", "time"),
+        (f"infusion [{u('time')}]", "infusion_time", "time"),
+        (f"peak [{u('concentration')}]", "p:peak", "concentration"),
+        (f"trough [{u('concentration')}]", "p:trough", "concentration"),
+        (f"average [{u('concentration')}]", "p:average", "concentration"),
+        (f"AUC24 [{u('auc')}]", "p:auc_24", "auc"),
+        (f"plateau [{u('concentration')}]", "p:plateau", "concentration"),
+        (f"highest [{u('concentration')}]", "p:highest", "concentration"),
+        (f"lowest after loading [{u('concentration')}]", "p:lowest_after_loading",
+         "concentration"),
+        (f"level [{u('concentration')}]", "p:level", "concentration"),
+        ("check", None, None),
+    ]
+
+    def cell(r, i, key, kind, header):
+        if header == "#":
+            return i
+        if header == "regimen":
+            return r.label
+        if header == "check":
+            return "meets target" if r.meets_target else "FLAG"
+        value = r.predicted.get(key[2:]) if key.startswith("p:") else getattr(r, key)
+        return conv(value, kind)
+
+    table = [[cell(r, i, key, kind, h) for h, key, kind in columns]
+             for i, r in enumerate(res.regimens, 1)]
+    keep = [j for j, (h, key, _) in enumerate(columns)
+            if key is None or any(row[j] is not None for row in table)]
+    headers = [columns[j][0] for j in keep]
+    rows = [[row[j] for j in keep] for row in table]
+    lines += ["Proposed regimens (predicted at steady state, rounded):",
+              format_table(headers, rows)]
+    for i, r in enumerate(res.regimens, 1):
+        lines += [f"  #{i} FLAG: {f}" for f in r.flags]
+    lines += [f"note: {n}" for n in res.notes]
+    return "\n".join(lines)
+
+
+def design_text(results, conv: UnitConverter, *, title: str | None = None, failures=(),
+                colour: bool = False) -> str:
+    """Terminal output of ``pkcalc design``: caution (with the not-an-order line) first."""
+    return assemble_text([design_result_text(r, conv) for r in results],
+                         [(r.name, r.warnings) for r in results], title=title,
+                         failures=failures, colour=colour, extra_caution=DESIGN_CAUTION)

@@ -1,0 +1,133 @@
+"""Terminal and JSON output of ``pkcalc predict``."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from .._format import fmt, format_table
+from .base import (
+    PROFILE_ROWS,
+    UnitConverter,
+    _list,
+    _num,
+    assemble_text,
+    failures_json,
+    json_document,
+)
+
+
+# --------------------------------------------------------------------------- predict
+def predict_scenario_dict(pred, conv: UnitConverter) -> dict[str, Any]:
+    """One scenario's JSON object (DESIGN.md §6 keys, display units)."""
+    p = pred.parameters
+    ss = pred.steady_state
+    target = pred.target
+    return {
+        "name": pred.name,
+        "parameters": {
+            "clearance": _num(conv(p["clearance"], "clearance")),
+            "volume": _num(conv(p["volume"], "volume")),
+            "elimination_rate": _num(conv(p["elimination_rate"], "elimination_rate")),
+            "half_life": _num(conv(p["half_life"], "time")),
+            "time_constant": _num(conv(p["time_constant"], "time")),
+        },
+        "plateau_concentration": _num(conv(pred.plateau_concentration, "concentration")),
+        "plateau_basis": pred.plateau_basis,
+        "time_to_fraction": {
+            f"{f:g}": _num(conv(t, "time")) for f, t in pred.time_to_fraction.items()
+        },
+        "time_to_fraction_half_lives": {
+            f"{f:g}": _num(t / p["half_life"]) for f, t in pred.time_to_fraction.items()
+        },
+        "profile": {
+            "time": _list(conv(pred.time, "time")),
+            "concentration": _list(conv(pred.concentration, "concentration")),
+        },
+        "steady_state": None if ss is None else {
+            "peak": _num(conv(ss.peak, "concentration")),
+            "trough": _num(conv(ss.trough, "concentration")),
+            "average": _num(conv(ss.average, "concentration")),
+            "interval": _num(conv(ss.interval, "time")),
+        },
+        "target": None if target is None else {
+            "plateau": _num(conv(target.plateau, "concentration")),
+            "window": None if target.low is None else [
+                _num(conv(target.low, "concentration")), _num(conv(target.high, "concentration"))
+            ],
+        },
+        "flags": list(pred.flags),
+        "warnings": list(pred.warnings),
+    }
+
+
+def predict_json(predictions, conv: UnitConverter, *, title: str | None = None,
+                 failures=()) -> dict[str, Any]:
+    """The ``pkcalc predict --json`` document."""
+    return json_document("predict", conv, {
+        "title": title,
+        "scenarios": [predict_scenario_dict(p, conv) for p in predictions],
+        "failures": failures_json(failures),
+    })
+
+
+def predict_scenario_text(pred, conv: UnitConverter) -> str:
+    """Terminal table of one scenario in display units."""
+    u = conv.unit
+    p = pred.parameters
+    rows: list[list[Any]] = [
+        ["clearance", conv(p["clearance"], "clearance"), u("clearance")],
+        ["volume", conv(p["volume"], "volume"), u("volume")],
+        ["elimination rate constant", conv(p["elimination_rate"], "elimination_rate"),
+         u("elimination_rate")],
+        ["half-life", conv(p["half_life"], "time"), u("time")],
+        ["time constant (V/CL)", conv(p["time_constant"], "time"), u("time")],
+        ["plateau", conv(pred.plateau_concentration, "concentration"), u("concentration")],
+    ]
+    for f, t in pred.time_to_fraction.items():
+        rows.append([f"time to {f:.0%} of plateau ({t / p['half_life']:.2f} half-lives)",
+                     conv(t, "time"), u("time")])
+    ss = pred.steady_state
+    if ss is not None:
+        rows += [
+            [f"steady-state peak (every {fmt(conv(ss.interval, 'time'))} {u('time')})",
+             conv(ss.peak, "concentration"), u("concentration")],
+            ["steady-state trough", conv(ss.trough, "concentration"), u("concentration")],
+            ["steady-state average", conv(ss.average, "concentration"), u("concentration")],
+        ]
+    if pred.target is not None:
+        t = pred.target
+        if t.plateau is not None:
+            rows.append(["target plateau", conv(t.plateau, "concentration"), u("concentration")])
+        if t.low is not None:
+            rows.append(["target window low", conv(t.low, "concentration"), u("concentration")])
+            rows.append(["target window high", conv(t.high, "concentration"),
+                         u("concentration")])
+    lines = [f"Scenario: {pred.name}", format_table(["quantity", "value", "unit"], rows),
+             f"plateau basis: {pred.plateau_basis}"]
+    t, c = conv(pred.time, "time"), conv(pred.concentration, "concentration")
+    if t.size <= PROFILE_ROWS:
+        lines.append(format_table([f"time [{u('time')}]", f"concentration [{u('concentration')}]"],
+                                  [[float(a), float(b)] for a, b in zip(t, c, strict=True)]))
+    elif t.size:
+        i = int(np.argmax(c))
+        lines.append(
+            f"profile: {t.size} points from {fmt(t[0])} to {fmt(t[-1])} {u('time')}; highest "
+            f"{fmt(c[i])} {u('concentration')} at {fmt(t[i])} {u('time')}; last "
+            f"{fmt(c[-1])} {u('concentration')} (all points: --json or --out)"
+        )
+    if pred.target is not None:
+        lines.append("target check: " + ("all met" if not pred.flags else
+                                         f"{len(pred.flags)} flag(s)"))
+    for flag in pred.flags:
+        lines.append(f"  FLAG: {flag}")
+    return "\n".join(lines)
+
+
+def predict_text(predictions, conv: UnitConverter, *, title: str | None = None,
+                 failures=(), colour: bool = False) -> str:
+    """Terminal output of ``pkcalc predict``: caution first, tables, warnings."""
+    return assemble_text([predict_scenario_text(p, conv) for p in predictions],
+                         [(p.name, p.warnings) for p in predictions], title=title,
+                         failures=failures, colour=colour)

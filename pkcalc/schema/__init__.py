@@ -1,0 +1,55 @@
+"""Input files -> validated, canonical inputs (the boundary).
+
+pydantic models describe each input file (DESIGN.md §5); their validators
+turn every quantity into canonical units with :mod:`pkcalc.units`, check the
+parameters, doses and options, and collect every problem before raising.
+What comes out (:class:`ScenarioInput`, :class:`DoseEvent`, :class:`DesignCase`,
+...) is plain numbers in canonical units that the rest of pkcalc trusts.
+
+Modules: ``base`` (shared types, collector, loader), ``scenario`` (scenario
+files), ``design`` (design tables).
+"""
+
+from .base import (
+    AGREEMENT_RTOL,
+    PARAMETER_NAMES,
+    DoseEvent,
+    OutputUnits,
+    ScenarioFile,
+    ScenarioInput,
+    Target,
+    expand_events,
+    load_items,
+    read_toml,
+    resolve_parameters,
+    resolve_partial,
+    validation_problems,
+)
+from .design import DESIGN_METHODS, DesignCase, DesignCaseSpec, DesignSpec, load_design_file
+from .scenario import DoseSpec, ScenarioSpec, TargetSpec, TimeRange, load_scenario_file
+
+__all__ = [
+    "AGREEMENT_RTOL",
+    "DESIGN_METHODS",
+    "PARAMETER_NAMES",
+    "DesignCase",
+    "DesignCaseSpec",
+    "DesignSpec",
+    "DoseEvent",
+    "DoseSpec",
+    "OutputUnits",
+    "ScenarioFile",
+    "ScenarioInput",
+    "ScenarioSpec",
+    "Target",
+    "TargetSpec",
+    "TimeRange",
+    "expand_events",
+    "load_design_file",
+    "load_items",
+    "load_scenario_file",
+    "read_toml",
+    "resolve_parameters",
+    "resolve_partial",
+    "validation_problems",
+]

@@ -1,0 +1,425 @@
+"""Shared pieces of the input boundary: canonical input types, the problem
+collector, parameter resolution, the pydantic base models and the file loader."""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+
+from .. import model
+from ..errors import PkcalcInputError, Problem
+from ..units import CANONICAL, display_factor, to_canonical
+
+#: The five one-compartment parameters and the kind of quantity of each.
+PARAMETER_NAMES: dict[str, str] = {
+    "clearance": "clearance",
+    "volume": "volume",
+    "half_life": "time",
+    "elimination_rate": "elimination_rate",
+    "time_constant": "time",
+}
+
+#: Relative tolerance for an over-determined parameter set (three or more given).
+AGREEMENT_RTOL = 1e-6
+
+QuantityText = str | int | float
+
+
+# --------------------------------------------------------------------------- canonical results
+@dataclass(frozen=True)
+class DoseEvent:
+    """One dose event in canonical units (possibly repeated).
+
+    Attributes
+    ----------
+    start : float, h
+    amount : float, mg
+    duration : float, h
+        0 for a bolus.
+    every : float or None, h
+        Interval between repeats.
+    count : int
+        Number of doses (1 for a single dose).
+    """
+
+    start: float
+    amount: float
+    duration: float
+    every: float | None = None
+    count: int = 1
+
+    @property
+    def rate(self) -> float | None:
+        """Infusion rate in mg/h (None for a bolus)."""
+        return self.amount / self.duration if self.duration > 0 else None
+
+    @property
+    def end(self) -> float:
+        """End of the last infusion of the event, h."""
+        return self.start + (self.count - 1) * (self.every or 0.0) + self.duration
+
+
+def expand_events(doses: Iterable[DoseEvent]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Single events (start, amount, duration arrays) of a dose list, repeats expanded."""
+    doses = list(doses)
+    return model.expand_doses(
+        [d.start for d in doses],
+        [d.amount for d in doses],
+        [d.duration for d in doses],
+        every=[d.every if d.every is not None else 0.0 for d in doses],
+        count=[d.count for d in doses],
+    )
+
+
+@dataclass(frozen=True)
+class Target:
+    """A target plateau and/or a window, mg/L."""
+
+    plateau: float | None = None
+    low: float | None = None
+    high: float | None = None
+
+
+@dataclass(frozen=True)
+class ScenarioInput:
+    """A validated scenario in canonical units (what :mod:`pkcalc.predict` consumes).
+
+    Attributes
+    ----------
+    name : str
+    clearance : float, L/h
+    volume : float, L
+    doses : tuple of DoseEvent
+    times : ndarray or None, h
+        Requested output times (sorted, non-negative); None lets pkcalc choose.
+    weight : float or None, kg
+    target : Target or None
+    given : tuple of str
+        The parameter names the user gave (for reports).
+    """
+
+    name: str
+    clearance: float
+    volume: float
+    doses: tuple[DoseEvent, ...]
+    times: np.ndarray | None = None
+    weight: float | None = None
+    target: Target | None = None
+    given: tuple[str, ...] = ()
+    extra: dict[str, Any] = field(default_factory=dict)
+
+
+# --------------------------------------------------------------------------- helpers
+class _Collector:
+    """Converts quantities, recording problems instead of stopping at the first."""
+
+    def __init__(self, weight: float | None = None) -> None:
+        self.problems: list[Problem] = []
+        self.weight = weight
+
+    def q(self, text: Any, kind: str, name: str, *, positive: bool = False,
+          nonnegative: bool = False) -> float | None:
+        if text is None:
+            return None
+        try:
+            value = to_canonical(text, kind, field=name, weight=self.weight)
+        except PkcalcInputError as exc:
+            self.problems.extend(exc.problems)
+            return None
+        if positive and not value > 0:
+            self.add(f"must be greater than zero, got '{text}'", name)
+            return None
+        if nonnegative and value < 0:
+            self.add(f"must not be negative, got '{text}'", name)
+            return None
+        return value
+
+    def add(self, message: str, name: str | None = None, expected: str | None = None) -> None:
+        self.problems.append(Problem(message, field=name, expected=expected))
+
+    def raise_if_any(self) -> None:
+        if self.problems:
+            raise PkcalcInputError(self.problems)
+
+
+def _agree(a: float, b: float) -> bool:
+    return math.isclose(a, b, rel_tol=AGREEMENT_RTOL, abs_tol=0.0)
+
+
+def resolve_parameters(values: dict[str, float], col: _Collector) -> tuple[float, float] | None:
+    """Clearance and volume from the given parameters, checking over-determined sets.
+
+    Any two independent ones of clearance, volume, half_life, elimination_rate,
+    time_constant fix the model; a third given must agree to 1e-6 relative.
+    """
+    given = {k: v for k, v in values.items() if v is not None}
+    k_like = [n for n in ("half_life", "elimination_rate", "time_constant") if n in given]
+    k_values = {
+        "half_life": lambda v: model.LN2 / v,
+        "elimination_rate": lambda v: v,
+        "time_constant": lambda v: 1.0 / v,
+    }
+    rates = {n: k_values[n](given[n]) for n in k_like}
+    first_k = rates[k_like[0]] if k_like else None
+    for n in k_like[1:]:
+        if not _agree(rates[n], first_k):
+            col.add(
+                f"{n} ({given[n]:.6g}) disagrees with {k_like[0]} ({given[k_like[0]]:.6g}): "
+                f"they imply elimination rates {rates[n]:.6g} and {first_k:.6g} 1/h",
+                n, "values that agree to 1e-6 relative, or only two parameters",
+            )
+            return None
+    cl, v = given.get("clearance"), given.get("volume")
+    independent = (cl is not None) + (v is not None) + (first_k is not None)
+    if independent < 2:
+        names = ", ".join(given) or "none"
+        col.add(
+            f"clearance and volume are not determined by the parameters given ({names})",
+            "clearance",
+            "two of clearance, volume and one of half_life / elimination_rate / time_constant",
+        )
+        return None
+    if cl is not None and v is not None and first_k is not None and not _agree(cl / v, first_k):
+        col.add(
+            f"clearance/volume = {cl / v:.6g} 1/h disagrees with {k_like[0]} "
+            f"(elimination rate {first_k:.6g} 1/h)",
+            k_like[0], "values that agree to 1e-6 relative, or only two parameters",
+        )
+        return None
+    cl_out, v_out = model.resolve_clearance_volume(
+        clearance=cl, volume=v, elimination_rate=first_k
+    )
+    return float(cl_out), float(v_out)
+
+
+def validation_problems(exc: ValidationError, *, prefix: str = "") -> list[Problem]:
+    """pydantic errors -> pkcalc problems (field path, message); our own errors kept."""
+    out: list[Problem] = []
+    for err in exc.errors():
+        inner = (err.get("ctx") or {}).get("error")
+        if isinstance(inner, PkcalcInputError):
+            out.extend(inner.problems)
+            continue
+        loc = prefix + ".".join(str(p) if not isinstance(p, int) else f"[{p}]" for p in err["loc"])
+        loc = loc.replace(".[", "[")
+        msg = err["msg"]
+        if err["type"] == "extra_forbidden":
+            msg = "unknown key (check the spelling; see DESIGN.md §5 for the accepted keys)"
+        elif err["type"] == "missing":
+            msg = "is required"
+        out.append(Problem(msg, field=loc or None))
+    return out
+
+
+def _check_items(raw: dict[str, Any], allowed: Iterable[str], where: str) -> None:
+    unknown = sorted(set(raw) - set(allowed))
+    if unknown:
+        raise PkcalcInputError(
+            [Problem("unknown key", field=f"{where}{k}", expected=", ".join(allowed))
+             for k in unknown]
+        )
+
+
+def resolve_partial(values: dict[str, float | None], col: _Collector
+                    ) -> tuple[float | None, float | None]:
+    """Clearance and/or volume from whatever parameters are given (design cases)."""
+    given = {k: v for k, v in values.items() if v is not None}
+    independent = ("clearance" in given) + ("volume" in given) + any(
+        n in given for n in ("half_life", "elimination_rate", "time_constant"))
+    if independent >= 2:
+        params = resolve_parameters(values, col)
+        return (None, None) if params is None else params
+    return given.get("clearance"), given.get("volume")
+
+
+# --------------------------------------------------------------------------- pydantic models
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+
+class _Lenient(BaseModel):
+    """Unknown keys are kept and reported together with every other problem."""
+
+    model_config = ConfigDict(extra="allow", frozen=True, populate_by_name=True)
+
+    def unknown_keys(self, col: _Collector, where: str = "") -> None:
+        accepted = ", ".join(
+            (f.alias or name) for name, f in type(self).model_fields.items()
+        )
+        for key in self.model_extra or {}:
+            col.add("unknown key (check the spelling)", f"{where}{key}", accepted)
+
+
+class _WithParameters(_Lenient):
+    """An entry with a name, a body weight and any of the five parameters."""
+
+    name: str = Field(min_length=1)
+    weight: QuantityText | None = None
+    clearance: QuantityText | None = None
+    volume: QuantityText | None = None
+    half_life: QuantityText | None = None
+    elimination_rate: QuantityText | None = None
+    time_constant: QuantityText | None = None
+
+    def start_collecting(self) -> tuple[_Collector, float | None, dict[str, float | None]]:
+        """A collector (with unknown keys reported), the weight and the canonical
+        parameters given (None where absent or wrong)."""
+        col = _Collector()
+        self.unknown_keys(col)
+        weight = col.q(self.weight, "weight", "weight", positive=True)
+        col.weight = weight
+        values = {name: col.q(getattr(self, name), kind, name, positive=True)
+                  for name, kind in PARAMETER_NAMES.items()}
+        return col, weight, values
+
+
+class OutputUnits(_Strict):
+    """Display units for outputs (``[output]`` table); canonical when omitted."""
+
+    time: str | None = None
+    amount: str | None = None
+    volume: str | None = None
+    concentration: str | None = None
+    clearance: str | None = None
+    rate: str | None = None
+    elimination_rate: str | None = None
+
+    @model_validator(mode="after")
+    def _check(self) -> OutputUnits:
+        problems = []
+        for kind in type(self).model_fields:
+            unit = getattr(self, kind)
+            if unit is not None:
+                try:
+                    display_factor(unit, kind, field=f"output.{kind}")
+                except PkcalcInputError as exc:
+                    problems.extend(exc.problems)
+        if problems:
+            raise PkcalcInputError(problems)
+        return self
+
+    def units(self) -> dict[str, str]:
+        """The full units map: chosen units, canonical for the rest."""
+        keys = ("time", "amount", "volume", "concentration", "clearance", "rate",
+                "elimination_rate")
+        return {k: getattr(self, k) or CANONICAL[k] for k in keys}
+
+
+@dataclass
+class ScenarioFile:
+    """A loaded scenario file: good scenarios and the problems of the bad ones.
+
+    Attributes
+    ----------
+    path : str
+    title : str or None
+    output : OutputUnits
+    scenarios : list of ScenarioInput
+        The scenarios that validated, in file order.
+    failures : list of (str, PkcalcInputError)
+        Name (or position) and problems of each scenario that did not.
+    raw : dict
+        The parsed TOML, for reports.
+    """
+
+    path: str
+    title: str | None
+    output: OutputUnits
+    scenarios: list[ScenarioInput]
+    failures: list[tuple[str, PkcalcInputError]]
+    raw: dict[str, Any]
+
+
+def read_toml(path: str | Path) -> dict[str, Any]:
+    """Read a TOML file; unreadable, empty or non-TOML files raise PkcalcInputError."""
+    p = Path(path)
+    if not p.is_file():
+        raise PkcalcInputError("file not found", file=str(path))
+    try:
+        data = tomllib.loads(p.read_text(encoding="utf-8"))
+    except UnicodeDecodeError:
+        raise PkcalcInputError("not a text file", file=str(path), expected="a TOML file") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise PkcalcInputError(f"not valid TOML: {exc}", file=str(path)) from None
+    if not data:
+        raise PkcalcInputError("the file is empty", file=str(path), expected="a TOML file")
+    return data
+
+
+def _scenario_label(raw: Any, i: int, list_key: str = "scenarios") -> str:
+    word = "case" if list_key == "cases" else "scenario"
+    name = raw.get("name") if isinstance(raw, dict) else None
+    return f"{word} '{name}'" if isinstance(name, str) and name else f"{word} #{i + 1}"
+
+
+def load_items(path: str | Path, spec: type[_Lenient], *, extra_keys: Iterable[str] = (),
+               keep: Any = None, list_key: str = "scenarios") -> ScenarioFile:
+    """Load a TOML file of ``[[scenarios]]`` (or ``[[cases]]``) tables, keeping good
+    entries when others fail.
+
+    Parameters
+    ----------
+    path : str or Path
+    extra_keys : iterable of str
+        Top-level keys other commands accept besides ``title``, ``output``, ``scenarios``.
+    spec : pydantic model class
+        The model each entry is validated with; its ``resolved`` property gives
+        the canonical result.
+    keep : callable, optional
+        ``keep(raw) -> bool``; entries for which it is false are skipped.
+
+    Returns
+    -------
+    ScenarioFile
+
+    Raises
+    ------
+    PkcalcInputError
+        When the file as a whole is unusable (missing, not TOML, no scenarios,
+        bad ``[output]`` table).  Problems of single scenarios are returned in
+        ``failures`` instead.
+    """
+    file = str(path)
+    data = read_toml(path)
+    try:
+        _check_items(data, ["title", "output", list_key, *extra_keys], "")
+        try:
+            output = OutputUnits.model_validate(data.get("output", {}))
+        except ValidationError as exc:
+            raise PkcalcInputError(validation_problems(exc, prefix="output.")) from None
+        raw_scenarios = data.get(list_key)
+        if not isinstance(raw_scenarios, list) or not raw_scenarios:
+            raise PkcalcInputError(f"no [[{list_key}]] given", field=list_key,
+                                   expected=f"one or more [[{list_key}]] tables")
+    except PkcalcInputError as exc:
+        raise exc.located(file=file) from None
+    good: list[Any] = []
+    failures: list[tuple[str, PkcalcInputError]] = []
+    names: set[str] = set()
+    for i, raw in enumerate(raw_scenarios):
+        label = _scenario_label(raw, i, list_key)
+        if keep is not None and isinstance(raw, dict) and not keep(raw):
+            continue
+        try:
+            if not isinstance(raw, dict):
+                raise PkcalcInputError("each entry must be a table", field=list_key)
+            item = spec.model_validate(raw)
+            if item.name in names:
+                raise PkcalcInputError(f"duplicate scenario name '{item.name}'", field="name")
+            names.add(item.name)
+            good.append(item.resolved)
+        except ValidationError as exc:
+            failures.append((label, PkcalcInputError(validation_problems(exc))
+                             .located(file=file, item=label)))
+        except PkcalcInputError as exc:
+            failures.append((label, exc.located(file=file, item=label)))
+    title = data.get("title") if isinstance(data.get("title"), str) else None
+    return ScenarioFile(file, title, output, good, failures, data)
+

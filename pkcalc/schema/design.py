@@ -1,0 +1,322 @@
+"""The ``[scenarios.design]`` table of ``pkcalc design``."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from pydantic import Field, PrivateAttr, model_validator
+
+from ..errors import PkcalcInputError
+from .base import (
+    QuantityText,
+    ScenarioFile,
+    _Collector,
+    _Lenient,
+    _WithParameters,
+    load_items,
+    resolve_partial,
+)
+
+# --------------------------------------------------------------------------- design
+DESIGN_METHODS = ("continuous", "intermittent", "proportional", "chiou", "sawchuk_zaske")
+
+
+class SampleSpec(_Lenient):
+    """A measured level: ``{ time = "2 h", concentration = "4.1 mg/L" }``."""
+
+    time: QuantityText
+    concentration: QuantityText
+
+
+class DesignSpec(_Lenient):
+    """The ``[scenarios.design]`` table: what to design or adjust, and how to round."""
+
+    method: str | None = None
+    # continuous infusion
+    plateau: QuantityText | None = None
+    window: list[QuantityText] | None = Field(default=None, min_length=2, max_length=2)
+    loading_time: QuantityText | None = None
+    within: float | None = None
+    # intermittent infusion
+    infusion_time: QuantityText | None = None
+    peak: QuantityText | list[QuantityText] | None = None
+    trough: QuantityText | list[QuantityText] | None = None
+    peak_min: QuantityText | None = None
+    peak_max: QuantityText | None = None
+    trough_min: QuantityText | None = None
+    trough_max: QuantityText | None = None
+    intervals: list[QuantityText] | None = None
+    # rounding and limits
+    salt_factor: float | None = None
+    rate_step: QuantityText | None = None
+    dose_step: QuantityText | None = None
+    max_rate: QuantityText | None = None
+    max_dose: QuantityText | None = None
+    max_loading: QuantityText | None = None
+    max_loading_ratio: float | None = None
+    # adjustment from levels
+    measured: QuantityText | None = None
+    current_rate: QuantityText | None = None
+    current_dose: QuantityText | None = None
+    current_interval: QuantityText | None = None
+    rate: QuantityText | None = None
+    samples: list[SampleSpec] | None = None
+    dose: QuantityText | None = None
+    interval: QuantityText | None = None
+    peak_sample: SampleSpec | None = None
+    trough_sample: SampleSpec | None = None
+    pre_dose: QuantityText | None = None
+    steady_state: bool | None = None
+    new_infusion_time: QuantityText | None = None
+
+    def infer_method(self) -> str:
+        if self.method is not None:
+            return self.method
+        if self.samples is not None:
+            return "chiou"
+        if self.peak_sample is not None or self.trough_sample is not None:
+            return "sawchuk_zaske"
+        if self.measured is not None:
+            return "proportional"
+        if self.infusion_time is not None or self.peak is not None or self.trough is not None \
+                or self.peak_max is not None or self.trough_min is not None:
+            return "intermittent"
+        return "continuous"
+
+
+@dataclass(frozen=True)
+class DesignCase:
+    """A validated design request in canonical units.
+
+    ``options`` holds keyword arguments of the :mod:`pkcalc.design` function
+    that ``method`` names (canonical numbers, :class:`~pkcalc.design.Limits`
+    built later from ``*_limits`` pairs).
+    """
+
+    name: str
+    method: str
+    clearance: float | None
+    volume: float | None
+    options: dict[str, Any]
+    weight: float | None = None
+
+
+def _limits_pair(col: _Collector, spec: DesignSpec, name: str):
+    """(target, (low, high)) for 'peak' / 'trough' from the single or list form and min/max."""
+    value = getattr(spec, name)
+    target = low = high = None
+    if isinstance(value, list):
+        if len(value) != 2:
+            col.add("give [min, max]", f"design.{name}", "a list of two concentrations")
+        else:
+            low = col.q(value[0], "concentration", f"design.{name}[0]", nonnegative=True)
+            high = col.q(value[1], "concentration", f"design.{name}[1]", positive=True)
+    elif value is not None:
+        target = col.q(value, "concentration", f"design.{name}", positive=True)
+    mn = col.q(getattr(spec, f"{name}_min"), "concentration", f"design.{name}_min",
+               nonnegative=True)
+    mx = col.q(getattr(spec, f"{name}_max"), "concentration", f"design.{name}_max",
+               positive=True)
+    low = mn if mn is not None else low
+    high = mx if mx is not None else high
+    if low is not None and high is not None and low >= high:
+        col.add(f"{name} minimum {low:g} mg/L is not below the maximum {high:g} mg/L",
+                f"design.{name}", "min < max")
+    if target is not None and ((low is not None and target < low) or
+                               (high is not None and target > high)):
+        col.add(f"{name} target {target:g} mg/L lies outside its own limits", f"design.{name}")
+    limits = None if low is None and high is None else (low, high)
+    return target, limits
+
+
+def _sample(col: _Collector, sample: SampleSpec | None, where: str):
+    if sample is None:
+        return None
+    sample.unknown_keys(col, f"{where}.")
+    t = col.q(sample.time, "time", f"{where}.time")
+    c = col.q(sample.concentration, "concentration", f"{where}.concentration", positive=True)
+    return None if t is None or c is None else (t, c)
+
+
+def _need(col: _Collector, method: str, **values: Any) -> bool:
+    missing = [k for k, v in values.items() if v is None]
+    for k in missing:
+        col.add(f"method '{method}' needs '{k}'", k if "." in k else f"design.{k}")
+    return not missing
+
+
+def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
+                   col: _Collector) -> tuple[str, dict[str, Any]]:
+    """Canonical keyword options for the design function of the method."""
+    spec.unknown_keys(col, "design.")
+    method = spec.infer_method()
+    if method not in DESIGN_METHODS:
+        col.add(f"unknown method '{method}'", "design.method", ", ".join(DESIGN_METHODS))
+        return method, {}
+    q = col.q
+    opts: dict[str, Any] = {}
+    if spec.salt_factor is not None:
+        if not 0 < spec.salt_factor <= 1:
+            col.add(f"salt_factor must be in (0, 1], got {spec.salt_factor}",
+                    "design.salt_factor")
+        opts["salt_factor"] = spec.salt_factor
+    steps = {"rate_step": ("rate", spec.rate_step), "dose_step": ("amount", spec.dose_step)}
+    maxima = {"max_rate": ("rate", spec.max_rate), "max_dose": ("amount", spec.max_dose),
+              "max_loading": ("amount", spec.max_loading)}
+    for key, (kind, text) in {**steps, **maxima}.items():
+        value = q(text, kind, f"design.{key}", positive=True)
+        if value is not None:
+            opts[key] = value
+    if spec.max_loading_ratio is not None:
+        opts["max_loading_ratio"] = spec.max_loading_ratio
+    plateau = q(spec.plateau, "concentration", "design.plateau", positive=True)
+    peak, peak_limits = _limits_pair(col, spec, "peak")
+    trough, trough_limits = _limits_pair(col, spec, "trough")
+    if peak is not None and trough is not None and trough >= peak:
+        col.add(f"trough target {trough:g} mg/L is not below the peak target {peak:g} mg/L",
+                "design.trough", "a trough target below the peak target")
+    intervals = None
+    if spec.intervals is not None:
+        intervals = [q(x, "time", f"design.intervals[{i}]", positive=True)
+                     for i, x in enumerate(spec.intervals)]
+        if not intervals or any(x is None for x in intervals):
+            col.add("give one or more intervals", "design.intervals")
+    interval_opts = {"peak": peak, "trough": trough, "peak_limits": peak_limits,
+                     "trough_limits": trough_limits}
+    if intervals:
+        interval_opts["intervals"] = intervals
+    if method == "continuous":
+        if _need(col, method, plateau=plateau, clearance=cl, volume=v):
+            opts.update(clearance=cl, volume=v, plateau=plateau)
+        if spec.window is not None:
+            lo = q(spec.window[0], "concentration", "design.window[0]", nonnegative=True)
+            hi = q(spec.window[1], "concentration", "design.window[1]", positive=True)
+            if lo is not None and hi is not None and lo >= hi:
+                col.add(f"window low {lo:g} mg/L is not below high {hi:g} mg/L",
+                        "design.window", "[low, high] with low < high")
+            opts["window"] = (lo, hi)
+        lt = q(spec.loading_time, "time", "design.loading_time", nonnegative=True)
+        if lt is not None:
+            opts["loading_time"] = lt
+        if spec.within is not None:
+            if not 0 < spec.within < 1:
+                col.add(f"within must be a fraction in (0, 1), got {spec.within}",
+                        "design.within")
+            opts["within"] = spec.within
+        opts.pop("max_dose", None)
+        opts.pop("dose_step", None)
+    elif method == "intermittent":
+        t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
+        if _need(col, method, infusion_time=t_inf, clearance=cl, volume=v):
+            opts.update(clearance=cl, volume=v, infusion_time=t_inf)
+        if peak is None and peak_limits is None:
+            col.add("needs a peak target or limits", "design.peak", "peak, peak_min or peak_max")
+        if trough is None and trough_limits is None:
+            col.add("needs a trough target or limits", "design.trough",
+                    "trough, trough_min or trough_max")
+        opts.update(interval_opts)
+        for key in ("rate_step", "max_rate", "max_loading"):
+            opts.pop(key, None)
+    elif method == "proportional":
+        measured = q(spec.measured, "concentration", "design.measured", positive=True)
+        rate = q(spec.current_rate, "rate", "design.current_rate", positive=True)
+        dose = q(spec.current_dose, "amount", "design.current_dose", positive=True)
+        interval = q(spec.current_interval, "time", "design.current_interval", positive=True)
+        _need(col, method, measured=measured, plateau=plateau)
+        if (rate is None) == (dose is None):
+            col.add("give either current_rate or current_dose", "design.current_rate")
+        opts.update(measured=measured, target=plateau, current_rate=rate, current_dose=dose,
+                    interval=interval, clearance=cl, volume=v)
+        for key in ("max_rate", "max_dose", "max_loading", "max_loading_ratio"):
+            opts.pop(key, None)
+    elif method == "chiou":
+        rate = q(spec.rate, "rate", "design.rate", positive=True)
+        samples = [_sample(col, s, f"design.samples[{i}]")
+                   for i, s in enumerate(spec.samples or [])]
+        if len(samples) != 2:
+            col.add(f"Chiou's method takes exactly two levels, got {len(samples)}",
+                    "design.samples", "two { time, concentration } tables")
+        elif None not in samples:
+            (t1, c1), (t2, c2) = samples
+            if t2 <= t1:
+                col.add(f"the second level (at {t2:g} h) must be drawn after the first "
+                        f"(at {t1:g} h)", "design.samples", "levels in time order, apart")
+            opts.update(t1=t1, c1=c1, t2=t2, c2=c2)
+        if _need(col, method, rate=rate, plateau=plateau, volume=v):
+            opts.update(rate=rate, volume=v, target=plateau)
+        for key in ("dose_step", "max_rate", "max_dose", "max_loading", "max_loading_ratio"):
+            opts.pop(key, None)
+    elif method == "sawchuk_zaske":
+        dose = q(spec.dose, "amount", "design.dose", positive=True)
+        t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
+        interval = q(spec.interval, "time", "design.interval", positive=True)
+        ps = _sample(col, spec.peak_sample, "design.peak_sample")
+        ts = _sample(col, spec.trough_sample, "design.trough_sample")
+        _need(col, method, dose=dose, infusion_time=t_inf, interval=interval,
+              peak_sample=spec.peak_sample, trough_sample=spec.trough_sample)
+        if ps is not None and ts is not None:
+            if ts[1] >= ps[1]:
+                col.add(f"the trough level {ts[1]:g} mg/L is not below the peak level "
+                        f"{ps[1]:g} mg/L", "design.trough_sample.concentration")
+            if ts[0] == ps[0]:
+                col.add("the peak and trough are drawn at the same time", "design.trough_sample")
+            if t_inf is not None and ps[0] < t_inf:
+                col.add(f"the peak (at {ps[0]:g} h) is drawn before the infusion ends "
+                        f"({t_inf:g} h)", "design.peak_sample.time")
+            if 0 <= ts[0] < ps[0]:
+                col.add("the trough must be drawn after the peak, or before the dose "
+                        "(negative time)", "design.trough_sample.time")
+        if (peak is None and peak_limits is None) or (trough is None and trough_limits is None):
+            col.add("the new regimen needs peak and trough targets or limits", "design.peak")
+        pre = q(spec.pre_dose, "concentration", "design.pre_dose", nonnegative=True)
+        new_t = q(spec.new_infusion_time, "time", "design.new_infusion_time",
+                  nonnegative=True)
+        opts.update(dose=dose, infusion_time=t_inf, interval=interval,
+                    peak_level=ps[1] if ps else None, peak_time=ps[0] if ps else None,
+                    trough_level=ts[1] if ts else None, trough_time=ts[0] if ts else None,
+                    pre_dose_level=pre, new_infusion_time=new_t, **interval_opts)
+        if spec.steady_state is not None:
+            opts["steady_state"] = spec.steady_state
+        for key in ("rate_step", "max_rate", "max_loading", "max_loading_ratio"):
+            opts.pop(key, None)
+    return method, opts
+
+
+class DesignCaseSpec(_WithParameters):
+    """A ``[[scenarios]]`` entry read by ``pkcalc design``: parameters and a design table.
+
+    Predict-only keys (doses, times, target) are accepted and ignored, so one
+    file can serve both commands.
+    """
+
+    doses: list[Any] | None = None
+    times: Any = None
+    target: Any = None
+    design: DesignSpec
+
+    _resolved: DesignCase | None = PrivateAttr(default=None)
+
+    @model_validator(mode="after")
+    def _to_canonical(self) -> DesignCaseSpec:
+        col, weight, values = self.start_collecting()
+        cl, v = (None, None) if col.problems else resolve_partial(values, col)
+        method, opts = resolve_design(self.design, cl, v, col)
+        col.raise_if_any()
+        self._resolved = DesignCase(self.name, method, cl, v, opts, weight)
+        return self
+
+    @property
+    def resolved(self) -> DesignCase:
+        assert self._resolved is not None
+        return self._resolved
+
+
+def load_design_file(path: str | Path) -> ScenarioFile:
+    """Load the scenarios of a file that have a ``[scenarios.design]`` table."""
+    sf = load_items(path, DesignCaseSpec, keep=lambda raw: "design" in raw)
+    if not sf.scenarios and not sf.failures:
+        raise PkcalcInputError("no scenario has a [scenarios.design] table", file=str(path),
+                               field="design", expected="a [scenarios.design] table")
+    return sf

@@ -1,0 +1,221 @@
+"""The scenario file of ``pkcalc predict`` (DESIGN.md §5)."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from pydantic import Field, PrivateAttr, model_validator
+
+from .base import (
+    DoseEvent,
+    QuantityText,
+    ScenarioFile,
+    ScenarioInput,
+    Target,
+    _agree,
+    _Collector,
+    _Lenient,
+    _WithParameters,
+    load_items,
+    resolve_parameters,
+)
+
+
+class DoseSpec(_Lenient):
+    """A dose event as written: ``start`` and two of ``amount``, ``rate``, ``duration``."""
+
+    start: QuantityText
+    amount: QuantityText | None = None
+    rate: QuantityText | None = None
+    duration: QuantityText | None = None
+    every: QuantityText | None = None
+    count: int | None = None
+
+    def to_event(self, col: _Collector, where: str) -> DoseEvent | None:
+        """Canonical event; problems go to ``col`` with field names under ``where``."""
+        n0 = len(col.problems)
+        self.unknown_keys(col, f"{where}.")
+        if self.count is not None and self.count < 1:
+            col.add(f"count must be 1 or more, got {self.count}", f"{where}.count")
+        start = col.q(self.start, "time", f"{where}.start", nonnegative=True)
+        amount = col.q(self.amount, "amount", f"{where}.amount", nonnegative=True)
+        rate = col.q(self.rate, "rate", f"{where}.rate", nonnegative=True)
+        duration = col.q(self.duration, "time", f"{where}.duration", nonnegative=True)
+        every = col.q(self.every, "time", f"{where}.every", positive=True)
+        if len(col.problems) > n0:
+            return None
+        given = [n for n, v in (("amount", amount), ("rate", rate), ("duration", duration))
+                 if v is not None]
+        if given == ["duration"] or given == ["rate"] or not given:
+            col.add(
+                f"a dose needs two of amount, rate, duration (got {', '.join(given) or 'none'})",
+                where, "amount alone for a bolus, or two of amount / rate / duration",
+            )
+            return None
+        if rate is not None and duration is not None and amount is not None:
+            if not _agree(rate * duration, amount):
+                col.add(
+                    f"amount {amount:g} mg differs from rate x duration = {rate * duration:g} mg",
+                    f"{where}.amount", "only two of amount / rate / duration, or three that agree",
+                )
+                return None
+        elif rate is not None and duration is not None:
+            amount = rate * duration
+        elif rate is not None:  # amount and rate
+            if rate <= 0:
+                col.add("rate must be greater than zero when given with amount", f"{where}.rate")
+                return None
+            duration = amount / rate
+        elif duration is None:  # amount alone -> bolus
+            duration = 0.0
+        if rate is not None and duration == 0:
+            col.add("an infusion rate needs a duration greater than zero", f"{where}.duration")
+            return None
+        count = self.count if self.count is not None else 1
+        if count > 1 and every is None:
+            col.add(f"count = {count} needs 'every' (the interval)", f"{where}.every")
+            return None
+        if every is not None and self.count is None:
+            col.add("'every' needs 'count' (the number of doses)", f"{where}.count")
+            return None
+        return DoseEvent(start, amount, duration, every if count > 1 else None, count)
+
+
+class TimeRange(_Lenient):
+    """Evenly spaced times ``from``, ``from + step``, ... up to ``to`` (inclusive)."""
+
+    from_: QuantityText = Field(alias="from")
+    to: QuantityText
+    step: QuantityText
+
+
+class TargetSpec(_Lenient):
+    """A plateau target and/or a window ``[low, high]`` (concentrations)."""
+
+    plateau: QuantityText | None = None
+    window: list[QuantityText] | None = Field(default=None, min_length=2, max_length=2)
+
+    def to_target(self, col: _Collector) -> Target:
+        self.unknown_keys(col, "target.")
+        plateau = col.q(self.plateau, "concentration", "target.plateau", positive=True)
+        low = high = None
+        if self.window is not None:
+            low = col.q(self.window[0], "concentration", "target.window[0]", nonnegative=True)
+            high = col.q(self.window[1], "concentration", "target.window[1]", positive=True)
+            if low is not None and high is not None and low >= high:
+                col.add(f"window low {low:g} mg/L is not below high {high:g} mg/L",
+                        "target.window", "[low, high] with low < high")
+        return Target(plateau, low, high)
+
+
+MAX_TIMES = 1_000_000
+
+
+def _resolve_times(spec: list[QuantityText] | TimeRange | None, col: _Collector):
+    if spec is None:
+        return None
+    if isinstance(spec, TimeRange):
+        spec.unknown_keys(col, "times.")
+        t0 = col.q(spec.from_, "time", "times.from", nonnegative=True)
+        t1 = col.q(spec.to, "time", "times.to", nonnegative=True)
+        step = col.q(spec.step, "time", "times.step", positive=True)
+        if None in (t0, t1, step):
+            return None
+        if t1 < t0:
+            col.add(f"'to' ({t1:g} h) is before 'from' ({t0:g} h)", "times.to")
+            return None
+        n = math.floor((t1 - t0) / step * (1 + 1e-12)) + 1
+        if n > MAX_TIMES:
+            col.add(f"{n} time points is more than {MAX_TIMES}", "times.step", "a larger step")
+            return None
+        return t0 + step * np.arange(n)
+    values = [col.q(v, "time", f"times[{i}]", nonnegative=True) for i, v in enumerate(spec)]
+    if any(v is None for v in values):
+        return None
+    times = np.asarray(values, dtype=float)
+    if times.size == 0:
+        col.add("the list of times is empty", "times")
+        return None
+    bad = np.flatnonzero(np.diff(times) <= 0)
+    if bad.size:
+        col.add(f"times must increase; times[{bad[0] + 1}] is not after times[{bad[0]}]",
+                "times", "a strictly increasing list")
+        return None
+    return times
+
+
+class ScenarioSpec(_WithParameters):
+    """One ``[[scenarios]]`` entry of a scenario file (DESIGN.md §5).
+
+    Validation converts every quantity to canonical units and checks the
+    parameters and doses; the result is available as :attr:`resolved`.
+    """
+
+    doses: list[DoseSpec] = Field(default_factory=list)
+    times: list[QuantityText] | TimeRange | None = None
+    target: TargetSpec | None = None
+    design: dict[str, Any] | None = None
+
+    _resolved: ScenarioInput | None = PrivateAttr(default=None)
+
+    @model_validator(mode="after")
+    def _to_canonical(self) -> ScenarioSpec:
+        col, weight, values = self.start_collecting()
+        params = None if col.problems else resolve_parameters(values, col)
+        doses = []
+        if not self.doses:
+            col.add("no doses given", "doses", "a list of dose events")
+        for i, d in enumerate(self.doses):
+            ev = d.to_event(col, f"doses[{i}]")
+            if ev is not None:
+                doses.append(ev)
+        times = _resolve_times(self.times, col)
+        target = self.target.to_target(col) if self.target is not None else None
+        col.raise_if_any()
+        assert params is not None
+        self._resolved = ScenarioInput(
+            name=self.name,
+            clearance=params[0],
+            volume=params[1],
+            doses=tuple(doses),
+            times=times,
+            weight=weight,
+            target=target,
+            given=tuple(n for n, v in values.items() if v is not None),
+            extra={"design": self.design} if self.design is not None else {},
+        )
+        return self
+
+    @property
+    def resolved(self) -> ScenarioInput:
+        """The scenario in canonical units."""
+        assert self._resolved is not None
+        return self._resolved
+
+
+def load_scenario_file(path: str | Path, *, extra_keys: Iterable[str] = (),
+                       keep: Any = None) -> ScenarioFile:
+    """Load and validate a scenario file, keeping good scenarios when others fail.
+
+    Scenarios that hold only a ``[scenarios.design]`` table (no doses) are
+    left to ``pkcalc design`` and skipped here.
+
+    Returns
+    -------
+    ScenarioFile
+
+    Raises
+    ------
+    PkcalcInputError
+        When the file as a whole is unusable (missing, not TOML, no scenarios,
+        bad ``[output]`` table).  Problems of single scenarios are returned in
+        ``failures`` instead.
+    """
+    if keep is None:
+        def keep(raw: dict) -> bool:
+            return "doses" in raw or "design" not in raw
+    return load_items(path, ScenarioSpec, extra_keys=extra_keys, keep=keep)

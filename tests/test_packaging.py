@@ -1,0 +1,14 @@
+"""Every sub-package is listed for installation (a plain `pip install .` must work)."""
+
+from __future__ import annotations
+
+import tomllib
+
+from .conftest import REPO
+
+
+def test_all_subpackages_are_declared():
+    config = tomllib.loads((REPO / "pyproject.toml").read_text())
+    declared = set(config["tool"]["setuptools"]["packages"])
+    found = {"pkcalc." + p.parent.name for p in (REPO / "pkcalc").glob("*/__init__.py")}
+    assert found | {"pkcalc", "pkcalc.scenarios"} <= declared
