@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import re
 import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -35,6 +34,13 @@ EXAMPLES = {
 A scenario file holds a [scenarios.design] table per scenario, for designs
 (continuous, intermittent) and adjustments from measured levels
 (proportional, chiou, sawchuk_zaske); see scenarios/demo-design.toml.""",
+    "verify": """examples:
+  pkcalc verify scenarios/reference-cases.toml
+  pkcalc verify my-cases.toml --junit verify.xml
+  pkcalc verify my-cases.toml --json > verify.json
+
+exit code 0 when every check passes, 1 when any check fails, 2 when the file
+(or a case in it) cannot be used.""",
     "demo": """examples:
   pkcalc demo --out demo-output""",
 }
@@ -49,107 +55,32 @@ def _emit(text: str) -> None:
     sys.stdout.write(text if text.endswith("\n") else text + "\n")
 
 
-def slug(name: str) -> str:
-    """A file-name-safe version of a scenario or subject name."""
-    s = re.sub(r"[^A-Za-z0-9._-]+", "-", name).strip("-._")
-    return s[:60] or "item"
+def _finish(run, args: argparse.Namespace) -> int:
+    """Print the run (JSON or text), write --out files and --report, return its exit code."""
+    from .runner import write_outputs, write_report
 
-
-def unique_slugs(names: Sequence[str]) -> list[str]:
-    seen: dict[str, int] = {}
-    out = []
-    for n in names:
-        s = slug(n)
-        if s in seen:
-            seen[s] += 1
-            s = f"{s}-{seen[s]}"
-        else:
-            seen[s] = 1
-        out.append(s)
-    return out
-
-
-def check_not_input(outputs: Sequence[Path], inputs: Sequence[str | Path]) -> None:
-    """Refuse to write over an input file."""
-    ins = {Path(p).resolve() for p in inputs if p}
-    for out in outputs:
-        if Path(out).resolve() in ins:
-            raise PkcalcInputError("refusing to overwrite an input file", file=str(out),
-                                   expected="an output path that is not one of the inputs")
+    out = getattr(args, "out", None)
+    report_path = getattr(args, "report", None)
+    if getattr(args, "json", False):
+        _emit(__import__("pkcalc.report", fromlist=["dumps"]).dumps(run.doc))
+    else:
+        _emit(run.text)
+    if out:
+        written = write_outputs(run, out)
+        if not getattr(args, "json", False):
+            _emit(f"wrote {len(written)} files to {out}")
+    if report_path:
+        write_report([run], report_path, options=" ".join(args.argv))
+        if not getattr(args, "json", False):
+            _emit(f"wrote the report to {report_path}")
+    return run.code
 
 
 # --------------------------------------------------------------------------- predict
-def _predict_files(scenario_path: str, out_dir: str | None, as_json: bool,
-                   report_path: str | None = None) -> int:
-    from . import report
-    from .predict import predict_scenario
-    from .schema import load_scenario_file
-
-    sfile = load_scenario_file(scenario_path)
-    if not sfile.scenarios:
-        raise PkcalcInputError(
-            [p for _, err in sfile.failures for p in err.problems]
-        )
-    conv = report.UnitConverter(sfile.output.units())
-    preds = [predict_scenario(s) for s in sfile.scenarios]
-    doc = report.predict_json(preds, conv, title=sfile.title, failures=sfile.failures)
-    if as_json:
-        _emit(report.dumps(doc))
-    else:
-        _emit(report.predict_text(preds, conv, title=sfile.title, failures=sfile.failures,
-                                  colour=_colour()))
-    if out_dir:
-        written = write_predict_outputs(Path(out_dir), preds, conv, doc, [scenario_path])
-        if not as_json:
-            _emit(f"wrote {len(written)} files to {out_dir}")
-    return EXIT_PARTIAL if sfile.failures else EXIT_OK
-
-
-def write_predict_outputs(out: Path, preds, conv, doc, inputs) -> list[Path]:
-    """profile.csv and profile.png per scenario, summary.csv, predict.json, CAUTION.txt."""
-    import pandas as pd
-
-    from . import report
-    from .plots import profile_figure, save_figure
-
-    slugs = unique_slugs([p.name for p in preds])
-    targets = [out / "predict.json", out / "summary.csv", out / "CAUTION.txt"]
-    targets += [out / s / f for s in slugs for f in ("profile.csv", "profile.png")]
-    check_not_input(targets, inputs)
-    written = [report.write_caution_file(out)]
-    rows = []
-    tu, cu = conv.unit("time"), conv.unit("concentration")
-    for pred, s in zip(preds, slugs, strict=True):
-        frame = pd.DataFrame({f"time [{tu}]": conv(pred.time, "time"),
-                              f"concentration [{cu}]": conv(pred.concentration,
-                                                            "concentration")})
-        written.append(report.write_atomic(out / s / "profile.csv", frame.to_csv(index=False)))
-        written.append(save_figure(profile_figure(pred, conv), out / s / "profile.png"))
-        d = report.predict_scenario_dict(pred, conv)
-        row = {"scenario": pred.name, "folder": s}
-        row.update({f"{k} [{conv.unit(_PARAM_KIND[k])}]": v for k, v in d["parameters"].items()})
-        row[f"plateau_concentration [{cu}]"] = d["plateau_concentration"]
-        for f, t in d["time_to_fraction"].items():
-            row[f"time_to_{float(f) * 100:g}pct [{tu}]"] = t
-        ss = d["steady_state"] or {}
-        for key in ("peak", "trough", "average"):
-            row[f"steady_state_{key} [{cu}]"] = ss.get(key)
-        row["flags"] = " | ".join(pred.flags)
-        row["warnings"] = " | ".join(pred.warnings)
-        rows.append(row)
-    written.append(report.write_atomic(out / "summary.csv",
-                                       pd.DataFrame(rows).to_csv(index=False)))
-    written.append(report.write_atomic(out / "predict.json", report.dumps(doc)))
-    return written
-
-
-_PARAM_KIND = {"clearance": "clearance", "volume": "volume",
-               "elimination_rate": "elimination_rate", "half_life": "time",
-               "time_constant": "time"}
-
-
 def cmd_predict(args: argparse.Namespace) -> int:
-    return _predict_files(args.scenario, args.out, args.json)
+    from .runner import run_predict
+
+    return _finish(run_predict(args.scenario, colour=_colour()), args)
 
 
 # --------------------------------------------------------------------------- design
@@ -193,7 +124,8 @@ def _design_from_options(args: argparse.Namespace):
 
 
 def cmd_design(args: argparse.Namespace) -> int:
-    from .schema import OutputUnits, load_design_file
+    from .runner import run_design
+    from .schema import load_design_file
 
     quick = any(getattr(args, k) is not None for k in (*_DESIGN_OPTIONS, *_PARAM_OPTIONS,
                                                         "window", "intervals"))
@@ -203,67 +135,27 @@ def cmd_design(args: argparse.Namespace) -> int:
                                         "... --half-life ... --plateau ...")
     if args.scenario:
         sfile = load_design_file(args.scenario)
-        return _design_run(sfile.scenarios, sfile.failures, sfile.title, sfile.output.units(),
-                           [args.scenario], args.json, args.out)
-    if quick:
-        return _design_run([_design_from_options(args)], [], None, OutputUnits().units(), [],
-                           args.json, args.out)
-    raise PkcalcInputError("nothing to design", expected="a scenario file, or "
-                           "--clearance/--half-life with --plateau or --peak/--trough")
-
-
-def _design_run(cases, failures, title, units, inputs, as_json: bool, out_dir) -> int:
-    from . import report
-    from .design import run_design
-
-    results, run_failures = [], list(failures)
-    for case in cases:
-        try:
-            results.append(run_design(case))
-        except ValueError as exc:  # infeasible requests the schema could not foresee
-            label = f"scenario '{case.name}'"
-            run_failures.append((label, PkcalcInputError(
-                str(exc), file=inputs[0] if inputs else None, item=label)))
-    if not results:
-        raise PkcalcInputError([p for _, err in run_failures for p in err.problems])
-    conv = report.UnitConverter(units)
-    doc = report.design_json(results, conv, title=title, failures=run_failures)
-    if as_json:
-        _emit(report.dumps(doc))
+        run = run_design(sfile.scenarios, failures=sfile.failures, title=sfile.title,
+                         units=sfile.output.units(), inputs=[args.scenario], colour=_colour())
+    elif quick:
+        run = run_design([_design_from_options(args)], colour=_colour())
     else:
-        _emit(report.design_text(results, conv, title=title, failures=run_failures,
-                                 colour=_colour()))
-    if out_dir:
-        written = write_design_outputs(Path(out_dir), results, conv, doc, inputs)
-        if not as_json:
-            _emit(f"wrote {len(written)} files to {out_dir}")
-    return EXIT_PARTIAL if run_failures else EXIT_OK
+        raise PkcalcInputError("nothing to design", expected="a scenario file, or "
+                               "--clearance/--half-life with --plateau or --peak/--trough")
+    return _finish(run, args)
 
 
-def write_design_outputs(out: Path, results, conv, doc, inputs) -> list[Path]:
-    """design.json, regimens.csv, one plot per design, CAUTION.txt."""
-    import pandas as pd
-
+# --------------------------------------------------------------------------- verify
+def cmd_verify(args: argparse.Namespace) -> int:
     from . import report
-    from .plots import design_figure, save_figure
+    from .runner import check_not_input, run_verify
+    from .verify import junit_xml
 
-    slugs = unique_slugs([r.name for r in results])
-    targets = [out / "design.json", out / "regimens.csv", out / "CAUTION.txt"]
-    targets += [out / f"design-{s}.png" for s in slugs]
-    check_not_input(targets, inputs)
-    written = [report.write_caution_file(out)]
-    frames = []
-    for res, s in zip(results, slugs, strict=True):
-        frame = res.to_frame()
-        frame.insert(0, "scenario", res.name)
-        frames.append(frame)
-        fig = design_figure(res, conv)
-        if fig is not None:
-            written.append(save_figure(fig, out / f"design-{s}.png"))
-    written.append(report.write_atomic(out / "regimens.csv",
-                                       pd.concat(frames).to_csv(index=False)))
-    written.append(report.write_atomic(out / "design.json", report.dumps(doc)))
-    return written
+    run, result = run_verify(args.cases, colour=_colour())
+    if args.junit:
+        check_not_input([Path(args.junit)], [args.cases])
+        report.write_atomic(args.junit, junit_xml(result))
+    return _finish(run, args)
 
 
 def demo_path(name: str = "demo.toml") -> Path:
@@ -274,15 +166,25 @@ def demo_path(name: str = "demo.toml") -> Path:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    """Predict, design and verify the shipped invented examples; one HTML report."""
+    from .runner import run_design, run_predict, run_verify, write_outputs, write_report
     from .schema import load_design_file
 
     out = Path(args.out or "pkcalc-demo")
-    codes = [_predict_files(str(demo_path()), str(out / "predict"), False)]
+    runs = [run_predict(demo_path("demo.toml"), colour=_colour())]
     design_file = demo_path("demo-design.toml")
     sfile = load_design_file(design_file)
-    codes.append(_design_run(sfile.scenarios, sfile.failures, sfile.title,
-                             sfile.output.units(), [str(design_file)], False, out / "design"))
-    return max(codes)
+    runs.append(run_design(sfile.scenarios, failures=sfile.failures, title=sfile.title,
+                           units=sfile.output.units(), inputs=[str(design_file)],
+                           colour=_colour()))
+    runs.append(run_verify(demo_path("reference-cases.toml"), colour=_colour())[0])
+    for run in runs:
+        _emit(run.text)
+        write_outputs(run, out / run.command)
+    path = write_report(runs, out / "report.html", title="pkcalc demo (invented data)",
+                        options=" ".join(args.argv))
+    _emit(f"wrote the demo outputs to {out}/ and the report to {path}")
+    return max(run.code for run in runs)
 
 
 # --------------------------------------------------------------------------- parser
@@ -310,6 +212,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("scenario", metavar="SCENARIO.toml", help="scenario file (DESIGN.md §5)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--out", metavar="DIR", help="write CSV, JSON and PNG files to DIR")
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
 
     p = _add(sub, "design", cmd_design,
              "Design a regimen to a target, or adjust one from measured levels.")
@@ -338,6 +241,15 @@ def build_parser() -> argparse.ArgumentParser:
                    help="fraction of the product that is active drug (default 1)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--out", metavar="DIR", help="write CSV, JSON and PNG files to DIR")
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+
+    p = _add(sub, "verify", cmd_verify,
+             "Recompute worked examples and report PASS/FAIL per expected value.")
+    p.add_argument("cases", metavar="CASES.toml", help="cases file (DESIGN.md §5)")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.add_argument("--junit", metavar="FILE.xml", help="also write JUnit XML for CI systems")
+    p.add_argument("--out", metavar="DIR", help="write verify.csv, verify.json to DIR")
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
 
     p = _add(sub, "demo", cmd_demo, "Run the invented demo scenario end to end.")
     p.add_argument("--out", metavar="DIR", help="output folder (default: pkcalc-demo)")
@@ -348,6 +260,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``pkcalc`` console script."""
     parser = build_parser()
     args = parser.parse_args(argv)
+    args.argv = list(sys.argv[1:] if argv is None else argv)
     try:
         return args.func(args)
     except PkcalcInputError as exc:

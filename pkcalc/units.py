@@ -33,6 +33,7 @@ from .errors import PkcalcInputError
 __all__ = [
     "CANONICAL",
     "KINDS",
+    "KIND_OF",
     "UnitSpec",
     "display_factor",
     "parse_header",
@@ -72,6 +73,26 @@ KINDS: dict[str, str] = {
     "weight": "a body weight such as 'kg', 'g'",
     "auc": "an area such as 'mg*h/L'",
     "aumc": "a moment area such as 'mg*h^2/L'",
+}
+
+#: The kind of quantity of every named result pkcalc reports (one vocabulary).
+KIND_OF: dict[str, str] = {
+    **dict.fromkeys(
+        ("plateau_concentration", "concentration", "peak", "trough", "average", "plateau",
+         "level", "highest", "lowest_after_loading", "first_dose_peak",
+         "peak_at_end_of_infusion", "trough_at_end_of_interval", "pre_dose_level",
+         "peak_concentration", "last_concentration", "target"), "concentration"),
+    **dict.fromkeys(
+        ("time_to_fraction", "half_life", "time_constant", "interval", "infusion_time",
+         "loading_time", "pause_before_new_rate", "time_to_within_5pct", "peak_time",
+         "last_time", "terminal_half_life", "mean_residence_time", "time"), "time"),
+    **dict.fromkeys(("clearance", "clearance_exact", "clearance_chiou"), "clearance"),
+    **dict.fromkeys(("volume", "volume_terminal", "volume_steady_state"), "volume"),
+    **dict.fromkeys(("elimination_rate", "terminal_slope"), "elimination_rate"),
+    **dict.fromkeys(("rate", "rate_for_target"), "rate"),
+    **dict.fromkeys(("dose", "loading_dose", "loading_dose_for_target", "amount"), "amount"),
+    **dict.fromkeys(("auc_24", "auc_to_last", "auc_to_infinity", "auc_interval"), "auc"),
+    "weight": "weight",
 }
 
 #: Kinds that may be given per kilogram of body weight.

@@ -27,6 +27,7 @@ from .design import (
     design_text,
 )
 from .predict import predict_json, predict_scenario_dict, predict_scenario_text, predict_text
+from .verify import verify_json, verify_text
 
 __all__ = [
     "CAUTION",
@@ -48,6 +49,8 @@ __all__ = [
     "predict_scenario_dict",
     "predict_scenario_text",
     "predict_text",
+    "verify_json",
+    "verify_text",
     "warnings_text",
     "write_atomic",
     "write_caution_file",

@@ -149,6 +149,12 @@ def failures_text(failures) -> str:
 
 
 # --------------------------------------------------------------------------- files
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def write_atomic(path: str | Path, data: str | bytes) -> Path:
     """Write a file atomically: a temporary file in the same folder, then rename."""
     path = Path(path)
@@ -158,6 +164,7 @@ def write_atomic(path: str | Path, data: str | bytes) -> Path:
     try:
         with os.fdopen(fd, mode, **({} if mode == "wb" else {"encoding": "utf-8"})) as fh:
             fh.write(data)
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual permissions
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)

@@ -6,6 +6,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from .._format import fmt, format_table
+from ..units import KIND_OF
 from .base import (
     UnitConverter,
     _num,
@@ -20,21 +21,13 @@ DESIGN_CAUTION = (
     "local protocols. It is not an order."
 )
 
-_ESTIMATE_KIND = {
-    "clearance": "clearance", "clearance_exact": "clearance", "clearance_chiou": "clearance",
-    "volume": "volume", "elimination_rate": "elimination_rate", "half_life": "time",
-    "pause_before_new_rate": "time", "time_to_within_target_without_loading": "time",
-    "peak_at_end_of_infusion": "concentration", "trough_at_end_of_interval": "concentration",
-    "pre_dose_level": "concentration",
-}
-_PREDICTED_KIND = {"auc_24": "auc", "time_to_within_5pct": "time"}
-_REGIMEN_KIND = {"rate": "rate", "loading_dose": "amount", "loading_time": "time",
-                 "dose": "amount", "interval": "time", "infusion_time": "time"}
+_REGIMEN_KEYS = ("rate", "loading_dose", "loading_time", "dose", "interval", "infusion_time")
 
 
-def _conv_any(conv: UnitConverter, key: str, value: Any, table: Mapping[str, str],
+def _conv_any(conv: UnitConverter, key: str, value: Any,
               default: str | None = "concentration") -> Any:
-    kind = table.get(key, default)
+    """Convert a named result to display units by its kind (``units.KIND_OF``)."""
+    kind = KIND_OF.get(key, default)
     if value is None or kind is None:
         return _num(value)
     return _num(conv(value, kind))
@@ -42,15 +35,14 @@ def _conv_any(conv: UnitConverter, key: str, value: Any, table: Mapping[str, str
 
 def design_regimen_dict(r, conv: UnitConverter, scenario: str) -> dict[str, Any]:
     out: dict[str, Any] = {"scenario": scenario, "label": r.label}
-    for key, kind in _REGIMEN_KIND.items():
-        out[key] = _num(conv(getattr(r, key), kind))
+    for key in _REGIMEN_KEYS:
+        out[key] = _num(conv(getattr(r, key), KIND_OF[key]))
     predicted = {k: None for k in ("plateau", "peak", "trough", "average")}
-    predicted.update({k: _conv_any(conv, k, v, _PREDICTED_KIND) for k, v in r.predicted.items()})
+    predicted.update({k: _conv_any(conv, k, v) for k, v in r.predicted.items()})
     out["predicted"] = predicted
     out["meets_target"] = r.meets_target
     out["flags"] = list(r.flags)
-    out["exact"] = {k: _conv_any(conv, k, v, {**_REGIMEN_KIND, **_ESTIMATE_KIND}, None)
-                    for k, v in r.exact.items()}
+    out["exact"] = {k: _conv_any(conv, k, v, None) for k, v in r.exact.items()}
     return out
 
 
@@ -59,9 +51,9 @@ def _target_dict(target: Mapping[str, Any], conv: UnitConverter) -> dict[str, An
     for k, v in target.items():
         kind = "time" if k == "infusion_time" else "concentration"
         if isinstance(v, list | tuple):
-            out[k] = [_conv_any(conv, k, x, {}, kind) for x in v]
+            out[k] = [_num(conv(x, kind)) for x in v]
         else:
-            out[k] = _conv_any(conv, k, v, {}, kind)
+            out[k] = _num(conv(v, kind))
     return out
 
 
@@ -77,8 +69,7 @@ def design_json(results, conv: UnitConverter, *, title: str | None = None,
             "name": res.name, "method": res.method,
             "parameters": {"clearance": _num(conv(res.clearance, "clearance")),
                            "volume": _num(conv(res.volume, "volume"))},
-            "estimates": {k: _conv_any(conv, k, v, _ESTIMATE_KIND, None)
-                          for k, v in res.estimates.items()},
+            "estimates": {k: _conv_any(conv, k, v, None) for k, v in res.estimates.items()},
             "target": _target_dict(res.target, conv),
             "salt_factor": res.salt_factor,
             "regimens": regs, "notes": list(res.notes), "warnings": list(res.warnings),
@@ -98,7 +89,7 @@ def design_result_text(res, conv: UnitConverter) -> str:
     if res.estimates:
         rows = []
         for k, v in res.estimates.items():
-            kind = _ESTIMATE_KIND.get(k)
+            kind = KIND_OF.get(k)
             rows.append([k.replace("_", " "), conv(v, kind) if kind else v,
                          u(kind) if kind else ("%" if k.endswith("percent") else "")])
         lines += ["Individual estimates from the measured levels:",

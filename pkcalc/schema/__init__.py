@@ -25,6 +25,7 @@ from .base import (
     resolve_partial,
     validation_problems,
 )
+from .cases import CaseSpec, Expectation, VerifyCase, load_cases_file
 from .design import DESIGN_METHODS, DesignCase, DesignCaseSpec, DesignSpec, load_design_file
 from .scenario import DoseSpec, ScenarioSpec, TargetSpec, TimeRange, load_scenario_file
 
@@ -32,11 +33,13 @@ __all__ = [
     "AGREEMENT_RTOL",
     "DESIGN_METHODS",
     "PARAMETER_NAMES",
+    "CaseSpec",
     "DesignCase",
     "DesignCaseSpec",
     "DesignSpec",
     "DoseEvent",
     "DoseSpec",
+    "Expectation",
     "OutputUnits",
     "ScenarioFile",
     "ScenarioInput",
@@ -44,7 +47,9 @@ __all__ = [
     "Target",
     "TargetSpec",
     "TimeRange",
+    "VerifyCase",
     "expand_events",
+    "load_cases_file",
     "load_design_file",
     "load_items",
     "load_scenario_file",

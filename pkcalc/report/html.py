@@ -1,0 +1,224 @@
+"""Self-contained HTML reports (jinja2 with autoescaping).
+
+A report is built from the JSON document of a run (so its numbers are the
+JSON numbers), figures rendered to base64 PNG, the input files (text and
+SHA-256) and the options.  Nothing is fetched: no scripts, fonts, styles or
+images from anywhere else.  All user text is escaped by the template engine.
+"""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import math
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from .. import __version__
+from .._format import fmt
+from .base import CAUTION, CAUTION_SHORT, dumps
+
+__all__ = [
+    "ASSUMPTIONS",
+    "HtmlReport",
+    "design_sections",
+    "figure_item",
+    "input_items",
+    "predict_sections",
+    "render_html",
+    "table_item",
+    "verify_sections",
+]
+
+#: The one-compartment linear model's assumptions, and when they fail.
+ASSUMPTIONS = [
+    "One well-stirred compartment: the drug distributes instantly. Drugs with a distinct "
+    "distribution phase (two or more compartments) show early levels above the prediction "
+    "after a bolus or short infusion, and a terminal half-life longer than the fitted one.",
+    "Linear (first-order) elimination: clearance does not change with concentration. "
+    "Saturable elimination (for example phenytoin-like kinetics) makes levels rise more than "
+    "in proportion to the dose, and proportional adjustments under-shoot.",
+    "Constant parameters over time: changing kidney or liver function, interacting drugs, "
+    "growth or illness change clearance and volume during a course.",
+    "Doses given as stated: actual infusion times, line dead-volume, missed or late doses "
+    "and sampling-time errors are not modelled.",
+    "Intravenous input only: no absorption phase.",
+    "Concentrations are total plasma levels; protein binding changes are not modelled.",
+]
+
+
+@dataclass
+class HtmlReport:
+    """What goes into one report file."""
+
+    title: str
+    command: str
+    sections: list[dict[str, Any]] = field(default_factory=list)
+    inputs: list[dict[str, Any]] = field(default_factory=list)
+    files: list[dict[str, str]] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    options: str = ""
+    seed: int | None = None
+    subtitle: str | None = None
+    documents: dict[str, Any] = field(default_factory=dict)
+
+
+# --------------------------------------------------------------------------- items
+def _cell(value: Any) -> dict[str, Any]:
+    if isinstance(value, bool) or value is None or isinstance(value, str):
+        return {"text": fmt(value), "num": False}
+    if isinstance(value, int | float):
+        return {"text": fmt(value), "num": not (isinstance(value, float) and math.isnan(value))}
+    return {"text": str(value), "num": False}
+
+
+def table_item(headers: list[str], rows: list[list[Any]], caption: str = "") -> dict[str, Any]:
+    """A table item; numbers are shown to 4 significant figures."""
+    return {"kind": "table", "caption": caption, "headers": headers,
+            "rows": [[_cell(c) for c in row] for row in rows]}
+
+
+def figure_item(png: bytes, caption: str) -> dict[str, Any]:
+    """A figure item from PNG bytes (embedded as base64)."""
+    return {"kind": "figure", "caption": caption, "data": base64.b64encode(png).decode("ascii")}
+
+
+def lines_item(kind: str, lines: list[str]) -> dict[str, Any]:
+    return {"kind": kind, "lines": list(lines)}
+
+
+def input_items(paths: list[str | Path]) -> tuple[list[dict[str, Any]], list[dict[str, str]]]:
+    """The input files as text blocks, and their names with SHA-256."""
+    items, files = [], []
+    for p in paths:
+        data = Path(p).read_bytes()
+        files.append({"name": str(p), "sha256": hashlib.sha256(data).hexdigest()})
+        text = data.decode("utf-8", errors="replace")
+        if len(text) > 200_000:
+            text = text[:200_000] + "\n... (truncated)"
+        items.append({"kind": "pre", "caption": f"{Path(p).name} (as given, with its units)",
+                      "text": text, "open": len(text) < 1500})
+    return items, files
+
+
+# --------------------------------------------------------------------------- sections
+def predict_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
+    """Report sections of a predict JSON document (one per scenario)."""
+    u = doc["units"]
+    out = []
+    for sc in doc["scenarios"]:
+        p = sc["parameters"]
+        rows = [
+            ["clearance", p["clearance"], u["clearance"]],
+            ["volume", p["volume"], u["volume"]],
+            ["elimination rate constant", p["elimination_rate"], u["elimination_rate"]],
+            ["half-life", p["half_life"], u["time"]],
+            ["time constant (V/CL)", p["time_constant"], u["time"]],
+            ["plateau", sc["plateau_concentration"], u["concentration"]],
+        ]
+        rows += [[f"time to {float(f):.0%} of plateau", t, u["time"]]
+                 for f, t in sc["time_to_fraction"].items()]
+        ss = sc["steady_state"]
+        if ss:
+            rows += [["steady-state peak", ss["peak"], u["concentration"]],
+                     ["steady-state trough", ss["trough"], u["concentration"]],
+                     ["steady-state average", ss["average"], u["concentration"]]]
+        items = [table_item(["quantity", "value", "unit"], rows, "Parameters and plateau"),
+                 lines_item("notes", [f"plateau basis: {sc['plateau_basis']}"])]
+        if sc["target"]:
+            t = sc["target"]
+            target_rows = []
+            if t["plateau"] is not None:
+                target_rows.append(["target plateau", t["plateau"], u["concentration"]])
+            if t["window"]:
+                target_rows += [["window low", t["window"][0], u["concentration"]],
+                                ["window high", t["window"][1], u["concentration"]]]
+            items.append(table_item(["target", "value", "unit"], target_rows, "Target"))
+            items.append(lines_item("notes", ["target check: all met"] if not sc["flags"]
+                                    else []))
+        if sc["flags"]:
+            items.append(lines_item("flags", sc["flags"]))
+        if sc["warnings"]:
+            items.append(lines_item("warnings", sc["warnings"]))
+        if sc["name"] in figures:
+            items.append(figure_item(figures[sc["name"]], f"Predicted course: {sc['name']}"))
+        out.append({"heading": f"Prediction: {sc['name']}", "blocks": items})
+    return out
+
+
+def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
+    """Report sections of a design JSON document (one per design)."""
+    u = doc["units"]
+    out = []
+    for d in doc["designs"]:
+        items: list[dict[str, Any]] = [lines_item("warnings", [doc["design_caution"]])]
+        items.append(lines_item("text", [
+            f"method: {d['method'].replace('_', ' ')}; parameters used: clearance "
+            f"{fmt(d['parameters']['clearance'])} {u['clearance']}, volume "
+            f"{fmt(d['parameters']['volume'])} {u['volume']}"]))
+        if d["estimates"]:
+            items.append(table_item(["estimate", "value"], [[k.replace("_", " "), v] for k, v in
+                                                             d["estimates"].items()],
+                                    "Individual estimates from the measured levels"))
+        rows = []
+        for i, r in enumerate(d["regimens"], 1):
+            pr = r["predicted"]
+            rows.append([i, r["label"], r["rate"], r["loading_dose"], r["dose"], r["interval"],
+                         r["infusion_time"], pr.get("peak"), pr.get("trough"),
+                         pr.get("average") if pr.get("average") is not None else pr.get("level"),
+                         "meets target" if r["meets_target"] else "FLAG"])
+        items.append(table_item(
+            ["#", "regimen", f"rate [{u['rate']}]", f"loading [{u['amount']}]",
+             f"dose [{u['amount']}]", f"every [{u['time']}]", f"infusion [{u['time']}]",
+             f"peak [{u['concentration']}]", f"trough [{u['concentration']}]",
+             f"average or plateau [{u['concentration']}]", "check"], rows,
+            "Proposed regimens, rounded and re-predicted at steady state"))
+        flags = [f"#{i} {f}" for i, r in enumerate(d["regimens"], 1) for f in r["flags"]]
+        if flags:
+            items.append(lines_item("flags", flags))
+        items.append(lines_item("notes", d["notes"]))
+        if d["warnings"]:
+            items.append(lines_item("warnings", d["warnings"]))
+        if d["name"] in figures:
+            items.append(figure_item(figures[d["name"]], f"Proposed regimens: {d['name']}"))
+        out.append({"heading": f"Design: {d['name']}", "blocks": items})
+    return out
+
+
+def verify_sections(doc: dict[str, Any]) -> list[dict[str, Any]]:
+    """One section with a table per case."""
+    items: list[dict[str, Any]] = [lines_item("text", [
+        f"{doc['passed']} checks passed, {doc['failed']} failed."])]
+    for case in doc["cases"]:
+        items.append({"kind": "heading", "text": case["name"]})
+        items.append(lines_item("notes", [f"source: {case['source']}"]))
+        items.append(table_item(
+            ["quantity", "expected", "computed", "unit", "tolerance", "result"],
+            [[c["quantity"], c["expected"], c["computed"], c["unit"], c["tolerance"],
+              "PASS" if c["passed"] else "FAIL"] for c in case["checks"]]))
+    return [{"heading": "Verification against worked examples", "blocks": items}]
+
+
+# --------------------------------------------------------------------------- render
+def render_html(report: HtmlReport) -> str:
+    """The report as one self-contained HTML document."""
+    from jinja2 import Environment, PackageLoader, select_autoescape
+
+    env = Environment(loader=PackageLoader("pkcalc", "templates"),
+                      autoescape=select_autoescape(["html"], default=True))
+    template = env.get_template("report.html")
+    caution_lines = [CAUTION.removeprefix("CAUTION: ")]
+    if any(k == "design" for k in report.documents):
+        caution_lines.append(report.documents["design"]["design_caution"])
+    json_text = dumps(report.documents if len(report.documents) != 1
+                      else next(iter(report.documents.values())))
+    return template.render(
+        title=report.title, subtitle=report.subtitle, caution=caution_lines,
+        caution_short=CAUTION_SHORT, sections=report.sections, inputs=report.inputs,
+        files=report.files, warnings=report.warnings, assumptions=ASSUMPTIONS,
+        json_text=json_text, version=__version__, command=report.command,
+        options=report.options, seed=report.seed,
+        generated=datetime.now(UTC).strftime("%Y-%m-%d %H:%M:%S"),
+    )

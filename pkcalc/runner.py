@@ -1,0 +1,272 @@
+"""Command runs: load inputs, compute, build the JSON document, the terminal text,
+the files of ``--out`` and the sections of an HTML report.  Nothing here prints;
+:mod:`pkcalc.cli` decides what goes where.
+
+Each ``run_*`` function returns a :class:`Run`.  Figures are drawn lazily and
+once, for ``--out`` and ``--report`` alike.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from functools import cached_property
+from pathlib import Path
+from typing import Any
+
+from . import report
+from .errors import PkcalcInputError
+
+__all__ = ["Run", "check_not_input", "run_design", "run_predict", "run_verify",
+           "unique_slugs", "write_outputs", "write_report"]
+
+EXIT_OK, EXIT_PARTIAL, EXIT_INPUT = 0, 1, 2
+
+
+def slug(name: str) -> str:
+    """A file-name-safe version of a scenario or subject name."""
+    import re
+
+    s = re.sub(r"[^A-Za-z0-9._-]+", "-", name).strip("-._")
+    return s[:60] or "item"
+
+
+def unique_slugs(names: Sequence[str]) -> list[str]:
+    """File-name-safe names, made unique with a counter."""
+    seen: dict[str, int] = {}
+    out = []
+    for n in names:
+        s = slug(n)
+        if s in seen:
+            seen[s] += 1
+            s = f"{s}-{seen[s]}"
+        else:
+            seen[s] = 1
+        out.append(s)
+    return out
+
+
+def check_not_input(outputs: Sequence[Path], inputs: Sequence[str | Path]) -> None:
+    """Refuse to write over an input file."""
+    ins = {Path(p).resolve() for p in inputs if p}
+    for out in outputs:
+        if Path(out).resolve() in ins:
+            raise PkcalcInputError("refusing to overwrite an input file", file=str(out),
+                                   expected="an output path that is not one of the inputs")
+
+
+@dataclass
+class Run:
+    """The outcome of one command, before anything is printed or written.
+
+    Attributes
+    ----------
+    command : str
+    code : int
+        Exit code (0, 1 or 2).
+    doc : dict
+        The JSON document.
+    text : str
+        Terminal output (caution first).
+    inputs : list of str
+        Input files (never overwritten; hashed in reports).
+    title : str
+    figure_factory : callable
+        ``() -> dict[name, Figure]``; called once, lazily.
+    file_writer : callable
+        ``(out_dir, pngs) -> list[Path]``: the command's ``--out`` files.
+    section_builder : callable
+        ``(pngs) -> list[dict]``: HTML report sections.
+    seed : int or None
+    """
+
+    command: str
+    code: int
+    doc: dict[str, Any]
+    text: str
+    inputs: list[str]
+    title: str
+    figure_factory: Callable[[], dict[str, Any]] = dict
+    file_writer: Callable[[Path, dict[str, bytes]], list[Path]] | None = None
+    section_builder: Callable[[dict[str, bytes]], list[dict[str, Any]]] = lambda _p: []
+    seed: int | None = None
+    warnings: list[str] = field(default_factory=list)
+
+    @cached_property
+    def pngs(self) -> dict[str, bytes]:
+        """Every figure of the run as PNG bytes (drawn once)."""
+        from .plots import figure_bytes
+
+        return {name: figure_bytes(fig) for name, fig in self.figure_factory().items()
+                if fig is not None}
+
+
+def write_outputs(run: Run, out_dir: str | Path) -> list[Path]:
+    """``CAUTION.txt`` and the command's files, atomically; never over an input."""
+    out = Path(out_dir)
+    check_not_input([out / "CAUTION.txt"], run.inputs)
+    written = [report.write_caution_file(out)]
+    if run.file_writer is not None:
+        written += run.file_writer(out, run.pngs)
+    return written
+
+
+def write_report(runs: Sequence[Run], path: str | Path, *, title: str | None = None,
+                 options: str = "") -> Path:
+    """One self-contained HTML report of one or more runs."""
+    from .report.html import HtmlReport, input_items, render_html
+
+    inputs = [p for r in runs for p in r.inputs]
+    check_not_input([Path(path)], inputs)
+    items, files = input_items(inputs)
+    rep = HtmlReport(
+        title=title or runs[0].title, command=" + ".join(r.command for r in runs),
+        sections=[s for r in runs for s in r.section_builder(r.pngs)], inputs=items,
+        files=files, options=options,
+        seed=next((r.seed for r in runs if r.seed is not None), None),
+        documents={r.command: r.doc for r in runs},
+        warnings=[w for r in runs for w in r.warnings],
+    )
+    return report.write_atomic(path, render_html(rep))
+
+
+# --------------------------------------------------------------------------- predict
+_PARAM_KIND = {"clearance": "clearance", "volume": "volume",
+               "elimination_rate": "elimination_rate", "half_life": "time",
+               "time_constant": "time"}
+
+
+def run_predict(scenario_path: str | Path, *, colour: bool = False) -> Run:
+    """``pkcalc predict``: every good scenario of the file."""
+    from .predict import predict_scenario
+    from .report.html import predict_sections
+    from .schema import load_scenario_file
+
+    sfile = load_scenario_file(scenario_path)
+    if not sfile.scenarios:
+        raise PkcalcInputError([p for _, err in sfile.failures for p in err.problems])
+    conv = report.UnitConverter(sfile.output.units())
+    preds = [predict_scenario(s) for s in sfile.scenarios]
+    doc = report.predict_json(preds, conv, title=sfile.title, failures=sfile.failures)
+    text = report.predict_text(preds, conv, title=sfile.title, failures=sfile.failures,
+                               colour=colour)
+
+    def figures() -> dict[str, Any]:
+        from .plots import profile_figure
+
+        return {p.name: profile_figure(p, conv) for p in preds}
+
+    def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
+        return _write_predict_files(out, preds, conv, doc, pngs, [str(scenario_path)])
+
+    return Run("predict", EXIT_PARTIAL if sfile.failures else EXIT_OK, doc, text,
+               [str(scenario_path)], sfile.title or "pkcalc predict", figures, files,
+               lambda pngs: predict_sections(doc, pngs))
+
+
+def _write_predict_files(out: Path, preds, conv, doc, pngs, inputs) -> list[Path]:
+    """profile.csv and profile.png per scenario, summary.csv, predict.json."""
+    import pandas as pd
+
+    slugs = unique_slugs([p.name for p in preds])
+    targets = [out / "predict.json", out / "summary.csv"]
+    targets += [out / s / f for s in slugs for f in ("profile.csv", "profile.png")]
+    check_not_input(targets, inputs)
+    written = []
+    rows = []
+    tu, cu = conv.unit("time"), conv.unit("concentration")
+    for pred, s, d in zip(preds, slugs, doc["scenarios"], strict=True):
+        frame = pd.DataFrame({f"time [{tu}]": d["profile"]["time"],
+                              f"concentration [{cu}]": d["profile"]["concentration"]})
+        written.append(report.write_atomic(out / s / "profile.csv", frame.to_csv(index=False)))
+        written.append(report.write_atomic(out / s / "profile.png", pngs[pred.name]))
+        row = {"scenario": pred.name, "folder": s}
+        row.update({f"{k} [{conv.unit(_PARAM_KIND[k])}]": v for k, v in d["parameters"].items()})
+        row[f"plateau_concentration [{cu}]"] = d["plateau_concentration"]
+        for f, t in d["time_to_fraction"].items():
+            row[f"time_to_{float(f) * 100:g}pct [{tu}]"] = t
+        ss = d["steady_state"] or {}
+        for key in ("peak", "trough", "average"):
+            row[f"steady_state_{key} [{cu}]"] = ss.get(key)
+        row["flags"] = " | ".join(pred.flags)
+        row["warnings"] = " | ".join(pred.warnings)
+        rows.append(row)
+    written.append(report.write_atomic(out / "summary.csv",
+                                       pd.DataFrame(rows).to_csv(index=False)))
+    written.append(report.write_atomic(out / "predict.json", report.dumps(doc)))
+    return written
+
+
+# --------------------------------------------------------------------------- design
+def run_design(cases, *, failures=(), title: str | None = None,
+               units: dict[str, str] | None = None, inputs: Sequence[str] = (),
+               colour: bool = False) -> Run:
+    """``pkcalc design``: every validated design case."""
+    from .design import run_design as design_one
+    from .report.html import design_sections
+
+    results, run_failures = [], list(failures)
+    for case in cases:
+        try:
+            results.append(design_one(case))
+        except ValueError as exc:  # infeasible requests the schema could not foresee
+            label = f"scenario '{case.name}'"
+            run_failures.append((label, PkcalcInputError(
+                str(exc), file=inputs[0] if inputs else None, item=label)))
+    if not results:
+        raise PkcalcInputError([p for _, err in run_failures for p in err.problems])
+    conv = report.UnitConverter(units)
+    doc = report.design_json(results, conv, title=title, failures=run_failures)
+    text = report.design_text(results, conv, title=title, failures=run_failures, colour=colour)
+
+    def figures() -> dict[str, Any]:
+        from .plots import design_figure
+
+        return {r.name: design_figure(r, conv) for r in results}
+
+    def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
+        import pandas as pd
+
+        slugs = unique_slugs([r.name for r in results])
+        targets = [out / "design.json", out / "regimens.csv"]
+        targets += [out / f"design-{s}.png" for s in slugs]
+        check_not_input(targets, inputs)
+        written = []
+        frames = []
+        for res, s in zip(results, slugs, strict=True):
+            frame = res.to_frame()
+            frame.insert(0, "scenario", res.name)
+            frames.append(frame)
+            if res.name in pngs:
+                written.append(report.write_atomic(out / f"design-{s}.png", pngs[res.name]))
+        written.append(report.write_atomic(out / "regimens.csv",
+                                           pd.concat(frames).to_csv(index=False)))
+        written.append(report.write_atomic(out / "design.json", report.dumps(doc)))
+        return written
+
+    return Run("design", EXIT_PARTIAL if run_failures else EXIT_OK, doc, text, list(inputs),
+               title or "pkcalc design", figures, files,
+               lambda pngs: design_sections(doc, pngs))
+
+
+# --------------------------------------------------------------------------- verify
+def run_verify(cases_path: str | Path, *, colour: bool = False) -> tuple[Run, Any]:
+    """``pkcalc verify``: the run and the :class:`~pkcalc.verify.VerifyResult`."""
+    from .report.html import verify_sections
+    from .schema import load_cases_file
+    from .verify import verify
+
+    cfile = load_cases_file(cases_path)
+    result = verify(cfile.scenarios, cfile.failures)
+    doc = report.verify_json(result)
+    text = report.verify_text(result, title=cfile.title, colour=colour)
+    code = EXIT_INPUT if result.failures else (EXIT_PARTIAL if result.n_failed else EXIT_OK)
+
+    def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
+        check_not_input([out / "verify.json", out / "verify.csv"], [str(cases_path)])
+        return [report.write_atomic(out / "verify.json", report.dumps(doc)),
+                report.write_atomic(out / "verify.csv", result.to_frame().to_csv(index=False))]
+
+    run = Run("verify", code, doc, text, [str(cases_path)], cfile.title or "pkcalc verify",
+              dict, files, lambda _pngs: verify_sections(doc))
+    return run, result
