@@ -41,6 +41,13 @@ A scenario file holds a [scenarios.design] table per scenario, for designs
 
 exit code 0 when every check passes, 1 when any check fails, 2 when the file
 (or a case in it) cannot be used.""",
+    "nca": """examples:
+  pkcalc nca scenarios/demo-study.toml
+  pkcalc nca --levels levels.csv --doses doses.csv --auc-method linear --out nca-results/
+  pkcalc nca scenarios/demo-study.toml --terminal "3=8 h,12 h,24 h"
+
+Times in the results are hours after the start of the reference dose (the
+single dose, or the last of regular repeated doses).""",
     "demo": """examples:
   pkcalc demo --out demo-output""",
 }
@@ -158,6 +165,40 @@ def cmd_verify(args: argparse.Namespace) -> int:
     return _finish(run, args)
 
 
+# --------------------------------------------------------------------------- nca
+def _study_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument("study", nargs="?", metavar="STUDY.toml", help="study file naming the tables")
+    p.add_argument("--levels", metavar="L.csv", help="levels table")
+    p.add_argument("--doses", metavar="D.csv", help="doses table")
+    p.add_argument("--subjects", metavar="S.csv", help="subjects table (weights, covariates)")
+
+
+def _nca_options(args: argparse.Namespace, study) -> dict:
+    from .schema import nca_options
+
+    raw = dict(study.options.get("nca", {}))
+    if args.auc_method:
+        raw["auc_method"] = args.auc_method
+    if args.blq_rule:
+        raw["blq"] = args.blq_rule
+    for item in args.terminal or []:
+        sid, sep, times = item.partition("=")
+        if not sep:
+            raise PkcalcInputError(f"'{item}' is not SUBJECT=TIME,TIME,...", field="--terminal",
+                                   expected='e.g. --terminal "3=8 h,12 h,24 h"')
+        raw.setdefault("terminal_points", {})
+        raw["terminal_points"] = {**raw["terminal_points"],
+                                  sid.strip(): [t.strip() for t in times.split(",")]}
+    return nca_options(raw, file=study.files[0] if args.study else None)
+
+
+def cmd_nca(args: argparse.Namespace) -> int:
+    from .runner import load_study_input, run_nca
+
+    study = load_study_input(args.study, args.levels, args.doses, args.subjects)
+    return _finish(run_nca(study, _nca_options(args, study), colour=_colour()), args)
+
+
 def demo_path(name: str = "demo.toml") -> Path:
     """Path of a scenario file shipped with pkcalc."""
     from importlib.resources import files
@@ -241,6 +282,20 @@ def build_parser() -> argparse.ArgumentParser:
                    help="fraction of the product that is active drug (default 1)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--out", metavar="DIR", help="write CSV, JSON and PNG files to DIR")
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+
+    p = _add(sub, "nca", cmd_nca,
+             "Non-compartmental analysis per subject (AUC, terminal slope, CL, volumes, MRT).")
+    _study_args(p)
+    p.add_argument("--auc-method", choices=["linear-up-log-down", "linear"],
+                   help="trapezoid rule (default linear-up-log-down)")
+    p.add_argument("--blq-rule", choices=["leading_zero", "zero", "drop"],
+                   help="BLQ levels: leading_zero (default: before the first measurable level "
+                        "as 0, later ones left out), zero, drop")
+    p.add_argument("--terminal", action="append", metavar="SUBJECT=T1,T2,...",
+                   help="choose a subject's terminal points by hand (repeatable)")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.add_argument("--out", metavar="DIR", help="write nca.csv, nca.json and plots to DIR")
     p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
 
     p = _add(sub, "verify", cmd_verify,

@@ -145,3 +145,35 @@ def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
     ax.set_title(f"{result.name}\nproposed regimens: a calculation, not an order", fontsize=9)
     ax.legend(fontsize=7, loc="best", frameon=False)
     return fig
+
+
+def nca_figure(result, conv: UnitConverter | None = None) -> Figure | None:
+    """Log-concentration vs time of one subject, the terminal points marked and the
+    terminal regression line drawn."""
+    conv = conv or UnitConverter()
+    t, c = np.asarray(result.time), np.asarray(result.conc)
+    keep = np.isfinite(c) & (c > 0)
+    if not keep.any():
+        return None
+    fig, ax = new_figure(6.5, 4.2)
+    tt = conv(t[keep], "time")
+    ax.semilogy(tt, conv(c[keep], "concentration"), "o-", color="black", ms=4, lw=0.8,
+                mfc="white", label="levels used")
+    if result.points_used:
+        pts = np.asarray(result.points_used)
+        sel = np.isin(np.round(t, 9), np.round(pts, 9)) & keep
+        ax.semilogy(conv(t[sel], "time"), conv(c[sel], "concentration"), "s", color="black",
+                    ms=6, label="terminal points")
+        if result.terminal_slope is not None and result.terminal_intercept is not None:
+            ref = result.reference_time
+            line_t = np.linspace(pts.min() - ref, t[keep].max() - ref, 50)
+            line_c = np.exp(result.terminal_intercept - result.terminal_slope * line_t)
+            ax.semilogy(conv(line_t + ref, "time"), conv(line_c, "concentration"), "--",
+                        color="0.4", lw=1.0,
+                        label=f"terminal slope (t½ {result.terminal_half_life:.3g} h)")
+    ax.set_xlabel(f"time [{conv.unit('time')}]")
+    ax.set_ylabel(f"concentration [{conv.unit('concentration')}] (log scale)")
+    ax.set_title(f"subject {result.subject}: non-compartmental analysis ({result.mode})",
+                 fontsize=9)
+    ax.legend(fontsize=7, frameon=False)
+    return fig

@@ -270,3 +270,74 @@ def run_verify(cases_path: str | Path, *, colour: bool = False) -> tuple[Run, An
     run = Run("verify", code, doc, text, [str(cases_path)], cfile.title or "pkcalc verify",
               dict, files, lambda _pngs: verify_sections(doc))
     return run, result
+
+
+# --------------------------------------------------------------------------- studies
+def load_study_input(study: str | None = None, levels: str | None = None,
+                     doses: str | None = None, subjects: str | None = None):
+    """A study from a study TOML, or from the three tables named directly."""
+    from .schema import load_study, load_study_file
+
+    if study and (levels or doses or subjects):
+        raise PkcalcInputError("give a study file or --levels/--doses, not both")
+    if study:
+        return load_study_file(study)
+    if not (levels and doses):
+        raise PkcalcInputError("no study given", expected="STUDY.toml, or --levels L.csv "
+                               "--doses D.csv [--subjects S.csv]")
+    return load_study(levels, doses, subjects)
+
+
+def run_nca(study, options: dict[str, Any], *, colour: bool = False) -> Run:
+    """``pkcalc nca``: every subject of a study."""
+    from .nca import BLQ_RULES, nca_subject
+    from .report.html import nca_sections
+    from .report.nca import nca_json, nca_text
+
+    conv = report.UnitConverter(study.output or None)
+    results = []
+    for s in study.subjects:
+        results.append(nca_subject(
+            s.subject, s.time, s.conc, s.blq, s.dose_start, s.dose_amount, s.dose_duration,
+            auc_method=options["auc_method"], blq_rule=options["blq_rule"],
+            terminal_times=options["terminal_points"].get(s.subject),
+            **{k: options[k] for k in ("r2_tolerance", "extrapolation_limit") if k in options}))
+    unknown = sorted(set(options["terminal_points"]) - {s.subject for s in study.subjects})
+    warnings = list(study.warnings)
+    if unknown:
+        warnings.append(f"terminal points given for unknown subjects: {', '.join(unknown)}")
+    settings = {"auc_method": options["auc_method"],
+                "blq": BLQ_RULES[options["blq_rule"]],
+                "times": "hours after the start of the reference dose"}
+    doc = nca_json(results, conv, title=study.title, failures=study.failures,
+                   settings=settings)
+    doc["warnings"] = warnings
+    text = nca_text(results, conv, title=study.title, failures=study.failures,
+                    warnings=warnings, settings=settings, colour=colour)
+    if not results:
+        raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
+                               or "no subjects to analyse")
+
+    def figures() -> dict[str, Any]:
+        from .plots import nca_figure
+
+        return {r.subject: nca_figure(r, conv) for r in results}
+
+    def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
+        import pandas as pd
+
+        slugs = unique_slugs([r.subject for r in results])
+        targets = [out / "nca.csv", out / "nca.json"] + [out / f"nca-{s}.png" for s in slugs]
+        check_not_input(targets, study.files)
+        written = [report.write_atomic(out / f"nca-{s}.png", pngs[r.subject])
+                   for r, s in zip(results, slugs, strict=True) if r.subject in pngs]
+        frame = pd.DataFrame(doc["subjects"])
+        frame["points_used"] = frame["points_used"].map(lambda xs: " ".join(f"{x:g}" for x in xs))
+        frame["notes"] = frame["notes"].map(" | ".join)
+        written.append(report.write_atomic(out / "nca.csv", frame.to_csv(index=False)))
+        written.append(report.write_atomic(out / "nca.json", report.dumps(doc)))
+        return written
+
+    return Run("nca", EXIT_PARTIAL if study.failures else EXIT_OK, doc, text,
+               list(study.files), study.title or "pkcalc nca", figures, files,
+               lambda pngs: nca_sections(doc, pngs), warnings=warnings)

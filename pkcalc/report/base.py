@@ -71,6 +71,8 @@ class UnitConverter:
         self._factor = {k: display_factor(u, k) for k, u in self.units.items()}
         self.units["auc"] = f"{self.units['concentration']}*{self.units['time']}"
         self._factor["auc"] = self._factor["concentration"] * self._factor["time"]
+        self.units["aumc"] = f"{self.units['auc']}*{self.units['time']}"
+        self._factor["aumc"] = self._factor["auc"] * self._factor["time"]
 
     def __call__(self, value: Any, kind: str) -> Any:
         """Convert a number, array or None from canonical to the display unit of ``kind``."""
@@ -101,7 +103,7 @@ def json_document(kind: str, units: UnitConverter | None, body: dict[str, Any]) 
     """The common envelope of every JSON output: version, units map, caution."""
     doc: dict[str, Any] = {"pkcalc_version": __version__, "command": kind}
     if units is not None:
-        doc["units"] = {k: v for k, v in units.units.items() if k != "auc"}
+        doc["units"] = {k: v for k, v in units.units.items() if k not in ("auc", "aumc")}
     doc["caution"] = CAUTION
     doc.update(body)
     return doc

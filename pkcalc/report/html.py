@@ -26,6 +26,7 @@ __all__ = [
     "design_sections",
     "figure_item",
     "input_items",
+    "nca_sections",
     "predict_sections",
     "render_html",
     "table_item",
@@ -222,3 +223,31 @@ def render_html(report: HtmlReport) -> str:
         options=report.options, seed=report.seed,
         generated=datetime.now(UTC).strftime("%Y-%m-%d %H:%M:%S"),
     )
+
+
+def nca_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
+    """One section: the quantity x subject table, notes and a plot per subject."""
+    from .nca import NCA_FIELDS
+
+    u = {**doc["units"], None: ""}
+    subjects = doc["subjects"]
+    rows = []
+    for key, kind in NCA_FIELDS:
+        values = [s[key] for s in subjects]
+        if any(v is not None for v in values):
+            rows.append([key.replace("_", " "), u.get(kind, "") if kind else "", *values])
+    rows.append(["points used for the slope", u["time"],
+                 *[", ".join(f"{x:g}" for x in s["points_used"]) or "-" for s in subjects]])
+    items: list[dict[str, Any]] = [
+        lines_item("notes", [f"{k.replace('_', ' ')}: {v}" for k, v in doc["settings"].items()]),
+        table_item(["quantity", "unit", *[f"subject {s['subject']}" for s in subjects]], rows,
+                   "Non-compartmental results")]
+    notes = [f"subject {s['subject']} ({s['mode']}): {n}" for s in subjects for n in s["notes"]]
+    items.append(lines_item("notes", notes))
+    if doc.get("warnings"):
+        items.append(lines_item("warnings", doc["warnings"]))
+    for s in subjects:
+        if s["subject"] in figures:
+            items.append(figure_item(figures[s["subject"]],
+                                     f"subject {s['subject']}: log concentration vs time"))
+    return [{"heading": "Non-compartmental analysis", "blocks": items}]

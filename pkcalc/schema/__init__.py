@@ -28,6 +28,7 @@ from .base import (
 from .cases import CaseSpec, Expectation, VerifyCase, load_cases_file
 from .design import DESIGN_METHODS, DesignCase, DesignCaseSpec, DesignSpec, load_design_file
 from .scenario import DoseSpec, ScenarioSpec, TargetSpec, TimeRange, load_scenario_file
+from .study import Study, SubjectData, load_study, load_study_file, nca_options
 
 __all__ = [
     "AGREEMENT_RTOL",
@@ -44,6 +45,8 @@ __all__ = [
     "ScenarioFile",
     "ScenarioInput",
     "ScenarioSpec",
+    "Study",
+    "SubjectData",
     "Target",
     "TargetSpec",
     "TimeRange",
@@ -53,6 +56,9 @@ __all__ = [
     "load_design_file",
     "load_items",
     "load_scenario_file",
+    "load_study",
+    "load_study_file",
+    "nca_options",
     "read_toml",
     "resolve_parameters",
     "resolve_partial",

@@ -1,0 +1,102 @@
+"""Terminal and JSON output of ``pkcalc nca``."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from .._format import format_table
+from .base import UnitConverter, _num, assemble_text, failures_json, json_document
+
+#: Result fields in display order, with their kind of quantity (None: a plain number).
+NCA_FIELDS: tuple[tuple[str, str | None], ...] = (
+    ("peak_concentration", "concentration"), ("peak_time", "time"),
+    ("last_concentration", "concentration"), ("last_time", "time"),
+    ("auc_to_last", "auc"), ("auc_to_infinity", "auc"), ("auc_extrapolated_percent", None),
+    ("aumc_to_last", "aumc"), ("aumc_to_infinity", "aumc"),
+    ("terminal_slope", "elimination_rate"), ("terminal_half_life", "time"),
+    ("adjusted_r2", None), ("clearance", "clearance"), ("mean_residence_time", "time"),
+    ("volume_terminal", "volume"), ("volume_steady_state", "volume"),
+    ("auc_interval", "auc"), ("average_concentration", "concentration"),
+    ("fluctuation_percent", None), ("accumulation_ratio", None),
+)
+
+
+def nca_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
+    """One subject's JSON object (DESIGN.md §6 keys, display units)."""
+    out: dict[str, Any] = {"subject": r.subject, "mode": r.mode,
+                           "dose": _num(conv(r.dose, "amount")),
+                           "infusion_time": _num(conv(r.infusion_time, "time")),
+                           "interval": _num(conv(r.interval, "time"))}
+    for key, kind in NCA_FIELDS:
+        value = getattr(r, key)
+        out[key] = _num(value if kind is None else conv(value, kind))
+    out["points_used"] = [_num(conv(x, "time")) for x in r.points_used]
+    out["notes"] = list(r.notes)
+    return out
+
+
+def nca_json(results, conv: UnitConverter, *, title: str | None = None, failures=(),
+             settings: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The ``pkcalc nca --json`` document."""
+    doc = json_document("nca", conv, {
+        "title": title, "settings": settings or {},
+        "subjects": [nca_subject_dict(r, conv) for r in results],
+        "failures": failures_json(failures),
+    })
+    doc["units"]["auc"] = conv.unit("auc")
+    doc["units"]["aumc"] = conv.unit("aumc")
+    return doc
+
+
+#: Columns of the terminal tables: single-dose quantities, then steady-state ones.
+_MAIN = ("peak_concentration", "peak_time", "auc_to_last", "auc_to_infinity",
+         "auc_extrapolated_percent", "terminal_slope", "terminal_half_life", "clearance",
+         "volume_terminal", "mean_residence_time", "volume_steady_state")
+_STEADY = ("interval", "auc_interval", "average_concentration", "fluctuation_percent",
+           "accumulation_ratio")
+_SHORT = {"peak_concentration": "Cmax", "peak_time": "Tmax", "auc_to_last": "AUClast",
+          "auc_to_infinity": "AUCinf", "auc_extrapolated_percent": "AUC extrap",
+          "terminal_slope": "lambda_z", "terminal_half_life": "t1/2 terminal",
+          "clearance": "CL", "volume_terminal": "Vz", "mean_residence_time": "MRT",
+          "volume_steady_state": "Vss", "interval": "tau", "auc_interval": "AUCtau",
+          "average_concentration": "Cavg", "fluctuation_percent": "fluctuation",
+          "accumulation_ratio": "accumulation"}
+
+
+def nca_text(results, conv: UnitConverter, *, title: str | None = None, failures=(),
+             warnings=(), settings: dict[str, Any] | None = None, colour: bool = False) -> str:
+    """Terminal output: caution, one row per subject, steady-state table, notes."""
+    kinds = dict(NCA_FIELDS) | {"interval": "time"}
+    unit_of = {k: ("%" if k.endswith("percent") else "" if kind is None else conv.unit(kind))
+               for k, kind in kinds.items()}
+    dicts = [nca_subject_dict(r, conv) for r in results]
+
+    def table(keys: tuple[str, ...], subset) -> str:
+        keys = tuple(k for k in keys if any(d[k] is not None for d in subset))
+        headers = ["subject", "mode", *[f"{_SHORT[k]} [{unit_of[k]}]" if unit_of[k] else
+                                        _SHORT[k] for k in keys]]
+        return format_table(headers, [[d["subject"], d["mode"], *[d[k] for k in keys]]
+                                      for d in subset])
+
+    sections = []
+    if settings:
+        sections.append("Settings: " + "; ".join(f"{k.replace('_', ' ')}: {v}"
+                                                  for k, v in settings.items()))
+    sections.append(table(_MAIN, dicts))
+    steady = [d for d in dicts if d["mode"] == "steady state"]
+    if steady:
+        sections.append("Over one dosing interval at steady state:\n" + table(_STEADY, steady))
+    note_lines = []
+    for r, d in zip(results, dicts, strict=True):
+        if d["points_used"]:
+            note_lines.append(f"  subject {r.subject}: terminal points at "
+                              f"{', '.join(f'{x:g}' for x in d['points_used'])} "
+                              f"{conv.unit('time')}")
+        note_lines += [f"  subject {r.subject}: {n}" for n in r.notes]
+    if note_lines:
+        sections.append("Notes:\n" + "\n".join(note_lines))
+    return assemble_text(sections, [("study", warnings)] if warnings else [], title=title,
+                         failures=failures, colour=colour)
+
+
+__all__ = ["NCA_FIELDS", "nca_json", "nca_subject_dict", "nca_text"]

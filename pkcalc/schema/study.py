@@ -1,0 +1,527 @@
+"""Study tables (levels, doses, subjects) and the study TOML (DESIGN.md §5).
+
+Tables are CSV with units in the headers (``time [h]``, ``concentration [ng/mL]``).
+Units are parsed once per column and applied to the whole column; text in a
+numeric column, a missing unit or a missing column make the file unusable
+(:class:`~pkcalc.errors.PkcalcInputError`, exit 2).  Problems that concern one
+subject (duplicate times, a BLQ mark on a value above its LLOQ, no doses, no
+level after the first dose, negative levels) fail that subject only; the rest
+go on.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from ..errors import PkcalcInputError, Problem
+from ..units import KINDS, parse_header, parse_unit
+from .base import read_toml
+
+__all__ = [
+    "Study",
+    "SubjectData",
+    "load_study",
+    "load_study_file",
+    "nca_options",
+    "read_table",
+]
+
+_TRUE = {"true", "1", "yes", "y", "t"}
+_FALSE = {"false", "0", "no", "n", "f", ""}
+_MAX_LISTED = 5
+
+
+@dataclass(frozen=True)
+class SubjectData:
+    """One subject's levels and doses in canonical units.
+
+    Attributes
+    ----------
+    subject : str
+    time : ndarray, h
+        Sample times, sorted.
+    conc : ndarray, mg/L
+        Measured levels; NaN where a BLQ level carries no number.
+    lloq : ndarray, mg/L
+        Limit of quantification per level (NaN when not given).
+    blq : ndarray of bool
+        True where the level is below its LLOQ (marked, or a number under LLOQ).
+    rows : ndarray of int
+        Line numbers of the levels in their file (for messages).
+    dose_start, dose_amount, dose_duration : ndarray, h, mg, h
+        Dose events (duration 0 for a bolus).
+    covariates : dict of str to float
+        From the subjects table; ``weight`` in kg.
+    notes : tuple of str
+        Data-handling notes (sorting, BLQ numbers below LLOQ).
+    """
+
+    subject: str
+    time: np.ndarray
+    conc: np.ndarray
+    lloq: np.ndarray
+    blq: np.ndarray
+    rows: np.ndarray
+    dose_start: np.ndarray
+    dose_amount: np.ndarray
+    dose_duration: np.ndarray
+    covariates: dict[str, float] = field(default_factory=dict)
+    notes: tuple[str, ...] = ()
+
+    @property
+    def weight(self) -> float | None:
+        return self.covariates.get("weight")
+
+    @property
+    def n_blq(self) -> int:
+        return int(self.blq.sum())
+
+
+@dataclass
+class Study:
+    """Subjects that passed the checks, and those that did not.
+
+    Attributes
+    ----------
+    subjects : list of SubjectData
+    failures : list of (str, PkcalcInputError)
+        ``("subject 'X'", problems)`` for subjects left out.
+    warnings : list of str
+        Table-level warnings (unknown columns, subjects in one table only).
+    files : list of str
+        The table files read.
+    options : dict
+        Raw option tables of a study TOML (``fit``, ``nca``, ``population``).
+    title : str or None
+    """
+
+    subjects: list[SubjectData]
+    failures: list[tuple[str, PkcalcInputError]] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    files: list[str] = field(default_factory=list)
+    options: dict[str, Any] = field(default_factory=dict)
+    title: str | None = None
+    output: dict[str, str] = field(default_factory=dict)
+
+    def subject(self, name: str) -> SubjectData:
+        for s in self.subjects:
+            if s.subject == name:
+                return s
+        raise KeyError(name)
+
+
+# --------------------------------------------------------------------------- tables
+def read_table(path: str | Path) -> pd.DataFrame:
+    """Read a CSV table as text (numbers are converted per column later)."""
+    p = Path(path)
+    if not p.is_file():
+        raise PkcalcInputError("file not found", file=str(path))
+    if p.stat().st_size == 0:
+        raise PkcalcInputError("the file is empty (0 bytes)", file=str(path),
+                               expected="a CSV table with a header row")
+    try:
+        frame = pd.read_csv(p, dtype=str, keep_default_na=False, skipinitialspace=True)
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
+        raise PkcalcInputError(f"not a readable CSV table ({exc.__class__.__name__}: "
+                               f"{str(exc).splitlines()[0] if str(exc) else ''})",
+                               file=str(path)) from None
+    if frame.empty:
+        raise PkcalcInputError("the table has a header but no rows", file=str(path))
+    return frame
+
+
+class _Columns:
+    """Header parsing for one table: name -> (column, unit)."""
+
+    def __init__(self, frame: pd.DataFrame, file: str) -> None:
+        self.file = file
+        self.frame = frame
+        self.map: dict[str, tuple[str, str | None]] = {}
+        problems = []
+        for col in frame.columns:
+            name, unit = parse_header(col)
+            key = name.strip().lower()
+            if key in self.map:
+                problems.append(Problem(f"column '{name}' appears twice", file=file,
+                                        field=str(col)))
+            self.map[key] = (col, unit)
+        if problems:
+            raise PkcalcInputError(problems)
+
+    def has(self, name: str) -> bool:
+        return name in self.map
+
+    def text(self, name: str) -> pd.Series:
+        return self.frame[self.map[name][0]].astype(str).str.strip()
+
+    def numeric(self, name: str, kind: str, problems: list[Problem], *,
+                required_unit: bool = True) -> tuple[pd.Series, Any]:
+        """The column in canonical units (NaN where empty), and its UnitSpec."""
+        col, unit = self.map[name]
+        if unit is None and required_unit:
+            problems.append(Problem("the column header declares no unit", file=self.file,
+                                    field=str(col),
+                                    expected=f"a header such as '{name} [unit]' with "
+                                             f"{KINDS[kind]}"))
+            return pd.Series(np.nan, index=self.frame.index), None
+        try:
+            spec = parse_unit(unit, kind, field=str(col)) if unit is not None else None
+        except PkcalcInputError as exc:
+            problems.extend(Problem(p.message, file=self.file, field=p.field,
+                                    expected=p.expected) for p in exc.problems)
+            return pd.Series(np.nan, index=self.frame.index), None
+        raw = self.frame[col].astype(str).str.strip()
+        values = pd.to_numeric(raw.where(raw != ""), errors="coerce")
+        bad = values.isna() & (raw != "")
+        bad |= np.isinf(values.fillna(0.0))
+        if bad.any():
+            lines = (np.flatnonzero(bad.to_numpy()) + 2)[:_MAX_LISTED]
+            examples = ", ".join(f"line {n}: '{raw.iloc[n - 2]}'" for n in lines)
+            more = f" and {int(bad.sum()) - len(lines)} more" if bad.sum() > len(lines) else ""
+            problems.append(Problem(f"text or non-finite values in a numeric column ({examples}"
+                                    f"{more})", file=self.file, field=str(col),
+                                    expected="numbers"))
+        factor = spec.factor if spec is not None else 1.0
+        return values * factor, spec
+
+
+def _require(cols: _Columns, names: list[str], problems: list[Problem]) -> None:
+    for n in names:
+        if not cols.has(n):
+            problems.append(Problem(f"missing column '{n}'", file=cols.file, field=n,
+                                    expected=", ".join(names)))
+
+
+def _warn_unknown(cols: _Columns, known: set[str], warnings: list[str]) -> None:
+    unknown = [c for k, (c, _) in cols.map.items() if k not in known]
+    if unknown:
+        warnings.append(f"{cols.file}: columns ignored: {', '.join(map(str, unknown))}")
+
+
+def _bool_column(cols: _Columns, name: str, problems: list[Problem]) -> pd.Series:
+    raw = cols.text(name).str.lower()
+    bad = ~raw.isin(_TRUE | _FALSE)
+    if bad.any():
+        lines = (np.flatnonzero(bad.to_numpy()) + 2)[:_MAX_LISTED]
+        problems.append(Problem(f"not true/false at line(s) {', '.join(map(str, lines))}",
+                                file=cols.file, field=name, expected="true or false"))
+    return raw.isin(_TRUE)
+
+
+# --------------------------------------------------------------------------- loading
+def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | None = None
+               ) -> Study:
+    """Read and check the study tables.
+
+    Parameters
+    ----------
+    levels : path
+        ``subject, time [..], concentration [..]``, optional ``lloq [..]``, ``blq``.
+    doses : path
+        ``subject, start [..]`` and two of ``amount [..]``, ``rate [..]``,
+        ``duration [..]`` (an amount alone is a bolus).
+    subjects : path, optional
+        ``subject, weight [..], ...`` covariates.
+
+    Returns
+    -------
+    Study
+
+    Raises
+    ------
+    PkcalcInputError
+        For unusable files (missing, empty, not CSV, missing columns or units,
+        text in numeric columns).
+    """
+    problems: list[Problem] = []
+    warnings: list[str] = []
+    lv_file, ds_file = str(levels), str(doses)
+    lv = _Columns(read_table(levels), lv_file)
+    ds = _Columns(read_table(doses), ds_file)
+    _require(lv, ["subject", "time", "concentration"], problems)
+    _require(ds, ["subject", "start"], problems)
+    if problems:
+        raise PkcalcInputError(problems)
+    _warn_unknown(lv, {"subject", "time", "concentration", "lloq", "blq"}, warnings)
+    _warn_unknown(ds, {"subject", "start", "amount", "rate", "duration"}, warnings)
+
+    # subjects table (weights needed for per-kg doses)
+    covariates: dict[str, dict[str, float]] = {}
+    files = [lv_file, ds_file]
+    if subjects is not None:
+        sb = _Columns(read_table(subjects), str(subjects))
+        files.append(str(subjects))
+        _require(sb, ["subject"], problems)
+        if problems:
+            raise PkcalcInputError(problems)
+        ids = sb.text("subject")
+        table: dict[str, pd.Series] = {}
+        for key, (col, unit) in sb.map.items():
+            if key == "subject":
+                continue
+            if key == "weight":
+                table["weight"], _ = sb.numeric("weight", "weight", problems)
+            elif unit is not None:
+                raw = sb.text(key)
+                table[key] = pd.to_numeric(raw.where(raw != ""), errors="coerce")
+            else:
+                raw = sb.text(key)
+                numeric = pd.to_numeric(raw.where(raw != ""), errors="coerce")
+                if numeric.notna().sum() == (raw != "").sum():
+                    table[key] = numeric
+                else:
+                    warnings.append(f"{sb.file}: text column '{col}' kept out of the covariates")
+        dup = ids[ids.duplicated()]
+        if len(dup):
+            problems.append(Problem(f"subject '{dup.iloc[0]}' appears twice", file=sb.file,
+                                    field="subject"))
+        if "weight" in table and (table["weight"] <= 0).any():
+            line = int(np.flatnonzero((table["weight"] <= 0).to_numpy())[0]) + 2
+            problems.append(Problem(f"weight must be positive (line {line})", file=sb.file,
+                                    field="weight"))
+        for i, sid in enumerate(ids):
+            covariates[sid] = {k: float(v.iloc[i]) for k, v in table.items()
+                               if not pd.isna(v.iloc[i])}
+
+    # levels: columns in canonical units
+    l_subject = lv.text("subject")
+    l_time, _ = lv.numeric("time", "time", problems)
+    l_conc, _ = lv.numeric("concentration", "concentration", problems)
+    l_lloq = (lv.numeric("lloq", "concentration", problems)[0] if lv.has("lloq")
+              else pd.Series(np.nan, index=l_time.index))
+    l_blq_mark = (_bool_column(lv, "blq", problems) if lv.has("blq")
+                  else pd.Series(False, index=l_time.index))
+    # doses
+    d_subject = ds.text("subject")
+    d_start, _ = ds.numeric("start", "time", problems)
+    given = {}
+    specs = {}
+    for name, kind in (("amount", "amount"), ("rate", "rate"), ("duration", "time")):
+        if ds.has(name):
+            given[name], specs[name] = ds.numeric(name, kind, problems)
+    if not given or list(given) == ["rate"] or list(given) == ["duration"]:
+        problems.append(Problem("the doses table needs amount, or two of amount, rate, "
+                                "duration", file=ds_file, field="amount",
+                                expected="amount [..] and optionally rate [..] or duration [..]"))
+    if l_subject.eq("").any():
+        problems.append(Problem("empty subject at line "
+                                f"{int(np.flatnonzero(l_subject.eq('').to_numpy())[0]) + 2}",
+                                file=lv_file, field="subject"))
+    if l_time.isna().any() and not problems:
+        line = int(np.flatnonzero(l_time.isna().to_numpy())[0]) + 2
+        problems.append(Problem(f"missing time at line {line}", file=lv_file, field="time"))
+    if d_start.isna().any() and not problems:
+        line = int(np.flatnonzero(d_start.isna().to_numpy())[0]) + 2
+        problems.append(Problem(f"missing start at line {line}", file=ds_file, field="start"))
+    if problems:
+        raise PkcalcInputError(problems)
+
+    # per-kg dose columns need weights (row-wise, vectorised)
+    weight_of = d_subject.map(lambda s: covariates.get(s, {}).get("weight", np.nan))
+    per_kg_missing = pd.Series(False, index=d_subject.index)
+    for name, spec in specs.items():
+        if spec is not None and spec.per_kg:
+            given[name] = given[name] * weight_of
+            per_kg_missing |= weight_of.isna()
+
+    amount, duration, dose_problem = _resolve_doses(given)
+    subject_failures: dict[str, list[Problem]] = {}
+
+    def fail(sid: str, message: str, file: str, field: str | None = None) -> None:
+        subject_failures.setdefault(sid, []).append(
+            Problem(message, file=file, item=f"subject '{sid}'", field=field))
+
+    for i in np.flatnonzero(dose_problem.to_numpy() != ""):
+        fail(d_subject.iloc[i], f"{dose_problem.iloc[i]} (line {i + 2})", ds_file)
+    for i in np.flatnonzero(per_kg_missing.to_numpy()):
+        fail(d_subject.iloc[i], f"a per-kg dose needs the subject's weight (line {i + 2})",
+             ds_file, "weight")
+    for i in np.flatnonzero((d_start < 0).to_numpy()):
+        fail(d_subject.iloc[i], f"negative dose start (line {i + 2})", ds_file, "start")
+
+    # BLQ: marked, or a number under its LLOQ, or an empty level with an LLOQ
+    below = l_conc < l_lloq
+    empty_with_lloq = l_conc.isna() & l_lloq.notna()
+    blq = l_blq_mark | below | empty_with_lloq
+    for i in np.flatnonzero((l_blq_mark & (l_conc > l_lloq)).to_numpy()):
+        fail(l_subject.iloc[i], f"marked BLQ but the level {l_conc.iloc[i]:g} mg/L is above its "
+             f"LLOQ {l_lloq.iloc[i]:g} mg/L (line {i + 2})", lv_file, "blq")
+    for i in np.flatnonzero((l_blq_mark & l_lloq.isna() & l_conc.isna()).to_numpy()):
+        fail(l_subject.iloc[i], f"a BLQ level needs its LLOQ (line {i + 2})", lv_file, "lloq")
+    for i in np.flatnonzero((l_conc.isna() & ~blq).to_numpy()):
+        fail(l_subject.iloc[i], f"missing concentration (line {i + 2}); a level below the "
+             "limit of quantification needs blq = true and its lloq", lv_file, "concentration")
+    for i in np.flatnonzero((l_conc < 0).to_numpy()):
+        fail(l_subject.iloc[i], f"negative concentration {l_conc.iloc[i]:g} mg/L (line {i + 2})",
+             lv_file, "concentration")
+    for i in np.flatnonzero((l_time < 0).to_numpy()):
+        fail(l_subject.iloc[i], f"negative time (line {i + 2})", lv_file, "time")
+
+    level_frame = pd.DataFrame({"subject": l_subject, "time": l_time, "conc": l_conc,
+                                "lloq": l_lloq, "blq": blq, "marked": l_blq_mark,
+                                "row": np.arange(len(l_time)) + 2})
+    dose_frame = pd.DataFrame({"subject": d_subject, "start": d_start, "amount": amount,
+                               "duration": duration})
+    dup = level_frame.duplicated(["subject", "time"], keep=False)
+    for sid, rows in level_frame[dup].groupby("subject")["row"]:
+        fail(sid, f"duplicate sample times (lines {', '.join(map(str, rows.tolist()))})",
+             lv_file, "time")
+
+    level_ids = set(level_frame["subject"])
+    dose_ids = set(dose_frame["subject"])
+    for sid in sorted(level_ids - dose_ids):
+        fail(sid, "has levels but no doses", ds_file, "subject")
+    only_doses = sorted(dose_ids - level_ids)
+    if only_doses:
+        warnings.append(f"subjects with doses but no levels (left out): {', '.join(only_doses)}")
+    if covariates:
+        only_cov = sorted(set(covariates) - level_ids)
+        if only_cov:
+            warnings.append(f"subjects in the subjects table only: {', '.join(only_cov)}")
+        no_cov = sorted(level_ids - set(covariates))
+        if no_cov:
+            warnings.append(f"subjects without a row in the subjects table: "
+                            f"{', '.join(no_cov)}")
+
+    good: list[SubjectData] = []
+    doses_by = {sid: g for sid, g in dose_frame.groupby("subject", sort=False)}
+    for sid, g in level_frame.groupby("subject", sort=False):
+        if sid in subject_failures:
+            continue
+        d = doses_by[sid].sort_values("start", kind="stable")
+        notes = []
+        if not g["time"].is_monotonic_increasing:
+            notes.append("levels were not in time order; sorted by time")
+            g = g.sort_values("time", kind="stable")
+        if (g["time"] <= d["start"].min()).all():
+            fail(sid, "no level after the first dose", lv_file, "time")
+            continue
+        n_under = int((g["blq"] & ~g["marked"] & g["conc"].notna()).sum())
+        if n_under:
+            notes.append(f"{n_under} level(s) below their LLOQ treated as BLQ")
+        good.append(SubjectData(
+            subject=str(sid), time=g["time"].to_numpy(float), conc=g["conc"].to_numpy(float),
+            lloq=g["lloq"].to_numpy(float), blq=g["blq"].to_numpy(bool),
+            rows=g["row"].to_numpy(int), dose_start=d["start"].to_numpy(float),
+            dose_amount=d["amount"].to_numpy(float), dose_duration=d["duration"].to_numpy(float),
+            covariates=covariates.get(sid, {}), notes=tuple(notes)))
+    failures = [(f"subject '{sid}'", PkcalcInputError(p)) for sid, p in subject_failures.items()]
+    return Study(good, failures, warnings, files)
+
+
+def _resolve_doses(given: dict[str, pd.Series]) -> tuple[pd.Series, pd.Series, pd.Series]:
+    """Amount and duration per row from two of amount/rate/duration (vectorised)."""
+    index = next(iter(given.values())).index
+    nan = pd.Series(np.nan, index=index)
+    amount = given.get("amount", nan)
+    rate = given.get("rate", nan)
+    duration = given.get("duration", nan)
+    a, r, d = amount.notna(), rate.notna(), duration.notna()
+    problem = pd.Series("", index=index, dtype=object)
+    out_amount = amount.copy()
+    out_duration = duration.copy()
+    # amount alone -> bolus
+    out_duration = out_duration.where(~(a & ~r & ~d), 0.0)
+    # rate + duration
+    out_amount = out_amount.where(~(~a & r & d), rate * duration)
+    # amount + rate
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out_duration = out_duration.where(~(a & r & ~d), amount / rate)
+    three = a & r & d
+    disagree = three & ~np.isclose(rate * duration, amount, rtol=1e-6, atol=0)
+    problem = problem.mask(disagree, "amount differs from rate x duration")
+    problem = problem.mask(~a & ~(r & d), "a dose needs an amount, or a rate and a duration")
+    negative = (amount < 0) | (rate < 0) | (duration < 0)
+    problem = problem.mask(negative, "negative amount, rate or duration")
+    problem = problem.mask(r & (rate <= 0) & a & ~d, "rate must be positive")
+    problem = problem.mask(r & d & (duration <= 0), "an infusion rate needs a duration > 0")
+    return out_amount, out_duration, problem
+
+
+def load_study_file(path: str | Path, *, extra_sections: tuple[str, ...] = ()) -> Study:
+    """A study TOML: ``levels``, ``doses``, optional ``subjects`` (paths relative to the
+    TOML file), optional ``title`` and option tables ``[fit]``, ``[nca]``,
+    ``[population]``."""
+    data = read_toml(path)
+    base = Path(path).parent
+    allowed = {"title", "levels", "doses", "subjects", "output", "fit", "nca", "population",
+               *extra_sections}
+    unknown = sorted(set(data) - allowed)
+    if unknown:
+        raise PkcalcInputError([Problem("unknown key", file=str(path), field=k,
+                                        expected=", ".join(sorted(allowed))) for k in unknown])
+    missing = [k for k in ("levels", "doses") if not isinstance(data.get(k), str)]
+    if missing:
+        raise PkcalcInputError([Problem("the study file must name this table", file=str(path),
+                                        field=k, expected="a path such as 'levels.csv'")
+                                for k in missing])
+    study = load_study(base / data["levels"], base / data["doses"],
+                       base / data["subjects"] if isinstance(data.get("subjects"), str) else None)
+    study.options = {k: data[k] for k in ("fit", "nca", "population") if k in data}
+    study.title = data.get("title") if isinstance(data.get("title"), str) else None
+    study.output = data.get("output", {}) if isinstance(data.get("output"), dict) else {}
+    study.files = [str(path), *study.files]
+    return study
+
+
+# --------------------------------------------------------------------------- options
+def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> dict[str, Any]:
+    """Validate the ``[nca]`` options (or the same keys from the command line).
+
+    Keys: ``auc_method`` (``linear-up-log-down`` | ``linear``), ``blq``
+    (``leading_zero`` | ``zero`` | ``drop``), ``terminal_points`` (subject ->
+    list of times with units), ``r2_tolerance``, ``extrapolation_limit`` (percent).
+    """
+    from ..nca import AUC_METHODS, BLQ_RULES
+    from ..units import to_canonical
+
+    raw = dict(raw or {})
+    problems: list[Problem] = []
+    out: dict[str, Any] = {}
+    allowed = {"auc_method", "blq", "terminal_points", "r2_tolerance", "extrapolation_limit"}
+    for key in sorted(set(raw) - allowed):
+        problems.append(Problem("unknown key", file=file, field=f"nca.{key}",
+                                expected=", ".join(sorted(allowed))))
+    method = raw.get("auc_method", "linear-up-log-down")
+    if method not in AUC_METHODS:
+        problems.append(Problem(f"unknown AUC method '{method}'", file=file,
+                                field="nca.auc_method", expected=", ".join(AUC_METHODS)))
+    out["auc_method"] = method
+    rule = raw.get("blq", "leading_zero")
+    if rule not in BLQ_RULES:
+        problems.append(Problem(f"unknown BLQ rule '{rule}'", file=file, field="nca.blq",
+                                expected=", ".join(BLQ_RULES)))
+    out["blq_rule"] = rule
+    for key, lo, hi in (("r2_tolerance", 0.0, 0.1), ("extrapolation_limit", 0.0, 100.0)):
+        if key in raw:
+            value = raw[key]
+            if not isinstance(value, int | float) or not lo <= value <= hi:
+                problems.append(Problem(f"must be a number from {lo:g} to {hi:g}", file=file,
+                                        field=f"nca.{key}"))
+            else:
+                out[key] = float(value)
+    points = raw.get("terminal_points") or {}
+    if not isinstance(points, dict):
+        problems.append(Problem("must map subjects to lists of times", file=file,
+                                field="nca.terminal_points"))
+        points = {}
+    terminal = {}
+    for sid, times in points.items():
+        try:
+            if not isinstance(times, list) or len(times) < 2:
+                raise PkcalcInputError("give at least two times")
+            terminal[str(sid)] = [to_canonical(x, "time", field=f"nca.terminal_points.{sid}")
+                                  for x in times]
+        except PkcalcInputError as exc:
+            problems += [Problem(p.message, file=file, field=f"nca.terminal_points.{sid}",
+                                 expected="a list of times such as ['8 h', '12 h', '24 h']")
+                         for p in exc.problems]
+    out["terminal_points"] = terminal
+    if problems:
+        raise PkcalcInputError(problems)
+    return out
