@@ -1,0 +1,130 @@
+"""Study tables: units per column, unusable files, per-subject failures."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from pkcalc.errors import PkcalcInputError
+from pkcalc.schema import load_study, load_study_file
+
+LEVELS = """subject,time [min],concentration [ng/mL],lloq [ng/mL],blq
+A,30,5000,100,false
+A,120,3000,100,false
+A,600,,100,true
+B,60,4000,100,false
+B,240,80,100,false
+"""
+DOSES = """subject,start [h],amount [mg/kg],duration [min]
+A,0,5,30
+B,0,5,0
+"""
+SUBJECTS = """subject,weight [kg],age [years],sex
+A,70,40,f
+B,80,50,m
+"""
+
+
+@pytest.fixture
+def tables(write):
+    def make(levels=LEVELS, doses=DOSES, subjects=SUBJECTS):
+        return (write("levels.csv", levels), write("doses.csv", doses),
+                write("subjects.csv", subjects) if subjects is not None else None)
+    return make
+
+
+def test_units_per_column_and_per_kg_doses(tables):
+    study = load_study(*tables())
+    a, b = study.subjects
+    np.testing.assert_allclose(a.time, [0.5, 2.0, 10.0])
+    np.testing.assert_allclose(a.conc[:2], [5.0, 3.0])
+    assert np.isnan(a.conc[2]) and a.blq.tolist() == [False, False, True]
+    assert a.dose_amount[0] == pytest.approx(350.0) and a.dose_duration[0] == pytest.approx(0.5)
+    assert b.dose_amount[0] == pytest.approx(400.0) and b.dose_duration[0] == 0.0
+    assert a.weight == 70.0 and a.covariates["age"] == 40.0
+    # B's 80 ng/mL is below its LLOQ: treated as BLQ, never silently as a number
+    assert b.blq.tolist() == [False, True]
+    assert any("below their LLOQ" in n for n in b.notes)
+    assert any("sex" in w for w in study.warnings)
+
+
+def test_study_toml(write, tables):
+    tables()
+    path = write("study.toml", 'title = "t"\nlevels = "levels.csv"\ndoses = "doses.csv"\n'
+                               'subjects = "subjects.csv"\n[nca]\nblq = "zero"\n')
+    study = load_study_file(path)
+    assert len(study.subjects) == 2 and study.options["nca"] == {"blq": "zero"}
+    assert study.files[0].endswith("study.toml")
+
+
+@pytest.mark.parametrize(
+    ("which", "text", "match"),
+    [
+        ("levels", "subject,time,concentration [mg/L]\nA,1,2\n", "declares no unit"),
+        ("levels", "subject,time [h],concentration [mg]\nA,1,2\n", "dimension"),
+        ("levels", "subject,time [h]\nA,1\n", "missing column 'concentration'"),
+        ("levels", "subject,time [h],concentration [mg/L]\nA,1,two\n", "text or non-finite"),
+        ("levels", "subject,time [h],concentration [mg/L]\nA,1,inf\n", "text or non-finite"),
+        ("levels", "", "empty"),
+        ("levels", "subject,time [h],concentration [mg/L]\n", "no rows"),
+        ("doses", "subject,start [h],rate [mg/h]\nA,0,5\n", "needs amount"),
+        ("doses", "subject,amount [mg]\nA,5\n", "missing column 'start'"),
+    ],
+)
+def test_unusable_tables(tables, write, which, text, match):
+    lv, ds, sb = tables()
+    target = {"levels": lv, "doses": ds}[which]
+    target.write_text(text)
+    with pytest.raises(PkcalcInputError, match=match) as info:
+        load_study(lv, ds, sb)
+    assert target.name in str(info.value)
+
+
+@pytest.mark.parametrize(
+    ("levels", "doses", "match"),
+    [
+        ("subject,time [h],concentration [mg/L]\nA,1,2\nA,1,3\nB,1,2\n", None, "duplicate"),
+        ("subject,time [h],concentration [mg/L],lloq [mg/L],blq\nA,1,5,1,true\n"
+         "B,1,2,1,false\n", None, "above its LLOQ"),
+        ("subject,time [h],concentration [mg/L]\nA,1,-2\nB,1,2\n", None,
+         "negative concentration"),
+        ("subject,time [h],concentration [mg/L]\nA,1,2\nB,1,2\nC,1,2\n", None, "no doses"),
+        ("subject,time [h],concentration [mg/L]\nA,1,2\nB,1,2\n",
+         "subject,start [h],amount [mg]\nA,5,100\nB,0,100\n", "no level after the first dose"),
+        ("subject,time [h],concentration [mg/L]\nA,1,\nB,1,2\n", None, "missing concentration"),
+    ],
+)
+def test_per_subject_failures_keep_the_others(tables, levels, doses, match):
+    lv, ds, sb = tables(levels=levels,
+                        doses=doses or "subject,start [h],amount [mg]\nA,0,100\nB,0,100\n",
+                        subjects=None)
+    study = load_study(lv, ds, sb)
+    (label, err), = study.failures
+    failed = label.split("'")[1]
+    kept = [s.subject for s in study.subjects]
+    assert "B" in kept and failed not in kept
+    assert match in str(err) and f"subject '{failed}'" in str(err)
+
+
+def test_per_kg_dose_without_weight_fails_subject(tables):
+    lv, ds, sb = tables(subjects="subject,weight [kg]\nA,70\n")
+    study = load_study(lv, ds, sb)
+    assert [s.subject for s in study.subjects] == ["A"]
+    assert "weight" in str(study.failures[0][1])
+    assert any("without a row in the subjects table" in w for w in study.warnings)
+
+
+def test_doses_only_subject_is_a_warning(tables):
+    lv, ds, sb = tables(doses=DOSES + "C,0,5,30\n",
+                        subjects=SUBJECTS + "C,60,30,f\n")
+    study = load_study(lv, ds, sb)
+    assert len(study.subjects) == 2
+    assert any("doses but no levels" in w and "C" in w for w in study.warnings)
+
+
+def test_inconsistent_dose_triple(tables):
+    lv, ds, sb = tables(doses="subject,start [h],amount [mg],rate [mg/h],duration [h]\n"
+                              "A,0,100,10,2\nB,0,100,50,2\n", subjects=None)
+    study = load_study(lv, ds, sb)
+    assert [s.subject for s in study.subjects] == ["B"]
+    assert "differs from rate x duration" in str(study.failures[0][1])
