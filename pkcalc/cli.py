@@ -41,6 +41,16 @@ A scenario file holds a [scenarios.design] table per scenario, for designs
 
 exit code 0 when every check passes, 1 when any check fails, 2 when the file
 (or a case in it) cannot be used.""",
+    "fit": """examples:
+  pkcalc fit scenarios/demo-study.toml
+  pkcalc fit scenarios/demo-study.toml --with-nca --out fit-results/
+  pkcalc fit --levels levels.csv --doses doses.csv --weighting inverse_predicted_squared \\
+             --blq drop
+  pkcalc fit --levels levels.csv --doses doses.csv --error-model combined --ci profile
+  pkcalc fit --levels levels.csv --doses doses.csv --prior prior.toml     (MAP)
+
+Defaults: proportional error model by maximum likelihood, BLQ levels by the
+censored likelihood (Beal's M3), Wald intervals on the log scale, 3 starts.""",
     "nca": """examples:
   pkcalc nca scenarios/demo-study.toml
   pkcalc nca --levels levels.csv --doses doses.csv --auc-method linear --out nca-results/
@@ -192,6 +202,30 @@ def _nca_options(args: argparse.Namespace, study) -> dict:
     return nca_options(raw, file=study.files[0] if args.study else None)
 
 
+def cmd_fit(args: argparse.Namespace) -> int:
+    from .runner import load_study_input, run_fit
+    from .schema.fitopts import fit_options
+
+    study = load_study_input(args.study, args.levels, args.doses, args.subjects)
+    raw = dict(study.options.get("fit", {}))
+    cli = {"weighting": args.weighting, "error_model": args.error_model, "blq": args.blq,
+           "ci": args.ci, "prior": args.prior, "starts": args.starts}
+    if args.weighting:
+        raw.pop("error_model", None)
+    if args.error_model:
+        raw.pop("weighting", None)
+    raw.update({k: v for k, v in cli.items() if v is not None})
+    if args.with_nca:
+        raw["with_nca"] = True
+    if args.nca_threshold is not None:
+        raw["nca_threshold"] = args.nca_threshold
+    base = Path(args.study).parent if args.study and "prior" not in cli else None
+    if args.prior:
+        base = None
+    options = fit_options(raw, base=base, file=args.study)
+    return _finish(run_fit(study, options, colour=_colour()), args)
+
+
 def cmd_nca(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_nca
 
@@ -282,6 +316,29 @@ def build_parser() -> argparse.ArgumentParser:
                    help="fraction of the product that is active drug (default 1)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--out", metavar="DIR", help="write CSV, JSON and PNG files to DIR")
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+
+    p = _add(sub, "fit", cmd_fit,
+             "Estimate clearance, volume and half-life per subject from sampled levels.")
+    _study_args(p)
+    group = p.add_mutually_exclusive_group()
+    group.add_argument("--weighting", choices=["uniform", "inverse_observed",
+                                               "inverse_observed_squared",
+                                               "inverse_predicted_squared"],
+                       help="least squares with fixed weights")
+    group.add_argument("--error-model", choices=["additive", "proportional", "combined"],
+                       help="maximum likelihood with this residual error (default proportional)")
+    p.add_argument("--blq", choices=["drop", "likelihood", "half_lloq"],
+                   help="levels below LLOQ: drop (M1), likelihood (M3, default), half_lloq")
+    p.add_argument("--prior", metavar="PRIOR.toml", help="MAP estimation with this prior")
+    p.add_argument("--ci", choices=["wald", "profile"], help="interval method (default wald)")
+    p.add_argument("--starts", type=int, metavar="N", help="number of starts (default 3)")
+    p.add_argument("--with-nca", action="store_true",
+                   help="show the fit beside non-compartmental results")
+    p.add_argument("--nca-threshold", type=float, metavar="PERCENT",
+                   help="flag fit/NCA differences beyond this (default 20)")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.add_argument("--out", metavar="DIR", help="write fit.csv, fit.json and plots to DIR")
     p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
 
     p = _add(sub, "nca", cmd_nca,

@@ -27,6 +27,7 @@ import numpy as np
 __all__ = [
     "LN2",
     "concentration",
+    "concentration_and_gradient",
     "concentration_repeated",
     "derived_parameters",
     "expand_doses",
@@ -245,6 +246,60 @@ def concentration(t, start, amount, duration, clearance, volume):
     rise = is_bolus - np.expm1(-k * u)
     term = coef * rise * np.exp(-k * w)
     return np.where(dt >= 0, term, 0.0).sum(axis=-1)
+
+
+def concentration_and_gradient(t, start, amount, duration, clearance, volume):
+    """Concentration and its analytic derivatives with respect to ``ln CL`` and ``ln V``.
+
+    With ``k = CL/V`` each event term is ``C_e = coef * g(k)``: for an infusion
+    ``coef = A/(CL d)``, ``g = (1 - exp(-k u)) exp(-k w)``; for a bolus
+    ``coef = A/V``, ``g = exp(-k (t - s))`` (see :func:`concentration`).  With
+    ``D = k dC_e/dk``::
+
+        infusion:  dC/d lnCL = -C_e + D,   dC/d lnV = -D
+        bolus:     dC/d lnCL = D,          dC/d lnV = -C_e - D
+
+    and ``k g'(k)`` written with ``expm1`` for precision:
+    ``g'(k) = exp(-k w) [u exp(-k u) + w expm1(-k u)]`` (infusion),
+    ``-(t - s) exp(-k (t - s))`` (bolus).
+
+    Parameters
+    ----------
+    t : array_like, shape (..., T), h
+    start, amount, duration : array_like, shape (..., E)
+    clearance, volume : array_like, shape (...)
+
+    Returns
+    -------
+    conc : ndarray, shape (..., T), mg/L
+    grad : ndarray, shape (..., T, 2)
+        ``dC/d ln CL`` and ``dC/d ln V``.
+    """
+    t = np.asarray(t, dtype=float)[..., :, None]
+    start = np.asarray(start, dtype=float)[..., None, :]
+    amount = np.asarray(amount, dtype=float)[..., None, :]
+    duration = np.asarray(duration, dtype=float)[..., None, :]
+    clearance = np.asarray(clearance, dtype=float)[..., None, None]
+    volume = np.asarray(volume, dtype=float)[..., None, None]
+    k = clearance / volume
+    is_bolus = duration <= 0
+    coef = amount / (volume * np.where(is_bolus, 1.0, k * duration))
+    dt = t - start
+    active = dt >= 0
+    u = np.clip(dt, 0.0, duration)
+    w = np.maximum(dt - u, 0.0)
+    e_w = np.exp(-k * w)
+    em1 = np.expm1(-k * u)
+    rise = np.where(is_bolus, 1.0, -em1)
+    term = np.where(active, coef * rise * e_w, 0.0)
+    # k g'(k): infusion e^{-kw}[u e^{-ku} + w expm1(-ku)], bolus -(dt) e^{-k dt} (u = 0, w = dt)
+    dg = np.where(is_bolus, -w * e_w, e_w * (u * (1.0 + em1) + w * em1))
+    d_term = np.where(active, coef * k * dg, 0.0)
+    d_lncl = np.where(is_bolus, d_term, -term + d_term)
+    d_lnv = np.where(is_bolus, -term - d_term, -d_term)
+    conc = term.sum(axis=-1)
+    grad = np.stack([d_lncl.sum(axis=-1), d_lnv.sum(axis=-1)], axis=-1)
+    return conc, grad
 
 
 def concentration_repeated(t, dose, duration, interval, clearance, volume, count=None):

@@ -177,3 +177,75 @@ def nca_figure(result, conv: UnitConverter | None = None) -> Figure | None:
                  fontsize=9)
     ax.legend(fontsize=7, frameon=False)
     return fig
+
+
+def fit_figure(result, conv: UnitConverter | None = None) -> Figure:
+    """Observed levels and the fitted course of one subject, with the doses shown."""
+    conv = conv or UnitConverter()
+    t_end = max(float(np.nanmax(result.time)) * 1.05, 1e-3)
+    starts = np.asarray(result.dose_start)
+    ends = starts + np.asarray(result.dose_duration)
+    grid = np.unique(np.concatenate([np.linspace(0, t_end, 800), starts, ends,
+                                     starts[result.dose_duration == 0] - 1e-9 * t_end]))
+    grid = grid[(grid >= 0) & (grid <= t_end)]
+    fig, ax = new_figure(6.5, 4.2)
+    ax.plot(conv(grid, "time"), conv(result.predict(grid), "concentration"), color="black",
+            lw=1.4, label="fitted one-compartment course")
+    meas = ~result.blq & np.isfinite(result.observed)
+    ax.plot(conv(result.time[meas], "time"), conv(result.observed[meas], "concentration"), "o",
+            color="black", mfc="white", ms=5, label="measured levels")
+    if result.blq.any():
+        lloq = result.observed[result.blq]
+        ax.plot(conv(result.time[result.blq], "time"),
+                conv(np.where(np.isfinite(lloq), lloq, 0.0), "concentration"), "v",
+                color="0.4", ms=6, label="below LLOQ (drawn at the LLOQ)")
+    for s, d in zip(starts, result.dose_duration, strict=True):
+        if d > 0:
+            ax.axvspan(conv(s, "time"), conv(s + d, "time"), ymax=0.04, color="0.55", lw=0)
+        else:
+            ax.plot([conv(s, "time")], [0], "^", color="0.3", ms=7, clip_on=False)
+    cl, v = result.estimates["clearance"].value, result.estimates["volume"].value
+    ax.set_title(f"subject {result.subject}: CL {cl:.3g} L/h, V {v:.3g} L "
+                 f"({result.method.replace('_', ' ')})", fontsize=9)
+    ax.set_xlabel(f"time [{conv.unit('time')}] (doses marked at the bottom)")
+    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_ylim(bottom=0)
+    ax.legend(fontsize=7, frameon=False)
+    return fig
+
+
+def diagnostics_figure(results, conv: UnitConverter | None = None) -> Figure:
+    """Observed vs predicted, weighted residuals vs time and vs prediction (all subjects)."""
+    conv = conv or UnitConverter()
+    fig = Figure(figsize=(10.5, 3.8), layout="constrained")
+    axes = fig.subplots(1, 3)
+    fig.text(0.01, 0.005, CAUTION_SHORT, fontsize=6.5, color="0.25")
+    obs = np.concatenate([r.observed[~r.blq] for r in results]) if results else np.empty(0)
+    pred = np.concatenate([r.predicted[~r.blq] for r in results]) if results else np.empty(0)
+    time = np.concatenate([r.time[~r.blq] for r in results]) if results else np.empty(0)
+    wres = np.concatenate([r.weighted_residuals[~r.blq] for r in results]) if results \
+        else np.empty(0)
+    ok = np.isfinite(obs) & np.isfinite(pred)
+    ax = axes[0]
+    ax.plot(conv(pred[ok], "concentration"), conv(obs[ok], "concentration"), "o", ms=3.5,
+            color="black", mfc="white")
+    top = float(np.nanmax(np.r_[obs[ok], pred[ok], 1e-9])) * 1.05
+    ax.plot([0, conv(top, "concentration")], [0, conv(top, "concentration")], "--",
+            color="0.4", lw=1)
+    ax.set_xlabel(f"predicted [{conv.unit('concentration')}]")
+    ax.set_ylabel(f"observed [{conv.unit('concentration')}]")
+    ax.set_title("observed vs predicted", fontsize=9)
+    for ax, x, label in ((axes[1], conv(time, "time"), f"time [{conv.unit('time')}]"),
+                         (axes[2], conv(pred, "concentration"),
+                          f"predicted [{conv.unit('concentration')}]")):
+        okw = np.isfinite(wres) & np.isfinite(x)
+        ax.plot(x[okw], wres[okw], "o", ms=3.5, color="black", mfc="white")
+        ax.axhline(0, color="0.4", lw=1)
+        for y in (-2, 2):
+            ax.axhline(y, color="0.6", lw=0.8, ls=":")
+        ax.set_xlabel(label)
+        ax.set_ylabel("weighted residual")
+        ax.set_title(f"weighted residuals vs {label.split(' [')[0]}", fontsize=9)
+    for ax in axes:
+        ax.grid(True, color="0.88", linewidth=0.6)
+    return fig

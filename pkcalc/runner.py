@@ -341,3 +341,83 @@ def run_nca(study, options: dict[str, Any], *, colour: bool = False) -> Run:
     return Run("nca", EXIT_PARTIAL if study.failures else EXIT_OK, doc, text,
                list(study.files), study.title or "pkcalc nca", figures, files,
                lambda pngs: nca_sections(doc, pngs), warnings=warnings)
+
+
+def run_fit(study, options, *, colour: bool = False) -> Run:
+    """``pkcalc fit``: every subject of a study, optionally beside NCA."""
+    from .fit import compare_with_nca, fit_subjects
+    from .report.fit import fit_json, fit_text
+    from .report.html import fit_sections
+
+    conv = report.UnitConverter(study.output or None)
+    results, unfit = fit_subjects(study.subjects, options)
+    failures = list(study.failures) + [
+        (f"subject '{sid}'", PkcalcInputError(reason, item=f"subject '{sid}'"))
+        for sid, reason in unfit]
+    if not results:
+        raise PkcalcInputError([p for _, err in failures for p in err.problems]
+                               or "no subject could be fitted")
+    comparisons = None
+    if options.with_nca:
+        from .nca import nca_subject
+        from .schema import nca_options
+
+        nopts = nca_options(study.options.get("nca"))
+        ncas = [nca_subject(s.subject, s.time, s.conc, s.blq, s.dose_start, s.dose_amount,
+                            s.dose_duration, auc_method=nopts["auc_method"],
+                            blq_rule=nopts["blq_rule"],
+                            terminal_times=nopts["terminal_points"].get(s.subject))
+                for s in study.subjects]
+        comparisons = compare_with_nca(results, ncas, options.nca_threshold)
+    settings = {"method": options.method.replace("_", " "),
+                "error model": options.error_model or "-",
+                "weighting": options.weighting or "-", "BLQ": options.blq,
+                "intervals": options.ci, "starts": options.starts}
+    if options.prior is not None:
+        settings["prior"] = options.prior.source or "inline"
+    doc = fit_json(results, conv, title=study.title, failures=failures,
+                   comparisons=comparisons, settings=settings)
+    doc["warnings"] = list(study.warnings)
+    text = fit_text(results, conv, title=study.title, failures=failures,
+                    comparisons=comparisons, warnings=study.warnings, settings=settings,
+                    colour=colour)
+
+    def figures() -> dict[str, Any]:
+        from .plots import diagnostics_figure, fit_figure
+
+        figs = {r.subject: fit_figure(r, conv) for r in results}
+        figs["__diagnostics__"] = diagnostics_figure(results, conv)
+        return figs
+
+    def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
+        import pandas as pd
+
+        slugs = unique_slugs([r.subject for r in results])
+        targets = [out / "fit.csv", out / "fit-levels.csv", out / "fit.json",
+                   out / "diagnostics.png"] + [out / f"fit-{s}.png" for s in slugs]
+        check_not_input(targets, study.files)
+        written = [report.write_atomic(out / f"fit-{s}.png", pngs[r.subject])
+                   for r, s in zip(results, slugs, strict=True)]
+        written.append(report.write_atomic(out / "diagnostics.png", pngs["__diagnostics__"]))
+        rows = []
+        for d in doc["subjects"]:
+            row = {"subject": d["subject"], "converged": d["converged"]}
+            for name, e in d["estimates"].items():
+                unit = doc["units"][{"half_life": "time"}.get(name, name)]
+                for key in ("value", "se", "rse_percent", "ci_low", "ci_high"):
+                    suffix = "" if key == "value" else f"_{key}"
+                    row[f"{name}{suffix} [{'%' if key == 'rse_percent' else unit}]"] = e[key]
+            row.update({k: d[k] for k in ("objective", "aic", "bic", "n_obs", "n_blq",
+                                          "starts", "starts_agreed")})
+            row["warnings"] = " | ".join(d["warnings"])
+            rows.append(row)
+        written.append(report.write_atomic(out / "fit.csv", pd.DataFrame(rows).to_csv(
+            index=False)))
+        levels = pd.concat([r.to_frame() for r in results])
+        written.append(report.write_atomic(out / "fit-levels.csv", levels.to_csv(index=False)))
+        written.append(report.write_atomic(out / "fit.json", report.dumps(doc)))
+        return written
+
+    return Run("fit", EXIT_PARTIAL if failures else EXIT_OK, doc, text, list(study.files),
+               study.title or "pkcalc fit", figures, files,
+               lambda pngs: fit_sections(doc, pngs), warnings=list(study.warnings))

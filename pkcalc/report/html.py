@@ -25,6 +25,7 @@ __all__ = [
     "HtmlReport",
     "design_sections",
     "figure_item",
+    "fit_sections",
     "input_items",
     "nca_sections",
     "predict_sections",
@@ -251,3 +252,50 @@ def nca_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
             items.append(figure_item(figures[s["subject"]],
                                      f"subject {s['subject']}: log concentration vs time"))
     return [{"heading": "Non-compartmental analysis", "blocks": items}]
+
+
+def fit_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
+    """Estimates table, residual error, the NCA comparison and the plots."""
+    u = doc["units"]
+    rows = []
+    for d in doc["subjects"]:
+        e = d["estimates"]
+        rows.append([d["subject"], e["clearance"]["value"], e["clearance"]["ci_low"],
+                     e["clearance"]["ci_high"], e["volume"]["value"], e["volume"]["ci_low"],
+                     e["volume"]["ci_high"], e["half_life"]["value"], e["half_life"]["ci_low"],
+                     e["half_life"]["ci_high"], d["objective"], d["aic"], d["n_obs"],
+                     d["n_blq"], "yes" if d["converged"] else "NO"])
+    items: list[dict[str, Any]] = [
+        lines_item("notes", [f"{k}: {v}" for k, v in doc["settings"].items()]),
+        table_item(["subject", f"CL [{u['clearance']}]", "low", "high", f"V [{u['volume']}]",
+                    "low", "high", f"t½ [{u['time']}]", "low", "high", "-2lnL", "AIC",
+                    "levels", "BLQ", "converged"], rows,
+                   "Estimates with 95 % intervals (built on the log scale)")]
+    res = [[d["subject"], k, e["value"], e["rse_percent"]] for d in doc["subjects"]
+           for k, e in d["residual_error"].items()]
+    if res:
+        items.append(table_item(["subject", "residual error", "value", "RSE %"], res,
+                                "Residual error (additive in concentration units, "
+                                "proportional as a fraction)"))
+    if doc.get("comparison_with_nca"):
+        crow = [[c["subject"], r["quantity"], r["fit"], r["nca"], r["ratio"]]
+                for c in doc["comparison_with_nca"] for r in c["rows"]]
+        items.append(table_item(["subject", "quantity", "fit", "NCA", "fit / NCA"], crow,
+                                "Fit beside non-compartmental analysis"))
+        flags = [f"subject {c['subject']}: {f}" for c in doc["comparison_with_nca"]
+                 for f in c["flags"]]
+        if flags:
+            items.append(lines_item("flags", flags))
+    warns = [f"subject {d['subject']}: {w}" for d in doc["subjects"] for w in d["warnings"]]
+    if warns:
+        items.append(lines_item("warnings", warns))
+    notes = [f"subject {d['subject']}: {n}" for d in doc["subjects"] for n in d["notes"]]
+    if notes:
+        items.append(lines_item("notes", notes))
+    if "__diagnostics__" in figures:
+        items.append(figure_item(figures["__diagnostics__"], "Goodness of fit (all subjects)"))
+    for d in doc["subjects"]:
+        if d["subject"] in figures:
+            items.append(figure_item(figures[d["subject"]],
+                                     f"subject {d['subject']}: levels and fitted course"))
+    return [{"heading": "Individual fits (one-compartment)", "blocks": items}]

@@ -1,0 +1,28 @@
+"""Individual estimation of clearance, volume and half-life from sampled levels.
+
+- ``batch``: subjects as padded arrays; least-squares, likelihood (additive,
+  proportional, combined; Beal's M3 for BLQ) and MAP objectives with analytic
+  gradients;
+- ``solver``: a damped scoring minimiser vectorised over subjects and starts;
+- ``individual``: data-based starts, multi-start, uncertainty (Wald on the
+  log scale or profile likelihood), identifiability, diagnostics.
+"""
+
+from .batch import Batch, build_batch, evaluate
+from .compare import Comparison, compare_with_nca
+from .individual import Estimate, FitResult, fit_subjects, starting_values
+from .solver import Solution, minimise
+
+__all__ = [
+    "Batch",
+    "Comparison",
+    "Estimate",
+    "FitResult",
+    "Solution",
+    "build_batch",
+    "compare_with_nca",
+    "evaluate",
+    "fit_subjects",
+    "minimise",
+    "starting_values",
+]

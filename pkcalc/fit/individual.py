@@ -1,0 +1,671 @@
+"""Individual estimation: least squares, maximum likelihood and MAP, with uncertainty.
+
+:func:`fit_subjects` fits every subject of a study independently (all at once,
+as rows of one vectorised problem).  Parameters are estimated on the log
+scale; starting values come from the data (a grid over the elimination rate
+with the volume solved in closed form for each grid value), plus a small
+multi-start.  The covariance is ``s^2 (J'WJ)^-1`` for least squares and twice
+the inverse observed information of ``-2 ln L`` (or of the posterior) for
+likelihood and MAP fits; 95 % intervals are built on the log scale and
+transformed back, so they are asymmetric.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from functools import lru_cache
+
+import numpy as np
+
+from .. import model
+from .._format import format_table, short
+from ..plausibility import parameter_warnings
+from ..schema.fitopts import FitOptions
+from ..schema.study import SubjectData
+from .batch import Batch, build_batch, evaluate, n_error_params
+from .solver import minimise
+
+__all__ = ["Estimate", "FitResult", "fit_subjects", "starting_values"]
+
+Z95 = 1.959963984540054
+CHI2_95 = 3.841458820694124
+#: Starts whose objectives differ by less than this (in -2 ln L units) agree.
+AGREE_TOL = 1e-3
+#: Identifiability: smallest eigenvalue of the information in correlation form.
+IDENTIFIABILITY_EIG = 1e-8
+#: Relative SE above which an estimate is called poorly determined (common practice).
+POOR_RSE = 50.0
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """A parameter estimate with its uncertainty (canonical units).
+
+    ``se`` is the delta-method SE on the natural scale; ``rse_percent`` is
+    100 x SE of the log; ``ci_low``/``ci_high`` the 95 % interval, built on the
+    log scale (Wald) or by profile likelihood.  None when not estimable.
+    """
+
+    value: float
+    se: float | None = None
+    rse_percent: float | None = None
+    ci_low: float | None = None
+    ci_high: float | None = None
+
+    def __str__(self) -> str:
+        if self.se is None:
+            return f"{short(self.value)} (SE not available)"
+        return (f"{short(self.value)} (SE {short(self.se)}, 95% CI {short(self.ci_low)}-"
+                f"{short(self.ci_high)})")
+
+
+@dataclass
+class FitResult:
+    """One subject's fit.
+
+    Attributes
+    ----------
+    subject : str
+    converged : bool
+    method : str
+        ``least_squares``, ``likelihood`` or ``map``.
+    error_model, weighting, blq_method : str or None
+    estimates : dict of str to Estimate
+        ``clearance`` (L/h), ``volume`` (L), ``elimination_rate`` (1/h), ``half_life`` (h).
+    correlation : float or None
+        Correlation of the ln CL and ln V estimates.
+    residual_error : dict of str to Estimate
+        ``additive`` (mg/L) and/or ``proportional`` (fraction), estimated or fixed.
+    objective : float
+        ``-2 ln L`` at the estimate (for MAP: of the posterior, constants included).
+    aic, bic : float
+    n_obs, n_blq, n_params : int
+    starts, starts_agreed, iterations : int
+    time, observed, predicted : ndarray
+        Levels used (BLQ rows carry their LLOQ), predictions.
+    blq : ndarray of bool
+    residuals, weighted_residuals : ndarray
+    warnings, notes : list of str
+    prior : dict
+        MAP only: typical values, ``eta`` and the prior variance remaining.
+    """
+
+    subject: str
+    converged: bool
+    method: str
+    error_model: str | None
+    weighting: str | None
+    blq_method: str
+    estimates: dict[str, Estimate]
+    correlation: float | None
+    residual_error: dict[str, Estimate]
+    objective: float
+    aic: float
+    bic: float
+    n_obs: int
+    n_blq: int
+    n_params: int
+    starts: int
+    starts_agreed: int
+    iterations: int
+    time: np.ndarray
+    observed: np.ndarray
+    predicted: np.ndarray
+    blq: np.ndarray
+    residuals: np.ndarray
+    weighted_residuals: np.ndarray
+    dose_start: np.ndarray
+    dose_amount: np.ndarray
+    dose_duration: np.ndarray
+    warnings: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    prior: dict[str, float] = field(default_factory=dict)
+    weight: float | None = None
+
+    @property
+    def clearance(self) -> float:
+        return self.estimates["clearance"].value
+
+    @property
+    def volume(self) -> float:
+        return self.estimates["volume"].value
+
+    def conf_int(self, name: str) -> tuple[float | None, float | None]:
+        """95 % interval of a parameter."""
+        e = self.estimates[name]
+        return e.ci_low, e.ci_high
+
+    def predict(self, t) -> np.ndarray:
+        """Concentration (mg/L) at times ``t`` (h) with the estimates."""
+        return model.concentration(np.asarray(t, float), self.dose_start, self.dose_amount,
+                                   self.dose_duration, self.clearance, self.volume)
+
+    def to_frame(self):
+        """Per-level diagnostics: time, observed, predicted, residuals, BLQ flag."""
+        import pandas as pd
+
+        return pd.DataFrame({"subject": self.subject, "time [h]": self.time,
+                             "observed [mg/L]": self.observed,
+                             "predicted [mg/L]": self.predicted, "blq": self.blq,
+                             "residual [mg/L]": self.residuals,
+                             "weighted_residual": self.weighted_residuals})
+
+    def summary(self) -> str:
+        """Plain-text summary (canonical units)."""
+        rows = [[k, e.value, e.se, e.rse_percent, e.ci_low, e.ci_high]
+                for k, e in self.estimates.items()]
+        rows += [[f"residual {k}", e.value, e.se, e.rse_percent, e.ci_low, e.ci_high]
+                 for k, e in self.residual_error.items()]
+        lines = [f"Subject {self.subject}: {self.method.replace('_', ' ')}"
+                 f" ({self.error_model or self.weighting}), "
+                 f"{'converged' if self.converged else 'NOT converged'}, "
+                 f"-2lnL {short(self.objective, 6)}, AIC {short(self.aic, 6)}, "
+                 f"{self.n_obs} levels ({self.n_blq} BLQ), {self.starts_agreed}/{self.starts} "
+                 "starts agreed",
+                 format_table(["parameter", "value", "SE", "RSE %", "CI low", "CI high"], rows)]
+        lines += [f"warning: {w}" for w in self.warnings]
+        lines += [f"note: {n}" for n in self.notes]
+        return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------- data
+def _prepare(s: SubjectData, opts: FitOptions):
+    """Levels after the BLQ method: times, values, used/censored masks, notes."""
+    notes = []
+    t, y = s.time.copy(), s.conc.copy()
+    blq = s.blq
+    obs = ~blq
+    cens = np.zeros_like(blq)
+    if blq.any():
+        if opts.blq == "drop":
+            notes.append(f"{int(blq.sum())} BLQ level(s) dropped (Beal's M1)")
+        elif opts.blq == "half_lloq":
+            y = np.where(blq, s.lloq / 2, y)
+            obs = obs | blq
+            notes.append(f"{int(blq.sum())} BLQ level(s) set to LLOQ/2 (substitution, for "
+                         "comparison; Beal's M5/M6 family)")
+        else:
+            y = np.where(blq, s.lloq, y)
+            cens = blq.copy()
+            notes.append(f"{int(blq.sum())} BLQ level(s) enter as P(C < LLOQ) (censored "
+                         "likelihood, Beal's M3)")
+    w = np.ones_like(t)
+    if opts.weighting in ("inverse_observed", "inverse_observed_squared"):
+        bad = obs & ~(y > 0)
+        if bad.any():
+            obs = obs & ~bad
+            notes.append(f"{int(bad.sum())} level(s) of zero left out: weights 1/observed need "
+                         "positive levels")
+        power = 1.0 if opts.weighting == "inverse_observed" else 2.0
+        w = np.where(obs, np.abs(y) ** -power, 0.0)
+    return t, np.nan_to_num(y), obs, cens, w, notes
+
+
+def starting_values(batch: Batch, n_grid: int = 48) -> np.ndarray:
+    """Data-based starting ``ln CL, ln V`` for each row.
+
+    For each row a log-spaced grid of elimination rates (half-lives from 1/50
+    to 20 times the sampling span) is tried; for each rate the volume follows
+    in closed form from ``ln C = ln S(t; k) - ln V`` (mean log residual over the
+    measured levels), and the rate with the smallest squared log residual wins.
+
+    Returns
+    -------
+    ndarray, shape (B, 3, 2)
+        The best grid point and two rates 2.5 times faster and slower (each
+        with its own closed-form volume).
+    """
+    b = batch.t.shape[0]
+    first = batch.start.min(axis=1, initial=np.inf, where=batch.amount > 0)
+    first = np.where(np.isfinite(first), first, 0.0)
+    span = np.maximum((batch.t * batch.obs).max(axis=1) - first, 1e-3)
+    grid = np.exp(np.linspace(np.log(model.LN2 / (20 * span)), np.log(model.LN2 / (span / 50)),
+                              n_grid).T)                                  # (B, G) in 1/h
+    mult = np.array([1.0, 2.5, 1 / 2.5])
+
+    def fit_v(k):  # k (B, G) -> (ln V, sse)
+        s = model.concentration(batch.t[:, None, :], batch.start[:, None, :],
+                                batch.amount[:, None, :], batch.duration[:, None, :], k,
+                                np.ones_like(k))                           # V = 1
+        pos = batch.obs[:, None, :] & (batch.y[:, None, :] > 0) & (s > 0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            d = np.where(pos, np.log(s) - np.log(np.where(pos, batch.y[:, None, :], 1.0)), 0.0)
+        n = np.maximum(pos.sum(axis=2), 1)
+        lnv = d.sum(axis=2) / n
+        sse = np.where(pos, (d - lnv[..., None]) ** 2, 0.0).sum(axis=2)
+        sse = np.where(pos.sum(axis=2) > 0, sse, np.inf)
+        return lnv, sse
+
+    _, sse = fit_v(grid)
+    best = np.argmin(sse, axis=1)
+    k_best = grid[np.arange(b), best]
+    ks = k_best[:, None] * mult[None, :]                                  # (B, 3)
+    lnv3, _ = fit_v(ks)
+    lncl3 = np.log(ks) + lnv3
+    return np.stack([lncl3, lnv3], axis=-1)
+
+
+def _error_starts(batch: Batch, theta: np.ndarray) -> np.ndarray:
+    """Residual-error starting values from the structural start."""
+    f = model.concentration(batch.t, batch.start, batch.amount, batch.duration,
+                            np.exp(theta[:, 0]), np.exp(theta[:, 1]))
+    pos = batch.obs & (batch.y > 0) & (f > 0)
+    n = np.maximum(pos.sum(axis=1), 1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        lr = np.where(pos, np.log(np.where(pos, batch.y, 1.0) / np.where(pos, f, 1.0)), 0.0)
+    sp = np.clip(np.sqrt((lr**2).sum(axis=1) / n), 0.02, 1.0)
+    ymed = np.array([np.median(batch.y[i][batch.obs[i]]) if batch.obs[i].any() else 1.0
+                     for i in range(batch.t.shape[0])])
+    sa = np.clip(np.sqrt((np.where(batch.obs, batch.y - f, 0.0) ** 2).sum(axis=1) / n),
+                 1e-3 * ymed, None)
+    if batch.error == "additive":
+        return np.log(sa)[:, None]
+    if batch.error == "proportional":
+        return np.log(sp)[:, None]
+    return np.stack([np.log(np.maximum(0.1 * ymed * sp, 1e-6)), np.log(0.8 * sp)], axis=1)
+
+
+# --------------------------------------------------------------------------- fitting
+def _bounds(batch: Batch, q: int) -> np.ndarray:
+    """Lower bounds of the log-parameters: residual SDs are kept above a floor
+    (additive 1e-4 of the median level, proportional 0.1 %) so that a component
+    the data do not support ends at its bound instead of at zero variance."""
+    lower = np.full((batch.t.shape[0], q), -30.0)
+    if batch.kind == "likelihood":
+        ymed = np.array([np.median(batch.y[i][batch.obs[i]]) if batch.obs[i].any() else 1.0
+                         for i in range(batch.t.shape[0])])
+        floors = {"additive": [np.log(1e-4 * ymed)],
+                  "proportional": [np.full_like(ymed, np.log(1e-3))],
+                  "combined": [np.log(1e-4 * ymed), np.full_like(ymed, np.log(1e-3))]}
+        for j, floor in enumerate(floors[batch.error]):
+            lower[:, 2 + j] = floor
+    return lower
+
+
+def _solve(batch: Batch, theta0: np.ndarray, opts: FitOptions):
+    def fun(theta, idx):
+        obj, grad, info, _ = evaluate(batch.rows(idx), theta)
+        return obj, grad, info
+
+    lower = _bounds(batch, theta0.shape[1])
+    if opts.weighting != "inverse_predicted_squared":
+        return minimise(fun, theta0, lower=lower)
+    # iteratively reweighted: w = 1/f^2 from the current prediction
+    theta = theta0
+    sol = None
+    for _ in range(25):
+        f = model.concentration(batch.t, batch.start, batch.amount, batch.duration,
+                                np.exp(theta[:, 0]), np.exp(theta[:, 1]))
+        w = np.where(batch.obs, 1.0 / np.maximum(f, 1e-12) ** 2, 0.0)
+        batch = Batch(**{**batch.__dict__, "w": w})
+        sol = minimise(fun, theta)
+        change = np.abs(sol.theta - theta).max()
+        theta = sol.theta
+        if change < 1e-8:
+            break
+    return sol
+
+
+def _hessian(batch: Batch, theta: np.ndarray, h: float = 1e-5) -> np.ndarray:
+    """Observed information: central differences of the analytic gradient (once, at
+    the estimate -- not in the iterations)."""
+    b, q = theta.shape
+    plus = np.repeat(theta[:, None, :], q, axis=1) + h * np.eye(q)
+    minus = np.repeat(theta[:, None, :], q, axis=1) - h * np.eye(q)
+    rows = np.repeat(np.arange(b), q)
+    _, gp, _, _ = evaluate(batch.rows(rows), plus.reshape(-1, q))
+    _, gm, _, _ = evaluate(batch.rows(rows), minus.reshape(-1, q))
+    hess = ((gp - gm) / (2 * h)).reshape(b, q, q)
+    return 0.5 * (hess + np.swapaxes(hess, 1, 2))
+
+
+def _estimate(lnvalue: float, var: float | None, quantile: float = Z95) -> Estimate:
+    """Estimate with a Wald interval on the log scale, ``exp(ln x +- q SE)``."""
+    value = math.exp(lnvalue)
+    if var is None or not np.isfinite(var) or var < 0 or var > 25.0:
+        return Estimate(value)  # SE of the log above 5: no meaningful interval
+    se = math.sqrt(var)
+    return Estimate(value, value * se, 100 * se, math.exp(lnvalue - quantile * se),
+                    math.exp(lnvalue + quantile * se))
+
+
+@lru_cache(maxsize=256)
+def wald_quantile(n_obs: int, n_params: int, kind: str) -> float:
+    """97.5 % quantile for Wald intervals: Student's t on ``n - p`` degrees of freedom
+    for least squares and likelihood fits (small-sample practice in nonlinear
+    regression, e.g. Bates & Watts 1988 -- from memory), normal for MAP fits."""
+    from scipy.stats import t as student_t
+
+    if kind == "map" or n_obs - n_params < 1:
+        return Z95
+    return float(student_t.ppf(0.975, n_obs - n_params))
+
+
+def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None
+                 ) -> tuple[list[FitResult], list[tuple[str, str]]]:
+    """Fit every subject independently.
+
+    Parameters
+    ----------
+    subjects : list of SubjectData
+    options : FitOptions, optional
+        Default: proportional error model, BLQ by censored likelihood.
+
+    Returns
+    -------
+    results : list of FitResult
+    failures : list of (subject, reason)
+        Subjects that could not be fitted at all (e.g. no measurable level).
+    """
+    opts = options or FitOptions()
+    failures: list[tuple[str, str]] = []
+    prepared, keep = [], []
+    for s in subjects:
+        t, y, obs, cens, w, notes = _prepare(s, opts)
+        if not (obs & (y > 0)).any():
+            failures.append((s.subject, "no measurable level to fit"))
+            continue
+        if opts.prior is None and (obs.sum() + cens.sum()) < 2:
+            failures.append((s.subject, "fewer than 2 levels: individual fitting needs more "
+                                        "(give a prior for a MAP estimate)"))
+            continue
+        prepared.append((t, y, obs, cens, w, notes))
+        keep.append(s)
+    if not keep:
+        return [], failures
+    kind = opts.method
+    batch = build_batch(keep, t_list=[p[0] for p in prepared], y_list=[p[1] for p in prepared],
+                        obs_list=[p[2] for p in prepared], cens_list=[p[3] for p in prepared],
+                        w_list=[p[4] for p in prepared], kind=kind,
+                        error=opts.error_model or "additive")
+    prior_info = {}
+    if kind == "map":
+        batch, prior_info, bad = _with_prior(batch, keep, opts)
+        for i in sorted(bad, reverse=True):
+            failures.append((keep[i].subject, "the prior is per kg but the subject has no "
+                                              "weight"))
+        if bad:
+            good = np.array([i for i in range(len(keep)) if i not in bad], dtype=int)
+            batch = batch.rows(good)
+            keep = [keep[i] for i in good]
+            prepared = [prepared[i] for i in good]
+            prior_info = {k: v[good] for k, v in prior_info.items()}
+        if not keep:
+            return [], failures
+    starts = starting_values(batch)                                        # (B, 3, 2)
+    n_starts = opts.starts
+    if n_starts > 3:
+        spread = np.exp(np.linspace(-1.5, 1.5, n_starts - 3))
+        extra = starts[:, :1, :] + np.stack([np.log(spread), np.zeros_like(spread)], -1)[None]
+        starts = np.concatenate([starts, extra], axis=1)
+    starts = starts[:, :n_starts, :]
+    if kind == "map":
+        # the prior mean is a natural extra start for sparse data
+        starts = np.concatenate([batch.mu[:, None, :], starts], axis=1)[:, :max(n_starts, 1)]
+        n_starts = starts.shape[1]
+    b = len(keep)
+    rep = batch.repeat(n_starts)
+    theta0 = starts.reshape(b * n_starts, 2)
+    if kind == "likelihood":
+        theta0 = np.concatenate([theta0, _error_starts(rep, theta0)], axis=1)
+    sol = _solve(rep, theta0, opts)
+    obj = sol.obj.reshape(b, n_starts)
+    obj_ok = np.where(np.isfinite(obj), obj, np.inf)
+    best = np.argmin(obj_ok, axis=1)
+    sel = np.arange(b) * n_starts + best
+    theta = sol.theta[sel]
+    agreed = (np.abs(obj_ok - obj_ok[np.arange(b), best][:, None]) <= AGREE_TOL).sum(axis=1)
+    final = rep.rows(sel)
+    if opts.weighting == "inverse_predicted_squared":
+        f0 = model.concentration(final.t, final.start, final.amount, final.duration,
+                                 np.exp(theta[:, 0]), np.exp(theta[:, 1]))
+        final = Batch(**{**final.__dict__, "w": np.where(final.obs, 1 / np.maximum(
+            f0, 1e-12) ** 2, 0.0)})
+    f_obj, _, info, f = evaluate(final, theta)
+    hess = info if kind == "least_squares" else _hessian(final, theta)
+    results = []
+    for i, s in enumerate(keep):
+        results.append(_result(s, opts, final.rows(np.array([i])), theta[i], f_obj[i], hess[i],
+                               f[i], bool(sol.converged[sel[i]]), sol.message[sel[i]],
+                               int(sol.iterations[sel[i]]), n_starts, int(agreed[i]),
+                               prepared[i][5], {k: v[i] for k, v in prior_info.items()}))
+    return results, failures
+
+
+def _with_prior(batch: Batch, subjects: list[SubjectData], opts: FitOptions):
+    prior = opts.prior
+    assert prior is not None
+    mu, bad = [], []
+    for i, s in enumerate(subjects):
+        try:
+            cl, v = prior.typical(s.weight)
+        except ValueError:
+            bad.append(i)
+            cl, v = prior.clearance, prior.volume
+        mu.append([math.log(cl), math.log(v)])
+    mu = np.asarray(mu)
+    oc, ov, r = prior.omega_clearance, prior.omega_volume, prior.correlation
+    omega = np.array([[oc**2, r * oc * ov], [r * oc * ov, ov**2]])
+    b = len(subjects)
+    batch = Batch(**{**batch.__dict__, "kind": "map", "error": prior.error_model,
+                     "sa": np.full(b, prior.additive), "sp": np.full(b, prior.proportional),
+                     "mu": mu, "omega_inv": np.repeat(np.linalg.inv(omega)[None], b, axis=0)})
+    info = {"mu": mu, "omega": np.repeat(omega[None], b, axis=0)}
+    return batch, info, bad
+
+
+def _result(s: SubjectData, opts: FitOptions, row: Batch, theta: np.ndarray, obj: float,
+            hess: np.ndarray, f: np.ndarray, converged: bool, message: str, iterations: int,
+            n_starts: int, agreed: int, notes: list[str], prior: dict) -> FitResult:
+    kind = row.kind
+    warnings: list[str] = []
+    notes = list(notes)
+    n_used = int(row.obs[0].sum() + row.cens[0].sum())
+    n_blq = int(s.blq.sum())
+    n_real = s.time.size
+    t, y, obs, cens = row.t[0, :n_real], row.y[0, :n_real], row.obs[0, :n_real], \
+        row.cens[0, :n_real]
+    pred = f[:n_real]
+    q = theta.size
+    n_err = n_error_params(row)
+    # objective on the -2 ln L scale
+    if kind == "least_squares":
+        ss = obj
+        n = max(n_used, 1)
+        w = row.w[0, :n_real]
+        m2ll = n * math.log(2 * math.pi * max(ss, 1e-300) / n) + n - float(
+            np.log(w[obs]).sum())
+        p = 3
+        s2 = ss / (n - 2) if n > 2 else math.nan
+        cov = None
+        if n > 2:
+            try:
+                cov = s2 * np.linalg.inv(hess / 2)
+            except np.linalg.LinAlgError:
+                cov = None
+        else:
+            warnings.append("two levels and two parameters: no degrees of freedom left for "
+                            "standard errors")
+        sd = np.sqrt(s2 / np.maximum(w, 1e-300)) if np.isfinite(s2) else np.full(n_real, np.nan)
+    else:
+        m2ll = float(obj)
+        p = 2 + n_err
+        try:
+            cov = 2 * np.linalg.inv(hess)
+        except np.linalg.LinAlgError:
+            cov = None
+        var, _, _ = _variance_of(row, theta, pred)
+        sd = np.sqrt(var)
+    # identifiability
+    identifiable = True
+    if cov is not None and np.all(np.isfinite(cov)):
+        h2 = hess[:2, :2]
+        d = np.sqrt(np.maximum(np.diag(h2), 1e-300))
+        eig = np.linalg.eigvalsh(h2 / np.outer(d, d))
+        if eig.min() < IDENTIFIABILITY_EIG or np.any(np.diag(cov)[:2] <= 0):
+            identifiable = False
+    elif cov is not None or n_used > p:
+        identifiable = False  # singular or non-finite information
+    if not identifiable:
+        which = _undetermined(row, theta, n_real)
+        warnings.append(f"not identifiable: {which}; standard errors and intervals are not "
+                        "reported")
+        cov = None
+    var = np.diag(cov) if cov is not None else [None] * q
+    lncl, lnv = float(theta[0]), float(theta[1])
+    qt = wald_quantile(n_used, p, kind)
+    ests = {"clearance": _estimate(lncl, var[0], qt), "volume": _estimate(lnv, var[1], qt)}
+    if cov is not None:
+        var_k = cov[0, 0] + cov[1, 1] - 2 * cov[0, 1]
+        corr = float(cov[0, 1] / math.sqrt(cov[0, 0] * cov[1, 1]))
+    else:
+        var_k, corr = None, None
+    ests["elimination_rate"] = _estimate(lncl - lnv, var_k, qt)
+    ests["half_life"] = _estimate(math.log(model.LN2) - (lncl - lnv), var_k, qt)
+    if opts.ci == "profile" and cov is not None:
+        for j, name in ((0, "clearance"), (1, "volume")):
+            lo, hi, note = _profile(row, theta, j, obj, math.sqrt(var[j]), opts, n_used)
+            if note:
+                notes.append(f"{name}: {note}")
+            e = ests[name]
+            ests[name] = Estimate(e.value, e.se, e.rse_percent, lo, hi)
+        notes.append("95 % intervals of clearance and volume by profile likelihood; derived "
+                     "ones (k, half-life) by the Wald method on the log scale")
+    residual: dict[str, Estimate] = {}
+    if kind == "likelihood":
+        names = {"additive": ["additive"], "proportional": ["proportional"],
+                 "combined": ["additive", "proportional"]}[row.error]
+        floor = _bounds(row, q)[0]
+        for j, name in enumerate(names):
+            at_floor = theta[2 + j] <= floor[2 + j] + 1e-6
+            residual[name] = _estimate(float(theta[2 + j]), None if at_floor or cov is None
+                                       else var[2 + j], qt)
+            if at_floor:
+                notes.append(f"the {name} error component is at its lower bound: the levels "
+                             f"support the other component alone")
+    elif kind == "map":
+        if row.sa[0] > 0:
+            residual["additive"] = Estimate(float(row.sa[0]))
+        if row.sp[0] > 0:
+            residual["proportional"] = Estimate(float(row.sp[0]))
+        notes.append("MAP estimate: residual error fixed at the prior's values")
+    else:
+        residual["scale"] = Estimate(math.sqrt(max(s2, 0.0)) if np.isfinite(s2) else math.nan)
+    if not converged:
+        warnings.append(f"did not converge: {message}")
+    if agreed < n_starts:
+        notes.append(f"{n_starts - agreed} of {n_starts} starts ended at a higher objective "
+                     "(a local minimum); the best is reported")
+    for name, e in ests.items():
+        if e.rse_percent is not None and e.rse_percent > POOR_RSE and name in ("clearance",
+                                                                                "volume"):
+            warnings.append(f"{name} is poorly determined (RSE {e.rse_percent:.0f} %)")
+    warnings += parameter_warnings(ests["clearance"].value, ests["volume"].value, s.weight)
+    prior_out: dict[str, float] = {}
+    if kind == "map":
+        mu, omega = prior["mu"], prior["omega"]
+        prior_out = {"typical_clearance": math.exp(mu[0]), "typical_volume": math.exp(mu[1]),
+                     "eta_clearance": lncl - mu[0], "eta_volume": lnv - mu[1]}
+        if cov is not None:
+            prior_out["prior_variance_remaining_clearance_percent"] = 100 * cov[0, 0] / omega[
+                0, 0]
+            prior_out["prior_variance_remaining_volume_percent"] = 100 * cov[1, 1] / omega[1, 1]
+            notes.append(
+                f"{prior_out['prior_variance_remaining_clearance_percent']:.0f} % of the prior "
+                f"variance of ln CL and {prior_out['prior_variance_remaining_volume_percent']:.0f}"
+                " % of ln V remain after the levels (100 % = the levels say nothing; low values "
+                "= estimate driven by the data)")
+    observed = np.where(obs | cens, y, np.nan)
+    resid = np.where(obs, y - pred, np.nan)
+    wres = resid / sd if kind != "least_squares" else np.where(
+        obs, np.sqrt(row.w[0, :n_real]) * (y - pred) / math.sqrt(s2) if np.isfinite(s2) and
+        s2 > 0 else np.nan, np.nan)
+    return FitResult(
+        subject=s.subject, converged=converged, method=kind,
+        error_model=opts.error_model if kind != "least_squares" else None,
+        weighting=opts.weighting, blq_method=opts.blq, estimates=ests, correlation=corr,
+        residual_error=residual, objective=m2ll, aic=m2ll + 2 * p,
+        bic=m2ll + p * math.log(max(n_used, 1)), n_obs=n_used, n_blq=n_blq, n_params=p,
+        starts=n_starts, starts_agreed=agreed, iterations=iterations, time=t,
+        observed=observed, predicted=pred, blq=s.blq.copy(), residuals=resid,
+        weighted_residuals=wres, dose_start=s.dose_start, dose_amount=s.dose_amount,
+        dose_duration=s.dose_duration, warnings=warnings, notes=notes, prior=prior_out,
+        weight=s.weight)
+
+
+def _variance_of(row: Batch, theta: np.ndarray, f: np.ndarray):
+    from .batch import _variance
+
+    var, dv, de = _variance(row, theta[None, :], f[None, :])
+    return var[0], dv, de
+
+
+def _undetermined(row: Batch, theta: np.ndarray, n: int) -> str:
+    """Plain words for which parameter the levels do not determine."""
+    _, jac = model.concentration_and_gradient(row.t[0, :n], row.start[0], row.amount[0],
+                                              row.duration[0], math.exp(theta[0]),
+                                              math.exp(theta[1]))
+    used = (row.obs[0, :n] | row.cens[0, :n])
+    f = model.concentration(row.t[0, :n], row.start[0], row.amount[0], row.duration[0],
+                            math.exp(theta[0]), math.exp(theta[1]))
+    rel = np.abs(jac[used]) / np.maximum(f[used], 1e-300)[:, None]
+    if rel[:, 1].max(initial=0.0) < 1e-3:
+        return ("the volume is not determined by these levels (they all lie on the plateau, "
+                "where only clearance matters)")
+    return "clearance and volume cannot be told apart with these sample times"
+
+
+def _profile(row: Batch, theta: np.ndarray, j: int, obj_hat: float, se: float,
+             opts: FitOptions, n_used: int):
+    """Profile-likelihood 95 % interval of parameter ``j`` (ln CL or ln V)."""
+    from scipy.optimize import brentq
+
+    q = theta.size
+    free = [i for i in range(q) if i != j]
+    to_m2ll = (lambda o: n_used * math.log(max(o, 1e-300) / n_used)) if \
+        row.kind == "least_squares" else (lambda o: o)
+    # likelihood-ratio cut-off: chi-square(1) for MAP; for fits that estimate the
+    # residual variance, the small-sample form n ln(1 + t^2/(n - p)) with t the
+    # Student quantile (Bates & Watts 1988, profile t -- from memory)
+    p = 3 if row.kind == "least_squares" else q
+    if row.kind == "map" or n_used - p < 1:
+        cut = CHI2_95
+    else:
+        tq = wald_quantile(n_used, p, row.kind)
+        cut = n_used * math.log1p(tq * tq / (n_used - p))
+    target = to_m2ll(obj_hat) + cut
+    start = {"x": theta[free].copy()}
+
+    def prof(x: float) -> float:
+        def fun(th, idx):
+            full = np.empty((th.shape[0], q))
+            full[:, free] = th
+            full[:, j] = x
+            obj, grad, info, _ = evaluate(row.rows(np.zeros(th.shape[0], int)), full)
+            return obj, grad[:, free], info[:, free][:, :, free]
+        sol = minimise(fun, start["x"][None, :])
+        start["x"] = sol.theta[0]
+        return to_m2ll(float(sol.obj[0])) - target
+
+    bounds = []
+    note = ""
+    for direction in (-1, 1):
+        start["x"] = theta[free].copy()
+        step = max(se, 0.02)
+        inner, outer = theta[j], None
+        for _ in range(30):
+            x = theta[j] + direction * step
+            if prof(x) > 0:
+                outer = x
+                break
+            inner = x
+            step *= 1.8
+        if outer is None:
+            bounds.append(None)
+            note = "the profile likelihood does not close on one side (interval open)"
+            continue
+        start["x"] = theta[free].copy()
+        root = brentq(prof, min(inner, outer), max(inner, outer), xtol=1e-6)
+        bounds.append(math.exp(root))
+    return bounds[0], bounds[1], note

@@ -1,0 +1,275 @@
+"""Options of ``pkcalc fit`` and the prior file of MAP estimation.
+
+Fit options come from the ``[fit]`` table of a study TOML and/or the command
+line (the command line wins).  A prior gives typical clearance and volume
+(absolute, or per kg of body weight), their between-subject variability (CV %
+or SD of the log) with an optional correlation, and the residual error model.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from ..errors import PkcalcInputError, Problem
+from ..units import parse_number_and_unit, parse_unit
+from .base import read_toml
+
+__all__ = [
+    "BLQ_METHODS",
+    "ERROR_MODELS",
+    "WEIGHTINGS",
+    "FitOptions",
+    "Prior",
+    "fit_options",
+    "load_prior",
+    "parse_prior",
+]
+
+WEIGHTINGS = ("uniform", "inverse_observed", "inverse_observed_squared",
+              "inverse_predicted_squared")
+ERROR_MODELS = ("additive", "proportional", "combined")
+BLQ_METHODS = ("drop", "likelihood", "half_lloq")
+CI_METHODS = ("wald", "profile")
+
+
+@dataclass(frozen=True)
+class Prior:
+    """Population prior for MAP estimation (canonical units).
+
+    Attributes
+    ----------
+    clearance, volume : float
+        Typical values, L/h and L (or L/h/kg and L/kg when ``per_kg``).
+    clearance_per_kg, volume_per_kg : bool
+    omega_clearance, omega_volume : float
+        SD of ln CL and ln V between subjects.
+    correlation : float
+        Correlation of ln CL and ln V.
+    additive, proportional : float
+        Residual error: additive SD (mg/L) and proportional SD (fraction).
+    source : str
+        Where the prior came from (file name).
+    """
+
+    clearance: float
+    volume: float
+    omega_clearance: float
+    omega_volume: float
+    correlation: float = 0.0
+    additive: float = 0.0
+    proportional: float = 0.0
+    clearance_per_kg: bool = False
+    volume_per_kg: bool = False
+    source: str = ""
+
+    @property
+    def error_model(self) -> str:
+        if self.additive > 0 and self.proportional > 0:
+            return "combined"
+        return "additive" if self.additive > 0 else "proportional"
+
+    def typical(self, weight: float | None) -> tuple[float, float]:
+        """Typical clearance and volume for a subject (per-kg values need the weight)."""
+        if (self.clearance_per_kg or self.volume_per_kg) and weight is None:
+            raise ValueError("the prior is per kg but the subject has no weight")
+        cl = self.clearance * (weight if self.clearance_per_kg else 1.0)
+        v = self.volume * (weight if self.volume_per_kg else 1.0)
+        return cl, v
+
+
+@dataclass(frozen=True)
+class FitOptions:
+    """Validated fit options.
+
+    ``weighting`` (least squares) and ``error_model`` (likelihood) exclude each
+    other; a ``prior`` makes the fit a MAP estimate with the prior's error model.
+    """
+
+    weighting: str | None = None
+    error_model: str | None = "proportional"
+    blq: str = "likelihood"
+    ci: str = "wald"
+    prior: Prior | None = None
+    starts: int = 3
+    with_nca: bool = False
+    nca_threshold: float = 20.0
+
+    @property
+    def method(self) -> str:
+        if self.prior is not None:
+            return "map"
+        return "least_squares" if self.weighting else "likelihood"
+
+
+def _percent_or_number(text: Any, field: str, problems: list[Problem], file: str | None,
+                       *, allow_percent: bool = True) -> float | None:
+    try:
+        value, unit = parse_number_and_unit(text, field=field)
+    except PkcalcInputError as exc:
+        problems.extend(Problem(p.message, file=file, field=field) for p in exc.problems)
+        return None
+    if unit == "%" and allow_percent:
+        return value / 100.0
+    if unit:
+        problems.append(Problem(f"'{text}' should be a percentage or a plain number",
+                                file=file, field=field))
+        return None
+    return value
+
+
+def parse_prior(raw: dict[str, Any], *, file: str | None = None) -> Prior:
+    """A prior from its table (see the module docstring for the keys)."""
+    problems: list[Problem] = []
+    allowed = {"clearance", "volume", "cv_clearance", "cv_volume", "sd_log_clearance",
+               "sd_log_volume", "correlation", "error"}
+    for key in sorted(set(raw) - allowed):
+        problems.append(Problem("unknown key", file=file, field=f"prior.{key}",
+                                expected=", ".join(sorted(allowed))))
+    typical: dict[str, tuple[float, bool]] = {}
+    for name in ("clearance", "volume"):
+        text = raw.get(name)
+        if text is None:
+            problems.append(Problem("is required", file=file, field=f"prior.{name}"))
+            continue
+        try:
+            value, unit = parse_number_and_unit(text, field=f"prior.{name}")
+            spec = parse_unit(unit, name, field=f"prior.{name}")
+        except PkcalcInputError as exc:
+            problems.extend(Problem(p.message, file=file, field=p.field, expected=p.expected)
+                            for p in exc.problems)
+            continue
+        if not value > 0:
+            problems.append(Problem("must be greater than zero", file=file,
+                                    field=f"prior.{name}"))
+            continue
+        typical[name] = (value * spec.factor, spec.per_kg)
+    omegas: dict[str, float] = {}
+    for name in ("clearance", "volume"):
+        cv, sd = raw.get(f"cv_{name}"), raw.get(f"sd_log_{name}")
+        if (cv is None) == (sd is None):
+            problems.append(Problem("give exactly one of cv_ and sd_log_", file=file,
+                                    field=f"prior.cv_{name}",
+                                    expected="cv_clearance = '30%' or sd_log_clearance = 0.29"))
+            continue
+        if cv is not None:
+            value = _percent_or_number(cv, f"prior.cv_{name}", problems, file)
+            # log-normal: SD of the log from the CV, omega^2 = ln(1 + CV^2)
+            omega = value if value is None or value <= 0 else math.sqrt(math.log1p(value**2))
+        else:
+            omega = _percent_or_number(sd, f"prior.sd_log_{name}", problems, file,
+                                       allow_percent=False)
+        if omega is not None and not omega > 0:
+            problems.append(Problem("between-subject variability must be greater than zero",
+                                    file=file, field=f"prior.cv_{name}"))
+        elif omega is not None:
+            omegas[name] = omega
+    corr = raw.get("correlation", 0.0)
+    if not isinstance(corr, int | float) or not -1 < corr < 1:
+        problems.append(Problem("correlation must be a number in (-1, 1)", file=file,
+                                field="prior.correlation"))
+        corr = 0.0
+    error = raw.get("error", {})
+    if not isinstance(error, dict):
+        problems.append(Problem("must be a table", file=file, field="prior.error"))
+        error = {}
+    for key in sorted(set(error) - {"additive", "proportional"}):
+        problems.append(Problem("unknown key", file=file, field=f"prior.error.{key}",
+                                expected="additive, proportional"))
+    add = prop = 0.0
+    if "additive" in error:
+        try:
+            value, unit = parse_number_and_unit(error["additive"], field="prior.error.additive")
+            add = value * parse_unit(unit, "concentration",
+                                     field="prior.error.additive").factor
+        except PkcalcInputError as exc:
+            problems.extend(Problem(p.message, file=file, field=p.field, expected=p.expected)
+                            for p in exc.problems)
+    if "proportional" in error:
+        prop = _percent_or_number(error["proportional"], "prior.error.proportional", problems,
+                                  file) or 0.0
+    if add < 0 or prop < 0 or (add == 0 and prop == 0 and not problems):
+        problems.append(Problem("the residual error needs additive and/or proportional SD > 0",
+                                file=file, field="prior.error",
+                                expected="[prior.error] proportional = '10%', additive = "
+                                         "'0.1 mg/L'"))
+    if problems:
+        raise PkcalcInputError(problems)
+    return Prior(typical["clearance"][0], typical["volume"][0], omegas["clearance"],
+                 omegas["volume"], float(corr), add, prop, typical["clearance"][1],
+                 typical["volume"][1], source=file or "")
+
+
+def load_prior(path: str | Path) -> Prior:
+    """A prior TOML file with a ``[prior]`` table."""
+    data = read_toml(path)
+    if set(data) - {"prior", "title"} or not isinstance(data.get("prior"), dict):
+        raise PkcalcInputError("a prior file holds one [prior] table (and an optional title)",
+                               file=str(path), field="prior")
+    return parse_prior(data["prior"], file=str(path))
+
+
+def fit_options(raw: dict[str, Any] | None = None, *, base: Path | None = None,
+                file: str | None = None) -> FitOptions:
+    """Validate fit options (study ``[fit]`` table merged with command-line values)."""
+    raw = {k: v for k, v in (raw or {}).items() if v is not None}
+    problems: list[Problem] = []
+    allowed = {"weighting", "error_model", "blq", "ci", "prior", "starts", "with_nca",
+               "nca_threshold"}
+    for key in sorted(set(raw) - allowed):
+        problems.append(Problem("unknown key", file=file, field=f"fit.{key}",
+                                expected=", ".join(sorted(allowed))))
+    weighting = raw.get("weighting")
+    error_model = raw.get("error_model")
+    if weighting is not None and error_model is not None:
+        problems.append(Problem("give a weighting (least squares) or an error model "
+                                "(likelihood), not both", file=file, field="fit.weighting"))
+    if weighting is not None and weighting not in WEIGHTINGS:
+        problems.append(Problem(f"unknown weighting '{weighting}'", file=file,
+                                field="fit.weighting", expected=", ".join(WEIGHTINGS)))
+    if error_model is not None and error_model not in ERROR_MODELS:
+        problems.append(Problem(f"unknown error model '{error_model}'", file=file,
+                                field="fit.error_model", expected=", ".join(ERROR_MODELS)))
+    if weighting is None and error_model is None:
+        error_model = "proportional"
+    blq = raw.get("blq", "drop" if weighting else "likelihood")
+    if blq not in BLQ_METHODS:
+        problems.append(Problem(f"unknown BLQ method '{blq}'", file=file, field="fit.blq",
+                                expected=", ".join(BLQ_METHODS)))
+    if blq == "likelihood" and weighting is not None:
+        problems.append(Problem("the censored likelihood (Beal's M3) needs an error model, "
+                                "not a least-squares weighting", file=file, field="fit.blq",
+                                expected="--error-model ... or --blq drop|half_lloq"))
+    ci = raw.get("ci", "wald")
+    if ci not in CI_METHODS:
+        problems.append(Problem(f"unknown interval method '{ci}'", file=file, field="fit.ci",
+                                expected=", ".join(CI_METHODS)))
+    prior = None
+    if "prior" in raw:
+        try:
+            if isinstance(raw["prior"], dict):
+                prior = parse_prior(raw["prior"], file=file)
+            else:
+                path = Path(raw["prior"])
+                prior = load_prior(path if path.is_absolute() or base is None else base / path)
+        except PkcalcInputError as exc:
+            problems.extend(exc.problems)
+        if prior is not None and (weighting is not None):
+            problems.append(Problem("a prior (MAP) uses the prior's error model; drop the "
+                                    "weighting", file=file, field="fit.weighting"))
+    starts = raw.get("starts", 3)
+    if not isinstance(starts, int) or not 1 <= starts <= 20:
+        problems.append(Problem("starts must be a whole number from 1 to 20", file=file,
+                                field="fit.starts"))
+    threshold = raw.get("nca_threshold", 20.0)
+    if not isinstance(threshold, int | float) or not threshold > 0:
+        problems.append(Problem("must be a positive percentage", file=file,
+                                field="fit.nca_threshold"))
+    if problems:
+        raise PkcalcInputError(problems)
+    if prior is not None:
+        error_model = prior.error_model
+    return FitOptions(weighting, None if weighting else error_model, blq, ci, prior,
+                      int(starts), bool(raw.get("with_nca", False)), float(threshold))
