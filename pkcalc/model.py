@@ -30,6 +30,7 @@ __all__ = [
     "concentration_and_gradient",
     "concentration_repeated",
     "derived_parameters",
+    "event_geometry",
     "expand_doses",
     "plateau_concentration",
     "resolve_clearance_volume",
@@ -229,26 +230,61 @@ def concentration(t, start, amount, duration, clearance, volume):
     >>> round(float(c[0]), 3)  # 30 mg/h for 8 h, CL 3 L/h, t½ 8 h: half of 10 mg/L
     5.0
     """
-    t = np.asarray(t, dtype=float)[..., :, None]
-    start = np.asarray(start, dtype=float)[..., None, :]
+    u, w, active = event_geometry(t, start, duration)
+    return _sum_events(_event_terms(u, w, active, amount, duration, clearance, volume)[0])
+
+
+def _sum_events(x: np.ndarray) -> np.ndarray:
+    """Sum over the last (event) axis; a matrix product with ones is several times
+    faster than ``x.sum(axis=-1)`` for short last axes."""
+    if x.shape[-1] == 1:
+        return x[..., 0]
+    return x @ np.ones(x.shape[-1])
+
+
+def _event_terms(u, w, active, amount, duration, clearance, volume):
+    """Each event's contribution ``coef (1 - exp(-k u)) exp(-k w)`` (or the bolus form),
+    and the pieces the gradient reuses."""
     amount = np.asarray(amount, dtype=float)[..., None, :]
     duration = np.asarray(duration, dtype=float)[..., None, :]
     clearance = np.asarray(clearance, dtype=float)[..., None, None]
     volume = np.asarray(volume, dtype=float)[..., None, None]
     k = clearance / volume
-    is_bolus = duration <= 0
-    # per-event coefficient: A/(V k d) for infusions, A/V for boluses
-    coef = amount / (volume * np.where(is_bolus, 1.0, k * duration))
+    bolus = (duration <= 0).astype(float)
+    # A/(V k d) for infusions, A/V for boluses; zero before the event starts
+    coef = active * amount / (volume * (bolus + (1.0 - bolus) * k * duration))
+    e_w = np.exp(-k * w)
+    em1 = np.expm1(-k * u)
+    # (1 - exp(-k u)) for infusions; 1 for boluses (u is 0 there, so em1 is 0)
+    return coef * (bolus - em1) * e_w, (coef, k, e_w, em1, bolus)
+
+
+def event_geometry(t, start, duration):
+    """Parts of the single-event response that do not depend on the parameters.
+
+    Parameters
+    ----------
+    t : array_like, shape (..., T), h
+    start, duration : array_like, shape (..., E), h
+
+    Returns
+    -------
+    u, w : ndarray, shape (..., T, E), h
+        Time infused so far, ``clip(t - s, 0, d)``, and time since the infusion
+        ended, ``t - s - u`` (0 before the event).
+    active : ndarray of bool, shape (..., T, E)
+        ``t >= s``.
+    """
+    t = np.asarray(t, dtype=float)[..., :, None]
+    start = np.asarray(start, dtype=float)[..., None, :]
+    duration = np.asarray(duration, dtype=float)[..., None, :]
     dt = t - start
     u = np.clip(dt, 0.0, duration)
-    w = np.maximum(dt - u, 0.0)
-    # (1 - exp(-k u)) for infusions; 1 for boluses (u is 0 there)
-    rise = is_bolus - np.expm1(-k * u)
-    term = coef * rise * np.exp(-k * w)
-    return np.where(dt >= 0, term, 0.0).sum(axis=-1)
+    return u, np.maximum(dt - u, 0.0), dt >= 0
 
 
-def concentration_and_gradient(t, start, amount, duration, clearance, volume):
+def concentration_and_gradient(t, start, amount, duration, clearance, volume, *,
+                               geometry=None):
     """Concentration and its analytic derivatives with respect to ``ln CL`` and ``ln V``.
 
     With ``k = CL/V`` each event term is ``C_e = coef * g(k)``: for an infusion
@@ -268,37 +304,24 @@ def concentration_and_gradient(t, start, amount, duration, clearance, volume):
     t : array_like, shape (..., T), h
     start, amount, duration : array_like, shape (..., E)
     clearance, volume : array_like, shape (...)
+    geometry : tuple, optional
+        ``(u, w, active)`` from :func:`event_geometry` for these times and events,
+        to skip recomputing it when only the parameters change (fitting).
 
     Returns
     -------
     conc : ndarray, shape (..., T), mg/L
-    grad : ndarray, shape (..., T, 2)
-        ``dC/d ln CL`` and ``dC/d ln V``.
+    grad : ndarray, shape (2, ..., T)
+        ``grad[0] = dC/d ln CL`` and ``grad[1] = dC/d ln V``.
     """
-    t = np.asarray(t, dtype=float)[..., :, None]
-    start = np.asarray(start, dtype=float)[..., None, :]
-    amount = np.asarray(amount, dtype=float)[..., None, :]
-    duration = np.asarray(duration, dtype=float)[..., None, :]
-    clearance = np.asarray(clearance, dtype=float)[..., None, None]
-    volume = np.asarray(volume, dtype=float)[..., None, None]
-    k = clearance / volume
-    is_bolus = duration <= 0
-    coef = amount / (volume * np.where(is_bolus, 1.0, k * duration))
-    dt = t - start
-    active = dt >= 0
-    u = np.clip(dt, 0.0, duration)
-    w = np.maximum(dt - u, 0.0)
-    e_w = np.exp(-k * w)
-    em1 = np.expm1(-k * u)
-    rise = np.where(is_bolus, 1.0, -em1)
-    term = np.where(active, coef * rise * e_w, 0.0)
-    # k g'(k): infusion e^{-kw}[u e^{-ku} + w expm1(-ku)], bolus -(dt) e^{-k dt} (u = 0, w = dt)
-    dg = np.where(is_bolus, -w * e_w, e_w * (u * (1.0 + em1) + w * em1))
-    d_term = np.where(active, coef * k * dg, 0.0)
-    d_lncl = np.where(is_bolus, d_term, -term + d_term)
-    d_lnv = np.where(is_bolus, -term - d_term, -d_term)
-    conc = term.sum(axis=-1)
-    grad = np.stack([d_lncl.sum(axis=-1), d_lnv.sum(axis=-1)], axis=-1)
+    u, w, active = geometry if geometry is not None else event_geometry(t, start, duration)
+    term, (coef, k, e_w, em1, bolus) = _event_terms(u, w, active, amount, duration,
+                                                    clearance, volume)
+    # k g'(k); for boluses u = em1 = 0 and the first part vanishes
+    d_term = coef * k * e_w * (u * (1.0 + em1) + w * em1 - bolus * w)
+    conc = _sum_events(term)
+    grad = np.stack([_sum_events(d_term - (1.0 - bolus) * term),
+                     _sum_events(-bolus * term - d_term)])
     return conc, grad
 
 

@@ -377,3 +377,24 @@ def test_precision_long_half_life(t, amount, duration):
     else:
         ref = rate / (mk * v) * (1 - mpmath.exp(-mk * md)) * mpmath.exp(-mk * (mt - md))
     assert ours == pytest.approx(float(ref), rel=1e-13)
+
+
+def test_analytic_gradient_matches_sympy_and_differences():
+    # d C / d ln CL and d C / d ln V of the closed form, against sympy's symbolic
+    # derivative of the same expressions (an infusion and a bolus).
+    cl_s, v_s, t_s = sp.symbols("CL V t", positive=True)
+    k = cl_s / v_s
+    rate, dur, dose = 100.0, 2.0, 300.0
+    during = rate / cl_s * (1 - sp.exp(-k * t_s))
+    after = rate / cl_s * (1 - sp.exp(-k * dur)) * sp.exp(-k * (t_s - dur))
+    bolus = dose / v_s * sp.exp(-k * t_s)
+    cl, v = 3.0, 40.0
+    times = np.array([0.5, 1.5, 2.0, 5.0, 20.0])
+    _, grad = model.concentration_and_gradient(times, [0.0, 0.0], [rate * dur, dose],
+                                               [dur, 0.0], cl, v)
+    for i, x in enumerate(times):
+        expr = (during if x <= dur else after) + bolus
+        d_cl = float((sp.diff(expr, cl_s) * cl_s).subs({cl_s: cl, v_s: v, t_s: x}))
+        d_v = float((sp.diff(expr, v_s) * v_s).subs({cl_s: cl, v_s: v, t_s: x}))
+        assert grad[0, i] == pytest.approx(d_cl, rel=1e-10)
+        assert grad[1, i] == pytest.approx(d_v, rel=1e-10)

@@ -29,7 +29,7 @@ from scipy.special import log_ndtr
 
 from .. import model
 
-__all__ = ["Batch", "build_batch", "evaluate", "n_error_params"]
+__all__ = ["Batch", "build_batch", "evaluate", "n_error_params", "profiled_sigma"]
 
 LOG_2PI = math.log(2 * math.pi)
 
@@ -71,6 +71,12 @@ class Batch:
     sp: np.ndarray | None = None
     mu: np.ndarray | None = None
     omega_inv: np.ndarray | None = None
+    geometry: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+
+    def __post_init__(self) -> None:
+        if self.geometry is None:  # parameter-free part of the model, computed once
+            object.__setattr__(self, "geometry",
+                               model.event_geometry(self.t, self.start, self.duration))
 
     def rows(self, idx: np.ndarray) -> Batch:
         """The batch restricted to some rows."""
@@ -79,7 +85,8 @@ class Batch:
         return replace(self, t=self.t[idx], y=self.y[idx], w=self.w[idx], obs=self.obs[idx],
                        cens=self.cens[idx], start=self.start[idx], amount=self.amount[idx],
                        duration=self.duration[idx], sa=sub(self.sa), sp=sub(self.sp),
-                       mu=sub(self.mu), omega_inv=sub(self.omega_inv))
+                       mu=sub(self.mu), omega_inv=sub(self.omega_inv),
+                       geometry=tuple(g[idx] for g in self.geometry))
 
     def repeat(self, n: int) -> Batch:
         """Each row repeated ``n`` times consecutively (for several starts)."""
@@ -148,13 +155,83 @@ def _variance(batch: Batch, theta: np.ndarray, f: np.ndarray):
     return np.maximum(v, 1e-300), dv_df, dv_err
 
 
-def evaluate(batch: Batch, theta: np.ndarray):
+def _dot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise ``sum_n a[b, n] b[b, n]`` (einsum: much faster than (a*b).sum(1) here)."""
+    return np.einsum("bn,bn->b", a, b)
+
+
+def _rowsum(a: np.ndarray) -> np.ndarray:
+    return a @ np.ones(a.shape[1])
+
+
+def _gram(w: np.ndarray, jac: np.ndarray) -> np.ndarray:
+    """``sum_n w[b, n] jac[i, b, n] jac[j, b, n]`` for the 2 x 2 structural block."""
+    j0, j1 = jac
+    w0 = w * j0
+    g01 = _dot(w0, j1)
+    out = np.empty((w.shape[0], 2, 2))
+    out[:, 0, 0] = _dot(w0, j0)
+    out[:, 1, 1] = _dot(w * j1, j1)
+    out[:, 0, 1] = g01
+    out[:, 1, 0] = g01
+    return out
+
+
+def _block_sum(s: np.ndarray, e: list[np.ndarray], jac: np.ndarray) -> np.ndarray:
+    """``sum_n`` of the vectors ``s * jac (+) e`` (structural part, error parts)."""
+    out = np.empty((s.shape[0], 2 + len(e)))
+    out[:, 0] = _dot(s, jac[0])
+    out[:, 1] = _dot(s, jac[1])
+    for j, x in enumerate(e):
+        out[:, 2 + j] = _rowsum(x)
+    return out
+
+
+def _block_gram(w: np.ndarray, s: np.ndarray, e: list[np.ndarray], jac: np.ndarray, *,
+                structural_weight: np.ndarray | None = None) -> np.ndarray:
+    """``sum_n w v v'`` for the vectors ``v = s * jac (+) e``; the structural block may be
+    given its own weight (to add a mean term to the same Gram)."""
+    q = 2 + len(e)
+    out = np.empty((w.shape[0], q, q))
+    out[:, :2, :2] = _gram(w * s * s if structural_weight is None else structural_weight, jac)
+    for i, ei in enumerate(e):
+        wse = w * s * ei
+        cross = np.stack([_dot(wse, jac[0]), _dot(wse, jac[1])], axis=1)
+        out[:, 2 + i, :2] = cross
+        out[:, :2, 2 + i] = cross
+        for j, ej in enumerate(e):
+            out[:, 2 + i, 2 + j] = _dot(w * ei, ej)
+    return out
+
+
+def profiled_sigma(batch: Batch, f: np.ndarray, floor: np.ndarray) -> np.ndarray:
+    """ln of the residual SD that maximises the likelihood for given predictions.
+
+    For a pure additive or proportional model without censored levels the
+    maximum is closed form: ``s^2 = mean(r^2)`` or ``mean((r/f)^2)``.
+    """
+    o = batch.obs
+    r = batch.y - f
+    if batch.error == "proportional":
+        r = r / np.where(o & (f > 0), f, 1.0)
+    n = np.maximum(_rowsum(o.astype(float)), 1.0)
+    s2 = _rowsum(np.where(o, r * r, 0.0)) / n
+    return np.maximum(0.5 * np.log(np.maximum(s2, 1e-300)), floor)
+
+
+def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None = None):
     """Objective, gradient and scoring matrix for each row.
 
     Parameters
     ----------
     batch : Batch
     theta : ndarray, shape (B, q)
+    sigma_floor : ndarray, shape (B,), optional
+        Profile the residual SD out (likelihood kind, pure additive or
+        proportional error, no censored levels): ``theta`` then holds only
+        ``ln CL, ln V``; the SD takes its closed-form optimum (not below
+        ``exp(sigma_floor)``), the gradient is the partial one (envelope theorem)
+        and the scoring matrix the Schur complement for the structural block.
 
     Returns
     -------
@@ -167,45 +244,51 @@ def evaluate(batch: Batch, theta: np.ndarray):
     """
     cl, v_ = np.exp(theta[:, 0]), np.exp(theta[:, 1])
     f, jac = model.concentration_and_gradient(batch.t, batch.start, batch.amount,
-                                              batch.duration, cl, v_)
-    q = theta.shape[1]
+                                              batch.duration, cl, v_, geometry=batch.geometry)
     if batch.kind == "least_squares":
         r = np.where(batch.obs, batch.y - f, 0.0)
         wr = batch.w * r
-        obj = (wr * r).sum(axis=1)
-        grad = -2 * np.einsum("bn,bnk->bk", wr, jac)
-        info = 2 * np.einsum("bn,bni,bnj->bij", batch.w * batch.obs, jac, jac)
+        obj = _dot(wr, r)
+        grad = -2 * _block_sum(wr, [], jac)
+        info = 2 * _gram(batch.w * batch.obs, jac)
         return obj, grad, info, f
+    if sigma_floor is not None:
+        theta = np.concatenate([theta, profiled_sigma(batch, f, sigma_floor)[:, None]], axis=1)
     var, dv_df, dv_err = _variance(batch, theta, f)
-    # full derivative arrays (B, N, q): mean and variance
-    dmu = np.zeros((*f.shape, q))
-    dmu[..., :2] = jac
-    dvar = np.zeros((*f.shape, q))
-    dvar[..., :2] = dv_df[..., None] * jac
-    for j, d in enumerate(dv_err):
-        dvar[..., 2 + j] = d
+    # Derivatives of the mean are jac (structural only); derivatives of the variance
+    # are dv_df * jac (structural) and dv_err[j] (error parameters).  A per-level
+    # vector "s * jac (+) e" is kept as (s, e) so no (B, N, q) arrays are built.
     r = batch.y - f
     o = batch.obs
     var = np.where(o | batch.cens, var, 1.0)  # padding and unused levels: any positive value
-    obj = np.where(o, LOG_2PI + np.log(var) + r * r / var, 0.0).sum(axis=1)
-    g_obs = np.where(o, 1 / var - r * r / var**2, 0.0)[..., None] * dvar \
-        - np.where(o, 2 * r / var, 0.0)[..., None] * dmu
-    grad = g_obs.sum(axis=1)
-    wmu = np.where(o, 2 / var, 0.0)
-    wvar = np.where(o, 1 / var**2, 0.0)
-    info = np.einsum("bn,bni,bnj->bij", wmu, dmu, dmu) + \
-        np.einsum("bn,bni,bnj->bij", wvar, dvar, dvar)
+    inv = 1.0 / var
+    obj = _rowsum(np.where(o, LOG_2PI + np.log(var) + r * r * inv, 0.0))
+    a = np.where(o, inv - r * r * inv * inv, 0.0)    # d obj / d var
+    m = np.where(o, 2 * r * inv, 0.0)                # -d obj / d mean
+    grad = _block_sum(a * dv_df - m, [a * e for e in dv_err], jac)
+    # Fisher information: 2/v dmean dmean' + 1/v^2 dvar dvar' (one Gram for the structural
+    # block: weight 2/v + (dv_df/v)^2)
+    inv2 = np.where(o, inv * inv, 0.0)
+    info = _block_gram(inv2, dv_df, dv_err, jac,
+                       structural_weight=np.where(o, 2 * inv, 0.0) + inv2 * dv_df * dv_df)
     if batch.cens.any():
         c = batch.cens
         sd = np.sqrt(var)
         z = (batch.y - f) / sd
         log_cdf = log_ndtr(z)
         lam = np.exp(-0.5 * z * z - 0.5 * LOG_2PI - log_cdf)   # phi(z) / Phi(z)
-        dz = -dmu / sd[..., None] - (z / (2 * var))[..., None] * dvar
-        obj = obj + np.where(c, -2 * log_cdf, 0.0).sum(axis=1)
-        grad = grad + (np.where(c, -2 * lam, 0.0)[..., None] * dz).sum(axis=1)
-        curv = np.where(c, 2 * lam * (z + lam), 0.0)            # >= 0 (truncated normal)
-        info = info + np.einsum("bn,bni,bnj->bij", curv, dz, dz)
+        # dz = -dmean/sd - z/(2 var) dvar
+        s_z = -1.0 / sd - z * inv / 2 * dv_df
+        e_z = [-z * inv / 2 * e for e in dv_err]
+        obj = obj + _rowsum(np.where(c, -2 * log_cdf, 0.0))
+        g = np.where(c, -2 * lam, 0.0)
+        grad = grad + _block_sum(g * s_z, [g * e for e in e_z], jac)
+        info = info + _block_gram(np.where(c, 2 * lam * (z + lam), 0.0), s_z, e_z, jac)
+    if sigma_floor is not None:
+        i_ss, i_se, i_ee = info[:, :2, :2], info[:, :2, 2], info[:, 2, 2]
+        info = i_ss - i_se[:, :, None] * i_se[:, None, :] / np.maximum(i_ee, 1e-300)[:, None,
+                                                                                   None]
+        return obj, grad[:, :2], info, f
     if batch.kind == "map":
         d = theta[:, :2] - batch.mu
         od = np.einsum("bij,bj->bi", batch.omega_inv, d)

@@ -4,10 +4,12 @@
 as rows of one vectorised problem).  Parameters are estimated on the log
 scale; starting values come from the data (a grid over the elimination rate
 with the volume solved in closed form for each grid value), plus a small
-multi-start.  The covariance is ``s^2 (J'WJ)^-1`` for least squares and twice
-the inverse observed information of ``-2 ln L`` (or of the posterior) for
-likelihood and MAP fits; 95 % intervals are built on the log scale and
-transformed back, so they are asymmetric.
+multi-start.  The covariance is ``s^2 (J'WJ)^-1`` for least squares, the
+inverse Fisher information for likelihood fits (``(J'WJ + Omega^-1)^-1`` form
+for MAP), and the inverse observed information (differences of the analytic
+gradient) when censored levels enter the likelihood; 95 % intervals are built
+on the log scale with a Student-t quantile and transformed back, so they are
+asymmetric.
 """
 
 from __future__ import annotations
@@ -23,8 +25,8 @@ from .._format import format_table, short
 from ..plausibility import parameter_warnings
 from ..schema.fitopts import FitOptions
 from ..schema.study import SubjectData
-from .batch import Batch, build_batch, evaluate, n_error_params
-from .solver import minimise
+from .batch import Batch, _variance, evaluate, n_error_params, profiled_sigma
+from .solver import Solution, minimise
 
 __all__ = ["Estimate", "FitResult", "fit_subjects", "starting_values"]
 
@@ -170,39 +172,62 @@ class FitResult:
 
 
 # --------------------------------------------------------------------------- data
-def _prepare(s: SubjectData, opts: FitOptions):
-    """Levels after the BLQ method: times, values, used/censored masks, notes."""
-    notes = []
-    t, y = s.time.copy(), s.conc.copy()
-    blq = s.blq
-    obs = ~blq
+def _prepare_batch(subjects: list[SubjectData], opts: FitOptions):
+    """All subjects as one padded batch after the BLQ method and the weights.
+
+    Returns the batch, the data-handling notes of each subject and the number of
+    levels each one contributes.
+    """
+    b = len(subjects)
+    n = max((s.time.size for s in subjects), default=1)
+    e = max((s.dose_start.size for s in subjects), default=1)
+    t = np.zeros((b, n))
+    y = np.full((b, n), np.nan)
+    lloq = np.full((b, n), np.nan)
+    blq = np.zeros((b, n), bool)
+    valid = np.zeros((b, n), bool)
+    start, amount, duration = np.zeros((b, e)), np.zeros((b, e)), np.zeros((b, e))
+    for i, s in enumerate(subjects):
+        k = s.time.size
+        t[i, :k], y[i, :k], lloq[i, :k], blq[i, :k], valid[i, :k] = (s.time, s.conc, s.lloq,
+                                                                       s.blq, True)
+        m = s.dose_start.size
+        start[i, :m], amount[i, :m], duration[i, :m] = (s.dose_start, s.dose_amount,
+                                                         s.dose_duration)
+    blq &= valid
+    obs = valid & ~blq
     cens = np.zeros_like(blq)
-    if blq.any():
-        if opts.blq == "drop":
-            notes.append(f"{int(blq.sum())} BLQ level(s) dropped (Beal's M1)")
-        elif opts.blq == "half_lloq":
-            y = np.where(blq, s.lloq / 2, y)
-            obs = obs | blq
-            notes.append(f"{int(blq.sum())} BLQ level(s) set to LLOQ/2 (substitution, for "
-                         "comparison; Beal's M5/M6 family)")
-        else:
-            y = np.where(blq, s.lloq, y)
-            cens = blq.copy()
-            notes.append(f"{int(blq.sum())} BLQ level(s) enter as P(C < LLOQ) (censored "
-                         "likelihood, Beal's M3)")
-    w = np.ones_like(t)
+    n_blq = blq.sum(axis=1)
+    notes: list[list[str]] = [[] for _ in range(b)]
+    if opts.blq == "half_lloq":
+        y = np.where(blq, lloq / 2, y)
+        obs = obs | blq
+    elif opts.blq == "likelihood":
+        y = np.where(blq, lloq, y)
+        cens = blq.copy()
+    text = {"drop": "BLQ level(s) dropped (Beal's M1)",
+            "half_lloq": "BLQ level(s) set to LLOQ/2 (substitution, for comparison; Beal's "
+                         "M5/M6 family)",
+            "likelihood": "BLQ level(s) enter as P(C < LLOQ) (censored likelihood, "
+                          "Beal's M3)"}[opts.blq]
+    for i in np.flatnonzero(n_blq):
+        notes[i].append(f"{int(n_blq[i])} {text}")
+    y = np.where(np.isnan(y), 0.0, y)
+    w = np.ones((b, n))
     if opts.weighting in ("inverse_observed", "inverse_observed_squared"):
         bad = obs & ~(y > 0)
-        if bad.any():
-            obs = obs & ~bad
-            notes.append(f"{int(bad.sum())} level(s) of zero left out: weights 1/observed need "
-                         "positive levels")
+        obs = obs & ~bad
+        for i in np.flatnonzero(bad.any(axis=1)):
+            notes[i].append(f"{int(bad[i].sum())} level(s) of zero left out: weights "
+                            "1/observed need positive levels")
         power = 1.0 if opts.weighting == "inverse_observed" else 2.0
-        w = np.where(obs, np.abs(y) ** -power, 0.0)
-    return t, np.nan_to_num(y), obs, cens, w, notes
+        w = np.where(obs, np.abs(np.where(obs, y, 1.0)) ** -power, 0.0)
+    batch = Batch(t=t, y=y, w=w, obs=obs, cens=cens, start=start, amount=amount,
+                  duration=duration, kind=opts.method, error=opts.error_model or "additive")
+    return batch, notes, obs.sum(axis=1) + cens.sum(axis=1)
 
 
-def starting_values(batch: Batch, n_grid: int = 48) -> np.ndarray:
+def starting_values(batch: Batch, n_grid: int = 16) -> np.ndarray:
     """Data-based starting ``ln CL, ln V`` for each row.
 
     For each row a log-spaced grid of elimination rates (half-lives from 1/50
@@ -238,8 +263,15 @@ def starting_values(batch: Batch, n_grid: int = 48) -> np.ndarray:
         return lnv, sse
 
     _, sse = fit_v(grid)
-    best = np.argmin(sse, axis=1)
-    k_best = grid[np.arange(b), best]
+    best = np.clip(np.argmin(sse, axis=1), 1, n_grid - 2)
+    rows = np.arange(b)
+    # parabola through the best grid point and its neighbours (in ln k) refines the minimum
+    y0, y1, y2 = sse[rows, best - 1], sse[rows, best], sse[rows, best + 1]
+    curv = y0 - 2 * y1 + y2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        shift = np.where(np.isfinite(curv) & (curv > 0), 0.5 * (y0 - y2) / curv, 0.0)
+    step = np.log(grid[:, 1] / grid[:, 0])
+    k_best = grid[rows, best] * np.exp(np.clip(shift, -1.0, 1.0) * step)
     ks = k_best[:, None] * mult[None, :]                                  # (B, 3)
     lnv3, _ = fit_v(ks)
     lncl3 = np.log(ks) + lnv3
@@ -255,8 +287,7 @@ def _error_starts(batch: Batch, theta: np.ndarray) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         lr = np.where(pos, np.log(np.where(pos, batch.y, 1.0) / np.where(pos, f, 1.0)), 0.0)
     sp = np.clip(np.sqrt((lr**2).sum(axis=1) / n), 0.02, 1.0)
-    ymed = np.array([np.median(batch.y[i][batch.obs[i]]) if batch.obs[i].any() else 1.0
-                     for i in range(batch.t.shape[0])])
+    ymed = _row_median(batch)
     sa = np.clip(np.sqrt((np.where(batch.obs, batch.y - f, 0.0) ** 2).sum(axis=1) / n),
                  1e-3 * ymed, None)
     if batch.error == "additive":
@@ -267,14 +298,21 @@ def _error_starts(batch: Batch, theta: np.ndarray) -> np.ndarray:
 
 
 # --------------------------------------------------------------------------- fitting
+def _row_median(batch: Batch) -> np.ndarray:
+    """Median of the measured levels of each row (1 when a row has none)."""
+    has = batch.obs.any(axis=1)
+    values = np.where(batch.obs, batch.y, np.nan)
+    values[~has] = 1.0
+    return np.nanmedian(values, axis=1)
+
+
 def _bounds(batch: Batch, q: int) -> np.ndarray:
     """Lower bounds of the log-parameters: residual SDs are kept above a floor
     (additive 1e-4 of the median level, proportional 0.1 %) so that a component
     the data do not support ends at its bound instead of at zero variance."""
     lower = np.full((batch.t.shape[0], q), -30.0)
     if batch.kind == "likelihood":
-        ymed = np.array([np.median(batch.y[i][batch.obs[i]]) if batch.obs[i].any() else 1.0
-                         for i in range(batch.t.shape[0])])
+        ymed = _row_median(batch)
         floors = {"additive": [np.log(1e-4 * ymed)],
                   "proportional": [np.full_like(ymed, np.log(1e-3))],
                   "combined": [np.log(1e-4 * ymed), np.full_like(ymed, np.log(1e-3))]}
@@ -283,14 +321,59 @@ def _bounds(batch: Batch, q: int) -> np.ndarray:
     return lower
 
 
-def _solve(batch: Batch, theta0: np.ndarray, opts: FitOptions):
+def _solve_starts(batch: Batch, theta0: np.ndarray, opts: FitOptions, n_starts: int):
+    """Solve the first start of every subject, then the other starts; an other start
+    that reaches the first start's optimum stops there (it agrees)."""
+    if n_starts == 1 or opts.weighting == "inverse_predicted_squared":
+        return _solve(batch, theta0, opts)
+    which = np.arange(theta0.shape[0]) % n_starts
+    first, others = np.flatnonzero(which == 0), np.flatnonzero(which > 0)
+    sol1 = _solve(batch.rows(first), theta0[first], opts)
+    ref_theta = np.repeat(np.where(sol1.converged[:, None], sol1.theta, np.nan),
+                          n_starts - 1, axis=0)
+    ref_obj = np.repeat(np.where(sol1.converged, sol1.obj, np.nan), n_starts - 1)
+    sol2 = _solve(batch.rows(others), theta0[others], opts, reference=(ref_theta, ref_obj))
+    out = Solution(np.empty_like(theta0), np.empty(theta0.shape[0]),
+                   np.empty((theta0.shape[0], sol1.grad.shape[1])),
+                   np.empty((theta0.shape[0], *sol1.info.shape[1:])),
+                   np.empty(theta0.shape[0], bool), np.empty(theta0.shape[0], int),
+                   [""] * theta0.shape[0])
+    for idx, part in ((first, sol1), (others, sol2)):
+        out.theta[idx], out.obj[idx], out.converged[idx] = part.theta, part.obj, part.converged
+        out.iterations[idx] = part.iterations
+        for k, r in enumerate(idx):
+            out.message[r] = part.message[k]
+    return out
+
+
+def _solve(batch: Batch, theta0: np.ndarray, opts: FitOptions, reference=None):
+    n_rows = batch.t.shape[0]
+
     def fun(theta, idx):
-        obj, grad, info, _ = evaluate(batch.rows(idx), theta)
+        rows = batch if idx.size == n_rows else batch.rows(idx)
+        obj, grad, info, _ = evaluate(rows, theta)
         return obj, grad, info
 
     lower = _bounds(batch, theta0.shape[1])
+    if batch.kind == "likelihood" and batch.error != "combined" and not batch.cens.any():
+        # the residual SD has a closed-form optimum: profile it out (2 parameters)
+        floor = lower[:, 2]
+
+        def profiled(theta, idx):
+            rows = batch if idx.size == n_rows else batch.rows(idx)
+            obj, grad, info, _ = evaluate(rows, theta, sigma_floor=floor[idx])
+            return obj, grad, info
+
+        ref = None if reference is None else (reference[0][:, :2], reference[1])
+        sol = minimise(profiled, theta0[:, :2], lower=lower[:, :2], reference=ref,
+                       reference_tol=(1e-3, AGREE_TOL))
+        f = model.concentration(batch.t, batch.start, batch.amount, batch.duration,
+                                np.exp(sol.theta[:, 0]), np.exp(sol.theta[:, 1]))
+        sol.theta = np.concatenate([sol.theta, profiled_sigma(batch, f, floor)[:, None]], 1)
+        return sol
     if opts.weighting != "inverse_predicted_squared":
-        return minimise(fun, theta0, lower=lower)
+        return minimise(fun, theta0, lower=lower, reference=reference,
+                        reference_tol=(1e-3, AGREE_TOL))
     # iteratively reweighted: w = 1/f^2 from the current prediction
     theta = theta0
     sol = None
@@ -360,25 +443,21 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None
     """
     opts = options or FitOptions()
     failures: list[tuple[str, str]] = []
-    prepared, keep = [], []
-    for s in subjects:
-        t, y, obs, cens, w, notes = _prepare(s, opts)
-        if not (obs & (y > 0)).any():
-            failures.append((s.subject, "no measurable level to fit"))
-            continue
-        if opts.prior is None and (obs.sum() + cens.sum()) < 2:
-            failures.append((s.subject, "fewer than 2 levels: individual fitting needs more "
-                                        "(give a prior for a MAP estimate)"))
-            continue
-        prepared.append((t, y, obs, cens, w, notes))
-        keep.append(s)
-    if not keep:
-        return [], failures
     kind = opts.method
-    batch = build_batch(keep, t_list=[p[0] for p in prepared], y_list=[p[1] for p in prepared],
-                        obs_list=[p[2] for p in prepared], cens_list=[p[3] for p in prepared],
-                        w_list=[p[4] for p in prepared], kind=kind,
-                        error=opts.error_model or "additive")
+    full, notes_all, n_used = _prepare_batch(subjects, opts)
+    has_level = (full.obs & (full.y > 0)).any(axis=1)
+    enough = (n_used >= 2) | (opts.prior is not None)
+    for i in np.flatnonzero(~has_level):
+        failures.append((subjects[i].subject, "no measurable level to fit"))
+    for i in np.flatnonzero(has_level & ~enough):
+        failures.append((subjects[i].subject, "fewer than 2 levels: individual fitting needs "
+                                              "more (give a prior for a MAP estimate)"))
+    good = np.flatnonzero(has_level & enough)
+    if good.size == 0:
+        return [], failures
+    keep = [subjects[i] for i in good]
+    batch = full if good.size == len(subjects) else full.rows(good)
+    notes = [notes_all[i] for i in good]
     prior_info = {}
     if kind == "map":
         batch, prior_info, bad = _with_prior(batch, keep, opts)
@@ -389,7 +468,7 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None
             good = np.array([i for i in range(len(keep)) if i not in bad], dtype=int)
             batch = batch.rows(good)
             keep = [keep[i] for i in good]
-            prepared = [prepared[i] for i in good]
+            notes = [notes[i] for i in good]
             prior_info = {k: v[good] for k, v in prior_info.items()}
         if not keep:
             return [], failures
@@ -408,29 +487,124 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None
     rep = batch.repeat(n_starts)
     theta0 = starts.reshape(b * n_starts, 2)
     if kind == "likelihood":
-        theta0 = np.concatenate([theta0, _error_starts(rep, theta0)], axis=1)
-    sol = _solve(rep, theta0, opts)
+        # residual-error starts from each subject's best grid point, shared by its starts
+        err0 = _error_starts(batch, starts[:, 0, :])
+        theta0 = np.concatenate([theta0, np.repeat(err0, n_starts, axis=0)], axis=1)
+    sol = _solve_starts(rep, theta0, opts, n_starts)
     obj = sol.obj.reshape(b, n_starts)
     obj_ok = np.where(np.isfinite(obj), obj, np.inf)
     best = np.argmin(obj_ok, axis=1)
     sel = np.arange(b) * n_starts + best
     theta = sol.theta[sel]
     agreed = (np.abs(obj_ok - obj_ok[np.arange(b), best][:, None]) <= AGREE_TOL).sum(axis=1)
-    final = rep.rows(sel)
+    final = batch  # one row per subject, in order (the starts only differ in theta)
     if opts.weighting == "inverse_predicted_squared":
         f0 = model.concentration(final.t, final.start, final.amount, final.duration,
                                  np.exp(theta[:, 0]), np.exp(theta[:, 1]))
         final = Batch(**{**final.__dict__, "w": np.where(final.obs, 1 / np.maximum(
             f0, 1e-12) ** 2, 0.0)})
     f_obj, _, info, f = evaluate(final, theta)
-    hess = info if kind == "least_squares" else _hessian(final, theta)
+    # information for the covariance: the scoring matrix (J'WJ for least squares, the
+    # Fisher information -- plus the prior's -- for likelihood and MAP fits); with
+    # censored levels the observed information, by differences of the analytic gradient
+    censored = final.cens.any(axis=1)
+    hess = info
+    if censored.any() and kind != "least_squares":
+        idx = np.flatnonzero(censored)
+        hess = info.copy()
+        hess[idx] = _hessian(final.rows(idx), theta[idx])
+    cov, identifiable, scale = _covariances(final, f_obj, hess, kind)
+    lower = _bounds(final, theta.shape[1])
+    tables = _structural_estimates(final, theta, cov, kind)
+    n_used = final.n_obs
+    if kind == "least_squares":
+        sd_all = np.sqrt(scale[:, None] / np.maximum(final.w, 1e-300))
+        nn = np.maximum(n_used, 1)
+        logw = np.where(final.obs, np.log(np.where(final.obs, final.w, 1.0)), 0.0).sum(axis=1)
+        m2ll = nn * np.log(2 * np.pi * np.maximum(f_obj, 1e-300) / nn) + nn - logw
+    else:
+        sd_all = np.sqrt(_variance(final, theta, f)[0])
+        m2ll = f_obj
+    observed = np.where(final.obs | final.cens, final.y, np.nan)
+    resid = np.where(final.obs, final.y - f, np.nan)
+    wres = resid / sd_all
     results = []
     for i, s in enumerate(keep):
-        results.append(_result(s, opts, final.rows(np.array([i])), theta[i], f_obj[i], hess[i],
-                               f[i], bool(sol.converged[sel[i]]), sol.message[sel[i]],
-                               int(sol.iterations[sel[i]]), n_starts, int(agreed[i]),
-                               prepared[i][5], {k: v[i] for k, v in prior_info.items()}))
+        k = s.time.size
+        results.append(_result(
+            s, opts, final, i, theta[i], f_obj[i], float(m2ll[i]), int(n_used[i]), cov[i],
+            bool(identifiable[i]), float(scale[i]), lower[i], f[i, :k], observed[i, :k],
+            resid[i, :k], wres[i, :k], tables[i], bool(sol.converged[sel[i]]),
+            sol.message[sel[i]], int(sol.iterations[sel[i]]), n_starts, int(agreed[i]),
+            notes[i], {key: v[i] for key, v in prior_info.items()}))
     return results, failures
+
+
+def _structural_estimates(batch: Batch, theta: np.ndarray, cov: np.ndarray, kind: str
+                          ) -> list[dict[str, Estimate]]:
+    """Clearance, volume, elimination rate and half-life of every row (vectorised).
+
+    ``ln k = ln CL - ln V`` and ``ln t1/2 = ln ln2 - ln k`` share the variance
+    ``var(ln CL) + var(ln V) - 2 cov``; intervals are ``exp(ln x +- q SE)``.
+    """
+    n = batch.n_obs
+    p = 3 if kind == "least_squares" else theta.shape[1]
+    q = np.array([wald_quantile(int(k), p, kind) for k in n])
+    var_k = cov[:, 0, 0] + cov[:, 1, 1] - 2 * cov[:, 0, 1]
+    lnk = theta[:, 0] - theta[:, 1]
+    columns = {"clearance": (theta[:, 0], cov[:, 0, 0]), "volume": (theta[:, 1], cov[:, 1, 1]),
+               "elimination_rate": (lnk, var_k),
+               "half_life": (math.log(model.LN2) - lnk, var_k)}
+    out: list[dict[str, Estimate]] = [{} for _ in range(theta.shape[0])]
+    for name, (ln, var) in columns.items():
+        value = np.exp(ln)
+        ok = np.isfinite(var) & (var >= 0) & (var <= 25.0)
+        se_log = np.sqrt(np.where(ok, var, 0.0))
+        lo, hi = np.exp(ln - q * se_log), np.exp(ln + q * se_log)
+        for i in range(theta.shape[0]):
+            out[i][name] = (Estimate(float(value[i]), float(value[i] * se_log[i]),
+                                     float(100 * se_log[i]), float(lo[i]), float(hi[i]))
+                            if ok[i] else Estimate(float(value[i])))
+    return out
+
+
+def _covariances(batch: Batch, obj: np.ndarray, hess: np.ndarray, kind: str):
+    """Covariance of the log-parameters for every row at once.
+
+    Least squares: ``s^2 (J'WJ)^-1`` with ``s^2 = SS/(n - 2)``; likelihood and MAP:
+    ``2 H^-1`` with ``H`` the observed Hessian of ``-2 ln L`` (or of the posterior).
+    A row is not identifiable when the clearance/volume block of the information,
+    scaled to unit diagonal, has an eigenvalue below :data:`IDENTIFIABILITY_EIG`,
+    or the information is not positive definite.
+
+    Returns
+    -------
+    cov : ndarray, shape (B, q, q)
+        NaN for rows without a usable covariance.
+    identifiable : ndarray of bool, shape (B,)
+    scale : ndarray, shape (B,)
+        ``s^2`` for least squares (NaN without degrees of freedom), else 1.
+    """
+    b = hess.shape[0]
+    n = batch.n_obs
+    if kind == "least_squares":
+        scale = np.where(n > 2, obj / np.maximum(n - 2, 1), np.nan)
+        info = hess / 2
+    else:
+        scale = np.ones(b)
+        info = hess / 2
+    d = np.sqrt(np.maximum(np.diagonal(info, axis1=1, axis2=2), 1e-300))
+    corr = info / (d[:, :, None] * d[:, None, :])
+    eig_all, vec = np.linalg.eigh(corr)
+    eig_cv = np.linalg.eigvalsh(corr[:, :2, :2])
+    identifiable = (eig_cv.min(axis=1) >= IDENTIFIABILITY_EIG) & (eig_all.min(axis=1) > 0)
+    identifiable &= np.all(np.isfinite(info), axis=(1, 2))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inv_corr = np.einsum("bij,bj,bkj->bik", vec, 1 / eig_all, vec)
+        cov = inv_corr / (d[:, :, None] * d[:, None, :]) * scale[:, None, None]
+    bad = ~identifiable | ~np.isfinite(scale)
+    cov[bad] = np.nan
+    return cov, identifiable, scale
 
 
 def _with_prior(batch: Batch, subjects: list[SubjectData], opts: FitOptions):
@@ -455,77 +629,37 @@ def _with_prior(batch: Batch, subjects: list[SubjectData], opts: FitOptions):
     return batch, info, bad
 
 
-def _result(s: SubjectData, opts: FitOptions, row: Batch, theta: np.ndarray, obj: float,
-            hess: np.ndarray, f: np.ndarray, converged: bool, message: str, iterations: int,
-            n_starts: int, agreed: int, notes: list[str], prior: dict) -> FitResult:
-    kind = row.kind
+def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.ndarray,
+            obj: float, m2ll: float, n_used: int, cov: np.ndarray, identifiable: bool,
+            s2: float, lower: np.ndarray, pred: np.ndarray, observed: np.ndarray,
+            resid: np.ndarray, wres: np.ndarray, table: dict[str, Estimate], converged: bool,
+            message: str, iterations: int, n_starts: int, agreed: int, notes: list[str],
+            prior: dict) -> FitResult:
+    kind = batch.kind
     warnings: list[str] = []
     notes = list(notes)
-    n_used = int(row.obs[0].sum() + row.cens[0].sum())
-    n_blq = int(s.blq.sum())
     n_real = s.time.size
-    t, y, obs, cens = row.t[0, :n_real], row.y[0, :n_real], row.obs[0, :n_real], \
-        row.cens[0, :n_real]
-    pred = f[:n_real]
     q = theta.size
-    n_err = n_error_params(row)
-    # objective on the -2 ln L scale
     if kind == "least_squares":
-        ss = obj
-        n = max(n_used, 1)
-        w = row.w[0, :n_real]
-        m2ll = n * math.log(2 * math.pi * max(ss, 1e-300) / n) + n - float(
-            np.log(w[obs]).sum())
         p = 3
-        s2 = ss / (n - 2) if n > 2 else math.nan
-        cov = None
-        if n > 2:
-            try:
-                cov = s2 * np.linalg.inv(hess / 2)
-            except np.linalg.LinAlgError:
-                cov = None
-        else:
+        if n_used <= 2:
             warnings.append("two levels and two parameters: no degrees of freedom left for "
                             "standard errors")
-        sd = np.sqrt(s2 / np.maximum(w, 1e-300)) if np.isfinite(s2) else np.full(n_real, np.nan)
     else:
-        m2ll = float(obj)
-        p = 2 + n_err
-        try:
-            cov = 2 * np.linalg.inv(hess)
-        except np.linalg.LinAlgError:
-            cov = None
-        var, _, _ = _variance_of(row, theta, pred)
-        sd = np.sqrt(var)
-    # identifiability
-    identifiable = True
-    if cov is not None and np.all(np.isfinite(cov)):
-        h2 = hess[:2, :2]
-        d = np.sqrt(np.maximum(np.diag(h2), 1e-300))
-        eig = np.linalg.eigvalsh(h2 / np.outer(d, d))
-        if eig.min() < IDENTIFIABILITY_EIG or np.any(np.diag(cov)[:2] <= 0):
-            identifiable = False
-    elif cov is not None or n_used > p:
-        identifiable = False  # singular or non-finite information
-    if not identifiable:
-        which = _undetermined(row, theta, n_real)
+        p = 2 + n_error_params(batch)
+    if not identifiable and n_used > p - (1 if kind == "least_squares" else 0):
+        which = _undetermined(batch.rows(np.array([i])), theta, n_real)
         warnings.append(f"not identifiable: {which}; standard errors and intervals are not "
                         "reported")
-        cov = None
-    var = np.diag(cov) if cov is not None else [None] * q
-    lncl, lnv = float(theta[0]), float(theta[1])
+    cov = cov if identifiable and math.isfinite(s2) else None
+    var = [None] * q if cov is None else [float(cov[j, j]) for j in range(q)]
     qt = wald_quantile(n_used, p, kind)
-    ests = {"clearance": _estimate(lncl, var[0], qt), "volume": _estimate(lnv, var[1], qt)}
-    if cov is not None:
-        var_k = cov[0, 0] + cov[1, 1] - 2 * cov[0, 1]
-        corr = float(cov[0, 1] / math.sqrt(cov[0, 0] * cov[1, 1]))
-    else:
-        var_k, corr = None, None
-    ests["elimination_rate"] = _estimate(lncl - lnv, var_k, qt)
-    ests["half_life"] = _estimate(math.log(model.LN2) - (lncl - lnv), var_k, qt)
+    ests = dict(table)
+    corr = None if cov is None else float(cov[0, 1] / math.sqrt(cov[0, 0] * cov[1, 1]))
     if opts.ci == "profile" and cov is not None:
         for j, name in ((0, "clearance"), (1, "volume")):
-            lo, hi, note = _profile(row, theta, j, obj, math.sqrt(var[j]), opts, n_used)
+            lo, hi, note = _profile(batch.rows(np.array([i])), theta, j, obj,
+                                    math.sqrt(var[j]), opts, n_used)
             if note:
                 notes.append(f"{name}: {note}")
             e = ests[name]
@@ -535,20 +669,19 @@ def _result(s: SubjectData, opts: FitOptions, row: Batch, theta: np.ndarray, obj
     residual: dict[str, Estimate] = {}
     if kind == "likelihood":
         names = {"additive": ["additive"], "proportional": ["proportional"],
-                 "combined": ["additive", "proportional"]}[row.error]
-        floor = _bounds(row, q)[0]
+                 "combined": ["additive", "proportional"]}[batch.error]
         for j, name in enumerate(names):
-            at_floor = theta[2 + j] <= floor[2 + j] + 1e-6
+            at_floor = theta[2 + j] <= lower[2 + j] + 1e-6
             residual[name] = _estimate(float(theta[2 + j]), None if at_floor or cov is None
                                        else var[2 + j], qt)
             if at_floor:
                 notes.append(f"the {name} error component is at its lower bound: the levels "
                              f"support the other component alone")
     elif kind == "map":
-        if row.sa[0] > 0:
-            residual["additive"] = Estimate(float(row.sa[0]))
-        if row.sp[0] > 0:
-            residual["proportional"] = Estimate(float(row.sp[0]))
+        if batch.sa[i] > 0:
+            residual["additive"] = Estimate(float(batch.sa[i]))
+        if batch.sp[i] > 0:
+            residual["proportional"] = Estimate(float(batch.sp[i]))
         notes.append("MAP estimate: residual error fixed at the prior's values")
     else:
         residual["scale"] = Estimate(math.sqrt(max(s2, 0.0)) if np.isfinite(s2) else math.nan)
@@ -566,7 +699,8 @@ def _result(s: SubjectData, opts: FitOptions, row: Batch, theta: np.ndarray, obj
     if kind == "map":
         mu, omega = prior["mu"], prior["omega"]
         prior_out = {"typical_clearance": math.exp(mu[0]), "typical_volume": math.exp(mu[1]),
-                     "eta_clearance": lncl - mu[0], "eta_volume": lnv - mu[1]}
+                     "eta_clearance": float(theta[0]) - mu[0],
+                     "eta_volume": float(theta[1]) - mu[1]}
         if cov is not None:
             prior_out["prior_variance_remaining_clearance_percent"] = 100 * cov[0, 0] / omega[
                 0, 0]
@@ -576,29 +710,17 @@ def _result(s: SubjectData, opts: FitOptions, row: Batch, theta: np.ndarray, obj
                 f"variance of ln CL and {prior_out['prior_variance_remaining_volume_percent']:.0f}"
                 " % of ln V remain after the levels (100 % = the levels say nothing; low values "
                 "= estimate driven by the data)")
-    observed = np.where(obs | cens, y, np.nan)
-    resid = np.where(obs, y - pred, np.nan)
-    wres = resid / sd if kind != "least_squares" else np.where(
-        obs, np.sqrt(row.w[0, :n_real]) * (y - pred) / math.sqrt(s2) if np.isfinite(s2) and
-        s2 > 0 else np.nan, np.nan)
     return FitResult(
         subject=s.subject, converged=converged, method=kind,
         error_model=opts.error_model if kind != "least_squares" else None,
         weighting=opts.weighting, blq_method=opts.blq, estimates=ests, correlation=corr,
         residual_error=residual, objective=m2ll, aic=m2ll + 2 * p,
-        bic=m2ll + p * math.log(max(n_used, 1)), n_obs=n_used, n_blq=n_blq, n_params=p,
-        starts=n_starts, starts_agreed=agreed, iterations=iterations, time=t,
+        bic=m2ll + p * math.log(max(n_used, 1)), n_obs=n_used, n_blq=int(s.blq.sum()),
+        n_params=p, starts=n_starts, starts_agreed=agreed, iterations=iterations, time=s.time,
         observed=observed, predicted=pred, blq=s.blq.copy(), residuals=resid,
         weighted_residuals=wres, dose_start=s.dose_start, dose_amount=s.dose_amount,
         dose_duration=s.dose_duration, warnings=warnings, notes=notes, prior=prior_out,
         weight=s.weight)
-
-
-def _variance_of(row: Batch, theta: np.ndarray, f: np.ndarray):
-    from .batch import _variance
-
-    var, dv, de = _variance(row, theta[None, :], f[None, :])
-    return var[0], dv, de
 
 
 def _undetermined(row: Batch, theta: np.ndarray, n: int) -> str:
@@ -609,8 +731,8 @@ def _undetermined(row: Batch, theta: np.ndarray, n: int) -> str:
     used = (row.obs[0, :n] | row.cens[0, :n])
     f = model.concentration(row.t[0, :n], row.start[0], row.amount[0], row.duration[0],
                             math.exp(theta[0]), math.exp(theta[1]))
-    rel = np.abs(jac[used]) / np.maximum(f[used], 1e-300)[:, None]
-    if rel[:, 1].max(initial=0.0) < 1e-3:
+    rel_v = np.abs(jac[1][used]) / np.maximum(f[used], 1e-300)
+    if rel_v.max(initial=0.0) < 1e-3:
         return ("the volume is not determined by these levels (they all lie on the plateau, "
                 "where only clearance matters)")
     return "clearance and volume cannot be told apart with these sample times"

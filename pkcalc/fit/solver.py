@@ -47,8 +47,10 @@ class Solution:
 
 
 def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray, *,
-             max_iter: int = 200, tol: float = 1e-10, xtol: float = 1e-7,
-             lower: float | np.ndarray = -30.0, upper: float | np.ndarray = 30.0) -> Solution:
+             max_iter: int = 200, tol: float = 1e-9, xtol: float = 1e-6,
+             lower: float | np.ndarray = -30.0, upper: float | np.ndarray = 30.0,
+             reference: tuple[np.ndarray, np.ndarray] | None = None,
+             reference_tol: tuple[float, float] = (1e-4, 1e-4)) -> Solution:
     """Minimise many small problems at once.
 
     Parameters
@@ -62,6 +64,11 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
         Convergence on the objective (relative) and on the step.
     lower, upper : float or ndarray broadcastable to (B, q)
         Box for the log-parameters (steps are clipped into it).
+    reference : (ndarray (B, q), ndarray (B,)), optional
+        A converged solution of the same problem from another start (NaN where
+        there is none).  A row that comes within ``reference_tol`` (largest
+        log-parameter difference, objective difference) of it has reached that
+        optimum and stops there.
 
     Returns
     -------
@@ -118,6 +125,13 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
         gnorm = np.abs(np.where(at_bound, 0.0, grad[acc])
                        * np.maximum(np.abs(theta[acc]), 1.0)).max(axis=1)
         done |= (gain <= tol * (1.0 + np.abs(obj[acc]))) & (gnorm <= 1e-6)
+        if reference is not None:
+            ref_theta, ref_obj = reference
+            near = (np.abs(theta[acc] - ref_theta[acc]).max(axis=1) <= reference_tol[0]) & \
+                (np.abs(obj[acc] - ref_obj[acc]) <= reference_tol[1])
+            for r in acc[near & ~done]:
+                message[r] = "reached the optimum found from the first start"
+            done |= near
         converged[acc[done]] = True
         active[acc[done]] = False
         stuck = rej[lam[rej] > 1e12]
