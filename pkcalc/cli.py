@@ -241,9 +241,18 @@ def demo_path(name: str = "demo.toml") -> Path:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    """Predict, design and verify the shipped invented examples; one HTML report."""
-    from .runner import run_design, run_predict, run_verify, write_outputs, write_report
-    from .schema import load_design_file
+    """Predict, design, NCA, fit and verify the shipped invented examples; one HTML report."""
+    from .runner import (
+        run_design,
+        run_fit,
+        run_nca,
+        run_predict,
+        run_verify,
+        write_outputs,
+        write_report,
+    )
+    from .schema import load_design_file, load_study_file, nca_options
+    from .schema.fitopts import fit_options
 
     out = Path(args.out or "pkcalc-demo")
     runs = [run_predict(demo_path("demo.toml"), colour=_colour())]
@@ -252,6 +261,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
     runs.append(run_design(sfile.scenarios, failures=sfile.failures, title=sfile.title,
                            units=sfile.output.units(), inputs=[str(design_file)],
                            colour=_colour()))
+    study = load_study_file(demo_path("demo-study.toml"))
+    runs.append(run_nca(study, nca_options(study.options.get("nca")), colour=_colour()))
+    runs.append(run_fit(study, fit_options({**study.options.get("fit", {}), "with_nca": True}),
+                        colour=_colour()))
     runs.append(run_verify(demo_path("reference-cases.toml"), colour=_colour())[0])
     for run in runs:
         _emit(run.text)
