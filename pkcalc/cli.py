@@ -51,6 +51,16 @@ exit code 0 when every check passes, 1 when any check fails, 2 when the file
 
 Defaults: proportional error model by maximum likelihood, BLQ levels by the
 censored likelihood (Beal's M3), Wald intervals on the log scale, 3 starts.""",
+    "population": """examples:
+  pkcalc population scenarios/demo-sparse.toml
+  pkcalc population scenarios/demo-sparse.toml --covariate estimated --bootstrap 200
+  pkcalc population --levels L.csv --doses D.csv --subjects S.csv --method two-stage
+  pkcalc population scenarios/demo-sparse.toml --covariate per_kg --out pop-results/
+
+Iterative two-stage by default (Prevost 1977; Steimer et al. 1984): MAP
+estimates of every subject under the current population prior, then an update
+of the typical values, the between-subject covariance and the residual error,
+until they settle.""",
     "nca": """examples:
   pkcalc nca scenarios/demo-study.toml
   pkcalc nca --levels levels.csv --doses doses.csv --auc-method linear --out nca-results/
@@ -226,6 +236,21 @@ def cmd_fit(args: argparse.Namespace) -> int:
     return _finish(run_fit(study, options, colour=_colour()), args)
 
 
+def cmd_population(args: argparse.Namespace) -> int:
+    from .runner import load_study_input, run_population
+    from .schema.fitopts import population_options
+
+    study = load_study_input(args.study, args.levels, args.doses, args.subjects)
+    raw = dict(study.options.get("population", {}))
+    raw.update({k: v for k, v in {
+        "method": args.method, "error_model": args.error_model, "blq": args.blq,
+        "covariate": args.covariate, "reference_weight": args.reference_weight,
+        "bootstrap": args.bootstrap, "seed": args.seed,
+        "vpc_replicates": args.vpc_replicates}.items() if v is not None})
+    options = population_options(raw, file=args.study)
+    return _finish(run_population(study, options, colour=_colour()), args)
+
+
 def cmd_nca(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_nca
 
@@ -352,6 +377,27 @@ def build_parser() -> argparse.ArgumentParser:
                    help="flag fit/NCA differences beyond this (default 20)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--out", metavar="DIR", help="write fit.csv, fit.json and plots to DIR")
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+
+    p = _add(sub, "population", cmd_population,
+             "Typical values, between-subject variability and residual error from a study.")
+    _study_args(p)
+    p.add_argument("--method", choices=["two-stage", "iterative"],
+                   help="standard two-stage (rich data) or iterative two-stage (default)")
+    p.add_argument("--error-model", choices=["additive", "proportional", "combined"],
+                   help="residual error (default proportional)")
+    p.add_argument("--blq", choices=["likelihood", "drop", "half_lloq"],
+                   help="levels below LLOQ (default likelihood, Beal's M3)")
+    p.add_argument("--covariate", choices=["none", "allometric", "estimated", "per_kg"],
+                   help="body-weight model (default none)")
+    p.add_argument("--reference-weight", metavar="Q", help="reference weight (default 70 kg)")
+    p.add_argument("--bootstrap", type=int, metavar="N",
+                   help="bootstrap replicates over subjects for SEs (default 0)")
+    p.add_argument("--seed", type=int, metavar="S", help="seed for bootstrap and VPC (default 1)")
+    p.add_argument("--vpc-replicates", type=int, metavar="N",
+                   help="simulated replicates for the visual predictive check (default 200)")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.add_argument("--out", metavar="DIR", help="write CSV, JSON and plots to DIR")
     p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
 
     p = _add(sub, "nca", cmd_nca,

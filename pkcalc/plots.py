@@ -28,7 +28,7 @@ def new_figure(width: float = 7.5, height: float = 4.6) -> tuple[Figure, plt.Axe
     fig = Figure(figsize=(width, height), layout="constrained")
     ax = fig.add_subplot()
     fig.text(0.01, 0.005, CAUTION_SHORT, fontsize=6.5, color="0.25", ha="left", va="bottom")
-    fig.get_layout_engine().set(h_pad=0.25)
+    fig.get_layout_engine().set(rect=(0, 0.035, 1, 0.965))
     ax.grid(True, color="0.88", linewidth=0.6)
     return fig, ax
 
@@ -220,6 +220,7 @@ def diagnostics_figure(results, conv: UnitConverter | None = None) -> Figure:
     fig = Figure(figsize=(10.5, 3.8), layout="constrained")
     axes = fig.subplots(1, 3)
     fig.text(0.01, 0.005, CAUTION_SHORT, fontsize=6.5, color="0.25")
+    fig.get_layout_engine().set(rect=(0, 0.05, 1, 0.95))
     obs = np.concatenate([r.observed[~r.blq] for r in results]) if results else np.empty(0)
     pred = np.concatenate([r.predicted[~r.blq] for r in results]) if results else np.empty(0)
     time = np.concatenate([r.time[~r.blq] for r in results]) if results else np.empty(0)
@@ -248,4 +249,111 @@ def diagnostics_figure(results, conv: UnitConverter | None = None) -> Figure:
         ax.set_title(f"weighted residuals vs {label.split(' [')[0]}", fontsize=9)
     for ax in axes:
         ax.grid(True, color="0.88", linewidth=0.6)
+    return fig
+
+
+def population_figure(result, subjects, conv: UnitConverter | None = None) -> Figure:
+    """Observed vs population and individual predictions, conditional weighted residuals
+    vs time, and individual estimates vs body weight."""
+    conv = conv or UnitConverter()
+    fig = Figure(figsize=(10.5, 7.6), layout="constrained")
+    fig.text(0.01, 0.005, CAUTION_SHORT, fontsize=6.5, color="0.25")
+    fig.get_layout_engine().set(rect=(0, 0.03, 1, 0.97))
+    axes = fig.subplots(2, 2)
+    fits = {r.subject: r for r in result.subjects}
+    obs, pred, ipred, time, cwres = [], [], [], [], []
+    for s in subjects:
+        r = fits.get(s.subject)
+        if r is None or s.subject not in result.population_predictions:
+            continue
+        keep = ~s.blq
+        obs.append(s.conc[keep])
+        pred.append(result.population_predictions[s.subject][keep])
+        ipred.append(r.predicted[keep])
+        time.append(s.time[keep])
+        cwres.append(r.weighted_residuals[keep])
+    def cat(xs):
+        return np.concatenate(xs) if xs else np.empty(0)
+
+    obs, pred, ipred, time, cwres = map(cat, (obs, pred, ipred, time, cwres))
+    top = float(np.nanmax(np.r_[obs, pred, ipred, 1e-9])) * 1.05
+    for ax, x, label in ((axes[0, 0], pred, "population prediction"),
+                         (axes[0, 1], ipred, "individual prediction")):
+        ax.plot(conv(x, "concentration"), conv(obs, "concentration"), "o", ms=3, color="black",
+                mfc="white")
+        ax.plot([0, conv(top, "concentration")], [0, conv(top, "concentration")], "--",
+                color="0.4", lw=1)
+        ax.set_xlabel(f"{label} [{conv.unit('concentration')}]")
+        ax.set_ylabel(f"observed [{conv.unit('concentration')}]")
+        ax.set_title(f"observed vs {label}", fontsize=9)
+    ax = axes[1, 0]
+    ok = np.isfinite(cwres)
+    ax.plot(conv(time[ok], "time"), cwres[ok], "o", ms=3, color="black", mfc="white")
+    ax.axhline(0, color="0.4", lw=1)
+    for y in (-2, 2):
+        ax.axhline(y, color="0.6", lw=0.8, ls=":")
+    ax.set_xlabel(f"time [{conv.unit('time')}]")
+    ax.set_ylabel("conditional weighted residual")
+    ax.set_title("weighted residuals (individual fits) vs time", fontsize=9)
+    ax = axes[1, 1]
+    w = np.array([fits[s.subject].weight or np.nan for s in subjects if s.subject in fits])
+    cl = np.array([fits[s.subject].clearance for s in subjects if s.subject in fits])
+    v = np.array([fits[s.subject].volume for s in subjects if s.subject in fits])
+    if np.isfinite(w).any():
+        ax.plot(w, conv(cl, "clearance"), "o", ms=3.5, color="black", label="clearance")
+        ax2 = ax.twinx()
+        ax2.plot(w, conv(v, "volume"), "s", ms=3.5, color="0.5", mfc="white", label="volume")
+        ax2.set_ylabel(f"volume [{conv.unit('volume')}] (squares)")
+        ax.set_xlabel("body weight [kg]")
+        ax.set_ylabel(f"clearance [{conv.unit('clearance')}] (dots)")
+        ax.set_title("individual estimates vs body weight", fontsize=9)
+    else:
+        ax.text(0.5, 0.5, "no body weights in the subjects table", ha="center",
+                transform=ax.transAxes)
+        ax.set_axis_off()
+    for a in axes.flat:
+        a.grid(True, color="0.88", linewidth=0.6)
+    return fig
+
+
+def vpc_figure(subjects, simulated: np.ndarray, conv: UnitConverter | None = None,
+               bins: int = 6) -> Figure:
+    """Visual predictive check: observed 5/50/95th percentiles per time bin against the
+    90 % range of the same percentiles over simulated replicates of the design."""
+    conv = conv or UnitConverter()
+    time = np.concatenate([s.time for s in subjects])
+    obs = np.concatenate([np.where(s.blq, np.nan, s.conc) for s in subjects])
+    edges = np.unique(np.quantile(time, np.linspace(0, 1, bins + 1)))
+    which = np.clip(np.searchsorted(edges, time, side="right") - 1, 0, len(edges) - 2)
+    mids, obs_p, sim_lo, sim_hi = [], [], [], []
+    qs = (5, 50, 95)
+    for b in range(len(edges) - 1):
+        m = which == b
+        if m.sum() < 3:
+            continue
+        mids.append(float(np.median(time[m])))
+        obs_p.append(np.nanpercentile(obs[m], qs))
+        per_rep = np.nanpercentile(simulated[:, m], qs, axis=1)        # (3, replicates)
+        sim_lo.append(np.percentile(per_rep, 5, axis=1))
+        sim_hi.append(np.percentile(per_rep, 95, axis=1))
+    fig, ax = new_figure(7.5, 4.6)
+    if mids:
+        mids_c = conv(np.array(mids), "time")
+        obs_p, sim_lo, sim_hi = (np.array(a) for a in (obs_p, sim_lo, sim_hi))
+        shades = {5: "0.85", 50: "0.7", 95: "0.85"}
+        for j, q in enumerate(qs):
+            ax.fill_between(mids_c, conv(sim_lo[:, j], "concentration"),
+                            conv(sim_hi[:, j], "concentration"), color=shades[q], lw=0,
+                            label=f"simulated {q}th percentile (90 % range)")
+            ax.plot(mids_c, conv(obs_p[:, j], "concentration"), "-o" if q == 50 else "--",
+                    color="black", ms=3, lw=1.2 if q == 50 else 0.9,
+                    label=f"observed {q}th percentile")
+    ax.plot(conv(time, "time"), conv(obs, "concentration"), ".", color="0.3", ms=3,
+            label="observed levels")
+    ax.set_xlabel(f"time [{conv.unit('time')}]")
+    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_title(f"visual predictive check ({simulated.shape[0]} simulated replicates of the "
+                 "design)", fontsize=9)
+    ax.legend(fontsize=6.5, frameon=False, ncol=2)
+    ax.set_ylim(bottom=0)
     return fig

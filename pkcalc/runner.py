@@ -421,3 +421,91 @@ def run_fit(study, options, *, colour: bool = False) -> Run:
     return Run("fit", EXIT_PARTIAL if failures else EXIT_OK, doc, text, list(study.files),
                study.title or "pkcalc fit", figures, files,
                lambda pngs: fit_sections(doc, pngs), warnings=list(study.warnings))
+
+
+def run_population(study, options, *, colour: bool = False) -> Run:
+    """``pkcalc population``: two-stage or iterative two-stage estimates."""
+    from .population import bootstrap, iterative_two_stage, simulate_design, two_stage
+    from .report.html import population_sections
+    from .report.population import population_json, population_text
+    from .schema.fitopts import FitOptions
+
+    conv = report.UnitConverter(study.output or None)
+    subjects = study.subjects
+    try:
+        if options.method == "two-stage":
+            result = two_stage(subjects, FitOptions(error_model=options.error_model,
+                                                    blq=options.blq),
+                               covariate=options.covariate,
+                               reference_weight=options.reference_weight)
+        else:
+            result = iterative_two_stage(subjects, error_model=options.error_model,
+                                         covariate=options.covariate,
+                                         reference_weight=options.reference_weight,
+                                         blq=options.blq)
+    except ValueError as exc:
+        raise PkcalcInputError(str(exc), file=study.files[0] if study.files else None
+                               ) from None
+    if options.bootstrap and options.method == "iterative":
+        result.bootstrap.update(bootstrap(subjects, result, options.bootstrap, options.seed,
+                                          error_model=options.error_model,
+                                          covariate=options.covariate,
+                                          reference_weight=options.reference_weight,
+                                          blq=options.blq))
+        for k in ("clearance", "volume"):
+            b = result.bootstrap.get(k)
+            if isinstance(b, dict):
+                result.typical_se[k] = b["se"]
+                result.typical_ci[k] = (b["ci_low"], b["ci_high"])
+        result.notes.append(f"standard errors and 95 % intervals of the typical values from "
+                            f"{options.bootstrap} bootstrap replicates over subjects (seed "
+                            f"{options.seed})")
+    elif options.method == "iterative":
+        result.notes.append("standard errors of the typical values: sqrt(omega^2/N) on the log "
+                            "scale (run --bootstrap N for bootstrap intervals)")
+    failures = list(study.failures) + [
+        (f"subject '{sid}'", PkcalcInputError(reason, item=f"subject '{sid}'"))
+        for sid, reason in result.failures]
+    settings = {"method": options.method, "error model": options.error_model,
+                "BLQ": options.blq, "covariate": options.covariate,
+                "reference weight": f"{options.reference_weight:g} kg"}
+    doc = population_json(result, conv, title=study.title, failures=failures,
+                          settings=settings)
+    doc["warnings"] = list(study.warnings) + list(result.warnings)
+    text = population_text(result, conv, title=study.title, failures=failures,
+                           settings=settings, colour=colour)
+    fitted = {r.subject for r in result.subjects}
+    used = [s for s in subjects if s.subject in fitted]
+
+    def figures() -> dict[str, Any]:
+        from .plots import population_figure, vpc_figure
+
+        figs = {"__diagnostics__": population_figure(result, used, conv)}
+        if options.vpc_replicates and result.method == "iterative":
+            sim = simulate_design(used, result, options.vpc_replicates, options.seed)
+            figs["__vpc__"] = vpc_figure(used, sim, conv)
+        return figs
+
+    def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
+        import pandas as pd
+
+        targets = [out / n for n in ("population.json", "population-subjects.csv",
+                                     "population-iterations.csv", "diagnostics.png",
+                                     "vpc.png")]
+        check_not_input(targets, study.files)
+        written = [report.write_atomic(out / "diagnostics.png", pngs["__diagnostics__"])]
+        if "__vpc__" in pngs:
+            written.append(report.write_atomic(out / "vpc.png", pngs["__vpc__"]))
+        written.append(report.write_atomic(out / "population-subjects.csv",
+                                           result.to_frame().to_csv(index=False)))
+        iters = pd.DataFrame({"iteration": range(1, len(result.objective_per_iteration) + 1),
+                              "approximate_minus_2_ln_l": result.objective_per_iteration})
+        written.append(report.write_atomic(out / "population-iterations.csv",
+                                           iters.to_csv(index=False)))
+        written.append(report.write_atomic(out / "population.json", report.dumps(doc)))
+        return written
+
+    return Run("population", EXIT_PARTIAL if failures else EXIT_OK, doc, text,
+               list(study.files), study.title or "pkcalc population", figures, files,
+               lambda pngs: population_sections(doc, pngs), seed=options.seed,
+               warnings=doc["warnings"])

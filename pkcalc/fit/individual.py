@@ -425,7 +425,8 @@ def wald_quantile(n_obs: int, n_params: int, kind: str) -> float:
     return float(student_t.ppf(0.975, n_obs - n_params))
 
 
-def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None
+def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None, *,
+                 prior_means: dict[str, tuple[float, float]] | None = None
                  ) -> tuple[list[FitResult], list[tuple[str, str]]]:
     """Fit every subject independently.
 
@@ -434,6 +435,9 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None
     subjects : list of SubjectData
     options : FitOptions, optional
         Default: proportional error model, BLQ by censored likelihood.
+    prior_means : dict of subject to (ln CL, ln V), optional
+        MAP only: each subject's prior mean, overriding the prior's typical
+        values (population estimation with covariates uses this).
 
     Returns
     -------
@@ -460,7 +464,7 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None
     notes = [notes_all[i] for i in good]
     prior_info = {}
     if kind == "map":
-        batch, prior_info, bad = _with_prior(batch, keep, opts)
+        batch, prior_info, bad = _with_prior(batch, keep, opts, prior_means)
         for i in sorted(bad, reverse=True):
             failures.append((keep[i].subject, "the prior is per kg but the subject has no "
                                               "weight"))
@@ -607,11 +611,15 @@ def _covariances(batch: Batch, obj: np.ndarray, hess: np.ndarray, kind: str):
     return cov, identifiable, scale
 
 
-def _with_prior(batch: Batch, subjects: list[SubjectData], opts: FitOptions):
+def _with_prior(batch: Batch, subjects: list[SubjectData], opts: FitOptions,
+                prior_means: dict[str, tuple[float, float]] | None = None):
     prior = opts.prior
     assert prior is not None
     mu, bad = [], []
     for i, s in enumerate(subjects):
+        if prior_means is not None and s.subject in prior_means:
+            mu.append(list(prior_means[s.subject]))
+            continue
         try:
             cl, v = prior.typical(s.weight)
         except ValueError:

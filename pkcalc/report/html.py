@@ -28,6 +28,7 @@ __all__ = [
     "fit_sections",
     "input_items",
     "nca_sections",
+    "population_sections",
     "predict_sections",
     "render_html",
     "table_item",
@@ -299,3 +300,43 @@ def fit_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
             items.append(figure_item(figures[d["subject"]],
                                      f"subject {d['subject']}: levels and fitted course"))
     return [{"heading": "Individual fits (one-compartment)", "blocks": items}]
+
+
+def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
+    """Typical values, variability, covariates, residual error, subjects and plots."""
+    rows = []
+    for k in ("clearance", "volume"):
+        ci = doc["typical_ci"].get(k) or [None, None]
+        rows.append([k, doc["typical"][k], doc["typical_units"][k], doc["typical_se"].get(k),
+                     ci[0], ci[1], doc["variability_cv_percent"][k],
+                     doc["shrinkage_percent"].get(k)])
+    items: list[dict[str, Any]] = [
+        lines_item("notes", [f"{k}: {v}" for k, v in doc["settings"].items()]),
+        table_item(["parameter", "typical", "unit", "SE", "CI low", "CI high", "CV %",
+                    "shrinkage %"], rows, f"Population estimates ({doc['method']})")]
+    cov = doc["covariate"]
+    text = [f"weight model: {cov['model']}"]
+    if cov["exponents"]:
+        text.append("exponents: " + ", ".join(f"{k} {v:.3g}" for k, v in
+                                               cov["exponents"].items()))
+    if doc["residual_error"]:
+        text.append("residual error: " + ", ".join(f"{k} {v:.4g}" for k, v in
+                                                    doc["residual_error"].items()))
+    text.append(f"iterations: {doc['iterations']}; converged: {doc['converged']}")
+    items.append(lines_item("text", text))
+    srows = [[d["subject"], d["estimates"]["clearance"]["value"],
+              d["estimates"]["volume"]["value"], d["estimates"]["half_life"]["value"],
+              (d.get("prior") or {}).get("eta_clearance"),
+              (d.get("prior") or {}).get("eta_volume"), d["n_obs"]] for d in doc["subjects"]]
+    items.append(table_item(["subject", f"CL [{doc['units']['clearance']}]",
+                             f"V [{doc['units']['volume']}]", f"t½ [{doc['units']['time']}]",
+                             "eta CL", "eta V", "levels"], srows,
+                            "Individual estimates under the population prior"))
+    if doc.get("warnings"):
+        items.append(lines_item("warnings", doc["warnings"]))
+    items.append(lines_item("notes", doc["notes"]))
+    for key, caption in (("__diagnostics__", "Population diagnostics"),
+                         ("__vpc__", "Visual predictive check")):
+        if key in figures:
+            items.append(figure_item(figures[key], caption))
+    return [{"heading": "Population estimates", "blocks": items}]

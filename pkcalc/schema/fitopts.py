@@ -22,10 +22,12 @@ __all__ = [
     "ERROR_MODELS",
     "WEIGHTINGS",
     "FitOptions",
+    "PopulationOptions",
     "Prior",
     "fit_options",
     "load_prior",
     "parse_prior",
+    "population_options",
 ]
 
 WEIGHTINGS = ("uniform", "inverse_observed", "inverse_observed_squared",
@@ -273,3 +275,61 @@ def fit_options(raw: dict[str, Any] | None = None, *, base: Path | None = None,
         error_model = prior.error_model
     return FitOptions(weighting, None if weighting else error_model, blq, ci, prior,
                       int(starts), bool(raw.get("with_nca", False)), float(threshold))
+
+
+@dataclass(frozen=True)
+class PopulationOptions:
+    """Validated options of ``pkcalc population``."""
+
+    method: str = "iterative"
+    error_model: str = "proportional"
+    blq: str = "likelihood"
+    covariate: str = "none"
+    reference_weight: float = 70.0
+    bootstrap: int = 0
+    seed: int = 1
+    vpc_replicates: int = 200
+
+
+def population_options(raw: dict[str, Any] | None = None, *, file: str | None = None
+                       ) -> PopulationOptions:
+    """Validate the ``[population]`` table (merged with command-line values)."""
+    from ..units import to_canonical
+
+    raw = {k: v for k, v in (raw or {}).items() if v is not None}
+    problems: list[Problem] = []
+    allowed = {"method", "error_model", "blq", "covariate", "reference_weight", "bootstrap",
+               "seed", "vpc_replicates"}
+    for key in sorted(set(raw) - allowed):
+        problems.append(Problem("unknown key", file=file, field=f"population.{key}",
+                                expected=", ".join(sorted(allowed))))
+    choices = {"method": ("two-stage", "iterative"), "error_model": ERROR_MODELS,
+               "blq": BLQ_METHODS, "covariate": ("none", "allometric", "estimated", "per_kg")}
+    for key, allowed_values in choices.items():
+        if key in raw and raw[key] not in allowed_values:
+            problems.append(Problem(f"unknown value '{raw[key]}'", file=file,
+                                    field=f"population.{key}",
+                                    expected=", ".join(allowed_values)))
+    ref = 70.0
+    if "reference_weight" in raw:
+        try:
+            ref = to_canonical(raw["reference_weight"], "weight",
+                               field="population.reference_weight")
+            if not ref > 0:
+                raise PkcalcInputError("must be greater than zero",
+                                       field="population.reference_weight")
+        except PkcalcInputError as exc:
+            problems.extend(Problem(p.message, file=file, field=p.field, expected=p.expected)
+                            for p in exc.problems)
+    for key, lo, hi in (("bootstrap", 0, 10000), ("seed", 0, 2**32 - 1),
+                        ("vpc_replicates", 0, 10000)):
+        if key in raw and (not isinstance(raw[key], int) or not lo <= raw[key] <= hi):
+            problems.append(Problem(f"must be a whole number from {lo} to {hi}", file=file,
+                                    field=f"population.{key}"))
+    if problems:
+        raise PkcalcInputError(problems)
+    return PopulationOptions(
+        method=raw.get("method", "iterative"), error_model=raw.get("error_model", "proportional"),
+        blq=raw.get("blq", "likelihood"), covariate=raw.get("covariate", "none"),
+        reference_weight=ref, bootstrap=raw.get("bootstrap", 0), seed=raw.get("seed", 1),
+        vpc_replicates=raw.get("vpc_replicates", 200))

@@ -1,0 +1,537 @@
+"""Population estimates from study data: standard and iterative two-stage methods.
+
+- **Standard two-stage** (rich data): individual fits, then the geometric
+  means of clearance and volume, between-subject CV, medians and 5-95th
+  percentiles.  It over-states the variability by the estimation error of
+  each subject.
+- **Iterative two-stage** (sparse data; Prevost 1977; Steimer et al., Drug
+  Metab Rev 1984;15:265 -- from memory): alternate
+
+  1. MAP estimates of every subject under the current prior
+     ``ln theta_i ~ N(X_i beta, Omega)`` with the current residual error,
+     giving ``theta_i`` and its posterior covariance ``C_i`` (inverse of
+     ``J'WJ + Omega^-1``);
+  2. ``beta = (sum X_i' Omega^-1 X_i)^-1 sum X_i' Omega^-1 theta_i``,
+     ``Omega = (1/N) sum [(theta_i - X_i beta)(theta_i - X_i beta)' + C_i]``;
+  3. the residual error by maximum likelihood on the pooled residuals with
+     variance ``v_ij + j_ij' C_i j_ij``;
+
+  until the largest change of ``beta`` is below 1e-4 (log scale) and of the
+  diagonal of ``Omega`` below 1e-3 (relative), or 200 iterations.
+
+Covariates (body weight): none; allometric with fixed exponents (0.75 for
+clearance, 1 for volume); estimated exponents; or per-kg normalisation
+(exponents 1 and reference weight 1 kg, so typical values are per kg).  The
+typical value of a subject is ``theta_pop (W/W_ref)^exponent``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+from scipy.optimize import minimize as scipy_minimize
+
+from . import model
+from ._format import format_table, short
+from .fit import FitResult, fit_subjects
+from .fit.batch import Batch, evaluate
+from .fit.individual import _prepare_batch, starting_values
+from .fit.solver import minimise
+from .schema.fitopts import FitOptions, Prior
+from .schema.study import SubjectData
+
+__all__ = [
+    "COVARIATE_MODELS",
+    "PopulationResult",
+    "iterative_two_stage",
+    "simulate_design",
+    "two_stage",
+]
+
+COVARIATE_MODELS = ("none", "allometric", "estimated", "per_kg")
+FIXED_EXPONENTS = {"allometric": (0.75, 1.0), "per_kg": (1.0, 1.0)}
+MAX_ITERATIONS = 200
+BETA_TOL = 1e-4
+OMEGA_TOL = 1e-3
+
+
+@dataclass
+class PopulationResult:
+    """Population estimates (canonical units; per kg when ``covariate == 'per_kg'``).
+
+    Attributes
+    ----------
+    method : str
+        ``two-stage`` or ``iterative``.
+    typical : dict of str to float
+        Typical clearance and volume (at the reference weight).
+    typical_se : dict of str to float or None
+        Standard errors (bootstrap when run, otherwise sqrt(omega^2/N) on the log
+        scale times the value).
+    typical_ci : dict of str to (float, float) or None
+        95 % intervals (bootstrap percentiles, or log-scale Wald).
+    variability_cv_percent : dict of str to float
+        Between-subject CV, ``100 sqrt(exp(omega^2) - 1)``.
+    omega : ndarray, shape (2, 2)
+        Covariance of ``ln CL, ln V`` between subjects.
+    correlation : float
+    exponents : dict of str to float
+        Weight exponents (fixed or estimated).
+    exponent_ci : dict of str to (float, float) or None
+    residual_error : dict of str to float
+    shrinkage_percent : dict of str to float
+        ``100 (1 - SD(eta_i) / omega)`` (iterative only).
+    subjects : list of FitResult
+        Individual estimates (MAP under the final population prior for the
+        iterative method).
+    failures : list of (str, str)
+    iterations : int
+    objective_per_iteration : list of float
+        Approximate ``-2 ln L`` (first-order Laplace form) per iteration.
+    converged : bool
+    percentiles : dict
+        Two-stage: median and 5th/95th percentiles of the individual estimates.
+    notes, warnings : list of str
+    """
+
+    method: str
+    typical: dict[str, float]
+    variability_cv_percent: dict[str, float]
+    omega: np.ndarray
+    residual_error: dict[str, float]
+    subjects: list[FitResult]
+    failures: list[tuple[str, str]]
+    covariate: str = "none"
+    reference_weight: float | None = None
+    exponents: dict[str, float] = field(default_factory=dict)
+    exponent_ci: dict[str, tuple[float, float]] | None = None
+    typical_se: dict[str, float | None] = field(default_factory=dict)
+    typical_ci: dict[str, tuple[float, float] | None] = field(default_factory=dict)
+    correlation: float | None = None
+    shrinkage_percent: dict[str, float] = field(default_factory=dict)
+    iterations: int = 0
+    objective_per_iteration: list[float] = field(default_factory=list)
+    converged: bool = True
+    percentiles: dict[str, dict[str, float]] = field(default_factory=dict)
+    bootstrap: dict[str, object] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    eta: np.ndarray | None = None
+    population_predictions: dict[str, np.ndarray] = field(default_factory=dict)
+
+    def summary(self) -> str:
+        """Plain-text summary (canonical units)."""
+        rows = [[k, v, self.typical_se.get(k), self.variability_cv_percent.get(k),
+                 self.shrinkage_percent.get(k)] for k, v in self.typical.items()]
+        lines = [f"Population ({self.method}, covariate: {self.covariate}); "
+                 f"{len(self.subjects)} subjects, {self.iterations} iterations, "
+                 f"{'converged' if self.converged else 'NOT converged'}",
+                 format_table(["parameter", "typical", "SE", "CV %", "shrinkage %"], rows)]
+        if self.exponents:
+            lines.append("weight exponents: " + ", ".join(
+                f"{k} {short(v)}" for k, v in self.exponents.items()))
+        lines.append("residual error: " + ", ".join(
+            f"{k} {short(v)}" for k, v in self.residual_error.items()))
+        lines += [f"note: {n}" for n in self.notes]
+        lines += [f"warning: {w}" for w in self.warnings]
+        return "\n".join(lines)
+
+    def to_frame(self):
+        """One row per subject: individual estimates, etas, weight."""
+        import pandas as pd
+
+        rows = []
+        for i, r in enumerate(self.subjects):
+            row = {"subject": r.subject, "weight [kg]": r.weight,
+                   "clearance [L/h]": r.clearance, "volume [L]": r.volume,
+                   "half_life [h]": r.estimates["half_life"].value}
+            if self.eta is not None:
+                row["eta_clearance"], row["eta_volume"] = self.eta[i]
+            rows.append(row)
+        return pd.DataFrame(rows)
+
+
+# --------------------------------------------------------------------------- helpers
+def _cv(omega2: float) -> float:
+    """Log-normal CV % from the variance of the log: ``100 sqrt(exp(w^2) - 1)``."""
+    return 100.0 * math.sqrt(math.expm1(max(omega2, 0.0)))
+
+
+def _design(subjects: list[SubjectData], covariate: str, reference_weight: float | None):
+    """Per subject: log-weight term x (N,) and the offsets of ln CL, ln V for fixed
+    exponents; which parameters carry an estimated exponent."""
+    n = len(subjects)
+    if covariate == "none":
+        return np.zeros(n), np.zeros((n, 2)), False
+    weights = np.array([s.weight if s.weight is not None else np.nan for s in subjects])
+    ref = 1.0 if covariate == "per_kg" else reference_weight
+    x = np.log(weights / ref)
+    if covariate == "estimated":
+        return x, np.zeros((n, 2)), True
+    e_cl, e_v = FIXED_EXPONENTS[covariate]
+    return x, np.stack([e_cl * x, e_v * x], axis=1), False
+
+
+def _gls(theta: np.ndarray, x: np.ndarray, offset: np.ndarray, omega: np.ndarray,
+         estimate_exponents: bool):
+    """beta (intercepts, and exponents when estimated) and its covariance."""
+    n = theta.shape[0]
+    y = theta - offset
+    if not estimate_exponents:
+        beta = y.mean(axis=0)
+        return beta, omega / n, y - beta
+    # X_i = [[1, x, 0, 0], [0, 0, 1, x]] for (ln CL, ln V); beta = [a_cl, b_cl, a_v, b_v]
+    oi = np.linalg.inv(omega)
+    xm = np.zeros((n, 2, 4))
+    xm[:, 0, 0], xm[:, 0, 1], xm[:, 1, 2], xm[:, 1, 3] = 1.0, x, 1.0, x
+    a = np.einsum("nki,kl,nlj->ij", xm, oi, xm)
+    bvec = np.einsum("nki,kl,nl->i", xm, oi, y)
+    cov = np.linalg.inv(a)
+    beta = cov @ bvec
+    resid = y - np.einsum("nki,i->nk", xm, beta)
+    return beta, cov, resid
+
+
+def _means(beta: np.ndarray, x: np.ndarray, offset: np.ndarray, estimate: bool) -> np.ndarray:
+    if not estimate:
+        return offset + beta[None, :]
+    return np.stack([beta[0] + beta[1] * x, beta[2] + beta[3] * x], axis=1) + offset
+
+
+def _residual_update(batch: Batch, f: np.ndarray, jac: np.ndarray, cpost: np.ndarray,
+                     error: str, start: tuple[float, float]) -> tuple[float, float]:
+    """Residual error from the pooled residuals: maximises
+    ``sum [ln v + (r^2 + j' C j) / v]`` over the error parameters, where ``j' C j``
+    is the posterior variance of the prediction, so the expected squared error
+    ``r^2 + j' C j`` is used rather than the shrunken residual alone (the EM form
+    of the iterative two-stage update; censored levels are left out of this step)."""
+    o = batch.obs
+    r = np.where(o, batch.y - f, 0.0)
+    extra = np.einsum("ibn,bij,jbn->bn", jac, cpost, jac)
+
+    def objective(p):
+        sa = math.exp(p[0]) if error in ("additive", "combined") else 0.0
+        sp = math.exp(p[-1]) if error in ("proportional", "combined") else 0.0
+        v = np.where(o, np.maximum(sa**2 + sp**2 * f**2, 1e-300), 1.0)
+        return float(np.where(o, np.log(v) + (r * r + extra) / v, 0.0).sum())
+
+    sa0, sp0 = start
+    p0 = {"additive": [math.log(sa0)], "proportional": [math.log(sp0)],
+          "combined": [math.log(sa0), math.log(sp0)]}[error]
+    res = scipy_minimize(objective, p0, method="Nelder-Mead",
+                         options={"xatol": 1e-6, "fatol": 1e-8, "maxiter": 400})
+    p = res.x
+    sa = math.exp(p[0]) if error in ("additive", "combined") else 0.0
+    sp = math.exp(p[-1]) if error in ("proportional", "combined") else 0.0
+    return sa, sp
+
+
+# --------------------------------------------------------------------------- two-stage
+def two_stage(subjects: list[SubjectData], options: FitOptions | None = None, *,
+              covariate: str = "none", reference_weight: float = 70.0) -> PopulationResult:
+    """Standard two-stage estimates from individual fits.
+
+    Typical values are geometric means ``exp(mean ln theta_i)`` (adjusted for the
+    weight model when one is given), CV % from the variance of ``ln theta_i``.
+    """
+    fits, failures = fit_subjects(subjects, options or FitOptions())
+    usable = [r for r in fits if r.converged and r.estimates["clearance"].se is not None]
+    dropped = [r.subject for r in fits if r not in usable]
+    if len(usable) < 2:
+        raise ValueError("fewer than two subjects could be fitted individually: the "
+                         "two-stage method needs rich data (use the iterative method)")
+    by_name = {s.subject: s for s in subjects}
+    subs = [by_name[r.subject] for r in usable]
+    theta = np.log(np.array([[r.clearance, r.volume] for r in usable]))
+    x, offset, estimate = _design(subs, covariate, reference_weight)
+    omega0 = np.cov(theta.T) if len(usable) > 2 else np.eye(2)
+    beta, beta_cov, resid = _gls(theta, x, offset, omega0, estimate)
+    omega = np.cov(resid.T, ddof=0 if estimate else 1) if len(usable) > 1 else np.eye(2)
+    result = _assemble("two-stage", beta, beta_cov, omega, estimate, covariate,
+                       reference_weight, fits, failures)
+    result.residual_error = {"median_proportional":
+                             float(np.median([r.residual_error["proportional"].value
+                                              for r in usable if "proportional" in
+                                              r.residual_error]))} \
+        if any("proportional" in r.residual_error for r in usable) else {}
+    for name, j in (("clearance", 0), ("volume", 1)):
+        vals = np.exp(theta[:, j])
+        result.percentiles[name] = {"median": float(np.median(vals)),
+                                    "p05": float(np.percentile(vals, 5)),
+                                    "p95": float(np.percentile(vals, 95))}
+    if dropped:
+        result.warnings.append(f"left out of the population step (no usable individual "
+                               f"estimate): {', '.join(dropped)}")
+    result.notes.append("the two-stage CV includes each subject's estimation error, so it "
+                        "over-states the true between-subject variability")
+    return result
+
+
+def _assemble(method, beta, beta_cov, omega, estimate, covariate, reference_weight, fits,
+              failures) -> PopulationResult:
+    if estimate:
+        typ = {"clearance": math.exp(beta[0]), "volume": math.exp(beta[2])}
+        se_log = {"clearance": math.sqrt(beta_cov[0, 0]), "volume": math.sqrt(beta_cov[2, 2])}
+        exps = {"clearance": float(beta[1]), "volume": float(beta[3])}
+        exp_ci = {"clearance": (beta[1] - 1.96 * math.sqrt(beta_cov[1, 1]),
+                                beta[1] + 1.96 * math.sqrt(beta_cov[1, 1])),
+                  "volume": (beta[3] - 1.96 * math.sqrt(beta_cov[3, 3]),
+                             beta[3] + 1.96 * math.sqrt(beta_cov[3, 3]))}
+    else:
+        typ = {"clearance": math.exp(beta[0]), "volume": math.exp(beta[1])}
+        se_log = {"clearance": math.sqrt(beta_cov[0, 0]), "volume": math.sqrt(beta_cov[1, 1])}
+        exps = dict(zip(("clearance", "volume"), FIXED_EXPONENTS[covariate], strict=True)) \
+            if covariate in FIXED_EXPONENTS else {}
+        exp_ci = None
+    ref = 1.0 if covariate == "per_kg" else (reference_weight if covariate != "none" else None)
+    return PopulationResult(
+        method=method, typical=typ,
+        variability_cv_percent={"clearance": _cv(omega[0, 0]), "volume": _cv(omega[1, 1])},
+        omega=omega, residual_error={}, subjects=fits, failures=failures, covariate=covariate,
+        reference_weight=ref, exponents=exps, exponent_ci=exp_ci,
+        typical_se={k: typ[k] * se_log[k] for k in typ},
+        typical_ci={k: (typ[k] * math.exp(-1.96 * se_log[k]), typ[k] * math.exp(
+            1.96 * se_log[k])) for k in typ},
+        correlation=float(omega[0, 1] / math.sqrt(omega[0, 0] * omega[1, 1]))
+        if omega[0, 0] > 0 and omega[1, 1] > 0 else None,
+    )
+
+
+# --------------------------------------------------------------------------- iterative
+def _map_all(batch: Batch, theta0: np.ndarray, mu: np.ndarray, omega: np.ndarray, sa: float,
+             sp: float):
+    """MAP estimates of all subjects under one prior; posterior covariances.
+
+    Sparse subjects can have several posterior modes, so each subject starts from
+    its previous estimate and from its prior mean, and the better end point wins.
+    """
+    n = theta0.shape[0]
+    oi = np.linalg.inv(omega)
+    b = replace(batch, kind="map", mu=mu, omega_inv=np.repeat(oi[None], n, axis=0),
+                sa=np.full(n, sa), sp=np.full(n, sp), geometry=batch.geometry)
+    b2 = b.repeat(2)
+
+    def fun(th, idx):
+        rows = b2 if idx.size == 2 * n else b2.rows(idx)
+        obj, grad, info, _ = evaluate(rows, th)
+        return obj, grad, info
+
+    starts = np.stack([theta0, mu], axis=1).reshape(2 * n, 2)
+    sol = minimise(fun, starts)
+    pick = np.arange(n) * 2 + np.argmin(sol.obj.reshape(n, 2), axis=1)
+    sol.theta, sol.converged = sol.theta[pick], sol.converged[pick]
+    obj, _, info, f = evaluate(b, sol.theta)
+    cpost = np.linalg.inv(info / 2)
+    _, jac = model.concentration_and_gradient(b.t, b.start, b.amount, b.duration,
+                                              np.exp(sol.theta[:, 0]), np.exp(sol.theta[:, 1]),
+                                              geometry=b.geometry)
+    return sol, obj, cpost, f, jac
+
+
+def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "proportional",
+                        covariate: str = "none", reference_weight: float = 70.0,
+                        blq: str = "likelihood", max_iterations: int = MAX_ITERATIONS,
+                        start: dict | None = None, final_fits: bool = True
+                        ) -> PopulationResult:
+    """Iterative two-stage population estimates (see the module docstring).
+
+    Parameters
+    ----------
+    subjects : list of SubjectData
+    error_model : {"additive", "proportional", "combined"}
+    covariate : {"none", "allometric", "estimated", "per_kg"}
+    reference_weight : float, kg
+    blq : {"likelihood", "drop", "half_lloq"}
+    max_iterations : int
+    start : dict, optional
+        ``beta``, ``omega``, ``sa``, ``sp``, ``theta`` to start from (bootstrap).
+    final_fits : bool
+        Produce a :class:`FitResult` per subject under the final prior.
+
+    Returns
+    -------
+    PopulationResult
+    """
+    if covariate not in COVARIATE_MODELS:
+        raise ValueError(f"unknown covariate model {covariate!r}")
+    failures: list[tuple[str, str]] = []
+    if covariate != "none":
+        missing = [s.subject for s in subjects if s.weight is None]
+        failures += [(m, "no body weight for the covariate model") for m in missing]
+        subjects = [s for s in subjects if s.weight is not None]
+    opts = FitOptions(error_model=error_model, blq=blq)
+    batch, _, _ = _prepare_batch(subjects, opts)
+    has = (batch.obs & (batch.y > 0)).any(axis=1)
+    for i in np.flatnonzero(~has):
+        failures.append((subjects[i].subject, "no measurable level"))
+    if (~has).any():
+        keep = np.flatnonzero(has)
+        batch = batch.rows(keep)
+        subjects = [subjects[i] for i in keep]
+    n = len(subjects)
+    if n < 3:
+        raise ValueError("the population step needs at least three subjects with levels")
+    x, offset, estimate = _design(subjects, covariate, reference_weight)
+    if start is None:
+        theta = starting_values(batch)[:, 0, :]
+        beta, _, resid = _gls(theta, x, offset, np.eye(2), estimate)
+        omega = np.diag([1.0, 1.0])       # broad: CV about 130 %
+        sa, sp = (0.1 * float(np.median(batch.y[batch.obs])), 0.2)
+    else:
+        theta, beta, omega = start["theta"], start["beta"], start["omega"]
+        sa, sp = start["sa"], start["sp"]
+    if error_model == "additive":
+        sp = 0.0
+    elif error_model == "proportional":
+        sa = 0.0
+    history: list[float] = []
+    converged = False
+    it = 0
+    while it < max_iterations:
+        it += 1
+        mu = _means(beta, x, offset, estimate)
+        sol, obj, cpost, f, jac = _map_all(batch, theta, mu, omega, sa, sp)
+        theta = sol.theta
+        # first-order (Laplace) approximation of -2 ln L of the population model
+        logdet_c = np.linalg.slogdet(cpost)[1]
+        history.append(float(obj.sum() + n * np.linalg.slogdet(omega)[1] - logdet_c.sum()))
+        new_beta, _, resid = _gls(theta, x, offset, omega, estimate)
+        new_omega = (np.einsum("ni,nj->ij", resid, resid) + cpost.sum(axis=0)) / n
+        sa, sp = _residual_update(batch, f, jac, cpost, error_model,
+                                  (max(sa, 1e-3), max(sp, 1e-3)))
+        d_beta = np.abs(new_beta - beta).max()
+        d_omega = np.abs(np.diag(new_omega) / np.diag(omega) - 1).max()
+        beta, omega = new_beta, new_omega
+        if d_beta < BETA_TOL and d_omega < OMEGA_TOL:
+            converged = True
+            break
+    _, beta_cov, _ = _gls(theta, x, offset, omega, estimate)
+    result = _assemble("iterative", beta, beta_cov, omega, estimate, covariate,
+                       reference_weight, [], failures)
+    result.iterations = it
+    result.objective_per_iteration = history
+    result.converged = converged
+    result.residual_error = {k: v for k, v in (("additive", sa), ("proportional", sp)) if v > 0}
+    mu = _means(beta, x, offset, estimate)
+    eta = theta - mu
+    result.eta = eta
+    result.shrinkage_percent = {
+        name: 100 * (1 - float(np.std(eta[:, j])) / math.sqrt(omega[j, j]))
+        for j, name in enumerate(("clearance", "volume"))}
+    result.population_predictions = {
+        s.subject: model.concentration(s.time, s.dose_start, s.dose_amount, s.dose_duration,
+                                       math.exp(mu[i, 0]), math.exp(mu[i, 1]))
+        for i, s in enumerate(subjects)}
+    result.notes.append(
+        f"convergence: largest change of the typical values (log scale) < {BETA_TOL:g} and "
+        f"of the variances < {OMEGA_TOL:g} (relative); {'reached' if converged else 'NOT'}"
+        f" after {it} iterations")
+    result.notes.append("shrinkage = 1 - SD(eta)/omega (Savic & Karlsson 2009, from memory); "
+                        "high values (> 30 %) make individual estimates lean on the prior")
+    if not converged:
+        result.warnings.append(f"did not converge in {max_iterations} iterations: the "
+                               "estimates are the last iterate")
+    result.bootstrap = {"state": {"theta": theta, "beta": beta, "omega": omega, "sa": sa,
+                                  "sp": sp}}
+    if final_fits:
+        prior = _as_prior(omega, sa, sp)
+        means = {s.subject: (float(mu[i, 0]), float(mu[i, 1])) for i, s in enumerate(subjects)}
+        fits, fit_fail = fit_subjects(subjects, FitOptions(error_model=error_model, blq=blq,
+                                                            prior=prior), prior_means=means)
+        result.subjects = fits
+        result.failures += fit_fail
+    return result
+
+
+def _as_prior(omega: np.ndarray, sa: float, sp: float) -> Prior:
+    oc, ov = math.sqrt(omega[0, 0]), math.sqrt(omega[1, 1])
+    r = float(np.clip(omega[0, 1] / (oc * ov), -0.99, 0.99))
+    return Prior(1.0, 1.0, oc, ov, r, sa, sp, source="population estimate")
+
+
+def bootstrap(subjects: list[SubjectData], result: PopulationResult, n_boot: int, seed: int,
+              **kwargs) -> dict[str, object]:
+    """Bootstrap over subjects: re-estimate on resampled subjects (seeded), warm-started
+    from the estimate; percentile 95 % intervals and SEs of the typical values."""
+    rng = np.random.default_rng(seed)
+    state = result.bootstrap["state"]
+    names = [s.subject for s in subjects]
+    idx_of = {name: i for i, name in enumerate(names)}
+    fitted = [s for s in subjects if s.subject in {r.subject for r in result.subjects}] \
+        or subjects
+    theta_by = {s.subject: state["theta"][i] for i, s in enumerate(fitted)
+                if i < len(state["theta"])}
+    draws = {"clearance": [], "volume": [], "cv_clearance": [], "cv_volume": []}
+    exps: dict[str, list[float]] = {"clearance": [], "volume": []}
+    fails = 0
+    for _ in range(n_boot):
+        pick = rng.integers(0, len(fitted), len(fitted))
+        sample = [replace(fitted[i], subject=f"{fitted[i].subject}#{k}")
+                  for k, i in enumerate(pick)]
+        start = dict(state, theta=np.array([theta_by.get(fitted[i].subject,
+                                                         state["theta"][0]) for i in pick]))
+        try:
+            r = iterative_two_stage(sample, start=start, final_fits=False,
+                                    max_iterations=60, **kwargs)
+        except (ValueError, np.linalg.LinAlgError):
+            fails += 1
+            continue
+        draws["clearance"].append(r.typical["clearance"])
+        draws["volume"].append(r.typical["volume"])
+        draws["cv_clearance"].append(r.variability_cv_percent["clearance"])
+        draws["cv_volume"].append(r.variability_cv_percent["volume"])
+        for k, v in r.exponents.items():
+            exps[k].append(v)
+    del idx_of
+    out: dict[str, object] = {"replicates": n_boot, "failed": fails, "seed": seed}
+    for k, vals in draws.items():
+        a = np.array(vals)
+        if a.size:
+            out[k] = {"se": float(a.std(ddof=1)) if a.size > 1 else None,
+                      "ci_low": float(np.percentile(a, 2.5)),
+                      "ci_high": float(np.percentile(a, 97.5))}
+    for k, vals in exps.items():
+        a = np.array(vals)
+        if a.size > 1:
+            out[f"exponent_{k}"] = {"se": float(a.std(ddof=1)),
+                                    "ci_low": float(np.percentile(a, 2.5)),
+                                    "ci_high": float(np.percentile(a, 97.5))}
+    return out
+
+
+# --------------------------------------------------------------------------- simulation
+def simulate_design(subjects: list[SubjectData], result: PopulationResult, replicates: int,
+                    seed: int) -> np.ndarray:
+    """Simulated levels for a visual predictive check.
+
+    Each replicate draws ``eta ~ N(0, Omega)`` for every subject and residual
+    errors with the estimated model, at the subjects' own doses and sampling
+    times.
+
+    Returns
+    -------
+    ndarray, shape (replicates, total levels)
+        In the order of the subjects and their sample times.
+    """
+    rng = np.random.default_rng(seed)
+    x, offset, estimate = _design(subjects, result.covariate, result.reference_weight or 70.0)
+    beta = np.log([result.typical["clearance"], result.typical["volume"]])
+    if estimate:
+        beta = np.array([beta[0], result.exponents["clearance"], beta[1],
+                         result.exponents["volume"]])
+    mu = _means(beta, x, offset, estimate)
+    sa = result.residual_error.get("additive", 0.0)
+    sp = result.residual_error.get("proportional", 0.0)
+    out = []
+    for _ in range(replicates):
+        eta = rng.multivariate_normal([0.0, 0.0], result.omega, len(subjects))
+        levels = []
+        for i, s in enumerate(subjects):
+            cl, v = np.exp(mu[i] + eta[i])
+            c = model.concentration(s.time, s.dose_start, s.dose_amount, s.dose_duration, cl, v)
+            sd = np.sqrt(sa**2 + sp**2 * c**2)
+            levels.append(c + sd * rng.standard_normal(c.size))
+        out.append(np.concatenate(levels))
+    return np.array(out)
