@@ -266,18 +266,20 @@ def demo_path(name: str = "demo.toml") -> Path:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    """Predict, design, NCA, fit and verify the shipped invented examples; one HTML report."""
+    """Predict, design, NCA, fit, population and verify the shipped invented examples;
+    one HTML report."""
     from .runner import (
         run_design,
         run_fit,
         run_nca,
+        run_population,
         run_predict,
         run_verify,
         write_outputs,
         write_report,
     )
     from .schema import load_design_file, load_study_file, nca_options
-    from .schema.fitopts import fit_options
+    from .schema.fitopts import fit_options, population_options
 
     out = Path(args.out or "pkcalc-demo")
     runs = [run_predict(demo_path("demo.toml"), colour=_colour())]
@@ -290,6 +292,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
     runs.append(run_nca(study, nca_options(study.options.get("nca")), colour=_colour()))
     runs.append(run_fit(study, fit_options({**study.options.get("fit", {}), "with_nca": True}),
                         colour=_colour()))
+    sparse = load_study_file(demo_path("demo-sparse.toml"))
+    runs.append(run_population(sparse, population_options(
+        {**sparse.options.get("population", {}), "vpc_replicates": 100}), colour=_colour()))
     runs.append(run_verify(demo_path("reference-cases.toml"), colour=_colour())[0])
     for run in runs:
         _emit(run.text)
