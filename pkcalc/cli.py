@@ -61,6 +61,21 @@ Iterative two-stage by default (Prevost 1977; Steimer et al. 1984): MAP
 estimates of every subject under the current population prior, then an update
 of the typical values, the between-subject covariance and the residual error,
 until they settle.""",
+    "batch": """examples:
+  pkcalc batch scenarios/demo-grid.toml --out grid-results.csv --at 24h,48h
+  pkcalc batch scenarios/demo-batch.csv --out results.parquet
+  pkcalc batch scenarios/demo-batch.csv --out pop.csv --population 10000 --seed 1 \\
+               --cv-clearance 30% --cv-volume 20%
+  pkcalc batch big.csv --out big-results.csv --engine dask
+  pkcalc batch big.parquet --out big-results.parquet --engine dask \\
+               --scheduler tcp://10.0.0.5:8786
+
+The input table has one row per scenario and units in the headers (any two of
+clearance, volume, half_life, elimination_rate, time_constant; rate or dose;
+optional duration, interval, loading_dose, target, window_low, window_high,
+weight).  Input columns are carried through; a row with a problem gets its
+reason in the 'error' column and empty results.  --out is the output table;
+--plots DIR writes the distribution plots and CAUTION.txt.""",
     "nca": """examples:
   pkcalc nca scenarios/demo-study.toml
   pkcalc nca --levels levels.csv --doses doses.csv --auc-method linear --out nca-results/
@@ -251,6 +266,58 @@ def cmd_population(args: argparse.Namespace) -> int:
     return _finish(run_population(study, options, colour=_colour()), args)
 
 
+def _percent(text: str | None, option: str) -> float:
+    if text is None:
+        return 0.0
+    value = text.strip()
+    try:
+        number = float(value.rstrip("%").strip())
+    except ValueError:
+        raise PkcalcInputError(f"'{text}' is not a percentage", field=option,
+                               expected="e.g. 30%") from None
+    if not 0 <= number <= 1000:
+        raise PkcalcInputError(f"'{text}' is out of range", field=option,
+                               expected="0% to 1000%")
+    return number / 100.0
+
+
+def cmd_batch(args: argparse.Namespace) -> int:
+    from .batch import BatchOptions
+    from .runner import run_batch_command, write_outputs, write_report
+    from .units import to_canonical
+
+    at = tuple(to_canonical(x.strip(), "time", field="--at")
+               for x in (args.at or "").split(",") if x.strip())
+    if args.population is not None and args.population < 1:
+        raise PkcalcInputError("must be at least 1", field="--population")
+    if args.correlation is not None and not -1 < args.correlation < 1:
+        raise PkcalcInputError("must be in (-1, 1)", field="--correlation")
+    options = BatchOptions(at=at, population=args.population or 0, seed=args.seed or 1,
+                           cv_clearance=_percent(args.cv_clearance, "--cv-clearance"),
+                           cv_volume=_percent(args.cv_volume, "--cv-volume"),
+                           correlation=args.correlation or 0.0)
+    progress = sys.stderr.isatty() and not args.quiet
+    run = run_batch_command(args.input, args.out, options, engine=args.engine,
+                            scheduler=args.scheduler, chunk_rows=args.chunk_rows,
+                            progress=progress, colour=_colour())
+    if args.json:
+        from . import report
+
+        _emit(report.dumps(run.doc))
+    else:
+        _emit(run.text)
+    report_dir = Path(args.plots) if args.plots else Path(args.out).parent
+    if args.plots:
+        write_outputs(run, report_dir)
+    else:
+        from . import report
+
+        report.write_caution_file(report_dir)
+    if args.report:
+        write_report([run], args.report, options=" ".join(args.argv))
+    return run.code
+
+
 def cmd_nca(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_nca
 
@@ -403,6 +470,32 @@ def build_parser() -> argparse.ArgumentParser:
                    help="simulated replicates for the visual predictive check (default 200)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--out", metavar="DIR", help="write CSV, JSON and plots to DIR")
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+
+    p = _add(sub, "batch", cmd_batch,
+             "Scenario tables at scale: plateau, time to plateau, steady state, variability.")
+    p.add_argument("input", metavar="INPUT", help="CSV, Parquet, or TOML ([grid] or "
+                                                  "[[scenarios]])")
+    p.add_argument("--out", metavar="OUTPUT", required=True,
+                   help="output table (.csv or .parquet), written atomically")
+    p.add_argument("--engine", choices=["local", "dask"], default="local",
+                   help="local numpy (default) or dask.dataframe partitions")
+    p.add_argument("--scheduler", metavar="ADDR",
+                   help="existing Dask scheduler, e.g. tcp://10.0.0.5:8786 (default: a local "
+                        "cluster)")
+    p.add_argument("--at", metavar="TIMES", help="concentration at these times, e.g. 24h,48h")
+    p.add_argument("--population", type=int, metavar="N",
+                   help="virtual subjects per row (percentiles, fraction inside the window)")
+    p.add_argument("--seed", type=int, metavar="S", help="seed of the virtual population")
+    p.add_argument("--cv-clearance", metavar="P", help="between-subject CV of clearance, e.g. 30%%")
+    p.add_argument("--cv-volume", metavar="P", help="between-subject CV of volume, e.g. 20%%")
+    p.add_argument("--correlation", type=float, metavar="R",
+                   help="correlation of ln CL and ln V (default 0)")
+    p.add_argument("--chunk-rows", type=int, metavar="N",
+                   help="rows per chunk (default 200000; memory stays bounded by it)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--plots", metavar="DIR", help="write distribution plots and CAUTION.txt")
+    p.add_argument("--json", action="store_true", help="print the run summary as JSON")
     p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
 
     p = _add(sub, "nca", cmd_nca,

@@ -357,3 +357,33 @@ def vpc_figure(subjects, simulated: np.ndarray, conv: UnitConverter | None = Non
     ax.legend(fontsize=6.5, frameon=False, ncol=2)
     ax.set_ylim(bottom=0)
     return fig
+
+
+def batch_figure(summary, conv: UnitConverter | None = None) -> Figure:
+    """Distributions of plateau and time to 90 % across the batch (and, for variability
+    runs, of the fraction of virtual subjects inside the window)."""
+    conv = conv or UnitConverter()
+    panels = 3 if summary.fraction_in_window else 2
+    fig = Figure(figsize=(3.6 * panels, 3.6), layout="constrained")
+    fig.text(0.01, 0.005, CAUTION_SHORT, fontsize=6.5, color="0.25")
+    fig.get_layout_engine().set(rect=(0, 0.05, 1, 0.95))
+    axes = fig.subplots(1, panels)
+    data = [(np.asarray(summary.plateau, float), "concentration",
+             f"plateau [{conv.unit('concentration')}]"),
+            (np.asarray(summary.time_to_90, float), "time",
+             f"time to 90 % of plateau [{conv.unit('time')}]")]
+    for ax, (values, kind, label) in zip(axes, data, strict=False):
+        values = values[np.isfinite(values)]
+        ax.hist(conv(values, kind), bins=40, color="0.6", edgecolor="black", linewidth=0.3)
+        ax.set_xlabel(label)
+        ax.set_ylabel("scenarios")
+    if summary.fraction_in_window:
+        ax = axes[2]
+        f = np.asarray(summary.fraction_in_window, float)
+        ax.plot(np.arange(1, f.size + 1), 100 * f, "o", ms=3, color="black")
+        ax.set_ylim(-2, 102)
+        ax.set_xlabel("scenario (row)")
+        ax.set_ylabel("virtual subjects inside the window at steady state [%]")
+    for ax in np.atleast_1d(axes):
+        ax.grid(True, color="0.88", linewidth=0.6)
+    return fig

@@ -23,6 +23,7 @@ from .base import CAUTION, CAUTION_SHORT, dumps
 __all__ = [
     "ASSUMPTIONS",
     "HtmlReport",
+    "batch_sections",
     "design_sections",
     "figure_item",
     "fit_sections",
@@ -340,3 +341,20 @@ def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[
         if key in figures:
             items.append(figure_item(figures[key], caption))
     return [{"heading": "Population estimates", "blocks": items}]
+
+
+def batch_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
+    """Counts, distributions across the batch, first errors, the plot."""
+    items: list[dict[str, Any]] = [lines_item("text", [
+        f"{doc['rows']} rows from {doc['input']} written to {doc['output']} "
+        f"({doc['engine']} engine); {doc['failed']} rows with problems."])]
+    rows = [[k.replace("_", " "), d["p05"], d["p50"], d["p95"]]
+            for k, d in doc["distribution"].items() if d]
+    if rows:
+        items.append(table_item(["quantity", "5th", "median", "95th"], rows,
+                                "Across the batch (canonical units)"))
+    if doc["first_errors"]:
+        items.append(lines_item("warnings", doc["first_errors"]))
+    if "__batch__" in figures:
+        items.append(figure_item(figures["__batch__"], "Distributions across the batch"))
+    return [{"heading": "Scenario batch", "blocks": items}]
