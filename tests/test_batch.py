@@ -163,7 +163,7 @@ def test_grid_product(tmp_path):
                         "rate": ["600 mg/h", "800 mg/h"], "interval": ["8 h", "12 h"],
                         "duration": ["1 h"]})
     assert len(frame) == 8
-    assert list(frame.columns)[0] == "clearance [L/h]"
+    assert frame.columns[0] == "clearance [L/h]"
     np.testing.assert_allclose(frame["clearance [L/h]"], 3.0)  # 50 mL/min is 3 L/h
     r = run_batch(SCENARIOS / "demo-grid.toml", tmp_path / "g.csv", BatchOptions())
     assert r.rows == 54 and r.failed == 0
