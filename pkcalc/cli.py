@@ -333,9 +333,11 @@ def demo_path(name: str = "demo.toml") -> Path:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    """Predict, design, NCA, fit, population and verify the shipped invented examples;
-    one HTML report."""
+    """Predict, design, NCA, fit, population, verify and a batch on the shipped invented
+    examples; one HTML report."""
+    from .batch import BatchOptions
     from .runner import (
+        run_batch_command,
         run_design,
         run_fit,
         run_nca,
@@ -363,6 +365,12 @@ def cmd_demo(args: argparse.Namespace) -> int:
     runs.append(run_population(sparse, population_options(
         {**sparse.options.get("population", {}), "vpc_replicates": 100}), colour=_colour()))
     runs.append(run_verify(demo_path("reference-cases.toml"), colour=_colour())[0])
+    (out / "batch").mkdir(parents=True, exist_ok=True)
+    runs.append(run_batch_command(str(demo_path("demo-grid.toml")),
+                                  str(out / "batch" / "grid-results.csv"),
+                                  BatchOptions(at=(24.0, 48.0), population=1000, seed=1,
+                                               cv_clearance=0.3, cv_volume=0.2),
+                                  colour=_colour()))
     for run in runs:
         _emit(run.text)
         write_outputs(run, out / run.command)
