@@ -345,3 +345,54 @@ def test_cli_infeasible_chiou_level(run_cli, write):
     text = CHIOU.format(t1="2 h", c1="1 mg/L", t2="3 h", c2="9 mg/L")
     r = run_cli("design", write("bad.toml", text))
     assert r.code == 2 and "above what the infusion alone can reach" in r.err
+
+
+MAP_CASE = """
+[[scenarios]]
+name = "m"
+weight = "82 kg"
+doses = [ { start = "0 h", amount = "400 mg", duration = "30 min" },
+          { start = "0.5 h", rate = "35 mg/h", duration = "23.5 h" } ]
+[scenarios.design]
+method = "map"
+levels = [ { time = "6 h", concentration = "7.1 mg/L" },
+           { time = "22 h", concentration = "6.2 mg/L" } ]
+plateau = "8 mg/L"
+[scenarios.design.prior]
+clearance = "4.2 L/h"
+volume = "48 L"
+cv_clearance = "35%"
+cv_volume = "25%"
+error = { proportional = "10%" }
+"""
+
+
+def test_map_design_uses_the_fit_estimate(run_cli, write):
+    # second path: the same MAP estimate through pkcalc.fit, and the new rate
+    # re-predicted as Css = R0/CL
+    from pkcalc.fit import fit_subjects
+    from pkcalc.schema.fitopts import fit_options
+    from pkcalc.schema.study import SubjectData
+
+    r = run_cli("design", write("m.toml", MAP_CASE), "--json")
+    assert r.code == 0, r.err
+    d = r.json()["designs"][0]
+    s, a, dur = model.expand_doses([0.0, 0.5], [400.0, 35 * 23.5], [0.5, 23.5])
+    subject = SubjectData("m", np.array([6.0, 22.0]), np.array([7.1, 6.2]),
+                          np.full(2, np.nan), np.zeros(2, bool), np.arange(2), s, a, dur)
+    prior = {"clearance": "4.2 L/h", "volume": "48 L", "cv_clearance": "35%",
+             "cv_volume": "25%", "error": {"proportional": "10%"}}
+    (fit,), _ = fit_subjects([subject], fit_options({"prior": prior, "blq": "drop"}))
+    assert d["estimates"]["clearance"] == pytest.approx(fit.clearance, rel=1e-9)
+    reg = d["regimens"][0]
+    assert reg["rate"] / fit.clearance == pytest.approx(8.0, abs=0.1 / fit.clearance)
+
+
+def test_map_design_needs_prior_and_levels(run_cli, write):
+    text = MAP_CASE.split("[scenarios.design.prior]")[0]
+    r = run_cli("design", write("m.toml", text))
+    assert r.code == 2 and "needs a prior" in r.err
+    r = run_cli("design", write("m2.toml", MAP_CASE.replace(
+        'levels = [ { time = "6 h", concentration = "7.1 mg/L" },\n'
+        '           { time = "22 h", concentration = "6.2 mg/L" } ]\n', "")))
+    assert r.code == 2 and "needs measured levels" in r.err

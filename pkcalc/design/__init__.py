@@ -21,6 +21,7 @@ Methods and sources (details in ``docs/methods.md``):
 """
 
 from .adjust import (
+    adjust_map,
     adjust_peak_trough,
     adjust_proportional,
     adjust_two_levels,
@@ -54,6 +55,7 @@ __all__ = [
     "DesignResult",
     "Limits",
     "Regimen",
+    "adjust_map",
     "adjust_peak_trough",
     "adjust_proportional",
     "adjust_two_levels",

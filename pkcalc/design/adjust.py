@@ -6,6 +6,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
+import numpy as np
 from scipy.optimize import brentq
 
 from .. import model
@@ -293,6 +294,7 @@ def run_design(case: DesignCase) -> DesignResult:
     if opts.get("window") is not None:
         opts["window"] = Limits(*opts["window"])
     functions = {
+        "map": adjust_map,
         "continuous": design_continuous,
         "intermittent": design_intermittent,
         "proportional": adjust_proportional,
@@ -304,4 +306,64 @@ def run_design(case: DesignCase) -> DesignResult:
 
     if result.clearance and result.volume:
         result.warnings.extend(parameter_warnings(result.clearance, result.volume, case.weight))
+    return result
+
+
+def adjust_map(doses, levels, prior, *, plateau=None, window=None, infusion_time=None,
+               peak=None, trough=None, peak_limits=None, trough_limits=None,
+               intervals=DEFAULT_INTERVALS, weight=None, salt_factor: float = 1.0,
+               name: str = "adjustment", **rounding) -> DesignResult:
+    """Bayesian (MAP) individualisation from any levels, then a new regimen.
+
+    The individual clearance and volume are the posterior mode given the levels
+    after ``doses`` and the population ``prior`` (see :mod:`pkcalc.fit`); the new
+    regimen is designed with them: a continuous infusion to ``plateau``, or
+    repeated infusions of ``infusion_time`` to the peak/trough targets or limits.
+    """
+    from ..fit import fit_subjects
+    from ..schema.fitopts import FitOptions
+    from ..schema.study import SubjectData
+
+    t = np.array([x[0] for x in levels], float)
+    c = np.array([x[1] for x in levels], float)
+    order = np.argsort(t)
+    events = model.expand_doses([d.start for d in doses], [d.amount for d in doses],
+                                [d.duration for d in doses],
+                                every=[d.every or 0.0 for d in doses],
+                                count=[d.count for d in doses])
+    subject = SubjectData(name, t[order], c[order], np.full(t.size, np.nan),
+                          np.zeros(t.size, bool), np.arange(t.size), *events,
+                          covariates={} if weight is None else {"weight": weight})
+    fits, failures = fit_subjects([subject], FitOptions(prior=prior, blq="drop"))
+    if not fits:
+        raise ValueError(f"the MAP estimate failed: {failures[0][1]}")
+    fit = fits[0]
+    cl, v = fit.clearance, fit.volume
+    if plateau is not None:
+        result = design_continuous(cl, v, plateau, window=window, salt_factor=salt_factor,
+                                   name=name, **{k: x for k, x in rounding.items()
+                                                 if k in ("rate_step", "dose_step",
+                                                          "max_rate", "max_loading",
+                                                          "max_loading_ratio")})
+    else:
+        result = design_intermittent(cl, v, infusion_time, peak=peak, trough=trough,
+                                     peak_limits=peak_limits, trough_limits=trough_limits,
+                                     intervals=intervals, salt_factor=salt_factor, name=name,
+                                     **{k: x for k, x in rounding.items()
+                                        if k in ("dose_step", "max_dose")})
+    result.method = "map"
+    result.estimates = {"clearance": cl, "volume": v,
+                        "half_life": fit.estimates["half_life"].value,
+                        **{k: x for k, x in fit.prior.items() if k.startswith("prior_variance")}}
+    result.notes.insert(0, f"individual clearance and volume: MAP estimate from "
+                           f"{fit.n_obs} level(s) and the prior ({prior.source or 'inline'})")
+    if plateau is not None:
+        current = float(fit.predict([float(t.max())])[0])
+        result.notes.append(
+            f"the loading doses assume a start from zero; the predicted level at the last "
+            f"sample is {short(current)} mg/L, so the incremental loading dose "
+            f"(target - current) x V is {short(max(plateau - current, 0.0) * v / salt_factor)}"
+            " mg")
+    result.notes += fit.notes
+    result.warnings += fit.warnings
     return result

@@ -6,7 +6,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from pydantic import Field, PrivateAttr, model_validator
+from pydantic import Field, PrivateAttr, ValidationError, model_validator
 
 from ..errors import PkcalcInputError
 from .base import (
@@ -17,10 +17,11 @@ from .base import (
     _WithParameters,
     load_items,
     resolve_partial,
+    validation_problems,
 )
 
 # --------------------------------------------------------------------------- design
-DESIGN_METHODS = ("continuous", "intermittent", "proportional", "chiou", "sawchuk_zaske")
+DESIGN_METHODS = ("continuous", "intermittent", "proportional", "chiou", "sawchuk_zaske", "map")
 
 
 class SampleSpec(_Lenient):
@@ -70,10 +71,15 @@ class DesignSpec(_Lenient):
     pre_dose: QuantityText | None = None
     steady_state: bool | None = None
     new_infusion_time: QuantityText | None = None
+    # MAP (Bayesian) individualisation: levels after the scenario's doses, and a prior
+    levels: list[SampleSpec] | None = None
+    prior: dict[str, Any] | str | None = None
 
     def infer_method(self) -> str:
         if self.method is not None:
             return self.method
+        if self.levels is not None or self.prior is not None:
+            return "map"
         if self.samples is not None:
             return "chiou"
         if self.peak_sample is not None or self.trough_sample is not None:
@@ -248,6 +254,37 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
             opts.update(rate=rate, volume=v, target=plateau)
         for key in ("dose_step", "max_rate", "max_dose", "max_loading", "max_loading_ratio"):
             opts.pop(key, None)
+    elif method == "map":
+        from .fitopts import load_prior, parse_prior
+
+        levels = [_sample(col, x, f"design.levels[{i}]")
+                  for i, x in enumerate(spec.levels or [])]
+        if not levels:
+            col.add("method 'map' needs measured levels", "design.levels",
+                    "levels = [ { time = '6 h', concentration = '8.1 mg/L' } ]")
+        prior = None
+        try:
+            if isinstance(spec.prior, dict):
+                prior = parse_prior(spec.prior)
+            elif isinstance(spec.prior, str):
+                prior = load_prior(spec.prior)
+            else:
+                col.add("method 'map' needs a prior", "design.prior",
+                        "a [scenarios.design.prior] table or a prior file path")
+        except PkcalcInputError as exc:
+            col.problems.extend(exc.problems)
+        t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
+        if plateau is None and peak is None and peak_limits is None:
+            col.add("method 'map' needs a new target: plateau, or peak/trough with "
+                    "infusion_time", "design.plateau")
+        if plateau is None and t_inf is None and (peak is not None or peak_limits is not None):
+            col.add("a peak/trough target needs infusion_time", "design.infusion_time")
+        opts.update(levels=[x for x in levels if x is not None], prior=prior, plateau=plateau,
+                    infusion_time=t_inf, **interval_opts)
+        if spec.window is not None:
+            lo = q(spec.window[0], "concentration", "design.window[0]", nonnegative=True)
+            hi = q(spec.window[1], "concentration", "design.window[1]", positive=True)
+            opts["window"] = (lo, hi)
     elif method == "sawchuk_zaske":
         dose = q(spec.dose, "amount", "design.dose", positive=True)
         t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
@@ -303,6 +340,22 @@ class DesignCaseSpec(_WithParameters):
         col, weight, values = self.start_collecting()
         cl, v = (None, None) if col.problems else resolve_partial(values, col)
         method, opts = resolve_design(self.design, cl, v, col)
+        if method == "map":  # the dosing history the levels follow
+            from .scenario import DoseSpec
+
+            events = []
+            for i, raw in enumerate(self.doses or []):
+                try:
+                    ev = DoseSpec.model_validate(raw).to_event(col, f"doses[{i}]")
+                except ValidationError as exc:
+                    col.problems.extend(validation_problems(exc, prefix=f"doses[{i}]."))
+                    continue
+                if ev is not None:
+                    events.append(ev)
+            if not events:
+                col.add("method 'map' needs the doses given before the levels", "doses")
+            opts["doses"] = events
+            opts["weight"] = weight
         col.raise_if_any()
         self._resolved = DesignCase(self.name, method, cl, v, opts, weight)
         return self
