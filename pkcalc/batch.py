@@ -740,14 +740,7 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
                 raise PkcalcInputError("variability runs read a table or a [grid]",
                                        file=str(src), expected="a CSV/Parquet table or [grid]")
             frame, _ = scenario_rows(src, options)
-            writer = _Writer(dst, fmt_out)
-            try:
-                writer.write(frame)
-                writer.commit()
-            except BaseException:
-                writer.abort()
-                raise
-            _tally(summary, frame, collect)
+            write_stream(iter([frame]), dst, fmt_out, summary, collect, src)
             summary.seconds = time.perf_counter() - started
             return summary
         header, chunks = _toml_chunks(src, chunk_rows)
@@ -761,27 +754,38 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
                                 f"{', '.join(spec.unknown)}")
     block = chunk_rows if not options.population else max(
         1, min(chunk_rows, POPULATION_BLOCK * 4 // max(options.population, 1)))
-    writer = _Writer(dst, fmt_out)
     show = _progress(progress)
-    try:
+
+    def parts() -> Iterator[pd.DataFrame]:
         for chunk in chunks:
             for s in range(0, len(chunk), block):
-                part = chunk.iloc[s:s + block]
-                result = _normalise_types(compute(part, spec, options), spec)
-                writer.write(result)
-                _tally(summary, result, collect)
+                yield _normalise_types(compute(chunk.iloc[s:s + block], spec, options), spec)
                 show(summary.rows, started)
+
+    try:
+        write_stream(parts(), dst, fmt_out, summary, collect, src)
+    finally:
+        if progress:
+            sys.stderr.write("\n")
+    summary.seconds = time.perf_counter() - started
+    return summary
+
+
+def write_stream(parts: Iterator[pd.DataFrame], dst: Path, fmt_out: str,
+                 summary: BatchSummary, collect: int, src: Path) -> None:
+    """Write result parts in order to a temporary file, renamed when all are written;
+    nothing is left behind when a part fails."""
+    writer = _Writer(dst, fmt_out)
+    try:
+        for part in parts:
+            writer.write(part)
+            _tally(summary, part, collect)
         if summary.rows == 0:
             raise PkcalcInputError("the table has a header but no rows", file=str(src))
         writer.commit()
     except BaseException:
         writer.abort()
         raise
-    finally:
-        if progress:
-            sys.stderr.write("\n")
-    summary.seconds = time.perf_counter() - started
-    return summary
 
 
 def _tally(summary: BatchSummary, result: pd.DataFrame, collect: int) -> None:

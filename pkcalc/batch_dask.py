@@ -20,10 +20,9 @@ from .batch import (
     _csv_chunks,
     _normalise_types,
     _parquet_chunks,
-    _tally,
-    _Writer,
     compute,
     parse_columns,
+    write_stream,
 )
 from .errors import PkcalcInputError
 
@@ -61,7 +60,6 @@ def run_dask(src: Path, dst: Path, fmt_in: str, fmt_out: str, options: BatchOpti
     except OSError as exc:
         raise PkcalcInputError(f"cannot reach the Dask scheduler ({exc})",
                                field="--scheduler", expected="tcp://HOST:PORT") from None
-    writer = _Writer(dst, fmt_out)
     try:
         if fmt_in == "csv":
             # blocks of roughly chunk_rows rows (about 40 bytes a row)
@@ -73,16 +71,8 @@ def run_dask(src: Path, dst: Path, fmt_in: str, fmt_out: str, options: BatchOpti
             {h: pd.Series(dtype=str) for h in header}), spec, options)
         out = ddf.map_partitions(_kernel, spec, options, meta=meta)
         futures = client.compute(out.to_delayed())
-        for fut in futures:  # in partition order
-            part = fut.result()
-            writer.write(part)
-            _tally(summary, part, collect)
-        if summary.rows == 0:
-            raise PkcalcInputError("the table has a header but no rows", file=str(src))
-        writer.commit()
-    except BaseException:
-        writer.abort()
-        raise
+        # computed on the cluster, written here in partition order
+        write_stream((fut.result() for fut in futures), dst, fmt_out, summary, collect, src)
     finally:
         client.close()
         if cluster is not None:

@@ -388,6 +388,12 @@ def _add(sub, name: str, func: Callable[[argparse.Namespace], int], help_: str):
     return p
 
 
+def _output_args(p: argparse.ArgumentParser, out_help: str) -> None:
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.add_argument("--out", metavar="DIR", help=out_help)
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="pkcalc",
@@ -403,9 +409,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = _add(sub, "predict", cmd_predict,
              "Concentration course, plateau, time to plateau and steady state of scenarios.")
     p.add_argument("scenario", metavar="SCENARIO.toml", help="scenario file (DESIGN.md §5)")
-    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
-    p.add_argument("--out", metavar="DIR", help="write CSV, JSON and PNG files to DIR")
-    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+    _output_args(p, "write CSV, JSON and PNG files to DIR")
 
     p = _add(sub, "design", cmd_design,
              "Design a regimen to a target, or adjust one from measured levels.")
@@ -432,9 +436,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="flag loading doses above N maintenance doses (default 3)")
     p.add_argument("--salt-factor", type=float, metavar="S",
                    help="fraction of the product that is active drug (default 1)")
-    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
-    p.add_argument("--out", metavar="DIR", help="write CSV, JSON and PNG files to DIR")
-    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+    _output_args(p, "write CSV, JSON and PNG files to DIR")
 
     p = _add(sub, "fit", cmd_fit,
              "Estimate clearance, volume and half-life per subject from sampled levels.")
@@ -455,9 +457,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="show the fit beside non-compartmental results")
     p.add_argument("--nca-threshold", type=float, metavar="PERCENT",
                    help="flag fit/NCA differences beyond this (default 20)")
-    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
-    p.add_argument("--out", metavar="DIR", help="write fit.csv, fit.json and plots to DIR")
-    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+    _output_args(p, "write fit.csv, fit.json and plots to DIR")
 
     p = _add(sub, "population", cmd_population,
              "Typical values, between-subject variability and residual error from a study.")
@@ -476,9 +476,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, metavar="S", help="seed for bootstrap and VPC (default 1)")
     p.add_argument("--vpc-replicates", type=int, metavar="N",
                    help="simulated replicates for the visual predictive check (default 200)")
-    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
-    p.add_argument("--out", metavar="DIR", help="write CSV, JSON and plots to DIR")
-    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+    _output_args(p, "write CSV, JSON and plots to DIR")
 
     p = _add(sub, "batch", cmd_batch,
              "Scenario tables at scale: plateau, time to plateau, steady state, variability.")
@@ -516,9 +514,7 @@ def build_parser() -> argparse.ArgumentParser:
                         "as 0, later ones left out), zero, drop")
     p.add_argument("--terminal", action="append", metavar="SUBJECT=T1,T2,...",
                    help="choose a subject's terminal points by hand (repeatable)")
-    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
-    p.add_argument("--out", metavar="DIR", help="write nca.csv, nca.json and plots to DIR")
-    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+    _output_args(p, "write nca.csv, nca.json and plots to DIR")
 
     p = _add(sub, "verify", cmd_verify,
              "Recompute worked examples and report PASS/FAIL per expected value.")

@@ -11,7 +11,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, model_validator
 
 from .. import model
 from ..errors import PkcalcInputError, Problem
@@ -267,6 +267,14 @@ class _WithParameters(_Lenient):
     half_life: QuantityText | None = None
     elimination_rate: QuantityText | None = None
     time_constant: QuantityText | None = None
+
+    _resolved: Any = PrivateAttr(default=None)
+
+    @property
+    def resolved(self) -> Any:
+        """The entry in canonical units (set by the subclass's validator)."""
+        assert self._resolved is not None
+        return self._resolved
 
     def start_collecting(self) -> tuple[_Collector, float | None, dict[str, float | None]]:
         """A collector (with unknown keys reported), the weight and the canonical

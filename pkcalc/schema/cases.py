@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from pydantic import Field, PrivateAttr, model_validator
+from pydantic import Field, model_validator
 
 from ..errors import PkcalcInputError
 from ..units import KIND_OF, parse_number_and_unit, parse_unit
@@ -211,7 +211,6 @@ class CaseSpec(_WithParameters):
     design: DesignSpec | None = None
     expect: list[ExpectSpec] = Field(min_length=1)
 
-    _resolved: VerifyCase | None = PrivateAttr(default=None)
 
     @model_validator(mode="after")
     def _to_canonical(self) -> CaseSpec:
@@ -242,11 +241,6 @@ class CaseSpec(_WithParameters):
         self._resolved = VerifyCase(self.name, self.source, cl, v, weight, tuple(doses), times,
                                     design, tuple(e for e in expectations if e is not None))
         return self
-
-    @property
-    def resolved(self) -> VerifyCase:
-        assert self._resolved is not None
-        return self._resolved
 
 
 def load_cases_file(path: str | Path) -> ScenarioFile:

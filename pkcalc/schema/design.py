@@ -6,7 +6,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from pydantic import Field, PrivateAttr, ValidationError, model_validator
+from pydantic import Field, ValidationError, model_validator
 
 from ..errors import PkcalcInputError
 from .base import (
@@ -333,7 +333,6 @@ class DesignCaseSpec(_WithParameters):
     target: Any = None
     design: DesignSpec
 
-    _resolved: DesignCase | None = PrivateAttr(default=None)
 
     @model_validator(mode="after")
     def _to_canonical(self) -> DesignCaseSpec:
@@ -359,11 +358,6 @@ class DesignCaseSpec(_WithParameters):
         col.raise_if_any()
         self._resolved = DesignCase(self.name, method, cl, v, opts, weight)
         return self
-
-    @property
-    def resolved(self) -> DesignCase:
-        assert self._resolved is not None
-        return self._resolved
 
 
 def load_design_file(path: str | Path) -> ScenarioFile:

@@ -8,7 +8,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from pydantic import Field, PrivateAttr, model_validator
+from pydantic import Field, model_validator
 
 from .base import (
     DoseEvent,
@@ -160,7 +160,6 @@ class ScenarioSpec(_WithParameters):
     target: TargetSpec | None = None
     design: dict[str, Any] | None = None
 
-    _resolved: ScenarioInput | None = PrivateAttr(default=None)
 
     @model_validator(mode="after")
     def _to_canonical(self) -> ScenarioSpec:
@@ -189,12 +188,6 @@ class ScenarioSpec(_WithParameters):
             extra={"design": self.design} if self.design is not None else {},
         )
         return self
-
-    @property
-    def resolved(self) -> ScenarioInput:
-        """The scenario in canonical units."""
-        assert self._resolved is not None
-        return self._resolved
 
 
 def load_scenario_file(path: str | Path, *, extra_keys: Iterable[str] = (),
