@@ -143,3 +143,32 @@ def test_report_never_overwrites_input(run_cli, write):
     r = run_cli("predict", src, "--report", src)
     assert r.code == 2 and "overwrite" in r.err
     assert src.read_text() == before
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        ["nca", SCENARIOS / "demo-study.toml"],
+        ["fit", SCENARIOS / "demo-study.toml", "--with-nca"],
+        ["population", SCENARIOS / "demo-sparse.toml", "--vpc-replicates", "10"],
+        ["batch", SCENARIOS / "demo-grid.toml", "--out", "{tmp}/g.csv"],
+        ["verify", SCENARIOS / "reference-cases.toml"],
+    ],
+)
+def test_every_command_report_is_self_contained(run_cli, tmp_path, args):
+    args = [str(a).replace("{tmp}", str(tmp_path)) for a in args]
+    rep = tmp_path / "r.html"
+    r = run_cli(*args, "--report", rep)
+    assert r.code == 0, r.err
+    c = parse(rep)
+    no_remote_resources(c)
+    assert c.caution_pos is not None and c.first_table_pos is not None
+    assert c.caution_pos < c.first_table_pos
+    assert "Reproducibility" in " ".join(c.text_parts)
+
+
+@pytest.mark.parametrize("command", ["predict", "design", "fit", "nca", "population", "batch",
+                                     "verify", "demo"])
+def test_every_command_help_has_examples(run_cli, command):
+    r = run_cli(command, "--help")
+    assert r.code == 0 and "examples:" in r.out
