@@ -28,7 +28,6 @@ from .base import (
 from .cases import CaseSpec, Expectation, VerifyCase, load_cases_file
 from .design import DESIGN_METHODS, DesignCase, DesignCaseSpec, DesignSpec, load_design_file
 from .scenario import DoseSpec, ScenarioSpec, TargetSpec, TimeRange, load_scenario_file
-from .study import Study, SubjectData, load_study, load_study_file, nca_options
 
 __all__ = [
     "AGREEMENT_RTOL",
@@ -64,3 +63,16 @@ __all__ = [
     "resolve_partial",
     "validation_problems",
 ]
+
+
+_LAZY = {"Study", "SubjectData", "load_study", "load_study_file", "nca_options"}
+
+
+def __getattr__(name: str):
+    """Study tables need pandas; load them on first use so that ``pkcalc predict``
+    starts quickly."""
+    if name in _LAZY:
+        from . import study
+
+        return getattr(study, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
