@@ -524,14 +524,15 @@ def simulate_design(subjects: list[SubjectData], result: PopulationResult, repli
     mu = _means(beta, x, offset, estimate)
     sa = result.residual_error.get("additive", 0.0)
     sp = result.residual_error.get("proportional", 0.0)
-    out = []
-    for _ in range(replicates):
-        eta = rng.multivariate_normal([0.0, 0.0], result.omega, len(subjects))
-        levels = []
-        for i, s in enumerate(subjects):
-            cl, v = np.exp(mu[i] + eta[i])
-            c = model.concentration(s.time, s.dose_start, s.dose_amount, s.dose_duration, cl, v)
-            sd = np.sqrt(sa**2 + sp**2 * c**2)
-            levels.append(c + sd * rng.standard_normal(c.size))
-        out.append(np.concatenate(levels))
-    return np.array(out)
+    # all replicates at once: subjects padded to one width, parameters (R, S)
+    batch, _, _ = _prepare_batch(subjects, FitOptions(error_model="additive", blq="drop"))
+    eta = rng.multivariate_normal([0.0, 0.0], result.omega, (replicates, len(subjects)))
+    cl = np.exp(mu[None, :, 0] + eta[..., 0])
+    v = np.exp(mu[None, :, 1] + eta[..., 1])
+    c = model.concentration(batch.t[None], batch.start[None], batch.amount[None],
+                            batch.duration[None], cl, v)                    # (R, S, N)
+    sd = np.sqrt(sa**2 + sp**2 * c**2)
+    c = c + sd * rng.standard_normal(c.shape)
+    real = np.concatenate([np.arange(s.time.size) + i * batch.t.shape[1]
+                           for i, s in enumerate(subjects)])
+    return c.reshape(replicates, -1)[:, real]
