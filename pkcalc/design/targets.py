@@ -100,7 +100,7 @@ def design_continuous(
     plateau_pred = float(model.plateau_concentration(salt_factor * rate, clearance))
     t_within = -math.log(within) / k
 
-    def finish(label: str, ld: float | None, exact: dict[str, float], note: str | None):
+    def finish(label: str, ld: float | None, exact: dict[str, float]) -> Regimen:
         reg = Regimen(label, rate=rate, loading_dose=ld,
                       loading_time=loading_time if ld else None, exact=exact)
         t, c = _course(reg, clearance, volume, salt_factor, horizon)
@@ -141,27 +141,27 @@ def design_continuous(
                          f"the 24-h maintenance amount {short(rate * 24)} mg")
         return Regimen(label, rate=rate, loading_dose=ld,
                        loading_time=loading_time if ld else None, predicted=predicted,
-                       meets_target=not flags, flags=tuple(flags), exact=exact), note
+                       meets_target=not flags, flags=tuple(flags), exact=exact)
 
     regimens, notes = [], []
     ld = round_to_step(exact_ld, loading_step)
     label = ("maintenance + loading bolus" if loading_time <= 0 else
              f"maintenance + loading Css*V over {short(loading_time)} h")
-    reg, _ = finish(label, ld, {"rate": exact_rate, "loading_dose": exact_ld}, None)
+    reg = finish(label, ld, {"rate": exact_rate, "loading_dose": exact_ld})
     regimens.append(reg)
     if loading_time > 0:
         exact_inf = loading_infusion_for_target(plateau, clearance, volume, loading_time,
                                                 salt_factor)
         ld2 = round_to_step(exact_inf, loading_step)
-        reg2, _ = finish(f"maintenance + loading sized for {short(loading_time)} h infusion",
-                         ld2, {"rate": exact_rate, "loading_dose": exact_inf}, None)
+        reg2 = finish(f"maintenance + loading sized for {short(loading_time)} h infusion",
+                      ld2, {"rate": exact_rate, "loading_dose": exact_inf})
         regimens.append(reg2)
         notes.append(
             f"a loading dose of Css*V infused over {short(loading_time)} h ends below the target "
             f"(level {short(regimens[0].predicted['lowest_after_loading'])} mg/L); the second "
             "proposal sizes the loading infusion to reach the target at its end"
         )
-    reg3, _ = finish("maintenance only (no loading dose)", None, {"rate": exact_rate}, None)
+    reg3 = finish("maintenance only (no loading dose)", None, {"rate": exact_rate})
     regimens.append(reg3)
     notes.append(f"without a loading dose the level is within {within:.0%} of the plateau after "
                  f"{short(t_within)} h ({short(t_within * k / model.LN2)} half-lives)")
