@@ -25,7 +25,10 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = [
+    "INITIAL_LEVEL",
     "LN2",
+    "amount_to_reach",
+    "area_by_mass_balance",
     "concentration",
     "concentration_and_gradient",
     "concentration_repeated",
@@ -36,11 +39,18 @@ __all__ = [
     "resolve_clearance_volume",
     "steady_state_intermittent",
     "steady_state_periodic",
+    "split_events",
     "steady_state_profile",
     "time_to_fraction",
 ]
 
 LN2 = float(np.log(2.0))
+
+#: Duration code of an *initial-level* event: its ``amount`` is a concentration
+#: (mg/L) present at ``start`` that decays with the patient's ``k`` from there
+#: (``C0 exp(-k (t - start))``; residual drug from earlier therapy).  Only arrays
+#: handed to :func:`concentration` and :func:`concentration_and_gradient` carry it.
+INITIAL_LEVEL = -1.0
 
 
 def _infused_fraction(k, u, duration):
@@ -199,8 +209,11 @@ def concentration(t, start, amount, duration, clearance, volume):
 
         C(t) = sum_events  A / (V k d) * (1 - exp(-k u)) * exp(-k w)     (d > 0)
         C(t) = sum_events  A / V * exp(-k (t - s))                         (d = 0)
+        C(t) = sum_events  C0 exp(-k (t - s))                              (initial level)
 
-    for ``t >= s`` and 0 before.  During an infusion this is
+    for ``t >= s`` and 0 before (an initial-level event has ``duration =
+    INITIAL_LEVEL`` and its ``amount`` is the level ``C0`` in mg/L).  During an
+    infusion this is
     ``(R0/CL)(1 - exp(-k (t - s)))`` with ``R0 = A/d``; after it,
     ``C(end) exp(-k (t - end))``.  The result is right-continuous: a bolus at
     ``t`` is included at ``t``.
@@ -243,20 +256,23 @@ def _sum_events(x: np.ndarray) -> np.ndarray:
 
 
 def _event_terms(u, w, active, amount, duration, clearance, volume):
-    """Each event's contribution ``coef (1 - exp(-k u)) exp(-k w)`` (or the bolus form),
-    and the pieces the gradient reuses."""
+    """Each event's contribution ``coef (1 - exp(-k u)) exp(-k w)`` (or the bolus and
+    initial-level forms), and the pieces the gradient reuses."""
     amount = np.asarray(amount, dtype=float)[..., None, :]
     duration = np.asarray(duration, dtype=float)[..., None, :]
     clearance = np.asarray(clearance, dtype=float)[..., None, None]
     volume = np.asarray(volume, dtype=float)[..., None, None]
     k = clearance / volume
-    bolus = (duration <= 0).astype(float)
-    # A/(V k d) for infusions, A/V for boluses; zero before the event starts
-    coef = active * amount / (volume * (bolus + (1.0 - bolus) * k * duration))
+    infusion = (duration > 0).astype(float)
+    bolus = (duration == 0).astype(float)
+    point = 1.0 - infusion  # bolus or initial level: no infusion phase
+    # A/(V k d) for infusions, A/V for boluses, C0 for an initial level; zero before the start
+    denom = infusion * volume * k * duration + bolus * volume + (point - bolus)
+    coef = active * amount / denom
     e_w = np.exp(-k * w)
     em1 = np.expm1(-k * u)
-    # (1 - exp(-k u)) for infusions; 1 for boluses (u is 0 there, so em1 is 0)
-    return coef * (bolus - em1) * e_w, (coef, k, e_w, em1, bolus)
+    # (1 - exp(-k u)) for infusions; 1 for the others (u is 0 there, so em1 is 0)
+    return coef * (point - em1) * e_w, (coef, k, e_w, em1, bolus, infusion, point)
 
 
 def event_geometry(t, start, duration):
@@ -279,7 +295,7 @@ def event_geometry(t, start, duration):
     start = np.asarray(start, dtype=float)[..., None, :]
     duration = np.asarray(duration, dtype=float)[..., None, :]
     dt = t - start
-    u = np.clip(dt, 0.0, duration)
+    u = np.clip(dt, 0.0, np.maximum(duration, 0.0))
     return u, np.maximum(dt - u, 0.0), dt >= 0
 
 
@@ -315,12 +331,13 @@ def concentration_and_gradient(t, start, amount, duration, clearance, volume, *,
         ``grad[0] = dC/d ln CL`` and ``grad[1] = dC/d ln V``.
     """
     u, w, active = geometry if geometry is not None else event_geometry(t, start, duration)
-    term, (coef, k, e_w, em1, bolus) = _event_terms(u, w, active, amount, duration,
-                                                    clearance, volume)
-    # k g'(k); for boluses u = em1 = 0 and the first part vanishes
-    d_term = coef * k * e_w * (u * (1.0 + em1) + w * em1 - bolus * w)
+    term, (coef, k, e_w, em1, bolus, infusion, point) = _event_terms(
+        u, w, active, amount, duration, clearance, volume)
+    # k g'(k); for boluses and initial levels u = em1 = 0 and the first part vanishes
+    d_term = coef * k * e_w * (u * (1.0 + em1) + w * em1 - point * w)
     conc = _sum_events(term)
-    grad = np.stack([_sum_events(d_term - (1.0 - bolus) * term),
+    # initial level (coef = C0, no V): dC/d lnCL = D, dC/d lnV = -D
+    grad = np.stack([_sum_events(d_term - infusion * term),
                      _sum_events(-bolus * term - d_term)])
     return conc, grad
 
@@ -565,3 +582,121 @@ def steady_state_periodic(offset, amount, duration, interval, clearance, volume)
     )
     average = amount.sum() / (clearance * interval)
     return float(values.max()), float(values.min()), float(average)
+
+
+def split_events(start, amount, duration, at):
+    """Split single dose events at time ``at``: what was given before it and after it.
+
+    An infusion running at ``at`` is cut there: the part infused before ``at``
+    (``rate x (at - start)``) stays in the first set, the rest starts at ``at``
+    in the second.  A bolus at exactly ``at`` belongs to the second set.  The
+    concentration is the sum of both sets' responses (superposition), so
+    ``before`` alone is the course when every dose from ``at`` on is withheld.
+
+    Parameters
+    ----------
+    start, amount, duration : array_like, shape (E,), h, mg, h
+        Single events (see :func:`expand_doses`).
+    at : float, h
+
+    Returns
+    -------
+    before, after : tuple of three ndarrays
+        ``(start, amount, duration)`` of each set; empty arrays where none.
+
+    Examples
+    --------
+    >>> b, a = split_events([0.0], [100.0], [10.0], 4.0)
+    >>> float(b[1][0]), float(b[2][0]), float(a[0][0]), float(a[1][0])
+    (40.0, 4.0, 4.0, 60.0)
+    """
+    start = np.atleast_1d(np.asarray(start, dtype=float))
+    amount = np.atleast_1d(np.asarray(amount, dtype=float))
+    duration = np.atleast_1d(np.asarray(duration, dtype=float))
+    infusing = duration > 0
+    given = np.clip(at - start, 0.0, np.maximum(duration, 0.0))
+    frac = np.where(infusing, given / np.where(infusing, duration, 1.0), 0.0)
+    frac = np.where(infusing, frac, (start < at).astype(float))
+    frac = np.where(duration < 0, (start <= at).astype(float), frac)  # initial levels stay
+    pre = frac > 0
+    post = frac < 1
+    before = (start[pre], (amount * frac)[pre], np.where(infusing, given, duration)[pre])
+    after_start = np.where(infusing, np.maximum(start, at), start)
+    after = (after_start[post], (amount * (1.0 - frac))[post],
+             np.where(infusing, duration - given, duration)[post])
+    return before, after
+
+
+def area_by_mass_balance(infused, c_start, c_end, clearance, volume):
+    """Area under the concentration curve between two times, by mass balance.
+
+    Integrating ``V dC/dt = input(t) - CL C`` from ``t1`` to ``t2``::
+
+        AUC(t1, t2) = (input - V (C(t2) - C(t1))) / CL
+
+    where ``input`` is the drug amount that entered in between [1]_ (ch. 1).  At
+    steady state over one interval this is ``dose / CL``; over 24 h of a
+    regimen at steady state, ``daily dose / CL``.
+
+    Parameters
+    ----------
+    infused : float or ndarray, mg
+    c_start, c_end : float or ndarray, mg/L
+    clearance : float or ndarray, L/h
+    volume : float or ndarray, L
+
+    Returns
+    -------
+    float or ndarray, mg h/L
+
+    References
+    ----------
+    .. [1] Gibaldi & Perrier, *Pharmacokinetics*, 2nd ed., ch. 1.
+
+    Examples
+    --------
+    >>> float(area_by_mass_balance(2400.0, 10.0, 10.0, 100.0, 50.0))  # 24 h at plateau
+    24.0
+    """
+    return (np.asarray(infused, float) - np.asarray(volume, float)
+            * (np.asarray(c_end, float) - np.asarray(c_start, float))) \
+        / np.asarray(clearance, float) + 0.0
+
+
+def amount_to_reach(target, current, clearance, volume, duration):
+    """Amount that, infused over ``duration`` from a level ``current``, ends at ``target``.
+
+    With nothing else given, ``C(T) = current exp(-kT) + A/(CL T) (1 - exp(-kT))``,
+    so::
+
+        A = (target - current exp(-kT)) CL T / (1 - exp(-kT))      (T > 0)
+        A = (target - current) V                                    (T = 0, a bolus)
+
+    The bolus form is the incremental loading dose (Winter, *Basic Clinical
+    Pharmacokinetics* -- from memory); with ``current = 0`` the infusion form is
+    the loading infusion that reaches the target at its end.  A negative result
+    means the level is already above where the target asks it to be.
+
+    Parameters
+    ----------
+    target, current : float or ndarray, mg/L
+    clearance : float or ndarray, L/h
+    volume : float or ndarray, L
+    duration : float or ndarray, h
+
+    Returns
+    -------
+    float or ndarray, mg of drug
+
+    Examples
+    --------
+    >>> float(amount_to_reach(10.0, 4.0, 3.0, 35.0, 0.0))
+    210.0
+    """
+    target, current, clearance, volume, duration = (
+        np.asarray(a, dtype=float) for a in (target, current, clearance, volume, duration))
+    k = clearance / volume
+    kt = k * duration
+    with np.errstate(invalid="ignore", divide="ignore"):
+        infused = (target - current * np.exp(-kt)) * clearance * duration / -np.expm1(-kt)
+    return np.where(duration > 0, infused, (target - current) * volume) + 0.0
