@@ -37,10 +37,11 @@ __all__ = [
     "expand_doses",
     "plateau_concentration",
     "resolve_clearance_volume",
+    "split_events",
     "steady_state_intermittent",
     "steady_state_periodic",
-    "split_events",
     "steady_state_profile",
+    "time_to_fall",
     "time_to_fraction",
 ]
 
@@ -700,3 +701,18 @@ def amount_to_reach(target, current, clearance, volume, duration):
     with np.errstate(invalid="ignore", divide="ignore"):
         infused = (target - current * np.exp(-kt)) * clearance * duration / -np.expm1(-kt)
     return np.where(duration > 0, infused, (target - current) * volume) + 0.0
+
+
+def time_to_fall(level_now, level_wanted, clearance, volume):
+    """Time for the level to fall from ``level_now`` to ``level_wanted`` with no input.
+
+    ``t = ln(Cnow / Cwanted) / k`` (first-order decline; the pause before a lower
+    rate, Bauer, *Applied Clinical Pharmacokinetics* -- from memory).
+
+    Examples
+    --------
+    >>> round(float(time_to_fall(8.0, 4.0, 1.0, 8.0 / LN2)), 6)  # one half-life
+    8.0
+    """
+    return np.log(np.asarray(level_now, float) / np.asarray(level_wanted, float)) \
+        * np.asarray(volume, float) / np.asarray(clearance, float) + 0.0

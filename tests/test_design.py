@@ -40,7 +40,7 @@ def course(regimen, cl, v, salt=1.0, horizon=400.0, points=40001):
 def test_theophylline_hendeles_1978():
     # Hendeles et al. 1978 (abstract, via REFERENCES.md): for ~10 mg/L, a 5 mg/kg
     # loading dose and 0.4 mg/kg/h (V 0.5 L/kg, CL 0.04 L/h/kg; 70 kg here).
-    r = design_continuous(0.04 * 70, 0.5 * 70, 10.0, rate_step=None, loading_step=None)
+    r = design_continuous(0.04 * 70, 0.5 * 70, 10.0, rate_step=None, dose_step=None)
     best = r.regimens[0]
     assert best.rate / 70 == pytest.approx(0.4)
     assert best.loading_dose / 70 == pytest.approx(5.0)
@@ -52,7 +52,7 @@ def test_aminophylline_mitenko_ogilvie_1973():
     # With the implied CL 0.072 L/h/kg and V = 5.6 x 0.8 / 10 L/kg the design with
     # the salt factor returns those doses.
     r = design_continuous(0.072, 5.6 * 0.8 / 10, 10.0, salt_factor=0.8, rate_step=None,
-                          loading_step=None)
+                          dose_step=None)
     assert r.regimens[0].rate == pytest.approx(0.9)
     assert r.regimens[0].loading_dose == pytest.approx(5.6)
 
@@ -150,7 +150,7 @@ def test_sawchuk_zaske_new_regimen_hits_targets_by_reprediction():
 def test_continuous_design_lands_on_target(loading_time):
     cl, v, target = 4.2, 48.0, 8.0
     res = design_continuous(cl, v, target, loading_time=loading_time, rate_step=0.5,
-                            loading_step=25.0)
+                            dose_step=25.0)
     for reg in res.regimens:
         _, c = course(reg, cl, v, horizon=200.0)
         assert c[-1] == pytest.approx(reg.predicted["plateau"], rel=1e-4)
@@ -168,7 +168,7 @@ def test_continuous_design_lands_on_target(loading_time):
 
 
 def test_bolus_loading_gives_flat_profile():
-    res = design_continuous(3.0, 30.0, 10.0, rate_step=None, loading_step=None)
+    res = design_continuous(3.0, 30.0, 10.0, rate_step=None, dose_step=None)
     _, c = course(res.regimens[0], 3.0, 30.0, horizon=100.0)
     np.testing.assert_allclose(c, 10.0, rtol=1e-12)
 
@@ -236,7 +236,7 @@ def test_rounding_never_crosses_a_limit_silently(cl, v, t_inf, pmax, tmin, step)
 @given(cl=st.floats(0.2, 30), v=st.floats(3, 300), target=st.floats(0.5, 50),
        rate_step=st.sampled_from([None, 0.1, 1.0]))
 def test_continuous_rounding_flags(cl, v, target, rate_step):
-    res = design_continuous(cl, v, target, rate_step=rate_step, loading_step=None)
+    res = design_continuous(cl, v, target, rate_step=rate_step, dose_step=None)
     for reg in res.regimens:
         off = abs(reg.predicted["plateau"] / target - 1) > 0.1
         if off:

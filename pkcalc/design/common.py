@@ -6,6 +6,8 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+import numpy as np
+
 from .._format import format_table, short
 from ..schema import DoseEvent
 
@@ -39,20 +41,20 @@ class Limits:
     def around(cls, target: float, tolerance: float) -> Limits:
         return cls(target * (1 - tolerance), target * (1 + tolerance))
 
-    def violation(self, value: float | None, label: str) -> str | None:
+    def violation(self, value: float | None, label: str, unit: str = "mg/L") -> str | None:
         """A plain-words flag when ``value`` lies outside, else None."""
         if value is None:
             return None
         if self.high is not None and value > self.high * (1 + 1e-12):
-            return f"{label} {short(value)} mg/L is above its limit {short(self.high)} mg/L"
+            return f"{label} {short(value)} {unit} is above its limit {short(self.high)} {unit}"
         if self.low is not None and value < self.low * (1 - 1e-12):
-            return f"{label} {short(value)} mg/L is below its limit {short(self.low)} mg/L"
+            return f"{label} {short(value)} {unit} is below its limit {short(self.low)} {unit}"
         return None
 
-    def text(self) -> str:
+    def text(self, unit: str = "mg/L") -> str:
         lo = "-" if self.low is None else short(self.low)
         hi = "-" if self.high is None else short(self.high)
-        return f"{lo} to {hi} mg/L"
+        return f"{lo} to {hi} {unit}"
 
 
 def round_to_step(value: float, step: float | None) -> float:
@@ -60,6 +62,23 @@ def round_to_step(value: float, step: float | None) -> float:
     if step is None or step <= 0:
         return float(value)
     return float(max(round(value / step), 1) * step)
+
+
+def round_inside(ideal: float, lo: float, hi: float, step: float | None) -> float:
+    """Round to the step, staying inside ``[lo, hi]`` when a multiple of the step fits.
+
+    When none fits the nearest multiple is returned (the caller flags the limit crossed).
+    """
+    if step is None or step <= 0:
+        return ideal
+    nearest = round_to_step(ideal, step)
+    if lo * (1 - 1e-12) <= nearest <= hi * (1 + 1e-12):
+        return nearest
+    inside = [m * step for m in (math.ceil(lo / step), math.floor(hi / step)) if m >= 1]
+    inside = [x for x in inside if lo * (1 - 1e-12) <= x <= hi * (1 + 1e-12)]
+    if inside:
+        return min(inside, key=lambda x: abs(math.log(x / ideal)))
+    return nearest
 
 
 def rate_for_target(target, clearance, salt_factor=1.0):
@@ -101,6 +120,68 @@ def loading_infusion_for_target(target, clearance, volume, loading_time, salt_fa
 
 # --------------------------------------------------------------------------- results
 @dataclass(frozen=True)
+class DoseRecord:
+    """One dose record of a proposal, on the history clock (product amounts).
+
+    ``start`` and two of ``amount``/``rate``/``duration`` (all three filled
+    where known); ``every``/``count`` where it repeats.  A continuous infusion
+    without an end has ``duration`` and ``amount`` None.
+    """
+
+    start: float
+    amount: float | None
+    rate: float | None
+    duration: float | None
+    every: float | None = None
+    count: int = 1
+
+    def as_dict(self) -> dict[str, float | int | None]:
+        return {"start": self.start, "amount": self.amount, "rate": self.rate,
+                "duration": self.duration, "every": self.every, "count": self.count}
+
+    def single_events(self, salt_factor: float, until: float, extend: bool = False):
+        """``(start, amount, duration)`` arrays of drug (``S x`` product), repeats
+        expanded; an open infusion runs to ``until``.  ``extend`` continues a
+        repeated record past its count up to ``until`` (the regimen goes on)."""
+        if self.duration is None:
+            d = max(until - self.start, 0.0)
+            assert self.rate is not None
+            return (np.array([self.start]), np.array([salt_factor * self.rate * d]),
+                    np.array([d]))
+        n = self.count
+        every = self.every or 0.0
+        if extend and every > 0:
+            n = max(n, math.floor((until - self.start) / every) + 1)
+        starts = self.start + every * np.arange(n)
+        return (starts, np.full(n, salt_factor * (self.amount or 0.0)),
+                np.full(n, self.duration))
+
+
+def records_events(records, salt_factor: float, until: float, extend: bool = False):
+    """Single drug events of several :class:`DoseRecord` (see ``single_events``)."""
+    parts = [r.single_events(salt_factor, until, extend) for r in records]
+    if not parts:
+        return np.empty(0), np.empty(0), np.empty(0)
+    return tuple(np.concatenate([p[i] for p in parts]) for i in range(3))
+
+
+def bolus_record(start: float, amount: float) -> DoseRecord:
+    return DoseRecord(start, amount, None, 0.0)
+
+
+def infusion_record(start: float, amount: float, duration: float, every: float | None = None,
+                    count: int = 1) -> DoseRecord:
+    if duration <= 0:
+        return DoseRecord(start, amount, None, 0.0, every if count > 1 else None, count)
+    return DoseRecord(start, amount, amount / duration, duration,
+                      every if count > 1 else None, count)
+
+
+def open_infusion_record(start: float, rate: float) -> DoseRecord:
+    return DoseRecord(start, None, rate, None)
+
+
+@dataclass(frozen=True)
 class Regimen:
     """One proposed regimen with its re-predicted metrics.
 
@@ -123,6 +204,10 @@ class Regimen:
     flags : tuple of str
     exact : dict of str to float
         The unrounded design values.
+    start : float, h
+        When the regimen starts (history clock; 0 for a design without history).
+    doses : tuple of DoseRecord
+        The exact dose records proposed (product amounts), for re-simulation.
     """
 
     label: str
@@ -136,13 +221,22 @@ class Regimen:
     meets_target: bool | None = None
     flags: tuple[str, ...] = ()
     exact: dict[str, float] = field(default_factory=dict)
+    start: float = 0.0
+    doses: tuple[DoseRecord, ...] = ()
 
     def events(self, salt_factor: float = 1.0, horizon: float | None = None) -> list[DoseEvent]:
         """Dose events of the regimen in drug amounts (``S x`` product), for prediction.
 
         Continuous maintenance starts after the loading dose ends and runs to
-        ``horizon``; intermittent doses repeat up to ``horizon``.
+        ``horizon``; intermittent doses repeat up to ``horizon``.  A regimen with
+        dose records uses them (on the history clock).
         """
+        if self.doses:
+            until = self.start + (horizon or 0.0)
+            st, am, du = records_events(self.doses, salt_factor, until, extend=True)
+            keep = st <= until
+            return [DoseEvent(float(a), float(b), float(c))
+                    for a, b, c in zip(st[keep], am[keep], du[keep], strict=True)]
         out = []
         t_load = self.loading_time or 0.0
         if self.loading_dose:

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -20,11 +21,16 @@ from .common import (
     DesignResult,
     Limits,
     Regimen,
+    infusion_record,
     loading_dose_for_target,
     loading_infusion_for_target,
+    open_infusion_record,
     rate_for_target,
+    records_events,
+    round_inside,
     round_to_step,
 )
+from .projection import PROJECTION_HORIZON, CurrentState, first_time_at_or_above, project
 
 
 # --------------------------------------------------------------------------- continuous
@@ -38,20 +44,41 @@ def _course(regimen: Regimen, clearance: float, volume: float, salt_factor: floa
     return t, model.concentration(t, start, amount, duration, clearance, volume)
 
 
+def _plateau_and_window(plateau, window, auc_24):
+    """Plateau aim and window, from a plateau target and/or an AUC24 range (mg h/L).
+
+    At steady state on a constant rate ``AUC24 = 24 Css`` [calc]; without a
+    plateau the aim is the (geometric) middle of the AUC range over 24 h.
+    """
+    from ..predict import TARGET_RTOL
+
+    if plateau is None:
+        if auc_24 is None:
+            raise ValueError("need a plateau target or an AUC24 target")
+        plateau = _aim(Limits(auc_24.low, auc_24.high), high_side=True) / 24.0
+    if window is None:
+        window = (Limits(auc_24.low and auc_24.low / 24.0, auc_24.high and auc_24.high / 24.0)
+                  if auc_24 is not None and auc_24.low is not None and auc_24.high is not None
+                  else Limits.around(plateau, TARGET_RTOL))
+    return plateau, window
+
+
 def design_continuous(
     clearance: float,
     volume: float,
-    plateau: float,
+    plateau: float | None = None,
     *,
     window: Limits | None = None,
+    auc_24: Limits | None = None,
     loading_time: float = 0.0,
     salt_factor: float = 1.0,
     rate_step: float | None = DEFAULT_RATE_STEP,
-    loading_step: float | None = DEFAULT_DOSE_STEP,
+    dose_step: float | None = DEFAULT_DOSE_STEP,
     max_rate: float | None = None,
     max_loading: float | None = None,
     max_loading_ratio: float | None = DEFAULT_MAX_LOADING_RATIO,
     within: float = 0.10,
+    state: CurrentState | None = None,
     name: str = "design",
 ) -> DesignResult:
     """Constant-rate infusion (with and without a loading dose) to a plateau.
@@ -62,20 +89,29 @@ def design_continuous(
     is proposed beside it.  Without a loading dose the level is within
     ``within`` of the plateau after ``-ln(within)/k`` (Gibaldi & Perrier ch. 2).
 
+    With a ``state`` (a proposal from measured levels) the regimen starts at
+    ``state.start`` from the level then present: the loading dose is the
+    increment from that level (:func:`pkcalc.model.amount_to_reach`), a level
+    above the target gets a hold of ``ln(C/Ctarget)/k`` before the new rate,
+    and every proposal is judged on its projected course over the next 72 h.
+
     Parameters
     ----------
     clearance : float, L/h
     volume : float, L
-    plateau : float, mg/L
-        Target plateau concentration.
+    plateau : float, optional, mg/L
+        Target plateau concentration (or give ``auc_24``).
     window : Limits, optional, mg/L
-        Acceptable range; default target ±10 %.
+        Acceptable range; default target ±10 % (or the AUC range / 24 h).
+    auc_24 : Limits, optional, mg h/L
+        Steady-state AUC over 24 h; ``AUC24 = 24 R0 S / CL``.
     loading_time : float, h
         0 for a bolus loading dose.
     salt_factor : float
         Fraction of the product that is active drug (0 < S <= 1).
-    rate_step, loading_step : float or None, mg/h and mg
-        Rounding steps (None: no rounding).
+    rate_step, dose_step : float or None, mg/h and mg
+        Rounding steps of the rate and the loading dose (None: no rounding);
+        values are rounded inside the window where a multiple of the step fits.
     max_rate, max_loading : float, optional
         User-stated maxima (mg/h, mg): exceeding them is flagged.
     max_loading_ratio : float, optional
@@ -83,46 +119,119 @@ def design_continuous(
         amount per 24 h.
     within : float
         Fraction of the plateau for the time-to-target without loading.
+    state : CurrentState, optional
+        Where the patient is when the proposal starts.
     name : str
 
     Returns
     -------
     DesignResult
     """
-    from ..predict import TARGET_RTOL
-
+    plateau, window = _plateau_and_window(plateau, window, auc_24)
     k = clearance / volume
-    window = window or Limits.around(plateau, TARGET_RTOL)
     exact_rate = rate_for_target(plateau, clearance, salt_factor)
-    exact_ld = loading_dose_for_target(plateau, volume, salt_factor)
-    rate = round_to_step(exact_rate, rate_step)
-    horizon = loading_time + 5.0 * model.LN2 / k
+    lo_rate = rate_for_target(window.low or 0.0, clearance, salt_factor)
+    hi_rate = rate_for_target(window.high, clearance, salt_factor) if window.high else math.inf
+    if auc_24 is not None:
+        lo_rate = max(lo_rate, rate_for_target((auc_24.low or 0.0) / 24, clearance, salt_factor))
+        if auc_24.high is not None:
+            hi_rate = min(hi_rate, rate_for_target(auc_24.high / 24, clearance, salt_factor))
+    rate = round_inside(exact_rate, lo_rate, hi_rate, rate_step) if lo_rate <= hi_rate \
+        else round_to_step(exact_rate, rate_step)
     plateau_pred = float(model.plateau_concentration(salt_factor * rate, clearance))
-    t_within = -math.log(within) / k
+    checks = _ContinuousChecks(clearance, volume, plateau, window, auc_24, salt_factor, rate,
+                               max_rate, max_loading, max_loading_ratio, plateau_pred)
+    target = {"plateau": plateau, "window": [window.low, window.high]}
+    if auc_24 is not None:
+        target["auc_24"] = [auc_24.low, auc_24.high]
+    if state is not None:
+        regimens, notes = _continuous_from_state(state, checks, exact_rate, loading_time,
+                                                 dose_step)
+    else:
+        regimens, notes = _continuous_from_zero(checks, exact_rate, loading_time, dose_step,
+                                                k, within)
+    if salt_factor != 1.0:
+        notes.append(f"amounts and rates are of the product; salt factor S = {salt_factor:g}")
+    if rate != round_to_step(exact_rate, rate_step):
+        notes.append(f"the rate is rounded to {short(rate)} mg/h (not the nearest step) to stay "
+                     "inside the window")
+    return DesignResult(name, "continuous", clearance, volume, regimens, target=target,
+                        notes=notes, salt_factor=salt_factor)
+
+
+@dataclass
+class _ContinuousChecks:
+    """What every continuous proposal is checked against."""
+
+    clearance: float
+    volume: float
+    plateau: float
+    window: Limits
+    auc_24: Limits | None
+    salt_factor: float
+    rate: float
+    max_rate: float | None
+    max_loading: float | None
+    max_loading_ratio: float | None
+    plateau_pred: float
+
+    def common(self, ld: float | None) -> list[str]:
+        flags = []
+        v = self.window.violation(self.plateau_pred, "predicted plateau")
+        if v:
+            flags.append(v)
+        if self.auc_24 is not None:
+            v = self.auc_24.violation(self.plateau_pred * 24.0, "steady-state AUC24",
+                                      unit="mg*h/L")
+            if v:
+                flags.append(v)
+        if self.max_rate is not None and self.rate > self.max_rate:
+            flags.append(f"rate {short(self.rate)} mg/h exceeds the stated maximum "
+                         f"{short(self.max_rate)} mg/h")
+        if ld and self.max_loading is not None and ld > self.max_loading:
+            flags.append(f"loading dose {short(ld)} mg exceeds the stated maximum "
+                         f"{short(self.max_loading)} mg")
+        if ld and self.max_loading_ratio is not None and \
+                ld > self.max_loading_ratio * self.rate * 24.0:
+            flags.append(f"loading dose {short(ld)} mg is more than {self.max_loading_ratio:g} "
+                         f"times the 24-h maintenance amount {short(self.rate * 24)} mg")
+        return flags
+
+    def steady(self) -> dict[str, float | None]:
+        p = self.plateau_pred
+        return {"plateau": p, "peak": None, "trough": None, "average": p, "auc_24": p * 24.0}
+
+
+def _continuous_from_zero(ck: _ContinuousChecks, exact_rate: float, loading_time: float,
+                          dose_step: float | None, k: float, within: float):
+    """Proposals for a patient without drug on board (time 0 = the start)."""
+    clearance, volume, plateau, window = ck.clearance, ck.volume, ck.plateau, ck.window
+    salt_factor, rate = ck.salt_factor, ck.rate
+    horizon = loading_time + 5.0 * model.LN2 / k
+    exact_ld = loading_dose_for_target(plateau, volume, salt_factor)
 
     def finish(label: str, ld: float | None, exact: dict[str, float]) -> Regimen:
+        t_load = loading_time if ld else 0.0
+        records = ((infusion_record(0.0, ld, loading_time),) if ld else ()) + (
+            open_infusion_record(t_load, rate),)
         reg = Regimen(label, rate=rate, loading_dose=ld,
-                      loading_time=loading_time if ld else None, exact=exact)
+                      loading_time=loading_time if ld else None, exact=exact, doses=records)
         t, c = _course(reg, clearance, volume, salt_factor, horizon)
-        after = t >= (loading_time if ld else 0.0)
-        flags = []
+        after = t >= t_load
+        flags = ck.common(ld)
         predicted: dict[str, float | None] = {
-            "plateau": plateau_pred, "peak": None, "trough": None,
-            "average": plateau_pred, "auc_24": plateau_pred * 24.0,
+            **ck.steady(),
             # the course tends to the plateau: its supremum / infimum include it
-            "highest": max(float(c.max()), plateau_pred),
-            "lowest_after_loading": min(float(c[after].min()), plateau_pred) if ld else None,
+            "highest": max(float(c.max()), ck.plateau_pred),
+            "lowest_after_loading": min(float(c[after].min()), ck.plateau_pred) if ld else None,
         }
         if ld:
             near = np.abs(c / plateau - 1.0) <= NEAR_TARGET
             idx = np.flatnonzero(after & ~near)
-            settle = 0.0 if idx.size == 0 else float(t[min(idx[-1] + 1, t.size - 1)])
-            predicted["time_to_within_5pct"] = settle
+            predicted["time_to_within_5pct"] = 0.0 if idx.size == 0 else float(
+                t[min(idx[-1] + 1, t.size - 1)])
         else:
             predicted["time_to_within_5pct"] = float(-math.log(NEAR_TARGET) / k)
-        v = window.violation(plateau_pred, "predicted plateau")
-        if v:
-            flags.append(v)
         if ld and window.high is not None and predicted["highest"] > window.high:
             flags.append(f"the course reaches {short(predicted['highest'])} mg/L, above "
                          f"{short(window.high)} mg/L")
@@ -130,48 +239,115 @@ def design_continuous(
         if ld and window.low is not None and low is not None and low < window.low:
             flags.append(f"after the loading dose the level falls to {short(low)} mg/L, below "
                          f"{short(window.low)} mg/L")
-        if max_rate is not None and rate > max_rate:
-            flags.append(f"rate {short(rate)} mg/h exceeds the stated maximum "
-                         f"{short(max_rate)} mg/h")
-        if ld and max_loading is not None and ld > max_loading:
-            flags.append(f"loading dose {short(ld)} mg exceeds the stated maximum "
-                         f"{short(max_loading)} mg")
-        if ld and max_loading_ratio is not None and ld > max_loading_ratio * rate * 24.0:
-            flags.append(f"loading dose {short(ld)} mg is more than {max_loading_ratio:g} times "
-                         f"the 24-h maintenance amount {short(rate * 24)} mg")
-        return Regimen(label, rate=rate, loading_dose=ld,
-                       loading_time=loading_time if ld else None, predicted=predicted,
-                       meets_target=not flags, flags=tuple(flags), exact=exact)
+        return replace(reg, predicted=predicted, meets_target=not flags, flags=tuple(flags))
 
     regimens, notes = [], []
-    ld = round_to_step(exact_ld, loading_step)
+    ld = _round_loading(exact_ld, plateau, 0.0, ck, 0.0, dose_step)
     label = ("maintenance + loading bolus" if loading_time <= 0 else
              f"maintenance + loading Css*V over {short(loading_time)} h")
-    reg = finish(label, ld, {"rate": exact_rate, "loading_dose": exact_ld})
-    regimens.append(reg)
+    regimens.append(finish(label, ld, {"rate": exact_rate, "loading_dose": exact_ld}))
     if loading_time > 0:
         exact_inf = loading_infusion_for_target(plateau, clearance, volume, loading_time,
                                                 salt_factor)
-        ld2 = round_to_step(exact_inf, loading_step)
-        reg2 = finish(f"maintenance + loading sized for {short(loading_time)} h infusion",
-                      ld2, {"rate": exact_rate, "loading_dose": exact_inf})
-        regimens.append(reg2)
+        ld2 = _round_loading(exact_inf, plateau, 0.0, ck, loading_time, dose_step)
+        regimens.append(finish(f"maintenance + loading sized for {short(loading_time)} h "
+                               "infusion", ld2, {"rate": exact_rate, "loading_dose": exact_inf}))
         notes.append(
             f"a loading dose of Css*V infused over {short(loading_time)} h ends below the target "
             f"(level {short(regimens[0].predicted['lowest_after_loading'])} mg/L); the second "
             "proposal sizes the loading infusion to reach the target at its end"
         )
-    reg3 = finish("maintenance only (no loading dose)", None, {"rate": exact_rate})
-    regimens.append(reg3)
+    regimens.append(finish("maintenance only (no loading dose)", None, {"rate": exact_rate}))
+    t_within = -math.log(within) / k
     notes.append(f"without a loading dose the level is within {within:.0%} of the plateau after "
                  f"{short(t_within)} h ({short(t_within * k / model.LN2)} half-lives)")
-    if salt_factor != 1.0:
-        notes.append(f"amounts and rates are of the product; salt factor S = {salt_factor:g}")
-    return DesignResult(
-        name, "continuous", clearance, volume, regimens,
-        target={"plateau": plateau, "window": [window.low, window.high]},
-        notes=notes, salt_factor=salt_factor,
-    )
+    return regimens, notes
+
+
+def _round_loading(exact: float, plateau: float, current: float, ck: _ContinuousChecks,
+                   loading_time: float, step: float | None) -> float:
+    """Loading amount rounded to the step, inside the amounts that end within the window."""
+    def amount(level):
+        return float(model.amount_to_reach(level, current, ck.clearance, ck.volume,
+                                           loading_time)) / ck.salt_factor
+    lo = amount(ck.window.low) if ck.window.low is not None else 0.0
+    hi = amount(ck.window.high) if ck.window.high is not None else math.inf
+    if step is None or step <= 0:
+        return exact
+    if lo <= hi and hi > 0:
+        return round_inside(exact, max(lo, 0.0), hi, step)
+    return round_to_step(exact, step)
+
+
+def _continuous_from_state(state: CurrentState, ck: _ContinuousChecks, exact_rate: float,
+                           loading_time: float, dose_step: float | None):
+    """Proposals that start at ``state.start`` from the level then present."""
+    cl, v, s0, c0 = ck.clearance, ck.volume, state.start, state.level
+    regimens: list[Regimen] = []
+    notes = [f"the proposals start at {short(s0)} h ({state.basis}); the recorded doses from then "
+             f"on are replaced; the level then is {short(c0)} mg/L (projected from the history "
+             "with the individual estimates)"]
+    exact_ld = float(model.amount_to_reach(ck.plateau, c0, cl, v, loading_time)) / ck.salt_factor
+    if exact_ld > 0 and c0 < ck.plateau * (1 - NEAR_TARGET / 5):
+        ld = _round_loading(exact_ld, ck.plateau, c0, ck, loading_time, dose_step)
+        what = "bolus" if loading_time <= 0 else f"over {short(loading_time)} h"
+        records = (infusion_record(s0, ld, loading_time),
+                   open_infusion_record(s0 + loading_time, ck.rate))
+        regimens.append(_judge_continuous(
+            f"incremental loading {short(ld)} mg {what} + {short(ck.rate)} mg/h", state, ck,
+            records, settle=s0 + loading_time, ld=ld, loading_time=loading_time,
+            exact={"rate": exact_rate, "loading_dose": exact_ld}))
+        notes.append(f"incremental loading dose: the amount that takes the level from "
+                     f"{short(c0)} mg/L to {short(ck.plateau)} mg/L "
+                     + ("(target - current) x V / S" if loading_time <= 0 else
+                        f"by the end of a {short(loading_time)}-h infusion"))
+    if c0 > ck.plateau * (1 + NEAR_TARGET):
+        hold = float(model.time_to_fall(c0, ck.plateau, cl, v))
+        records = (open_infusion_record(s0 + hold, ck.rate),)
+        regimens.append(_judge_continuous(
+            f"hold {short(hold)} h, then {short(ck.rate)} mg/h", state, ck, records,
+            settle=s0 + hold, ld=None, loading_time=None,
+            exact={"rate": exact_rate, "hold": hold}))
+        notes.append(f"the level {short(c0)} mg/L is above the target: holding the infusion for "
+                     f"ln(C/Ctarget)/k = {short(hold)} h lets it fall to the target first")
+    regimens.append(_judge_continuous(
+        f"{short(ck.rate)} mg/h from {short(s0)} h (no loading dose)", state, ck,
+        (open_infusion_record(s0, ck.rate),), settle=s0, ld=None, loading_time=None,
+        exact={"rate": exact_rate}))
+    regimens.sort(key=lambda r: not r.meets_target)
+    return regimens, notes
+
+
+def _judge_continuous(label: str, state: CurrentState, ck: _ContinuousChecks, records,
+                      *, settle: float, ld: float | None, loading_time: float | None,
+                      exact: dict[str, float]) -> Regimen:
+    """Re-predict a continuous proposal from the state and flag what its course misses."""
+    end = state.start + PROJECTION_HORIZON
+    new = records_events(records, ck.salt_factor, end)
+    proj = project(state, new, ck.clearance, ck.volume, settle=settle)
+    flags = ck.common(ld)
+    w = ck.window
+    if w.high is not None and proj.highest > w.high * (1 + 1e-9) and \
+            proj.highest > state.level * (1 + 1e-9):
+        flags.append(f"the projected course reaches {short(proj.highest)} mg/L at "
+                     f"{short(proj.highest_time)} h, above {short(w.high)} mg/L")
+    low = proj.lowest_after
+    if w.low is not None and low is not None and low < w.low * (1 - 1e-9):
+        reach = first_time_at_or_above(state, new, ck.clearance, ck.volume, w.low)
+        when = f"; it reaches {short(w.low)} mg/L at {short(reach)} h" if reach else \
+            " within the next 72 h"
+        flags.append(f"the projected level is {short(low)} mg/L at "
+                     f"{short(proj.lowest_after_time)} h, below the window low "
+                     f"{short(w.low)} mg/L{when}")
+    if w.high is not None and state.level > w.high and settle <= state.start:
+        flags.append(f"the level starts above the window ({short(state.level)} mg/L) and "
+                     "stays above it for a while: consider holding the infusion first")
+    predicted = {**ck.steady(), "start_level": state.level, "highest": proj.highest,
+                 "lowest_after_loading": low, "level_at_72h": proj.level_at_end,
+                 "auc_first_24": proj.auc_first_24}
+    return Regimen(label, rate=ck.rate, loading_dose=ld, loading_time=loading_time,
+                   predicted=predicted, meets_target=not flags, flags=tuple(flags),
+                   exact=exact, start=state.start, doses=tuple(records))
 
 
 # --------------------------------------------------------------------------- intermittent
@@ -209,25 +385,36 @@ def design_intermittent(
     trough: float | None = None,
     peak_limits: Limits | None = None,
     trough_limits: Limits | None = None,
+    auc_24: Limits | None = None,
     intervals: Sequence[float] = DEFAULT_INTERVALS,
     dose_step: float | None = DEFAULT_DOSE_STEP,
     salt_factor: float = 1.0,
     max_dose: float | None = None,
     max_loading_ratio: float | None = DEFAULT_MAX_LOADING_RATIO,
     options: int = 3,
+    state: CurrentState | None = None,
     name: str = "design",
 ) -> DesignResult:
-    """Dose and interval of repeated short infusions to peak/trough limits.
+    """Dose and interval of repeated short infusions to peak/trough limits and/or an AUC24.
 
     Steady-state peak and trough are linear in the dose,
     ``peak = dose a(tau)``, ``trough = dose b(tau)`` (see
-    :func:`pkcalc.model.steady_state_intermittent`), so for each practical
-    interval the limits give a range of doses ``[L, U]``; the interval is
-    feasible when ``L <= U``.  The unrounded design aims at the targets (or,
-    without targets, at the limits that allow the longest interval); each
-    practical interval gets the dose closest (in log scale) to the targets
-    inside ``[L, U]``, rounded to ``dose_step``, then re-predicted.  Proposals
-    are ranked feasible first, then by closeness to the unrounded interval.
+    :func:`pkcalc.model.steady_state_intermittent`), and so is the AUC over 24 h,
+    ``AUC24 = 24 S dose / (CL tau)``, so for each practical interval the limits
+    give a range of doses ``[L, U]``; the interval is feasible when ``L <= U``.
+    The unrounded design aims at the targets (or, without targets, at the
+    limits that allow the longest interval); each practical interval gets the
+    dose closest (in log scale) to the targets inside ``[L, U]``, rounded to
+    ``dose_step``, then re-predicted.  Proposals are ranked feasible first, then
+    by closeness to the unrounded interval (with an AUC target alone: to 12 h,
+    common practice for twice-daily dosing).
+
+    With a ``state`` (a proposal from measured levels) the first dose is given at
+    ``state.start``: when the level then is below the steady-state trough, the
+    first dose carries the increment that puts the course on its steady state
+    after one infusion (:func:`pkcalc.model.amount_to_reach`); when above, the
+    first dose waits until the level has fallen to the trough.  Each proposal is
+    judged on its projected course over the next 72 h (every peak and trough).
 
     Parameters
     ----------
@@ -238,6 +425,8 @@ def design_intermittent(
     peak_limits, trough_limits : Limits, optional, mg/L
         Hard limits.  When only targets are given, target ±20 % is used and
         stated in the notes.
+    auc_24 : Limits, optional, mg h/L
+        Steady-state AUC over 24 h (a range, or ``Limits(x, x)`` for a value).
     intervals : sequence of float, h
         Practical intervals to choose from.
     dose_step : float or None, mg
@@ -246,6 +435,7 @@ def design_intermittent(
     max_loading_ratio : float, optional
     options : int
         How many proposals to return.
+    state : CurrentState, optional
     name : str
 
     Returns
@@ -263,48 +453,30 @@ def design_intermittent(
                      f"{DEFAULT_TARGET_TOLERANCE:.0%} ({trough_limits.text()})")
     peak_limits = peak_limits or Limits()
     trough_limits = trough_limits or Limits()
-    # aims for the unrounded design
     aim_peak = peak if peak is not None else _aim(peak_limits, high_side=True)
     aim_trough = trough if trough is not None else _aim(trough_limits, high_side=False)
-    if aim_peak is None or aim_trough is None:
-        raise ValueError("need a peak target or limit and a trough target or limit")
-    if aim_trough >= aim_peak:
+    aim_auc = _aim(auc_24, high_side=True) if auc_24 is not None else None
+    by_levels = aim_peak is not None and aim_trough is not None
+    if not by_levels and aim_auc is None:
+        raise ValueError("need a peak target or limit and a trough target or limit, or an "
+                         "AUC24 target")
+    if by_levels and aim_trough >= aim_peak:
         raise ValueError(f"the trough aim {aim_trough:g} mg/L must be below the peak aim "
                          f"{aim_peak:g} mg/L")
-    tau_exact, dose_exact = exact_intermittent(clearance, volume, infusion_time, aim_peak,
-                                               aim_trough, salt_factor)
+    tau_exact = dose_exact = None
+    if by_levels:
+        tau_exact, dose_exact = exact_intermittent(clearance, volume, infusion_time, aim_peak,
+                                                   aim_trough, salt_factor)
+    limits = (peak_limits, trough_limits, auc_24)
     candidates = []
     for tau in sorted(set(float(x) for x in intervals)):
         if tau < infusion_time:
             continue
-        a, b, avg1 = _per_mg(tau, infusion_time, clearance, volume, salt_factor)
-        lo = max(_div(peak_limits.low, a), _div(trough_limits.low, b), 0.0)
-        hi = min(_div(peak_limits.high, a, math.inf), _div(trough_limits.high, b, math.inf))
-        ideal = math.exp(0.5 * (math.log(aim_peak / a) + math.log(aim_trough / b)))
-        feasible = lo <= hi
-        if feasible:
-            ideal = min(max(ideal, lo), hi)
-        else:
-            ideal = math.sqrt(lo * hi) if math.isfinite(hi) and lo > 0 else ideal
-        dose = _round_inside(ideal, lo, hi, dose_step) if feasible else round_to_step(
-            ideal, dose_step)
-        pk, tr, av = dose * a, dose * b, dose * avg1
-        flags = [f for f in (peak_limits.violation(pk, "steady-state peak"),
-                             trough_limits.violation(tr, "steady-state trough")) if f]
-        if not feasible:
-            flags.append(_infeasible_reason(tau, a, b, peak_limits, trough_limits))
-        if max_dose is not None and dose > max_dose:
-            flags.append(f"dose {short(dose)} mg exceeds the stated maximum {short(max_dose)} mg")
-        accumulation = 1.0 / -math.expm1(-clearance / volume * tau)
-        predicted = {"plateau": None, "peak": pk, "trough": tr, "average": av,
-                     "auc_24": av * 24.0, "first_dose_peak": pk / accumulation}
-        reg = Regimen(
-            f"{short(dose)} mg over {short(infusion_time)} h every {short(tau)} h", dose=dose,
-            interval=tau, infusion_time=infusion_time, predicted=predicted,
-            meets_target=not flags, flags=tuple(flags),
-            exact={"interval": tau_exact, "dose": dose_exact},
-        )
-        candidates.append((not reg.meets_target, abs(math.log(tau / tau_exact)), reg))
+        reg = _intermittent_candidate(clearance, volume, infusion_time, tau, limits,
+                                      (aim_peak, aim_trough, aim_auc), dose_step, salt_factor,
+                                      max_dose, tau_exact, dose_exact, state)
+        rank = math.log(tau / (tau_exact if tau_exact else 12.0))
+        candidates.append((not reg.meets_target, abs(rank), reg))
     if not candidates:
         raise ValueError("no practical interval is at least as long as the infusion time")
     candidates.sort(key=lambda c: (c[0], c[1]))
@@ -315,26 +487,143 @@ def design_intermittent(
                      "with the limit each one misses")
     best = regimens[0]
     acc = 1.0 / -math.expm1(-clearance / volume * best.interval)
-    loading = round_to_step(best.dose * acc, dose_step)
-    notes.append(f"a first dose of {short(loading)} mg (accumulation factor {short(acc)}) would "
-                 f"give the steady-state peak at once; without it steady state takes about "
-                 f"{short(5 * model.LN2 * volume / clearance)} h (five half-lives)")
-    if max_loading_ratio is not None and acc > max_loading_ratio:
-        warnings.append(f"that loading dose ({short(loading)} mg) is more than "
-                        f"{max_loading_ratio:g} times the maintenance dose")
-    notes.append(f"unrounded design: {short(dose_exact)} mg every {short(tau_exact)} h gives "
-                 f"peak {short(aim_peak)} and trough {short(aim_trough)} mg/L exactly")
+    if state is None:
+        loading = round_to_step(best.dose * acc, dose_step)
+        notes.append(f"a first dose of {short(loading)} mg (accumulation factor {short(acc)}) "
+                     f"would give the steady-state peak at once; without it steady state takes "
+                     f"about {short(5 * model.LN2 * volume / clearance)} h (five half-lives)")
+        if max_loading_ratio is not None and acc > max_loading_ratio:
+            warnings.append(f"that loading dose ({short(loading)} mg) is more than "
+                            f"{max_loading_ratio:g} times the maintenance dose")
+    else:
+        notes.insert(0, f"the proposals start at {short(state.start)} h ({state.basis}); the "
+                        f"recorded doses from then on are replaced; the level then is "
+                        f"{short(state.level)} mg/L (projected from the history with the "
+                        "individual estimates); the first dose is sized (or delayed) so that "
+                        "the course joins its steady state after one infusion")
+    if by_levels:
+        notes.append(f"unrounded design: {short(dose_exact)} mg every {short(tau_exact)} h gives "
+                     f"peak {short(aim_peak)} and trough {short(aim_trough)} mg/L exactly")
+    else:
+        notes.append(f"AUC24 target: dose = AUC24 x CL x interval / (24 S); ranked by closeness "
+                     f"of the interval to 12 h (common practice); aim {short(aim_auc)} mg*h/L")
     if salt_factor != 1.0:
         notes.append(f"doses are of the product; salt factor S = {salt_factor:g}")
-    return DesignResult(
-        name, "intermittent", clearance, volume, regimens,
-        target={"peak": aim_peak if peak is not None else None,
-                "trough": aim_trough if trough is not None else None,
-                "peak_limits": [peak_limits.low, peak_limits.high],
-                "trough_limits": [trough_limits.low, trough_limits.high],
-                "infusion_time": infusion_time},
-        notes=notes, warnings=warnings, salt_factor=salt_factor,
-    )
+    target = {"peak": aim_peak if peak is not None else None,
+              "trough": aim_trough if trough is not None else None,
+              "peak_limits": [peak_limits.low, peak_limits.high],
+              "trough_limits": [trough_limits.low, trough_limits.high],
+              "infusion_time": infusion_time}
+    if auc_24 is not None:
+        target["auc_24"] = [auc_24.low, auc_24.high]
+    return DesignResult(name, "intermittent", clearance, volume, regimens, target=target,
+                        notes=notes, warnings=warnings, salt_factor=salt_factor)
+
+
+def _intermittent_candidate(clearance, volume, infusion_time, tau, limits, aims, dose_step,
+                            salt_factor, max_dose, tau_exact, dose_exact,
+                            state: CurrentState | None) -> Regimen:
+    """The rounded dose for one practical interval, re-predicted and flagged."""
+    peak_limits, trough_limits, auc_24 = limits
+    aim_peak, aim_trough, aim_auc = aims
+    a, b, avg1 = _per_mg(tau, infusion_time, clearance, volume, salt_factor)
+    per_auc = avg1 * 24.0
+    lo = max(_div(peak_limits.low, a), _div(trough_limits.low, b), 0.0)
+    hi = min(_div(peak_limits.high, a, math.inf), _div(trough_limits.high, b, math.inf))
+    if auc_24 is not None:
+        lo = max(lo, _div(auc_24.low, per_auc))
+        hi = min(hi, _div(auc_24.high, per_auc, math.inf))
+    if aim_peak is not None and aim_trough is not None:
+        ideal = math.exp(0.5 * (math.log(aim_peak / a) + math.log(aim_trough / b)))
+    else:
+        ideal = aim_auc / per_auc
+    feasible = lo <= hi
+    if feasible:
+        ideal = min(max(ideal, lo), hi)
+    elif math.isfinite(hi) and lo > 0:
+        ideal = math.sqrt(lo * hi)
+    dose = round_inside(ideal, lo, hi, dose_step) if feasible else round_to_step(ideal,
+                                                                                 dose_step)
+    pk, tr, av = dose * a, dose * b, dose * avg1
+    flags = [f for f in (peak_limits.violation(pk, "steady-state peak"),
+                         trough_limits.violation(tr, "steady-state trough")) if f]
+    if auc_24 is not None:
+        f = auc_24.violation(av * 24.0, "steady-state AUC24", unit="mg*h/L")
+        if f:
+            flags.append(f)
+    if not feasible:
+        flags.append(_infeasible_reason(tau, a, b, peak_limits, trough_limits, auc_24,
+                                        per_auc))
+    if max_dose is not None and dose > max_dose:
+        flags.append(f"dose {short(dose)} mg exceeds the stated maximum {short(max_dose)} mg")
+    accumulation = 1.0 / -math.expm1(-clearance / volume * tau)
+    predicted = {"plateau": None, "peak": pk, "trough": tr, "average": av,
+                 "auc_24": av * 24.0, "first_dose_peak": pk / accumulation}
+    exact = {"interval": tau_exact, "dose": dose_exact} if tau_exact else {"dose": ideal}
+    label = f"{short(dose)} mg over {short(infusion_time)} h every {short(tau)} h"
+    if state is None:
+        n = math.floor(PROJECTION_HORIZON / tau - 1e-9) + 1
+        records = (infusion_record(0.0, dose, infusion_time, tau, n),)
+        return Regimen(label, dose=dose, interval=tau, infusion_time=infusion_time,
+                       predicted=predicted, meets_target=not flags, flags=tuple(flags),
+                       exact=exact, doses=records)
+    return _intermittent_from_state(state, label, dose, tau, infusion_time, tr, clearance,
+                                    volume, salt_factor, dose_step, predicted, flags, exact,
+                                    (peak_limits, trough_limits), max_dose)
+
+
+def _intermittent_from_state(state, label, dose, tau, infusion_time, trough_ss, clearance,
+                             volume, salt_factor, dose_step, predicted, flags, exact,
+                             level_limits, max_dose) -> Regimen:
+    """First dose from the current level, the rest of the regimen, and the projected checks."""
+    s0, c0 = state.start, state.level
+    first_start, first_dose = s0, dose
+    if c0 > trough_ss * (1 + 1e-9):
+        first_start = s0 + float(model.time_to_fall(c0, trough_ss, clearance, volume))
+        label += f", first dose after a {short(first_start - s0)}-h hold"
+    else:
+        # the extra amount that adds (trough_ss - c0) exp(-k (t - s0)) after the first infusion
+        k = clearance / volume
+        lift = (trough_ss - c0) * math.exp(-k * infusion_time)
+        extra = float(model.amount_to_reach(lift, 0.0, clearance, volume, infusion_time))
+        exact = {**exact, "first_dose": dose + extra / salt_factor}
+        first_dose = round_to_step(dose + extra / salt_factor, dose_step)
+        if first_dose != dose:
+            label = f"first {short(first_dose)} mg, then " + label
+    end = s0 + PROJECTION_HORIZON
+    n = max(math.floor((end - first_start) / tau - 1e-9), 0)
+    records = (infusion_record(first_start, first_dose, infusion_time),)
+    if n >= 1:
+        records += (infusion_record(first_start + tau, dose, infusion_time, tau, n),)
+    proj = project(state, records_events(records, salt_factor, end), clearance, volume,
+                   settle=first_start + infusion_time)
+    peak_limits, trough_limits = level_limits
+    flags = list(flags)
+    for t, c in proj.peaks:
+        f = peak_limits.violation(c, f"projected peak at {short(t)} h")
+        if f:
+            flags.append(f)
+            break
+    for t, c in proj.troughs:
+        f = trough_limits.violation(c, f"projected trough at {short(t)} h")
+        if f:
+            flags.append(f)
+            break
+    if peak_limits.high is not None and proj.highest > peak_limits.high * (1 + 1e-9) and \
+            proj.highest > c0 * (1 + 1e-9) and not any("projected peak" in f for f in flags):
+        flags.append(f"the projected course reaches {short(proj.highest)} mg/L at "
+                     f"{short(proj.highest_time)} h, above {short(peak_limits.high)} mg/L")
+    if max_dose is not None and first_dose > max_dose:
+        flags.append(f"first dose {short(first_dose)} mg exceeds the stated maximum "
+                     f"{short(max_dose)} mg")
+    predicted = {**predicted, "start_level": c0,
+                 "first_dose_peak": proj.peaks[0][1] if proj.peaks else None,
+                 "highest": proj.highest, "level_at_72h": proj.level_at_end,
+                 "auc_first_24": proj.auc_first_24}
+    return Regimen(label, dose=dose, interval=tau, infusion_time=infusion_time,
+                   loading_dose=first_dose if first_dose != dose else None,
+                   predicted=predicted, meets_target=not flags, flags=tuple(flags),
+                   exact=exact, start=s0, doses=records)
 
 
 def _div(x: float | None, y: float, default: float = 0.0) -> float:
@@ -353,27 +642,16 @@ def _aim(limits: Limits, high_side: bool) -> float | None:
     return lo if lo is not None else hi
 
 
-def _round_inside(ideal: float, lo: float, hi: float, step: float | None) -> float:
-    """Round to the step, staying inside [lo, hi] when a multiple of the step fits."""
-    if step is None or step <= 0:
-        return ideal
-    nearest = round_to_step(ideal, step)
-    if lo * (1 - 1e-12) <= nearest <= hi * (1 + 1e-12):
-        return nearest
-    inside = [m * step for m in (math.ceil(lo / step), math.floor(hi / step)) if m >= 1]
-    inside = [x for x in inside if lo * (1 - 1e-12) <= x <= hi * (1 + 1e-12)]
-    if inside:
-        return min(inside, key=lambda x: abs(math.log(x / ideal)))
-    return nearest  # no multiple of the step fits: the flag will say which limit is crossed
-
-
-def _infeasible_reason(tau, a, b, peak_limits: Limits, trough_limits: Limits) -> str:
-    lows = [(_div(peak_limits.low, a), "peak minimum"), (_div(trough_limits.low, b),
-                                                          "trough minimum")]
+def _infeasible_reason(tau, a, b, peak_limits: Limits, trough_limits: Limits,
+                       auc_24: Limits | None = None, per_auc: float = 1.0) -> str:
+    lows = [(_div(peak_limits.low, a), "peak minimum"),
+            (_div(trough_limits.low, b), "trough minimum")]
     highs = [(_div(peak_limits.high, a, math.inf), "peak maximum"),
              (_div(trough_limits.high, b, math.inf), "trough maximum")]
+    if auc_24 is not None:
+        lows.append((_div(auc_24.low, per_auc), "AUC24 minimum"))
+        highs.append((_div(auc_24.high, per_auc, math.inf), "AUC24 maximum"))
     lo, lo_name = max(lows)
     hi, hi_name = min(highs)
     return (f"at {short(tau)} h the {lo_name} needs a dose of at least {short(lo)} mg but the "
             f"{hi_name} allows at most {short(hi)} mg: both cannot be met")
-
