@@ -19,10 +19,19 @@ from .common import (
     DesignResult,
     Limits,
     Regimen,
+    open_infusion_record,
     rate_for_target,
+    records_events,
     round_to_step,
 )
-from .targets import design_continuous, design_intermittent
+from .projection import (
+    PROJECTION_HORIZON,
+    CurrentState,
+    current_state,
+    default_start,
+    history_events,
+)
+from .targets import design_continuous, design_intermittent, first_dose_records
 
 
 # --------------------------------------------------------------------------- adjustments
@@ -38,15 +47,25 @@ def adjust_proportional(
     salt_factor: float = 1.0,
     rate_step: float | None = DEFAULT_RATE_STEP,
     dose_step: float | None = DEFAULT_DOSE_STEP,
+    window: Limits | None = None,
+    measured_time: float | None = None,
+    history: Sequence | None = None,
+    start: float | None = None,
+    initial_concentration: float | None = None,
     name: str = "adjustment",
 ) -> DesignResult:
-    """New rate (or dose) from a steady-state level, for linear kinetics.
+    """New rate (or dose) from one level, for linear kinetics.
 
-    ``new = old x Ctarget / Cmeasured`` (Bauer -- from memory).  At steady
-    state on a constant rate the level also gives the patient's clearance,
-    ``CL = S R0 / Css``.  When the level is above the target and the volume is
-    known, the infusion can be held for ``ln(Cmeasured/Ctarget)/k`` before the
-    lower rate starts (Bauer -- from memory).
+    ``new = old x Ctarget / Cmeasured`` (Bauer -- from memory) when the level is
+    at steady state: then ``CL = S R0 / Css``.  With the dose ``history`` (level
+    time on its clock) and a volume, the clearance is instead the one that
+    reproduces the level after exactly those doses
+    (:func:`one_level_clearance`; equal to ``S R0 / C`` at steady state), and
+    the new regimen starts from the level then present (see
+    :func:`pkcalc.design.design_continuous` with a state): an incremental
+    loading dose below the target, a hold of ``ln(C/Ctarget)/k`` above it.
+    Without a history but with a volume, the level is taken as the current
+    steady-state level at the time of the draw.
 
     Parameters
     ----------
@@ -55,46 +74,168 @@ def adjust_proportional(
     current_dose, interval : float, optional, mg and h
         For intermittent regimens (the level is any fixed point of the interval).
     clearance, volume : float, optional, L/h and L
-        Population values; the volume is used for the pause.
+        Population values; the volume is used for the course and the hold.
+    measured_time : float, optional, h
+        Time of the level on the history clock.
+    history : sequence of DoseEvent, optional
+        Recorded doses (product amounts).
+    start : float, optional, h
+    initial_concentration : float, optional, mg/L
     """
     if (current_rate is None) == (current_dose is None):
         raise ValueError("give either current_rate or current_dose")
     ratio = target / measured
+    if history and volume is not None and measured_time is not None:
+        events = history_events(history, salt_factor, initial_concentration)
+        cl_ind = one_level_clearance(events, measured_time, measured, volume)
+        if current_dose is not None:
+            return _proportional_intermittent(events, cl_ind, volume, measured, measured_time,
+                                              target, current_dose, interval, salt_factor,
+                                              dose_step, start, name)
+        st, basis = (start, "as given") if start is not None else (
+            measured_time, "the time of the level")
+        state = current_state(events, cl_ind, volume, st, basis, [(measured_time, measured)])
+        basis_note = ("clearance solved from the level after the recorded doses (one "
+                      "compartment, the given volume); at steady state it equals S R0 / C")
+    elif current_rate is not None and volume is not None:
+        cl_ind = salt_factor * current_rate / measured
+        state = CurrentState(0.0, measured, "the time of the level (no dose history: the "
+                             "level is taken as the steady state on the current rate)",
+                             (np.array([0.0]), np.array([measured]),
+                              np.array([model.INITIAL_LEVEL])),
+                             (np.empty(0), np.empty(0), np.empty(0)), ((0.0, measured),))
+        basis_note = "clearance from the steady-state level: CL = S R0 / Css"
+    else:
+        return _proportional_classical(measured, target, ratio, current_rate, current_dose,
+                                       interval, clearance, volume, salt_factor, rate_step,
+                                       dose_step, name)
+    result = design_continuous(cl_ind, volume, target, window=window, salt_factor=salt_factor,
+                               rate_step=rate_step, dose_step=dose_step, state=state,
+                               name=name)
+    result.method = "proportional"
+    k = cl_ind / volume
+    result.estimates = {"ratio_target_to_measured": ratio, "clearance": cl_ind,
+                        "elimination_rate": k, "half_life": model.LN2 / k,
+                        "level_at_start": state.level}
+    result.notes.insert(0, basis_note)
+    holds = [r.exact["hold"] for r in result.regimens if "hold" in r.exact]
+    if holds:
+        result.estimates["pause_before_new_rate"] = holds[0]
+    if current_rate is not None:
+        classical = current_rate * ratio
+        result.estimates["classical_new_rate"] = classical
+        result.notes.append(f"the steady-state ratio rule (old rate x target / level) gives "
+                            f"{short(classical)} mg/h")
+    result.notes.append("assumes linear one-compartment kinetics")
+    return result
+
+
+def _proportional_classical(measured, target, ratio, current_rate, current_dose, interval,
+                            clearance, volume, salt_factor, rate_step, dose_step, name):
+    """The steady-state ratio rule alone (no volume or history to project a course)."""
     estimates: dict[str, float] = {"ratio_target_to_measured": ratio}
-    notes, regimens = [], []
+    notes, regimens, warnings = [], [], []
     if current_rate is not None:
         exact = current_rate * ratio
         rate = round_to_step(exact, rate_step)
         cl_ind = salt_factor * current_rate / measured
         estimates["clearance"] = cl_ind
-        if volume is not None:
-            k = cl_ind / volume
-            estimates["elimination_rate"] = k
-            estimates["half_life"] = model.LN2 / k
-            if measured > target:
-                estimates["pause_before_new_rate"] = math.log(measured / target) / k
-                notes.append(
-                    f"to reach the target sooner, the infusion may be held for "
-                    f"{short(estimates['pause_before_new_rate'])} h before the new rate starts "
-                    "(individual k from the implied clearance and the given volume)"
-                )
         predicted = {"plateau": salt_factor * rate / cl_ind, "peak": None, "trough": None,
                      "average": salt_factor * rate / cl_ind}
         regimens.append(Regimen(f"new rate {short(rate)} mg/h", rate=rate, predicted=predicted,
                                 meets_target=abs(predicted["plateau"] / target - 1) <= 0.1,
-                                exact={"rate": exact}))
+                                exact={"rate": exact},
+                                doses=(open_infusion_record(0.0, rate),)))
+        warnings.append("no volume given: the course from the current level (and a hold before "
+                        "a lower rate) cannot be projected; the check is at the new plateau only")
     else:
-        exact = current_dose * ratio  # type: ignore[operator]
+        exact = current_dose * ratio
         dose = round_to_step(exact, dose_step)
-        level = measured * dose / current_dose  # type: ignore[operator]
+        level = measured * dose / current_dose
         regimens.append(Regimen(f"new dose {short(dose)} mg", dose=dose, interval=interval,
                                 predicted={"level": level},
                                 meets_target=abs(level / target - 1) <= 0.1,
                                 exact={"dose": exact}))
+        warnings.append("no dose history given: the new dose is judged at steady state only; "
+                        "give doses = [...] and the level's time to project the course")
     notes.append("assumes linear kinetics and a level drawn at steady state")
     return DesignResult(name, "proportional", clearance, volume, regimens,
                         target={"plateau": target}, estimates=estimates, notes=notes,
-                        salt_factor=salt_factor)
+                        warnings=warnings, salt_factor=salt_factor)
+
+
+def _proportional_intermittent(events, cl, v, measured, t_level, target, current_dose,
+                               interval, salt_factor, dose_step, start, name) -> DesignResult:
+    """Same interval, the dose whose steady-state level at the sampled point is the target,
+    started from the current state and judged on the projected course."""
+    st, _, du = events
+    given = st[(du >= 0) & (st <= t_level)]
+    last = float(given.max())
+    t_inf = float(du[(du >= 0) & (st == last)].max())
+    phase = t_level - last
+    tau = interval if interval is not None else _history_interval(st[du >= 0], last)
+    per_mg = float(model.steady_state_profile([phase % tau], [0.0], [salt_factor], [t_inf],
+                                              tau, cl, v)[0])
+    exact = target / per_mg
+    dose = round_to_step(exact, dose_step)
+    if start is None:
+        start, basis = default_start(events, t_level, True)
+    else:
+        basis = "as given"
+    state = current_state(events, cl, v, start, basis, [(t_level, measured)])
+    _, trough_ss, _ = (float(x) for x in model.steady_state_intermittent(
+        salt_factor * dose, t_inf, tau, cl, v))
+    window = Limits.around(target, 0.10)
+    reg = _first_dose_regimen(state, dose, tau, t_inf, trough_ss, cl, v, salt_factor,
+                              dose_step, phase, window)
+    k = cl / v
+    return DesignResult(
+        name, "proportional", cl, v, [reg], target={"plateau": None, "level": target,
+                                                    "window": [window.low, window.high]},
+        estimates={"clearance": cl, "elimination_rate": k, "half_life": model.LN2 / k,
+                   "level_at_start": state.level, "classical_new_dose":
+                   current_dose * target / measured},
+        notes=[f"clearance solved from the level after the recorded doses; the new dose gives "
+               f"{short(target)} mg/L at {short(phase)} h after each dose at steady state "
+               f"(every {short(tau)} h); the regimen starts at {short(state.start)} h "
+               f"({basis}) from {short(state.level)} mg/L",
+               f"the steady-state ratio rule (old dose x target / level) gives "
+               f"{short(current_dose * target / measured)} mg"],
+        salt_factor=salt_factor)
+
+
+def _history_interval(starts: np.ndarray, last: float) -> float:
+    earlier = np.sort(starts[starts < last])
+    if earlier.size == 0:
+        raise ValueError("give current_interval: the history has a single dose")
+    return float(last - earlier[-1])
+
+
+def _first_dose_regimen(state, dose, tau, t_inf, trough_ss, cl, v, salt_factor, dose_step,
+                        phase, window: Limits) -> Regimen:
+    """Dose every ``tau`` from the state (first dose joins steady state); flags when the
+    projected level ``phase`` h after a dose (after the first) leaves ``window``."""
+    records, first_dose, label, _ = first_dose_records(state, dose, tau, t_inf, trough_ss, cl,
+                                                       v, salt_factor, dose_step)
+    end = state.start + PROJECTION_HORIZON
+    ev = records_events(records, salt_factor, end)
+    starts = ev[0][ev[0] < end][1:]
+    when = starts + phase
+    when = when[when <= end]
+    full = tuple(np.concatenate([b, n]) for b, n in zip(state.before, ev, strict=True))
+    levels = model.concentration(when, *full, cl, v) if when.size else np.empty(0)
+    flags = []
+    for t, c in zip(when, levels, strict=True):
+        f = window.violation(float(c), f"projected level at {short(float(t))} h")
+        if f:
+            flags.append(f)
+            break
+    predicted = {"level": float(levels[-1]) if levels.size else None,
+                 "start_level": state.level}
+    return Regimen(label, dose=dose, interval=tau, infusion_time=t_inf,
+                   loading_dose=first_dose if first_dose != dose else None,
+                   predicted=predicted, meets_target=not flags, flags=tuple(flags),
+                   exact={"dose": dose}, start=state.start, doses=records)
 
 
 def chiou_clearance(rate, t1, c1, t2, c2, volume):
@@ -156,39 +297,65 @@ def exact_two_level_clearance(rate, t1, c1, t2, c2, volume):
 
 
 def adjust_two_levels(
-    rate: float, t1: float, c1: float, t2: float, c2: float, volume: float, target: float,
-    *, salt_factor: float = 1.0, rate_step: float | None = DEFAULT_RATE_STEP,
-    name: str = "adjustment",
+    rate: float | None, t1: float, c1: float, t2: float, c2: float, volume: float,
+    target: float, *, salt_factor: float = 1.0, rate_step: float | None = DEFAULT_RATE_STEP,
+    dose_step: float | None = DEFAULT_DOSE_STEP, window: Limits | None = None,
+    history: Sequence | None = None, start: float | None = None,
+    initial_concentration: float | None = None, name: str = "adjustment",
 ) -> DesignResult:
-    """Chiou and exact two-level clearance during a constant infusion, and new rates."""
-    drug_rate = salt_factor * rate
+    """Chiou and exact two-level clearance, then a new rate from the level now.
+
+    Without a ``history`` the two levels are drawn during one constant infusion
+    of ``rate`` (times on any clock).  With the recorded doses (times on their
+    clock) the input between the draws is taken from them -- rate changes and
+    boluses included: the exact clearance carries ``C1`` at ``t1`` to ``C2`` at
+    ``t2`` under exactly that input (:func:`one_level_clearance` with ``C1`` as
+    an initial level at ``t1``), and Chiou's formula uses the average rate
+    between the draws.  The new regimen starts at ``start`` (default ``t2``)
+    from the level then present (see :func:`pkcalc.design.design_continuous`).
+    """
+    if history:
+        events = history_events(history, salt_factor, initial_concentration)
+        _, after = model.split_events(*events, t1)
+        inside = model.split_events(*after, t2)[0]
+        infused = float(inside[1][inside[2] >= 0].sum())
+        drug_rate = infused / (t2 - t1)
+    else:
+        drug_rate = salt_factor * rate
+        after = (np.array([t1]), np.array([drug_rate * (t2 - t1)]), np.array([t2 - t1]))
+    from_first = tuple(np.append(a, x) for a, x in zip(after, (t1, c1, model.INITIAL_LEVEL),
+                                                      strict=True))
     cl_chiou = chiou_clearance(drug_rate, t1, c1, t2, c2, volume)
-    cl_exact = exact_two_level_clearance(drug_rate, t1, c1, t2, c2, volume)
-    regimens = []
-    for label, cl in (("exact one-compartment solution", cl_exact), ("Chiou's method", cl_chiou)):
-        exact = rate_for_target(target, cl, salt_factor)
-        new = round_to_step(exact, rate_step)
-        plateau = salt_factor * new / cl
-        regimens.append(Regimen(f"new rate {short(new)} mg/h ({label})", rate=new,
-                                predicted={"plateau": plateau, "peak": None, "trough": None,
-                                           "average": plateau},
-                                meets_target=abs(plateau / target - 1) <= 0.1,
-                                exact={"rate": exact, "clearance": cl}))
+    cl_exact = one_level_clearance(from_first, t2, c2, volume)
+    if start is None:
+        start, basis = t2, "the time of the second level"
+    else:
+        basis = "as given"
+    state = current_state(from_first, cl_exact, volume, start, basis, [(t1, c1), (t2, c2)])
+    result = design_continuous(cl_exact, volume, target, window=window, salt_factor=salt_factor,
+                               rate_step=rate_step, dose_step=dose_step, state=state, name=name)
+    result.method = "chiou"
     diff = cl_chiou / cl_exact - 1
-    estimates = {"clearance_exact": cl_exact, "clearance_chiou": cl_chiou,
-                 "chiou_minus_exact_percent": 100 * diff,
-                 "elimination_rate": cl_exact / volume,
-                 "half_life": model.LN2 * volume / cl_exact, "volume": volume}
-    notes = ["Chiou's method approximates the area between the levels by a trapezoid; the "
-             "exact solution assumes one compartment and the stated volume",
-             "both clearances depend on the population volume given"]
-    warnings = []
+    chiou_rate = round_to_step(rate_for_target(target, cl_chiou, salt_factor), rate_step)
+    result.estimates = {"clearance_exact": cl_exact, "clearance_chiou": cl_chiou,
+                        "chiou_minus_exact_percent": 100 * diff,
+                        "elimination_rate": cl_exact / volume,
+                        "half_life": model.LN2 * volume / cl_exact, "volume": volume,
+                        "level_at_start": state.level}
+    result.notes[:0] = [
+        "clearance: the exact one-compartment solution (the stated volume) carries the first "
+        "level to the second under the recorded input; Chiou's method approximates the area "
+        f"between the levels by a trapezoid and gives {short(cl_chiou)} L/h "
+        f"(a rate of {short(chiou_rate)} mg/h for the target)",
+        "both clearances depend on the population volume given"]
+    if history:
+        result.notes.append(f"input between the levels from the recorded doses: average "
+                            f"{short(drug_rate)} mg/h of drug")
     if abs(diff) > 0.05:
-        warnings.append(f"Chiou's clearance differs from the exact solution by {diff:+.1%}: "
-                        "the levels are far apart for the trapezoid approximation")
-    return DesignResult(name, "chiou", cl_exact, volume, regimens, target={"plateau": target},
-                        estimates=estimates, notes=notes, warnings=warnings,
-                        salt_factor=salt_factor)
+        result.warnings.append(f"Chiou's clearance differs from the exact solution by "
+                               f"{diff:+.1%}: the levels are far apart for the trapezoid "
+                               "approximation")
+    return result
 
 
 def sawchuk_zaske(
@@ -258,37 +425,178 @@ def sawchuk_zaske(
             "trough_at_end_of_interval": cmin, "pre_dose_level": c0}
 
 
+def _level_parts(t, events, k):
+    """``(g, c)`` with the level at ``t`` = ``g / V + c``: ``g`` the doses' part at
+    ``V = 1`` (amount/V scaling) and ``c`` the initial-level part (no V)."""
+    start, amount, duration = events
+    init = duration < 0
+    dose = (start[~init], amount[~init], duration[~init])
+    g = float(model.concentration([t], *dose, k, 1.0)[0]) if dose[0].size else 0.0
+    c = float(model.concentration([t], start[init], amount[init], duration[init], k, 1.0)[0]) \
+        if init.any() else 0.0
+    return g, c
+
+
+def two_level_parameters(events, first: tuple[float, float], second: tuple[float, float]
+                         ) -> dict[str, float]:
+    """Elimination rate and volume that reproduce two levels after any dose history.
+
+    Each level is ``C(t) = g(t; k) / V + c(t; k)`` by superposition, with ``g``
+    the doses' response at unit volume and ``c`` an initial level's decay
+    (:func:`pkcalc.model.concentration`).  Eliminating ``V``::
+
+        (C1 - c(t1; k)) g(t2; k) = (C2 - c(t2; k)) g(t1; k)
+
+    is one equation in ``k`` (solved by Brent's method after a scan of
+    ``ln k``), then ``V = g(t1; k) / (C1 - c(t1; k))``.  With one dose and both
+    levels after its infusion this is the log-linear decline of Sawchuk & Zaske
+    (1976); at steady state it reproduces their pre-dose trough form (from
+    memory) -- without the steady-state assumption, since the earlier doses are
+    superposed exactly.
+
+    Parameters
+    ----------
+    events : tuple of three ndarrays
+        Single events (drug amounts, h; initial levels allowed).
+    first, second : (float, float)
+        ``(time h, level mg/L)`` on the history clock.
+
+    Raises
+    ------
+    ValueError
+        When no (or more than one) elimination rate reproduces the two levels.
+    """
+    (t1, c1), (t2, c2) = first, second
+
+    def h(lnk):
+        k = math.exp(lnk)
+        g1, i1 = _level_parts(t1, events, k)
+        g2, i2 = _level_parts(t2, events, k)
+        return (c1 - i1) * g2 - (c2 - i2) * g1
+
+    grid = np.linspace(math.log(1e-5), math.log(50.0), 241)
+    values = np.array([h(x) for x in grid])
+    sign = np.sign(values)
+    roots = np.flatnonzero(sign[:-1] * sign[1:] < 0)
+    if roots.size == 0:
+        raise ValueError("no elimination rate between 1e-5 and 50 1/h reproduces the two "
+                         "levels with this dose history: check the times, levels and doses")
+    if roots.size > 1:
+        raise ValueError("more than one elimination rate reproduces the two levels with this "
+                         "dose history: draw the levels further apart or around one dose")
+    j = int(roots[0])
+    lnk = brentq(h, grid[j], grid[j + 1], xtol=1e-14, rtol=1e-14, maxiter=500)
+    k = math.exp(lnk)
+    g1, i1 = _level_parts(t1, events, k)
+    if not (c1 - i1) > 0 or not g1 > 0:
+        raise ValueError("the levels imply a non-positive volume: check the times and levels")
+    volume = g1 / (c1 - i1)
+    return {"elimination_rate": k, "half_life": model.LN2 / k, "volume": volume,
+            "clearance": k * volume}
+
+
+def one_level_clearance(events, time: float, level: float, volume: float) -> float:
+    """Clearance that reproduces one level after any dose history, with a given volume.
+
+    At fixed ``V`` the level falls monotonically as ``CL`` rises (every term of
+    :func:`pkcalc.model.concentration` does), so the root is unique (Brent's
+    method).  At steady state on a constant rate it is ``R0 / Css``.
+    """
+    def f(lncl):
+        return float(model.concentration([time], *events, math.exp(lncl), volume)[0]) - level
+
+    lo, hi = math.log(1e-6 * volume), math.log(1e3 * volume)
+    if f(lo) < 0:
+        raise ValueError(f"the level {level:g} mg/L is above what the infusion alone can reach "
+                         "with this volume (check the level, the doses and the volume)")
+    if f(hi) > 0:
+        raise ValueError(f"the level {level:g} mg/L is too low for the recorded doses")
+    return math.exp(brentq(f, lo, hi, xtol=1e-14, rtol=1e-14, maxiter=500))
+
+
 def adjust_peak_trough(
-    dose: float, infusion_time: float, interval: float,
+    dose: float | None, infusion_time: float | None, interval: float | None,
     peak_level: float, peak_time: float, trough_level: float, trough_time: float,
     *, pre_dose_level: float | None = None, steady_state: bool = True,
     new_infusion_time: float | None = None, peak: float | None = None,
     trough: float | None = None, peak_limits: Limits | None = None,
-    trough_limits: Limits | None = None, intervals: Sequence[float] = DEFAULT_INTERVALS,
+    trough_limits: Limits | None = None, auc_24: Limits | None = None,
+    intervals: Sequence[float] = DEFAULT_INTERVALS,
     dose_step: float | None = DEFAULT_DOSE_STEP, salt_factor: float = 1.0,
-    max_dose: float | None = None, name: str = "adjustment",
+    max_dose: float | None = None, history: Sequence | None = None,
+    start: float | None = None, initial_concentration: float | None = None,
+    name: str = "adjustment",
 ) -> DesignResult:
-    """Sawchuk-Zaske individualisation, then a new dose and interval to the targets."""
-    est = sawchuk_zaske(dose, infusion_time, interval, peak_level, peak_time, trough_level,
-                        trough_time, pre_dose_level=pre_dose_level, steady_state=steady_state,
-                        salt_factor=salt_factor)
-    t_new = infusion_time if new_infusion_time is None else new_infusion_time
+    """Sawchuk-Zaske individualisation, then a new dose and interval from the level now.
+
+    Without a ``history``: the classical method around one dose (times from the
+    start of its infusion; :func:`sawchuk_zaske`), the new regimen starting one
+    interval after that dose.  With the recorded doses (times on their clock):
+    k and V from the two levels by superposing every earlier dose
+    (:func:`two_level_parameters`) -- any dose, steady state or not -- and the
+    new regimen starting at ``start`` (default: the next scheduled dose).
+    """
+    t_new = new_infusion_time if new_infusion_time is not None else infusion_time
+    if history:
+        events = history_events(history, salt_factor, initial_concentration)
+        _check_levels_outside_infusions(events, {"peak_sample": peak_time,
+                                                 "trough_sample": trough_time})
+        pair = sorted([(peak_time, peak_level), (trough_time, trough_level)])
+        est = two_level_parameters(events, pair[0], pair[1])
+        if t_new is None:
+            raise ValueError("design.infusion_time: the new regimen needs an infusion time")
+        cl, v = est["clearance"], est["volume"]
+        last = max(peak_time, trough_time)
+        if start is None:
+            start, basis = default_start(events, last, True)
+        else:
+            basis = "as given"
+        state = current_state(events, cl, v, start, basis, pair)
+        note = ("individual k and V: the two levels solved exactly with every recorded dose "
+                "superposed (one compartment; the Sawchuk-Zaske idea without the steady-state "
+                "assumption)")
+    else:
+        est = sawchuk_zaske(dose, infusion_time, interval, peak_level, peak_time, trough_level,
+                            trough_time, pre_dose_level=pre_dose_level,
+                            steady_state=steady_state, salt_factor=salt_factor)
+        cl, v = est["clearance"], est["volume"]
+        # the sampled dose on its own clock, the level at its start decaying beside it
+        events = (np.array([0.0, 0.0]), np.array([est["pre_dose_level"],
+                                                  salt_factor * dose]),
+                  np.array([model.INITIAL_LEVEL, infusion_time]))
+        start = interval if start is None else start
+        state = current_state(events, cl, v, start, "the next dose, one interval after the "
+                              "sampled one", [(peak_time, peak_level),
+                                              (trough_time, trough_level)])
+        note = ("individual k from the log-linear decline between the two levels; V from the "
+                "peak at the end of the infusion and the pre-dose level (Sawchuk & Zaske 1976)")
     result = design_intermittent(
-        est["clearance"], est["volume"], t_new, peak=peak, trough=trough,
-        peak_limits=peak_limits, trough_limits=trough_limits, intervals=intervals,
-        dose_step=dose_step, salt_factor=salt_factor, max_dose=max_dose, name=name)
+        cl, v, t_new, peak=peak, trough=trough, peak_limits=peak_limits,
+        trough_limits=trough_limits, auc_24=auc_24, intervals=intervals, dose_step=dose_step,
+        salt_factor=salt_factor, max_dose=max_dose, state=state, name=name)
     result.method = "sawchuk_zaske"
-    result.estimates = est
-    result.notes.insert(0, "individual k from the log-linear decline between the two levels; "
-                           "V from the peak at the end of the infusion and the pre-dose level "
-                           "(Sawchuk & Zaske 1976)")
+    result.estimates = {**est, "level_at_start": state.level}
+    result.notes.insert(0, note)
     return result
+
+
+def _check_levels_outside_infusions(events, times: dict[str, float]) -> None:
+    """Refuse a level drawn while an infusion runs (the method needs post-infusion levels)."""
+    start, _, duration = events
+    for name, t in times.items():
+        running = (duration > 0) & (start < t) & (t < start + duration)
+        if running.any():
+            j = int(np.flatnonzero(running)[0])
+            raise ValueError(
+                f"design.{name}.time: the level at {t:g} h is drawn during an infusion "
+                f"(running {start[j]:g} to {start[j] + duration[j]:g} h); the peak-and-trough "
+                "method needs levels drawn after the end of an infusion")
 
 
 def run_design(case: DesignCase) -> DesignResult:
     """Run a validated design request (see :class:`pkcalc.schema.DesignCase`)."""
     opts = dict(case.options)
-    for key in ("peak_limits", "trough_limits"):
+    for key in ("peak_limits", "trough_limits", "auc_24"):
         if opts.get(key) is not None:
             opts[key] = Limits(*opts[key])
     if opts.get("window") is not None:
@@ -309,16 +617,22 @@ def run_design(case: DesignCase) -> DesignResult:
     return result
 
 
-def adjust_map(doses, levels, prior, *, plateau=None, window=None, infusion_time=None,
-               peak=None, trough=None, peak_limits=None, trough_limits=None,
-               intervals=DEFAULT_INTERVALS, weight=None, salt_factor: float = 1.0,
+def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
+               infusion_time=None, peak=None, trough=None, peak_limits=None,
+               trough_limits=None, intervals=DEFAULT_INTERVALS, weight=None,
+               salt_factor: float = 1.0, start: float | None = None,
+               initial_concentration: float | None = None, loading_time: float = 0.0,
                name: str = "adjustment", **rounding) -> DesignResult:
-    """Bayesian (MAP) individualisation from any levels, then a new regimen.
+    """Bayesian (MAP) individualisation from any levels, then a new regimen from now.
 
     The individual clearance and volume are the posterior mode given the levels
-    after ``doses`` and the population ``prior`` (see :mod:`pkcalc.fit`); the new
-    regimen is designed with them: a continuous infusion to ``plateau``, or
-    repeated infusions of ``infusion_time`` to the peak/trough targets or limits.
+    after ``doses`` (product amounts; ``S x`` is the drug) and the population
+    ``prior`` (see :mod:`pkcalc.fit`).  The new regimen starts at ``start``
+    (default: the next scheduled dose for repeated infusions, the last level for
+    a continuous infusion) from the level the history leaves then, and is
+    judged on its projected course (see :mod:`pkcalc.design.projection`): a
+    continuous infusion to ``plateau`` / ``auc_24``, or repeated infusions of
+    ``infusion_time`` to the peak/trough targets or limits and/or ``auc_24``.
     """
     from ..fit import fit_subjects
     from ..schema.fitopts import FitOptions
@@ -327,10 +641,7 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, infusion_time
     t = np.array([x[0] for x in levels], float)
     c = np.array([x[1] for x in levels], float)
     order = np.argsort(t)
-    events = model.expand_doses([d.start for d in doses], [d.amount for d in doses],
-                                [d.duration for d in doses],
-                                every=[d.every or 0.0 for d in doses],
-                                count=[d.count for d in doses])
+    events = history_events(doses, salt_factor, initial_concentration)
     subject = SubjectData(name, t[order], c[order], np.full(t.size, np.nan),
                           np.zeros(t.size, bool), np.arange(t.size), *events,
                           covariates={} if weight is None else {"weight": weight})
@@ -339,31 +650,45 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, infusion_time
         raise ValueError(f"the MAP estimate failed: {failures[0][1]}")
     fit = fits[0]
     cl, v = fit.clearance, fit.volume
-    if plateau is not None:
-        result = design_continuous(cl, v, plateau, window=window, salt_factor=salt_factor,
-                                   name=name, **{k: x for k, x in rounding.items()
-                                                 if k in ("rate_step", "dose_step",
-                                                          "max_rate", "max_loading",
-                                                          "max_loading_ratio")})
+    continuous = plateau is not None or (auc_24 is not None and infusion_time is None)
+    if start is None:
+        start, basis = default_start(events, float(t.max()), not continuous)
     else:
-        result = design_intermittent(cl, v, infusion_time, peak=peak, trough=trough,
-                                     peak_limits=peak_limits, trough_limits=trough_limits,
-                                     intervals=intervals, salt_factor=salt_factor, name=name,
-                                     **{k: x for k, x in rounding.items()
-                                        if k in ("dose_step", "max_dose")})
+        basis = "as given"
+    state = current_state(events, cl, v, start, basis, zip(t, c, strict=True))
+    result = _design_from_state(state, cl, v, continuous, salt_factor, name, rounding,
+                                plateau=plateau, window=window, auc_24=auc_24,
+                                loading_time=loading_time, infusion_time=infusion_time,
+                                peak=peak, trough=trough, peak_limits=peak_limits,
+                                trough_limits=trough_limits, intervals=intervals)
     result.method = "map"
     result.estimates = {"clearance": cl, "volume": v,
                         "half_life": fit.estimates["half_life"].value,
+                        "level_at_start": state.level,
                         **{k: x for k, x in fit.prior.items() if k.startswith("prior_variance")}}
     result.notes.insert(0, f"individual clearance and volume: MAP estimate from "
                            f"{fit.n_obs} level(s) and the prior ({prior.source or 'inline'})")
-    if plateau is not None:
-        current = float(fit.predict([float(t.max())])[0])
-        result.notes.append(
-            f"the loading doses assume a start from zero; the predicted level at the last "
-            f"sample is {short(current)} mg/L, so the incremental loading dose "
-            f"(target - current) x V is {short(max(plateau - current, 0.0) * v / salt_factor)}"
-            " mg")
     result.notes += fit.notes
     result.warnings += fit.warnings
     return result
+
+
+_CONTINUOUS_KEYS = ("rate_step", "dose_step", "max_rate", "max_loading", "max_loading_ratio")
+_INTERMITTENT_KEYS = ("dose_step", "max_dose", "max_loading_ratio")
+
+
+def _design_from_state(state, cl, v, continuous, salt_factor, name, rounding, *, plateau=None,
+                       window=None, auc_24=None, loading_time=0.0, infusion_time=None,
+                       peak=None, trough=None, peak_limits=None, trough_limits=None,
+                       intervals=DEFAULT_INTERVALS) -> DesignResult:
+    """The new regimen from the patient's state, continuous or intermittent."""
+    if continuous:
+        return design_continuous(cl, v, plateau, window=window, auc_24=auc_24,
+                                 loading_time=loading_time or 0.0, salt_factor=salt_factor,
+                                 state=state, name=name,
+                                 **{k: x for k, x in rounding.items() if k in _CONTINUOUS_KEYS})
+    return design_intermittent(cl, v, infusion_time, peak=peak, trough=trough,
+                               peak_limits=peak_limits, trough_limits=trough_limits,
+                               auc_24=auc_24, intervals=intervals, salt_factor=salt_factor,
+                               state=state, name=name,
+                               **{k: x for k, x in rounding.items() if k in _INTERMITTENT_KEYS})

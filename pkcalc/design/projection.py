@@ -185,3 +185,36 @@ def first_time_at_or_above(state: CurrentState, new_events, clearance: float, vo
     c = model.concentration(t, *events, clearance, volume)
     hit = np.flatnonzero(c >= level)
     return float(t[hit[0]]) if hit.size else None
+
+
+def history_events(doses, salt_factor: float = 1.0, initial_concentration: float | None = None):
+    """Single drug events of a recorded history (product amounts x ``S``), with an
+    initial level at time 0 when given (see :data:`pkcalc.model.INITIAL_LEVEL`)."""
+    doses = list(doses)
+    if doses:
+        st, am, du = model.expand_doses([d.start for d in doses], [d.amount for d in doses],
+                                        [d.duration for d in doses],
+                                        every=[d.every or 0.0 for d in doses],
+                                        count=[d.count for d in doses])
+    else:
+        st, am, du = np.empty(0), np.empty(0), np.empty(0)
+    am = am * salt_factor
+    if initial_concentration:
+        st, am, du = (np.append(st, 0.0), np.append(am, initial_concentration),
+                      np.append(du, model.INITIAL_LEVEL))
+    return st, am, du
+
+
+def default_start(events, last_level: float, intermittent: bool) -> tuple[float, str]:
+    """When a proposal from levels starts, and why.
+
+    Intermittent regimens: the next recorded dose after the last level (the next
+    scheduled dose); continuous infusions, or when none is scheduled: the time of
+    the last level.
+    """
+    if intermittent:
+        start, _, duration = events
+        later = start[(duration >= 0) & (start > last_level)]
+        if later.size:
+            return float(later.min()), "the next scheduled dose"
+    return float(last_level), "the time of the last level"

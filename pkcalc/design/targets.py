@@ -572,22 +572,36 @@ def _intermittent_candidate(clearance, volume, infusion_time, tau, limits, aims,
                                     (peak_limits, trough_limits), max_dose)
 
 
-def _intermittent_from_state(state, label, dose, tau, infusion_time, trough_ss, clearance,
-                             volume, salt_factor, dose_step, predicted, flags, exact,
-                             level_limits, max_dose) -> Regimen:
-    """First dose from the current level, the rest of the regimen, and the projected checks."""
+def first_dose_records(state: CurrentState, dose: float, tau: float, infusion_time: float,
+                       trough_ss: float, clearance: float, volume: float, salt_factor: float,
+                       dose_step: float | None):
+    """Dose records of a repeated regimen that joins its steady state from ``state``.
+
+    Below the steady-state trough the first dose carries the extra amount that adds
+    ``(Ctrough - C) exp(-k (t - start))`` after its infusion
+    (:func:`pkcalc.model.amount_to_reach`), so from then on the course is the
+    steady-state one; above it the first dose waits ``ln(C/Ctrough)/k``
+    (:func:`pkcalc.model.time_to_fall`).  Records cover the projection horizon.
+
+    Returns
+    -------
+    records : tuple of DoseRecord
+    first_dose : float, mg (product)
+    label : str
+    exact_first : float, mg (unrounded first dose)
+    """
     s0, c0 = state.start, state.level
-    first_start, first_dose = s0, dose
+    first_start, first_dose, exact_first = s0, dose, dose
+    label = f"{short(dose)} mg over {short(infusion_time)} h every {short(tau)} h"
     if c0 > trough_ss * (1 + 1e-9):
         first_start = s0 + float(model.time_to_fall(c0, trough_ss, clearance, volume))
         label += f", first dose after a {short(first_start - s0)}-h hold"
     else:
-        # the extra amount that adds (trough_ss - c0) exp(-k (t - s0)) after the first infusion
         k = clearance / volume
         lift = (trough_ss - c0) * math.exp(-k * infusion_time)
         extra = float(model.amount_to_reach(lift, 0.0, clearance, volume, infusion_time))
-        exact = {**exact, "first_dose": dose + extra / salt_factor}
-        first_dose = round_to_step(dose + extra / salt_factor, dose_step)
+        exact_first = dose + extra / salt_factor
+        first_dose = round_to_step(exact_first, dose_step)
         if first_dose != dose:
             label = f"first {short(first_dose)} mg, then " + label
     end = s0 + PROJECTION_HORIZON
@@ -595,8 +609,20 @@ def _intermittent_from_state(state, label, dose, tau, infusion_time, trough_ss, 
     records = (infusion_record(first_start, first_dose, infusion_time),)
     if n >= 1:
         records += (infusion_record(first_start + tau, dose, infusion_time, tau, n),)
+    return records, first_dose, label, exact_first
+
+
+def _intermittent_from_state(state, label, dose, tau, infusion_time, trough_ss, clearance,
+                             volume, salt_factor, dose_step, predicted, flags, exact,
+                             level_limits, max_dose) -> Regimen:
+    """First dose from the current level, the rest of the regimen, and the projected checks."""
+    records, first_dose, label, exact_first = first_dose_records(
+        state, dose, tau, infusion_time, trough_ss, clearance, volume, salt_factor, dose_step)
+    if exact_first != dose:
+        exact = {**exact, "first_dose": exact_first}
+    end = state.start + PROJECTION_HORIZON
     proj = project(state, records_events(records, salt_factor, end), clearance, volume,
-                   settle=first_start + infusion_time)
+                   settle=records[0].start + infusion_time)
     peak_limits, trough_limits = level_limits
     flags = list(flags)
     for t, c in proj.peaks:
@@ -610,20 +636,21 @@ def _intermittent_from_state(state, label, dose, tau, infusion_time, trough_ss, 
             flags.append(f)
             break
     if peak_limits.high is not None and proj.highest > peak_limits.high * (1 + 1e-9) and \
-            proj.highest > c0 * (1 + 1e-9) and not any("projected peak" in f for f in flags):
+            proj.highest > state.level * (1 + 1e-9) and \
+            not any("projected peak" in f for f in flags):
         flags.append(f"the projected course reaches {short(proj.highest)} mg/L at "
                      f"{short(proj.highest_time)} h, above {short(peak_limits.high)} mg/L")
     if max_dose is not None and first_dose > max_dose:
         flags.append(f"first dose {short(first_dose)} mg exceeds the stated maximum "
                      f"{short(max_dose)} mg")
-    predicted = {**predicted, "start_level": c0,
+    predicted = {**predicted, "start_level": state.level,
                  "first_dose_peak": proj.peaks[0][1] if proj.peaks else None,
                  "highest": proj.highest, "level_at_72h": proj.level_at_end,
                  "auc_first_24": proj.auc_first_24}
     return Regimen(label, dose=dose, interval=tau, infusion_time=infusion_time,
                    loading_dose=first_dose if first_dose != dose else None,
                    predicted=predicted, meets_target=not flags, flags=tuple(flags),
-                   exact=exact, start=s0, doses=records)
+                   exact=exact, start=state.start, doses=records)
 
 
 def _div(x: float | None, y: float, default: float = 0.0) -> float:

@@ -43,13 +43,16 @@ def design_regimen_dict(r, conv: UnitConverter, scenario: str) -> dict[str, Any]
     out["meets_target"] = r.meets_target
     out["flags"] = list(r.flags)
     out["exact"] = {k: _conv_any(conv, k, v, None) for k, v in r.exact.items()}
+    out["start"] = _num(conv(r.start, "time"))
+    out["doses"] = [{k: _conv_any(conv, k, v, None) if k != "count" else v
+                     for k, v in d.as_dict().items()} for d in r.doses]
     return out
 
 
 def _target_dict(target: Mapping[str, Any], conv: UnitConverter) -> dict[str, Any]:
     out: dict[str, Any] = {}
     for k, v in target.items():
-        kind = "time" if k == "infusion_time" else "concentration"
+        kind = {"infusion_time": "time", "auc_24": "auc"}.get(k, "concentration")
         if isinstance(v, list | tuple):
             out[k] = [_num(conv(x, kind)) for x in v]
         else:
@@ -100,12 +103,14 @@ def design_result_text(res, conv: UnitConverter) -> str:
         if v is None or v == [None, None]:
             continue
         text = " to ".join(fmt(x) for x in v) if isinstance(v, list) else fmt(v)
-        unit = u("time") if k == "infusion_time" else u("concentration")
+        unit = u({"infusion_time": "time", "auc_24": "auc"}.get(k, "concentration"))
         tparts.append(f"{k.replace('_', ' ')} {text} {unit}")
     if tparts:
         lines.append("Target: " + "; ".join(str(p) for p in tparts))
+    from_state = any(r.start or "start_level" in r.predicted for r in res.regimens)
     columns = [
         ("#", None, None), ("regimen", None, None),
+        (f"from [{u('time')}]", "start", "time"),
         (f"rate [{u('rate')}]", "rate", "rate"),
         (f"loading [{u('amount')}]", "loading_dose", "amount"),
         (f"loading time [{u('time')}]", "loading_time", "time"),
@@ -121,6 +126,7 @@ def design_result_text(res, conv: UnitConverter) -> str:
         (f"lowest after loading [{u('concentration')}]", "p:lowest_after_loading",
          "concentration"),
         (f"level [{u('concentration')}]", "p:level", "concentration"),
+        (f"level at 72 h [{u('concentration')}]", "p:level_at_72h", "concentration"),
         ("check", None, None),
     ]
 
@@ -137,11 +143,14 @@ def design_result_text(res, conv: UnitConverter) -> str:
     table = [[cell(r, i, key, kind, h) for h, key, kind in columns]
              for i, r in enumerate(res.regimens, 1)]
     keep = [j for j, (h, key, _) in enumerate(columns)
-            if key is None or any(row[j] is not None for row in table)]
+            if (key is None or any(row[j] is not None for row in table))
+            and (key != "start" or from_state)]
     headers = [columns[j][0] for j in keep]
     rows = [[row[j] for j in keep] for row in table]
-    lines += ["Proposed regimens (predicted at steady state, rounded):",
-              format_table(headers, rows)]
+    heading = ("Proposed regimens (rounded; peak/trough/average/plateau at steady state; highest, "
+               "lowest and level at 72 h on the course projected from the start):"
+               if from_state else "Proposed regimens (predicted at steady state, rounded):")
+    lines += [heading, format_table(headers, rows)]
     for i, r in enumerate(res.regimens, 1):
         lines += [f"  #{i} FLAG: {f}" for f in r.flags]
     lines += [f"note: {n}" for n in res.notes]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -58,7 +59,7 @@ class DesignSpec(_Lenient):
     max_loading: QuantityText | None = None
     max_loading_ratio: float | None = None
     # adjustment from levels
-    measured: QuantityText | None = None
+    measured: QuantityText | SampleSpec | None = None
     current_rate: QuantityText | None = None
     current_dose: QuantityText | None = None
     current_interval: QuantityText | None = None
@@ -74,6 +75,11 @@ class DesignSpec(_Lenient):
     # MAP (Bayesian) individualisation: levels after the scenario's doses, and a prior
     levels: list[SampleSpec] | None = None
     prior: dict[str, Any] | str | None = None
+    # any method from levels: when the new regimen starts (history clock), drug on board
+    start: QuantityText | None = None
+    initial_concentration: QuantityText | None = None
+    # a steady-state AUC over 24 h: a value or [low, high]
+    auc_24: QuantityText | list[QuantityText] | None = None
 
     def infer_method(self) -> str:
         if self.method is not None:
@@ -87,7 +93,8 @@ class DesignSpec(_Lenient):
         if self.measured is not None:
             return "proportional"
         if self.infusion_time is not None or self.peak is not None or self.trough is not None \
-                or self.peak_max is not None or self.trough_min is not None:
+                or self.peak_max is not None or self.trough_min is not None \
+                or self.peak_min is not None or self.trough_max is not None:
             return "intermittent"
         return "continuous"
 
@@ -137,6 +144,39 @@ def _limits_pair(col: _Collector, spec: DesignSpec, name: str):
     return target, limits
 
 
+def _auc_limits(col: _Collector, spec: DesignSpec):
+    """The AUC24 target as (low, high) in mg h/L: a value (low = high) or a range."""
+    value = spec.auc_24
+    if value is None:
+        return None
+    if isinstance(value, list):
+        if len(value) != 2:
+            col.add("give a value or [low, high]", "design.auc_24",
+                    "'500 mg*h/L' or ['400 mg*h/L', '600 mg*h/L']")
+            return None
+        lo = col.q(value[0], "auc", "design.auc_24[0]", positive=True)
+        hi = col.q(value[1], "auc", "design.auc_24[1]", positive=True)
+        if lo is not None and hi is not None and lo > hi:
+            col.add(f"AUC24 low {lo:g} mg*h/L is above high {hi:g} mg*h/L", "design.auc_24",
+                    "[low, high] with low <= high")
+            return None
+        return None if lo is None or hi is None else (lo, hi)
+    x = col.q(value, "auc", "design.auc_24", positive=True)
+    return None if x is None else (x, x)
+
+
+def _window(col: _Collector, spec: DesignSpec):
+    if spec.window is None:
+        return None
+    lo = col.q(spec.window[0], "concentration", "design.window[0]", nonnegative=True)
+    hi = col.q(spec.window[1], "concentration", "design.window[1]", positive=True)
+    if lo is not None and hi is not None and lo >= hi:
+        col.add(f"window low {lo:g} mg/L is not below high {hi:g} mg/L",
+                "design.window", "[low, high] with low < high")
+        return None
+    return None if lo is None or hi is None else (lo, hi)
+
+
 def _sample(col: _Collector, sample: SampleSpec | None, where: str):
     if sample is None:
         return None
@@ -154,7 +194,7 @@ def _need(col: _Collector, method: str, **values: Any) -> bool:
 
 
 def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
-                   col: _Collector) -> tuple[str, dict[str, Any]]:
+                   col: _Collector, history: bool = False) -> tuple[str, dict[str, Any]]:
     """Canonical keyword options for the design function of the method."""
     spec.unknown_keys(col, "design.")
     method = spec.infer_method()
@@ -193,16 +233,18 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
                      "trough_limits": trough_limits}
     if intervals:
         interval_opts["intervals"] = intervals
+    auc = _auc_limits(col, spec)
+    window = _window(col, spec)
+    if auc is not None:
+        interval_opts["auc_24"] = auc
     if method == "continuous":
-        if _need(col, method, plateau=plateau, clearance=cl, volume=v):
-            opts.update(clearance=cl, volume=v, plateau=plateau)
-        if spec.window is not None:
-            lo = q(spec.window[0], "concentration", "design.window[0]", nonnegative=True)
-            hi = q(spec.window[1], "concentration", "design.window[1]", positive=True)
-            if lo is not None and hi is not None and lo >= hi:
-                col.add(f"window low {lo:g} mg/L is not below high {hi:g} mg/L",
-                        "design.window", "[low, high] with low < high")
-            opts["window"] = (lo, hi)
+        if plateau is None and auc is None:
+            col.add("method 'continuous' needs a plateau or an AUC24 target", "design.plateau",
+                    "plateau = '8 mg/L' or auc_24 = ['400 mg*h/L', '600 mg*h/L']")
+        if _need(col, method, clearance=cl, volume=v):
+            opts.update(clearance=cl, volume=v, plateau=plateau, auc_24=auc)
+        if window is not None:
+            opts["window"] = window
         lt = q(spec.loading_time, "time", "design.loading_time", nonnegative=True)
         if lt is not None:
             opts["loading_time"] = lt
@@ -212,29 +254,43 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
                         "design.within")
             opts["within"] = spec.within
         opts.pop("max_dose", None)
-        opts.pop("dose_step", None)
     elif method == "intermittent":
         t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
         if _need(col, method, infusion_time=t_inf, clearance=cl, volume=v):
             opts.update(clearance=cl, volume=v, infusion_time=t_inf)
-        if peak is None and peak_limits is None:
-            col.add("needs a peak target or limits", "design.peak", "peak, peak_min or peak_max")
-        if trough is None and trough_limits is None:
-            col.add("needs a trough target or limits", "design.trough",
+        if auc is None and peak is None and peak_limits is None:
+            col.add("needs a peak target or limits (or an AUC24 target)", "design.peak",
+                    "peak, peak_min or peak_max")
+        if auc is None and trough is None and trough_limits is None:
+            col.add("needs a trough target or limits (or an AUC24 target)", "design.trough",
                     "trough, trough_min or trough_max")
         opts.update(interval_opts)
         for key in ("rate_step", "max_rate", "max_loading"):
             opts.pop(key, None)
     elif method == "proportional":
-        measured = q(spec.measured, "concentration", "design.measured", positive=True)
+        measured_time = None
+        if isinstance(spec.measured, SampleSpec):
+            sample = _sample(col, spec.measured, "design.measured")
+            measured_time, measured = sample if sample else (None, None)
+        else:
+            measured = q(spec.measured, "concentration", "design.measured", positive=True)
+        opts["measured_time"] = measured_time
         rate = q(spec.current_rate, "rate", "design.current_rate", positive=True)
         dose = q(spec.current_dose, "amount", "design.current_dose", positive=True)
         interval = q(spec.current_interval, "time", "design.current_interval", positive=True)
         _need(col, method, measured=measured, plateau=plateau)
         if (rate is None) == (dose is None):
             col.add("give either current_rate or current_dose", "design.current_rate")
+        if history and measured_time is None and measured is not None:
+            col.add("with a dose history the level needs its time on that clock",
+                    "design.measured", "measured = { time = '22 h', concentration = '9.1 mg/L' }")
+        if history and v is None:
+            col.add("with a dose history the proportional method needs a volume (to solve "
+                    "the clearance off steady state and project the course)", "volume")
         opts.update(measured=measured, target=plateau, current_rate=rate, current_dose=dose,
                     interval=interval, clearance=cl, volume=v)
+        if window is not None:
+            opts["window"] = window
         for key in ("max_rate", "max_dose", "max_loading", "max_loading_ratio"):
             opts.pop(key, None)
     elif method == "chiou":
@@ -250,9 +306,13 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
                 col.add(f"the second level (at {t2:g} h) must be drawn after the first "
                         f"(at {t1:g} h)", "design.samples", "levels in time order, apart")
             opts.update(t1=t1, c1=c1, t2=t2, c2=c2)
-        if _need(col, method, rate=rate, plateau=plateau, volume=v):
+        needs = {"plateau": plateau, "volume": v} if history else {
+            "rate": rate, "plateau": plateau, "volume": v}
+        if _need(col, method, **needs):
             opts.update(rate=rate, volume=v, target=plateau)
-        for key in ("dose_step", "max_rate", "max_dose", "max_loading", "max_loading_ratio"):
+        if window is not None:
+            opts["window"] = window
+        for key in ("max_dose", "max_loading", "max_loading_ratio"):
             opts.pop(key, None)
     elif method == "map":
         from .fitopts import load_prior, parse_prior
@@ -274,39 +334,53 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
         except PkcalcInputError as exc:
             col.problems.extend(exc.problems)
         t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
-        if plateau is None and peak is None and peak_limits is None:
-            col.add("method 'map' needs a new target: plateau, or peak/trough with "
+        if plateau is None and peak is None and peak_limits is None and auc is None:
+            col.add("method 'map' needs a new target: plateau, auc_24, or peak/trough with "
                     "infusion_time", "design.plateau")
         if plateau is None and t_inf is None and (peak is not None or peak_limits is not None):
             col.add("a peak/trough target needs infusion_time", "design.infusion_time")
         opts.update(levels=[x for x in levels if x is not None], prior=prior, plateau=plateau,
                     infusion_time=t_inf, **interval_opts)
-        if spec.window is not None:
-            lo = q(spec.window[0], "concentration", "design.window[0]", nonnegative=True)
-            hi = q(spec.window[1], "concentration", "design.window[1]", positive=True)
-            opts["window"] = (lo, hi)
+        lt = q(spec.loading_time, "time", "design.loading_time", nonnegative=True)
+        if lt is not None:
+            opts["loading_time"] = lt
+        if window is not None:
+            opts["window"] = window
     elif method == "sawchuk_zaske":
         dose = q(spec.dose, "amount", "design.dose", positive=True)
         t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
         interval = q(spec.interval, "time", "design.interval", positive=True)
         ps = _sample(col, spec.peak_sample, "design.peak_sample")
         ts = _sample(col, spec.trough_sample, "design.trough_sample")
-        _need(col, method, dose=dose, infusion_time=t_inf, interval=interval,
-              peak_sample=spec.peak_sample, trough_sample=spec.trough_sample)
+        if history:  # the doses come from the history; the new regimen needs an infusion time
+            _need(col, method, peak_sample=spec.peak_sample, trough_sample=spec.trough_sample)
+            if t_inf is None and spec.new_infusion_time is None:
+                col.add("the new regimen needs infusion_time", "design.infusion_time")
+        else:
+            _need(col, method, dose=dose, infusion_time=t_inf, interval=interval,
+                  peak_sample=spec.peak_sample, trough_sample=spec.trough_sample)
         if ps is not None and ts is not None:
             if ts[1] >= ps[1]:
                 col.add(f"the trough level {ts[1]:g} mg/L is not below the peak level "
                         f"{ps[1]:g} mg/L", "design.trough_sample.concentration")
             if ts[0] == ps[0]:
                 col.add("the peak and trough are drawn at the same time", "design.trough_sample")
-            if t_inf is not None and ps[0] < t_inf:
+            if not history and t_inf is not None and ps[0] < t_inf:
                 col.add(f"the peak (at {ps[0]:g} h) is drawn before the infusion ends "
                         f"({t_inf:g} h)", "design.peak_sample.time")
-            if 0 <= ts[0] < ps[0]:
+            if not history and 0 <= ts[0] < ps[0]:
                 col.add("the trough must be drawn after the peak, or before the dose "
                         "(negative time)", "design.trough_sample.time")
-        if (peak is None and peak_limits is None) or (trough is None and trough_limits is None):
-            col.add("the new regimen needs peak and trough targets or limits", "design.peak")
+            if not history and ts[0] < 0 and spec.steady_state is False \
+                    and spec.pre_dose is None:
+                col.add("with steady_state = false a trough drawn before the dose cannot give "
+                        "the elimination rate (a dose lies between the two levels): give the "
+                        "dose history as doses = [...], or draw both levels after the infusion",
+                        "design.steady_state")
+        if ((peak is None and peak_limits is None) or (trough is None and trough_limits is None)) \
+                and auc is None:
+            col.add("the new regimen needs peak and trough targets or limits (or an AUC24 "
+                    "target)", "design.peak")
         pre = q(spec.pre_dose, "concentration", "design.pre_dose", nonnegative=True)
         new_t = q(spec.new_infusion_time, "time", "design.new_infusion_time",
                   nonnegative=True)
@@ -338,26 +412,82 @@ class DesignCaseSpec(_WithParameters):
     def _to_canonical(self) -> DesignCaseSpec:
         col, weight, values = self.start_collecting()
         cl, v = (None, None) if col.problems else resolve_partial(values, col)
-        method, opts = resolve_design(self.design, cl, v, col)
-        if method == "map":  # the dosing history the levels follow
-            from .scenario import DoseSpec
-
-            events = []
-            for i, raw in enumerate(self.doses or []):
-                try:
-                    ev = DoseSpec.model_validate(raw).to_event(col, f"doses[{i}]")
-                except ValidationError as exc:
-                    col.problems.extend(validation_problems(exc, prefix=f"doses[{i}]."))
-                    continue
-                if ev is not None:
-                    events.append(ev)
-            if not events:
-                col.add("method 'map' needs the doses given before the levels", "doses")
-            opts["doses"] = events
-            opts["weight"] = weight
+        method, opts = resolve_design(self.design, cl, v, col, history=bool(self.doses))
+        if method in LEVEL_METHODS:
+            _history(self, method, opts, col)
+        elif self.design.start is not None or self.design.initial_concentration is not None:
+            col.add(f"'start' and 'initial_concentration' belong to adjustments from levels, "
+                    f"not to method '{method}'", "design.start")
         col.raise_if_any()
+        if method == "map":
+            opts["weight"] = weight
         self._resolved = DesignCase(self.name, method, cl, v, opts, weight)
         return self
+
+
+#: Methods that adjust from measured levels (and take a dose history).
+LEVEL_METHODS = ("proportional", "chiou", "sawchuk_zaske", "map")
+
+
+def _history(spec: DesignCaseSpec, method: str, opts: dict[str, Any], col: _Collector) -> None:
+    """The recorded doses, the start and the initial level of an adjustment from levels,
+    checked against the level times (all on the history clock)."""
+    from .scenario import DoseSpec
+
+    events = []
+    for i, raw in enumerate(spec.doses or []):
+        try:
+            ev = DoseSpec.model_validate(raw).to_event(col, f"doses[{i}]")
+        except ValidationError as exc:
+            col.problems.extend(validation_problems(exc, prefix=f"doses[{i}]."))
+            continue
+        if ev is not None:
+            events.append(ev)
+    d = spec.design
+    start = col.q(d.start, "time", "design.start", nonnegative=True)
+    initial = col.q(d.initial_concentration, "concentration", "design.initial_concentration",
+                    nonnegative=True)
+    if method == "map" and not events and not spec.doses:
+        col.add("method 'map' needs the doses given before the levels", "doses",
+                "doses = [ { start = '0 h', amount = '500 mg', duration = '1 h' } ]")
+    if not events:
+        if spec.doses is None and (start is not None or initial is not None):
+            col.add("'start' and 'initial_concentration' need the dose history", "doses",
+                    "doses = [...] with the recorded doses (times on one clock)")
+        return
+    opts.update(history=events, start=start, initial_concentration=initial)
+    if method == "map":
+        opts["doses"] = opts.pop("history")
+    levels = _level_times(method, opts)
+    first_dose = min(e.start for e in events)
+    for label, t in levels:
+        if t < first_dose and not initial:
+            col.add(f"the level at {t:g} h is before the first recorded dose ({first_dose:g} h): "
+                    "a level before any dose needs initial_concentration (drug on board from "
+                    "earlier therapy)", label, "initial_concentration = '2 mg/L', or the "
+                    "earlier doses in doses = [...]")
+    times = [t for _, t in levels]
+    if method in ("map", "chiou") and any(b <= a for a, b in itertools.pairwise(times)):
+        col.add("the levels are not in time order on the dose-history clock",
+                levels[0][0].split("[")[0], "levels listed in increasing time, each at its "
+                "own time")
+    if start is not None and times and start < max(times):
+        col.add(f"start {start:g} h is before the last level ({max(times):g} h): a new "
+                "regimen cannot begin before the levels it is based on", "design.start",
+                "a start at or after the last level")
+
+
+def _level_times(method: str, opts: dict[str, Any]) -> list[tuple[str, float]]:
+    if method == "map":
+        return [(f"design.levels[{i}].time", t) for i, (t, _) in enumerate(opts["levels"])]
+    if method == "chiou":
+        return [(f"design.samples[{i}].time", opts[f"t{i + 1}"]) for i in range(2)
+                if opts.get(f"t{i + 1}") is not None]
+    if method == "sawchuk_zaske":
+        return [(f"design.{k}_sample.time", opts[f"{k}_time"]) for k in ("peak", "trough")
+                if opts.get(f"{k}_time") is not None]
+    t = opts.get("measured_time")
+    return [] if t is None else [("design.measured.time", t)]
 
 
 def load_design_file(path: str | Path) -> ScenarioFile:
