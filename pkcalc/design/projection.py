@@ -209,12 +209,18 @@ def default_start(events, last_level: float, intermittent: bool) -> tuple[float,
     """When a proposal from levels starts, and why.
 
     Intermittent regimens: the next recorded dose after the last level (the next
-    scheduled dose); continuous infusions, or when none is scheduled: the time of
-    the last level.
+    scheduled dose), else one interval (the last two recorded starts apart) after
+    the last dose when that is after the last level; continuous infusions, or
+    otherwise: the time of the last level.
     """
     if intermittent:
         start, _, duration = events
-        later = start[(duration >= 0) & (start > last_level)]
+        given = np.unique(start[duration >= 0])
+        later = given[given > last_level]
         if later.size:
             return float(later.min()), "the next scheduled dose"
+        if given.size >= 2:
+            nxt = float(given[-1] + (given[-1] - given[-2]))
+            if nxt > last_level:
+                return nxt, "one dosing interval after the last recorded dose"
     return float(last_level), "the time of the last level"
