@@ -10,6 +10,7 @@ dose records by an independent solver (scipy ``solve_ivp`` on
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -38,7 +39,7 @@ def ode_course(events, clearance, volume, t_eval, initial=0.0):
     marks = marks[marks <= t_eval.max()]
     c = initial
     out = np.empty_like(t_eval)
-    for a, b in zip(marks[:-1], marks[1:], strict=True):
+    for a, b in itertools.pairwise(marks):
         c += amount[(duration == 0) & (start == a)].sum() / volume
         inf = (duration > 0) & (start <= a) & (start + duration >= b)
         rate = float((amount[inf] / duration[inf]).sum())
@@ -84,7 +85,7 @@ def test_two_levels_recover_k_and_v_after_any_history(seed):
     # noise-free levels after a random history, off steady state: k and V within 0.5 %
     rng = np.random.default_rng(seed)
     cl, v = float(rng.uniform(2, 10)), float(rng.uniform(20, 80))
-    doses, tau, t_inf = random_history(rng, "intermittent")
+    doses, _, _ = random_history(rng, "intermittent")
     ev = single(doses)
     last = max(d.start + d.duration for d in doses)
     t1 = last + float(rng.uniform(0.1, 2.0))
