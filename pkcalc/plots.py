@@ -59,7 +59,7 @@ def profile_figure(pred, conv: UnitConverter | None = None) -> Figure:
     p = pred.parameters
     grid = plot_grid(pred.time, pred.doses)
     start, amount, duration = expand_events(pred.doses)
-    conc = model.concentration(grid, start, amount, duration, p["clearance"], p["volume"])
+    conc = model.concentration(grid, *pred.model_events(), p["clearance"], p["volume"])
     fig, ax = new_figure()
     ax.plot(conv(grid, "time"), conv(conc, "concentration"), color="black", lw=1.6,
             label="predicted concentration")

@@ -89,11 +89,17 @@ class ScenarioPrediction:
     flags: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
     weight: float | None = None
+    initial_concentration: float = 0.0
+    highest: float | None = None
+    highest_time: float | None = None
+
+    def model_events(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Single events for :func:`pkcalc.model.concentration` (initial level included)."""
+        return model_events(self.doses, self.initial_concentration)
 
     def concentration_at(self, t) -> np.ndarray:
         """Concentration (mg/L) at any times ``t`` (h) under this scenario's doses."""
-        start, amount, duration = expand_events(self.doses)
-        return model.concentration(np.atleast_1d(np.asarray(t, float)), start, amount, duration,
+        return model.concentration(np.atleast_1d(np.asarray(t, float)), *self.model_events(),
                                    self.parameters["clearance"], self.parameters["volume"])
 
     def to_frame(self):
@@ -126,18 +132,31 @@ class ScenarioPrediction:
 
 
 # --------------------------------------------------------------------------- helpers
+def model_events(doses: Sequence[DoseEvent], initial_concentration: float = 0.0):
+    """Single events of a dose list for the model, with an initial level at time 0."""
+    start, amount, duration = expand_events(doses)
+    if initial_concentration:
+        return (np.append(start, 0.0), np.append(amount, initial_concentration),
+                np.append(duration, model.INITIAL_LEVEL))
+    return start, amount, duration
+
+
 def _events_span(doses: Sequence[DoseEvent]) -> float:
     return max((d.end for d in doses), default=0.0)
 
 
 def default_times(doses: Sequence[DoseEvent], half_life: float,
                   points: int = DEFAULT_POINTS) -> np.ndarray:
-    """Automatic times: 0 to the end of dosing plus five half-lives.
+    """Automatic times: 0 to the end of dosing plus five half-lives, with every dose
+    start and end added so that no peak or trough falls between grid points.
 
     Five half-lives is where about 97 % of a dose has been eliminated (common practice).
     """
     horizon = _events_span(doses) + 5.0 * half_life
-    return np.linspace(0.0, horizon, points)
+    start, _, duration = expand_events(doses)
+    marks = np.concatenate([start, start + duration])
+    return np.unique(np.concatenate([np.linspace(0.0, horizon, points),
+                                     marks[(marks >= 0) & (marks <= horizon)]]))
 
 
 def plot_grid(times: np.ndarray, doses: Sequence[DoseEvent], points: int = 1201) -> np.ndarray:
@@ -258,7 +277,7 @@ def predict_scenario(scenario: ScenarioInput, fractions: Sequence[float] = FRACT
     doses = scenario.doses
     times = scenario.times if scenario.times is not None else default_times(
         doses, params["half_life"])
-    start, amount, duration = expand_events(doses)
+    start, amount, duration = model_events(doses, scenario.initial_concentration)
     conc = model.concentration(times, start, amount, duration, cl, v)
     trains = [d for d in doses if d.count > 1]
     warnings = parameter_warnings(cl, v, scenario.weight)
@@ -266,21 +285,44 @@ def predict_scenario(scenario: ScenarioInput, fractions: Sequence[float] = FRACT
     ss = _steady_state(trains, cl, v, warnings)
     if trains and any(d.count == 1 for d in doses):
         warnings.append("steady state considers only the repeated doses; single doses wash out")
-    dense = plot_grid(times, doses)
-    profile_max = float(model.concentration(dense, start, amount, duration, cl, v).max())
+    highest, highest_time = _highest(times, doses, (start, amount, duration), cl, v)
+    profile_max = highest
+    step = float(np.diff(times).max()) if times.size > 1 else 0.0
+    if scenario.times is not None and step > params["half_life"] / 5 and \
+            highest > 1.01 * float(conc.max()):
+        warnings.append(
+            f"the requested times are up to {short(step)} h apart, coarser than a fifth of the "
+            f"half-life ({short(params['half_life'])} h): the listed profile misses the peak "
+            f"({short(highest)} mg/L at {short(highest_time)} h; the highest listed is "
+            f"{short(float(conc.max()))} mg/L); the plot shows the full course")
     flags = _target_flags(scenario.target, plateau, ss, profile_max)
     ttf = {f: float(model.time_to_fraction(f, cl, v)) for f in fractions}
     return ScenarioPrediction(
         name=scenario.name, parameters=params, plateau_concentration=plateau,
         plateau_basis=basis, time_to_fraction=ttf, time=times, concentration=conc,
         steady_state=ss, doses=doses, target=scenario.target, flags=flags, warnings=warnings,
-        weight=scenario.weight,
+        weight=scenario.weight, initial_concentration=scenario.initial_concentration,
+        highest=highest, highest_time=highest_time,
     )
+
+
+def _highest(times, doses, events, cl, v) -> tuple[float, float]:
+    """Highest level at the requested times and at every event boundary (both sides):
+    between boundaries a one-compartment course is monotone, so this is exact."""
+    start, _, duration = expand_events(doses)
+    marks = np.concatenate([times, start, start + duration])
+    marks = marks[(marks >= times.min()) & (marks <= times.max())] if times.size else marks
+    eps = 1e-9 * max(1.0, float(marks.max()) if marks.size else 1.0)
+    grid = np.concatenate([marks, np.maximum(marks - eps, 0.0)])
+    c = model.concentration(grid, *events, cl, v)
+    i = int(np.argmax(c))
+    return float(c[i]), float(grid[i])
 
 
 def predict(*, clearance: float, volume: float, doses: Sequence[DoseEvent],
             times=None, name: str = "scenario", target: Target | None = None,
-            weight: float | None = None) -> ScenarioPrediction:
+            weight: float | None = None, initial_concentration: float = 0.0
+            ) -> ScenarioPrediction:
     """Predict from plain numbers in canonical units (L/h, L, h, mg).
 
     Examples
@@ -294,5 +336,5 @@ def predict(*, clearance: float, volume: float, doses: Sequence[DoseEvent],
         raise ValueError("clearance and volume must be positive")
     t = None if times is None else np.asarray(times, dtype=float)
     scenario = ScenarioInput(name, float(clearance), float(volume), tuple(doses), t, weight,
-                             target)
+                             target, initial_concentration=float(initial_concentration))
     return predict_scenario(scenario)

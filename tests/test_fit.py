@@ -351,3 +351,63 @@ def test_indometh_one_compartment_disagrees_with_nca():
     assert len(flagged) >= 3
     assert any("one-compartment model may not describe" in f for c in comparisons
                for f in c.flags)
+
+
+# --------------------------------------------------------------------------- levels at time zero
+def _subject_with_zero_level(level0, blq0=False, initial=0.0):
+    cl, v = 4.0, 35.0
+    t = np.array([0.0, 1.0, 2.0, 4.0, 8.0, 12.0])
+    ev = (np.array([0.0, 0.0]), np.array([initial, 500.0]),
+          np.array([model.INITIAL_LEVEL, 0.5]))
+    c = model.concentration(t, *ev, cl, v)
+    c[0] = level0
+    lloq = np.full(t.size, 0.5)
+    blq = np.zeros(t.size, bool)
+    blq[0] = blq0
+    conc = c.copy()
+    if blq0:
+        conc[0] = np.nan
+    return SubjectData("Z", t, conc, lloq, blq, np.arange(t.size), np.array([0.0]),
+                       np.array([500.0]), np.array([0.5]), initial_concentration=initial)
+
+
+@pytest.mark.parametrize(("level0", "blq0"), [(1.0, False), (0.0, False), (np.nan, True)])
+def test_pre_dose_level_at_time_zero_does_not_crash(level0, blq0):
+    # a level at time 0 (before the infusion delivered anything) is predicted zero: it is
+    # left out with a warning (measurable) or a note (zero / BLQ), never a crash
+    s = _subject_with_zero_level(level0, blq0)
+    fits, failures = fit_subjects([s], FitOptions())
+    assert not failures and fits[0].converged
+    assert fits[0].clearance == pytest.approx(4.0, rel=1e-3)
+    text = " ".join(fits[0].warnings + fits[0].notes)
+    assert "before any drug entered" in text
+    assert ("initial_concentration" in " ".join(fits[0].warnings)) == (level0 == 1.0)
+
+
+def test_initial_concentration_is_fitted_as_drug_on_board():
+    # levels simulated with 3 mg/L on board at time 0 (closed form C0 exp(-kt) + dose,
+    # the same as the ODE with C(0) = 3): with initial_concentration the fit is exact
+    s = _subject_with_zero_level(3.0, initial=3.0)
+    s.conc[0] = 3.0
+    fits, _ = fit_subjects([s], FitOptions(error_model="additive"))
+    assert fits[0].clearance == pytest.approx(4.0, rel=1e-4)
+    assert fits[0].volume == pytest.approx(35.0, rel=1e-4)
+    assert fits[0].predict([0.0])[0] == pytest.approx(3.0, rel=1e-4)
+
+
+def test_cli_time_zero_level_exits_0_with_a_warning(run_cli, write):
+    levels = write("l.csv", """
+        subject,time [h],concentration [mg/L]
+        A,0,1.0
+        A,1,8
+        A,2,7
+        A,4,5.5
+        A,8,3.2
+        A,12,2
+        """)
+    doses = write("d.csv", """
+        subject,start [h],amount [mg],duration [h]
+        A,0,500,0.5
+        """)
+    r = run_cli("fit", "--levels", levels, "--doses", doses)
+    assert r.code == 0 and "before any drug entered" in r.out + r.err

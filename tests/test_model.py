@@ -398,3 +398,58 @@ def test_analytic_gradient_matches_sympy_and_differences():
         d_v = float((sp.diff(expr, v_s) * v_s).subs({cl_s: cl, v_s: v, t_s: x}))
         assert grad[0, i] == pytest.approx(d_cl, rel=1e-10)
         assert grad[1, i] == pytest.approx(d_v, rel=1e-10)
+
+
+# --------------------------------------------------------------------------- initial level, split
+def test_initial_level_event_decays_with_k_and_its_gradient_matches_finite_differences():
+    # C0 exp(-k t) for an initial-level event (no 1/V); derivatives wrt ln CL, ln V by
+    # central differences (independent of the analytic forms)
+    t = np.array([0.0, 1.0, 5.0, 12.0])
+    start, amount, duration = (np.array([0.0, 2.0]), np.array([3.5, 200.0]),
+                               np.array([model.INITIAL_LEVEL, 1.0]))
+    cl, v = 4.0, 30.0
+    c, grad = model.concentration_and_gradient(t, start, amount, duration, cl, v)
+    only_init = 3.5 * np.exp(-cl / v * t)
+    dose = model.concentration(t, start[1:], amount[1:], duration[1:], cl, v)
+    np.testing.assert_allclose(c, only_init + dose, rtol=1e-13)
+    h = 1e-6
+    for j, (dcl, dv) in enumerate(((h, 0.0), (0.0, h))):
+        up = model.concentration(t, start, amount, duration, cl * math.exp(dcl), v * math.exp(dv))
+        dn = model.concentration(t, start, amount, duration, cl * math.exp(-dcl),
+                                 v * math.exp(-dv))
+        np.testing.assert_allclose(grad[j], (up - dn) / (2 * h), rtol=1e-6, atol=1e-10)
+
+
+def test_split_events_superposes_to_the_whole_history():
+    # the two parts of a history split at any time give the whole course (superposition)
+    start, amount, duration = np.array([0.0, 3.0, 6.0]), np.array([100.0, 50.0, 80.0]), \
+        np.array([5.0, 0.0, 10.0])
+    t = np.linspace(0, 30, 301)
+    whole = model.concentration(t, start, amount, duration, 3.0, 30.0)
+    for at in (0.0, 2.5, 3.0, 7.0, 20.0):
+        before, after = model.split_events(start, amount, duration, at)
+        parts = model.concentration(t, *before, 3.0, 30.0) + model.concentration(t, *after,
+                                                                                   3.0, 30.0)
+        np.testing.assert_allclose(parts, whole, rtol=1e-12, atol=1e-14)
+        assert before[1].sum() + after[1].sum() == pytest.approx(amount.sum())
+
+
+def test_area_by_mass_balance_equals_quadrature():
+    # AUC(t1, t2) = (input - V (C2 - C1)) / CL against adaptive quadrature (scipy.quad)
+    start, amount, duration = np.array([0.0, 4.0]), np.array([300.0, 100.0]), np.array([2.0, 0.0])
+    cl, v = 5.0, 40.0
+    t1, t2 = 1.0, 14.0
+    area = quad(lambda x: model.concentration([x], start, amount, duration, cl, v)[0], t1, t2,
+                points=[2.0, 4.0], limit=200)[0]
+    infused = 300.0 * (2.0 - 1.0) / 2.0 + 100.0
+    c1, c2 = model.concentration([t1, t2], start, amount, duration, cl, v)
+    assert model.area_by_mass_balance(infused, c1, c2, cl, v) == pytest.approx(area, rel=1e-9)
+
+
+@pytest.mark.parametrize("duration", [0.0, 0.5, 2.0])
+def test_amount_to_reach_lands_on_the_target(duration):
+    # the amount from amount_to_reach, infused from a level of 4 mg/L, ends at 10 mg/L
+    cl, v, c0 = 3.0, 35.0, 4.0
+    a = float(model.amount_to_reach(10.0, c0, cl, v, duration))
+    ev = (np.array([0.0, 0.0]), np.array([c0, a]), np.array([model.INITIAL_LEVEL, duration]))
+    assert model.concentration([duration], *ev, cl, v)[0] == pytest.approx(10.0, rel=1e-12)

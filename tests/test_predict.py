@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 
@@ -91,3 +93,37 @@ def test_result_frame_and_summary():
 def test_predict_refuses_nonpositive():
     with pytest.raises(ValueError, match="positive"):
         predict(clearance=0.0, volume=1.0, doses=[DoseEvent(0, 1, 0)])
+
+
+# --------------------------------------------------------------------------- drug on board, grids
+def test_initial_concentration_decays_with_k_beside_the_doses():
+    # 2 mg/L on board at time 0 decays with k = CL/V; the ODE with C(0) = 2 (scipy
+    # solve_ivp, independent) gives the same course under a 30 mg/h infusion
+    from scipy.integrate import solve_ivp
+
+    cl, v = 3.0, 34.62
+    r = predict(clearance=cl, volume=v, doses=[DoseEvent(0.0, 30.0 * 48, 48.0)],
+                times=[0.0, 6.0, 24.0], initial_concentration=2.0)
+    sol = solve_ivp(lambda _t, y: (30.0 - cl * y) / v, (0, 24), [2.0], t_eval=[0, 6, 24],
+                    rtol=1e-11, atol=1e-12)
+    np.testing.assert_allclose(r.concentration, sol.y[0], rtol=1e-8)
+
+
+def test_coarse_requested_times_warn_and_the_highest_level_is_exact():
+    # half-life 10 min sampled hourly: the listed profile misses the peak; the warning says
+    # so and `highest` is the true peak at the end of the 6-min infusion (closed form)
+    v = 10.0
+    k = math.log(2) / (10 / 60)  # 1/h
+    cl = k * v
+    r = predict(clearance=cl, volume=v, doses=[DoseEvent(0.0, 100.0, 0.1)],
+                times=np.arange(0.0, 6.0, 1.0))
+    peak = 100.0 / 0.1 / cl * (1 - math.exp(-k * 0.1))
+    assert r.highest == pytest.approx(peak, rel=1e-9)
+    assert r.highest_time == pytest.approx(0.1)
+    assert any("misses the peak" in w for w in r.warnings)
+
+
+def test_default_grid_contains_every_dose_boundary():
+    r = predict(clearance=3.0, volume=30.0, doses=[DoseEvent(0.0, 100.0, 0.37),
+                                                   DoseEvent(5.13, 50.0, 0.0)])
+    assert {0.37, 5.13} <= set(np.round(r.time, 12))

@@ -124,6 +124,7 @@ class FitResult:
     notes: list[str] = field(default_factory=list)
     prior: dict[str, float] = field(default_factory=dict)
     weight: float | None = None
+    initial_concentration: float = 0.0
 
     @property
     def clearance(self) -> float:
@@ -139,9 +140,15 @@ class FitResult:
         return e.ci_low, e.ci_high
 
     def predict(self, t) -> np.ndarray:
-        """Concentration (mg/L) at times ``t`` (h) with the estimates."""
-        return model.concentration(np.asarray(t, float), self.dose_start, self.dose_amount,
-                                   self.dose_duration, self.clearance, self.volume)
+        """Concentration (mg/L) at times ``t`` (h) with the estimates (an initial level,
+        if any, included)."""
+        start, amount, duration = self.dose_start, self.dose_amount, self.dose_duration
+        if self.initial_concentration:
+            start, amount, duration = (np.append(start, 0.0),
+                                       np.append(amount, self.initial_concentration),
+                                       np.append(duration, model.INITIAL_LEVEL))
+        return model.concentration(np.asarray(t, float), start, amount, duration,
+                                   self.clearance, self.volume)
 
     def to_frame(self):
         """Per-level diagnostics: time, observed, predicted, residuals, BLQ flag."""
@@ -172,6 +179,15 @@ class FitResult:
 
 
 # --------------------------------------------------------------------------- data
+def subject_events(s: SubjectData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A subject's dose events for the model, with its initial level (if any) as an
+    initial-level event at time 0 (:data:`pkcalc.model.INITIAL_LEVEL`)."""
+    if not s.initial_concentration:
+        return s.dose_start, s.dose_amount, s.dose_duration
+    return (np.append(s.dose_start, 0.0), np.append(s.dose_amount, s.initial_concentration),
+            np.append(s.dose_duration, model.INITIAL_LEVEL))
+
+
 def _prepare_batch(subjects: list[SubjectData], opts: FitOptions):
     """All subjects as one padded batch after the BLQ method and the weights.
 
@@ -180,7 +196,8 @@ def _prepare_batch(subjects: list[SubjectData], opts: FitOptions):
     """
     b = len(subjects)
     n = max((s.time.size for s in subjects), default=1)
-    e = max((s.dose_start.size for s in subjects), default=1)
+    events = [subject_events(s) for s in subjects]
+    e = max((ev[0].size for ev in events), default=1)
     t = np.zeros((b, n))
     y = np.full((b, n), np.nan)
     lloq = np.full((b, n), np.nan)
@@ -191,9 +208,8 @@ def _prepare_batch(subjects: list[SubjectData], opts: FitOptions):
         k = s.time.size
         t[i, :k], y[i, :k], lloq[i, :k], blq[i, :k], valid[i, :k] = (s.time, s.conc, s.lloq,
                                                                        s.blq, True)
-        m = s.dose_start.size
-        start[i, :m], amount[i, :m], duration[i, :m] = (s.dose_start, s.dose_amount,
-                                                         s.dose_duration)
+        m = events[i][0].size
+        start[i, :m], amount[i, :m], duration[i, :m] = events[i]
     blq &= valid
     obs = valid & ~blq
     cens = np.zeros_like(blq)
@@ -213,6 +229,24 @@ def _prepare_batch(subjects: list[SubjectData], opts: FitOptions):
     for i in np.flatnonzero(n_blq):
         notes[i].append(f"{int(n_blq[i])} {text}")
     y = np.where(np.isnan(y), 0.0, y)
+    # levels where no drug has entered yet (before or at the start of the first infusion,
+    # and no initial level): the model predicts exactly zero there, so they carry no
+    # information on CL and V and would put a zero variance into the likelihood
+    none_yet = valid & (model.concentration(t, start, amount, duration, 1.0, 1.0) <= 0)
+    warns: list[list[str]] = [[] for _ in range(b)]
+    for i in np.flatnonzero(none_yet.any(axis=1)):
+        k = subjects[i].time.size
+        times = ", ".join(f"{x:g} h" for x in t[i, :k][none_yet[i, :k]])
+        measured = (obs[i] & none_yet[i] & (y[i] > 0)).any()
+        text = (f"level(s) at {times} drawn before any drug entered: the model predicts zero "
+                "there, so they were left out of the fit")
+        if measured:
+            warns[i].append(text + "; a measurable level before the first dose means drug "
+                            "on board from earlier therapy: give initial_concentration")
+        else:
+            notes[i].append(text)
+    obs &= ~none_yet
+    cens &= ~none_yet
     w = np.ones((b, n))
     if opts.weighting in ("inverse_observed", "inverse_observed_squared"):
         bad = obs & ~(y > 0)
@@ -224,6 +258,8 @@ def _prepare_batch(subjects: list[SubjectData], opts: FitOptions):
         w = np.where(obs, np.abs(np.where(obs, y, 1.0)) ** -power, 0.0)
     batch = Batch(t=t, y=y, w=w, obs=obs, cens=cens, start=start, amount=amount,
                   duration=duration, kind=opts.method, error=opts.error_model or "additive")
+    for i in range(b):
+        notes[i] = [("warning", x) for x in warns[i]] + notes[i]
     return batch, notes, obs.sum(axis=1) + cens.sum(axis=1)
 
 
@@ -644,8 +680,8 @@ def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.nd
             message: str, iterations: int, n_starts: int, agreed: int, notes: list[str],
             prior: dict) -> FitResult:
     kind = batch.kind
-    warnings: list[str] = []
-    notes = list(notes)
+    warnings: list[str] = [x[1] for x in notes if isinstance(x, tuple)]
+    notes = [x for x in notes if not isinstance(x, tuple)]
     n_real = s.time.size
     q = theta.size
     if kind == "least_squares":
@@ -728,7 +764,7 @@ def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.nd
         observed=observed, predicted=pred, blq=s.blq.copy(), residuals=resid,
         weighted_residuals=wres, dose_start=s.dose_start, dose_amount=s.dose_amount,
         dose_duration=s.dose_duration, warnings=warnings, notes=notes, prior=prior_out,
-        weight=s.weight)
+        weight=s.weight, initial_concentration=s.initial_concentration)
 
 
 def _undetermined(row: Batch, theta: np.ndarray, n: int) -> str:

@@ -103,6 +103,8 @@ class ScenarioInput:
     target : Target or None
     given : tuple of str
         The parameter names the user gave (for reports).
+    initial_concentration : float, mg/L
+        Drug on board at time 0 (earlier therapy), decaying with k.
     """
 
     name: str
@@ -114,6 +116,7 @@ class ScenarioInput:
     target: Target | None = None
     given: tuple[str, ...] = ()
     extra: dict[str, Any] = field(default_factory=dict)
+    initial_concentration: float = 0.0
 
 
 # --------------------------------------------------------------------------- helpers

@@ -159,6 +159,7 @@ class ScenarioSpec(_WithParameters):
     times: list[QuantityText] | TimeRange | None = None
     target: TargetSpec | None = None
     design: dict[str, Any] | None = None
+    initial_concentration: QuantityText | None = None
 
 
     @model_validator(mode="after")
@@ -174,6 +175,8 @@ class ScenarioSpec(_WithParameters):
                 doses.append(ev)
         times = _resolve_times(self.times, col)
         target = self.target.to_target(col) if self.target is not None else None
+        initial = col.q(self.initial_concentration, "concentration", "initial_concentration",
+                        nonnegative=True)
         col.raise_if_any()
         assert params is not None
         self._resolved = ScenarioInput(
@@ -186,6 +189,7 @@ class ScenarioSpec(_WithParameters):
             target=target,
             given=tuple(n for n, v in values.items() if v is not None),
             extra={"design": self.design} if self.design is not None else {},
+            initial_concentration=initial or 0.0,
         )
         return self
 

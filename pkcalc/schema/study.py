@@ -59,6 +59,9 @@ class SubjectData:
         From the subjects table; ``weight`` in kg.
     notes : tuple of str
         Data-handling notes (sorting, BLQ numbers below LLOQ).
+    initial_concentration : float, mg/L
+        Drug on board at time 0 from earlier therapy (decays with the subject's k);
+        from an ``initial_concentration [..]`` column of the subjects table.
     """
 
     subject: str
@@ -72,6 +75,7 @@ class SubjectData:
     dose_duration: np.ndarray
     covariates: dict[str, float] = field(default_factory=dict)
     notes: tuple[str, ...] = ()
+    initial_concentration: float = 0.0
 
     @property
     def weight(self) -> float | None:
@@ -266,6 +270,8 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
                 continue
             if key == "weight":
                 table["weight"], _ = sb.numeric("weight", "weight", problems)
+            elif key == "initial_concentration":
+                table[key], _ = sb.numeric(key, "concentration", problems)
             elif unit is not None:
                 raw = sb.text(key)
                 table[key] = pd.to_numeric(raw.where(raw != ""), errors="coerce")
@@ -280,6 +286,10 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
         if len(dup):
             problems.append(Problem(f"subject '{dup.iloc[0]}' appears twice", file=sb.file,
                                     field="subject"))
+        if "initial_concentration" in table and (table["initial_concentration"] < 0).any():
+            line = int(np.flatnonzero((table["initial_concentration"] < 0).to_numpy())[0]) + 2
+            problems.append(Problem(f"initial_concentration must not be negative (line {line})",
+                                    file=sb.file, field="initial_concentration"))
         if "weight" in table and (table["weight"] <= 0).any():
             line = int(np.flatnonzero((table["weight"] <= 0).to_numpy())[0]) + 2
             problems.append(Problem(f"weight must be positive (line {line})", file=sb.file,
@@ -409,7 +419,10 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
             lloq=g["lloq"].to_numpy(float), blq=g["blq"].to_numpy(bool),
             rows=g["row"].to_numpy(int), dose_start=d["start"].to_numpy(float),
             dose_amount=d["amount"].to_numpy(float), dose_duration=d["duration"].to_numpy(float),
-            covariates=covariates.get(sid, {}), notes=tuple(notes)))
+            covariates={k: x for k, x in covariates.get(sid, {}).items()
+                        if k != "initial_concentration"},
+            notes=tuple(notes),
+            initial_concentration=covariates.get(sid, {}).get("initial_concentration", 0.0)))
     failures = [(f"subject '{sid}'", PkcalcInputError(p)) for sid, p in subject_failures.items()]
     return Study(good, failures, warnings, files)
 
