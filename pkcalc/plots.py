@@ -58,7 +58,7 @@ def profile_figure(pred, conv: UnitConverter | None = None) -> Figure:
     conv = conv or UnitConverter()
     p = pred.parameters
     grid = plot_grid(pred.time, pred.doses)
-    start, amount, duration = expand_events(pred.doses)
+    start = expand_events(pred.doses)[0]
     conc = model.concentration(grid, *pred.model_events(), p["clearance"], p["volume"])
     fig, ax = new_figure()
     ax.plot(conv(grid, "time"), conv(conc, "concentration"), color="black", lw=1.6,
