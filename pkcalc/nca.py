@@ -330,9 +330,25 @@ def nca_subject(subject: str, time, conc, blq, dose_start, dose_amount, dose_dur
     base = NcaResult(subject, mode, float(dose), float(t_inf), tau, float(ref))
 
     sel = time >= ref - 1e-9
+    pre_note = None
     if mode == "steady state":
         sel &= time <= ref + tau + 1e-9
+        # a trough drawn shortly before the dose (after the previous infusion ended, within
+        # the last quarter of the interval) is the level at the start of the interval:
+        # common practice for pre-dose samples at steady state
+        prev_end = starts[-2] + durations[-2]
+        before = np.flatnonzero((time < ref - 1e-9) & (time >= max(prev_end, ref - tau / 4))
+                                & ~np.isnan(conc) & ~blq)
+        if before.size and not np.any(np.abs(time - ref) <= 1e-9):
+            j = int(before[-1])
+            sel[j] = True
+            pre_note = (f"pre-dose level drawn {short(ref - time[j])} h before the dose taken as "
+                        f"the level at the start of the interval ({short(conc[j])} mg/L)")
+            time = time.copy()
+            time[j] = ref
     t, c, b = time[sel] - ref, conc[sel], blq[sel]
+    if pre_note:
+        notes.append(pre_note)
     t, c, blq_note = _apply_blq(t, c, b, blq_rule)
     if blq_note:
         notes.append(blq_note)
@@ -370,6 +386,17 @@ def nca_subject(subject: str, time, conc, blq, dose_start, dose_amount, dose_dur
     last_c, last_t = float(c[i_last]), float(t[i_last])
     window = (np.arange(t.size) > i_peak) & (t >= t_inf - 1e-9) & (c > 0)
     window &= np.arange(t.size) <= i_last
+    # never a point while any infusion runs (irregular histories: later doses too), and
+    # for total exposure only points after the end of the last dose
+    t_abs = t + ref
+    running = ((durations[None, :] > 0) & (starts[None, :] < t_abs[:, None] - 1e-9)
+               & (t_abs[:, None] < starts[None, :] + durations[None, :] - 1e-9)).any(axis=1)
+    if mode == "total exposure":
+        running |= t_abs < float((starts + durations).max()) - 1e-9
+    if np.any(window & running):
+        notes.append(f"{int((window & running).sum())} level(s) drawn while an infusion was "
+                     "running (or before the last dose ended) left out of the terminal phase")
+    window &= ~running
     if np.any((np.arange(t.size) > i_peak) & (c <= 0) & (np.arange(t.size) < i_last)):
         notes.append("zero levels inside the declining phase are left out of the terminal fit")
     manual = None if terminal_times is None else np.asarray(terminal_times, float) - ref

@@ -224,3 +224,35 @@ def test_cli_nca_text_caution_first(run_cli):
 def test_cli_nca_bad_options(run_cli, args, match):
     r = run_cli("nca", SCENARIOS / "demo-study.toml", *args)
     assert r.code == 2 and match in r.err
+
+
+# --------------------------------------------------------------------------- pre-dose trough, infusions
+def test_pre_dose_trough_is_the_start_of_the_interval():
+    # at steady state a trough drawn 0.1 h before the last dose is kept as the interval's
+    # starting level (not replaced by an extrapolated value); AUCtau stays close to the exact
+    # dose/CL (mass balance at steady state), within the trapezoid error
+    cl, v, tau = 4.0, 40.0, 8.0
+    starts = np.arange(10) * tau
+    ev = (starts, np.full(10, 400.0), np.full(10, 1.0))
+    ref = starts[-1]
+    t = np.array([ref - 0.1, ref + 1.0, ref + 2.0, ref + 4.0, ref + 6.0, ref + 8.0])
+    c = model.concentration(t, *ev, cl, v)
+    r = nca_subject("S", t, c, np.zeros(t.size, bool), *ev)
+    assert r.mode == "steady state"
+    assert any("pre-dose level drawn 0.1 h" in n for n in r.notes)
+    assert r.conc[0] == pytest.approx(c[0])
+    assert r.auc_interval == pytest.approx(400.0 / cl, rel=0.03)
+
+
+def test_terminal_phase_excludes_points_during_a_later_infusion():
+    # irregular doses: a small second infusion runs 10-14 h; the levels drawn during it
+    # still fall almost log-linearly (a tie in adjusted R2 that would pull them in), but they
+    # must not enter the terminal regression; the slope from the levels after it is exact
+    cl, v = 3.0, 30.0
+    ev = (np.array([0.0, 10.0]), np.array([300.0, 2.0]), np.array([1.0, 4.0]))
+    t = np.array([1.0, 2.0, 4.0, 6.0, 8.0, 11.0, 12.0, 13.0, 16.0, 20.0, 24.0, 30.0])
+    c = model.concentration(t, *ev, cl, v)
+    r = nca_subject("S", t, c, np.zeros(t.size, bool), *ev)
+    assert r.mode == "total exposure"
+    assert min(r.points_used) >= 14.0
+    assert r.terminal_slope == pytest.approx(cl / v, rel=1e-9)
