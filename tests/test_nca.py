@@ -226,7 +226,7 @@ def test_cli_nca_bad_options(run_cli, args, match):
     assert r.code == 2 and match in r.err
 
 
-# --------------------------------------------------------------------------- pre-dose trough, infusions
+# ------------------------------------------------------------------ pre-dose trough, infusions
 def test_pre_dose_trough_is_the_start_of_the_interval():
     # at steady state a trough drawn 0.1 h before the last dose is kept as the interval's
     # starting level (not replaced by an extrapolated value); AUCtau stays close to the exact
