@@ -97,30 +97,42 @@ def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
 
     Continuous designs: five half-lives after the loading dose.  Intermittent
     designs: until steady state (five half-lives, at least four intervals).
+    Designs from levels: the recorded history and the measured levels, then each
+    proposal's projected course from its start over the next 72 h.
     Returns None when clearance or volume is unknown (nothing to draw).
     """
     conv = conv or UnitConverter()
     cl, v = result.clearance, result.volume
     if not cl or not v or not result.regimens:
         return None
-    half_life = model.LN2 * v / cl
     fig, ax = new_figure()
     styles = ["-", "--", ":", "-."]
     greys = ["black", "0.35", "0.55", "0.7"]
     shown = result.regimens[:4]
-    tmax = max(
-        (max(5 * half_life, 4 * r.interval) + r.interval) if r.interval
-        else (r.loading_time or 0.0) + 5 * half_life
-        for r in shown
-    )
+    state = getattr(result, "state", None)
+    if state is not None:
+        t_lo, tmax = _draw_history(ax, state, cl, v, conv)
+    else:
+        half_life = model.LN2 * v / cl
+        t_lo = 0.0
+        tmax = max(
+            (max(5 * half_life, 4 * r.interval) + r.interval) if r.interval
+            else (r.loading_time or 0.0) + 5 * half_life
+            for r in shown
+        )
     for i, reg in enumerate(shown):
-        horizon = tmax
+        horizon = tmax - (state.start if state is not None else 0.0)
         events = reg.events(result.salt_factor, horizon)
         if not events:
             continue
         start, amount, duration = expand_events(events)
-        t = np.unique(np.concatenate([np.linspace(0, horizon, 2000), start, start + duration]))
-        c = model.concentration(t, start, amount, duration, cl, v)
+        t0 = state.start if state is not None else 0.0
+        t = np.unique(np.concatenate([np.linspace(t0, tmax, 2000), start, start + duration]))
+        t = t[(t >= t0) & (t <= tmax)]
+        before = state.before if state is not None else (np.empty(0),) * 3
+        allev = [np.concatenate([b, n]) for b, n in zip(before, (start, amount, duration),
+                                                         strict=True)]
+        c = model.concentration(t, *allev, cl, v)
         ax.plot(conv(t, "time"), conv(c, "concentration"), color=greys[i], ls=styles[i],
                 lw=1.6 if i == 0 else 1.1, label=f"#{i + 1} {reg.label}")
     tgt = result.target
@@ -138,13 +150,35 @@ def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
     if tgt.get("plateau") is not None:
         ax.axhline(conv(tgt["plateau"], "concentration"), color="0.3", lw=0.9, ls="-.",
                    label="target plateau")
-    ax.set_xlim(0, conv(tmax, "time") if tmax else None)
+    ax.set_xlim(conv(t_lo, "time"), conv(tmax, "time") if tmax else None)
     ax.set_ylim(bottom=0)
     ax.set_xlabel(f"time [{conv.unit('time')}]")
     ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
     ax.set_title(f"{result.name}\nproposed regimens: a calculation, not an order", fontsize=9)
     ax.legend(fontsize=7, loc="best", frameon=False)
     return fig
+
+
+def _draw_history(ax, state, cl, v, conv):
+    """The recorded course up to the proposals' start (individual estimates), the
+    measured levels, and a line at the start; returns the time span to draw."""
+    hist_start = state.history[0]
+    starts = [float(x) for x in np.concatenate([hist_start, state.before[0]])] or [0.0]
+    t_lo = min(min(starts), *(t for t, _ in state.levels)) if state.levels else min(starts)
+    t_lo = min(t_lo, state.start)
+    t = np.linspace(t_lo, state.start, 800)
+    marks = np.concatenate([state.before[0], state.before[0] + np.maximum(state.before[2], 0)])
+    t = np.unique(np.concatenate([t, marks[(marks >= t_lo) & (marks <= state.start)]]))
+    c = model.concentration(t, *state.before, cl, v)
+    ax.plot(conv(t, "time"), conv(c, "concentration"), color="0.5", lw=1.2,
+            label="course so far (individual estimates)")
+    if state.levels:
+        lt, lc = zip(*state.levels, strict=True)
+        ax.plot(conv(np.array(lt), "time"), conv(np.array(lc), "concentration"), "o",
+                color="black", ms=5, mfc="white", label="measured levels")
+    ax.axvline(conv(state.start, "time"), color="0.3", lw=0.8, ls=":",
+               label=f"proposals start ({conv(state.start, 'time'):.4g} {conv.unit('time')})")
+    return t_lo, state.start + 72.0
 
 
 def nca_figure(result, conv: UnitConverter | None = None) -> Figure | None:

@@ -190,8 +190,8 @@ def _proportional_intermittent(events, cl, v, measured, t_level, target, current
                               dose_step, phase, window)
     k = cl / v
     return DesignResult(
-        name, "proportional", cl, v, [reg], target={"plateau": None, "level": target,
-                                                    "window": [window.low, window.high]},
+        name, "proportional", cl, v, [reg], state=state,
+        target={"plateau": None, "level": target, "window": [window.low, window.high]},
         estimates={"clearance": cl, "elimination_rate": k, "half_life": model.LN2 / k,
                    "level_at_start": state.level, "classical_new_dose":
                    current_dose * target / measured},

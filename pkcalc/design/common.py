@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -272,6 +273,8 @@ class DesignResult:
         Proposals, best first.
     notes, warnings : list of str
     salt_factor : float
+    state : CurrentState or None
+        Where the patient was when the proposals start (designs from levels).
     """
 
     name: str
@@ -284,6 +287,7 @@ class DesignResult:
     notes: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
     salt_factor: float = 1.0
+    state: Any = None
 
     @property
     def best(self) -> Regimen | None:

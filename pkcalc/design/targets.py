@@ -156,7 +156,7 @@ def design_continuous(
         notes.append(f"the rate is rounded to {short(rate)} mg/h (not the nearest step) to stay "
                      "inside the window")
     return DesignResult(name, "continuous", clearance, volume, regimens, target=target,
-                        notes=notes, salt_factor=salt_factor)
+                        notes=notes, salt_factor=salt_factor, state=state)
 
 
 @dataclass
@@ -517,7 +517,7 @@ def design_intermittent(
     if auc_24 is not None:
         target["auc_24"] = [auc_24.low, auc_24.high]
     return DesignResult(name, "intermittent", clearance, volume, regimens, target=target,
-                        notes=notes, warnings=warnings, salt_factor=salt_factor)
+                        notes=notes, warnings=warnings, salt_factor=salt_factor, state=state)
 
 
 def _intermittent_candidate(clearance, volume, infusion_time, tau, limits, aims, dose_step,
