@@ -144,6 +144,12 @@ def _design_from_options(args: argparse.Namespace):
     design = {k: getattr(args, k) for k in _DESIGN_OPTIONS if getattr(args, k) is not None}
     if args.window:
         design["window"] = list(args.window)
+    if args.auc_24 and len(args.auc_24) > 2:
+        raise PkcalcInputError(f"--auc-24 takes a value or LOW HIGH, got {len(args.auc_24)} "
+                               "values", item="command line", field="--auc-24",
+                               expected='"500 mg*h/L" or "400 mg*h/L" "600 mg*h/L"')
+    if args.auc_24:
+        design["auc_24"] = list(args.auc_24) if len(args.auc_24) == 2 else args.auc_24[0]
     if args.intervals:
         design["intervals"] = [x.strip() for x in args.intervals.split(",") if x.strip()]
     raw["design"] = design
@@ -170,7 +176,7 @@ def cmd_design(args: argparse.Namespace) -> int:
     from .schema import load_design_file
 
     quick = any(getattr(args, k) is not None for k in (*_DESIGN_OPTIONS, *_PARAM_OPTIONS,
-                                                        "window", "intervals"))
+                                                        "window", "intervals", "auc_24"))
     if args.scenario and quick:
         raise PkcalcInputError("give a scenario file or command-line parameters, not both",
                                expected="pkcalc design FILE.toml, or pkcalc design --clearance "
@@ -420,6 +426,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--plateau", metavar="Q", help="target plateau (continuous infusion)")
     p.add_argument("--window", nargs=2, metavar=("LOW", "HIGH"), help="acceptable plateau range")
     p.add_argument("--loading-time", metavar="Q", help="loading dose duration (default: bolus)")
+    p.add_argument("--auc-24", nargs="+", metavar="Q",
+                   help='steady-state AUC over 24 h: a value or LOW HIGH, e.g. "400 mg*h/L" '
+                        '"600 mg*h/L" (alone or with peak/trough limits)')
     for name in ("peak", "trough"):
         p.add_argument(f"--{name}", metavar="Q", help=f"target steady-state {name}")
         p.add_argument(f"--{name}-min", metavar="Q", help=f"lowest acceptable {name}")

@@ -378,3 +378,16 @@ def test_level_during_an_infusion_is_refused(run_cli, write):
     """
     r = run_cli("design", write("sz.toml", text))
     assert r.code == 2 and "during an infusion" in r.err and "peak_sample" in r.err
+
+
+@pytest.mark.parametrize(("args", "code", "phrase"), [
+    (("--infusion-time", "1 h", "--auc-24", "400 mg*h/L", "600 mg*h/L"), 0, "AUC24 target"),
+    (("--auc-24", "500 mg*h/L"), 0, "no AUC24 range stated"),
+    (("--auc-24", "500 mg/L"), 2, "--auc-24"),
+    (("--auc-24", "1 mg*h/L", "2 mg*h/L", "3 mg*h/L"), 2, "a value or LOW HIGH"),
+])
+def test_cli_auc_targets(run_cli, args, code, phrase):
+    r = run_cli("design", "--clearance", "4.5 L/h", "--volume", "50 L", *args)
+    assert r.code == code and phrase in (r.out + r.err)
+    if code == 0:
+        assert "meets target" in r.out

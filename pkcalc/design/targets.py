@@ -44,6 +44,18 @@ def _course(regimen: Regimen, clearance: float, volume: float, salt_factor: floa
     return t, model.concentration(t, start, amount, duration, clearance, volume)
 
 
+def _auc_range(auc_24: Limits | None, notes: list[str]) -> Limits | None:
+    """An AUC24 value (low = high) becomes value ±10 % (stated in the notes)."""
+    from ..predict import TARGET_RTOL
+
+    if auc_24 is None or auc_24.low is None or auc_24.low != auc_24.high:
+        return auc_24
+    out = Limits.around(auc_24.low, TARGET_RTOL)
+    notes.append(f"no AUC24 range stated: acceptance taken as the target ±{TARGET_RTOL:.0%} "
+                 f"({out.text('mg*h/L')})")
+    return out
+
+
 def _plateau_and_window(plateau, window, auc_24):
     """Plateau aim and window, from a plateau target and/or an AUC24 range (mg h/L).
 
@@ -127,6 +139,10 @@ def design_continuous(
     -------
     DesignResult
     """
+    range_notes: list[str] = []
+    if plateau is None and auc_24 is not None and auc_24.low == auc_24.high:
+        plateau = auc_24.low / 24.0  # AUC24 = 24 Css at steady state
+    auc_24 = _auc_range(auc_24, range_notes)
     plateau, window = _plateau_and_window(plateau, window, auc_24)
     k = clearance / volume
     exact_rate = rate_for_target(plateau, clearance, salt_factor)
@@ -150,6 +166,7 @@ def design_continuous(
     else:
         regimens, notes = _continuous_from_zero(checks, exact_rate, loading_time, dose_step,
                                                 k, within)
+    notes[:0] = range_notes
     if salt_factor != 1.0:
         notes.append(f"amounts and rates are of the product; salt factor S = {salt_factor:g}")
     if rate != round_to_step(exact_rate, rate_step):
@@ -453,9 +470,11 @@ def design_intermittent(
                      f"{DEFAULT_TARGET_TOLERANCE:.0%} ({trough_limits.text()})")
     peak_limits = peak_limits or Limits()
     trough_limits = trough_limits or Limits()
+    aim_auc_value = auc_24.low if auc_24 is not None and auc_24.low == auc_24.high else None
+    auc_24 = _auc_range(auc_24, notes)
     aim_peak = peak if peak is not None else _aim(peak_limits, high_side=True)
     aim_trough = trough if trough is not None else _aim(trough_limits, high_side=False)
-    aim_auc = _aim(auc_24, high_side=True) if auc_24 is not None else None
+    aim_auc = aim_auc_value or (_aim(auc_24, high_side=True) if auc_24 is not None else None)
     by_levels = aim_peak is not None and aim_trough is not None
     if not by_levels and aim_auc is None:
         raise ValueError("need a peak target or limit and a trough target or limit, or an "

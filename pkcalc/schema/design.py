@@ -238,7 +238,7 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
     if auc is not None:
         interval_opts["auc_24"] = auc
     if method == "continuous":
-        if plateau is None and auc is None:
+        if spec.plateau is None and spec.auc_24 is None:
             col.add("method 'continuous' needs a plateau or an AUC24 target", "design.plateau",
                     "plateau = '8 mg/L' or auc_24 = ['400 mg*h/L', '600 mg*h/L']")
         if _need(col, method, clearance=cl, volume=v):
