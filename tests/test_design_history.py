@@ -391,3 +391,39 @@ def test_cli_auc_targets(run_cli, args, code, phrase):
     assert r.code == code and phrase in (r.out + r.err)
     if code == 0:
         assert "meets target" in r.out
+
+
+def test_history_form_reduces_to_the_classical_sawchuk_zaske_at_steady_state():
+    # Sawchuk & Zaske 1976 (from memory): at steady state a pre-dose trough counts as drawn
+    # one interval later; after 40 doses the superposed history is at steady state to
+    # ~e^(-40 k tau), so both forms give the same k and V
+    from pkcalc.design import sawchuk_zaske
+
+    cl, v, tau, t_inf = 5.5, 30.0, 8.0, 1.0
+    doses = [DoseEvent(0.0, 800.0, t_inf, every=tau, count=40)]
+    ev = single(doses)
+    ref = 39 * tau
+    ct, cp = ode_course(ev, cl, v, [ref - 0.25, ref + 1.5])
+    classical = sawchuk_zaske(800.0, t_inf, tau, cp, 1.5, ct, -0.25)
+    res = adjust_peak_trough(None, t_inf, None, cp, ref + 1.5, ct, ref - 0.25,
+                             peak_limits=Limits(20, 30), trough_limits=Limits(5, 10),
+                             history=doses)
+    for key in ("elimination_rate", "volume"):
+        assert res.estimates[key] == pytest.approx(classical[key], rel=1e-6)
+        assert classical[key] == pytest.approx({"elimination_rate": cl / v, "volume": v}[key],
+                                               rel=1e-6)
+
+
+def test_chiou_with_a_history_equals_the_constant_infusion_form():
+    # Chiou et al. 1978 (from memory): with a recorded constant infusion the history form
+    # gives the same exact and Chiou clearances as the relative form
+    from pkcalc.design import adjust_two_levels
+
+    cl, v, r0 = 4.0, 48.0, 30.0
+    doses = [DoseEvent(0.0, r0 * 40, 40.0)]
+    c1, c2 = ode_course(single(doses), cl, v, [4.0, 16.0])
+    rel = adjust_two_levels(r0, 4.0, c1, 16.0, c2, v, 8.0)
+    hist = adjust_two_levels(None, 4.0, c1, 16.0, c2, v, 8.0, history=doses)
+    for key in ("clearance_exact", "clearance_chiou"):
+        assert hist.estimates[key] == pytest.approx(rel.estimates[key], rel=1e-9)
+    assert hist.estimates["clearance_exact"] == pytest.approx(cl, rel=1e-8)
