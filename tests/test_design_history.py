@@ -17,8 +17,13 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from pkcalc.design import Limits, adjust_map, adjust_peak_trough, design_intermittent
-from pkcalc.design.adjust import two_level_parameters
+from pkcalc.design import (
+    Limits,
+    adjust_map,
+    adjust_peak_trough,
+    design_intermittent,
+    two_level_parameters,
+)
 from pkcalc.design.projection import history_events
 from pkcalc.schema import DoseEvent
 from pkcalc.schema.fitopts import Prior

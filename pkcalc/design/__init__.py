@@ -25,10 +25,7 @@ from .adjust import (
     adjust_peak_trough,
     adjust_proportional,
     adjust_two_levels,
-    chiou_clearance,
-    exact_two_level_clearance,
     run_design,
-    sawchuk_zaske,
 )
 from .common import (
     DEFAULT_DOSE_STEP,
@@ -44,7 +41,15 @@ from .common import (
     rate_for_target,
     round_to_step,
 )
-from .targets import design_continuous, design_intermittent, exact_intermittent
+from .continuous import design_continuous
+from .intermittent import design_intermittent, exact_intermittent
+from .levels import (
+    chiou_clearance,
+    exact_two_level_clearance,
+    one_level_clearance,
+    sawchuk_zaske,
+    two_level_parameters,
+)
 
 __all__ = [
     "DEFAULT_DOSE_STEP",
@@ -66,8 +71,10 @@ __all__ = [
     "exact_two_level_clearance",
     "loading_dose_for_target",
     "loading_infusion_for_target",
+    "one_level_clearance",
     "rate_for_target",
     "round_to_step",
     "run_design",
     "sawchuk_zaske",
+    "two_level_parameters",
 ]

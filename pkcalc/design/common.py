@@ -82,6 +82,34 @@ def round_inside(ideal: float, lo: float, hi: float, step: float | None) -> floa
     return nearest
 
 
+def div_or(x: float | None, y: float, default: float = 0.0) -> float:
+    return default if x is None else x / y
+
+
+def aim_of(limits: Limits, high_side: bool) -> float | None:
+    """Design aim from limits: the geometric middle when both ends are given;
+    otherwise the one end stated (for a peak maximum and a trough minimum this
+    is the boundary that allows the longest interval)."""
+    lo, hi = limits.low, limits.high
+    if lo and hi:
+        return math.sqrt(lo * hi)
+    if high_side:
+        return hi if hi is not None else lo
+    return lo if lo is not None else hi
+
+
+def auc_range(auc_24: Limits | None, notes: list[str]) -> Limits | None:
+    """An AUC24 value (low = high) becomes value ±10 % (stated in the notes)."""
+    from ..predict import TARGET_RTOL
+
+    if auc_24 is None or auc_24.low is None or auc_24.low != auc_24.high:
+        return auc_24
+    out = Limits.around(auc_24.low, TARGET_RTOL)
+    notes.append(f"no AUC24 range stated: acceptance taken as the target ±{TARGET_RTOL:.0%} "
+                 f"({out.text('mg*h/L')})")
+    return out
+
+
 def rate_for_target(target, clearance, salt_factor=1.0):
     """Maintenance rate for a plateau: ``R0 = Css CL / S`` (mg/h of product).
 
