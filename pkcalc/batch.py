@@ -25,7 +25,6 @@ import itertools
 import math
 import os
 import sys
-import tempfile
 import time
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
@@ -610,10 +609,12 @@ class _Writer:
 
     def __init__(self, output: Path, fmt: str) -> None:
         self.output, self.fmt = output, fmt
+        from .files import clean_stale, temp_path
+
         output.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{output.name}.", suffix=".tmp", dir=output.parent)
-        os.close(fd)
-        self.tmp = Path(tmp)
+        clean_stale(output)  # temporary files of killed runs to the same path
+        self.tmp = temp_path(output)
+        self.tmp.touch(mode=0o600)
         self.first = True
         self.pq_writer = None
         self.handle = None
@@ -646,7 +647,7 @@ class _Writer:
             self.pq_writer.close()
         if self.handle is not None:
             self.handle.close()
-        from .report.base import _umask
+        from .files import _umask
 
         os.chmod(self.tmp, 0o666 & ~_umask())
         os.replace(self.tmp, self.output)

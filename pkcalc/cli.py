@@ -341,6 +341,14 @@ def demo_path(name: str = "demo.toml") -> Path:
 def cmd_demo(args: argparse.Namespace) -> int:
     """Predict, design, NCA, fit, population, verify and a batch on the shipped invented
     examples; one HTML report."""
+    from .files import unfinished
+
+    out = Path(args.out or "pkcalc-demo")
+    with unfinished(out):
+        return _demo(out, args)
+
+
+def _demo(out: Path, args: argparse.Namespace) -> int:
     from .batch import BatchOptions
     from .runner import (
         run_batch_command,
@@ -356,7 +364,6 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from .schema import load_design_file, load_study_file, nca_options
     from .schema.fitopts import fit_options, population_options
 
-    out = Path(args.out or "pkcalc-demo")
     runs = [run_predict(demo_path("demo.toml"), colour=_colour())]
     design_file = demo_path("demo-design.toml")
     sfile = load_design_file(design_file)
@@ -538,21 +545,70 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+_INPUT_ARGS = ("scenario", "study", "levels", "doses", "subjects", "cases", "input", "prior")
+
+
+def _outputs(args: argparse.Namespace):
+    """The output paths the command was given (see :func:`pkcalc.files.check_outputs`)."""
+    from .files import Output
+
+    outs = []
+    out = getattr(args, "out", None)
+    if out is None and args.command == "demo":
+        out = "pkcalc-demo"
+    if out is not None:
+        kind = "file" if args.command == "batch" else "folder"
+        outs.append(Output(Path(out), kind, "--out"))
+        if kind == "file" and Path(out).name in ("CAUTION.txt", "INCOMPLETE.txt") \
+                and not getattr(args, "plots", None):
+            raise PkcalcInputError("pkcalc writes its CAUTION.txt beside the output table: "
+                                   "choose another name", file=str(out), field="--out",
+                                   expected="a .csv or .parquet file name")
+    for option, kind in (("report", "file"), ("junit", "file"), ("plots", "folder")):
+        value = getattr(args, option, None)
+        if value is not None:
+            outs.append(Output(Path(value), kind, "--" + option))
+    return outs
+
+
+def _interrupted(signum, _frame):
+    """SIGTERM ends the run like Ctrl-C: temporary files are removed on the way out."""
+    raise KeyboardInterrupt
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``pkcalc`` console script."""
+    import signal
+    import warnings
+
+    from .files import check_outputs
+
     parser = build_parser()
     args = parser.parse_args(argv)
     args.argv = list(sys.argv[1:] if argv is None else argv)
+    previous = None
+    if argv is None:  # the console script: a SIGTERM cleans up like Ctrl-C
+        previous = signal.signal(signal.SIGTERM, _interrupted)
     try:
-        return args.func(args)
+        with warnings.catch_warnings():
+            # results are checked for finite values where they are made; numerical
+            # warnings from the libraries are not messages for the user
+            warnings.simplefilter("ignore", RuntimeWarning)
+            check_outputs(_outputs(args), [getattr(args, k, None) for k in _INPUT_ARGS])
+            return args.func(args)
     except PkcalcInputError as exc:
         for problem in exc.problems:
             print(f"pkcalc {args.command}: error: {problem}", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
+        print(f"pkcalc {args.command}: interrupted; files being written were removed",
+              file=sys.stderr)
         return 130
     except BrokenPipeError:
         return EXIT_OK
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
 
 
 if __name__ == "__main__":  # pragma: no cover

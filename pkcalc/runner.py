@@ -103,11 +103,14 @@ class Run:
 
 def write_outputs(run: Run, out_dir: str | Path) -> list[Path]:
     """``CAUTION.txt`` and the command's files, atomically; never over an input."""
+    from .files import unfinished
+
     out = Path(out_dir)
     check_not_input([out / "CAUTION.txt"], run.inputs)
-    written = [report.write_caution_file(out)]
-    if run.file_writer is not None:
-        written += run.file_writer(out, run.pngs)
+    with unfinished(out):
+        written = [report.write_caution_file(out)]
+        if run.file_writer is not None:
+            written += run.file_writer(out, run.pngs)
     return written
 
 

@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
-import tempfile
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any
@@ -151,27 +149,11 @@ def failures_text(failures) -> str:
 
 
 # --------------------------------------------------------------------------- files
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
-
-
 def write_atomic(path: str | Path, data: str | bytes) -> Path:
-    """Write a file atomically: a temporary file in the same folder, then rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    mode = "wb" if isinstance(data, bytes) else "w"
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, mode, **({} if mode == "wb" else {"encoding": "utf-8"})) as fh:
-            fh.write(data)
-        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual permissions
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
+    """Write a file atomically (see :func:`pkcalc.files.write_atomic`)."""
+    from ..files import write_atomic as _write
+
+    return _write(path, data)
 
 
 def write_caution_file(out_dir: str | Path) -> Path:
