@@ -565,19 +565,14 @@ def _detect_format(path: Path) -> str:
 
 
 def _csv_chunks(path: Path, chunk_rows: int) -> tuple[list[str], Iterator[pd.DataFrame]]:
-    if path.stat().st_size == 0:
-        raise PkcalcInputError("the file is empty (0 bytes)", file=str(path),
-                               expected="a CSV table with a header row")
-    try:
-        header = pd.read_csv(path, nrows=0).columns.tolist()
-        known = {h for h in header if parse_header(h)[0].strip().lower() in INPUT_KINDS}
-        # unknown columns stay text exactly as written (IDs keep their leading zeros)
-        reader = pd.read_csv(path, chunksize=chunk_rows, skipinitialspace=True,
+    from .tables import read_csv_chunks, read_header
+
+    header = read_header(path)
+    known = {h for h in header if parse_header(h)[0].strip().lower() in INPUT_KINDS}
+    # unknown columns stay text exactly as written (IDs keep their leading zeros)
+    reader = read_csv_chunks(path, chunk_rows, skipinitialspace=True,
                              dtype={h: str for h in header if h not in known},
                              keep_default_na=False, na_values=[""])
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise PkcalcInputError(f"not a readable CSV table ({exc.__class__.__name__})",
-                               file=str(path)) from None
     return header, reader
 
 
@@ -714,8 +709,9 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
     BatchSummary
     """
     src, dst = Path(input_path), Path(output_path)
-    if not src.is_file():
-        raise PkcalcInputError("file not found", file=str(src))
+    from .tables import check_input_file
+
+    check_input_file(src, "a .csv, .parquet or .toml table")
     if dst.exists() and dst.resolve() == src.resolve():
         raise PkcalcInputError("refusing to overwrite the input file", file=str(dst),
                                expected="an output path other than the input")

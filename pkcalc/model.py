@@ -53,6 +53,10 @@ LN2 = float(np.log(2.0))
 #: handed to :func:`concentration` and :func:`concentration_and_gradient` carry it.
 INITIAL_LEVEL = -1.0
 
+#: Times x events evaluated at once by :func:`concentration` for one long history
+#: (larger problems are done in blocks of times, so memory stays bounded).
+CHUNK_CELLS = 1_000_000
+
 
 def _infused_fraction(k, u, duration):
     """``(1 - exp(-k u)) / (k d)`` for infusions, 1 for boluses (``d = 0``).
@@ -244,6 +248,15 @@ def concentration(t, start, amount, duration, clearance, volume):
     >>> round(float(c[0]), 3)  # 30 mg/h for 8 h, CL 3 L/h, t½ 8 h: half of 10 mg/L
     5.0
     """
+    t = np.asarray(t, dtype=float)
+    n_events = np.shape(start)[-1] if np.ndim(start) else 1
+    if t.ndim == 1 and np.ndim(start) == 1 and np.ndim(clearance) == 0 \
+            and t.size * n_events > CHUNK_CELLS:
+        # one long history: evaluate in blocks of times so memory stays bounded
+        step = max(1, CHUNK_CELLS // n_events)
+        return np.concatenate([concentration(t[i:i + step], start, amount, duration,
+                                             clearance, volume)
+                               for i in range(0, t.size, step)])
     u, w, active = event_geometry(t, start, duration)
     return _sum_events(_event_terms(u, w, active, amount, duration, clearance, volume)[0])
 

@@ -145,6 +145,20 @@ def _events_span(doses: Sequence[DoseEvent]) -> float:
     return max((d.end for d in doses), default=0.0)
 
 
+#: Dose boundaries added to grids at most (the first and the last doses' ones).
+MAX_MARKS = 4_000
+
+
+def _marks(doses: Sequence[DoseEvent]) -> np.ndarray:
+    """Starts and ends of the doses, for grids: all of them, or for very long
+    histories those of the first 500 and the last 1,500 doses."""
+    start, _, duration = expand_events(doses)
+    if start.size * 2 > MAX_MARKS:
+        keep = np.r_[0:500, start.size - 1500:start.size]
+        start, duration = start[keep], duration[keep]
+    return np.concatenate([start, start + duration])
+
+
 def default_times(doses: Sequence[DoseEvent], half_life: float,
                   points: int = DEFAULT_POINTS) -> np.ndarray:
     """Automatic times: 0 to the end of dosing plus five half-lives, with every dose
@@ -153,8 +167,7 @@ def default_times(doses: Sequence[DoseEvent], half_life: float,
     Five half-lives is where about 97 % of a dose has been eliminated (common practice).
     """
     horizon = _events_span(doses) + 5.0 * half_life
-    start, _, duration = expand_events(doses)
-    marks = np.concatenate([start, start + duration])
+    marks = _marks(doses)
     return np.unique(np.concatenate([np.linspace(0.0, horizon, points),
                                      marks[(marks >= 0) & (marks <= horizon)]]))
 
@@ -164,9 +177,11 @@ def plot_grid(times: np.ndarray, doses: Sequence[DoseEvent], points: int = 1201)
     point just before each bolus so that its jump is drawn vertically."""
     t_max = float(times.max()) if times.size else 0.0
     start, _, duration = expand_events(doses)
-    marks = np.concatenate([start, start + duration])
+    marks = _marks(doses)
     eps = 1e-9 * max(t_max, 1.0)
-    before_bolus = start[duration == 0] - eps
+    before_bolus = start[duration == 0][:MAX_MARKS // 2] - eps
+    if times.size > 20_000:  # a drawing needs no more points than that
+        times = times[:: times.size // 20_000 + 1]
     grid = np.concatenate([np.linspace(0.0, t_max, points), times, marks, before_bolus])
     grid = grid[(grid >= 0) & (grid <= t_max)]
     return np.unique(grid)
@@ -309,8 +324,7 @@ def predict_scenario(scenario: ScenarioInput, fractions: Sequence[float] = FRACT
 def _highest(times, doses, events, cl, v) -> tuple[float, float]:
     """Highest level at the requested times and at every event boundary (both sides):
     between boundaries a one-compartment course is monotone, so this is exact."""
-    start, _, duration = expand_events(doses)
-    marks = np.concatenate([times, start, start + duration])
+    marks = np.concatenate([times, _marks(doses)])
     marks = marks[(marks >= times.min()) & (marks <= times.max())] if times.size else marks
     eps = 1e-9 * max(1.0, float(marks.max()) if marks.size else 1.0)
     grid = np.concatenate([marks, np.maximum(marks - eps, 0.0)])

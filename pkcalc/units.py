@@ -22,6 +22,7 @@ A per-kg value is multiplied by the subject's weight, which must then be given.
 
 from __future__ import annotations
 
+import math
 import re
 from dataclasses import dataclass
 from functools import lru_cache
@@ -218,6 +219,23 @@ def parse_number_and_unit(text: object, *, field: str | None = None) -> tuple[fl
     return value, unit
 
 
+#: Canonical magnitudes pkcalc computes with: zero, or 1e-100 to 1e100.  Far beyond any
+#: physical value, and far enough inside float64 (IEEE 754: about 2.2e-308 to 1.8e308)
+#: that products and quotients of a few of them cannot overflow or underflow.
+NUMERIC_RANGE = (1e-100, 1e100)
+
+
+def out_of_range(value: float) -> bool:
+    """True for a value that is not finite, or nonzero outside :data:`NUMERIC_RANGE`."""
+    a = abs(value)
+    return not math.isfinite(value) or (a != 0 and not NUMERIC_RANGE[0] <= a <= NUMERIC_RANGE[1])
+
+
+def range_message(value: float, unit: str) -> str:
+    return (f"{value:.6g} {unit} is outside the range pkcalc computes in (zero, or "
+            f"{NUMERIC_RANGE[0]:g} to {NUMERIC_RANGE[1]:g} in {unit})")
+
+
 def to_canonical(
     text: object,
     kind: str,
@@ -266,6 +284,9 @@ def to_canonical(
                 expected="a 'weight' such as '70 kg'",
             )
         result *= weight
+    if out_of_range(result):
+        raise PkcalcInputError(range_message(result, CANONICAL[kind]), field=field,
+                               expected=f"{KINDS[kind]} of a realistic size")
     return result
 
 

@@ -635,10 +635,13 @@ def _covariances(batch: Batch, obj: np.ndarray, hess: np.ndarray, kind: str):
         info = hess / 2
     d = np.sqrt(np.maximum(np.diagonal(info, axis1=1, axis2=2), 1e-300))
     corr = info / (d[:, :, None] * d[:, None, :])
+    finite = np.all(np.isfinite(corr), axis=(1, 2))
+    # a row whose information overflowed (extreme levels) is simply not identifiable
+    corr = np.where(finite[:, None, None], corr, np.eye(corr.shape[1])[None])
     eig_all, vec = np.linalg.eigh(corr)
     eig_cv = np.linalg.eigvalsh(corr[:, :2, :2])
     identifiable = (eig_cv.min(axis=1) >= IDENTIFIABILITY_EIG) & (eig_all.min(axis=1) > 0)
-    identifiable &= np.all(np.isfinite(info), axis=(1, 2))
+    identifiable &= np.all(np.isfinite(info), axis=(1, 2)) & finite
     with np.errstate(divide="ignore", invalid="ignore"):
         inv_corr = np.einsum("bij,bj,bkj->bik", vec, 1 / eig_all, vec)
         cov = inv_corr / (d[:, :, None] * d[:, None, :]) * scale[:, None, None]

@@ -11,11 +11,21 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    PrivateAttr,
+    StrictFloat,
+    StrictInt,
+    StrictStr,
+    ValidationError,
+    model_validator,
+)
 
 from .. import model
 from ..errors import PkcalcInputError, Problem
-from ..units import CANONICAL, display_factor, to_canonical
+from ..units import CANONICAL, display_factor, out_of_range, range_message, to_canonical
 
 #: The five one-compartment parameters and the kind of quantity of each.
 PARAMETER_NAMES: dict[str, str] = {
@@ -29,7 +39,9 @@ PARAMETER_NAMES: dict[str, str] = {
 #: Relative tolerance for an over-determined parameter set (three or more given).
 AGREEMENT_RTOL = 1e-6
 
-QuantityText = str | int | float
+#: A quantity as written: text with its unit (a bare number is refused later with a
+#: message that asks for the unit).  Strict: ``true`` is not the number 1.
+QuantityText = StrictStr | StrictInt | StrictFloat
 
 
 # --------------------------------------------------------------------------- canonical results
@@ -196,27 +208,91 @@ def resolve_parameters(values: dict[str, float], col: _Collector) -> tuple[float
             k_like[0], "values that agree to 1e-6 relative, or only two parameters",
         )
         return None
-    cl_out, v_out = model.resolve_clearance_volume(
-        clearance=cl, volume=v, elimination_rate=first_k
-    )
+    with np.errstate(all="ignore"):
+        cl_out, v_out = model.resolve_clearance_volume(
+            clearance=cl, volume=v, elimination_rate=first_k
+        )
+        derived = {"clearance": (float(cl_out), "L/h"), "volume": (float(v_out), "L"),
+                   "elimination_rate": (float(cl_out) / float(v_out), "1/h")}
+    for name, (value, unit) in derived.items():
+        if out_of_range(value) or value <= 0:
+            col.add(f"the parameters given imply {name} = {range_message(value, unit)}",
+                    name if name in given else next(iter(given)),
+                    "parameters of a realistic size")
+            return None
     return float(cl_out), float(v_out)
 
 
+_TYPE_WORDS = {
+    "list_type": "must be a list [ ... ]",
+    "dict_type": "must be a table { ... }",
+    "model_type": "must be a table { ... }",
+    "model_attributes_type": "must be a table { ... }",
+    "int_type": "must be a whole number",
+    "int_parsing": "must be a whole number",
+    "int_from_float": "must be a whole number",
+    "bool_type": "must be true or false",
+    "bool_parsing": "must be true or false",
+}
+_QUANTITY_TYPES = {"string_type", "int_type", "float_type"}
+
+
+def _user_loc(loc: tuple, prefix: str) -> str:
+    """A field path in the user's words: list positions as ``[i]``, no validator tags
+    (``str``, ``list[union[...]]``, model class names)."""
+    parts = []
+    for p in loc:
+        if isinstance(p, int):
+            parts.append(f"[{p}]")
+        elif "[" in p or "(" in p or p in ("str", "int", "float", "bool", "list", "dict") \
+                or p[:1].isupper():
+            continue
+        else:
+            parts.append(p)
+    return (prefix + ".".join(parts)).replace(".[", "[")
+
+
+def _shown(value: Any) -> str:
+    text = repr(value) if not isinstance(value, bool) else str(value).lower()
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
 def validation_problems(exc: ValidationError, *, prefix: str = "") -> list[Problem]:
-    """pydantic errors -> pkcalc problems (field path, message); our own errors kept."""
+    """pydantic errors -> pkcalc problems in the user's words (field path, message);
+    our own errors kept.  The alternatives of one field are merged into one problem."""
     out: list[Problem] = []
+    by_loc: dict[str, list[dict]] = {}
     for err in exc.errors():
         inner = (err.get("ctx") or {}).get("error")
         if isinstance(inner, PkcalcInputError):
             out.extend(inner.problems)
             continue
-        loc = prefix + ".".join(str(p) if not isinstance(p, int) else f"[{p}]" for p in err["loc"])
-        loc = loc.replace(".[", "[")
-        msg = err["msg"]
-        if err["type"] == "extra_forbidden":
-            msg = "unknown key (check the spelling; see DESIGN.md §5 for the accepted keys)"
-        elif err["type"] == "missing":
+        by_loc.setdefault(_user_loc(err["loc"], prefix), []).append(err)
+    # a union field: keep the deepest complaint ("times[0]: ...") over the alternative's
+    # generic one ("times: must be a table")
+    for loc in [x for x in by_loc if any(y != x and (y.startswith(x + "[") or
+                                                     y.startswith(x + "."))
+                                         for y in by_loc)]:
+        if {e["type"] for e in by_loc[loc]} <= {"model_type", "dict_type", "list_type",
+                                                  "model_attributes_type"}:
+            del by_loc[loc]
+    for loc, errs in by_loc.items():
+        types = {e["type"] for e in errs}
+        got = _shown(errs[0].get("input"))
+        if "extra_forbidden" in types:
+            msg = "unknown key (check the spelling; see docs/formats.md for the accepted keys)"
+        elif "missing" in types:
             msg = "is required"
+        elif types <= _QUANTITY_TYPES and len(errs) > 1:
+            msg = f"must be a quantity written with its unit, such as '4 L/h' (got {got})"
+        elif types == {"string_type"}:
+            msg = f"must be text in quotes (got {got})"
+        elif len(types) == 1 and next(iter(types)) in _TYPE_WORDS:
+            msg = f"{_TYPE_WORDS[next(iter(types))]} (got {got})"
+        elif types & {"list_type", "dict_type", "model_type"} and len(errs) > 1:
+            msg = f"must be a list [ ... ] or a table {{ from, to, step }} (got {got})"
+        else:
+            msg = errs[0]["msg"].replace("Input should be", "must be") + f" (got {got})"
         out.append(Problem(msg, field=loc or None))
     return out
 
@@ -351,10 +427,13 @@ class ScenarioFile:
 def read_toml(path: str | Path) -> dict[str, Any]:
     """Read a TOML file; unreadable, empty or non-TOML files raise PkcalcInputError."""
     p = Path(path)
+    if p.is_dir():
+        raise PkcalcInputError("is a folder, not a file", file=str(path),
+                               expected="a TOML file")
     if not p.is_file():
         raise PkcalcInputError("file not found", file=str(path))
     try:
-        data = tomllib.loads(p.read_text(encoding="utf-8"))
+        data = tomllib.loads(p.read_text(encoding="utf-8-sig"))  # a BOM is not an error
     except UnicodeDecodeError:
         raise PkcalcInputError("not a text file", file=str(path), expected="a TOML file") from None
     except tomllib.TOMLDecodeError as exc:

@@ -188,8 +188,11 @@ def _sample(col: _Collector, sample: SampleSpec | None, where: str):
 
 def _need(col: _Collector, method: str, **values: Any) -> bool:
     missing = [k for k, v in values.items() if v is None]
+    reported = {p.field for p in col.problems}
     for k in missing:
-        col.add(f"method '{method}' needs '{k}'", k if "." in k else f"design.{k}")
+        field = k if k in ("clearance", "volume") or "." in k else f"design.{k}"
+        if field not in reported and k not in reported:  # not again when it failed to parse
+            col.add(f"method '{method}' needs '{k}'", field)
     return not missing
 
 

@@ -8,7 +8,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from pydantic import Field, model_validator
+from pydantic import Field, StrictInt, model_validator
 
 from .base import (
     DoseEvent,
@@ -33,7 +33,7 @@ class DoseSpec(_Lenient):
     rate: QuantityText | None = None
     duration: QuantityText | None = None
     every: QuantityText | None = None
-    count: int | None = None
+    count: StrictInt | None = None
 
     def to_event(self, col: _Collector, where: str) -> DoseEvent | None:
         """Canonical event; problems go to ``col`` with field names under ``where``."""
@@ -41,6 +41,11 @@ class DoseSpec(_Lenient):
         self.unknown_keys(col, f"{where}.")
         if self.count is not None and self.count < 1:
             col.add(f"count must be 1 or more, got {self.count}", f"{where}.count")
+        if self.count is not None and self.count > MAX_DOSE_EVENTS:
+            col.add(f"count = {self.count} is more than the {MAX_DOSE_EVENTS} doses pkcalc "
+                    "expands per scenario", f"{where}.count",
+                    f"at most {MAX_DOSE_EVENTS} doses; the steady state is reported from "
+                    "any count of 2 or more (closed form)")
         start = col.q(self.start, "time", f"{where}.start", nonnegative=True)
         amount = col.q(self.amount, "amount", f"{where}.amount", nonnegative=True)
         rate = col.q(self.rate, "rate", f"{where}.rate", nonnegative=True)
@@ -113,6 +118,10 @@ class TargetSpec(_Lenient):
 
 
 MAX_TIMES = 1_000_000
+#: Most single doses one scenario may expand to (repeats included), and the most
+#: times x doses one prediction evaluates; both keep memory and time bounded.
+MAX_DOSE_EVENTS = 5_000
+MAX_WORK = 100_000_000
 
 
 def _resolve_times(spec: list[QuantityText] | TimeRange | None, col: _Collector):
@@ -174,6 +183,15 @@ class ScenarioSpec(_WithParameters):
             if ev is not None:
                 doses.append(ev)
         times = _resolve_times(self.times, col)
+        n_events = sum(d.count for d in doses)
+        if n_events > MAX_DOSE_EVENTS:
+            col.add(f"the doses expand to {n_events} single doses, more than the "
+                    f"{MAX_DOSE_EVENTS} pkcalc evaluates per scenario", "doses",
+                    f"at most {MAX_DOSE_EVENTS} doses in all")
+        elif times is not None and times.size * max(n_events, 1) > MAX_WORK:
+            col.add(f"{times.size} times x {n_events} doses is more than the "
+                    f"{MAX_WORK:,} evaluations pkcalc does per scenario", "times",
+                    "fewer times (a larger step) or fewer doses")
         target = self.target.to_target(col) if self.target is not None else None
         initial = col.q(self.initial_concentration, "concentration", "initial_concentration",
                         nonnegative=True)

@@ -122,18 +122,9 @@ class Study:
 # --------------------------------------------------------------------------- tables
 def read_table(path: str | Path) -> pd.DataFrame:
     """Read a CSV table as text (numbers are converted per column later)."""
-    p = Path(path)
-    if not p.is_file():
-        raise PkcalcInputError("file not found", file=str(path))
-    if p.stat().st_size == 0:
-        raise PkcalcInputError("the file is empty (0 bytes)", file=str(path),
-                               expected="a CSV table with a header row")
-    try:
-        frame = pd.read_csv(p, dtype=str, keep_default_na=False, skipinitialspace=True)
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise PkcalcInputError(f"not a readable CSV table ({exc.__class__.__name__}: "
-                               f"{str(exc).splitlines()[0] if str(exc) else ''})",
-                               file=str(path)) from None
+    from ..tables import read_csv
+
+    frame = read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True)
     if frame.empty:
         raise PkcalcInputError("the table has a header but no rows", file=str(path))
     return frame

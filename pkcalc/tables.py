@@ -1,0 +1,122 @@
+"""Reading CSV tables the same way everywhere (study tables, batch tables).
+
+One set of rules, one set of messages:
+
+- the path must be a file (a folder, a missing or an empty file is refused);
+- text is UTF-8, with or without a byte-order mark; anything else is refused with
+  the position of the first byte that is not UTF-8;
+- every column name appears once (pandas would silently rename a duplicate);
+- a row with more cells than the header is refused with its line number (pandas
+  would otherwise take the first column as an index and shift every column).
+"""
+
+from __future__ import annotations
+
+import csv
+import warnings
+from collections.abc import Iterator
+from pathlib import Path
+
+from .errors import PkcalcInputError, Problem
+
+__all__ = ["check_input_file", "read_csv", "read_csv_chunks", "read_header"]
+
+ENCODING = "utf-8-sig"
+
+
+def check_input_file(path: str | Path, what: str = "a CSV table with a header row") -> Path:
+    """The path as a :class:`~pathlib.Path` when it is a non-empty file."""
+    p = Path(path)
+    if p.is_dir():
+        raise PkcalcInputError("is a folder, not a file", file=str(path), expected=what)
+    if not p.is_file():
+        raise PkcalcInputError("file not found", file=str(path), expected=what)
+    if p.stat().st_size == 0:
+        raise PkcalcInputError("the file is empty (0 bytes)", file=str(path), expected=what)
+    return p
+
+
+def _not_utf8(path: str | Path, exc: UnicodeDecodeError) -> PkcalcInputError:
+    return PkcalcInputError(
+        f"is not UTF-8 text (byte 0x{exc.object[exc.start]:02x} at position {exc.start} of "
+        "the block read)", file=str(path), expected="a table saved as UTF-8 (with or without "
+        "a byte-order mark)")
+
+
+def read_header(path: str | Path) -> list[str]:
+    """Column names of the first line, checked for duplicates and encoding."""
+    p = check_input_file(path)
+    try:
+        with open(p, encoding=ENCODING, newline="") as fh:
+            header = next(csv.reader(fh), [])
+    except UnicodeDecodeError as exc:
+        raise _not_utf8(path, exc) from None
+    except csv.Error as exc:
+        raise PkcalcInputError(f"not a readable CSV header ({exc})", file=str(path)) from None
+    names = [h.strip() for h in header]
+    if not any(names):
+        raise PkcalcInputError("the first line has no column names", file=str(path),
+                               expected="a CSV table with a header row")
+    seen: set[str] = set()
+    problems = []
+    for name in names:
+        key = name.lower()
+        if key in seen:
+            problems.append(Problem(f"column '{name}' appears twice in the header",
+                                    file=str(path), field=name,
+                                    expected="each column once"))
+        seen.add(key)
+    if problems:
+        raise PkcalcInputError(problems)
+    return names
+
+
+def _translate(path: str | Path, exc: BaseException, n_columns: int) -> PkcalcInputError:
+    import pandas as pd
+
+    if isinstance(exc, UnicodeDecodeError):
+        return _not_utf8(path, exc)
+    if isinstance(exc, pd.errors.ParserWarning):
+        return PkcalcInputError(f"a row has more cells than the header's {n_columns} "
+                                "columns", file=str(path),
+                                expected="as many cells in every row as column names")
+    text = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+    if "Expected" in text and "fields" in text:
+        return PkcalcInputError(f"a row has more cells than the header ({text})",
+                                file=str(path),
+                                expected="as many cells in every row as column names")
+    return PkcalcInputError(f"not a readable CSV table ({text})", file=str(path))
+
+
+def read_csv(path: str | Path, **kwargs):
+    """The whole table as a DataFrame, under the rules of this module."""
+    import pandas as pd
+
+    header = read_header(path)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", pd.errors.ParserWarning)
+            return pd.read_csv(path, encoding=ENCODING, index_col=False, **kwargs)
+    except (pd.errors.ParserError, pd.errors.ParserWarning, pd.errors.EmptyDataError,
+            UnicodeDecodeError, ValueError) as exc:
+        raise _translate(path, exc, len(header)) from None
+
+
+def read_csv_chunks(path: str | Path, chunksize: int, **kwargs) -> Iterator:
+    """The table in chunks of ``chunksize`` rows; problems surface as
+    :class:`PkcalcInputError` when the chunk holding them is read."""
+    import pandas as pd
+
+    header = read_header(path)
+
+    def gen():
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("error", pd.errors.ParserWarning)
+                reader = pd.read_csv(path, encoding=ENCODING, index_col=False,
+                                     chunksize=chunksize, **kwargs)
+                yield from reader
+        except (pd.errors.ParserError, pd.errors.ParserWarning, pd.errors.EmptyDataError,
+                UnicodeDecodeError, ValueError) as exc:
+            raise _translate(path, exc, len(header)) from None
+    return gen()
