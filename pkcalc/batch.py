@@ -35,7 +35,7 @@ import pandas as pd
 
 from . import model
 from .errors import PkcalcInputError, Problem
-from .units import KINDS, parse_header, parse_unit
+from .units import KINDS, NUMERIC_RANGE, parse_header, parse_unit
 
 __all__ = [
     "BatchOptions",
@@ -60,6 +60,10 @@ FRACTIONS = (0.5, 0.9, 0.95, 0.99)
 DEFAULT_CHUNK_ROWS = 200_000
 #: Rows x virtual subjects evaluated at once in variability runs (memory bound).
 POPULATION_BLOCK = 2_000_000
+#: Most virtual subjects per row (memory: a few arrays of this length per metric).
+MAX_POPULATION = 1_000_000
+#: Most rows per chunk (memory grows with it; the default is 200,000).
+MAX_CHUNK_ROWS = 10_000_000
 #: Without a window, the fraction "inside" is counted within this of the target.
 TARGET_BAND = 0.20
 
@@ -198,6 +202,14 @@ def _numeric(frame: pd.DataFrame, header: str) -> tuple[np.ndarray, np.ndarray]:
     return values, np.isnan(values) & ~empty
 
 
+def _out_of_range(x: np.ndarray) -> np.ndarray:
+    """Not NaN, and infinite or nonzero outside :data:`pkcalc.units.NUMERIC_RANGE`."""
+    a = np.abs(np.asarray(x, dtype=float))
+    with np.errstate(invalid="ignore"):
+        return ~np.isnan(a) & (np.isinf(a) | ((a != 0) & ((a < NUMERIC_RANGE[0]) |
+                                                          (a > NUMERIC_RANGE[1]))))
+
+
 class _Errors:
     """Per-row error text, built with whole-column masks."""
 
@@ -247,7 +259,11 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
         raw, text = _numeric(frame, header)
         parsed[header] = raw
         err.add(text, f"'{header}' holds text (units belong in the header)")
-        value = raw * unit.factor
+        with np.errstate(over="ignore", invalid="ignore"):
+            value = raw * unit.factor
+        err.add(_out_of_range(value), f"'{header}' is outside the range pkcalc computes in "
+                                      f"(zero, or {NUMERIC_RANGE[0]:g} to {NUMERIC_RANGE[1]:g} "
+                                      "in canonical units)")
         if unit.per_kg:
             value = value * weight
             err.add(np.isnan(weight) & ~np.isnan(raw), f"'{header}' is per kg but the weight "
@@ -274,6 +290,9 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
             err.add(~np.isclose(cl / v, k, rtol=1e-6, atol=0) & ~np.isnan(k),
                     "clearance / volume disagrees with the elimination rate given")
         cl, v = model.resolve_clearance_volume(clearance=cl, volume=v, elimination_rate=k)
+        for name, x in (("clearance", cl), ("volume", v), ("elimination rate", cl / v)):
+            err.add(_out_of_range(x) & ~err.bad, f"the parameters imply a {name} outside the "
+                                                 "range pkcalc computes in")
     # regimen
     rate, dose = get("rate"), get("dose")
     duration, interval = get("duration"), get("interval")
@@ -352,6 +371,13 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
         if options.population:
             out.update(_variability(cl, v, reg, mean_rate, loading, lo, hi, options,
                                     spec.intermittent))
+    overflow = np.zeros(n, bool)
+    for col in out.values():
+        if col.dtype != bool:
+            inf = np.isinf(np.asarray(col, dtype=float))
+            overflow |= inf if inf.ndim == 1 else inf.any(axis=tuple(range(1, inf.ndim)))
+    err.add(overflow & ~bad, "a result overflowed (beyond float64): check the units")
+    bad = err.bad
     result = frame.copy()
     for header, raw in parsed.items():  # recognised inputs as parsed numbers (engine-neutral)
         result[header] = raw

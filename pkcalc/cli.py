@@ -97,10 +97,21 @@ def _emit(text: str) -> None:
     sys.stdout.write(text if text.endswith("\n") else text + "\n")
 
 
+def _problems_to_stderr(run, command: str) -> None:
+    """Items that failed (exit 1, or 2 for unusable verify cases) are also named on
+    stderr, where problems belong; the rest of the run is on stdout."""
+    from .errors import Problem
+
+    for failure in (run.doc.get("failures") or []) + (run.doc.get("errors") or []):
+        for p in failure.get("problems", []):
+            print(f"pkcalc {command}: error: {Problem(**p)}", file=sys.stderr)
+
+
 def _finish(run, args: argparse.Namespace) -> int:
     """Print the run (JSON or text), write --out files and --report, return its exit code."""
     from .runner import write_outputs, write_report
 
+    _problems_to_stderr(run, args.command)
     out = getattr(args, "out", None)
     report_path = getattr(args, "report", None)
     if getattr(args, "json", False):
@@ -294,8 +305,16 @@ def cmd_batch(args: argparse.Namespace) -> int:
 
     at = tuple(to_canonical(x.strip(), "time", field="--at")
                for x in (args.at or "").split(",") if x.strip())
-    if args.population is not None and args.population < 1:
-        raise PkcalcInputError("must be at least 1", field="--population")
+    from .batch import MAX_CHUNK_ROWS, MAX_POPULATION
+
+    if args.population is not None and not 1 <= args.population <= MAX_POPULATION:
+        raise PkcalcInputError(f"must be from 1 to {MAX_POPULATION:,} virtual subjects per row",
+                               field="--population", expected="e.g. 10000")
+    if args.chunk_rows is not None and not 1 <= args.chunk_rows <= MAX_CHUNK_ROWS:
+        raise PkcalcInputError(f"must be from 1 to {MAX_CHUNK_ROWS:,} rows",
+                               field="--chunk-rows", expected="e.g. 200000 (the default)")
+    if args.seed is not None and not 0 <= args.seed < 2**32:
+        raise PkcalcInputError("must be a whole number from 0 to 4294967295", field="--seed")
     if args.correlation is not None and not -1 < args.correlation < 1:
         raise PkcalcInputError("must be in (-1, 1)", field="--correlation")
     options = BatchOptions(at=at, population=args.population or 0, seed=args.seed or 1,

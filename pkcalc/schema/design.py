@@ -219,6 +219,9 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
         if value is not None:
             opts[key] = value
     if spec.max_loading_ratio is not None:
+        if not 0 < spec.max_loading_ratio <= 1000:
+            col.add(f"max_loading_ratio must be a positive number of maintenance doses, got "
+                    f"{spec.max_loading_ratio:g}", "design.max_loading_ratio", "e.g. 3")
         opts["max_loading_ratio"] = spec.max_loading_ratio
     plateau = q(spec.plateau, "concentration", "design.plateau", positive=True)
     peak, peak_limits = _limits_pair(col, spec, "peak")

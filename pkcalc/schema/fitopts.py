@@ -262,7 +262,7 @@ def fit_options(raw: dict[str, Any] | None = None, *, base: Path | None = None,
             problems.append(Problem("a prior (MAP) uses the prior's error model; drop the "
                                     "weighting", file=file, field="fit.weighting"))
     starts = raw.get("starts", 3)
-    if not isinstance(starts, int) or not 1 <= starts <= 20:
+    if not isinstance(starts, int) or isinstance(starts, bool) or not 1 <= starts <= 20:
         problems.append(Problem("starts must be a whole number from 1 to 20", file=file,
                                 field="fit.starts"))
     threshold = raw.get("nca_threshold", 20.0)
@@ -323,7 +323,8 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
                             for p in exc.problems)
     for key, lo, hi in (("bootstrap", 0, 10000), ("seed", 0, 2**32 - 1),
                         ("vpc_replicates", 0, 10000)):
-        if key in raw and (not isinstance(raw[key], int) or not lo <= raw[key] <= hi):
+        if key in raw and (not isinstance(raw[key], int) or isinstance(raw[key], bool)
+                           or not lo <= raw[key] <= hi):
             problems.append(Problem(f"must be a whole number from {lo} to {hi}", file=file,
                                     field=f"population.{key}"))
     if problems:

@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import PkcalcInputError, Problem
-from ..units import KINDS, parse_header, parse_unit
+from ..units import KINDS, NUMERIC_RANGE, parse_header, parse_unit
 from .base import read_toml
 
 __all__ = [
@@ -182,7 +182,17 @@ class _Columns:
                                     f"{more})", file=self.file, field=str(col),
                                     expected="numbers"))
         factor = spec.factor if spec is not None else 1.0
-        return values * factor, spec
+        canonical = values * factor
+        a = canonical.abs()
+        outside = ~bad & canonical.notna() & (np.isinf(a) | ((a != 0) & (
+            (a < NUMERIC_RANGE[0]) | (a > NUMERIC_RANGE[1]))))
+        if outside.any():
+            n = int(np.flatnonzero(outside.to_numpy())[0]) + 2
+            problems.append(Problem(f"'{raw.iloc[n - 2]}' (line {n}) is outside the range "
+                                    f"pkcalc computes in (zero, or {NUMERIC_RANGE[0]:g} to "
+                                    f"{NUMERIC_RANGE[1]:g} in canonical units)", file=self.file,
+                                    field=str(col), expected="numbers of a realistic size"))
+        return canonical, spec
 
 
 def _require(cols: _Columns, names: list[str], problems: list[Problem]) -> None:
@@ -337,11 +347,12 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
         subject_failures.setdefault(sid, []).append(
             Problem(message, file=file, item=f"subject '{sid}'", field=field))
 
-    for i in np.flatnonzero(dose_problem.to_numpy() != ""):
+    for i in np.flatnonzero((dose_problem != "").to_numpy() & ~per_kg_missing.to_numpy()):
         fail(d_subject.iloc[i], f"{dose_problem.iloc[i]} (line {i + 2})", ds_file)
     for i in np.flatnonzero(per_kg_missing.to_numpy()):
-        fail(d_subject.iloc[i], f"a per-kg dose needs the subject's weight (line {i + 2})",
-             ds_file, "weight")
+        fail(d_subject.iloc[i], f"a per-kg dose needs the subject's weight (line {i + 2}): "
+             + ("give it in the subjects table" if covariates else
+                "no subjects table with a weight column was given"), ds_file, "weight")
     for i in np.flatnonzero((d_start < 0).to_numpy()):
         fail(d_subject.iloc[i], f"negative dose start (line {i + 2})", ds_file, "start")
 
@@ -464,6 +475,18 @@ def load_study_file(path: str | Path, *, extra_sections: tuple[str, ...] = ()) -
         raise PkcalcInputError([Problem("the study file must name this table", file=str(path),
                                         field=k, expected="a path such as 'levels.csv'")
                                 for k in missing])
+    from ..tables import check_input_file
+
+    problems = []
+    for key in ("levels", "doses", "subjects"):
+        if isinstance(data.get(key), str):
+            try:
+                check_input_file(base / data[key])
+            except PkcalcInputError as exc:
+                problems += [Problem(f"'{data[key]}' {p.message}", file=str(path), field=key,
+                                     expected=p.expected) for p in exc.problems]
+    if problems:
+        raise PkcalcInputError(problems)
     study = load_study(base / data["levels"], base / data["doses"],
                        base / data["subjects"] if isinstance(data.get("subjects"), str) else None)
     study.options = {k: data[k] for k in ("fit", "nca", "population") if k in data}
