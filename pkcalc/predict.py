@@ -312,6 +312,11 @@ def predict_scenario(scenario: ScenarioInput, fractions: Sequence[float] = FRACT
             f"{short(float(conc.max()))} mg/L); the plot shows the full course")
     flags = _target_flags(scenario.target, plateau, ss, profile_max)
     ttf = {f: float(model.time_to_fraction(f, cl, v)) for f in fractions}
+    numbers = [conc, highest, plateau or 0.0, *ttf.values(),
+               *((ss.peak, ss.trough, ss.average) if ss else ())]
+    if not all(np.all(np.isfinite(x)) for x in numbers):
+        raise ValueError("a result is not a finite number (overflow beyond float64): check "
+                         "the units of the parameters and doses")
     return ScenarioPrediction(
         name=scenario.name, parameters=params, plateau_concentration=plateau,
         plateau_basis=basis, time_to_fraction=ttf, time=times, concentration=conc,

@@ -149,9 +149,18 @@ def run_predict(scenario_path: str | Path, *, colour: bool = False) -> Run:
     if not sfile.scenarios:
         raise PkcalcInputError([p for _, err in sfile.failures for p in err.problems])
     conv = report.UnitConverter(sfile.output.units())
-    preds = [predict_scenario(s) for s in sfile.scenarios]
-    doc = report.predict_json(preds, conv, title=sfile.title, failures=sfile.failures)
-    text = report.predict_text(preds, conv, title=sfile.title, failures=sfile.failures,
+    preds, failures = [], list(sfile.failures)
+    for s in sfile.scenarios:
+        try:
+            preds.append(predict_scenario(s))
+        except (ValueError, ArithmeticError) as exc:
+            label = f"scenario '{s.name}'"
+            failures.append((label, PkcalcInputError(str(exc), file=str(scenario_path),
+                                                     item=label)))
+    if not preds:
+        raise PkcalcInputError([p for _, err in failures for p in err.problems])
+    doc = report.predict_json(preds, conv, title=sfile.title, failures=failures)
+    text = report.predict_text(preds, conv, title=sfile.title, failures=failures,
                                colour=colour)
 
     def figures() -> dict[str, Any]:
@@ -162,7 +171,7 @@ def run_predict(scenario_path: str | Path, *, colour: bool = False) -> Run:
     def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
         return _write_predict_files(out, preds, conv, doc, pngs, [str(scenario_path)])
 
-    return Run("predict", EXIT_PARTIAL if sfile.failures else EXIT_OK, doc, text,
+    return Run("predict", EXIT_PARTIAL if failures else EXIT_OK, doc, text,
                [str(scenario_path)], sfile.title or "pkcalc predict", figures, files,
                lambda pngs: predict_sections(doc, pngs))
 
@@ -212,7 +221,7 @@ def run_design(cases, *, failures=(), title: str | None = None,
     for case in cases:
         try:
             results.append(design_one(case))
-        except ValueError as exc:  # infeasible requests the schema could not foresee
+        except (ValueError, ArithmeticError) as exc:  # infeasible requests, overflow
             label = f"scenario '{case.name}'"
             run_failures.append((label, PkcalcInputError(
                 str(exc), file=inputs[0] if inputs else None, item=label)))
