@@ -1,6 +1,6 @@
 """Scenario batches: one vectorised kernel, chunked streaming, variability, engines.
 
-A batch table has one row per scenario and unit-bearing headers (DESIGN.md §5):
+A batch table has one row per scenario and unit-bearing headers (docs/formats.md):
 any two of ``clearance``, ``volume``, ``half_life``, ``elimination_rate``,
 ``time_constant``; ``rate`` (or ``dose``); optional ``duration``, ``interval``,
 ``loading_dose``, ``target``, ``window_low``, ``window_high``, ``weight``.
@@ -830,7 +830,7 @@ def _tally(summary: BatchSummary, result: pd.DataFrame, collect: int) -> None:
 
 
 def scenario_rows(path: Path, options: BatchOptions) -> tuple[pd.DataFrame, list]:
-    """A scenario file (DESIGN.md §5) as batch rows: each scenario's own dose list is
+    """A scenario file (docs/formats.md) as batch rows: each scenario's own dose list is
     predicted with the general model (scenario files are small; one call per scenario)."""
     from .predict import predict_scenario
     from .schema import load_scenario_file

@@ -440,7 +440,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = _add(sub, "predict", cmd_predict,
              "Concentration course, plateau, time to plateau and steady state of scenarios.")
-    p.add_argument("scenario", metavar="SCENARIO.toml", help="scenario file (DESIGN.md §5)")
+    p.add_argument("scenario", metavar="SCENARIO.toml", help="scenario file (docs/formats.md)")
     _output_args(p, "write CSV, JSON and PNG files to DIR")
 
     p = _add(sub, "design", cmd_design,
@@ -553,7 +553,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = _add(sub, "verify", cmd_verify,
              "Recompute worked examples and report PASS/FAIL per expected value.")
-    p.add_argument("cases", metavar="CASES.toml", help="cases file (DESIGN.md §5)")
+    p.add_argument("cases", metavar="CASES.toml", help="cases file (docs/formats.md)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--junit", metavar="FILE.xml", help="also write JUnit XML for CI systems")
     p.add_argument("--out", metavar="DIR", help="write verify.csv, verify.json to DIR")

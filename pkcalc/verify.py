@@ -1,7 +1,7 @@
 """Recompute expected values from worked examples: ``pkcalc verify``.
 
 A case holds scenario inputs, a ``source`` naming where its expected values
-come from, and expectations with tolerances (DESIGN.md §5).  Every value is
+come from, and expectations with tolerances (docs/formats.md).  Every value is
 recomputed with the same code paths the other commands use (:mod:`predict`,
 :mod:`design`, :mod:`model`), compared in canonical units, and shown in the
 unit the expected value was written in.

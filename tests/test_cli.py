@@ -1,4 +1,4 @@
-"""The command line: exit codes, JSON contract (DESIGN.md §6), files, cautions."""
+"""The command line: exit codes, JSON contract (docs/formats.md), files, cautions."""
 
 from __future__ import annotations
 

@@ -38,7 +38,7 @@ def course(regimen, cl, v, salt=1.0, horizon=400.0, points=40001):
 
 # --------------------------------------------------------------------------- worked examples
 def test_theophylline_hendeles_1978():
-    # Hendeles et al. 1978 (abstract, via REFERENCES.md): for ~10 mg/L, a 5 mg/kg
+    # Hendeles et al. 1978 (abstract): for ~10 mg/L, a 5 mg/kg
     # loading dose and 0.4 mg/kg/h (V 0.5 L/kg, CL 0.04 L/h/kg; 70 kg here).
     r = design_continuous(0.04 * 70, 0.5 * 70, 10.0, rate_step=None, dose_step=None)
     best = r.regimens[0]
@@ -47,7 +47,7 @@ def test_theophylline_hendeles_1978():
 
 
 def test_aminophylline_mitenko_ogilvie_1973():
-    # Mitenko & Ogilvie, NEJM 1973 (abstract, via REFERENCES.md): 5.6 mg/kg then
+    # Mitenko & Ogilvie, NEJM 1973 (abstract): 5.6 mg/kg then
     # 0.9 mg/kg/h of aminophylline (S = 0.8) gives about 10 mg/L of theophylline.
     # With the implied CL 0.072 L/h/kg and V = 5.6 x 0.8 / 10 L/kg the design with
     # the salt factor returns those doses.
@@ -58,7 +58,7 @@ def test_aminophylline_mitenko_ogilvie_1973():
 
 
 def test_lidocaine_rate():
-    # Published abstract via REFERENCES.md: 30 µg/kg/min with CL 12.3 mL/min/kg gave
+    # Published abstract: 30 µg/kg/min with CL 12.3 mL/min/kg gave
     # about 2.3 µg/mL (10 %: multi-compartment drug). The rate for 2.3 mg/L:
     rate = rate_for_target(2.3, 12.3e-3 * 60)  # mg/h per kg
     assert rate * 1000 / 60 == pytest.approx(30.0, rel=0.10)
@@ -86,7 +86,7 @@ def test_chiou_formula_and_exact_solution():
     # Chiou et al., J Pharmacokinet Biopharm 1978 (from memory): the formula below;
     # on noise-free one-compartment levels (no loading dose) the exact solve
     # recovers CL, Chiou's trapezoid is biased by several per cent when the levels
-    # are far apart and close to exact when they are near (REFERENCES.md, [calc]).
+    # are far apart and close to exact when they are near ([calc]).
     cl, v, r0 = 4.0, 40.0, 40.0
     c = model.concentration([2.0, 14.0], [0.0], [r0 * 100], [100.0], cl, v)
     assert exact_two_level_clearance(r0, 2.0, c[0], 14.0, c[1], v) == pytest.approx(cl, 1e-10)

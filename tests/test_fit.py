@@ -155,7 +155,7 @@ def test_censored_likelihood_matches_numerical_integration():
 def test_blq_methods_differ_and_m3_is_less_biased():
     # Invented data with heavy censoring at a late LLOQ: dropping BLQ levels biases
     # clearance; the censored likelihood (M3) much less (Beal 2001; Bergstrand &
-    # Karlsson 2009 found M3 best -- REFERENCES.md).
+    # Karlsson 2009 found M3 best).
     rng = np.random.default_rng(4)
     t = np.array([1, 2, 4, 8, 12, 16, 24, 36, 48.0])
     subs, truth = [], []

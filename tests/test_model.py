@@ -181,7 +181,7 @@ def test_resolve_needs_two_independent():
 
 # --------------------------------------------------------------------------- textbook examples
 def test_theophylline_hendeles_1978():
-    # Hendeles et al. 1978 (published abstract, via REFERENCES.md): a 5 mg/kg
+    # Hendeles et al. 1978 (published abstract): a 5 mg/kg
     # loading dose raises the level ~10 mg/L and 0.4 mg/kg/h holds ~10 mg/L,
     # consistent with V ~0.5 L/kg and CL ~0.04 L/h/kg (70 kg here).
     w = 70.0
@@ -194,7 +194,7 @@ def test_theophylline_hendeles_1978():
 
 
 def test_aminophylline_mitenko_ogilvie_1973():
-    # Mitenko & Ogilvie, NEJM 1973 (abstract, via REFERENCES.md): aminophylline
+    # Mitenko & Ogilvie, NEJM 1973 (abstract): aminophylline
     # 5.6 mg/kg then 0.9 mg/kg/h gives about 10 mg/L theophylline; with salt
     # factor S = 0.8 the implied clearance S R0 / Css is 0.072 L/h/kg (±10 %).
     implied_cl = 0.8 * 0.9 / 10.0
@@ -203,7 +203,7 @@ def test_aminophylline_mitenko_ogilvie_1973():
 
 
 def test_lidocaine_plateau():
-    # Published abstract via REFERENCES.md: 30 µg/kg/min with CL 12.3 mL/min/kg;
+    # Published abstract: 30 µg/kg/min with CL 12.3 mL/min/kg;
     # reported Css 2.3 µg/mL, Css = R0/CL gives 2.44 (multi-compartment drug: 10 %).
     rate = 30e-3 * 60 * 70        # mg/h for 70 kg
     cl = 12.3e-3 * 60 * 70        # L/h
@@ -213,7 +213,7 @@ def test_lidocaine_plateau():
 
 
 def test_neonatal_phenobarbital_half_life():
-    # Grasela & Donn 1985 (abstract, via REFERENCES.md): CL 0.0047 L/h/kg,
+    # Grasela & Donn 1985 (abstract): CL 0.0047 L/h/kg,
     # V 0.96 L/kg -> half-life about 141.6 h.
     p = model.derived_parameters(0.0047, 0.96)
     assert p["half_life"] == pytest.approx(141.6, abs=0.05)

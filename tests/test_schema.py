@@ -1,4 +1,4 @@
-"""Scenario-file validation: every rule of DESIGN.md §5 and the core issue's bad inputs."""
+"""Scenario-file validation: every rule of docs/formats.md and the core issue's bad inputs."""
 
 from __future__ import annotations
 

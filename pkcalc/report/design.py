@@ -62,7 +62,7 @@ def _target_dict(target: Mapping[str, Any], conv: UnitConverter) -> dict[str, An
 
 def design_json(results, conv: UnitConverter, *, title: str | None = None,
                 failures=()) -> dict[str, Any]:
-    """The ``pkcalc design --json`` document: top-level ``regimens`` (DESIGN.md §6)
+    """The ``pkcalc design --json`` document: top-level ``regimens`` (docs/formats.md)
     plus ``designs`` with each scenario's estimates, target and notes."""
     regimens, designs = [], []
     for res in results:

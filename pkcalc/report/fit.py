@@ -19,7 +19,7 @@ def _estimate_dict(e, kind: str | None, conv: UnitConverter) -> dict[str, Any]:
 
 
 def fit_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
-    """One subject's JSON object (DESIGN.md §6 keys, display units)."""
+    """One subject's JSON object (docs/formats.md keys, display units)."""
     return {
         "subject": r.subject, "converged": r.converged, "method": r.method,
         "estimates": {k: _estimate_dict(e, _KIND[k], conv) for k, e in r.estimates.items()},

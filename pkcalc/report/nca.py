@@ -22,7 +22,7 @@ NCA_FIELDS: tuple[tuple[str, str | None], ...] = (
 
 
 def nca_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
-    """One subject's JSON object (DESIGN.md §6 keys, display units)."""
+    """One subject's JSON object (docs/formats.md keys, display units)."""
     out: dict[str, Any] = {"subject": r.subject, "mode": r.mode,
                            "dose": _num(conv(r.dose, "amount")),
                            "infusion_time": _num(conv(r.infusion_time, "time")),

@@ -17,7 +17,7 @@ def _typ_unit(conv: UnitConverter, kind: str, per_kg: bool) -> str:
 
 def population_json(result, conv: UnitConverter, *, title: str | None = None, failures=(),
                     settings: dict[str, Any] | None = None) -> dict[str, Any]:
-    """The ``pkcalc population --json`` document (DESIGN.md §6 keys plus details)."""
+    """The ``pkcalc population --json`` document (docs/formats.md keys plus details)."""
     per_kg = result.covariate == "per_kg"
     kinds = {"clearance": "clearance", "volume": "volume"}
     typical = {k: _num(conv(v, kinds[k])) for k, v in result.typical.items()}

@@ -20,7 +20,7 @@ from .base import (
 
 # --------------------------------------------------------------------------- predict
 def predict_scenario_dict(pred, conv: UnitConverter) -> dict[str, Any]:
-    """One scenario's JSON object (DESIGN.md §6 keys, display units)."""
+    """One scenario's JSON object (docs/formats.md keys, display units)."""
     p = pred.parameters
     ss = pred.steady_state
     target = pred.target

@@ -9,7 +9,7 @@ from .base import _num, assemble_text, failures_json, json_document
 
 
 def verify_json(result) -> dict[str, Any]:
-    """The ``pkcalc verify --json`` document (DESIGN.md §6 keys)."""
+    """The ``pkcalc verify --json`` document (docs/formats.md keys)."""
     cases = [{
         "name": case.name, "source": case.source,
         "checks": [{"quantity": c.quantity, "expected": _num(c.expected),

@@ -1,6 +1,6 @@
 """Input files -> validated, canonical inputs (the boundary).
 
-pydantic models describe each input file (DESIGN.md §5); their validators
+pydantic models describe each input file (docs/formats.md); their validators
 turn every quantity into canonical units with :mod:`pkcalc.units`, check the
 parameters, doses and options, and collect every problem before raising.
 What comes out (:class:`ScenarioInput`, :class:`DoseEvent`, :class:`DesignCase`,

@@ -1,4 +1,4 @@
-"""The cases file of ``pkcalc verify`` (DESIGN.md §5): inputs, source, expectations."""
+"""The cases file of ``pkcalc verify`` (docs/formats.md): inputs, source, expectations."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""The scenario file of ``pkcalc predict`` (DESIGN.md §5)."""
+"""The scenario file of ``pkcalc predict`` (docs/formats.md)."""
 
 from __future__ import annotations
 
@@ -158,7 +158,7 @@ def _resolve_times(spec: list[QuantityText] | TimeRange | None, col: _Collector)
 
 
 class ScenarioSpec(_WithParameters):
-    """One ``[[scenarios]]`` entry of a scenario file (DESIGN.md §5).
+    """One ``[[scenarios]]`` entry of a scenario file (docs/formats.md).
 
     Validation converts every quantity to canonical units and checks the
     parameters and doses; the result is available as :attr:`resolved`.

@@ -1,4 +1,4 @@
-"""Study tables (levels, doses, subjects) and the study TOML (DESIGN.md §5).
+"""Study tables (levels, doses, subjects) and the study TOML (docs/formats.md).
 
 Tables are CSV with units in the headers (``time [h]``, ``concentration [ng/mL]``).
 Units are parsed once per column and applied to the whole column; text in a
