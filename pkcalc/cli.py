@@ -331,6 +331,13 @@ def cmd_batch(args: argparse.Namespace) -> int:
         _emit(report.dumps(run.doc))
     else:
         _emit(run.text)
+    errors = run.doc.get("first_errors") or []
+    for e in errors:
+        print(f"pkcalc batch: error: {args.input}: {e}", file=sys.stderr)
+    more = (run.doc.get("failed") or 0) - len(errors)
+    if more > 0:
+        print(f"pkcalc batch: error: {args.input}: and {more:,} more rows with problems "
+              f"(each has its reason in the 'error' column of {args.out})", file=sys.stderr)
     report_dir = Path(args.plots) if args.plots else Path(args.out).parent
     if args.plots:
         write_outputs(run, report_dir)
@@ -578,6 +585,10 @@ def _outputs(args: argparse.Namespace):
     if out is not None:
         kind = "file" if args.command == "batch" else "folder"
         outs.append(Output(Path(out), kind, "--out"))
+        if kind == "file" and not Path(out).is_dir() and \
+                Path(out).suffix.lower() not in (".csv", ".txt", ".parquet", ".pq"):
+            raise PkcalcInputError(f"unknown table format '{Path(out).suffix}'", file=str(out),
+                                   field="--out", expected="a .csv or .parquet file name")
         if kind == "file" and Path(out).name in ("CAUTION.txt", "INCOMPLETE.txt") \
                 and not getattr(args, "plots", None):
             raise PkcalcInputError("pkcalc writes its CAUTION.txt beside the output table: "

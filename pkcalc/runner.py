@@ -456,8 +456,10 @@ def run_population(study, options, *, colour: bool = False) -> Run:
                                          reference_weight=options.reference_weight,
                                          blq=options.blq)
     except ValueError as exc:
-        raise PkcalcInputError(str(exc), file=study.files[0] if study.files else None
-                               ) from None
+        # the subjects left out explain why too few remain: name them first
+        raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
+                               + PkcalcInputError(str(exc), file=study.files[0] if study.files
+                                                  else None).problems) from None
     if options.bootstrap and options.method == "iterative":
         result.bootstrap.update(bootstrap(subjects, result, options.bootstrap, options.seed,
                                           error_model=options.error_model,
