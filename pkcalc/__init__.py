@@ -7,25 +7,47 @@ examples.  All numbers are in canonical units: h, mg, L, mg/L, L/h, mg/h, 1/h.
 
 Results are model estimates for research and review; dosing decisions belong
 to licensed clinicians and pharmacists following local protocols.
+
+The names below are loaded on first use, so that importing one part of pkcalc
+(say :mod:`pkcalc.model`) does not import the file boundary (pandas, pydantic,
+pint) or the other parts.
 """
+
+from __future__ import annotations
+
+from importlib import import_module
+from typing import Any
 
 __version__ = "0.1.0"
 
-from .errors import PkcalcInputError, PkcalcWarning, Problem
-from .predict import ScenarioPrediction, SteadyState, predict, predict_scenario
-from .schema import DoseEvent, ScenarioInput, Target, load_scenario_file
+#: public name -> module that defines it
+_EXPORTS = {
+    "DoseEvent": "core", "ScenarioInput": "core", "Target": "core", "SubjectData": "core",
+    "Study": "core", "FitOptions": "core", "Prior": "core", "PopulationOptions": "core",
+    "PkcalcInputError": "errors", "PkcalcWarning": "errors", "Problem": "errors",
+    "ScenarioPrediction": "predict", "SteadyState": "predict", "predict_course": "predict",
+    "predict_scenario": "predict",
+    "load_scenario_file": "schema", "load_study_file": "schema", "load_study": "schema",
+    "example_file": "examples",
+    "fit_study": "api", "nca_study": "api", "population_study": "api",
+    "StudyFit": "api", "StudyNca": "api",
+}
 
-__all__ = [
-    "DoseEvent",
-    "PkcalcInputError",
-    "PkcalcWarning",
-    "Problem",
-    "ScenarioInput",
-    "ScenarioPrediction",
-    "SteadyState",
-    "Target",
-    "__version__",
-    "load_scenario_file",
-    "predict",
-    "predict_scenario",
-]
+__all__ = ["__version__", *sorted(_EXPORTS)]
+
+
+_MODULES = {"core", "model", "predict", "design", "fit", "nca", "population", "batch",
+            "schema", "units", "errors", "report", "plots", "verify", "files", "tables",
+            "examples", "api", "runner", "cli", "plausibility"}
+
+
+def __getattr__(name: str) -> Any:
+    if name in _EXPORTS:
+        return getattr(import_module(f".{_EXPORTS[name]}", __name__), name)
+    if name in _MODULES:
+        return import_module(f".{name}", __name__)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_EXPORTS))

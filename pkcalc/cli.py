@@ -357,13 +357,6 @@ def cmd_nca(args: argparse.Namespace) -> int:
     return _finish(run_nca(study, _nca_options(args, study), colour=_colour()), args)
 
 
-def demo_path(name: str = "demo.toml") -> Path:
-    """Path of a scenario file shipped with pkcalc."""
-    from importlib.resources import files
-
-    return Path(str(files("pkcalc.scenarios") / name))
-
-
 def cmd_demo(args: argparse.Namespace) -> int:
     """Predict, design, NCA, fit, population, verify and a batch on the shipped invented
     examples; one HTML report."""
@@ -376,6 +369,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 def _demo(out: Path, args: argparse.Namespace) -> int:
     from .batch import BatchOptions
+    from .examples import example_file
     from .runner import (
         run_batch_command,
         run_design,
@@ -390,22 +384,22 @@ def _demo(out: Path, args: argparse.Namespace) -> int:
     from .schema import load_design_file, load_study_file, nca_options
     from .schema.fitopts import fit_options, population_options
 
-    runs = [run_predict(demo_path("demo.toml"), colour=_colour())]
-    design_file = demo_path("demo-design.toml")
+    runs = [run_predict(example_file("demo.toml"), colour=_colour())]
+    design_file = example_file("demo-design.toml")
     sfile = load_design_file(design_file)
     runs.append(run_design(sfile.scenarios, failures=sfile.failures, title=sfile.title,
                            units=sfile.output.units(), inputs=[str(design_file)],
                            colour=_colour()))
-    study = load_study_file(demo_path("demo-study.toml"))
+    study = load_study_file(example_file("demo-study.toml"))
     runs.append(run_nca(study, nca_options(study.options.get("nca")), colour=_colour()))
     runs.append(run_fit(study, fit_options({**study.options.get("fit", {}), "with_nca": True}),
                         colour=_colour()))
-    sparse = load_study_file(demo_path("demo-sparse.toml"))
+    sparse = load_study_file(example_file("demo-sparse.toml"))
     runs.append(run_population(sparse, population_options(
         {**sparse.options.get("population", {}), "vpc_replicates": 100}), colour=_colour()))
-    runs.append(run_verify(demo_path("reference-cases.toml"), colour=_colour())[0])
+    runs.append(run_verify(example_file("reference-cases.toml"), colour=_colour())[0])
     (out / "batch").mkdir(parents=True, exist_ok=True)
-    runs.append(run_batch_command(str(demo_path("demo-grid.toml")),
+    runs.append(run_batch_command(str(example_file("demo-grid.toml")),
                                   str(out / "batch" / "grid-results.csv"),
                                   BatchOptions(at=(24.0, 48.0), population=1000, seed=1,
                                                cv_clearance=0.3, cv_volume=0.2),

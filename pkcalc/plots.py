@@ -17,8 +17,8 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from . import model
+from .core import expand_events
 from .report import CAUTION_SHORT, UnitConverter, write_atomic
-from .schema import expand_events
 
 __all__ = ["figure_bytes", "new_figure", "profile_figure", "save_figure"]
 

@@ -35,12 +35,11 @@ from scipy.optimize import minimize as scipy_minimize
 
 from . import model
 from ._format import format_table, short
+from .core import FitOptions, Prior, SubjectData
 from .fit import FitResult, fit_subjects
 from .fit.batch import Batch, evaluate
 from .fit.individual import _prepare_batch, starting_values
 from .fit.solver import minimise
-from .schema.fitopts import FitOptions, Prior
-from .schema.study import SubjectData
 
 __all__ = [
     "COVARIATE_MODELS",

@@ -14,8 +14,8 @@ import numpy as np
 
 from . import model
 from ._format import format_table, short
+from .core import DoseEvent, ScenarioInput, Target, expand_events
 from .plausibility import parameter_warnings
-from .schema import DoseEvent, ScenarioInput, Target, expand_events
 
 __all__ = [
     "FRACTIONS",
@@ -23,7 +23,7 @@ __all__ = [
     "SteadyState",
     "default_times",
     "plot_grid",
-    "predict",
+    "predict_course",
     "predict_scenario",
 ]
 
@@ -338,7 +338,7 @@ def _highest(times, doses, events, cl, v) -> tuple[float, float]:
     return float(c[i]), float(grid[i])
 
 
-def predict(*, clearance: float, volume: float, doses: Sequence[DoseEvent],
+def predict_course(*, clearance: float, volume: float, doses: Sequence[DoseEvent],
             times=None, name: str = "scenario", target: Target | None = None,
             weight: float | None = None, initial_concentration: float = 0.0
             ) -> ScenarioPrediction:
@@ -346,8 +346,8 @@ def predict(*, clearance: float, volume: float, doses: Sequence[DoseEvent],
 
     Examples
     --------
-    >>> from pkcalc.schema import DoseEvent
-    >>> r = predict(clearance=3.0, volume=34.62, doses=[DoseEvent(0.0, 6000.0, 200.0)])
+    >>> from pkcalc.core import DoseEvent
+    >>> r = predict_course(clearance=3.0, volume=34.62, doses=[DoseEvent(0.0, 6000.0, 200.0)])
     >>> round(r.plateau_concentration, 6)
     10.0
     """

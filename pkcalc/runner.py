@@ -437,10 +437,10 @@ def run_fit(study, options, *, colour: bool = False) -> Run:
 
 def run_population(study, options, *, colour: bool = False) -> Run:
     """``pkcalc population``: two-stage or iterative two-stage estimates."""
+    from .core import FitOptions
     from .population import bootstrap, iterative_two_stage, simulate_design, two_stage
     from .report.html import population_sections
     from .report.population import population_json, population_text
-    from .schema.fitopts import FitOptions
 
     conv = report.UnitConverter(study.output or None)
     subjects = study.subjects

@@ -16,9 +16,9 @@ import numpy as np
 
 from . import model
 from ._format import format_table, short
+from .core import ScenarioInput
 from .design import DesignResult, loading_dose_for_target, rate_for_target, run_design
 from .predict import predict_scenario
-from .schema import ScenarioInput
 from .schema.cases import Expectation, VerifyCase
 
 __all__ = ["CaseResult", "CheckResult", "VerifyResult", "junit_xml", "run_case", "verify"]

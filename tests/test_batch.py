@@ -11,9 +11,9 @@ from scipy import stats
 
 from pkcalc import model
 from pkcalc.batch import BatchOptions, compute, grid_frame, parse_columns, run_batch
+from pkcalc.core import DoseEvent
 from pkcalc.errors import PkcalcInputError
-from pkcalc.predict import predict
-from pkcalc.schema import DoseEvent
+from pkcalc.predict import predict_course
 
 from .conftest import SCENARIOS
 
@@ -48,7 +48,7 @@ def test_every_row_equals_the_single_scenario_path():
         else:
             d = row["duration [min]"] / 60
             doses = [DoseEvent(0.0, row["rate [mg/h]"] * d, d, row["interval [h]"], 400)]
-        pred = predict(clearance=cl, volume=v, doses=doses, times=[24.0, 100.0])
+        pred = predict_course(clearance=cl, volume=v, doses=doses, times=[24.0, 100.0])
         r = out.iloc[i]
         assert r["volume [L]"] == pytest.approx(v, rel=1e-12)
         assert r["plateau_concentration [mg/L]"] == pytest.approx(pred.plateau_concentration,

@@ -370,9 +370,9 @@ error = { proportional = "10%" }
 def test_map_design_uses_the_fit_estimate(run_cli, write):
     # second path: the same MAP estimate through pkcalc.fit, and the new rate
     # re-predicted as Css = R0/CL
+    from pkcalc.core import SubjectData
     from pkcalc.fit import fit_subjects
     from pkcalc.schema.fitopts import fit_options
-    from pkcalc.schema.study import SubjectData
 
     r = run_cli("design", write("m.toml", MAP_CASE), "--json")
     assert r.code == 0, r.err

@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
+from pkcalc.core import DoseEvent, Prior
 from pkcalc.design import (
     Limits,
     adjust_map,
@@ -25,8 +26,6 @@ from pkcalc.design import (
     two_level_parameters,
 )
 from pkcalc.design.projection import history_events
-from pkcalc.schema import DoseEvent
-from pkcalc.schema.fitopts import Prior
 
 TOL = 0.03  # the acceptance: within 3 % of a limit
 

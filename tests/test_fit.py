@@ -13,10 +13,10 @@ import pytest
 from scipy import integrate, optimize, stats
 
 from pkcalc import model
+from pkcalc.core import FitOptions, SubjectData
 from pkcalc.fit import build_batch, evaluate, fit_subjects
 from pkcalc.schema import load_study
-from pkcalc.schema.fitopts import FitOptions, fit_options
-from pkcalc.schema.study import SubjectData
+from pkcalc.schema.fitopts import fit_options
 
 from .conftest import SCENARIOS
 from .fixtures import phenobarb

@@ -11,10 +11,10 @@ import numpy as np
 import pytest
 
 from pkcalc import model
+from pkcalc.core import SubjectData
 from pkcalc.population import bootstrap, iterative_two_stage, simulate_design, two_stage
 from pkcalc.schema import load_study
 from pkcalc.schema.fitopts import FitOptions, population_options
-from pkcalc.schema.study import SubjectData
 
 from .conftest import SCENARIOS
 from .fixtures import phenobarb

@@ -8,27 +8,27 @@ import numpy as np
 import pytest
 
 from pkcalc import model
-from pkcalc.predict import predict
-from pkcalc.schema import DoseEvent, Target
+from pkcalc.core import DoseEvent, Target
+from pkcalc.predict import predict_course
 
 
 def test_plateau_is_final_rate_over_clearance():
     # [calc] Css = R0/CL for the final maintenance rate (Bourne, Basic Pharmacokinetics ch. 6).
     doses = [DoseEvent(0, 400, 0.5), DoseEvent(0.5, 35 * 47.5, 47.5), DoseEvent(48, 32 * 48, 48)]
-    r = predict(clearance=4.2, volume=48.0, doses=doses)
+    r = predict_course(clearance=4.2, volume=48.0, doses=doses)
     assert r.plateau_concentration == pytest.approx(32 / 4.2)
     assert "32 mg/h" in r.plateau_basis
 
 
 def test_no_plateau_for_boluses_only():
-    r = predict(clearance=4.2, volume=48.0, doses=[DoseEvent(0, 400, 0)])
+    r = predict_course(clearance=4.2, volume=48.0, doses=[DoseEvent(0, 400, 0)])
     assert r.plateau_concentration is None
     assert r.steady_state is None
 
 
 def test_steady_state_of_repeated_infusions():
     # Steady state of a train equals the Bauer (from memory) closed form in model.
-    r = predict(clearance=5.5, volume=30.0, doses=[DoseEvent(0, 800, 1, every=8, count=9)])
+    r = predict_course(clearance=5.5, volume=30.0, doses=[DoseEvent(0, 800, 1, every=8, count=9)])
     peak, trough, avg = model.steady_state_intermittent(800, 1, 8, 5.5, 30.0)
     ss = r.steady_state
     assert (ss.peak, ss.trough, ss.average) == (pytest.approx(peak), pytest.approx(trough),
@@ -38,13 +38,13 @@ def test_steady_state_of_repeated_infusions():
 
 def test_different_intervals_warn():
     doses = [DoseEvent(0, 100, 1, every=8, count=3), DoseEvent(0, 100, 1, every=12, count=3)]
-    r = predict(clearance=5.0, volume=30.0, doses=doses)
+    r = predict_course(clearance=5.0, volume=30.0, doses=doses)
     assert r.steady_state is None
     assert any("different intervals" in w for w in r.warnings)
 
 
 def test_time_to_fraction():
-    r = predict(clearance=4.2, volume=4.2 * 8 / model.LN2, doses=[DoseEvent(0, 100, 10)])
+    r = predict_course(clearance=4.2, volume=4.2 * 8 / model.LN2, doses=[DoseEvent(0, 100, 10)])
     assert r.time_to_fraction[0.5] == pytest.approx(8.0)
     assert r.time_to_fraction[0.9] == pytest.approx(8.0 * np.log2(10))
     assert r.time_to_fraction[0.99] == pytest.approx(8.0 * np.log2(100))
@@ -60,7 +60,8 @@ def test_time_to_fraction():
     ],
 )
 def test_target_flags(target, n_flags, match):
-    r = predict(clearance=3.0, volume=30.0, doses=[DoseEvent(0, 30 * 100, 100)], target=target)
+    r = predict_course(clearance=3.0, volume=30.0, doses=[DoseEvent(0, 30 * 100, 100)],
+                       target=target)
     assert len(r.flags) == n_flags
     if match:
         assert match in r.flags[0]
@@ -68,22 +69,22 @@ def test_target_flags(target, n_flags, match):
 
 def test_overshoot_of_loading_dose_flagged():
     doses = [DoseEvent(0, 1000, 0), DoseEvent(0, 30 * 100, 100)]
-    r = predict(clearance=3.0, volume=30.0, doses=doses, target=Target(None, 5.0, 20.0))
+    r = predict_course(clearance=3.0, volume=30.0, doses=doses, target=Target(None, 5.0, 20.0))
     assert any("the profile reaches" in f for f in r.flags)
 
 
 def test_plausibility_warning():
-    r = predict(clearance=4.0, volume=4000.0, doses=[DoseEvent(0, 100, 0)])
+    r = predict_course(clearance=4.0, volume=4000.0, doses=[DoseEvent(0, 100, 0)])
     assert any("volume" in w for w in r.warnings)
 
 
 def test_default_times_cover_dosing_and_washout():
-    r = predict(clearance=1.0, volume=10.0, doses=[DoseEvent(0, 100, 24)])
+    r = predict_course(clearance=1.0, volume=10.0, doses=[DoseEvent(0, 100, 24)])
     assert r.time[0] == 0 and r.time[-1] == pytest.approx(24 + 5 * 10 * model.LN2)
 
 
 def test_result_frame_and_summary():
-    r = predict(clearance=3.0, volume=30.0, doses=[DoseEvent(0, 300, 1)], times=[0, 1, 2])
+    r = predict_course(clearance=3.0, volume=30.0, doses=[DoseEvent(0, 300, 1)], times=[0, 1, 2])
     frame = r.to_frame()
     assert list(frame.columns) == ["time [h]", "concentration [mg/L]"]
     assert "half-life" in r.summary()
@@ -92,7 +93,7 @@ def test_result_frame_and_summary():
 
 def test_predict_refuses_nonpositive():
     with pytest.raises(ValueError, match="positive"):
-        predict(clearance=0.0, volume=1.0, doses=[DoseEvent(0, 1, 0)])
+        predict_course(clearance=0.0, volume=1.0, doses=[DoseEvent(0, 1, 0)])
 
 
 # --------------------------------------------------------------------------- drug on board, grids
@@ -102,7 +103,7 @@ def test_initial_concentration_decays_with_k_beside_the_doses():
     from scipy.integrate import solve_ivp
 
     cl, v = 3.0, 34.62
-    r = predict(clearance=cl, volume=v, doses=[DoseEvent(0.0, 30.0 * 48, 48.0)],
+    r = predict_course(clearance=cl, volume=v, doses=[DoseEvent(0.0, 30.0 * 48, 48.0)],
                 times=[0.0, 6.0, 24.0], initial_concentration=2.0)
     sol = solve_ivp(lambda _t, y: (30.0 - cl * y) / v, (0, 24), [2.0], t_eval=[0, 6, 24],
                     rtol=1e-11, atol=1e-12)
@@ -115,7 +116,7 @@ def test_coarse_requested_times_warn_and_the_highest_level_is_exact():
     v = 10.0
     k = math.log(2) / (10 / 60)  # 1/h
     cl = k * v
-    r = predict(clearance=cl, volume=v, doses=[DoseEvent(0.0, 100.0, 0.1)],
+    r = predict_course(clearance=cl, volume=v, doses=[DoseEvent(0.0, 100.0, 0.1)],
                 times=np.arange(0.0, 6.0, 1.0))
     peak = 100.0 / 0.1 / cl * (1 - math.exp(-k * 0.1))
     assert r.highest == pytest.approx(peak, rel=1e-9)
@@ -124,6 +125,6 @@ def test_coarse_requested_times_warn_and_the_highest_level_is_exact():
 
 
 def test_default_grid_contains_every_dose_boundary():
-    r = predict(clearance=3.0, volume=30.0, doses=[DoseEvent(0.0, 100.0, 0.37),
+    r = predict_course(clearance=3.0, volume=30.0, doses=[DoseEvent(0.0, 100.0, 0.37),
                                                    DoseEvent(5.13, 50.0, 0.0)])
     assert {0.37, 5.13} <= set(np.round(r.time, 12))

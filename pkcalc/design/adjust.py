@@ -9,7 +9,7 @@ import numpy as np
 
 from .. import model
 from .._format import short
-from ..schema import DesignCase
+from ..core import DesignCase, FitOptions, SubjectData
 from .common import (
     DEFAULT_DOSE_STEP,
     DEFAULT_INTERVALS,
@@ -414,8 +414,6 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
     ``infusion_time`` to the peak/trough targets or limits and/or ``auc_24``.
     """
     from ..fit import fit_subjects
-    from ..schema.fitopts import FitOptions
-    from ..schema.study import SubjectData
 
     t = np.array([x[0] for x in levels], float)
     c = np.array([x[1] for x in levels], float)

@@ -10,7 +10,7 @@ from typing import Any
 import numpy as np
 
 from .._format import format_table, short
-from ..schema import DoseEvent
+from ..core import DoseEvent
 
 #: Practical dosing intervals, h (configurable per design).
 DEFAULT_INTERVALS = (6.0, 8.0, 12.0, 24.0, 36.0, 48.0)

@@ -22,9 +22,8 @@ import numpy as np
 
 from .. import model
 from .._format import format_table, short
+from ..core import FitOptions, SubjectData
 from ..plausibility import parameter_warnings
-from ..schema.fitopts import FitOptions
-from ..schema.study import SubjectData
 from .batch import Batch, _variance, evaluate, n_error_params, profiled_sigma
 from .solver import Solution, minimise
 

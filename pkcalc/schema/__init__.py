@@ -10,15 +10,12 @@ Modules: ``base`` (shared types, collector, loader), ``scenario`` (scenario
 files), ``design`` (design tables).
 """
 
+from ..core import DoseEvent, ScenarioInput, Study, SubjectData, Target, expand_events
 from .base import (
     AGREEMENT_RTOL,
     PARAMETER_NAMES,
-    DoseEvent,
     OutputUnits,
     ScenarioFile,
-    ScenarioInput,
-    Target,
-    expand_events,
     load_items,
     read_toml,
     resolve_parameters,
@@ -65,7 +62,7 @@ __all__ = [
 ]
 
 
-_LAZY = {"Study", "SubjectData", "load_study", "load_study_file", "nca_options"}
+_LAZY = {"load_study", "load_study_file", "nca_options"}
 
 
 def __getattr__(name: str):

@@ -6,7 +6,7 @@ from __future__ import annotations
 import math
 import tomllib
 from collections.abc import Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -24,6 +24,7 @@ from pydantic import (
 )
 
 from .. import model
+from ..core import ScenarioInput
 from ..errors import PkcalcInputError, Problem
 from ..units import CANONICAL, display_factor, out_of_range, range_message, to_canonical
 
@@ -45,92 +46,6 @@ QuantityText = StrictStr | StrictInt | StrictFloat
 
 
 # --------------------------------------------------------------------------- canonical results
-@dataclass(frozen=True)
-class DoseEvent:
-    """One dose event in canonical units (possibly repeated).
-
-    Attributes
-    ----------
-    start : float, h
-    amount : float, mg
-    duration : float, h
-        0 for a bolus.
-    every : float or None, h
-        Interval between repeats.
-    count : int
-        Number of doses (1 for a single dose).
-    """
-
-    start: float
-    amount: float
-    duration: float
-    every: float | None = None
-    count: int = 1
-
-    @property
-    def rate(self) -> float | None:
-        """Infusion rate in mg/h (None for a bolus)."""
-        return self.amount / self.duration if self.duration > 0 else None
-
-    @property
-    def end(self) -> float:
-        """End of the last infusion of the event, h."""
-        return self.start + (self.count - 1) * (self.every or 0.0) + self.duration
-
-
-def expand_events(doses: Iterable[DoseEvent]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Single events (start, amount, duration arrays) of a dose list, repeats expanded."""
-    doses = list(doses)
-    return model.expand_doses(
-        [d.start for d in doses],
-        [d.amount for d in doses],
-        [d.duration for d in doses],
-        every=[d.every if d.every is not None else 0.0 for d in doses],
-        count=[d.count for d in doses],
-    )
-
-
-@dataclass(frozen=True)
-class Target:
-    """A target plateau and/or a window, mg/L."""
-
-    plateau: float | None = None
-    low: float | None = None
-    high: float | None = None
-
-
-@dataclass(frozen=True)
-class ScenarioInput:
-    """A validated scenario in canonical units (what :mod:`pkcalc.predict` consumes).
-
-    Attributes
-    ----------
-    name : str
-    clearance : float, L/h
-    volume : float, L
-    doses : tuple of DoseEvent
-    times : ndarray or None, h
-        Requested output times (sorted, non-negative); None lets pkcalc choose.
-    weight : float or None, kg
-    target : Target or None
-    given : tuple of str
-        The parameter names the user gave (for reports).
-    initial_concentration : float, mg/L
-        Drug on board at time 0 (earlier therapy), decaying with k.
-    """
-
-    name: str
-    clearance: float
-    volume: float
-    doses: tuple[DoseEvent, ...]
-    times: np.ndarray | None = None
-    weight: float | None = None
-    target: Target | None = None
-    given: tuple[str, ...] = ()
-    extra: dict[str, Any] = field(default_factory=dict)
-    initial_concentration: float = 0.0
-
-
 # --------------------------------------------------------------------------- helpers
 class _Collector:
     """Converts quantities, recording problems instead of stopping at the first."""
@@ -285,6 +200,8 @@ def validation_problems(exc: ValidationError, *, prefix: str = "") -> list[Probl
             msg = "is required"
         elif types <= _QUANTITY_TYPES and len(errs) > 1:
             msg = f"must be a quantity written with its unit, such as '4 L/h' (got {got})"
+        elif types == {"value_error"}:
+            msg = errs[0]["msg"].removeprefix("Value error, ")
         elif types == {"string_type"}:
             msg = f"must be text in quotes (got {got})"
         elif len(types) == 1 and next(iter(types)) in _TYPE_WORDS:

@@ -9,10 +9,10 @@ from typing import Any
 
 from pydantic import Field, model_validator
 
+from ..core import DesignCase, DoseEvent
 from ..errors import PkcalcInputError
 from ..units import KIND_OF, parse_number_and_unit, parse_unit
 from .base import (
-    DoseEvent,
     QuantityText,
     ScenarioFile,
     _Collector,
@@ -21,7 +21,7 @@ from .base import (
     load_items,
     resolve_partial,
 )
-from .design import DesignCase, DesignSpec, resolve_design
+from .design import DesignSpec, resolve_design
 from .scenario import DoseSpec, TimeRange, _resolve_times
 
 __all__ = ["QUANTITIES", "CaseSpec", "Expectation", "VerifyCase", "load_cases_file"]

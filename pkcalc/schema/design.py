@@ -3,12 +3,12 @@
 from __future__ import annotations
 
 import itertools
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from pydantic import Field, ValidationError, model_validator
 
+from ..core import DesignCase
 from ..errors import PkcalcInputError
 from .base import (
     QuantityText,
@@ -97,23 +97,6 @@ class DesignSpec(_Lenient):
                 or self.peak_min is not None or self.trough_max is not None:
             return "intermittent"
         return "continuous"
-
-
-@dataclass(frozen=True)
-class DesignCase:
-    """A validated design request in canonical units.
-
-    ``options`` holds keyword arguments of the :mod:`pkcalc.design` function
-    that ``method`` names (canonical numbers, :class:`~pkcalc.design.Limits`
-    built later from ``*_limits`` pairs).
-    """
-
-    name: str
-    method: str
-    clearance: float | None
-    volume: float | None
-    options: dict[str, Any]
-    weight: float | None = None
 
 
 def _limits_pair(col: _Collector, spec: DesignSpec, name: str):

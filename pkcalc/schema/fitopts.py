@@ -9,10 +9,18 @@ or SD of the log) with an optional correlation, and the residual error model.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from ..core import (
+    BLQ_METHODS,
+    CI_METHODS,
+    ERROR_MODELS,
+    WEIGHTINGS,
+    FitOptions,
+    PopulationOptions,
+    Prior,
+)
 from ..errors import PkcalcInputError, Problem
 from ..units import parse_number_and_unit, parse_unit
 from .base import read_toml
@@ -30,80 +38,6 @@ __all__ = [
     "population_options",
 ]
 
-WEIGHTINGS = ("uniform", "inverse_observed", "inverse_observed_squared",
-              "inverse_predicted_squared")
-ERROR_MODELS = ("additive", "proportional", "combined")
-BLQ_METHODS = ("drop", "likelihood", "half_lloq")
-CI_METHODS = ("wald", "profile")
-
-
-@dataclass(frozen=True)
-class Prior:
-    """Population prior for MAP estimation (canonical units).
-
-    Attributes
-    ----------
-    clearance, volume : float
-        Typical values, L/h and L (or L/h/kg and L/kg when ``per_kg``).
-    clearance_per_kg, volume_per_kg : bool
-    omega_clearance, omega_volume : float
-        SD of ln CL and ln V between subjects.
-    correlation : float
-        Correlation of ln CL and ln V.
-    additive, proportional : float
-        Residual error: additive SD (mg/L) and proportional SD (fraction).
-    source : str
-        Where the prior came from (file name).
-    """
-
-    clearance: float
-    volume: float
-    omega_clearance: float
-    omega_volume: float
-    correlation: float = 0.0
-    additive: float = 0.0
-    proportional: float = 0.0
-    clearance_per_kg: bool = False
-    volume_per_kg: bool = False
-    source: str = ""
-
-    @property
-    def error_model(self) -> str:
-        if self.additive > 0 and self.proportional > 0:
-            return "combined"
-        return "additive" if self.additive > 0 else "proportional"
-
-    def typical(self, weight: float | None) -> tuple[float, float]:
-        """Typical clearance and volume for a subject (per-kg values need the weight)."""
-        if (self.clearance_per_kg or self.volume_per_kg) and weight is None:
-            raise ValueError("the prior is per kg but the subject has no weight")
-        cl = self.clearance * (weight if self.clearance_per_kg else 1.0)
-        v = self.volume * (weight if self.volume_per_kg else 1.0)
-        return cl, v
-
-
-@dataclass(frozen=True)
-class FitOptions:
-    """Validated fit options.
-
-    ``weighting`` (least squares) and ``error_model`` (likelihood) exclude each
-    other; a ``prior`` makes the fit a MAP estimate with the prior's error model.
-    """
-
-    weighting: str | None = None
-    error_model: str | None = "proportional"
-    blq: str = "likelihood"
-    ci: str = "wald"
-    prior: Prior | None = None
-    starts: int = 3
-    with_nca: bool = False
-    nca_threshold: float = 20.0
-
-    @property
-    def method(self) -> str:
-        if self.prior is not None:
-            return "map"
-        return "least_squares" if self.weighting else "likelihood"
 
 
 def _percent_or_number(text: Any, field: str, problems: list[Problem], file: str | None,
@@ -275,20 +209,6 @@ def fit_options(raw: dict[str, Any] | None = None, *, base: Path | None = None,
         error_model = prior.error_model
     return FitOptions(weighting, None if weighting else error_model, blq, ci, prior,
                       int(starts), bool(raw.get("with_nca", False)), float(threshold))
-
-
-@dataclass(frozen=True)
-class PopulationOptions:
-    """Validated options of ``pkcalc population``."""
-
-    method: str = "iterative"
-    error_model: str = "proportional"
-    blq: str = "likelihood"
-    covariate: str = "none"
-    reference_weight: float = 70.0
-    bootstrap: int = 0
-    seed: int = 1
-    vpc_replicates: int = 200
 
 
 def population_options(raw: dict[str, Any] | None = None, *, file: str | None = None

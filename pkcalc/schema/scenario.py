@@ -10,12 +10,10 @@ from typing import Any
 import numpy as np
 from pydantic import Field, StrictInt, model_validator
 
+from ..core import DoseEvent, ScenarioInput, Target
 from .base import (
-    DoseEvent,
     QuantityText,
     ScenarioFile,
-    ScenarioInput,
-    Target,
     _agree,
     _Collector,
     _Lenient,
@@ -114,6 +112,7 @@ class TargetSpec(_Lenient):
             if low is not None and high is not None and low >= high:
                 col.add(f"window low {low:g} mg/L is not below high {high:g} mg/L",
                         "target.window", "[low, high] with low < high")
+                low = high = None
         return Target(plateau, low, high)
 
 

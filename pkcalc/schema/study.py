@@ -11,13 +11,13 @@ go on.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from ..core import Study, SubjectData
 from ..errors import PkcalcInputError, Problem
 from ..units import KINDS, NUMERIC_RANGE, parse_header, parse_unit
 from .base import read_toml
@@ -34,89 +34,6 @@ __all__ = [
 _TRUE = {"true", "1", "yes", "y", "t"}
 _FALSE = {"false", "0", "no", "n", "f", ""}
 _MAX_LISTED = 5
-
-
-@dataclass(frozen=True)
-class SubjectData:
-    """One subject's levels and doses in canonical units.
-
-    Attributes
-    ----------
-    subject : str
-    time : ndarray, h
-        Sample times, sorted.
-    conc : ndarray, mg/L
-        Measured levels; NaN where a BLQ level carries no number.
-    lloq : ndarray, mg/L
-        Limit of quantification per level (NaN when not given).
-    blq : ndarray of bool
-        True where the level is below its LLOQ (marked, or a number under LLOQ).
-    rows : ndarray of int
-        Line numbers of the levels in their file (for messages).
-    dose_start, dose_amount, dose_duration : ndarray, h, mg, h
-        Dose events (duration 0 for a bolus).
-    covariates : dict of str to float
-        From the subjects table; ``weight`` in kg.
-    notes : tuple of str
-        Data-handling notes (sorting, BLQ numbers below LLOQ).
-    initial_concentration : float, mg/L
-        Drug on board at time 0 from earlier therapy (decays with the subject's k);
-        from an ``initial_concentration [..]`` column of the subjects table.
-    """
-
-    subject: str
-    time: np.ndarray
-    conc: np.ndarray
-    lloq: np.ndarray
-    blq: np.ndarray
-    rows: np.ndarray
-    dose_start: np.ndarray
-    dose_amount: np.ndarray
-    dose_duration: np.ndarray
-    covariates: dict[str, float] = field(default_factory=dict)
-    notes: tuple[str, ...] = ()
-    initial_concentration: float = 0.0
-
-    @property
-    def weight(self) -> float | None:
-        return self.covariates.get("weight")
-
-    @property
-    def n_blq(self) -> int:
-        return int(self.blq.sum())
-
-
-@dataclass
-class Study:
-    """Subjects that passed the checks, and those that did not.
-
-    Attributes
-    ----------
-    subjects : list of SubjectData
-    failures : list of (str, PkcalcInputError)
-        ``("subject 'X'", problems)`` for subjects left out.
-    warnings : list of str
-        Table-level warnings (unknown columns, subjects in one table only).
-    files : list of str
-        The table files read.
-    options : dict
-        Raw option tables of a study TOML (``fit``, ``nca``, ``population``).
-    title : str or None
-    """
-
-    subjects: list[SubjectData]
-    failures: list[tuple[str, PkcalcInputError]] = field(default_factory=list)
-    warnings: list[str] = field(default_factory=list)
-    files: list[str] = field(default_factory=list)
-    options: dict[str, Any] = field(default_factory=dict)
-    title: str | None = None
-    output: dict[str, str] = field(default_factory=dict)
-
-    def subject(self, name: str) -> SubjectData:
-        for s in self.subjects:
-            if s.subject == name:
-                return s
-        raise KeyError(name)
 
 
 # --------------------------------------------------------------------------- tables

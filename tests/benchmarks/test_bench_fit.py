@@ -21,9 +21,8 @@ import pytest
 from scipy import optimize
 
 from pkcalc import model
+from pkcalc.core import FitOptions, SubjectData
 from pkcalc.fit import fit_subjects
-from pkcalc.schema.fitopts import FitOptions
-from pkcalc.schema.study import SubjectData
 
 pytestmark = pytest.mark.bench
 

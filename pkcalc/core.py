@@ -1,0 +1,418 @@
+"""The plain domain types every part of pkcalc shares (numpy and the standard library only).
+
+Dose events, a scenario, a subject's data, a study, fit and population options, a
+prior and a design request -- in canonical units (h, mg, L, mg/L, L/h, mg/h, 1/h).
+The file boundary (:mod:`pkcalc.schema`) builds them from files; the compute
+modules take and return them.  Each validates itself in ``__post_init__`` and
+raises ``ValueError`` naming the field, so a wrong value made in Python fails
+where it is made, not later.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from . import model
+from .errors import PkcalcInputError
+
+__all__ = [
+    "BLQ_METHODS",
+    "CI_METHODS",
+    "ERROR_MODELS",
+    "WEIGHTINGS",
+    "DesignCase",
+    "DoseEvent",
+    "FitOptions",
+    "PopulationOptions",
+    "Prior",
+    "ScenarioInput",
+    "Study",
+    "SubjectData",
+    "Target",
+    "expand_events",
+]
+
+WEIGHTINGS = ("uniform", "inverse_observed", "inverse_observed_squared",
+              "inverse_predicted_squared")
+ERROR_MODELS = ("additive", "proportional", "combined")
+BLQ_METHODS = ("drop", "likelihood", "half_lloq")
+CI_METHODS = ("wald", "profile")
+
+
+def _check(ok: bool, name: str, rule: str, value: Any) -> None:
+    if not ok:
+        raise ValueError(f"{name} {rule}, got {value!r}")
+
+
+def _finite(x: Any) -> bool:
+    try:
+        return math.isfinite(float(x))
+    except (TypeError, ValueError):
+        return False
+
+
+@dataclass(frozen=True)
+class DoseEvent:
+    """One dose event in canonical units (possibly repeated).
+
+    Attributes
+    ----------
+    start : float, h
+    amount : float, mg
+    duration : float, h
+        0 for a bolus.
+    every : float or None, h
+        Interval between repeats.
+    count : int
+        Number of doses (1 for a single dose).
+    """
+
+    start: float
+    amount: float
+    duration: float
+    every: float | None = None
+    count: int = 1
+
+    def __post_init__(self) -> None:
+        _check(_finite(self.start) and self.start >= 0, "start", "must be a finite time >= 0 h",
+               self.start)
+        _check(_finite(self.amount) and self.amount >= 0, "amount", "must be finite and >= 0 mg",
+               self.amount)
+        _check(_finite(self.duration) and self.duration >= 0, "duration",
+               "must be finite and >= 0 h (0 for a bolus)", self.duration)
+        _check(isinstance(self.count, int | np.integer) and not isinstance(self.count, bool)
+               and self.count >= 1, "count", "must be a whole number >= 1", self.count)
+        _check(self.every is None or (_finite(self.every) and self.every > 0), "every",
+               "must be None or a positive interval in h", self.every)
+        _check(self.count == 1 or self.every is not None, "every",
+               "is needed when count > 1", self.every)
+
+    @property
+    def rate(self) -> float | None:
+        """Infusion rate in mg/h (None for a bolus)."""
+        return self.amount / self.duration if self.duration > 0 else None
+
+    @property
+    def end(self) -> float:
+        """End of the last infusion of the event, h."""
+        return self.start + (self.count - 1) * (self.every or 0.0) + self.duration
+
+
+def expand_events(doses: Iterable[DoseEvent]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Single events (start, amount, duration arrays) of a dose list, repeats expanded."""
+    doses = list(doses)
+    return model.expand_doses(
+        [d.start for d in doses],
+        [d.amount for d in doses],
+        [d.duration for d in doses],
+        every=[d.every if d.every is not None else 0.0 for d in doses],
+        count=[d.count for d in doses],
+    )
+
+
+@dataclass(frozen=True)
+class Target:
+    """A target plateau and/or a window, mg/L."""
+
+    plateau: float | None = None
+    low: float | None = None
+    high: float | None = None
+
+    def __post_init__(self) -> None:
+        for name in ("plateau", "low", "high"):
+            x = getattr(self, name)
+            _check(x is None or (_finite(x) and x >= 0), name, "must be None or >= 0 mg/L", x)
+        if self.low is not None and self.high is not None:
+            _check(self.low < self.high, "low", f"must be below high ({self.high})", self.low)
+
+
+@dataclass(frozen=True)
+class ScenarioInput:
+    """A validated scenario in canonical units (what :mod:`pkcalc.predict` consumes).
+
+    Attributes
+    ----------
+    name : str
+    clearance : float, L/h
+    volume : float, L
+    doses : tuple of DoseEvent
+    times : ndarray or None, h
+        Requested output times (sorted, non-negative); None lets pkcalc choose.
+    weight : float or None, kg
+    target : Target or None
+    given : tuple of str
+        The parameter names the user gave (for reports).
+    initial_concentration : float, mg/L
+        Drug on board at time 0 (earlier therapy), decaying with k.
+    """
+
+    name: str
+    clearance: float
+    volume: float
+    doses: tuple[DoseEvent, ...]
+    times: np.ndarray | None = None
+    weight: float | None = None
+    target: Target | None = None
+    given: tuple[str, ...] = ()
+    extra: dict[str, Any] = field(default_factory=dict)
+    initial_concentration: float = 0.0
+
+    def __post_init__(self) -> None:
+        for name in ("clearance", "volume"):
+            x = getattr(self, name)
+            _check(_finite(x) and x > 0, name, "must be a positive finite number", x)
+        _check(_finite(self.initial_concentration) and self.initial_concentration >= 0,
+               "initial_concentration", "must be >= 0 mg/L", self.initial_concentration)
+        _check(all(isinstance(d, DoseEvent) for d in self.doses), "doses",
+               "must be DoseEvent objects", self.doses)
+
+
+@dataclass(frozen=True)
+class SubjectData:
+    """One subject's levels and doses in canonical units.
+
+    Attributes
+    ----------
+    subject : str
+    time : ndarray, h
+        Sample times, sorted.
+    conc : ndarray, mg/L
+        Measured levels; NaN where a BLQ level carries no number.
+    lloq : ndarray, mg/L
+        Limit of quantification per level (NaN when not given).
+    blq : ndarray of bool
+        True where the level is below its LLOQ (marked, or a number under LLOQ).
+    rows : ndarray of int
+        Line numbers of the levels in their file (for messages).
+    dose_start, dose_amount, dose_duration : ndarray, h, mg, h
+        Dose events (duration 0 for a bolus).
+    covariates : dict of str to float
+        From the subjects table; ``weight`` in kg.
+    notes : tuple of str
+        Data-handling notes (sorting, BLQ numbers below LLOQ).
+    initial_concentration : float, mg/L
+        Drug on board at time 0 from earlier therapy (decays with the subject's k);
+        from an ``initial_concentration [..]`` column of the subjects table.
+    """
+
+    subject: str
+    time: np.ndarray
+    conc: np.ndarray
+    lloq: np.ndarray
+    blq: np.ndarray
+    rows: np.ndarray
+    dose_start: np.ndarray
+    dose_amount: np.ndarray
+    dose_duration: np.ndarray
+    covariates: dict[str, float] = field(default_factory=dict)
+    notes: tuple[str, ...] = ()
+    initial_concentration: float = 0.0
+
+    def __post_init__(self) -> None:
+        n = np.shape(self.time)[0] if np.ndim(self.time) else -1
+        for name in ("conc", "lloq", "blq", "rows"):
+            _check(np.shape(getattr(self, name)) == (n,), name,
+                   f"must have one value per sample time ({n})", np.shape(getattr(self, name)))
+        e = np.shape(self.dose_start)
+        for name in ("dose_amount", "dose_duration"):
+            _check(np.shape(getattr(self, name)) == e, name,
+                   "must have one value per dose start", np.shape(getattr(self, name)))
+        _check(_finite(self.initial_concentration) and self.initial_concentration >= 0,
+               "initial_concentration", "must be >= 0 mg/L", self.initial_concentration)
+
+    @property
+    def weight(self) -> float | None:
+        return self.covariates.get("weight")
+
+    @property
+    def n_blq(self) -> int:
+        return int(self.blq.sum())
+
+
+@dataclass
+class Study:
+    """Subjects that passed the checks, and those that did not.
+
+    Attributes
+    ----------
+    subjects : list of SubjectData
+    failures : list of (str, PkcalcInputError)
+        ``("subject 'X'", problems)`` for subjects left out.
+    warnings : list of str
+        Table-level warnings (unknown columns, subjects in one table only).
+    files : list of str
+        The table files read.
+    options : dict
+        Raw option tables of a study TOML (``fit``, ``nca``, ``population``).
+    title : str or None
+    """
+
+    subjects: list[SubjectData]
+    failures: list[tuple[str, PkcalcInputError]] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    files: list[str] = field(default_factory=list)
+    options: dict[str, Any] = field(default_factory=dict)
+    title: str | None = None
+    output: dict[str, str] = field(default_factory=dict)
+
+    def subject(self, name: str) -> SubjectData:
+        for s in self.subjects:
+            if s.subject == name:
+                return s
+        raise KeyError(name)
+
+
+@dataclass(frozen=True)
+class Prior:
+    """Population prior for MAP estimation (canonical units).
+
+    Attributes
+    ----------
+    clearance, volume : float
+        Typical values, L/h and L (or L/h/kg and L/kg when ``per_kg``).
+    clearance_per_kg, volume_per_kg : bool
+    omega_clearance, omega_volume : float
+        SD of ln CL and ln V between subjects.
+    correlation : float
+        Correlation of ln CL and ln V.
+    additive, proportional : float
+        Residual error: additive SD (mg/L) and proportional SD (fraction).
+    source : str
+        Where the prior came from (file name).
+    """
+
+    clearance: float
+    volume: float
+    omega_clearance: float
+    omega_volume: float
+    correlation: float = 0.0
+    additive: float = 0.0
+    proportional: float = 0.0
+    clearance_per_kg: bool = False
+    volume_per_kg: bool = False
+    source: str = ""
+
+    def __post_init__(self) -> None:
+        for name in ("clearance", "volume"):
+            x = getattr(self, name)
+            _check(_finite(x) and x > 0, name, "must be a positive finite typical value", x)
+        for name in ("omega_clearance", "omega_volume", "additive", "proportional"):
+            x = getattr(self, name)
+            _check(_finite(x) and x >= 0, name, "must be a finite SD >= 0", x)
+        _check(_finite(self.correlation) and -1 < self.correlation < 1, "correlation",
+               "must be in (-1, 1)", self.correlation)
+        _check(self.additive > 0 or self.proportional > 0, "additive/proportional",
+               "need a residual error (one of them > 0)", (self.additive, self.proportional))
+
+    @property
+    def error_model(self) -> str:
+        if self.additive > 0 and self.proportional > 0:
+            return "combined"
+        return "additive" if self.additive > 0 else "proportional"
+
+    def typical(self, weight: float | None) -> tuple[float, float]:
+        """Typical clearance and volume for a subject (per-kg values need the weight)."""
+        if (self.clearance_per_kg or self.volume_per_kg) and weight is None:
+            raise ValueError("the prior is per kg but the subject has no weight")
+        cl = self.clearance * (weight if self.clearance_per_kg else 1.0)
+        v = self.volume * (weight if self.volume_per_kg else 1.0)
+        return cl, v
+
+
+@dataclass(frozen=True)
+class FitOptions:
+    """Validated fit options.
+
+    ``weighting`` (least squares) and ``error_model`` (likelihood) exclude each
+    other; a ``prior`` makes the fit a MAP estimate with the prior's error model.
+    """
+
+    weighting: str | None = None
+    error_model: str | None = "proportional"
+    blq: str = "likelihood"
+    ci: str = "wald"
+    prior: Prior | None = None
+    starts: int = 3
+    with_nca: bool = False
+    nca_threshold: float = 20.0
+
+    def __post_init__(self) -> None:
+        _check(self.weighting is None or self.weighting in WEIGHTINGS, "weighting",
+               f"must be one of {', '.join(WEIGHTINGS)} (or None)", self.weighting)
+        _check(self.error_model is None or self.error_model in ERROR_MODELS, "error_model",
+               f"must be one of {', '.join(ERROR_MODELS)} (or None)", self.error_model)
+        _check((self.weighting is None) != (self.error_model is None) or
+               self.prior is not None, "error_model",
+               "and weighting exclude each other: give exactly one", self.error_model)
+        _check(self.blq in BLQ_METHODS, "blq", f"must be one of {', '.join(BLQ_METHODS)}",
+               self.blq)
+        _check(not (self.blq == "likelihood" and self.weighting is not None), "blq",
+               "'likelihood' (Beal's M3) needs an error model, not a weighting", self.blq)
+        _check(self.ci in CI_METHODS, "ci", f"must be one of {', '.join(CI_METHODS)}", self.ci)
+        _check(self.prior is None or isinstance(self.prior, Prior), "prior",
+               "must be a Prior or None", self.prior)
+        _check(isinstance(self.starts, int) and not isinstance(self.starts, bool)
+               and 1 <= self.starts <= 20, "starts", "must be a whole number from 1 to 20",
+               self.starts)
+        _check(_finite(self.nca_threshold) and self.nca_threshold > 0, "nca_threshold",
+               "must be a positive percentage", self.nca_threshold)
+
+    @property
+    def method(self) -> str:
+        if self.prior is not None:
+            return "map"
+        return "least_squares" if self.weighting else "likelihood"
+
+
+@dataclass(frozen=True)
+class PopulationOptions:
+    """Validated options of ``pkcalc population``."""
+
+    method: str = "iterative"
+    error_model: str = "proportional"
+    blq: str = "likelihood"
+    covariate: str = "none"
+    reference_weight: float = 70.0
+    bootstrap: int = 0
+    seed: int = 1
+    vpc_replicates: int = 200
+
+    def __post_init__(self) -> None:
+        _check(self.method in ("two-stage", "iterative"), "method",
+               "must be 'two-stage' or 'iterative'", self.method)
+        _check(self.error_model in ERROR_MODELS, "error_model",
+               f"must be one of {', '.join(ERROR_MODELS)}", self.error_model)
+        _check(self.blq in BLQ_METHODS, "blq", f"must be one of {', '.join(BLQ_METHODS)}",
+               self.blq)
+        _check(self.covariate in ("none", "allometric", "estimated", "per_kg"), "covariate",
+               "must be none, allometric, estimated or per_kg", self.covariate)
+        _check(_finite(self.reference_weight) and self.reference_weight > 0,
+               "reference_weight", "must be a positive weight in kg", self.reference_weight)
+        for name, hi in (("bootstrap", 10000), ("seed", 2**32 - 1), ("vpc_replicates", 10000)):
+            x = getattr(self, name)
+            _check(isinstance(x, int) and not isinstance(x, bool) and 0 <= x <= hi, name,
+                   f"must be a whole number from 0 to {hi}", x)
+
+
+@dataclass(frozen=True)
+class DesignCase:
+    """A validated design request in canonical units.
+
+    ``options`` holds keyword arguments of the :mod:`pkcalc.design` function
+    that ``method`` names (canonical numbers, :class:`~pkcalc.design.Limits`
+    built later from ``*_limits`` pairs).
+    """
+
+    name: str
+    method: str
+    clearance: float | None
+    volume: float | None
+    options: dict[str, Any]
+    weight: float | None = None
+
+
