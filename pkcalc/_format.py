@@ -2,8 +2,32 @@
 
 from __future__ import annotations
 
+import html
 import math
 from collections.abc import Sequence
+from typing import Any
+
+#: The clinical-use caution carried by every human-facing output.
+CAUTION = (
+    "CAUTION: These results are model estimates for research and review. They assume "
+    "linear one-compartment kinetics and the inputs as given. They are not dosing orders: "
+    "dosing decisions belong to licensed clinicians and pharmacists following local "
+    "protocols and product labelling. Check every number before any clinical use."
+)
+
+#: One-line form for plot footers.
+CAUTION_SHORT = (
+    "Model estimates for research and review only; dosing decisions belong to licensed "
+    "clinicians and pharmacists under local protocols."
+)
+
+
+def result_html(summary: str, frame: Any = None) -> str:
+    """Notebook view of a result: the caution, the table (if any) and the summary text."""
+    table = frame.to_html(index=False, na_rep="", float_format=lambda x: f"{x:.4g}") \
+        if frame is not None else ""
+    return (f'<div class="pkcalc-result"><p><strong>{html.escape(CAUTION_SHORT)}</strong></p>'
+            f"{table}<pre>{html.escape(summary)}</pre></div>")
 
 __all__ = ["fmt", "format_table", "short"]
 

@@ -225,61 +225,41 @@ def _study_args(p: argparse.ArgumentParser) -> None:
     p.add_argument("--subjects", metavar="S.csv", help="subjects table (weights, covariates)")
 
 
-def _nca_options(args: argparse.Namespace, study) -> dict:
-    from .schema import nca_options
-
-    raw = dict(study.options.get("nca", {}))
-    if args.auc_method:
-        raw["auc_method"] = args.auc_method
-    if args.blq_rule:
-        raw["blq"] = args.blq_rule
+def _nca_overrides(args: argparse.Namespace) -> dict:
+    """The NCA options given on the command line (the boundary merges them)."""
+    points = {}
     for item in args.terminal or []:
         sid, sep, times = item.partition("=")
         if not sep:
             raise PkcalcInputError(f"'{item}' is not SUBJECT=TIME,TIME,...", field="--terminal",
                                    expected='e.g. --terminal "3=8 h,12 h,24 h"')
-        raw.setdefault("terminal_points", {})
-        raw["terminal_points"] = {**raw["terminal_points"],
-                                  sid.strip(): [t.strip() for t in times.split(",")]}
-    return nca_options(raw, file=study.files[0] if args.study else None)
+        points[sid.strip()] = [t.strip() for t in times.split(",")]
+    return {"auc_method": args.auc_method, "blq": args.blq_rule,
+            "terminal_points": points or None}
 
 
 def cmd_fit(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_fit
-    from .schema.fitopts import fit_options
+    from .schema import study_fit_options
 
     study = load_study_input(args.study, args.levels, args.doses, args.subjects)
-    raw = dict(study.options.get("fit", {}))
-    cli = {"weighting": args.weighting, "error_model": args.error_model, "blq": args.blq,
-           "ci": args.ci, "prior": args.prior, "starts": args.starts}
-    if args.weighting:
-        raw.pop("error_model", None)
-    if args.error_model:
-        raw.pop("weighting", None)
-    raw.update({k: v for k, v in cli.items() if v is not None})
-    if args.with_nca:
-        raw["with_nca"] = True
-    if args.nca_threshold is not None:
-        raw["nca_threshold"] = args.nca_threshold
-    base = Path(args.study).parent if args.study and "prior" not in cli else None
-    if args.prior:
-        base = None
-    options = fit_options(raw, base=base, file=args.study)
+    options = study_fit_options(study, {
+        "weighting": args.weighting, "error_model": args.error_model, "blq": args.blq,
+        "ci": args.ci, "prior": args.prior, "starts": args.starts,
+        "with_nca": True if args.with_nca else None, "nca_threshold": args.nca_threshold})
     return _finish(run_fit(study, options, colour=_colour()), args)
 
 
 def cmd_population(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_population
-    from .schema.fitopts import population_options
+    from .schema import study_population_options
 
     study = load_study_input(args.study, args.levels, args.doses, args.subjects)
-    raw = dict(study.options.get("population", {}))
-    raw.update({k: v for k, v in {
+    options = study_population_options(study, {
         "method": args.method, "error_model": args.error_model, "blq": args.blq,
         "covariate": args.covariate, "reference_weight": args.reference_weight,
         "bootstrap": args.bootstrap, "seed": args.seed,
-        "vpc_replicates": args.vpc_replicates}.items() if v is not None})
-    options = population_options(raw, file=args.study)
+        "vpc_replicates": args.vpc_replicates})
     return _finish(run_population(study, options, colour=_colour()), args)
 
 
@@ -352,9 +332,11 @@ def cmd_batch(args: argparse.Namespace) -> int:
 
 def cmd_nca(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_nca
+    from .schema import study_nca_options
 
     study = load_study_input(args.study, args.levels, args.doses, args.subjects)
-    return _finish(run_nca(study, _nca_options(args, study), colour=_colour()), args)
+    options = study_nca_options(study, _nca_overrides(args))
+    return _finish(run_nca(study, options, colour=_colour()), args)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -381,8 +363,12 @@ def _demo(out: Path, args: argparse.Namespace) -> int:
         write_outputs,
         write_report,
     )
-    from .schema import load_design_file, load_study_file, nca_options
-    from .schema.fitopts import fit_options, population_options
+    from .schema import (
+        load_design_file,
+        load_study_file,
+        study_fit_options,
+        study_population_options,
+    )
 
     runs = [run_predict(example_file("demo.toml"), colour=_colour())]
     design_file = example_file("demo-design.toml")
@@ -391,12 +377,11 @@ def _demo(out: Path, args: argparse.Namespace) -> int:
                            units=sfile.output.units(), inputs=[str(design_file)],
                            colour=_colour()))
     study = load_study_file(example_file("demo-study.toml"))
-    runs.append(run_nca(study, nca_options(study.options.get("nca")), colour=_colour()))
-    runs.append(run_fit(study, fit_options({**study.options.get("fit", {}), "with_nca": True}),
-                        colour=_colour()))
+    runs.append(run_nca(study, colour=_colour()))
+    runs.append(run_fit(study, study_fit_options(study, {"with_nca": True}), colour=_colour()))
     sparse = load_study_file(example_file("demo-sparse.toml"))
-    runs.append(run_population(sparse, population_options(
-        {**sparse.options.get("population", {}), "vpc_replicates": 100}), colour=_colour()))
+    runs.append(run_population(sparse, study_population_options(sparse, {"vpc_replicates": 100}),
+                               colour=_colour()))
     runs.append(run_verify(example_file("reference-cases.toml"), colour=_colour())[0])
     (out / "batch").mkdir(parents=True, exist_ok=True)
     runs.append(run_batch_command(str(example_file("demo-grid.toml")),

@@ -24,10 +24,13 @@ __all__ = [
     "BLQ_METHODS",
     "CI_METHODS",
     "ERROR_MODELS",
+    "NCA_AUC_METHODS",
+    "NCA_BLQ_RULES",
     "WEIGHTINGS",
     "DesignCase",
     "DoseEvent",
     "FitOptions",
+    "NcaOptions",
     "PopulationOptions",
     "Prior",
     "ScenarioInput",
@@ -42,6 +45,8 @@ WEIGHTINGS = ("uniform", "inverse_observed", "inverse_observed_squared",
 ERROR_MODELS = ("additive", "proportional", "combined")
 BLQ_METHODS = ("drop", "likelihood", "half_lloq")
 CI_METHODS = ("wald", "profile")
+NCA_AUC_METHODS = ("linear-up-log-down", "linear")
+NCA_BLQ_RULES = ("leading_zero", "zero", "drop")
 
 
 def _check(ok: bool, name: str, rule: str, value: Any) -> None:
@@ -397,6 +402,45 @@ class PopulationOptions:
             x = getattr(self, name)
             _check(isinstance(x, int) and not isinstance(x, bool) and 0 <= x <= hi, name,
                    f"must be a whole number from 0 to {hi}", x)
+
+
+@dataclass(frozen=True)
+class NcaOptions:
+    """Options of non-compartmental analysis.
+
+    Attributes
+    ----------
+    auc_method : str
+        ``linear-up-log-down`` (default) or ``linear``.
+    blq_rule : str
+        ``leading_zero`` (default), ``zero`` or ``drop``.
+    terminal_points : dict of str to tuple of float, h
+        Terminal points chosen by hand per subject (study clock).
+    r2_tolerance : float
+        Adjusted R2 within this of the best counts as a tie (more points win).
+    extrapolation_limit : float, percent
+        Flag an AUC extrapolated beyond this.
+    """
+
+    auc_method: str = "linear-up-log-down"
+    blq_rule: str = "leading_zero"
+    terminal_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
+    r2_tolerance: float = 1e-4
+    extrapolation_limit: float = 20.0
+
+    def __post_init__(self) -> None:
+        _check(self.auc_method in NCA_AUC_METHODS, "auc_method",
+               f"must be one of {', '.join(NCA_AUC_METHODS)}", self.auc_method)
+        _check(self.blq_rule in NCA_BLQ_RULES, "blq_rule",
+               f"must be one of {', '.join(NCA_BLQ_RULES)}", self.blq_rule)
+        _check(_finite(self.r2_tolerance) and 0 <= self.r2_tolerance <= 0.1, "r2_tolerance",
+               "must be a number from 0 to 0.1", self.r2_tolerance)
+        _check(_finite(self.extrapolation_limit) and 0 <= self.extrapolation_limit <= 100,
+               "extrapolation_limit", "must be a percentage from 0 to 100",
+               self.extrapolation_limit)
+        for sid, times in self.terminal_points.items():
+            _check(len(times) >= 2 and all(_finite(t) for t in times),
+                   f"terminal_points[{sid!r}]", "needs two or more finite times", times)
 
 
 @dataclass(frozen=True)

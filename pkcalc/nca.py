@@ -33,6 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._format import format_table, short
+from .core import NCA_AUC_METHODS, NcaOptions, SubjectData
 
 __all__ = [
     "AUC_METHODS",
@@ -42,6 +43,7 @@ __all__ = [
     "NcaResult",
     "TerminalPhase",
     "auc_segments",
+    "nca_of_subject",
     "nca_subject",
     "terminal_phase",
 ]
@@ -50,7 +52,7 @@ __all__ = [
 R2_TOLERANCE = 1e-4
 #: Flag an AUC extrapolated beyond this percentage.
 EXTRAPOLATION_LIMIT = 20.0
-AUC_METHODS = ("linear-up-log-down", "linear")
+AUC_METHODS = NCA_AUC_METHODS
 BLQ_RULES = {
     "leading_zero": "BLQ before the first measurable level counted as 0, later BLQ left out",
     "zero": "every BLQ level counted as 0",
@@ -234,6 +236,12 @@ class NcaResult:
         out["points_used"] = [float(x) for x in self.points_used]
         out["notes"] = list(self.notes)
         return out
+
+    def _repr_html_(self) -> str:
+        """Notebook view: the caution, the table and the summary."""
+        from ._format import result_html
+
+        return result_html(self.summary(), None)
 
     def summary(self) -> str:
         """Plain-text table (canonical units)."""
@@ -475,6 +483,27 @@ def nca_subject(subject: str, time, conc, blq, dose_start, dose_amount, dose_dur
         notes.append("no terminal slope: AUC to infinity, clearance, volumes and MRT are not "
                      "computed")
     return _with(base, notes=tuple(notes), **out)
+
+
+def nca_of_subject(subject: SubjectData, options: NcaOptions | None = None) -> NcaResult:
+    """Non-compartmental analysis of one subject's data with the given options.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from pkcalc.core import SubjectData
+    >>> t = np.array([0.5, 1, 2, 4, 8, 12.0])
+    >>> s = SubjectData("A", t, 10 * np.exp(-0.2 * t), np.full(6, np.nan), np.zeros(6, bool),
+    ...                 np.arange(6), np.array([0.0]), np.array([500.0]), np.array([0.0]))
+    >>> round(float(nca_of_subject(s).terminal_slope), 6)
+    0.2
+    """
+    o = options or NcaOptions()
+    return nca_subject(subject.subject, subject.time, subject.conc, subject.blq,
+                       subject.dose_start, subject.dose_amount, subject.dose_duration,
+                       auc_method=o.auc_method, blq_rule=o.blq_rule,
+                       terminal_times=o.terminal_points.get(subject.subject),
+                       r2_tolerance=o.r2_tolerance, extrapolation_limit=o.extrapolation_limit)
 
 
 def _with(base: NcaResult, **changes) -> NcaResult:

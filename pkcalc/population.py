@@ -137,6 +137,12 @@ class PopulationResult:
         lines += [f"warning: {w}" for w in self.warnings]
         return "\n".join(lines)
 
+    def _repr_html_(self) -> str:
+        """Notebook view: the caution, the table and the summary."""
+        from ._format import result_html
+
+        return result_html(self.summary(), self.to_frame())
+
     def to_frame(self):
         """One row per subject: individual estimates, etas, weight."""
         import pandas as pd

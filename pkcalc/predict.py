@@ -102,6 +102,12 @@ class ScenarioPrediction:
         return model.concentration(np.atleast_1d(np.asarray(t, float)), *self.model_events(),
                                    self.parameters["clearance"], self.parameters["volume"])
 
+    def _repr_html_(self) -> str:
+        """Notebook view: the caution, the table and the summary."""
+        from ._format import result_html
+
+        return result_html(self.summary(), self.to_frame())
+
     def to_frame(self):
         """The profile as a DataFrame with columns ``time [h]``, ``concentration [mg/L]``."""
         import pandas as pd

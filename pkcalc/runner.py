@@ -300,189 +300,97 @@ def load_study_input(study: str | None = None, levels: str | None = None,
     return load_study(levels, doses, subjects)
 
 
-def run_nca(study, options: dict[str, Any], *, colour: bool = False) -> Run:
-    """``pkcalc nca``: every subject of a study."""
-    from .nca import BLQ_RULES, nca_subject
+def run_nca(study, options=None, *, colour: bool = False) -> Run:
+    """``pkcalc nca``: every subject of a study (:func:`pkcalc.api.nca_study`)."""
+    from .api import nca_study
     from .report.html import nca_sections
-    from .report.nca import nca_json, nca_text
 
-    conv = report.UnitConverter(study.output or None)
-    results = []
-    for s in study.subjects:
-        results.append(nca_subject(
-            s.subject, s.time, s.conc, s.blq, s.dose_start, s.dose_amount, s.dose_duration,
-            auc_method=options["auc_method"], blq_rule=options["blq_rule"],
-            terminal_times=options["terminal_points"].get(s.subject),
-            **{k: options[k] for k in ("r2_tolerance", "extrapolation_limit") if k in options}))
-    unknown = sorted(set(options["terminal_points"]) - {s.subject for s in study.subjects})
-    warnings = list(study.warnings)
-    if unknown:
-        warnings.append(f"terminal points given for unknown subjects: {', '.join(unknown)}")
-    settings = {"auc_method": options["auc_method"],
-                "blq": BLQ_RULES[options["blq_rule"]],
-                "times": "hours after the start of the reference dose"}
-    doc = nca_json(results, conv, title=study.title, failures=study.failures,
-                   settings=settings)
-    doc["warnings"] = warnings
-    text = nca_text(results, conv, title=study.title, failures=study.failures,
-                    warnings=warnings, settings=settings, colour=colour)
-    if not results:
+    result = nca_study(study, options)
+    if not result.results:
         raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
                                or "no subjects to analyse")
+    conv = report.UnitConverter(study.output or None)
+    doc = result.document(conv)
+    text = result.summary(conv, colour=colour)
 
     def figures() -> dict[str, Any]:
         from .plots import nca_figure
 
-        return {r.subject: nca_figure(r, conv) for r in results}
+        return {r.subject: nca_figure(r, conv) for r in result.results}
 
     def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
-        import pandas as pd
-
-        slugs = unique_slugs([r.subject for r in results])
+        slugs = unique_slugs([r.subject for r in result.results])
         targets = [out / "nca.csv", out / "nca.json"] + [out / f"nca-{s}.png" for s in slugs]
         check_not_input(targets, study.files)
         written = [report.write_atomic(out / f"nca-{s}.png", pngs[r.subject])
-                   for r, s in zip(results, slugs, strict=True) if r.subject in pngs]
-        frame = pd.DataFrame(doc["subjects"])
-        frame["points_used"] = frame["points_used"].map(lambda xs: " ".join(f"{x:g}" for x in xs))
-        frame["notes"] = frame["notes"].map(" | ".join)
-        written.append(report.write_atomic(out / "nca.csv", frame.to_csv(index=False)))
+                   for r, s in zip(result.results, slugs, strict=True) if r.subject in pngs]
+        written.append(report.write_atomic(out / "nca.csv",
+                                           result.to_frame(conv).to_csv(index=False)))
         written.append(report.write_atomic(out / "nca.json", report.dumps(doc)))
         return written
 
     return Run("nca", EXIT_PARTIAL if study.failures else EXIT_OK, doc, text,
                list(study.files), study.title or "pkcalc nca", figures, files,
-               lambda pngs: nca_sections(doc, pngs), warnings=warnings)
+               lambda pngs: nca_sections(doc, pngs), warnings=result.warnings)
 
 
-def run_fit(study, options, *, colour: bool = False) -> Run:
-    """``pkcalc fit``: every subject of a study, optionally beside NCA."""
-    from .fit import compare_with_nca, fit_subjects
-    from .report.fit import fit_json, fit_text
+def run_fit(study, options=None, *, colour: bool = False) -> Run:
+    """``pkcalc fit``: every subject of a study, optionally beside NCA
+    (:func:`pkcalc.api.fit_study`)."""
+    from .api import fit_study
     from .report.html import fit_sections
 
+    result = fit_study(study, options)
     conv = report.UnitConverter(study.output or None)
-    results, unfit = fit_subjects(study.subjects, options)
-    failures = list(study.failures) + [
-        (f"subject '{sid}'", PkcalcInputError(reason, item=f"subject '{sid}'"))
-        for sid, reason in unfit]
-    if not results:
-        raise PkcalcInputError([p for _, err in failures for p in err.problems]
-                               or "no subject could be fitted")
-    comparisons = None
-    if options.with_nca:
-        from .nca import nca_subject
-        from .schema import nca_options
-
-        nopts = nca_options(study.options.get("nca"))
-        ncas = [nca_subject(s.subject, s.time, s.conc, s.blq, s.dose_start, s.dose_amount,
-                            s.dose_duration, auc_method=nopts["auc_method"],
-                            blq_rule=nopts["blq_rule"],
-                            terminal_times=nopts["terminal_points"].get(s.subject))
-                for s in study.subjects]
-        comparisons = compare_with_nca(results, ncas, options.nca_threshold)
-    settings = {"method": options.method.replace("_", " "),
-                "error model": options.error_model or "-",
-                "weighting": options.weighting or "-", "BLQ": options.blq,
-                "intervals": options.ci, "starts": options.starts}
-    if options.prior is not None:
-        settings["prior"] = options.prior.source or "inline"
-    doc = fit_json(results, conv, title=study.title, failures=failures,
-                   comparisons=comparisons, settings=settings)
-    doc["warnings"] = list(study.warnings)
-    text = fit_text(results, conv, title=study.title, failures=failures,
-                    comparisons=comparisons, warnings=study.warnings, settings=settings,
-                    colour=colour)
+    doc = result.document(conv)
+    text = result.summary(conv, colour=colour)
 
     def figures() -> dict[str, Any]:
         from .plots import diagnostics_figure, fit_figure
 
-        figs = {r.subject: fit_figure(r, conv) for r in results}
-        figs["__diagnostics__"] = diagnostics_figure(results, conv)
+        figs = {r.subject: fit_figure(r, conv) for r in result.results}
+        figs["__diagnostics__"] = diagnostics_figure(result.results, conv)
         return figs
 
     def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
-        import pandas as pd
-
-        slugs = unique_slugs([r.subject for r in results])
+        slugs = unique_slugs([r.subject for r in result.results])
         targets = [out / "fit.csv", out / "fit-levels.csv", out / "fit.json",
                    out / "diagnostics.png"] + [out / f"fit-{s}.png" for s in slugs]
         check_not_input(targets, study.files)
         written = [report.write_atomic(out / f"fit-{s}.png", pngs[r.subject])
-                   for r, s in zip(results, slugs, strict=True)]
+                   for r, s in zip(result.results, slugs, strict=True)]
         written.append(report.write_atomic(out / "diagnostics.png", pngs["__diagnostics__"]))
-        rows = []
-        for d in doc["subjects"]:
-            row = {"subject": d["subject"], "converged": d["converged"]}
-            for name, e in d["estimates"].items():
-                unit = doc["units"][{"half_life": "time"}.get(name, name)]
-                for key in ("value", "se", "rse_percent", "ci_low", "ci_high"):
-                    suffix = "" if key == "value" else f"_{key}"
-                    row[f"{name}{suffix} [{'%' if key == 'rse_percent' else unit}]"] = e[key]
-            row.update({k: d[k] for k in ("objective", "aic", "bic", "n_obs", "n_blq",
-                                          "starts", "starts_agreed")})
-            row["warnings"] = " | ".join(d["warnings"])
-            rows.append(row)
-        written.append(report.write_atomic(out / "fit.csv", pd.DataFrame(rows).to_csv(
-            index=False)))
-        levels = pd.concat([r.to_frame() for r in results])
-        written.append(report.write_atomic(out / "fit-levels.csv", levels.to_csv(index=False)))
+        written.append(report.write_atomic(out / "fit.csv",
+                                           result.to_frame(conv).to_csv(index=False)))
+        written.append(report.write_atomic(out / "fit-levels.csv",
+                                           result.levels_frame().to_csv(index=False)))
         written.append(report.write_atomic(out / "fit.json", report.dumps(doc)))
         return written
 
-    return Run("fit", EXIT_PARTIAL if failures else EXIT_OK, doc, text, list(study.files),
-               study.title or "pkcalc fit", figures, files,
+    return Run("fit", EXIT_PARTIAL if result.failures else EXIT_OK, doc, text,
+               list(study.files), study.title or "pkcalc fit", figures, files,
                lambda pngs: fit_sections(doc, pngs), warnings=list(study.warnings))
 
 
-def run_population(study, options, *, colour: bool = False) -> Run:
-    """``pkcalc population``: two-stage or iterative two-stage estimates."""
-    from .core import FitOptions
-    from .population import bootstrap, iterative_two_stage, simulate_design, two_stage
+def run_population(study, options=None, *, colour: bool = False) -> Run:
+    """``pkcalc population``: two-stage or iterative two-stage estimates
+    (:func:`pkcalc.api.population_study`)."""
+    from .api import population_study
+    from .population import simulate_design
     from .report.html import population_sections
     from .report.population import population_json, population_text
+    from .schema import study_population_options
 
+    options = options if options is not None else study_population_options(study)
+    result = population_study(study, options)
     conv = report.UnitConverter(study.output or None)
     subjects = study.subjects
-    try:
-        if options.method == "two-stage":
-            result = two_stage(subjects, FitOptions(error_model=options.error_model,
-                                                    blq=options.blq),
-                               covariate=options.covariate,
-                               reference_weight=options.reference_weight)
-        else:
-            result = iterative_two_stage(subjects, error_model=options.error_model,
-                                         covariate=options.covariate,
-                                         reference_weight=options.reference_weight,
-                                         blq=options.blq)
-    except ValueError as exc:
-        # the subjects left out explain why too few remain: name them first
-        raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
-                               + PkcalcInputError(str(exc), file=study.files[0] if study.files
-                                                  else None).problems) from None
-    if options.bootstrap and options.method == "iterative":
-        result.bootstrap.update(bootstrap(subjects, result, options.bootstrap, options.seed,
-                                          error_model=options.error_model,
-                                          covariate=options.covariate,
-                                          reference_weight=options.reference_weight,
-                                          blq=options.blq))
-        for k in ("clearance", "volume"):
-            b = result.bootstrap.get(k)
-            if isinstance(b, dict):
-                result.typical_se[k] = b["se"]
-                result.typical_ci[k] = (b["ci_low"], b["ci_high"])
-        result.notes.append(f"standard errors and 95 % intervals of the typical values from "
-                            f"{options.bootstrap} bootstrap replicates over subjects (seed "
-                            f"{options.seed})")
-    elif options.method == "iterative":
-        result.notes.append("standard errors of the typical values: sqrt(omega^2/N) on the log "
-                            "scale (run --bootstrap N for bootstrap intervals)")
     failures = list(study.failures) + [
         (f"subject '{sid}'", PkcalcInputError(reason, item=f"subject '{sid}'"))
         for sid, reason in result.failures]
-    settings = {"method": options.method, "error model": options.error_model,
-                "BLQ": options.blq, "covariate": options.covariate,
-                "reference weight": f"{options.reference_weight:g} kg"}
+    settings = {"method": options.method, "error_model": options.error_model,
+                "blq": options.blq, "covariate": options.covariate,
+                "reference_weight": f"{options.reference_weight:g} kg"}
     doc = population_json(result, conv, title=study.title, failures=failures,
                           settings=settings)
     doc["warnings"] = list(study.warnings) + list(result.warnings)

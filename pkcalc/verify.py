@@ -86,6 +86,12 @@ class VerifyResult:
         return format_table(["case", "quantity", "expected", "computed", "difference", "unit",
                              "tolerance", "result"], rows)
 
+    def _repr_html_(self) -> str:
+        """Notebook view: the caution, the table and the summary."""
+        from ._format import result_html
+
+        return result_html(self.summary(), self.to_frame())
+
     def to_frame(self):
         """One row per check."""
         import pandas as pd

@@ -322,6 +322,12 @@ class DesignResult:
         """The first proposal."""
         return self.regimens[0] if self.regimens else None
 
+    def _repr_html_(self) -> str:
+        """Notebook view: the caution, the table and the summary."""
+        from .._format import result_html
+
+        return result_html(self.summary(), self.to_frame())
+
     def to_frame(self):
         """One row per proposed regimen (canonical units in the headers)."""
         import pandas as pd

@@ -149,6 +149,12 @@ class FitResult:
         return model.concentration(np.asarray(t, float), start, amount, duration,
                                    self.clearance, self.volume)
 
+    def _repr_html_(self) -> str:
+        """Notebook view: the caution, the table and the summary."""
+        from .._format import result_html
+
+        return result_html(self.summary(), self.to_frame())
+
     def to_frame(self):
         """Per-level diagnostics: time, observed, predicted, residuals, BLQ flag."""
         import pandas as pd

@@ -11,21 +11,8 @@ from typing import Any
 import numpy as np
 
 from .. import __version__
+from .._format import CAUTION, CAUTION_SHORT  # noqa: F401  (one text, used everywhere)
 from ..units import CANONICAL, display_factor
-
-#: The clinical-use caution carried by every human-facing output.
-CAUTION = (
-    "CAUTION: These results are model estimates for research and review. They assume "
-    "linear one-compartment kinetics and the inputs as given. They are not dosing orders: "
-    "dosing decisions belong to licensed clinicians and pharmacists following local "
-    "protocols and product labelling. Check every number before any clinical use."
-)
-
-#: One-line form for plot footers.
-CAUTION_SHORT = (
-    "Model estimates for research and review only; dosing decisions belong to licensed "
-    "clinicians and pharmacists under local protocols."
-)
 
 #: Profiles with at most this many points are printed in full on the terminal.
 PROFILE_ROWS = 25

@@ -73,8 +73,9 @@ def fit_text(results, conv: UnitConverter, *, title: str | None = None, failures
     dicts = [fit_subject_dict(r, conv) for r in results]
     sections = []
     if settings:
-        sections.append("Settings: " + "; ".join(f"{k.replace('_', ' ')}: {v}"
-                                                  for k, v in settings.items()))
+        sections.append("Settings: " + "; ".join(
+            f"{k.replace('_', ' ')}: {'-' if v is None else str(v).replace('_', ' ')}"
+            for k, v in settings.items()))
     rows = []
     for d in dicts:
         e = d["estimates"]

@@ -80,8 +80,9 @@ def nca_text(results, conv: UnitConverter, *, title: str | None = None, failures
 
     sections = []
     if settings:
-        sections.append("Settings: " + "; ".join(f"{k.replace('_', ' ')}: {v}"
-                                                  for k, v in settings.items()))
+        sections.append("Settings: " + "; ".join(
+            f"{k.replace('_', ' ')}: {'-' if v is None else str(v).replace('_', ' ')}"
+            for k, v in settings.items()))
     sections.append(table(_MAIN, dicts))
     steady = [d for d in dicts if d["mode"] == "steady state"]
     if steady:

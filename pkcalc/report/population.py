@@ -57,8 +57,9 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
     doc = population_json(result, conv, title=title, failures=failures, settings=settings)
     sections = []
     if settings:
-        sections.append("Settings: " + "; ".join(f"{k.replace('_', ' ')}: {v}"
-                                                  for k, v in settings.items()))
+        sections.append("Settings: " + "; ".join(
+            f"{k.replace('_', ' ')}: {'-' if v is None else str(v).replace('_', ' ')}"
+            for k, v in settings.items()))
     rows = []
     for k in ("clearance", "volume"):
         ci = doc["typical_ci"].get(k)

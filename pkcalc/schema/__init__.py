@@ -58,18 +58,22 @@ __all__ = [
     "read_toml",
     "resolve_parameters",
     "resolve_partial",
+    "study_fit_options",
+    "study_nca_options",
+    "study_population_options",
     "validation_problems",
 ]
 
 
-_LAZY = {"load_study", "load_study_file", "nca_options"}
+_LAZY = {"load_study", "load_study_file", "nca_options", "study_fit_options",
+         "study_nca_options", "study_population_options"}
 
 
 def __getattr__(name: str):
     """Study tables need pandas; load them on first use so that ``pkcalc predict``
     starts quickly."""
     if name in _LAZY:
-        from . import study
+        from . import options, study
 
-        return getattr(study, name)
+        return getattr(options if name.startswith("study_") else study, name)
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..core import Study, SubjectData
+from ..core import NCA_AUC_METHODS, NCA_BLQ_RULES, NcaOptions, Study, SubjectData
 from ..errors import PkcalcInputError, Problem
 from ..units import KINDS, NUMERIC_RANGE, parse_header, parse_unit
 from .base import read_toml
@@ -414,14 +414,13 @@ def load_study_file(path: str | Path, *, extra_sections: tuple[str, ...] = ()) -
 
 
 # --------------------------------------------------------------------------- options
-def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> dict[str, Any]:
+def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOptions:
     """Validate the ``[nca]`` options (or the same keys from the command line).
 
     Keys: ``auc_method`` (``linear-up-log-down`` | ``linear``), ``blq``
     (``leading_zero`` | ``zero`` | ``drop``), ``terminal_points`` (subject ->
     list of times with units), ``r2_tolerance``, ``extrapolation_limit`` (percent).
     """
-    from ..nca import AUC_METHODS, BLQ_RULES
     from ..units import to_canonical
 
     raw = dict(raw or {})
@@ -432,19 +431,20 @@ def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> dict[
         problems.append(Problem("unknown key", file=file, field=f"nca.{key}",
                                 expected=", ".join(sorted(allowed))))
     method = raw.get("auc_method", "linear-up-log-down")
-    if method not in AUC_METHODS:
+    if method not in NCA_AUC_METHODS:
         problems.append(Problem(f"unknown AUC method '{method}'", file=file,
-                                field="nca.auc_method", expected=", ".join(AUC_METHODS)))
+                                field="nca.auc_method", expected=", ".join(NCA_AUC_METHODS)))
     out["auc_method"] = method
     rule = raw.get("blq", "leading_zero")
-    if rule not in BLQ_RULES:
+    if rule not in NCA_BLQ_RULES:
         problems.append(Problem(f"unknown BLQ rule '{rule}'", file=file, field="nca.blq",
-                                expected=", ".join(BLQ_RULES)))
+                                expected=", ".join(NCA_BLQ_RULES)))
     out["blq_rule"] = rule
     for key, lo, hi in (("r2_tolerance", 0.0, 0.1), ("extrapolation_limit", 0.0, 100.0)):
         if key in raw:
             value = raw[key]
-            if not isinstance(value, int | float) or not lo <= value <= hi:
+            if not isinstance(value, int | float) or isinstance(value, bool) \
+                    or not lo <= value <= hi:
                 problems.append(Problem(f"must be a number from {lo:g} to {hi:g}", file=file,
                                         field=f"nca.{key}"))
             else:
@@ -459,8 +459,9 @@ def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> dict[
         try:
             if not isinstance(times, list) or len(times) < 2:
                 raise PkcalcInputError("give at least two times")
-            terminal[str(sid)] = [to_canonical(x, "time", field=f"nca.terminal_points.{sid}")
-                                  for x in times]
+            terminal[str(sid)] = tuple(to_canonical(x, "time",
+                                                    field=f"nca.terminal_points.{sid}")
+                                       for x in times)
         except PkcalcInputError as exc:
             problems += [Problem(p.message, file=file, field=f"nca.terminal_points.{sid}",
                                  expected="a list of times such as ['8 h', '12 h', '24 h']")
@@ -468,4 +469,4 @@ def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> dict[
     out["terminal_points"] = terminal
     if problems:
         raise PkcalcInputError(problems)
-    return out
+    return NcaOptions(**out)

@@ -1,0 +1,319 @@
+"""Study-level jobs for scripts and notebooks: one call per job, a result object back.
+
+>>> import pkcalc
+>>> study = pkcalc.load_study_file(pkcalc.example_file("demo-study.toml"))
+>>> fit = pkcalc.fit_study(study)                      # every subject, one result
+>>> round(fit.subject("V01").clearance, 2)
+4.92
+>>> nca = pkcalc.nca_study(study)
+>>> nca.to_frame().shape[0] == len(study.subjects)
+True
+
+Each result has plain attributes, ``summary()`` (the text ``pkcalc`` prints,
+caution first), ``to_frame()`` (the table ``pkcalc`` writes with ``--out``) and
+``_repr_html_()`` for notebooks.  Options come from the study file's ``[fit]``,
+``[nca]`` or ``[population]`` table, overridden by keyword arguments with the
+command-line names (``error_model="combined"``, ``blq="drop"``, ...), or as a
+ready options object (:class:`pkcalc.core.FitOptions`, ...).  Numbers are in
+canonical units unless a unit map (the study file's ``[output]`` table, or
+``units=``) says otherwise.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from typing import Any
+
+from ._format import result_html
+from .core import FitOptions, NcaOptions, PopulationOptions, Study
+from .errors import PkcalcInputError
+
+__all__ = ["StudyFit", "StudyNca", "fit_study", "nca_study", "population_study"]
+
+
+def _converter(study: Study, units: dict[str, str] | None):
+    from .report import UnitConverter
+
+    return UnitConverter(units or study.output or None)
+
+
+def _subject_failures(study: Study, extra=()) -> list[tuple[str, PkcalcInputError]]:
+    return list(study.failures) + [
+        (f"subject '{sid}'", PkcalcInputError(reason, item=f"subject '{sid}'"))
+        for sid, reason in extra]
+
+
+# --------------------------------------------------------------------------- NCA
+@dataclass
+class StudyNca:
+    """Non-compartmental analysis of every subject of a study.
+
+    Attributes
+    ----------
+    results : list of NcaResult
+    failures : list of (str, PkcalcInputError)
+        Subjects left out when the study was read.
+    options : NcaOptions
+    warnings : list of str
+    """
+
+    results: list
+    failures: list
+    options: NcaOptions
+    warnings: list[str] = field(default_factory=list)
+    title: str | None = None
+    units: dict[str, str] | None = None
+
+    def __iter__(self) -> Iterator:
+        return iter(self.results)
+
+    def __len__(self) -> int:
+        return len(self.results)
+
+    def subject(self, name: str):
+        """The result of one subject."""
+        return next(r for r in self.results if r.subject == name)
+
+    @property
+    def settings(self) -> dict[str, str]:
+        from .nca import BLQ_RULES
+
+        return {"auc_method": self.options.auc_method, "blq": BLQ_RULES[self.options.blq_rule],
+                "times": "hours after the start of the reference dose"}
+
+    def document(self, conv=None) -> dict[str, Any]:
+        """The ``pkcalc nca --json`` document."""
+        from .report import UnitConverter
+        from .report.nca import nca_json
+
+        doc = nca_json(self.results, conv or UnitConverter(self.units), title=self.title,
+                       failures=self.failures, settings=self.settings)
+        doc["warnings"] = list(self.warnings)
+        return doc
+
+    def summary(self, conv=None, colour: bool = False) -> str:
+        """The text ``pkcalc nca`` prints (caution first)."""
+        from .report import UnitConverter
+        from .report.nca import nca_text
+
+        return nca_text(self.results, conv or UnitConverter(self.units), title=self.title,
+                        failures=self.failures, warnings=self.warnings,
+                        settings=self.settings, colour=colour)
+
+    def to_frame(self, conv=None):
+        """One row per subject: the table ``pkcalc nca --out`` writes (``nca.csv``)."""
+        import pandas as pd
+
+        frame = pd.DataFrame(self.document(conv)["subjects"])
+        frame["points_used"] = frame["points_used"].map(lambda xs: " ".join(f"{x:g}" for x in xs))
+        frame["notes"] = frame["notes"].map(" | ".join)
+        return frame
+
+    def _repr_html_(self) -> str:
+        return result_html(self.summary(), self.to_frame())
+
+
+def nca_study(study: Study, options: NcaOptions | None = None, *,
+              units: dict[str, str] | None = None, **overrides: Any) -> StudyNca:
+    """NCA of every subject (see :func:`pkcalc.nca.nca_of_subject`).
+
+    Parameters
+    ----------
+    study : Study
+    options : NcaOptions, optional
+        Default: the study file's ``[nca]`` table with ``overrides`` (``auc_method``,
+        ``blq``, ``terminal_points``, ``r2_tolerance``, ``extrapolation_limit``).
+    units : dict, optional
+        Display units for ``summary()``/``to_frame()``.
+    """
+    from .nca import nca_of_subject
+    from .schema import study_nca_options
+
+    opts = options if options is not None else study_nca_options(study, overrides)
+    results = [nca_of_subject(s, opts) for s in study.subjects]
+    warnings = list(study.warnings)
+    unknown = sorted(set(opts.terminal_points) - {s.subject for s in study.subjects})
+    if unknown:
+        warnings.append(f"terminal points given for unknown subjects: {', '.join(unknown)}")
+    return StudyNca(results, list(study.failures), opts, warnings, study.title,
+                    units or study.output or None)
+
+
+# --------------------------------------------------------------------------- fit
+@dataclass
+class StudyFit:
+    """Individual fits of every subject of a study.
+
+    Attributes
+    ----------
+    results : list of FitResult
+    failures : list of (str, PkcalcInputError)
+        Subjects left out when reading or that could not be fitted.
+    options : FitOptions
+    comparisons : list of Comparison or None
+        Fit beside NCA (``options.with_nca``).
+    nca : StudyNca or None
+    """
+
+    results: list
+    failures: list
+    options: FitOptions
+    comparisons: list | None = None
+    nca: StudyNca | None = None
+    warnings: list[str] = field(default_factory=list)
+    title: str | None = None
+    units: dict[str, str] | None = None
+
+    def __iter__(self) -> Iterator:
+        return iter(self.results)
+
+    def __len__(self) -> int:
+        return len(self.results)
+
+    def subject(self, name: str):
+        """The fit of one subject."""
+        return next(r for r in self.results if r.subject == name)
+
+    @property
+    def settings(self) -> dict[str, Any]:
+        o = self.options
+        out: dict[str, Any] = {"method": o.method, "error_model": o.error_model,
+                               "weighting": o.weighting, "blq": o.blq, "intervals": o.ci,
+                               "starts": o.starts}
+        if o.prior is not None:
+            out["prior"] = o.prior.source or "inline"
+        return out
+
+    def document(self, conv=None) -> dict[str, Any]:
+        """The ``pkcalc fit --json`` document."""
+        from .report import UnitConverter
+        from .report.fit import fit_json
+
+        doc = fit_json(self.results, conv or UnitConverter(self.units), title=self.title,
+                       failures=self.failures, comparisons=self.comparisons,
+                       settings=self.settings)
+        doc["warnings"] = list(self.warnings)
+        return doc
+
+    def summary(self, conv=None, colour: bool = False) -> str:
+        """The text ``pkcalc fit`` prints (caution first)."""
+        from .report import UnitConverter
+        from .report.fit import fit_text
+
+        return fit_text(self.results, conv or UnitConverter(self.units), title=self.title,
+                        failures=self.failures, comparisons=self.comparisons,
+                        warnings=self.warnings, settings=self.settings, colour=colour)
+
+    def to_frame(self, conv=None):
+        """One row per subject with every estimate, SE, RSE, interval and the fit's
+        statistics: the table ``pkcalc fit --out`` writes (``fit.csv``)."""
+        import pandas as pd
+
+        doc = self.document(conv)
+        rows = []
+        for d in doc["subjects"]:
+            row = {"subject": d["subject"], "converged": d["converged"]}
+            for name, e in d["estimates"].items():
+                unit = doc["units"][{"half_life": "time"}.get(name, name)]
+                for key in ("value", "se", "rse_percent", "ci_low", "ci_high"):
+                    suffix = "" if key == "value" else f"_{key}"
+                    row[f"{name}{suffix} [{'%' if key == 'rse_percent' else unit}]"] = e[key]
+            row.update({k: d[k] for k in ("objective", "aic", "bic", "n_obs", "n_blq",
+                                          "starts", "starts_agreed")})
+            row["warnings"] = " | ".join(d["warnings"])
+            rows.append(row)
+        return pd.DataFrame(rows)
+
+    def levels_frame(self):
+        """Every level with its prediction and residuals (``fit-levels.csv``)."""
+        import pandas as pd
+
+        return pd.concat([r.to_frame() for r in self.results], ignore_index=True)
+
+    def _repr_html_(self) -> str:
+        return result_html(self.summary(), self.to_frame())
+
+
+def fit_study(study: Study, options: FitOptions | None = None, *,
+              units: dict[str, str] | None = None, **overrides: Any) -> StudyFit:
+    """Fit every subject of a study (see :func:`pkcalc.fit.fit_subjects`).
+
+    Parameters
+    ----------
+    study : Study
+    options : FitOptions, optional
+        Default: the study file's ``[fit]`` table with ``overrides`` (``weighting``,
+        ``error_model``, ``blq``, ``ci``, ``prior``, ``starts``, ``with_nca``,
+        ``nca_threshold``).
+    units : dict, optional
+
+    Raises
+    ------
+    PkcalcInputError
+        When no subject could be fitted.
+    """
+    from .fit import compare_with_nca, fit_subjects
+    from .schema import study_fit_options
+
+    opts = options if options is not None else study_fit_options(study, overrides)
+    results, unfit = fit_subjects(study.subjects, opts)
+    failures = _subject_failures(study, unfit)
+    if not results:
+        raise PkcalcInputError([p for _, err in failures for p in err.problems]
+                               or "no subject could be fitted")
+    nca = comparisons = None
+    if opts.with_nca:
+        nca = nca_study(study, units=units)  # the study's [nca] options, as `pkcalc nca`
+        comparisons = compare_with_nca(results, nca.results, opts.nca_threshold)
+    return StudyFit(results, failures, opts, comparisons, nca, list(study.warnings),
+                    study.title, units or study.output or None)
+
+
+# --------------------------------------------------------------------------- population
+def population_study(study: Study, options: PopulationOptions | None = None,
+                     **overrides: Any):
+    """Population estimates of a study (two-stage or iterative two-stage), with
+    bootstrap standard errors when ``options.bootstrap`` > 0.
+
+    Returns
+    -------
+    PopulationResult
+        With ``failures`` naming subjects left out (reading and fitting).
+
+    Raises
+    ------
+    PkcalcInputError
+        When too few subjects remain (the subjects left out are named first).
+    """
+    from .population import bootstrap, iterative_two_stage, two_stage
+    from .schema import study_population_options
+
+    o = options if options is not None else study_population_options(study, overrides)
+    try:
+        if o.method == "two-stage":
+            result = two_stage(study.subjects, FitOptions(error_model=o.error_model, blq=o.blq),
+                               covariate=o.covariate, reference_weight=o.reference_weight)
+        else:
+            result = iterative_two_stage(study.subjects, error_model=o.error_model,
+                                         covariate=o.covariate,
+                                         reference_weight=o.reference_weight, blq=o.blq)
+    except ValueError as exc:
+        raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
+                               + PkcalcInputError(str(exc), file=study.files[0] if study.files
+                                                  else None).problems) from None
+    if o.bootstrap and o.method == "iterative":
+        result.bootstrap.update(bootstrap(study.subjects, result, o.bootstrap, o.seed,
+                                          error_model=o.error_model, covariate=o.covariate,
+                                          reference_weight=o.reference_weight, blq=o.blq))
+        for k in ("clearance", "volume"):
+            b = result.bootstrap.get(k)
+            if isinstance(b, dict):
+                result.typical_se[k] = b["se"]
+                result.typical_ci[k] = (b["ci_low"], b["ci_high"])
+        result.notes.append(f"standard errors and 95 % intervals of the typical values from "
+                            f"{o.bootstrap} bootstrap replicates over subjects (seed {o.seed})")
+    elif o.method == "iterative":
+        result.notes.append("standard errors of the typical values: sqrt(omega^2/N) on the log "
+                            "scale (run --bootstrap N for bootstrap intervals)")
+    return result
