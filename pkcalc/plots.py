@@ -287,7 +287,7 @@ def diagnostics_figure(results, conv: UnitConverter | None = None) -> Figure:
 
 
 def population_figure(result, subjects, conv: UnitConverter | None = None) -> Figure:
-    """Observed vs population and individual predictions, conditional weighted residuals
+    """Observed vs population and individual predictions, individual weighted residuals
     vs time, and individual estimates vs body weight."""
     conv = conv or UnitConverter()
     fig = Figure(figsize=(10.5, 7.6), layout="constrained")
@@ -327,7 +327,7 @@ def population_figure(result, subjects, conv: UnitConverter | None = None) -> Fi
     for y in (-2, 2):
         ax.axhline(y, color="0.6", lw=0.8, ls=":")
     ax.set_xlabel(f"time [{conv.unit('time')}]")
-    ax.set_ylabel("conditional weighted residual")
+    ax.set_ylabel("individual weighted residual")
     ax.set_title("weighted residuals (individual fits) vs time", fontsize=9)
     ax = axes[1, 1]
     w = np.array([fits[s.subject].weight or np.nan for s in subjects if s.subject in fits])

@@ -37,8 +37,8 @@ from . import model
 from ._format import format_table, short
 from .core import FitOptions, Prior, SubjectData
 from .fit import FitResult, fit_subjects
-from .fit.batch import Batch, evaluate
 from .fit.individual import _prepare_batch, starting_values
+from .fit.objective import Batch, evaluate
 from .fit.solver import minimise
 
 __all__ = [
@@ -153,7 +153,7 @@ class PopulationResult:
                    "clearance [L/h]": r.clearance, "volume [L]": r.volume,
                    "half_life [h]": r.estimates["half_life"].value}
             if self.eta is not None:
-                row["eta_clearance"], row["eta_volume"] = self.eta[i]
+                row["ln_clearance_deviation"], row["ln_volume_deviation"] = self.eta[i]
             rows.append(row)
         return pd.DataFrame(rows)
 

@@ -214,7 +214,7 @@ def run_design(cases, *, failures=(), title: str | None = None,
                units: dict[str, str] | None = None, inputs: Sequence[str] = (),
                colour: bool = False) -> Run:
     """``pkcalc design``: every validated design case."""
-    from .design import run_design as design_one
+    from .design import design_from_case as design_one
     from .report.html import design_sections
 
     results, run_failures = [], list(failures)

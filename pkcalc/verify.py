@@ -17,7 +17,7 @@ import numpy as np
 from . import model
 from ._format import format_table, short
 from .core import ScenarioInput
-from .design import DesignResult, loading_dose_for_target, rate_for_target, run_design
+from .design import DesignResult, design_from_case, loading_dose_for_target, rate_for_target
 from .predict import predict_scenario
 from .schema.cases import Expectation, VerifyCase
 
@@ -144,7 +144,7 @@ def _compute(case: VerifyCase, e: Expectation, cache: dict) -> float:
     """The canonical value of one expectation."""
     if e.quantity.startswith("design."):
         if "design" not in cache:
-            cache["design"] = run_design(case.design)  # type: ignore[arg-type]
+            cache["design"] = design_from_case(case.design)  # type: ignore[arg-type]
         return _design_value(cache["design"], e.quantity, int(e.args.get("regimen", 1)))
     cl, v = case.clearance, case.volume
     assert cl is not None and v is not None

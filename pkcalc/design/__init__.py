@@ -25,7 +25,7 @@ from .adjust import (
     adjust_peak_trough,
     adjust_proportional,
     adjust_two_levels,
-    run_design,
+    design_from_case,
 )
 from .common import (
     DEFAULT_DOSE_STEP,
@@ -66,6 +66,7 @@ __all__ = [
     "adjust_two_levels",
     "chiou_clearance",
     "design_continuous",
+    "design_from_case",
     "design_intermittent",
     "exact_intermittent",
     "exact_two_level_clearance",
@@ -74,7 +75,6 @@ __all__ = [
     "one_level_clearance",
     "rate_for_target",
     "round_to_step",
-    "run_design",
     "sawchuk_zaske",
     "two_level_parameters",
 ]

@@ -372,7 +372,7 @@ def adjust_peak_trough(
     return result
 
 
-def run_design(case: DesignCase) -> DesignResult:
+def design_from_case(case: DesignCase) -> DesignResult:
     """Run a validated design request (see :class:`pkcalc.schema.DesignCase`)."""
     opts = dict(case.options)
     for key in ("peak_limits", "trough_limits", "auc_24"):

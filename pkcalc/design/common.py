@@ -282,6 +282,15 @@ class Regimen:
         return out
 
 
+def _unit_of(key: str) -> str:
+    """Canonical unit of a predicted quantity, by its name."""
+    if key.startswith("auc"):
+        return "mg*h/L"
+    if key.startswith("time_") or key in ("hold", "start"):
+        return "h"
+    return "mg/L"
+
+
 @dataclass
 class DesignResult:
     """A design or adjustment: estimates, proposed regimens, notes and warnings.
@@ -337,8 +346,7 @@ class DesignResult:
             row = {"label": r.label, "rate [mg/h]": r.rate, "loading_dose [mg]": r.loading_dose,
                    "loading_time [h]": r.loading_time, "dose [mg]": r.dose,
                    "interval [h]": r.interval, "infusion_time [h]": r.infusion_time}
-            row.update({f"predicted_{k} [{'mg*h/L' if k == 'auc_24' else 'mg/L'}]": v
-                        for k, v in r.predicted.items()})
+            row.update({f"predicted_{k} [{_unit_of(k)}]": v for k, v in r.predicted.items()})
             row["meets_target"] = r.meets_target
             row["flags"] = " | ".join(r.flags)
             rows.append(row)

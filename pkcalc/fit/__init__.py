@@ -8,9 +8,9 @@
   log scale or profile likelihood), identifiability, diagnostics.
 """
 
-from .batch import Batch, build_batch, evaluate
 from .compare import Comparison, compare_with_nca
 from .individual import Estimate, FitResult, fit_subjects, starting_values
+from .objective import Batch, build_batch, evaluate
 from .solver import Solution, minimise
 
 __all__ = [

@@ -24,7 +24,7 @@ from .. import model
 from .._format import format_table, short
 from ..core import FitOptions, SubjectData
 from ..plausibility import parameter_warnings
-from .batch import Batch, _variance, evaluate, n_error_params, profiled_sigma
+from .objective import Batch, _variance, evaluate, n_error_params, profiled_sigma
 from .solver import Solution, minimise
 
 __all__ = ["Estimate", "FitResult", "fit_subjects", "starting_values"]
@@ -751,8 +751,8 @@ def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.nd
     if kind == "map":
         mu, omega = prior["mu"], prior["omega"]
         prior_out = {"typical_clearance": math.exp(mu[0]), "typical_volume": math.exp(mu[1]),
-                     "eta_clearance": float(theta[0]) - mu[0],
-                     "eta_volume": float(theta[1]) - mu[1]}
+                     "ln_clearance_deviation": float(theta[0]) - mu[0],
+                     "ln_volume_deviation": float(theta[1]) - mu[1]}
         if cov is not None:
             prior_out["prior_variance_remaining_clearance_percent"] = 100 * cov[0, 0] / omega[
                 0, 0]

@@ -2,7 +2,7 @@
 
 Each row is an independent problem (a subject, or one start of a subject).
 A step solves ``(I + lambda diag(I)) d = -g`` with ``I`` the scoring matrix of
-:func:`pkcalc.fit.batch.evaluate`; it is accepted when the objective falls
+:func:`pkcalc.fit.objective.evaluate`; it is accepted when the objective falls
 (``lambda`` shrinks), otherwise ``lambda`` grows.  Rows stop when the
 objective changes by less than ``tol (1 + |obj|)`` on an accepted step whose
 largest component is below ``xtol``.  Marquardt, SIAM J Appl Math 1963;11:431;

@@ -327,11 +327,13 @@ def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[
     items.append(lines_item("text", text))
     srows = [[d["subject"], d["estimates"]["clearance"]["value"],
               d["estimates"]["volume"]["value"], d["estimates"]["half_life"]["value"],
-              (d.get("prior") or {}).get("eta_clearance"),
-              (d.get("prior") or {}).get("eta_volume"), d["n_obs"]] for d in doc["subjects"]]
+              (d.get("prior") or {}).get("ln_clearance_deviation"),
+              (d.get("prior") or {}).get("ln_volume_deviation"), d["n_obs"]]
+             for d in doc["subjects"]]
     items.append(table_item(["subject", f"CL [{doc['units']['clearance']}]",
                              f"V [{doc['units']['volume']}]", f"t½ [{doc['units']['time']}]",
-                             "eta CL", "eta V", "levels"], srows,
+                             "ln CL deviation from typical", "ln V deviation from typical",
+                             "levels"], srows,
                             "Individual estimates under the population prior"))
     if doc.get("warnings"):
         items.append(lines_item("warnings", doc["warnings"]))

@@ -54,9 +54,9 @@ _MAIN = ("peak_concentration", "peak_time", "auc_to_last", "auc_to_infinity",
          "volume_terminal", "mean_residence_time", "volume_steady_state")
 _STEADY = ("interval", "auc_interval", "average_concentration", "fluctuation_percent",
            "accumulation_ratio")
-_SHORT = {"peak_concentration": "Cmax", "peak_time": "Tmax", "auc_to_last": "AUClast",
-          "auc_to_infinity": "AUCinf", "auc_extrapolated_percent": "AUC extrap",
-          "terminal_slope": "lambda_z", "terminal_half_life": "t1/2 terminal",
+_SHORT = {"peak_concentration": "Cmax", "peak_time": "Tmax", "auc_to_last": "AUC0–last",
+          "auc_to_infinity": "AUC0–∞", "auc_extrapolated_percent": "AUC extrap",
+          "terminal_slope": "λz", "terminal_half_life": "t1/2 terminal",
           "clearance": "CL", "volume_terminal": "Vz", "mean_residence_time": "MRT",
           "volume_steady_state": "Vss", "interval": "tau", "auc_interval": "AUCtau",
           "average_concentration": "Cavg", "fluctuation_percent": "fluctuation",

@@ -33,7 +33,7 @@ def population_json(result, conv: UnitConverter, *, title: str | None = None, fa
         "variability_cv_percent": {k: _num(v) for k, v in
                                    result.variability_cv_percent.items()},
         "correlation": _num(result.correlation),
-        "omega": [[_num(x) for x in row] for row in result.omega],
+        "between_subject_covariance_log": [[_num(x) for x in row] for row in result.omega],
         "covariate": {"model": result.covariate, "reference_weight_kg": result.reference_weight,
                       "exponents": {k: _num(v) for k, v in result.exponents.items()},
                       "exponent_ci": None if result.exponent_ci is None else {
@@ -100,12 +100,13 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
         e = d["estimates"]
         pr = d.get("prior") or {}
         srows.append([d["subject"], e["clearance"]["value"], e["volume"]["value"],
-                      e["half_life"]["value"], pr.get("eta_clearance"), pr.get("eta_volume"),
-                      d["n_obs"]])
+                      e["half_life"]["value"], pr.get("ln_clearance_deviation"),
+                      pr.get("ln_volume_deviation"), d["n_obs"]])
     more = len(doc["subjects"]) - _MAX_ROWS
     sections.append("Individual estimates under the population prior (MAP):\n" + format_table(
         ["subject", f"CL [{conv.unit('clearance')}]", f"V [{conv.unit('volume')}]",
-         f"t1/2 [{conv.unit('time')}]", "eta CL", "eta V", "levels"], srows)
+         f"t1/2 [{conv.unit('time')}]", "ln CL deviation from typical",
+         "ln V deviation from typical", "levels"], srows)
         + (f"\n... and {more} more subjects (all in --json / --out)" if more > 0 else ""))
     if result.notes:
         sections.append("Notes:\n" + "\n".join(f"  {n}" for n in result.notes))
