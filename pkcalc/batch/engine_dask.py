@@ -14,23 +14,16 @@ from pathlib import Path
 
 import pandas as pd
 
-from .batch import (
-    BatchOptions,
-    BatchSummary,
-    _csv_chunks,
-    _normalise_types,
-    _parquet_chunks,
-    compute,
-    parse_columns,
-    write_stream,
-)
-from .errors import PkcalcInputError
+from ..errors import PkcalcInputError
+from .columns import BatchOptions, BatchSummary, parse_columns
+from .io import csv_chunks, normalise_types, parquet_chunks, write_stream
+from .kernel import compute
 
 __all__ = ["run_dask"]
 
 
 def _kernel(part: pd.DataFrame, spec, options) -> pd.DataFrame:
-    return _normalise_types(compute(part, spec, options), spec)
+    return normalise_types(compute(part, spec, options), spec)
 
 
 def run_dask(src: Path, dst: Path, fmt_in: str, fmt_out: str, options: BatchOptions,
@@ -43,7 +36,7 @@ def run_dask(src: Path, dst: Path, fmt_in: str, fmt_out: str, options: BatchOpti
     except ImportError:
         raise PkcalcInputError("the dask engine needs dask[distributed] and dask[dataframe]",
                                expected="pip install 'pkcalc[dask]'") from None
-    reader = _csv_chunks if fmt_in == "csv" else _parquet_chunks
+    reader = csv_chunks if fmt_in == "csv" else parquet_chunks
     header, _ = reader(src, 1)
     spec = parse_columns(header, file=str(src))
     if spec.unknown:

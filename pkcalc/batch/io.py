@@ -1,0 +1,273 @@
+"""Batch inputs and outputs: CSV/Parquet/TOML chunks, grids, the atomic streaming writer."""
+
+from __future__ import annotations
+
+import itertools
+import math
+import os
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .. import model
+from ..errors import PkcalcInputError, Problem
+from ..units import KINDS, parse_header, parse_unit
+from .columns import FRACTIONS, INPUT_KINDS, BatchOptions, BatchSpec, BatchSummary, at_label
+
+
+# --------------------------------------------------------------------------- inputs
+def grid_frame(grid: dict[str, list], *, file: str | None = None) -> pd.DataFrame:
+    """The cartesian product of a ``[grid]`` table as a batch frame.
+
+    Every value is a quantity with its unit (e.g. ``"4 L/h"``); each key's
+    values share one unit in the output header (the unit of its first value,
+    converted exactly with the registry).
+    """
+    from ..units import parse_number_and_unit
+
+    problems: list[Problem] = []
+    columns: dict[str, list[float]] = {}
+    headers: dict[str, str] = {}
+    for key, values in grid.items():
+        if key not in INPUT_KINDS:
+            problems.append(Problem("unknown grid key", file=file, field=f"grid.{key}",
+                                    expected=", ".join(INPUT_KINDS)))
+            continue
+        if not isinstance(values, list) or not values:
+            values = [values]
+        numbers = []
+        first_unit = None
+        for i, item in enumerate(values):
+            try:
+                number, unit = parse_number_and_unit(item, field=f"grid.{key}[{i}]")
+                if not unit:
+                    raise PkcalcInputError(f"'{item}' has no unit", field=f"grid.{key}[{i}]",
+                                           expected=KINDS[INPUT_KINDS[key]])
+                spec = parse_unit(unit, INPUT_KINDS[key], field=f"grid.{key}[{i}]")
+                if first_unit is None:
+                    first_unit = (unit, spec)
+                numbers.append(number * spec.factor / first_unit[1].factor)
+                if spec.per_kg != first_unit[1].per_kg:
+                    raise PkcalcInputError("mixes per-kg and absolute values",
+                                           field=f"grid.{key}")
+            except PkcalcInputError as exc:
+                problems += [Problem(p.message, file=file, field=p.field, expected=p.expected)
+                             for p in exc.problems]
+        if first_unit is not None:
+            headers[key] = f"{key} [{first_unit[0]}]"
+            columns[key] = numbers
+    if problems:
+        raise PkcalcInputError(problems)
+    total = math.prod(len(v) for v in columns.values())
+    if total > 50_000_000:
+        raise PkcalcInputError(f"the grid has {total} rows; write it as a table instead",
+                               file=file, field="grid")
+    keys = list(columns)
+    rows = list(itertools.product(*(columns[k] for k in keys)))
+    return pd.DataFrame(rows, columns=[headers[k] for k in keys])
+
+
+def detect_format(path: Path) -> str:
+    suffix = path.suffix.lower()
+    if suffix in (".parquet", ".pq"):
+        return "parquet"
+    if suffix in (".csv", ".txt"):
+        return "csv"
+    if suffix == ".toml":
+        return "toml"
+    raise PkcalcInputError(f"unknown table format '{suffix}'", file=str(path),
+                           expected=".csv, .parquet or .toml")
+
+
+def csv_chunks(path: Path, chunk_rows: int) -> tuple[list[str], Iterator[pd.DataFrame]]:
+    from ..tables import read_csv_chunks, read_header
+
+    header = read_header(path)
+    known = {h for h in header if parse_header(h)[0].strip().lower() in INPUT_KINDS}
+    # unknown columns stay text exactly as written (IDs keep their leading zeros)
+    reader = read_csv_chunks(path, chunk_rows, skipinitialspace=True,
+                             dtype={h: str for h in header if h not in known},
+                             keep_default_na=False, na_values=[""])
+    return header, reader
+
+
+def parquet_chunks(path: Path, chunk_rows: int) -> tuple[list[str], Iterator[pd.DataFrame]]:
+    try:
+        import pyarrow.parquet as pq
+
+        pf = pq.ParquetFile(path)
+    except ImportError:
+        raise PkcalcInputError("Parquet needs pyarrow", file=str(path),
+                               expected="pip install pyarrow") from None
+    except Exception as exc:  # pyarrow raises several types for damaged files
+        raise PkcalcInputError(f"not a readable Parquet file ({exc.__class__.__name__}: "
+                               f"{str(exc)[:120]})", file=str(path)) from None
+    header = list(pf.schema_arrow.names)
+
+    def gen():
+        try:
+            for rb in pf.iter_batches(batch_size=chunk_rows):
+                yield rb.to_pandas()
+        except Exception as exc:
+            raise PkcalcInputError(f"Parquet file damaged while reading "
+                                   f"({exc.__class__.__name__})", file=str(path)) from None
+    return header, gen()
+
+
+class Writer:
+    """Writes result chunks to a temporary file beside the output, renamed at the end."""
+
+    def __init__(self, output: Path, fmt: str) -> None:
+        self.output, self.fmt = output, fmt
+        from ..files import clean_stale, temp_path
+
+        output.parent.mkdir(parents=True, exist_ok=True)
+        clean_stale(output)  # temporary files of killed runs to the same path
+        self.tmp = temp_path(output)
+        self.tmp.touch(mode=0o600)
+        self.first = True
+        self.pq_writer = None
+        self.handle = None
+
+    def write(self, frame: pd.DataFrame) -> None:
+        import pyarrow as pa
+
+        table = pa.Table.from_pandas(frame, preserve_index=False)
+        if self.fmt == "csv":
+            # Arrow's CSV writer: shortest round-trip floats, several times faster than
+            # DataFrame.to_csv (numbers read back bit for bit)
+            import pyarrow.csv as pcsv
+
+            if self.handle is None:
+                self.handle = open(self.tmp, "wb")  # closed in commit() or abort()
+            pcsv.write_csv(table, self.handle,
+                           write_options=pcsv.WriteOptions(include_header=self.first))
+        else:
+            import pyarrow.parquet as pq
+
+            if self.pq_writer is None:
+                self.pq_writer = pq.ParquetWriter(self.tmp, table.schema)
+            else:
+                table = table.cast(self.pq_writer.schema)
+            self.pq_writer.write_table(table)
+        self.first = False
+
+    def commit(self) -> None:
+        if self.pq_writer is not None:
+            self.pq_writer.close()
+        if self.handle is not None:
+            self.handle.close()
+        from ..files import _umask
+
+        os.chmod(self.tmp, 0o666 & ~_umask())
+        os.replace(self.tmp, self.output)
+
+    def abort(self) -> None:
+        if self.handle is not None:
+            self.handle.close()
+        if self.pq_writer is not None:
+            try:
+                self.pq_writer.close()
+            except Exception:
+                pass
+        self.tmp.unlink(missing_ok=True)
+
+
+def normalise_types(frame: pd.DataFrame, spec: BatchSpec) -> pd.DataFrame:
+    """Result columns with stable dtypes across chunks (for Parquet schemas)."""
+    for c in frame.columns:
+        if c.startswith("in_window_"):
+            frame[c] = frame[c].astype("boolean")
+    for h in spec.unknown:
+        if h in frame.columns and frame[h].dtype == object:
+            frame[h] = frame[h].astype(str)
+    return frame
+
+
+def write_stream(parts: Iterator[pd.DataFrame], dst: Path, fmt_out: str,
+                 summary: BatchSummary, collect: int, src: Path) -> None:
+    """Write result parts in order to a temporary file, renamed when all are written;
+    nothing is left behind when a part fails."""
+    writer = Writer(dst, fmt_out)
+    try:
+        for part in parts:
+            writer.write(part)
+            tally(summary, part, collect)
+        if summary.rows == 0:
+            raise PkcalcInputError("the table has a header but no rows", file=str(src))
+        writer.commit()
+    except BaseException:
+        writer.abort()
+        raise
+
+
+def tally(summary: BatchSummary, result: pd.DataFrame, collect: int) -> None:
+    errors = result["error"].to_numpy()
+    failed = errors != ""
+    first = summary.rows
+    summary.rows += len(result)
+    summary.failed += int(failed.sum())
+    for i in np.flatnonzero(failed)[: max(0, 5 - len(summary.first_errors))]:
+        summary.first_errors.append(f"row {first + i + 1}: {errors[i]}")
+    room = collect - len(summary.plateau)
+    if room > 0:
+        ok = ~failed
+        summary.plateau += result["plateau_concentration [mg/L]"].to_numpy()[ok][:room].tolist()
+        summary.time_to_90 += result["time_to_90pct [h]"].to_numpy()[ok][:room].tolist()
+        if "fraction_in_window_at_steady_state" in result:
+            summary.fraction_in_window += result["fraction_in_window_at_steady_state"] \
+                .to_numpy()[ok][:room].tolist()
+
+
+def scenario_rows(path: Path, options: BatchOptions) -> tuple[pd.DataFrame, list]:
+    """A scenario file (docs/formats.md) as batch rows: each scenario's own dose list is
+    predicted with the general model (scenario files are small; one call per scenario)."""
+    from ..predict import predict_scenario
+    from ..schema import load_scenario_file
+
+    sfile = load_scenario_file(path)
+    rows = []
+    for s in sfile.scenarios:
+        pred = predict_scenario(s)
+        p = pred.parameters
+        row = {"scenario": s.name, "clearance [L/h]": p["clearance"], "volume [L]": p["volume"],
+               "half_life [h]": p["half_life"], "elimination_rate [1/h]": p["elimination_rate"],
+               "plateau_concentration [mg/L]": pred.plateau_concentration
+               if pred.plateau_concentration is not None else np.nan}
+        for f in FRACTIONS:
+            row[f"time_to_{f * 100:g}pct [h]"] = pred.time_to_fraction.get(
+                f, float(model.time_to_fraction(f, p["clearance"], p["volume"])))
+        ss = pred.steady_state
+        row["steady_state_peak [mg/L]"] = ss.peak if ss else np.nan
+        row["steady_state_trough [mg/L]"] = ss.trough if ss else np.nan
+        row["steady_state_average [mg/L]"] = ss.average if ss else np.nan
+        if options.at:
+            for t, c in zip(options.at, pred.concentration_at(list(options.at)), strict=True):
+                row[at_label(t)] = float(c)
+        row["flags"] = " | ".join(pred.flags)
+        row["error"] = ""
+        rows.append(row)
+    for label, err in sfile.failures:
+        rows.append({"scenario": label, "error": str(err)})
+    return pd.DataFrame(rows), sfile.failures
+
+
+def toml_chunks(path: Path, chunk_rows: int):
+    """A TOML input with a ``[grid]`` table (cartesian product) as one frame."""
+    from ..schema import read_toml
+
+    data = read_toml(path)
+    if "grid" not in data:
+        raise PkcalcInputError("a TOML batch input holds a [grid] table or [[scenarios]]",
+                               file=str(path), field="grid",
+                               expected="[grid] with lists of quantities")
+    unknown = sorted(set(data) - {"grid", "title"})
+    if unknown:
+        raise PkcalcInputError("unknown key", file=str(path), field=unknown[0],
+                               expected="grid, title")
+    frame = grid_frame(data["grid"], file=str(path))
+    return list(frame.columns), (frame.iloc[s:s + chunk_rows]
+                                 for s in range(0, len(frame), chunk_rows))
+

@@ -1,0 +1,130 @@
+"""Running a batch file to an output table on the local engine (or handing it to Dask)."""
+
+from __future__ import annotations
+
+import sys
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+
+import pandas as pd
+
+from ..errors import PkcalcInputError
+from .columns import (
+    DEFAULT_CHUNK_ROWS,
+    POPULATION_BLOCK,
+    BatchOptions,
+    BatchSummary,
+    parse_columns,
+)
+from .io import (
+    csv_chunks,
+    detect_format,
+    normalise_types,
+    parquet_chunks,
+    scenario_rows,
+    toml_chunks,
+    write_stream,
+)
+from .kernel import compute
+
+
+def _progress(enabled: bool) -> Callable[[int, float], None]:
+    if not enabled:
+        return lambda rows, started: None
+
+    def show(rows: int, started: float) -> None:
+        elapsed = time.perf_counter() - started
+        rate = rows / elapsed if elapsed > 0 else 0.0
+        sys.stderr.write(f"\r  {rows:,} rows ({rate:,.0f} rows/s)   ")
+        sys.stderr.flush()
+    return show
+
+
+def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOptions, *,
+              engine: str = "local", scheduler: str | None = None,
+              chunk_rows: int = DEFAULT_CHUNK_ROWS, progress: bool = False,
+              collect: int = 200_000) -> BatchSummary:
+    """Run a batch file to an output table (CSV or Parquet), streaming in chunks.
+
+    Parameters
+    ----------
+    input_path : path
+        ``.csv``, ``.parquet`` or ``.toml`` (``[grid]`` or ``[[scenarios]]``).
+    output_path : path
+        ``.csv`` or ``.parquet``; written atomically, never over the input.
+    options : BatchOptions
+    engine : {"local", "dask"}
+    scheduler : str, optional
+        Address of an existing Dask scheduler (``tcp://host:port``).
+    chunk_rows : int
+        Rows per chunk (memory stays bounded by it).
+    progress : bool
+        Progress on standard error.
+    collect : int
+        Keep up to this many plateau / time-to-90 % values for the summary plots.
+
+    Returns
+    -------
+    BatchSummary
+    """
+    src, dst = Path(input_path), Path(output_path)
+    from ..tables import check_input_file
+
+    check_input_file(src, "a .csv, .parquet or .toml table")
+    if dst.exists() and dst.resolve() == src.resolve():
+        raise PkcalcInputError("refusing to overwrite the input file", file=str(dst),
+                               expected="an output path other than the input")
+    fmt_in, fmt_out = detect_format(src), detect_format(dst)
+    if fmt_out == "toml":
+        raise PkcalcInputError("the output must be .csv or .parquet", file=str(dst))
+    summary = BatchSummary(output=str(dst))
+    started = time.perf_counter()
+    if engine == "dask":
+        from .engine_dask import run_dask
+
+        if fmt_in == "toml":
+            raise PkcalcInputError("the dask engine reads CSV or Parquet tables",
+                                   file=str(src), expected="--engine local for TOML inputs")
+        run_dask(src, dst, fmt_in, fmt_out, options, scheduler, chunk_rows, summary, collect)
+        summary.seconds = time.perf_counter() - started
+        return summary
+    if fmt_in == "toml":
+        from ..schema import read_toml
+
+        if "scenarios" in read_toml(src):
+            if options.population:
+                raise PkcalcInputError("variability runs read a table or a [grid]",
+                                       file=str(src), expected="a CSV/Parquet table or [grid]")
+            frame, _ = scenario_rows(src, options)
+            write_stream(iter([frame]), dst, fmt_out, summary, collect, src)
+            summary.seconds = time.perf_counter() - started
+            return summary
+        header, chunks = toml_chunks(src, chunk_rows)
+    elif fmt_in == "csv":
+        header, chunks = csv_chunks(src, chunk_rows)
+    else:
+        header, chunks = parquet_chunks(src, chunk_rows)
+    spec = parse_columns(header, file=str(src))
+    if spec.unknown:
+        summary.warnings.append(f"columns not used (carried through): "
+                                f"{', '.join(spec.unknown)}")
+    block = chunk_rows if not options.population else max(
+        1, min(chunk_rows, POPULATION_BLOCK * 4 // max(options.population, 1)))
+    show = _progress(progress)
+
+    def parts() -> Iterator[pd.DataFrame]:
+        for chunk in chunks:
+            for s in range(0, len(chunk), block):
+                yield normalise_types(compute(chunk.iloc[s:s + block], spec, options), spec)
+                show(summary.rows, started)
+
+    try:
+        write_stream(parts(), dst, fmt_out, summary, collect, src)
+    finally:
+        if progress:
+            sys.stderr.write("\n")
+    summary.seconds = time.perf_counter() - started
+    return summary
+
+
