@@ -438,22 +438,12 @@ def run_batch_command(input_path: str, output_path: str, options, *, engine: str
                       scheduler: str | None = None, chunk_rows: int | None = None,
                       progress: bool = False, colour: bool = False) -> Run:
     """``pkcalc batch``: stream the input to the output table; summary, plots."""
-    import numpy as np
-
     from .batch import DEFAULT_CHUNK_ROWS, run_batch
     from .report.html import batch_sections
 
     check_not_input([Path(output_path)], [input_path])
     summary = run_batch(input_path, output_path, options, engine=engine, scheduler=scheduler,
                         chunk_rows=chunk_rows or DEFAULT_CHUNK_ROWS, progress=progress)
-
-    def pct(values):
-        a = np.asarray(values, float)
-        a = a[np.isfinite(a)]
-        if a.size == 0:
-            return None
-        return {k: float(np.percentile(a, q)) for k, q in (("p05", 5), ("p50", 50),
-                                                             ("p95", 95))}
 
     doc = report.json_document("batch", report.UnitConverter(), {
         "input": str(input_path), "output": str(output_path), "engine": engine,
@@ -462,27 +452,10 @@ def run_batch_command(input_path: str, output_path: str, options, *, engine: str
         "options": {"at": list(options.at), "population": options.population,
                     "seed": options.seed, "cv_clearance": options.cv_clearance,
                     "cv_volume": options.cv_volume, "correlation": options.correlation},
-        "distribution": {"plateau_concentration": pct(summary.plateau),
-                         "time_to_90pct": pct(summary.time_to_90),
-                         "fraction_in_window_at_steady_state": pct(summary.fraction_in_window)},
+        "distribution": summary.distribution(),
         "warnings": summary.warnings,
     })
-    lines = [f"Batch: {summary.rows:,} rows from {input_path} -> {output_path} "
-             f"({engine} engine, {summary.seconds:.2f} s)",
-             f"rows with problems: {summary.failed:,}" + (" (their results are empty; the "
-                                                          "reason is in the error column)"
-                                                          if summary.failed else "")]
-    lines += [f"  {e}" for e in summary.first_errors]
-    dist = doc["distribution"]
-    rows = [[name.replace("_", " "), d["p05"], d["p50"], d["p95"]] for name, d in dist.items()
-            if d is not None]
-    if rows:
-        from ._format import format_table
-
-        sections_text = format_table(["across the batch (first rows)", "5th", "median", "95th"],
-                                     rows)
-        lines.append(sections_text)
-    text = report.assemble_text(["\n".join(lines)], [("batch", summary.warnings)],
+    text = report.assemble_text([summary.summary()], [("batch", summary.warnings)],
                                 colour=colour)
 
     def figures() -> dict[str, Any]:

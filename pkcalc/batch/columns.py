@@ -82,7 +82,19 @@ class BatchOptions:
 
 @dataclass
 class BatchSummary:
-    """Counts of a finished batch run."""
+    """A finished batch run: counts, the first problems, and distributions over the
+    first rows (the results themselves are in the output table, ``to_frame()``).
+
+    Attributes
+    ----------
+    rows, failed : int
+    first_errors : list of str
+    seconds : float
+    output, input, engine : str
+    warnings : list of str
+    plateau, time_to_90, fraction_in_window : list of float
+        Values of the first rows (for percentiles and plots).
+    """
 
     rows: int = 0
     failed: int = 0
@@ -93,6 +105,52 @@ class BatchSummary:
     plateau: list[float] = field(default_factory=list)
     time_to_90: list[float] = field(default_factory=list)
     fraction_in_window: list[float] = field(default_factory=list)
+    input: str = ""
+    engine: str = "local"
+
+    def distribution(self) -> dict[str, dict[str, float] | None]:
+        """5th, 50th and 95th percentiles of plateau, time to 90 % and the fraction
+        inside the window, over the first rows."""
+        def pct(values):
+            a = np.asarray(values, float)
+            a = a[np.isfinite(a)]
+            if a.size == 0:
+                return None
+            return {k: float(np.percentile(a, q)) for k, q in (("p05", 5), ("p50", 50),
+                                                                 ("p95", 95))}
+        return {"plateau_concentration": pct(self.plateau),
+                "time_to_90pct": pct(self.time_to_90),
+                "fraction_in_window_at_steady_state": pct(self.fraction_in_window)}
+
+    def summary(self) -> str:
+        """The run in words (counts, first problems, distributions; no caution)."""
+        from .._format import format_table
+
+        lines = [f"Batch: {self.rows:,} rows from {self.input} -> {self.output} "
+                 f"({self.engine} engine, {self.seconds:.2f} s)",
+                 f"rows with problems: {self.failed:,}" + (
+                     " (their results are empty; the reason is in the error column)"
+                     if self.failed else "")]
+        lines += [f"  {e}" for e in self.first_errors]
+        rows = [[name.replace("_", " "), d["p05"], d["p50"], d["p95"]]
+                for name, d in self.distribution().items() if d is not None]
+        if rows:
+            lines.append(format_table(["across the batch (first rows)", "5th", "median",
+                                       "95th"], rows))
+        return "\n".join(lines)
+
+    def to_frame(self, max_rows: int | None = None):
+        """The output table (or its first ``max_rows`` rows)."""
+        if self.output.lower().endswith((".parquet", ".pq")):
+            frame = pd.read_parquet(self.output)
+            return frame if max_rows is None else frame.head(max_rows)
+        return pd.read_csv(self.output, nrows=max_rows, keep_default_na=False,
+                           na_values=[""])
+
+    def _repr_html_(self) -> str:
+        from .._format import result_html
+
+        return result_html(self.summary(), self.to_frame(max_rows=20))
 
 
 # --------------------------------------------------------------------------- columns

@@ -78,7 +78,7 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
     fmt_in, fmt_out = detect_format(src), detect_format(dst)
     if fmt_out == "toml":
         raise PkcalcInputError("the output must be .csv or .parquet", file=str(dst))
-    summary = BatchSummary(output=str(dst))
+    summary = BatchSummary(output=str(dst), input=str(src), engine=engine)
     started = time.perf_counter()
     if engine == "dask":
         from .engine_dask import run_dask
