@@ -39,7 +39,7 @@ def test_every_python_block_of_the_readme_runs(tmp_path, monkeypatch, capsys):
     monkeypatch.chdir(tmp_path)  # the examples write grid.csv here, not in the checkout
     namespace: dict = {}
     for block in blocks:
-        exec(compile(block, "README.md", "exec"), namespace)  # noqa: S102
+        exec(compile(block, "README.md", "exec"), namespace)
     out = capsys.readouterr().out
     assert "10.0" in out and "750.0 8.0" in out and "CAUTION" in out and "V01" in out
     assert (tmp_path / "grid.csv").exists()
@@ -97,7 +97,7 @@ def test_no_import_circle_inside_pkcalc():
         path.append(v)
         for w in sorted(graph[v]):
             if state.get(w) == 1:
-                cycle = path[path.index(w):] + [w]
+                cycle = [*path[path.index(w):], w]
                 pytest.fail("import circle: " + " -> ".join(cycle))
             if w not in state:
                 visit(w)
