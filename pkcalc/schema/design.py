@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -179,6 +180,25 @@ def _need(col: _Collector, method: str, **values: Any) -> bool:
     return not missing
 
 
+@dataclass
+class _DesignContext:
+    """What every method's options are built from (already converted)."""
+
+    spec: DesignSpec
+    col: _Collector
+    cl: float | None
+    v: float | None
+    history: bool
+    plateau: float | None
+    peak: float | None
+    trough: float | None
+    peak_limits: tuple | None
+    trough_limits: tuple | None
+    interval_opts: dict[str, Any]
+    auc: tuple | None
+    window: tuple | None
+
+
 def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
                    col: _Collector, history: bool = False) -> tuple[str, dict[str, Any]]:
     """Canonical keyword options for the design function of the method."""
@@ -226,162 +246,244 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
     window = _window(col, spec)
     if auc is not None:
         interval_opts["auc_24"] = auc
-    if method == "continuous":
-        if spec.plateau is None and spec.auc_24 is None:
-            col.add("method 'continuous' needs a plateau or an AUC24 target", "design.plateau",
-                    "plateau = '8 mg/L' or auc_24 = ['400 mg*h/L', '600 mg*h/L']")
-        if _need(col, method, clearance=cl, volume=v):
-            opts.update(clearance=cl, volume=v, plateau=plateau, auc_24=auc)
-        if window is not None:
-            opts["window"] = window
-        lt = q(spec.loading_time, "time", "design.loading_time", nonnegative=True)
-        if lt is not None:
-            opts["loading_time"] = lt
-        if spec.within is not None:
-            if not 0 < spec.within < 1:
-                col.add(f"within must be a fraction in (0, 1), got {spec.within}",
-                        "design.within")
-            opts["within"] = spec.within
-        opts.pop("max_dose", None)
-    elif method == "intermittent":
-        t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
-        if _need(col, method, infusion_time=t_inf, clearance=cl, volume=v):
-            opts.update(clearance=cl, volume=v, infusion_time=t_inf)
-        if auc is None and peak is None and peak_limits is None:
-            col.add("needs a peak target or limits (or an AUC24 target)", "design.peak",
-                    "peak, peak_min or peak_max")
-        if auc is None and trough is None and trough_limits is None:
-            col.add("needs a trough target or limits (or an AUC24 target)", "design.trough",
-                    "trough, trough_min or trough_max")
-        opts.update(interval_opts)
-        for key in ("rate_step", "max_rate", "max_loading"):
-            opts.pop(key, None)
-    elif method == "proportional":
-        measured_time = None
-        if isinstance(spec.measured, SampleSpec):
-            sample = _sample(col, spec.measured, "design.measured")
-            measured_time, measured = sample if sample else (None, None)
-        else:
-            measured = q(spec.measured, "concentration", "design.measured", positive=True)
-        opts["measured_time"] = measured_time
-        rate = q(spec.current_rate, "rate", "design.current_rate", positive=True)
-        dose = q(spec.current_dose, "amount", "design.current_dose", positive=True)
-        interval = q(spec.current_interval, "time", "design.current_interval", positive=True)
-        _need(col, method, measured=measured, plateau=plateau)
-        if (rate is None) == (dose is None):
-            col.add("give either current_rate or current_dose", "design.current_rate")
-        if history and measured_time is None and measured is not None:
-            col.add("with a dose history the level needs its time on that clock",
-                    "design.measured", "measured = { time = '22 h', concentration = '9.1 mg/L' }")
-        if history and v is None:
-            col.add("with a dose history the proportional method needs a volume (to solve "
-                    "the clearance off steady state and project the course)", "volume")
-        opts.update(measured=measured, target=plateau, current_rate=rate, current_dose=dose,
-                    interval=interval, clearance=cl, volume=v)
-        if window is not None:
-            opts["window"] = window
-        for key in ("max_rate", "max_dose", "max_loading", "max_loading_ratio"):
-            opts.pop(key, None)
-    elif method == "chiou":
-        rate = q(spec.rate, "rate", "design.rate", positive=True)
-        samples = [_sample(col, s, f"design.samples[{i}]")
-                   for i, s in enumerate(spec.samples or [])]
-        if len(samples) != 2:
-            col.add(f"Chiou's method takes exactly two levels, got {len(samples)}",
-                    "design.samples", "two { time, concentration } tables")
-        elif None not in samples:
-            (t1, c1), (t2, c2) = samples
-            if t2 <= t1:
-                col.add(f"the second level (at {t2:g} h) must be drawn after the first "
-                        f"(at {t1:g} h)", "design.samples", "levels in time order, apart")
-            opts.update(t1=t1, c1=c1, t2=t2, c2=c2)
-        needs = {"plateau": plateau, "volume": v} if history else {
-            "rate": rate, "plateau": plateau, "volume": v}
-        if _need(col, method, **needs):
-            opts.update(rate=rate, volume=v, target=plateau)
-        if window is not None:
-            opts["window"] = window
-        for key in ("max_dose", "max_loading", "max_loading_ratio"):
-            opts.pop(key, None)
-    elif method == "map":
-        from .fitopts import load_prior, parse_prior
-
-        levels = [_sample(col, x, f"design.levels[{i}]")
-                  for i, x in enumerate(spec.levels or [])]
-        if not levels:
-            col.add("method 'map' needs measured levels", "design.levels",
-                    "levels = [ { time = '6 h', concentration = '8.1 mg/L' } ]")
-        prior = None
-        try:
-            if isinstance(spec.prior, dict):
-                prior = parse_prior(spec.prior)
-            elif isinstance(spec.prior, str):
-                prior = load_prior(spec.prior)
-            else:
-                col.add("method 'map' needs a prior", "design.prior",
-                        "a [scenarios.design.prior] table or a prior file path")
-        except PkcalcInputError as exc:
-            col.problems.extend(exc.problems)
-        t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
-        if plateau is None and peak is None and peak_limits is None and auc is None:
-            col.add("method 'map' needs a new target: plateau, auc_24, or peak/trough with "
-                    "infusion_time", "design.plateau")
-        if plateau is None and t_inf is None and (peak is not None or peak_limits is not None):
-            col.add("a peak/trough target needs infusion_time", "design.infusion_time")
-        opts.update(levels=[x for x in levels if x is not None], prior=prior, plateau=plateau,
-                    infusion_time=t_inf, **interval_opts)
-        lt = q(spec.loading_time, "time", "design.loading_time", nonnegative=True)
-        if lt is not None:
-            opts["loading_time"] = lt
-        if window is not None:
-            opts["window"] = window
-    elif method == "sawchuk_zaske":
-        dose = q(spec.dose, "amount", "design.dose", positive=True)
-        t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
-        interval = q(spec.interval, "time", "design.interval", positive=True)
-        ps = _sample(col, spec.peak_sample, "design.peak_sample")
-        ts = _sample(col, spec.trough_sample, "design.trough_sample")
-        if history:  # the doses come from the history; the new regimen needs an infusion time
-            _need(col, method, peak_sample=spec.peak_sample, trough_sample=spec.trough_sample)
-            if t_inf is None and spec.new_infusion_time is None:
-                col.add("the new regimen needs infusion_time", "design.infusion_time")
-        else:
-            _need(col, method, dose=dose, infusion_time=t_inf, interval=interval,
-                  peak_sample=spec.peak_sample, trough_sample=spec.trough_sample)
-        if ps is not None and ts is not None:
-            if ts[1] >= ps[1]:
-                col.add(f"the trough level {ts[1]:g} mg/L is not below the peak level "
-                        f"{ps[1]:g} mg/L", "design.trough_sample.concentration")
-            if ts[0] == ps[0]:
-                col.add("the peak and trough are drawn at the same time", "design.trough_sample")
-            if not history and t_inf is not None and ps[0] < t_inf:
-                col.add(f"the peak (at {ps[0]:g} h) is drawn before the infusion ends "
-                        f"({t_inf:g} h)", "design.peak_sample.time")
-            if not history and 0 <= ts[0] < ps[0]:
-                col.add("the trough must be drawn after the peak, or before the dose "
-                        "(negative time)", "design.trough_sample.time")
-            if not history and ts[0] < 0 and spec.steady_state is False \
-                    and spec.pre_dose is None:
-                col.add("with steady_state = false a trough drawn before the dose cannot give "
-                        "the elimination rate (a dose lies between the two levels): give the "
-                        "dose history as doses = [...], or draw both levels after the infusion",
-                        "design.steady_state")
-        if ((peak is None and peak_limits is None) or (trough is None and trough_limits is None)) \
-                and auc is None:
-            col.add("the new regimen needs peak and trough targets or limits (or an AUC24 "
-                    "target)", "design.peak")
-        pre = q(spec.pre_dose, "concentration", "design.pre_dose", nonnegative=True)
-        new_t = q(spec.new_infusion_time, "time", "design.new_infusion_time",
-                  nonnegative=True)
-        opts.update(dose=dose, infusion_time=t_inf, interval=interval,
-                    peak_level=ps[1] if ps else None, peak_time=ps[0] if ps else None,
-                    trough_level=ts[1] if ts else None, trough_time=ts[0] if ts else None,
-                    pre_dose_level=pre, new_infusion_time=new_t, **interval_opts)
-        if spec.steady_state is not None:
-            opts["steady_state"] = spec.steady_state
-        for key in ("rate_step", "max_rate", "max_loading", "max_loading_ratio"):
-            opts.pop(key, None)
+    context = _DesignContext(spec, col, cl, v, history, plateau, peak, trough, peak_limits,
+                             trough_limits, interval_opts, auc, window)
+    _METHOD_OPTIONS[method](context, opts)
     return method, opts
+
+
+def _options_continuous(c: _DesignContext, opts: dict[str, Any]) -> None:
+    """Options of method 'continuous'."""
+    method = "continuous"
+    spec = c.spec
+    col = c.col
+    q = c.col.q
+    cl = c.cl
+    v = c.v
+    plateau = c.plateau
+    auc = c.auc
+    window = c.window
+    if spec.plateau is None and spec.auc_24 is None:
+        col.add("method 'continuous' needs a plateau or an AUC24 target", "design.plateau",
+                "plateau = '8 mg/L' or auc_24 = ['400 mg*h/L', '600 mg*h/L']")
+    if _need(col, method, clearance=cl, volume=v):
+        opts.update(clearance=cl, volume=v, plateau=plateau, auc_24=auc)
+    if window is not None:
+        opts["window"] = window
+    lt = q(spec.loading_time, "time", "design.loading_time", nonnegative=True)
+    if lt is not None:
+        opts["loading_time"] = lt
+    if spec.within is not None:
+        if not 0 < spec.within < 1:
+            col.add(f"within must be a fraction in (0, 1), got {spec.within}",
+                    "design.within")
+        opts["within"] = spec.within
+    opts.pop("max_dose", None)
+
+
+def _options_intermittent(c: _DesignContext, opts: dict[str, Any]) -> None:
+    """Options of method 'intermittent'."""
+    method = "intermittent"
+    spec = c.spec
+    col = c.col
+    q = c.col.q
+    cl = c.cl
+    v = c.v
+    peak = c.peak
+    trough = c.trough
+    peak_limits = c.peak_limits
+    trough_limits = c.trough_limits
+    interval_opts = c.interval_opts
+    auc = c.auc
+    t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
+    if _need(col, method, infusion_time=t_inf, clearance=cl, volume=v):
+        opts.update(clearance=cl, volume=v, infusion_time=t_inf)
+    if auc is None and peak is None and peak_limits is None:
+        col.add("needs a peak target or limits (or an AUC24 target)", "design.peak",
+                "peak, peak_min or peak_max")
+    if auc is None and trough is None and trough_limits is None:
+        col.add("needs a trough target or limits (or an AUC24 target)", "design.trough",
+                "trough, trough_min or trough_max")
+    opts.update(interval_opts)
+    for key in ("rate_step", "max_rate", "max_loading"):
+        opts.pop(key, None)
+
+
+def _options_proportional(c: _DesignContext, opts: dict[str, Any]) -> None:
+    """Options of method 'proportional'."""
+    method = "proportional"
+    spec = c.spec
+    col = c.col
+    q = c.col.q
+    cl = c.cl
+    v = c.v
+    history = c.history
+    plateau = c.plateau
+    window = c.window
+    measured_time = None
+    if isinstance(spec.measured, SampleSpec):
+        sample = _sample(col, spec.measured, "design.measured")
+        measured_time, measured = sample if sample else (None, None)
+    else:
+        measured = q(spec.measured, "concentration", "design.measured", positive=True)
+    opts["measured_time"] = measured_time
+    rate = q(spec.current_rate, "rate", "design.current_rate", positive=True)
+    dose = q(spec.current_dose, "amount", "design.current_dose", positive=True)
+    interval = q(spec.current_interval, "time", "design.current_interval", positive=True)
+    _need(col, method, measured=measured, plateau=plateau)
+    if (rate is None) == (dose is None):
+        col.add("give either current_rate or current_dose", "design.current_rate")
+    if history and measured_time is None and measured is not None:
+        col.add("with a dose history the level needs its time on that clock",
+                "design.measured", "measured = { time = '22 h', concentration = '9.1 mg/L' }")
+    if history and v is None:
+        col.add("with a dose history the proportional method needs a volume (to solve "
+                "the clearance off steady state and project the course)", "volume")
+    opts.update(measured=measured, target=plateau, current_rate=rate, current_dose=dose,
+                interval=interval, clearance=cl, volume=v)
+    if window is not None:
+        opts["window"] = window
+    for key in ("max_rate", "max_dose", "max_loading", "max_loading_ratio"):
+        opts.pop(key, None)
+
+
+def _options_chiou(c: _DesignContext, opts: dict[str, Any]) -> None:
+    """Options of method 'chiou'."""
+    method = "chiou"
+    spec = c.spec
+    col = c.col
+    q = c.col.q
+    v = c.v
+    history = c.history
+    plateau = c.plateau
+    window = c.window
+    rate = q(spec.rate, "rate", "design.rate", positive=True)
+    samples = [_sample(col, s, f"design.samples[{i}]")
+               for i, s in enumerate(spec.samples or [])]
+    if len(samples) != 2:
+        col.add(f"Chiou's method takes exactly two levels, got {len(samples)}",
+                "design.samples", "two { time, concentration } tables")
+    elif None not in samples:
+        (t1, c1), (t2, c2) = samples
+        if t2 <= t1:
+            col.add(f"the second level (at {t2:g} h) must be drawn after the first "
+                    f"(at {t1:g} h)", "design.samples", "levels in time order, apart")
+        opts.update(t1=t1, c1=c1, t2=t2, c2=c2)
+    needs = {"plateau": plateau, "volume": v} if history else {
+        "rate": rate, "plateau": plateau, "volume": v}
+    if _need(col, method, **needs):
+        opts.update(rate=rate, volume=v, target=plateau)
+    if window is not None:
+        opts["window"] = window
+    for key in ("max_dose", "max_loading", "max_loading_ratio"):
+        opts.pop(key, None)
+
+
+def _options_map(c: _DesignContext, opts: dict[str, Any]) -> None:
+    """Options of method 'map'."""
+    spec = c.spec
+    col = c.col
+    q = c.col.q
+    plateau = c.plateau
+    peak = c.peak
+    peak_limits = c.peak_limits
+    interval_opts = c.interval_opts
+    auc = c.auc
+    window = c.window
+    from .fitopts import load_prior, parse_prior
+
+    levels = [_sample(col, x, f"design.levels[{i}]")
+              for i, x in enumerate(spec.levels or [])]
+    if not levels:
+        col.add("method 'map' needs measured levels", "design.levels",
+                "levels = [ { time = '6 h', concentration = '8.1 mg/L' } ]")
+    prior = None
+    try:
+        if isinstance(spec.prior, dict):
+            prior = parse_prior(spec.prior)
+        elif isinstance(spec.prior, str):
+            prior = load_prior(spec.prior)
+        else:
+            col.add("method 'map' needs a prior", "design.prior",
+                    "a [scenarios.design.prior] table or a prior file path")
+    except PkcalcInputError as exc:
+        col.problems.extend(exc.problems)
+    t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
+    if plateau is None and peak is None and peak_limits is None and auc is None:
+        col.add("method 'map' needs a new target: plateau, auc_24, or peak/trough with "
+                "infusion_time", "design.plateau")
+    if plateau is None and t_inf is None and (peak is not None or peak_limits is not None):
+        col.add("a peak/trough target needs infusion_time", "design.infusion_time")
+    opts.update(levels=[x for x in levels if x is not None], prior=prior, plateau=plateau,
+                infusion_time=t_inf, **interval_opts)
+    lt = q(spec.loading_time, "time", "design.loading_time", nonnegative=True)
+    if lt is not None:
+        opts["loading_time"] = lt
+    if window is not None:
+        opts["window"] = window
+
+
+def _options_sawchuk_zaske(c: _DesignContext, opts: dict[str, Any]) -> None:
+    """Options of method 'sawchuk_zaske'."""
+    method = "sawchuk_zaske"
+    spec = c.spec
+    col = c.col
+    q = c.col.q
+    history = c.history
+    peak = c.peak
+    trough = c.trough
+    peak_limits = c.peak_limits
+    trough_limits = c.trough_limits
+    interval_opts = c.interval_opts
+    auc = c.auc
+    dose = q(spec.dose, "amount", "design.dose", positive=True)
+    t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
+    interval = q(spec.interval, "time", "design.interval", positive=True)
+    ps = _sample(col, spec.peak_sample, "design.peak_sample")
+    ts = _sample(col, spec.trough_sample, "design.trough_sample")
+    if history:  # the doses come from the history; the new regimen needs an infusion time
+        _need(col, method, peak_sample=spec.peak_sample, trough_sample=spec.trough_sample)
+        if t_inf is None and spec.new_infusion_time is None:
+            col.add("the new regimen needs infusion_time", "design.infusion_time")
+    else:
+        _need(col, method, dose=dose, infusion_time=t_inf, interval=interval,
+              peak_sample=spec.peak_sample, trough_sample=spec.trough_sample)
+    if ps is not None and ts is not None:
+        if ts[1] >= ps[1]:
+            col.add(f"the trough level {ts[1]:g} mg/L is not below the peak level "
+                    f"{ps[1]:g} mg/L", "design.trough_sample.concentration")
+        if ts[0] == ps[0]:
+            col.add("the peak and trough are drawn at the same time", "design.trough_sample")
+        if not history and t_inf is not None and ps[0] < t_inf:
+            col.add(f"the peak (at {ps[0]:g} h) is drawn before the infusion ends "
+                    f"({t_inf:g} h)", "design.peak_sample.time")
+        if not history and 0 <= ts[0] < ps[0]:
+            col.add("the trough must be drawn after the peak, or before the dose "
+                    "(negative time)", "design.trough_sample.time")
+        if not history and ts[0] < 0 and spec.steady_state is False \
+                and spec.pre_dose is None:
+            col.add("with steady_state = false a trough drawn before the dose cannot give "
+                    "the elimination rate (a dose lies between the two levels): give the "
+                    "dose history as doses = [...], or draw both levels after the infusion",
+                    "design.steady_state")
+    if ((peak is None and peak_limits is None) or (trough is None and trough_limits is None)) \
+            and auc is None:
+        col.add("the new regimen needs peak and trough targets or limits (or an AUC24 "
+                "target)", "design.peak")
+    pre = q(spec.pre_dose, "concentration", "design.pre_dose", nonnegative=True)
+    new_t = q(spec.new_infusion_time, "time", "design.new_infusion_time",
+              nonnegative=True)
+    opts.update(dose=dose, infusion_time=t_inf, interval=interval,
+                peak_level=ps[1] if ps else None, peak_time=ps[0] if ps else None,
+                trough_level=ts[1] if ts else None, trough_time=ts[0] if ts else None,
+                pre_dose_level=pre, new_infusion_time=new_t, **interval_opts)
+    if spec.steady_state is not None:
+        opts["steady_state"] = spec.steady_state
+    for key in ("rate_step", "max_rate", "max_loading", "max_loading_ratio"):
+        opts.pop(key, None)
+
+
+_METHOD_OPTIONS = {name: globals()[f"_options_{name}"] for name in DESIGN_METHODS}
 
 
 class DesignCaseSpec(_WithParameters):
