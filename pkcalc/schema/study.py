@@ -171,140 +171,176 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
         raise PkcalcInputError(problems)
     _warn_unknown(lv, {"subject", "time", "concentration", "lloq", "blq"}, warnings)
     _warn_unknown(ds, {"subject", "start", "amount", "rate", "duration"}, warnings)
-
-    # subjects table (weights needed for per-kg doses)
-    covariates: dict[str, dict[str, float]] = {}
     files = [lv_file, ds_file]
+    covariates: dict[str, dict[str, float]] = {}
     if subjects is not None:
-        sb = _Columns(read_table(subjects), str(subjects))
+        covariates = _read_subjects(subjects, warnings)
         files.append(str(subjects))
-        _require(sb, ["subject"], problems)
-        if problems:
-            raise PkcalcInputError(problems)
-        ids = sb.text("subject")
-        table: dict[str, pd.Series] = {}
-        for key, (col, unit) in sb.map.items():
-            if key == "subject":
-                continue
-            if key == "weight":
-                table["weight"], _ = sb.numeric("weight", "weight", problems)
-            elif key == "initial_concentration":
-                table[key], _ = sb.numeric(key, "concentration", problems)
-            elif unit is not None:
-                raw = sb.text(key)
-                table[key] = pd.to_numeric(raw.where(raw != ""), errors="coerce")
-            else:
-                raw = sb.text(key)
-                numeric = pd.to_numeric(raw.where(raw != ""), errors="coerce")
-                if numeric.notna().sum() == (raw != "").sum():
-                    table[key] = numeric
-                else:
-                    warnings.append(f"{sb.file}: text column '{col}' kept out of the covariates")
-        dup = ids[ids.duplicated()]
-        if len(dup):
-            problems.append(Problem(f"subject '{dup.iloc[0]}' appears twice", file=sb.file,
-                                    field="subject"))
-        if "initial_concentration" in table and (table["initial_concentration"] < 0).any():
-            line = int(np.flatnonzero((table["initial_concentration"] < 0).to_numpy())[0]) + 2
-            problems.append(Problem(f"initial_concentration must not be negative (line {line})",
-                                    file=sb.file, field="initial_concentration"))
-        if "weight" in table and (table["weight"] <= 0).any():
-            line = int(np.flatnonzero((table["weight"] <= 0).to_numpy())[0]) + 2
-            problems.append(Problem(f"weight must be positive (line {line})", file=sb.file,
-                                    field="weight"))
-        for i, sid in enumerate(ids):
-            covariates[sid] = {k: float(v.iloc[i]) for k, v in table.items()
-                               if not pd.isna(v.iloc[i])}
-
-    # levels: columns in canonical units
-    l_subject = lv.text("subject")
-    l_time, _ = lv.numeric("time", "time", problems)
-    l_conc, _ = lv.numeric("concentration", "concentration", problems)
-    l_lloq = (lv.numeric("lloq", "concentration", problems)[0] if lv.has("lloq")
-              else pd.Series(np.nan, index=l_time.index))
-    l_blq_mark = (_bool_column(lv, "blq", problems) if lv.has("blq")
-                  else pd.Series(False, index=l_time.index))
-    # doses
-    d_subject = ds.text("subject")
-    d_start, _ = ds.numeric("start", "time", problems)
-    given = {}
-    specs = {}
-    for name, kind in (("amount", "amount"), ("rate", "rate"), ("duration", "time")):
-        if ds.has(name):
-            given[name], specs[name] = ds.numeric(name, kind, problems)
-    if not given or list(given) == ["rate"] or list(given) == ["duration"]:
-        problems.append(Problem("the doses table needs amount, or two of amount, rate, "
-                                "duration", file=ds_file, field="amount",
-                                expected="amount [..] and optionally rate [..] or duration [..]"))
-    if l_subject.eq("").any():
-        problems.append(Problem("empty subject at line "
-                                f"{int(np.flatnonzero(l_subject.eq('').to_numpy())[0]) + 2}",
-                                file=lv_file, field="subject"))
-    if l_time.isna().any() and not problems:
-        line = int(np.flatnonzero(l_time.isna().to_numpy())[0]) + 2
-        problems.append(Problem(f"missing time at line {line}", file=lv_file, field="time"))
-    if d_start.isna().any() and not problems:
-        line = int(np.flatnonzero(d_start.isna().to_numpy())[0]) + 2
-        problems.append(Problem(f"missing start at line {line}", file=ds_file, field="start"))
+    lvl = _read_levels(lv, problems)
+    dos = _read_doses(ds, problems)
     if problems:
         raise PkcalcInputError(problems)
+    fails = _Failures()
+    amount, duration = _dose_amounts(dos, covariates, fails, ds_file)
+    blq = _level_checks(lvl, fails, lv_file)
+    level_frame = pd.DataFrame({"subject": lvl["subject"], "time": lvl["time"],
+                                "conc": lvl["conc"], "lloq": lvl["lloq"], "blq": blq,
+                                "marked": lvl["blq_mark"],
+                                "row": np.arange(len(lvl["time"])) + 2})
+    dose_frame = pd.DataFrame({"subject": dos["subject"], "start": dos["start"],
+                               "amount": amount, "duration": duration})
+    _cross_checks(level_frame, dose_frame, covariates, fails, warnings, lv_file, ds_file)
+    good = _subjects(level_frame, dose_frame, covariates, fails, lv_file)
+    return Study(good, fails.as_list(), warnings, files)
 
-    # per-kg dose columns need weights (row-wise, vectorised)
+
+class _Failures:
+    """Problems per subject (a subject with any is left out of the study)."""
+
+    def __init__(self) -> None:
+        self.by_subject: dict[str, list[Problem]] = {}
+
+    def __call__(self, sid: str, message: str, file: str, field: str | None = None) -> None:
+        self.by_subject.setdefault(sid, []).append(
+            Problem(message, file=file, item=f"subject '{sid}'", field=field))
+
+    def __contains__(self, sid: str) -> bool:
+        return sid in self.by_subject
+
+    def as_list(self) -> list[tuple[str, PkcalcInputError]]:
+        return [(f"subject '{sid}'", PkcalcInputError(p)) for sid, p in self.by_subject.items()]
+
+
+def _read_subjects(path: str | Path, warnings: list[str]) -> dict[str, dict[str, float]]:
+    """The subjects table: weight, initial_concentration and numeric covariates by subject."""
+    problems: list[Problem] = []
+    sb = _Columns(read_table(path), str(path))
+    _require(sb, ["subject"], problems)
+    if problems:
+        raise PkcalcInputError(problems)
+    ids = sb.text("subject")
+    table: dict[str, pd.Series] = {}
+    for key, (col, unit) in sb.map.items():
+        if key == "subject":
+            continue
+        if key == "weight":
+            table["weight"], _ = sb.numeric("weight", "weight", problems)
+        elif key == "initial_concentration":
+            table[key], _ = sb.numeric(key, "concentration", problems)
+        else:
+            raw = sb.text(key)
+            numeric = pd.to_numeric(raw.where(raw != ""), errors="coerce")
+            if unit is not None or numeric.notna().sum() == (raw != "").sum():
+                table[key] = numeric
+            else:
+                warnings.append(f"{sb.file}: text column '{col}' kept out of the covariates")
+    dup = ids[ids.duplicated()]
+    if len(dup):
+        problems.append(Problem(f"subject '{dup.iloc[0]}' appears twice", file=sb.file,
+                                field="subject"))
+    for key, bad, rule in (("initial_concentration", lambda x: x < 0, "must not be negative"),
+                           ("weight", lambda x: x <= 0, "must be positive")):
+        if key in table and bad(table[key]).any():
+            line = int(np.flatnonzero(bad(table[key]).to_numpy())[0]) + 2
+            problems.append(Problem(f"{key} {rule} (line {line})", file=sb.file, field=key))
+    if problems:
+        raise PkcalcInputError(problems)
+    return {sid: {k: float(v.iloc[i]) for k, v in table.items() if not pd.isna(v.iloc[i])}
+            for i, sid in enumerate(ids)}
+
+
+def _read_levels(lv: _Columns, problems: list[Problem]) -> dict[str, pd.Series]:
+    """The levels table's columns in canonical units."""
+    out = {"subject": lv.text("subject")}
+    out["time"], _ = lv.numeric("time", "time", problems)
+    out["conc"], _ = lv.numeric("concentration", "concentration", problems)
+    index = out["time"].index
+    out["lloq"] = (lv.numeric("lloq", "concentration", problems)[0] if lv.has("lloq")
+                   else pd.Series(np.nan, index=index))
+    out["blq_mark"] = (_bool_column(lv, "blq", problems) if lv.has("blq")
+                       else pd.Series(False, index=index))
+    if out["subject"].eq("").any():
+        problems.append(Problem("empty subject at line "
+                                f"{int(np.flatnonzero(out['subject'].eq('').to_numpy())[0]) + 2}",
+                                file=lv.file, field="subject"))
+    if out["time"].isna().any() and not problems:
+        line = int(np.flatnonzero(out["time"].isna().to_numpy())[0]) + 2
+        problems.append(Problem(f"missing time at line {line}", file=lv.file, field="time"))
+    return out
+
+
+def _read_doses(ds: _Columns, problems: list[Problem]) -> dict[str, Any]:
+    """The doses table's columns in canonical units (per-kg columns still per kg)."""
+    out: dict[str, Any] = {"subject": ds.text("subject"), "given": {}, "specs": {}}
+    out["start"], _ = ds.numeric("start", "time", problems)
+    for name, kind in (("amount", "amount"), ("rate", "rate"), ("duration", "time")):
+        if ds.has(name):
+            out["given"][name], out["specs"][name] = ds.numeric(name, kind, problems)
+    if not out["given"] or list(out["given"]) in (["rate"], ["duration"]):
+        problems.append(Problem("the doses table needs amount, or two of amount, rate, "
+                                "duration", file=ds.file, field="amount",
+                                expected="amount [..] and optionally rate [..] or duration [..]"))
+    if out["start"].isna().any() and not problems:
+        line = int(np.flatnonzero(out["start"].isna().to_numpy())[0]) + 2
+        problems.append(Problem(f"missing start at line {line}", file=ds.file, field="start"))
+    return out
+
+
+def _dose_amounts(dos: dict[str, Any], covariates, fails: _Failures, ds_file: str):
+    """Amount and duration per dose row (per-kg columns times the weight); problems
+    per subject."""
+    d_subject, given = dos["subject"], dict(dos["given"])
     weight_of = d_subject.map(lambda s: covariates.get(s, {}).get("weight", np.nan))
     per_kg_missing = pd.Series(False, index=d_subject.index)
-    for name, spec in specs.items():
+    for name, spec in dos["specs"].items():
         if spec is not None and spec.per_kg:
             given[name] = given[name] * weight_of
             per_kg_missing |= weight_of.isna()
-
     amount, duration, dose_problem = _resolve_doses(given)
-    subject_failures: dict[str, list[Problem]] = {}
-
-    def fail(sid: str, message: str, file: str, field: str | None = None) -> None:
-        subject_failures.setdefault(sid, []).append(
-            Problem(message, file=file, item=f"subject '{sid}'", field=field))
-
     for i in np.flatnonzero((dose_problem != "").to_numpy() & ~per_kg_missing.to_numpy()):
-        fail(d_subject.iloc[i], f"{dose_problem.iloc[i]} (line {i + 2})", ds_file)
+        fails(d_subject.iloc[i], f"{dose_problem.iloc[i]} (line {i + 2})", ds_file)
     for i in np.flatnonzero(per_kg_missing.to_numpy()):
-        fail(d_subject.iloc[i], f"a per-kg dose needs the subject's weight (line {i + 2}): "
-             + ("give it in the subjects table" if covariates else
-                "no subjects table with a weight column was given"), ds_file, "weight")
-    for i in np.flatnonzero((d_start < 0).to_numpy()):
-        fail(d_subject.iloc[i], f"negative dose start (line {i + 2})", ds_file, "start")
+        fails(d_subject.iloc[i], f"a per-kg dose needs the subject's weight (line {i + 2}): "
+              + ("give it in the subjects table" if covariates else
+                 "no subjects table with a weight column was given"), ds_file, "weight")
+    for i in np.flatnonzero((dos["start"] < 0).to_numpy()):
+        fails(d_subject.iloc[i], f"negative dose start (line {i + 2})", ds_file, "start")
+    return amount, duration
 
-    # BLQ: marked, or a number under its LLOQ, or an empty level with an LLOQ
-    below = l_conc < l_lloq
-    empty_with_lloq = l_conc.isna() & l_lloq.notna()
-    blq = l_blq_mark | below | empty_with_lloq
-    for i in np.flatnonzero((l_blq_mark & (l_conc > l_lloq)).to_numpy()):
-        fail(l_subject.iloc[i], f"marked BLQ but the level {l_conc.iloc[i]:g} mg/L is above its "
-             f"LLOQ {l_lloq.iloc[i]:g} mg/L (line {i + 2})", lv_file, "blq")
-    for i in np.flatnonzero((l_blq_mark & l_lloq.isna() & l_conc.isna()).to_numpy()):
-        fail(l_subject.iloc[i], f"a BLQ level needs its LLOQ (line {i + 2})", lv_file, "lloq")
-    for i in np.flatnonzero((l_conc.isna() & ~blq).to_numpy()):
-        fail(l_subject.iloc[i], f"missing concentration (line {i + 2}); a level below the "
-             "limit of quantification needs blq = true and its lloq", lv_file, "concentration")
-    for i in np.flatnonzero((l_conc < 0).to_numpy()):
-        fail(l_subject.iloc[i], f"negative concentration {l_conc.iloc[i]:g} mg/L (line {i + 2})",
-             lv_file, "concentration")
-    for i in np.flatnonzero((l_time < 0).to_numpy()):
-        fail(l_subject.iloc[i], f"negative time (line {i + 2})", lv_file, "time")
 
-    level_frame = pd.DataFrame({"subject": l_subject, "time": l_time, "conc": l_conc,
-                                "lloq": l_lloq, "blq": blq, "marked": l_blq_mark,
-                                "row": np.arange(len(l_time)) + 2})
-    dose_frame = pd.DataFrame({"subject": d_subject, "start": d_start, "amount": amount,
-                               "duration": duration})
+def _level_checks(lvl: dict[str, pd.Series], fails: _Failures, lv_file: str) -> pd.Series:
+    """BLQ per level (marked, a number under its LLOQ, or empty with an LLOQ) and the
+    level problems per subject."""
+    subject, conc, lloq, mark, time = (lvl[k] for k in ("subject", "conc", "lloq",
+                                                        "blq_mark", "time"))
+    blq = mark | (conc < lloq) | (conc.isna() & lloq.notna())
+    for i in np.flatnonzero((mark & (conc > lloq)).to_numpy()):
+        fails(subject.iloc[i], f"marked BLQ but the level {conc.iloc[i]:g} mg/L is above its "
+              f"LLOQ {lloq.iloc[i]:g} mg/L (line {i + 2})", lv_file, "blq")
+    for i in np.flatnonzero((mark & lloq.isna() & conc.isna()).to_numpy()):
+        fails(subject.iloc[i], f"a BLQ level needs its LLOQ (line {i + 2})", lv_file, "lloq")
+    for i in np.flatnonzero((conc.isna() & ~blq).to_numpy()):
+        fails(subject.iloc[i], f"missing concentration (line {i + 2}); a level below the "
+              "limit of quantification needs blq = true and its lloq", lv_file, "concentration")
+    for i in np.flatnonzero((conc < 0).to_numpy()):
+        fails(subject.iloc[i], f"negative concentration {conc.iloc[i]:g} mg/L (line {i + 2})",
+              lv_file, "concentration")
+    for i in np.flatnonzero((time < 0).to_numpy()):
+        fails(subject.iloc[i], f"negative time (line {i + 2})", lv_file, "time")
+    return blq
+
+
+def _cross_checks(level_frame, dose_frame, covariates, fails: _Failures, warnings: list[str],
+                  lv_file: str, ds_file: str) -> None:
+    """Duplicate sample times, and subjects present in one table only."""
     dup = level_frame.duplicated(["subject", "time"], keep=False)
     for sid, rows in level_frame[dup].groupby("subject")["row"]:
-        fail(sid, f"duplicate sample times (lines {', '.join(map(str, rows.tolist()))})",
-             lv_file, "time")
-
+        fails(sid, f"duplicate sample times (lines {', '.join(map(str, rows.tolist()))})",
+              lv_file, "time")
     level_ids = set(level_frame["subject"])
     dose_ids = set(dose_frame["subject"])
     for sid in sorted(level_ids - dose_ids):
-        fail(sid, "has levels but no doses", ds_file, "subject")
+        fails(sid, "has levels but no doses", ds_file, "subject")
     only_doses = sorted(dose_ids - level_ids)
     if only_doses:
         warnings.append(f"subjects with doses but no levels (left out): {', '.join(only_doses)}")
@@ -317,10 +353,14 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
             warnings.append(f"subjects without a row in the subjects table: "
                             f"{', '.join(no_cov)}")
 
+
+def _subjects(level_frame, dose_frame, covariates, fails: _Failures,
+              lv_file: str) -> list[SubjectData]:
+    """One SubjectData per subject without problems."""
     good: list[SubjectData] = []
     doses_by = {sid: g for sid, g in dose_frame.groupby("subject", sort=False)}
     for sid, g in level_frame.groupby("subject", sort=False):
-        if sid in subject_failures:
+        if sid in fails:
             continue
         d = doses_by[sid].sort_values("start", kind="stable")
         notes = []
@@ -328,22 +368,20 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
             notes.append("levels were not in time order; sorted by time")
             g = g.sort_values("time", kind="stable")
         if (g["time"] <= d["start"].min()).all():
-            fail(sid, "no level after the first dose", lv_file, "time")
+            fails(sid, "no level after the first dose", lv_file, "time")
             continue
         n_under = int((g["blq"] & ~g["marked"] & g["conc"].notna()).sum())
         if n_under:
             notes.append(f"{n_under} level(s) below their LLOQ treated as BLQ")
+        cov = covariates.get(sid, {})
         good.append(SubjectData(
             subject=str(sid), time=g["time"].to_numpy(float), conc=g["conc"].to_numpy(float),
             lloq=g["lloq"].to_numpy(float), blq=g["blq"].to_numpy(bool),
             rows=g["row"].to_numpy(int), dose_start=d["start"].to_numpy(float),
             dose_amount=d["amount"].to_numpy(float), dose_duration=d["duration"].to_numpy(float),
-            covariates={k: x for k, x in covariates.get(sid, {}).items()
-                        if k != "initial_concentration"},
-            notes=tuple(notes),
-            initial_concentration=covariates.get(sid, {}).get("initial_concentration", 0.0)))
-    failures = [(f"subject '{sid}'", PkcalcInputError(p)) for sid, p in subject_failures.items()]
-    return Study(good, failures, warnings, files)
+            covariates={k: x for k, x in cov.items() if k != "initial_concentration"},
+            notes=tuple(notes), initial_concentration=cov.get("initial_concentration", 0.0)))
+    return good
 
 
 def _resolve_doses(given: dict[str, pd.Series]) -> tuple[pd.Series, pd.Series, pd.Series]:
