@@ -309,93 +309,126 @@ def nca_subject(subject: str, time, conc, blq, dose_start, dose_amount, dose_dur
     -------
     NcaResult
     """
-    time = np.asarray(time, float)
-    conc = np.asarray(conc, float)
-    blq = np.asarray(blq, bool)
     starts = np.asarray(dose_start, float)
     amounts = np.asarray(dose_amount, float)
     durations = np.asarray(dose_duration, float)
     notes: list[str] = []
-    order = np.argsort(time, kind="stable")
-    if np.any(np.diff(order) < 0):
-        notes.append("levels were not in time order; sorted")
-    time, conc, blq = time[order], conc[order], blq[order]
-
-    tau = _regular_interval(starts)
-    if starts.size == 1:
-        mode, ref, dose, t_inf = "single dose", starts[0], amounts[0], durations[0]
-    elif tau is not None and np.isclose(amounts[-1], amounts[-2]) and \
-            np.isclose(durations[-1], durations[-2]):
-        mode, ref, dose, t_inf = "steady state", starts[-1], amounts[-1], durations[-1]
-        notes.append(f"last of {starts.size} regular doses every {short(tau)} h: analysed over "
-                     "one interval, assuming steady state")
-    else:
-        mode, ref, dose, t_inf = ("total exposure", starts[0], float(amounts.sum()),
-                                  float(durations[0]))
-        tau = None
-        notes.append("irregular repeated doses: areas from the first dose with the total amount "
-                     f"({short(dose)} mg); MRT and Vss not computed")
+    time, conc, blq = _sorted_levels(time, conc, blq, notes)
+    mode, ref, dose, t_inf, tau = _reference_dose(starts, amounts, durations, notes)
     base = NcaResult(subject, mode, float(dose), float(t_inf), tau, float(ref))
-
-    sel = time >= ref - 1e-9
-    pre_note = None
-    if mode == "steady state":
-        sel &= time <= ref + tau + 1e-9
-        # a trough drawn shortly before the dose (after the previous infusion ended, within
-        # the last quarter of the interval) is the level at the start of the interval:
-        # common practice for pre-dose samples at steady state
-        prev_end = starts[-2] + durations[-2]
-        before = np.flatnonzero((time < ref - 1e-9) & (time >= max(prev_end, ref - tau / 4))
-                                & ~np.isnan(conc) & ~blq)
-        if before.size and not np.any(np.abs(time - ref) <= 1e-9):
-            j = int(before[-1])
-            sel[j] = True
-            pre_note = (f"pre-dose level drawn {short(ref - time[j])} h before the dose taken as "
-                        f"the level at the start of the interval ({short(conc[j])} mg/L)")
-            time = time.copy()
-            time[j] = ref
-    t, c, b = time[sel] - ref, conc[sel], blq[sel]
-    if pre_note:
-        notes.append(pre_note)
+    t, c, b = _interval_samples(time, conc, blq, starts, durations, mode, ref, tau, notes)
     t, c, blq_note = _apply_blq(t, c, b, blq_rule)
     if blq_note:
         notes.append(blq_note)
     if t.size == 0 or not np.any(c > 0):
         notes.append("no measurable level after the dose: nothing to analyse")
         return _with(base, notes=tuple(notes))
-
-    is_bolus = t_inf <= 0
-    # the level at the reference time
-    inserted = t[0] > 0
-    if inserted:
-        if is_bolus:
-            pos = np.flatnonzero(c > 0)[:2]
-            if pos.size == 2 and c[pos[1]] < c[pos[0]]:
-                k0 = math.log(c[pos[0]] / c[pos[1]]) / (t[pos[1]] - t[pos[0]])
-                c0 = c[pos[0]] * math.exp(k0 * t[pos[0]])
-                notes.append(f"level at the bolus back-extrapolated log-linearly from the first "
-                             f"two levels: {short(c0)} mg/L")
-            else:
-                c0 = c[pos[0]]
-                notes.append("level at the bolus taken as the first level (no falling pair to "
-                             "back-extrapolate)")
-        elif mode == "steady state":
-            c0 = math.nan  # filled below from the end of the interval
-        else:
-            c0 = 0.0
-        t = np.concatenate([[0.0], t])
-        c = np.concatenate([[c0], c])
-    # peak (observed levels only) and terminal phase
+    t, c, inserted = _level_at_dose(t, c, t_inf, mode, notes)
     observed = np.arange(1 if inserted else 0, t.size)
     i_peak = int(observed[np.nanargmax(c[observed])])
     peak_c, peak_t = float(c[i_peak]), float(t[i_peak])
-    measurable = np.flatnonzero(c > 0)
-    i_last = int(measurable[-1])
+    i_last = int(np.flatnonzero(c > 0)[-1])
+    window = _terminal_window(t, c, i_peak, i_last, t_inf, ref, starts, durations, mode, notes)
+    manual = None if terminal_times is None else np.asarray(terminal_times, float) - ref
+    phase, phase_note = terminal_phase(t[window], c[window], tolerance=r2_tolerance,
+                                       times=manual)
+    notes.append(phase_note)
+    lz = phase.slope if phase else None
     last_c, last_t = float(c[i_last]), float(t[i_last])
-    window = (np.arange(t.size) > i_peak) & (t >= t_inf - 1e-9) & (c > 0)
-    window &= np.arange(t.size) <= i_last
-    # never a point while any infusion runs (irregular histories: later doses too), and
-    # for total exposure only points after the end of the last dose
+    t, c = _fill_pre_dose(t, c, mode, lz, last_c, last_t, tau, notes)
+    upto = t <= last_t + 1e-12
+    seg_auc, seg_aumc = auc_segments(t[upto], c[upto], auc_method)
+    out = dict(peak_concentration=peak_c, peak_time=peak_t,
+               last_concentration=last_c, last_time=last_t,
+               auc_to_last=float(seg_auc.sum()), aumc_to_last=float(seg_aumc.sum()),
+               points_used=tuple(float(x + ref) for x in (phase.times if phase else [])),
+               time=t + ref, conc=c)
+    if phase is not None:
+        out.update(terminal_slope=lz, terminal_half_life=math.log(2) / lz,
+                   adjusted_r2=phase.adjusted_r2, terminal_intercept=phase.intercept)
+    if mode == "steady state":
+        _steady_state_parameters(out, dose, tau, lz, starts, notes)
+    else:
+        _single_or_total_parameters(out, dose, t_inf, lz, mode, extrapolation_limit, notes)
+    return _with(base, notes=tuple(notes), **out)
+
+
+def _sorted_levels(time, conc, blq, notes: list[str]):
+    time = np.asarray(time, float)
+    conc = np.asarray(conc, float)
+    blq = np.asarray(blq, bool)
+    order = np.argsort(time, kind="stable")
+    if np.any(np.diff(order) < 0):
+        notes.append("levels were not in time order; sorted")
+    return time[order], conc[order], blq[order]
+
+
+def _reference_dose(starts, amounts, durations, notes: list[str]):
+    """The dose the analysis refers to: single, last of regular doses, or total exposure."""
+    tau = _regular_interval(starts)
+    if starts.size == 1:
+        return "single dose", starts[0], amounts[0], durations[0], tau
+    if tau is not None and np.isclose(amounts[-1], amounts[-2]) and \
+            np.isclose(durations[-1], durations[-2]):
+        notes.append(f"last of {starts.size} regular doses every {short(tau)} h: analysed over "
+                     "one interval, assuming steady state")
+        return "steady state", starts[-1], amounts[-1], durations[-1], tau
+    dose = float(amounts.sum())
+    notes.append("irregular repeated doses: areas from the first dose with the total amount "
+                 f"({short(dose)} mg); MRT and Vss not computed")
+    return "total exposure", starts[0], dose, float(durations[0]), None
+
+
+def _interval_samples(time, conc, blq, starts, durations, mode, ref, tau, notes: list[str]):
+    """Levels from the reference dose on (one interval at steady state), times relative
+    to it; at steady state a trough drawn shortly before the dose (after the previous
+    infusion ended, within the last quarter of the interval) is the level at the start
+    of the interval -- common practice for pre-dose samples."""
+    sel = time >= ref - 1e-9
+    if mode == "steady state":
+        sel &= time <= ref + tau + 1e-9
+        prev_end = starts[-2] + durations[-2]
+        before = np.flatnonzero((time < ref - 1e-9) & (time >= max(prev_end, ref - tau / 4))
+                                & ~np.isnan(conc) & ~blq)
+        if before.size and not np.any(np.abs(time - ref) <= 1e-9):
+            j = int(before[-1])
+            sel[j] = True
+            notes.append(f"pre-dose level drawn {short(ref - time[j])} h before the dose taken "
+                         f"as the level at the start of the interval ({short(conc[j])} mg/L)")
+            time = time.copy()
+            time[j] = ref
+    return time[sel] - ref, conc[sel], blq[sel]
+
+
+def _level_at_dose(t, c, t_inf, mode, notes: list[str]):
+    """Add the level at the reference time when not sampled: 0 for an infusion, the
+    log-linear back-extrapolation for a bolus, NaN at steady state (filled later)."""
+    if t[0] <= 0:
+        return t, c, False
+    if t_inf <= 0:
+        pos = np.flatnonzero(c > 0)[:2]
+        if pos.size == 2 and c[pos[1]] < c[pos[0]]:
+            k0 = math.log(c[pos[0]] / c[pos[1]]) / (t[pos[1]] - t[pos[0]])
+            c0 = c[pos[0]] * math.exp(k0 * t[pos[0]])
+            notes.append(f"level at the bolus back-extrapolated log-linearly from the first "
+                         f"two levels: {short(c0)} mg/L")
+        else:
+            c0 = c[pos[0]]
+            notes.append("level at the bolus taken as the first level (no falling pair to "
+                         "back-extrapolate)")
+    elif mode == "steady state":
+        c0 = math.nan
+    else:
+        c0 = 0.0
+    return np.concatenate([[0.0], t]), np.concatenate([[c0], c]), True
+
+
+def _terminal_window(t, c, i_peak, i_last, t_inf, ref, starts, durations, mode,
+                     notes: list[str]) -> np.ndarray:
+    """Candidate terminal points: after the peak and the reference infusion, measurable,
+    never while any infusion runs (and for total exposure after the last dose ended)."""
+    idx = np.arange(t.size)
+    window = (idx > i_peak) & (t >= t_inf - 1e-9) & (c > 0) & (idx <= i_last)
     t_abs = t + ref
     running = ((durations[None, :] > 0) & (starts[None, :] < t_abs[:, None] - 1e-9)
                & (t_abs[:, None] < starts[None, :] + durations[None, :] - 1e-9)).any(axis=1)
@@ -404,85 +437,77 @@ def nca_subject(subject: str, time, conc, blq, dose_start, dose_amount, dose_dur
     if np.any(window & running):
         notes.append(f"{int((window & running).sum())} level(s) drawn while an infusion was "
                      "running (or before the last dose ended) left out of the terminal phase")
-    window &= ~running
-    if np.any((np.arange(t.size) > i_peak) & (c <= 0) & (np.arange(t.size) < i_last)):
+    if np.any((idx > i_peak) & (c <= 0) & (idx < i_last)):
         notes.append("zero levels inside the declining phase are left out of the terminal fit")
-    manual = None if terminal_times is None else np.asarray(terminal_times, float) - ref
-    phase, phase_note = terminal_phase(t[window], c[window], tolerance=r2_tolerance,
-                                       times=manual)
-    notes.append(phase_note)
-    lz = phase.slope if phase else None
+    return window & ~running
 
-    if mode == "steady state" and np.isnan(c[0]):
+
+def _fill_pre_dose(t, c, mode, lz, last_c, last_t, tau, notes: list[str]):
+    """At steady state without a pre-dose level: the level at the end of the interval."""
+    if not (mode == "steady state" and np.isnan(c[0])):
+        return t, c
+    if lz is not None:
+        c = c.copy()
+        c[0] = last_c * math.exp(-lz * (tau - last_t))
+        notes.append(f"pre-dose level not sampled: taken as the level at the end of the "
+                     f"interval, {short(c[0])} mg/L (steady state, terminal slope)")
+        return t, c
+    notes.append("pre-dose level not sampled and no terminal slope: area starts at the "
+                 "first level")
+    return t[1:], c[1:]
+
+
+def _steady_state_parameters(out, dose, tau, lz, starts, notes: list[str]) -> None:
+    """AUC over the interval, CL, average level, fluctuation, accumulation."""
+    last_c, last_t = out["last_concentration"], out["last_time"]
+    if lz is not None and (starts.size - 1) * tau < 5 * math.log(2) / lz:
+        notes.append(f"{short((starts.size - 1) * tau)} h of regular dosing before the last dose "
+                     f"is less than five terminal half-lives ({short(5 * math.log(2) / lz)} h): "
+                     "steady state may not be reached")
+    auc_tau = out["auc_to_last"]
+    if last_t < tau - 1e-9:
         if lz is not None:
-            c[0] = last_c * math.exp(-lz * (tau - last_t))
-            notes.append(f"pre-dose level not sampled: taken as the level at the end of the "
-                         f"interval, {short(c[0])} mg/L (steady state, terminal slope)")
+            tail = np.array([last_t, tau])
+            tail_c = np.array([last_c, last_c * math.exp(-lz * (tau - last_t))])
+            auc_tau += float(auc_segments(tail, tail_c, "linear-up-log-down")[0].sum())
+            notes.append(f"interval area extrapolated from {short(last_t)} h to "
+                         f"{short(tau)} h with the terminal slope")
         else:
-            c = c[1:]
-            t = t[1:]
-            notes.append("pre-dose level not sampled and no terminal slope: area starts at the "
-                         "first level")
-    # areas to the last measurable level
-    upto = t <= last_t + 1e-12
-    seg_auc, seg_aumc = auc_segments(t[upto], c[upto], auc_method)
-    auc_last = float(seg_auc.sum())
-    aumc_last = float(seg_aumc.sum())
-    out = dict(peak_concentration=peak_c, peak_time=peak_t, last_concentration=last_c,
-               last_time=last_t, auc_to_last=auc_last, aumc_to_last=aumc_last,
-               points_used=tuple(float(x + ref) for x in (phase.times if phase else [])),
-               time=t + ref, conc=c)
-    if phase is not None:
-        out.update(terminal_slope=lz, terminal_half_life=math.log(2) / lz,
-                   adjusted_r2=phase.adjusted_r2, terminal_intercept=phase.intercept)
-    if phase is not None and mode == "steady state":
-        dosing = (starts.size - 1) * tau
-        if dosing < 5 * math.log(2) / lz:
-            notes.append(f"{short(dosing)} h of regular dosing before the last dose is less than "
-                         f"five terminal half-lives ({short(5 * math.log(2) / lz)} h): steady "
-                         "state may not be reached")
-    if phase is not None and mode != "steady state":
-        auc_inf = auc_last + last_c / lz
-        aumc_inf = aumc_last + last_t * last_c / lz + last_c / lz**2
-        extrap = 100 * (auc_inf - auc_last) / auc_inf
-        out.update(auc_to_infinity=auc_inf, aumc_to_infinity=aumc_inf,
-                   auc_extrapolated_percent=extrap)
-        if extrap > extrapolation_limit:
-            notes.append(f"AUC extrapolated {extrap:.1f} % (over {extrapolation_limit:g} %): "
-                         "AUC to infinity and what depends on it are unreliable")
-    if mode == "steady state":
-        auc_tau = auc_last
-        if last_t < tau - 1e-9:
-            if lz is not None:
-                tail = np.array([last_t, tau])
-                tail_c = np.array([last_c, last_c * math.exp(-lz * (tau - last_t))])
-                auc_tau += float(auc_segments(tail, tail_c, "linear-up-log-down")[0].sum())
-                notes.append(f"interval area extrapolated from {short(last_t)} h to "
-                             f"{short(tau)} h with the terminal slope")
-            else:
-                auc_tau = None
-                notes.append("the samples do not cover the interval and there is no terminal "
-                             "slope: no interval area")
-        if auc_tau is not None:
-            cl = dose / auc_tau
-            cavg = auc_tau / tau
-            cmin = float(np.nanmin(c))
-            out.update(auc_interval=auc_tau, clearance=cl, average_concentration=cavg,
-                       fluctuation_percent=100 * (peak_c - cmin) / cavg)
-            if lz is not None:
-                out.update(volume_terminal=cl / lz,
-                           accumulation_ratio=1 / -math.expm1(-lz * tau))
-        notes.append("MRT and Vss are not computed at steady state")
-    elif phase is not None:
-        cl = dose / out["auc_to_infinity"]
-        out.update(clearance=cl, volume_terminal=cl / lz)
-        if mode == "single dose":
-            mrt = out["aumc_to_infinity"] / out["auc_to_infinity"] - t_inf / 2
-            out.update(mean_residence_time=mrt, volume_steady_state=cl * mrt)
-    else:
+            auc_tau = None
+            notes.append("the samples do not cover the interval and there is no terminal "
+                         "slope: no interval area")
+    if auc_tau is not None:
+        cl = dose / auc_tau
+        cavg = auc_tau / tau
+        cmin = float(np.nanmin(out["conc"]))
+        out.update(auc_interval=auc_tau, clearance=cl, average_concentration=cavg,
+                   fluctuation_percent=100 * (out["peak_concentration"] - cmin) / cavg)
+        if lz is not None:
+            out.update(volume_terminal=cl / lz, accumulation_ratio=1 / -math.expm1(-lz * tau))
+    notes.append("MRT and Vss are not computed at steady state")
+
+
+def _single_or_total_parameters(out, dose, t_inf, lz, mode, extrapolation_limit,
+                                notes: list[str]) -> None:
+    """AUC and AUMC to infinity, CL, Vz, and for a single dose MRT and Vss."""
+    if lz is None:
         notes.append("no terminal slope: AUC to infinity, clearance, volumes and MRT are not "
                      "computed")
-    return _with(base, notes=tuple(notes), **out)
+        return
+    last_c, last_t = out["last_concentration"], out["last_time"]
+    auc_inf = out["auc_to_last"] + last_c / lz
+    aumc_inf = out["aumc_to_last"] + last_t * last_c / lz + last_c / lz**2
+    extrap = 100 * (auc_inf - out["auc_to_last"]) / auc_inf
+    out.update(auc_to_infinity=auc_inf, aumc_to_infinity=aumc_inf,
+               auc_extrapolated_percent=extrap)
+    if extrap > extrapolation_limit:
+        notes.append(f"AUC extrapolated {extrap:.1f} % (over {extrapolation_limit:g} %): "
+                     "AUC to infinity and what depends on it are unreliable")
+    cl = dose / auc_inf
+    out.update(clearance=cl, volume_terminal=cl / lz)
+    if mode == "single dose":
+        mrt = aumc_inf / auc_inf - t_inf / 2
+        out.update(mean_residence_time=mrt, volume_steady_state=cl * mrt)
 
 
 def nca_of_subject(subject: SubjectData, options: NcaOptions | None = None) -> NcaResult:
