@@ -37,9 +37,10 @@ from . import model
 from ._format import format_table, short
 from .core import FitOptions, Prior, SubjectData
 from .fit import FitResult, fit_subjects
-from .fit.individual import _prepare_batch, starting_values
+from .fit.data import prepare_batch
 from .fit.objective import Batch, evaluate
 from .fit.solver import minimise
+from .fit.starts import starting_values
 
 __all__ = [
     "COVARIATE_MODELS",
@@ -367,7 +368,7 @@ def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "prop
         failures += [(m, "no body weight for the covariate model") for m in missing]
         subjects = [s for s in subjects if s.weight is not None]
     opts = FitOptions(error_model=error_model, blq=blq)
-    batch, _, _ = _prepare_batch(subjects, opts)
+    batch, _, _ = prepare_batch(subjects, opts)
     has = (batch.obs & (batch.y > 0)).any(axis=1)
     for i in np.flatnonzero(~has):
         failures.append((subjects[i].subject, "no measurable level"))
@@ -530,7 +531,7 @@ def simulate_design(subjects: list[SubjectData], result: PopulationResult, repli
     sa = result.residual_error.get("additive", 0.0)
     sp = result.residual_error.get("proportional", 0.0)
     # all replicates at once: subjects padded to one width, parameters (R, S)
-    batch, _, _ = _prepare_batch(subjects, FitOptions(error_model="additive", blq="drop"))
+    batch, _, _ = prepare_batch(subjects, FitOptions(error_model="additive", blq="drop"))
     eta = rng.multivariate_normal([0.0, 0.0], result.omega, (replicates, len(subjects)))
     cl = np.exp(mu[None, :, 0] + eta[..., 0])
     v = np.exp(mu[None, :, 1] + eta[..., 1])

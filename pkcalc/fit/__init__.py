@@ -1,11 +1,14 @@
 """Individual estimation of clearance, volume and half-life from sampled levels.
 
-- ``batch``: subjects as padded arrays; least-squares, likelihood (additive,
+- ``objective``: subjects as padded arrays; least-squares, likelihood (additive,
   proportional, combined; Beal's M3 for BLQ) and MAP objectives with analytic
   gradients;
 - ``solver``: a damped scoring minimiser vectorised over subjects and starts;
-- ``individual``: data-based starts, multi-start, uncertainty (Wald on the
-  log scale or profile likelihood), identifiability, diagnostics.
+- ``data``: subjects as one batch (BLQ method, weights, the prior);
+- ``starts``: data-based starting values and the multi-start solve;
+- ``uncertainty``: covariances, Wald (log scale) and profile intervals,
+  identifiability;
+- ``result``: the result types; ``individual``: :func:`fit_subjects`.
 """
 
 from .compare import Comparison, compare_with_nca

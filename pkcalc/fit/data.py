@@ -1,0 +1,121 @@
+"""Subjects as one padded batch: BLQ handling, weights, levels before any drug, the prior."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .. import model
+from ..core import FitOptions, SubjectData
+from .objective import Batch
+
+
+def subject_events(s: SubjectData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A subject's dose events for the model, with its initial level (if any) as an
+    initial-level event at time 0 (:data:`pkcalc.model.INITIAL_LEVEL`)."""
+    if not s.initial_concentration:
+        return s.dose_start, s.dose_amount, s.dose_duration
+    return (np.append(s.dose_start, 0.0), np.append(s.dose_amount, s.initial_concentration),
+            np.append(s.dose_duration, model.INITIAL_LEVEL))
+
+
+def prepare_batch(subjects: list[SubjectData], opts: FitOptions):
+    """All subjects as one padded batch after the BLQ method and the weights.
+
+    Returns the batch, the data-handling notes of each subject and the number of
+    levels each one contributes.
+    """
+    b = len(subjects)
+    n = max((s.time.size for s in subjects), default=1)
+    events = [subject_events(s) for s in subjects]
+    e = max((ev[0].size for ev in events), default=1)
+    t = np.zeros((b, n))
+    y = np.full((b, n), np.nan)
+    lloq = np.full((b, n), np.nan)
+    blq = np.zeros((b, n), bool)
+    valid = np.zeros((b, n), bool)
+    start, amount, duration = np.zeros((b, e)), np.zeros((b, e)), np.zeros((b, e))
+    for i, s in enumerate(subjects):
+        k = s.time.size
+        t[i, :k], y[i, :k], lloq[i, :k], blq[i, :k], valid[i, :k] = (s.time, s.conc, s.lloq,
+                                                                       s.blq, True)
+        m = events[i][0].size
+        start[i, :m], amount[i, :m], duration[i, :m] = events[i]
+    blq &= valid
+    obs = valid & ~blq
+    cens = np.zeros_like(blq)
+    n_blq = blq.sum(axis=1)
+    notes: list[list[str]] = [[] for _ in range(b)]
+    if opts.blq == "half_lloq":
+        y = np.where(blq, lloq / 2, y)
+        obs = obs | blq
+    elif opts.blq == "likelihood":
+        y = np.where(blq, lloq, y)
+        cens = blq.copy()
+    text = {"drop": "BLQ level(s) dropped (Beal's M1)",
+            "half_lloq": "BLQ level(s) set to LLOQ/2 (substitution, for comparison; Beal's "
+                         "M5/M6 family)",
+            "likelihood": "BLQ level(s) enter as P(C < LLOQ) (censored likelihood, "
+                          "Beal's M3)"}[opts.blq]
+    for i in np.flatnonzero(n_blq):
+        notes[i].append(f"{int(n_blq[i])} {text}")
+    y = np.where(np.isnan(y), 0.0, y)
+    # levels where no drug has entered yet (before or at the start of the first infusion,
+    # and no initial level): the model predicts exactly zero there, so they carry no
+    # information on CL and V and would put a zero variance into the likelihood
+    none_yet = valid & (model.concentration(t, start, amount, duration, 1.0, 1.0) <= 0)
+    warns: list[list[str]] = [[] for _ in range(b)]
+    for i in np.flatnonzero(none_yet.any(axis=1)):
+        k = subjects[i].time.size
+        times = ", ".join(f"{x:g} h" for x in t[i, :k][none_yet[i, :k]])
+        measured = (obs[i] & none_yet[i] & (y[i] > 0)).any()
+        text = (f"level(s) at {times} drawn before any drug entered: the model predicts zero "
+                "there, so they were left out of the fit")
+        if measured:
+            warns[i].append(text + "; a measurable level before the first dose means drug "
+                            "on board from earlier therapy: give initial_concentration")
+        else:
+            notes[i].append(text)
+    obs &= ~none_yet
+    cens &= ~none_yet
+    w = np.ones((b, n))
+    if opts.weighting in ("inverse_observed", "inverse_observed_squared"):
+        bad = obs & ~(y > 0)
+        obs = obs & ~bad
+        for i in np.flatnonzero(bad.any(axis=1)):
+            notes[i].append(f"{int(bad[i].sum())} level(s) of zero left out: weights "
+                            "1/observed need positive levels")
+        power = 1.0 if opts.weighting == "inverse_observed" else 2.0
+        w = np.where(obs, np.abs(np.where(obs, y, 1.0)) ** -power, 0.0)
+    batch = Batch(t=t, y=y, w=w, obs=obs, cens=cens, start=start, amount=amount,
+                  duration=duration, kind=opts.method, error=opts.error_model or "additive")
+    for i in range(b):
+        notes[i] = [("warning", x) for x in warns[i]] + notes[i]
+    return batch, notes, obs.sum(axis=1) + cens.sum(axis=1)
+
+
+def with_prior(batch: Batch, subjects: list[SubjectData], opts: FitOptions,
+                prior_means: dict[str, tuple[float, float]] | None = None):
+    prior = opts.prior
+    assert prior is not None
+    mu, bad = [], []
+    for i, s in enumerate(subjects):
+        if prior_means is not None and s.subject in prior_means:
+            mu.append(list(prior_means[s.subject]))
+            continue
+        try:
+            cl, v = prior.typical(s.weight)
+        except ValueError:
+            bad.append(i)
+            cl, v = prior.clearance, prior.volume
+        mu.append([math.log(cl), math.log(v)])
+    mu = np.asarray(mu)
+    oc, ov, r = prior.omega_clearance, prior.omega_volume, prior.correlation
+    omega = np.array([[oc**2, r * oc * ov], [r * oc * ov, ov**2]])
+    b = len(subjects)
+    batch = Batch(**{**batch.__dict__, "kind": "map", "error": prior.error_model,
+                     "sa": np.full(b, prior.additive), "sp": np.full(b, prior.proportional),
+                     "mu": mu, "omega_inv": np.repeat(np.linalg.inv(omega)[None], b, axis=0)})
+    info = {"mu": mu, "omega": np.repeat(omega[None], b, axis=0)}
+    return batch, info, bad

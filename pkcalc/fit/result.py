@@ -1,0 +1,154 @@
+"""Result types of individual estimation: a parameter estimate and one subject's fit."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .. import model
+from .._format import format_table, short
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """A parameter estimate with its uncertainty (canonical units).
+
+    ``se`` is the delta-method SE on the natural scale; ``rse_percent`` is
+    100 x SE of the log; ``ci_low``/``ci_high`` the 95 % interval, built on the
+    log scale (Wald) or by profile likelihood.  None when not estimable.
+    """
+
+    value: float
+    se: float | None = None
+    rse_percent: float | None = None
+    ci_low: float | None = None
+    ci_high: float | None = None
+
+    def __str__(self) -> str:
+        if self.se is None:
+            return f"{short(self.value)} (SE not available)"
+        return (f"{short(self.value)} (SE {short(self.se)}, 95% CI {short(self.ci_low)}-"
+                f"{short(self.ci_high)})")
+
+
+@dataclass
+class FitResult:
+    """One subject's fit.
+
+    Attributes
+    ----------
+    subject : str
+    converged : bool
+    method : str
+        ``least_squares``, ``likelihood`` or ``map``.
+    error_model, weighting, blq_method : str or None
+    estimates : dict of str to Estimate
+        ``clearance`` (L/h), ``volume`` (L), ``elimination_rate`` (1/h), ``half_life`` (h).
+    correlation : float or None
+        Correlation of the ln CL and ln V estimates.
+    residual_error : dict of str to Estimate
+        ``additive`` (mg/L) and/or ``proportional`` (fraction), estimated or fixed.
+    objective : float
+        ``-2 ln L`` at the estimate (for MAP: of the posterior, constants included).
+    aic, bic : float
+    n_obs, n_blq, n_params : int
+    starts, starts_agreed, iterations : int
+    time, observed, predicted : ndarray
+        Levels used (BLQ rows carry their LLOQ), predictions.
+    blq : ndarray of bool
+    residuals, weighted_residuals : ndarray
+    warnings, notes : list of str
+    prior : dict
+        MAP only: typical values, ``eta`` and the prior variance remaining.
+    """
+
+    subject: str
+    converged: bool
+    method: str
+    error_model: str | None
+    weighting: str | None
+    blq_method: str
+    estimates: dict[str, Estimate]
+    correlation: float | None
+    residual_error: dict[str, Estimate]
+    objective: float
+    aic: float
+    bic: float
+    n_obs: int
+    n_blq: int
+    n_params: int
+    starts: int
+    starts_agreed: int
+    iterations: int
+    time: np.ndarray
+    observed: np.ndarray
+    predicted: np.ndarray
+    blq: np.ndarray
+    residuals: np.ndarray
+    weighted_residuals: np.ndarray
+    dose_start: np.ndarray
+    dose_amount: np.ndarray
+    dose_duration: np.ndarray
+    warnings: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    prior: dict[str, float] = field(default_factory=dict)
+    weight: float | None = None
+    initial_concentration: float = 0.0
+
+    @property
+    def clearance(self) -> float:
+        return self.estimates["clearance"].value
+
+    @property
+    def volume(self) -> float:
+        return self.estimates["volume"].value
+
+    def conf_int(self, name: str) -> tuple[float | None, float | None]:
+        """95 % interval of a parameter."""
+        e = self.estimates[name]
+        return e.ci_low, e.ci_high
+
+    def predict(self, t) -> np.ndarray:
+        """Concentration (mg/L) at times ``t`` (h) with the estimates (an initial level,
+        if any, included)."""
+        start, amount, duration = self.dose_start, self.dose_amount, self.dose_duration
+        if self.initial_concentration:
+            start, amount, duration = (np.append(start, 0.0),
+                                       np.append(amount, self.initial_concentration),
+                                       np.append(duration, model.INITIAL_LEVEL))
+        return model.concentration(np.asarray(t, float), start, amount, duration,
+                                   self.clearance, self.volume)
+
+    def _repr_html_(self) -> str:
+        """Notebook view: the caution, the table and the summary."""
+        from .._format import result_html
+
+        return result_html(self.summary(), self.to_frame())
+
+    def to_frame(self):
+        """Per-level diagnostics: time, observed, predicted, residuals, BLQ flag."""
+        import pandas as pd
+
+        return pd.DataFrame({"subject": self.subject, "time [h]": self.time,
+                             "observed [mg/L]": self.observed,
+                             "predicted [mg/L]": self.predicted, "blq": self.blq,
+                             "residual [mg/L]": self.residuals,
+                             "weighted_residual": self.weighted_residuals})
+
+    def summary(self) -> str:
+        """Plain-text summary (canonical units)."""
+        rows = [[k, e.value, e.se, e.rse_percent, e.ci_low, e.ci_high]
+                for k, e in self.estimates.items()]
+        rows += [[f"residual {k}", e.value, e.se, e.rse_percent, e.ci_low, e.ci_high]
+                 for k, e in self.residual_error.items()]
+        lines = [f"Subject {self.subject}: {self.method.replace('_', ' ')}"
+                 f" ({self.error_model or self.weighting}), "
+                 f"{'converged' if self.converged else 'NOT converged'}, "
+                 f"-2lnL {short(self.objective, 6)}, AIC {short(self.aic, 6)}, "
+                 f"{self.n_obs} levels ({self.n_blq} BLQ), {self.starts_agreed}/{self.starts} "
+                 "starts agreed",
+                 format_table(["parameter", "value", "SE", "RSE %", "CI low", "CI high"], rows)]
+        lines += [f"warning: {w}" for w in self.warnings]
+        lines += [f"note: {n}" for n in self.notes]
+        return "\n".join(lines)
