@@ -40,7 +40,7 @@ RESERVED_SUFFIXES = frozenset({".csv", ".json", ".png", ".txt"})
 _TMP = re.compile(r"^\.(?P<name>.+)\.pkcalc-(?P<pid>\d+)-[0-9a-f]+\.tmp$")
 
 
-def _umask() -> int:
+def current_umask() -> int:
     mask = os.umask(0)
     os.umask(mask)
     return mask
@@ -99,7 +99,7 @@ def write_atomic(path: str | Path, data: str | bytes) -> Path:
     try:
         with open(tmp, mode, **({} if mode == "wb" else {"encoding": "utf-8"})) as fh:
             fh.write(data)
-        os.chmod(tmp, 0o666 & ~_umask())
+        os.chmod(tmp, 0o666 & ~current_umask())
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)

@@ -47,7 +47,7 @@ def test_write_atomic_replaces_whole_or_not_at_all(tmp_path, monkeypatch):
     monkeypatch.undo()
     write_atomic(target, "new")
     assert target.read_text() == "new"
-    assert oct(target.stat().st_mode & 0o777) == oct(0o666 & ~files._umask())
+    assert oct(target.stat().st_mode & 0o777) == oct(0o666 & ~files.current_umask())
 
 
 def test_unwritable_place_is_refused_before_any_work(tmp_path, monkeypatch):

@@ -159,9 +159,9 @@ class Writer:
             self.pq_writer.close()
         if self.handle is not None:
             self.handle.close()
-        from ..files import _umask
+        from ..files import current_umask
 
-        os.chmod(self.tmp, 0o666 & ~_umask())
+        os.chmod(self.tmp, 0o666 & ~current_umask())
         os.replace(self.tmp, self.output)
 
     def abort(self) -> None:

@@ -23,7 +23,7 @@ from .. import model
 from ..core import FitOptions, SubjectData
 from ..plausibility import parameter_warnings
 from .data import prepare_batch, subject_events, with_prior
-from .objective import Batch, _variance, evaluate, n_error_params
+from .objective import Batch, evaluate, n_error_params, residual_variance
 from .result import Estimate, FitResult
 from .starts import AGREE_TOL, bounds, error_starts, solve_starts, starting_values
 from .uncertainty import (
@@ -145,7 +145,7 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None,
         logw = np.where(final.obs, np.log(np.where(final.obs, final.w, 1.0)), 0.0).sum(axis=1)
         m2ll = nn * np.log(2 * np.pi * np.maximum(f_obj, 1e-300) / nn) + nn - logw
     else:
-        sd_all = np.sqrt(_variance(final, theta, f)[0])
+        sd_all = np.sqrt(residual_variance(final, theta, f)[0])
         m2ll = f_obj
     observed = np.where(final.obs | final.cens, final.y, np.nan)
     resid = np.where(final.obs, final.y - f, np.nan)

@@ -109,7 +109,7 @@ def build_batch(subjects, *, t_list, y_list, obs_list, cens_list, w_list=None,
     """Pad per-subject arrays into a :class:`Batch`.
 
     ``subjects`` supply dose events (``dose_start``, ``dose_amount``,
-    ``dose_duration``); the ``*_list`` arguments one array per subject.
+    ``dose_duration``); the ``*json_list`` arguments one array per subject.
     """
     b = len(t_list)
     n = max(len(x) for x in t_list)
@@ -132,7 +132,7 @@ def build_batch(subjects, *, t_list, y_list, obs_list, cens_list, w_list=None,
     )
 
 
-def _variance(batch: Batch, theta: np.ndarray, f: np.ndarray):
+def residual_variance(batch: Batch, theta: np.ndarray, f: np.ndarray):
     """Residual variance, its derivative wrt ln f's parameters, and wrt error parameters."""
     if batch.kind == "map":
         sa = batch.sa[:, None]
@@ -254,7 +254,7 @@ def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None 
         return obj, grad, info, f
     if sigma_floor is not None:
         theta = np.concatenate([theta, profiled_sigma(batch, f, sigma_floor)[:, None]], axis=1)
-    var, dv_df, dv_err = _variance(batch, theta, f)
+    var, dv_df, dv_err = residual_variance(batch, theta, f)
     # Derivatives of the mean are jac (structural only); derivatives of the variance
     # are dv_df * jac (structural) and dv_err[j] (error parameters).  A per-level
     # vector "s * jac (+) e" is kept as (s, e) so no (B, N, q) arrays are built.

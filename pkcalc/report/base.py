@@ -72,7 +72,7 @@ class UnitConverter:
         return self.units[kind]
 
 
-def _num(x: Any) -> Any:
+def json_number(x: Any) -> Any:
     """JSON-safe number: NaN/inf -> None, numpy -> float."""
     if x is None:
         return None
@@ -80,8 +80,8 @@ def _num(x: Any) -> Any:
     return x if math.isfinite(x) else None
 
 
-def _list(a: Iterable[float]) -> list[Any]:
-    return [_num(v) for v in a]
+def json_list(a: Iterable[float]) -> list[Any]:
+    return [json_number(v) for v in a]
 
 
 def json_document(kind: str, units: UnitConverter | None, body: dict[str, Any]) -> dict[str, Any]:

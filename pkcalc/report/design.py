@@ -9,10 +9,10 @@ from .._format import fmt, format_table
 from ..units import KIND_OF
 from .base import (
     UnitConverter,
-    _num,
     assemble_text,
     failures_json,
     json_document,
+    json_number,
 )
 
 # --------------------------------------------------------------------------- design
@@ -29,21 +29,21 @@ def _conv_any(conv: UnitConverter, key: str, value: Any,
     """Convert a named result to display units by its kind (``units.KIND_OF``)."""
     kind = KIND_OF.get(key, default)
     if value is None or kind is None:
-        return _num(value)
-    return _num(conv(value, kind))
+        return json_number(value)
+    return json_number(conv(value, kind))
 
 
 def design_regimen_dict(r, conv: UnitConverter, scenario: str) -> dict[str, Any]:
     out: dict[str, Any] = {"scenario": scenario, "label": r.label}
     for key in _REGIMEN_KEYS:
-        out[key] = _num(conv(getattr(r, key), KIND_OF[key]))
+        out[key] = json_number(conv(getattr(r, key), KIND_OF[key]))
     predicted = {k: None for k in ("plateau", "peak", "trough", "average")}
     predicted.update({k: _conv_any(conv, k, v) for k, v in r.predicted.items()})
     out["predicted"] = predicted
     out["meets_target"] = r.meets_target
     out["flags"] = list(r.flags)
     out["exact"] = {k: _conv_any(conv, k, v, None) for k, v in r.exact.items()}
-    out["start"] = _num(conv(r.start, "time"))
+    out["start"] = json_number(conv(r.start, "time"))
     out["doses"] = [{k: _conv_any(conv, k, v, None) if k != "count" else v
                      for k, v in d.as_dict().items()} for d in r.doses]
     return out
@@ -54,9 +54,9 @@ def _target_dict(target: Mapping[str, Any], conv: UnitConverter) -> dict[str, An
     for k, v in target.items():
         kind = {"infusion_time": "time", "auc_24": "auc"}.get(k, "concentration")
         if isinstance(v, list | tuple):
-            out[k] = [_num(conv(x, kind)) for x in v]
+            out[k] = [json_number(conv(x, kind)) for x in v]
         else:
-            out[k] = _num(conv(v, kind))
+            out[k] = json_number(conv(v, kind))
     return out
 
 
@@ -70,8 +70,8 @@ def design_json(results, conv: UnitConverter, *, title: str | None = None,
         regimens += regs
         designs.append({
             "name": res.name, "method": res.method,
-            "parameters": {"clearance": _num(conv(res.clearance, "clearance")),
-                           "volume": _num(conv(res.volume, "volume"))},
+            "parameters": {"clearance": json_number(conv(res.clearance, "clearance")),
+                           "volume": json_number(conv(res.volume, "volume"))},
             "estimates": {k: _conv_any(conv, k, v, None) for k, v in res.estimates.items()},
             "target": _target_dict(res.target, conv),
             "salt_factor": res.salt_factor,

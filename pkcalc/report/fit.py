@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from .._format import format_table
-from .base import UnitConverter, _num, assemble_text, failures_json, json_document
+from .base import UnitConverter, assemble_text, failures_json, json_document, json_number
 
 _KIND = {"clearance": "clearance", "volume": "volume", "half_life": "time",
          "elimination_rate": "elimination_rate"}
@@ -13,8 +13,8 @@ _RESIDUAL_KIND = {"additive": "concentration", "scale": None, "proportional": No
 
 
 def _estimate_dict(e, kind: str | None, conv: UnitConverter) -> dict[str, Any]:
-    c = (lambda x: _num(x)) if kind is None else (lambda x: _num(conv(x, kind)))
-    return {"value": c(e.value), "se": c(e.se), "rse_percent": _num(e.rse_percent),
+    c = (lambda x: json_number(x)) if kind is None else (lambda x: json_number(conv(x, kind)))
+    return {"value": c(e.value), "se": c(e.se), "rse_percent": json_number(e.rse_percent),
             "ci_low": c(e.ci_low), "ci_high": c(e.ci_high)}
 
 
@@ -23,14 +23,14 @@ def fit_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
     return {
         "subject": r.subject, "converged": r.converged, "method": r.method,
         "estimates": {k: _estimate_dict(e, _KIND[k], conv) for k, e in r.estimates.items()},
-        "correlation_clearance_volume": _num(r.correlation),
+        "correlation_clearance_volume": json_number(r.correlation),
         "error_model": r.error_model, "weighting": r.weighting, "blq_method": r.blq_method,
         "residual_error": {k: _estimate_dict(e, _RESIDUAL_KIND.get(k), conv)
                            for k, e in r.residual_error.items()},
-        "objective": _num(r.objective), "aic": _num(r.aic), "bic": _num(r.bic),
+        "objective": json_number(r.objective), "aic": json_number(r.aic), "bic": json_number(r.bic),
         "n_obs": r.n_obs, "n_blq": r.n_blq, "n_params": r.n_params,
         "starts": r.starts, "starts_agreed": r.starts_agreed, "iterations": r.iterations,
-        "prior": {k: _num(v) for k, v in r.prior.items()} or None,
+        "prior": {k: json_number(v) for k, v in r.prior.items()} or None,
         "warnings": list(r.warnings), "notes": list(r.notes),
     }
 
@@ -42,8 +42,10 @@ def comparison_dicts(comparisons, conv: UnitConverter) -> list[dict[str, Any]]:
         rows = []
         for row in c.rows:
             kind = kinds.get(row["quantity"], "volume")
-            rows.append({"quantity": row["quantity"], "fit": _num(conv(row["fit"], kind)),
-                         "nca": _num(conv(row["nca"], kind)), "ratio": _num(row["ratio"])})
+            rows.append({"quantity": row["quantity"],
+                         "fit": json_number(conv(row["fit"], kind)),
+                         "nca": json_number(conv(row["nca"], kind)),
+                         "ratio": json_number(row["ratio"])})
         out.append({"subject": c.subject, "rows": rows, "flags": list(c.flags)})
     return out
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from .._format import format_table
-from .base import UnitConverter, _num, assemble_text, failures_json, json_document
+from .base import UnitConverter, assemble_text, failures_json, json_document, json_number
 
 #: Result fields in display order, with their kind of quantity (None: a plain number).
 NCA_FIELDS: tuple[tuple[str, str | None], ...] = (
@@ -24,13 +24,13 @@ NCA_FIELDS: tuple[tuple[str, str | None], ...] = (
 def nca_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
     """One subject's JSON object (docs/formats.md keys, display units)."""
     out: dict[str, Any] = {"subject": r.subject, "mode": r.mode,
-                           "dose": _num(conv(r.dose, "amount")),
-                           "infusion_time": _num(conv(r.infusion_time, "time")),
-                           "interval": _num(conv(r.interval, "time"))}
+                           "dose": json_number(conv(r.dose, "amount")),
+                           "infusion_time": json_number(conv(r.infusion_time, "time")),
+                           "interval": json_number(conv(r.interval, "time"))}
     for key, kind in NCA_FIELDS:
         value = getattr(r, key)
-        out[key] = _num(value if kind is None else conv(value, kind))
-    out["points_used"] = [_num(conv(x, "time")) for x in r.points_used]
+        out[key] = json_number(value if kind is None else conv(value, kind))
+    out["points_used"] = [json_number(conv(x, "time")) for x in r.points_used]
     out["notes"] = list(r.notes)
     return out
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from .._format import format_table
-from .base import UnitConverter, _num, assemble_text, failures_json, json_document
+from .base import UnitConverter, assemble_text, failures_json, json_document, json_number
 from .fit import fit_subject_dict
 
 _MAX_ROWS = 25
@@ -20,30 +20,32 @@ def population_json(result, conv: UnitConverter, *, title: str | None = None, fa
     """The ``pkcalc population --json`` document (docs/formats.md keys plus details)."""
     per_kg = result.covariate == "per_kg"
     kinds = {"clearance": "clearance", "volume": "volume"}
-    typical = {k: _num(conv(v, kinds[k])) for k, v in result.typical.items()}
-    ci = {k: (None if v is None else [_num(conv(v[0], kinds[k])), _num(conv(v[1], kinds[k]))])
+    typical = {k: json_number(conv(v, kinds[k])) for k, v in result.typical.items()}
+    ci = {k: (None if v is None else [json_number(conv(v[0], kinds[k])),
+                                      json_number(conv(v[1], kinds[k]))])
           for k, v in result.typical_ci.items()}
     body: dict[str, Any] = {
         "title": title, "settings": settings or {}, "method": result.method,
         "typical": typical,
         "typical_units": {k: _typ_unit(conv, kinds[k], per_kg) for k in kinds},
-        "typical_se": {k: _num(None if v is None else conv(v, kinds[k]))
+        "typical_se": {k: json_number(None if v is None else conv(v, kinds[k]))
                        for k, v in result.typical_se.items()},
         "typical_ci": ci,
-        "variability_cv_percent": {k: _num(v) for k, v in
+        "variability_cv_percent": {k: json_number(v) for k, v in
                                    result.variability_cv_percent.items()},
-        "correlation": _num(result.correlation),
-        "between_subject_covariance_log": [[_num(x) for x in row] for row in result.omega],
+        "correlation": json_number(result.correlation),
+        "between_subject_covariance_log": [[json_number(x) for x in row] for row in result.omega],
         "covariate": {"model": result.covariate, "reference_weight_kg": result.reference_weight,
-                      "exponents": {k: _num(v) for k, v in result.exponents.items()},
+                      "exponents": {k: json_number(v) for k, v in result.exponents.items()},
                       "exponent_ci": None if result.exponent_ci is None else {
-                          k: [_num(v[0]), _num(v[1])] for k, v in result.exponent_ci.items()}},
-        "residual_error": {k: _num(v) for k, v in result.residual_error.items()},
-        "shrinkage_percent": {k: _num(v) for k, v in result.shrinkage_percent.items()},
+                          k: [json_number(v[0]), json_number(v[1])]
+                          for k, v in result.exponent_ci.items()}},
+        "residual_error": {k: json_number(v) for k, v in result.residual_error.items()},
+        "shrinkage_percent": {k: json_number(v) for k, v in result.shrinkage_percent.items()},
         "percentiles": result.percentiles,
         "subjects": [fit_subject_dict(r, conv) for r in result.subjects],
         "iterations": result.iterations, "converged": result.converged,
-        "objective_per_iteration": [_num(x) for x in result.objective_per_iteration],
+        "objective_per_iteration": [json_number(x) for x in result.objective_per_iteration],
         "bootstrap": {k: v for k, v in result.bootstrap.items() if k != "state"} or None,
         "notes": list(result.notes), "warnings": list(result.warnings),
         "failures": failures_json(failures),

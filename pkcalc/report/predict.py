@@ -10,11 +10,11 @@ from .._format import fmt, format_table
 from .base import (
     PROFILE_ROWS,
     UnitConverter,
-    _list,
-    _num,
     assemble_text,
     failures_json,
     json_document,
+    json_list,
+    json_number,
 )
 
 
@@ -27,34 +27,35 @@ def predict_scenario_dict(pred, conv: UnitConverter) -> dict[str, Any]:
     return {
         "name": pred.name,
         "parameters": {
-            "clearance": _num(conv(p["clearance"], "clearance")),
-            "volume": _num(conv(p["volume"], "volume")),
-            "elimination_rate": _num(conv(p["elimination_rate"], "elimination_rate")),
-            "half_life": _num(conv(p["half_life"], "time")),
-            "time_constant": _num(conv(p["time_constant"], "time")),
+            "clearance": json_number(conv(p["clearance"], "clearance")),
+            "volume": json_number(conv(p["volume"], "volume")),
+            "elimination_rate": json_number(conv(p["elimination_rate"], "elimination_rate")),
+            "half_life": json_number(conv(p["half_life"], "time")),
+            "time_constant": json_number(conv(p["time_constant"], "time")),
         },
-        "plateau_concentration": _num(conv(pred.plateau_concentration, "concentration")),
+        "plateau_concentration": json_number(conv(pred.plateau_concentration, "concentration")),
         "plateau_basis": pred.plateau_basis,
         "time_to_fraction": {
-            f"{f:g}": _num(conv(t, "time")) for f, t in pred.time_to_fraction.items()
+            f"{f:g}": json_number(conv(t, "time")) for f, t in pred.time_to_fraction.items()
         },
         "time_to_fraction_half_lives": {
-            f"{f:g}": _num(t / p["half_life"]) for f, t in pred.time_to_fraction.items()
+            f"{f:g}": json_number(t / p["half_life"]) for f, t in pred.time_to_fraction.items()
         },
         "profile": {
-            "time": _list(conv(pred.time, "time")),
-            "concentration": _list(conv(pred.concentration, "concentration")),
+            "time": json_list(conv(pred.time, "time")),
+            "concentration": json_list(conv(pred.concentration, "concentration")),
         },
         "steady_state": None if ss is None else {
-            "peak": _num(conv(ss.peak, "concentration")),
-            "trough": _num(conv(ss.trough, "concentration")),
-            "average": _num(conv(ss.average, "concentration")),
-            "interval": _num(conv(ss.interval, "time")),
+            "peak": json_number(conv(ss.peak, "concentration")),
+            "trough": json_number(conv(ss.trough, "concentration")),
+            "average": json_number(conv(ss.average, "concentration")),
+            "interval": json_number(conv(ss.interval, "time")),
         },
         "target": None if target is None else {
-            "plateau": _num(conv(target.plateau, "concentration")),
+            "plateau": json_number(conv(target.plateau, "concentration")),
             "window": None if target.low is None else [
-                _num(conv(target.low, "concentration")), _num(conv(target.high, "concentration"))
+                json_number(conv(target.low, "concentration")),
+                json_number(conv(target.high, "concentration")),
             ],
         },
         "flags": list(pred.flags),

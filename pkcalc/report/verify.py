@@ -5,15 +5,15 @@ from __future__ import annotations
 from typing import Any
 
 from .._format import format_table
-from .base import _num, assemble_text, failures_json, json_document
+from .base import assemble_text, failures_json, json_document, json_number
 
 
 def verify_json(result) -> dict[str, Any]:
     """The ``pkcalc verify --json`` document (docs/formats.md keys)."""
     cases = [{
         "name": case.name, "source": case.source,
-        "checks": [{"quantity": c.quantity, "expected": _num(c.expected),
-                    "computed": _num(c.computed), "difference": _num(c.difference),
+        "checks": [{"quantity": c.quantity, "expected": json_number(c.expected),
+                    "computed": json_number(c.computed), "difference": json_number(c.difference),
                     "unit": c.unit, "tolerance": c.tolerance, "passed": c.passed,
                     "message": c.message} for c in case.checks],
     } for case in result.cases]

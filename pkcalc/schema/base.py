@@ -47,7 +47,7 @@ QuantityText = StrictStr | StrictInt | StrictFloat
 
 # --------------------------------------------------------------------------- canonical results
 # --------------------------------------------------------------------------- helpers
-class _Collector:
+class Collector:
     """Converts quantities, recording problems instead of stopping at the first."""
 
     def __init__(self, weight: float | None = None) -> None:
@@ -79,11 +79,11 @@ class _Collector:
             raise PkcalcInputError(self.problems)
 
 
-def _agree(a: float, b: float) -> bool:
+def agree(a: float, b: float) -> bool:
     return math.isclose(a, b, rel_tol=AGREEMENT_RTOL, abs_tol=0.0)
 
 
-def resolve_parameters(values: dict[str, float], col: _Collector) -> tuple[float, float] | None:
+def resolve_parameters(values: dict[str, float], col: Collector) -> tuple[float, float] | None:
     """Clearance and volume from the given parameters, checking over-determined sets.
 
     Any two independent ones of clearance, volume, half_life, elimination_rate,
@@ -99,7 +99,7 @@ def resolve_parameters(values: dict[str, float], col: _Collector) -> tuple[float
     rates = {n: k_values[n](given[n]) for n in k_like}
     first_k = rates[k_like[0]] if k_like else None
     for n in k_like[1:]:
-        if not _agree(rates[n], first_k):
+        if not agree(rates[n], first_k):
             col.add(
                 f"{n} ({given[n]:.6g}) disagrees with {k_like[0]} ({given[k_like[0]]:.6g}): "
                 f"they imply elimination rates {rates[n]:.6g} and {first_k:.6g} 1/h",
@@ -116,7 +116,7 @@ def resolve_parameters(values: dict[str, float], col: _Collector) -> tuple[float
             "two of clearance, volume and one of half_life / elimination_rate / time_constant",
         )
         return None
-    if cl is not None and v is not None and first_k is not None and not _agree(cl / v, first_k):
+    if cl is not None and v is not None and first_k is not None and not agree(cl / v, first_k):
         col.add(
             f"clearance/volume = {cl / v:.6g} 1/h disagrees with {k_like[0]} "
             f"(elimination rate {first_k:.6g} 1/h)",
@@ -223,7 +223,7 @@ def _check_items(raw: dict[str, Any], allowed: Iterable[str], where: str) -> Non
         )
 
 
-def resolve_partial(values: dict[str, float | None], col: _Collector
+def resolve_partial(values: dict[str, float | None], col: Collector
                     ) -> tuple[float | None, float | None]:
     """Clearance and/or volume from whatever parameters are given (design cases)."""
     given = {k: v for k, v in values.items() if v is not None}
@@ -236,16 +236,16 @@ def resolve_partial(values: dict[str, float | None], col: _Collector
 
 
 # --------------------------------------------------------------------------- pydantic models
-class _Strict(BaseModel):
+class StrictModel(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 
 
-class _Lenient(BaseModel):
+class LenientModel(BaseModel):
     """Unknown keys are kept and reported together with every other problem."""
 
     model_config = ConfigDict(extra="allow", frozen=True, populate_by_name=True)
 
-    def unknown_keys(self, col: _Collector, where: str = "") -> None:
+    def unknown_keys(self, col: Collector, where: str = "") -> None:
         accepted = ", ".join(
             (f.alias or name) for name, f in type(self).model_fields.items()
         )
@@ -253,7 +253,7 @@ class _Lenient(BaseModel):
             col.add("unknown key (check the spelling)", f"{where}{key}", accepted)
 
 
-class _WithParameters(_Lenient):
+class WithParameters(LenientModel):
     """An entry with a name, a body weight and any of the five parameters."""
 
     name: str = Field(min_length=1)
@@ -272,10 +272,10 @@ class _WithParameters(_Lenient):
         assert self._resolved is not None
         return self._resolved
 
-    def start_collecting(self) -> tuple[_Collector, float | None, dict[str, float | None]]:
+    def start_collecting(self) -> tuple[Collector, float | None, dict[str, float | None]]:
         """A collector (with unknown keys reported), the weight and the canonical
         parameters given (None where absent or wrong)."""
-        col = _Collector()
+        col = Collector()
         self.unknown_keys(col)
         weight = col.q(self.weight, "weight", "weight", positive=True)
         col.weight = weight
@@ -284,7 +284,7 @@ class _WithParameters(_Lenient):
         return col, weight, values
 
 
-class OutputUnits(_Strict):
+class OutputUnits(StrictModel):
     """Display units for outputs (``[output]`` table); canonical when omitted."""
 
     time: str | None = None
@@ -366,7 +366,7 @@ def _scenario_label(raw: Any, i: int, list_key: str = "scenarios") -> str:
     return f"{word} '{name}'" if isinstance(name, str) and name else f"{word} #{i + 1}"
 
 
-def load_items(path: str | Path, spec: type[_Lenient], *, extra_keys: Iterable[str] = (),
+def load_items(path: str | Path, spec: type[LenientModel], *, extra_keys: Iterable[str] = (),
                keep: Any = None, list_key: str = "scenarios") -> ScenarioFile:
     """Load a TOML file of ``[[scenarios]]`` (or ``[[cases]]``) tables, keeping good
     entries when others fail.

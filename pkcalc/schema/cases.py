@@ -13,16 +13,16 @@ from ..core import DesignCase, DoseEvent
 from ..errors import PkcalcInputError
 from ..units import KIND_OF, parse_number_and_unit, parse_unit
 from .base import (
+    Collector,
+    LenientModel,
     QuantityText,
     ScenarioFile,
-    _Collector,
-    _Lenient,
-    _WithParameters,
+    WithParameters,
     load_items,
     resolve_partial,
 )
 from .design import DesignSpec, resolve_design
-from .scenario import DoseSpec, TimeRange, _resolve_times
+from .scenario import DoseSpec, TimeRange, resolve_times
 
 __all__ = ["QUANTITIES", "CaseSpec", "Expectation", "VerifyCase", "load_cases_file"]
 
@@ -97,7 +97,7 @@ class VerifyCase:
     expectations: tuple[Expectation, ...]
 
 
-class ExpectSpec(_Lenient):
+class ExpectSpec(LenientModel):
     """One ``[[cases.expect]]`` table."""
 
     quantity: str
@@ -110,7 +110,7 @@ class ExpectSpec(_Lenient):
     current: QuantityText | None = None
     regimen: int | None = None
 
-    def to_expectation(self, col: _Collector, where: str) -> Expectation | None:
+    def to_expectation(self, col: Collector, where: str) -> Expectation | None:
         self.unknown_keys(col, f"{where}.")
         q = self.quantity
         match = _DESIGN_Q.match(q)
@@ -172,7 +172,7 @@ class ExpectSpec(_Lenient):
             return None
         return Expectation(q, kind, value, unit, factor, tol_rel, tol_abs, tol_text, args)
 
-    def _value(self, col: _Collector, kind: str, where: str):
+    def _value(self, col: Collector, kind: str, where: str):
         if kind == "dimensionless":
             v = self._dimensionless(col, where)
             return v, "", 1.0
@@ -189,7 +189,7 @@ class ExpectSpec(_Lenient):
             return None, "", 1.0
         return number * spec.factor, unit, spec.factor
 
-    def _dimensionless(self, col: _Collector, where: str) -> float | None:
+    def _dimensionless(self, col: Collector, where: str) -> float | None:
         text = self.value if where.endswith("value") else self.tolerance
         try:
             number, unit = parse_number_and_unit(text, field=where)
@@ -202,7 +202,7 @@ class ExpectSpec(_Lenient):
         return number
 
 
-class CaseSpec(_WithParameters):
+class CaseSpec(WithParameters):
     """One ``[[cases]]`` table: scenario inputs, a ``source`` and expectations."""
 
     source: str = Field(min_length=1)
@@ -221,7 +221,7 @@ class CaseSpec(_WithParameters):
             ev = d.to_event(col, f"doses[{i}]")
             if ev is not None:
                 doses.append(ev)
-        times = _resolve_times(self.times, col)
+        times = resolve_times(self.times, col)
         design = None
         if self.design is not None:
             method, opts = resolve_design(self.design, cl, v, col)

@@ -12,11 +12,11 @@ from pydantic import Field, ValidationError, model_validator
 from ..core import DesignCase
 from ..errors import PkcalcInputError
 from .base import (
+    Collector,
+    LenientModel,
     QuantityText,
     ScenarioFile,
-    _Collector,
-    _Lenient,
-    _WithParameters,
+    WithParameters,
     load_items,
     resolve_partial,
     validation_problems,
@@ -26,14 +26,14 @@ from .base import (
 DESIGN_METHODS = ("continuous", "intermittent", "proportional", "chiou", "sawchuk_zaske", "map")
 
 
-class SampleSpec(_Lenient):
+class SampleSpec(LenientModel):
     """A measured level: ``{ time = "2 h", concentration = "4.1 mg/L" }``."""
 
     time: QuantityText
     concentration: QuantityText
 
 
-class DesignSpec(_Lenient):
+class DesignSpec(LenientModel):
     """The ``[scenarios.design]`` table: what to design or adjust, and how to round."""
 
     method: str | None = None
@@ -100,7 +100,7 @@ class DesignSpec(_Lenient):
         return "continuous"
 
 
-def _limits_pair(col: _Collector, spec: DesignSpec, name: str):
+def _limits_pair(col: Collector, spec: DesignSpec, name: str):
     """(target, (low, high)) for 'peak' / 'trough' from the single or list form and min/max."""
     value = getattr(spec, name)
     target = low = high = None
@@ -128,7 +128,7 @@ def _limits_pair(col: _Collector, spec: DesignSpec, name: str):
     return target, limits
 
 
-def _auc_limits(col: _Collector, spec: DesignSpec):
+def _auc_limits(col: Collector, spec: DesignSpec):
     """The AUC24 target as (low, high) in mg h/L: a value (low = high) or a range."""
     value = spec.auc_24
     if value is None:
@@ -149,7 +149,7 @@ def _auc_limits(col: _Collector, spec: DesignSpec):
     return None if x is None else (x, x)
 
 
-def _window(col: _Collector, spec: DesignSpec):
+def _window(col: Collector, spec: DesignSpec):
     if spec.window is None:
         return None
     lo = col.q(spec.window[0], "concentration", "design.window[0]", nonnegative=True)
@@ -161,7 +161,7 @@ def _window(col: _Collector, spec: DesignSpec):
     return None if lo is None or hi is None else (lo, hi)
 
 
-def _sample(col: _Collector, sample: SampleSpec | None, where: str):
+def _sample(col: Collector, sample: SampleSpec | None, where: str):
     if sample is None:
         return None
     sample.unknown_keys(col, f"{where}.")
@@ -170,7 +170,7 @@ def _sample(col: _Collector, sample: SampleSpec | None, where: str):
     return None if t is None or c is None else (t, c)
 
 
-def _need(col: _Collector, method: str, **values: Any) -> bool:
+def _need(col: Collector, method: str, **values: Any) -> bool:
     missing = [k for k, v in values.items() if v is None]
     reported = {p.field for p in col.problems}
     for k in missing:
@@ -185,7 +185,7 @@ class _DesignContext:
     """What every method's options are built from (already converted)."""
 
     spec: DesignSpec
-    col: _Collector
+    col: Collector
     cl: float | None
     v: float | None
     history: bool
@@ -200,7 +200,7 @@ class _DesignContext:
 
 
 def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
-                   col: _Collector, history: bool = False) -> tuple[str, dict[str, Any]]:
+                   col: Collector, history: bool = False) -> tuple[str, dict[str, Any]]:
     """Canonical keyword options for the design function of the method."""
     spec.unknown_keys(col, "design.")
     method = spec.infer_method()
@@ -486,7 +486,7 @@ def _options_sawchuk_zaske(c: _DesignContext, opts: dict[str, Any]) -> None:
 _METHOD_OPTIONS = {name: globals()[f"_options_{name}"] for name in DESIGN_METHODS}
 
 
-class DesignCaseSpec(_WithParameters):
+class DesignCaseSpec(WithParameters):
     """A ``[[scenarios]]`` entry read by ``pkcalc design``: parameters and a design table.
 
     Predict-only keys (doses, times, target) are accepted and ignored, so one
@@ -520,7 +520,7 @@ class DesignCaseSpec(_WithParameters):
 LEVEL_METHODS = ("proportional", "chiou", "sawchuk_zaske", "map")
 
 
-def _history(spec: DesignCaseSpec, method: str, opts: dict[str, Any], col: _Collector) -> None:
+def _history(spec: DesignCaseSpec, method: str, opts: dict[str, Any], col: Collector) -> None:
     """The recorded doses, the start and the initial level of an adjustment from levels,
     checked against the level times (all on the history clock)."""
     from .scenario import DoseSpec

@@ -12,18 +12,18 @@ from pydantic import Field, StrictInt, model_validator
 
 from ..core import DoseEvent, ScenarioInput, Target
 from .base import (
+    Collector,
+    LenientModel,
     QuantityText,
     ScenarioFile,
-    _agree,
-    _Collector,
-    _Lenient,
-    _WithParameters,
+    WithParameters,
+    agree,
     load_items,
     resolve_parameters,
 )
 
 
-class DoseSpec(_Lenient):
+class DoseSpec(LenientModel):
     """A dose event as written: ``start`` and two of ``amount``, ``rate``, ``duration``."""
 
     start: QuantityText
@@ -33,7 +33,7 @@ class DoseSpec(_Lenient):
     every: QuantityText | None = None
     count: StrictInt | None = None
 
-    def to_event(self, col: _Collector, where: str) -> DoseEvent | None:
+    def to_event(self, col: Collector, where: str) -> DoseEvent | None:
         """Canonical event; problems go to ``col`` with field names under ``where``."""
         n0 = len(col.problems)
         self.unknown_keys(col, f"{where}.")
@@ -60,7 +60,7 @@ class DoseSpec(_Lenient):
             )
             return None
         if rate is not None and duration is not None and amount is not None:
-            if not _agree(rate * duration, amount):
+            if not agree(rate * duration, amount):
                 col.add(
                     f"amount {amount:g} mg differs from rate x duration = {rate * duration:g} mg",
                     f"{where}.amount", "only two of amount / rate / duration, or three that agree",
@@ -88,7 +88,7 @@ class DoseSpec(_Lenient):
         return DoseEvent(start, amount, duration, every if count > 1 else None, count)
 
 
-class TimeRange(_Lenient):
+class TimeRange(LenientModel):
     """Evenly spaced times ``from``, ``from + step``, ... up to ``to`` (inclusive)."""
 
     from_: QuantityText = Field(alias="from")
@@ -96,13 +96,13 @@ class TimeRange(_Lenient):
     step: QuantityText
 
 
-class TargetSpec(_Lenient):
+class TargetSpec(LenientModel):
     """A plateau target and/or a window ``[low, high]`` (concentrations)."""
 
     plateau: QuantityText | None = None
     window: list[QuantityText] | None = Field(default=None, min_length=2, max_length=2)
 
-    def to_target(self, col: _Collector) -> Target:
+    def to_target(self, col: Collector) -> Target:
         self.unknown_keys(col, "target.")
         plateau = col.q(self.plateau, "concentration", "target.plateau", positive=True)
         low = high = None
@@ -123,7 +123,7 @@ MAX_DOSE_EVENTS = 5_000
 MAX_WORK = 100_000_000
 
 
-def _resolve_times(spec: list[QuantityText] | TimeRange | None, col: _Collector):
+def resolve_times(spec: list[QuantityText] | TimeRange | None, col: Collector):
     if spec is None:
         return None
     if isinstance(spec, TimeRange):
@@ -156,7 +156,7 @@ def _resolve_times(spec: list[QuantityText] | TimeRange | None, col: _Collector)
     return times
 
 
-class ScenarioSpec(_WithParameters):
+class ScenarioSpec(WithParameters):
     """One ``[[scenarios]]`` entry of a scenario file (docs/formats.md).
 
     Validation converts every quantity to canonical units and checks the
@@ -181,7 +181,7 @@ class ScenarioSpec(_WithParameters):
             ev = d.to_event(col, f"doses[{i}]")
             if ev is not None:
                 doses.append(ev)
-        times = _resolve_times(self.times, col)
+        times = resolve_times(self.times, col)
         n_events = sum(d.count for d in doses)
         if n_events > MAX_DOSE_EVENTS:
             col.add(f"the doses expand to {n_events} single doses, more than the "
