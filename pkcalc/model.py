@@ -29,6 +29,7 @@ __all__ = [
     "LN2",
     "amount_to_reach",
     "area_by_mass_balance",
+    "bolus_concentration",
     "concentration",
     "concentration_and_gradient",
     "concentration_repeated",
@@ -36,7 +37,9 @@ __all__ = [
     "event_geometry",
     "expand_doses",
     "plateau_concentration",
+    "rate_for_plateau",
     "resolve_clearance_volume",
+    "single_infusion_concentration",
     "split_events",
     "steady_state_intermittent",
     "steady_state_periodic",
@@ -729,3 +732,45 @@ def time_to_fall(level_now, level_wanted, clearance, volume):
     """
     return np.log(np.asarray(level_now, float) / np.asarray(level_wanted, float)) \
         * np.asarray(volume, float) / np.asarray(clearance, float) + 0.0
+
+
+def rate_for_plateau(target, clearance):
+    """Infusion rate that holds a plateau: ``R0 = Css CL`` (Bourne, ch. 6).
+
+    Examples
+    --------
+    >>> float(rate_for_plateau(10.0, 2.8))
+    28.0
+    """
+    return np.asarray(target, float) * np.asarray(clearance, float) + 0.0
+
+
+def single_infusion_concentration(t, rate, duration, clearance, volume):
+    """Concentration at ``t`` of one constant-rate infusion from time 0 lasting
+    ``duration`` (``inf`` for no end): ``(R0/CL)(1 - exp(-k u)) exp(-k (t - u))`` with
+    ``u = min(t, duration)`` the time infused so far (the event form of
+    :func:`concentration`, broadcasting over rows).
+
+    Examples
+    --------
+    >>> round(float(single_infusion_concentration(8.0, 30.0, np.inf, 3.0, 8 * 3.0 / LN2)), 6)
+    5.0
+    """
+    t, rate, duration, clearance, volume = (np.asarray(a, float) for a in
+                                            (t, rate, duration, clearance, volume))
+    k = clearance / volume
+    on = np.minimum(t, duration)
+    return rate / clearance * -np.expm1(-k * on) * np.exp(-k * (t - on)) + 0.0
+
+
+def bolus_concentration(t, amount, clearance, volume):
+    """Concentration at ``t`` after a bolus at time 0: ``(A/V) exp(-k t)`` (``t >= 0``).
+
+    Examples
+    --------
+    >>> float(bolus_concentration(0.0, 350.0, 3.0, 35.0))
+    10.0
+    """
+    t, amount, clearance, volume = (np.asarray(a, float) for a in (t, amount, clearance,
+                                                                    volume))
+    return amount / volume * np.exp(-clearance / volume * t) + 0.0

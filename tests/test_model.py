@@ -453,3 +453,20 @@ def test_amount_to_reach_lands_on_the_target(duration):
     a = float(model.amount_to_reach(10.0, c0, cl, v, duration))
     ev = (np.array([0.0, 0.0]), np.array([c0, a]), np.array([model.INITIAL_LEVEL, duration]))
     assert model.concentration([duration], *ev, cl, v)[0] == pytest.approx(10.0, rel=1e-12)
+
+
+def test_row_formulas_match_the_ode():
+    # single infusion (ended or not) and a bolus, against scipy solve_ivp
+    cl, v = 4.0, 30.0
+    for rate, dur in ((30.0, 6.0), (30.0, np.inf)):
+        sol = solve_ivp(lambda t, y, r=rate, d=dur: ((r if t < d else 0.0) - cl * y) / v,
+                        (0, 12), [0.0], t_eval=[3.0, 12.0], rtol=1e-11, atol=1e-12,
+                        max_step=0.05)
+        np.testing.assert_allclose(
+            model.single_infusion_concentration(np.array([3.0, 12.0]), rate, dur, cl, v),
+            sol.y[0], rtol=1e-7)
+    sol = solve_ivp(lambda _t, y: -cl * y / v, (0, 10), [350.0 / v], t_eval=[10.0],
+                    rtol=1e-11, atol=1e-12)
+    assert model.bolus_concentration(10.0, 350.0, cl, v) == pytest.approx(sol.y[0][0],
+                                                                          rel=1e-8)
+    assert model.rate_for_plateau(8.0, cl) == pytest.approx(8.0 * cl)

@@ -143,7 +143,7 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
         out["volume [L]"] = p["volume"]
         out["half_life [h]"] = p["half_life"]
         out["elimination_rate [1/h]"] = p["elimination_rate"]
-        out["plateau_concentration [mg/L]"] = mean_rate / cl
+        out["plateau_concentration [mg/L]"] = model.plateau_concentration(mean_rate, cl)
         for f in FRACTIONS:
             out[f"time_to_{f * 100:g}pct [h]"] = model.time_to_fraction(f, cl, v)
         if spec.intermittent:  # columns depend on the header only (stable across chunks)
@@ -156,11 +156,12 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
         for t in options.at:
             c = _concentration_at(t, cl, v, reg)
             if loading is not None:
-                c = c + np.where(np.isnan(loading), 0.0, loading) / v * np.exp(-cl / v * t)
+                c = c + model.bolus_concentration(t, np.where(np.isnan(loading), 0.0, loading),
+                                                  cl, v)
             out[at_label(t)] = c
         if target is not None:
-            out["rate_for_target [mg/h]"] = target * cl
-            out["loading_dose_for_target [mg]"] = target * v
+            out["rate_for_target [mg/h]"] = model.rate_for_plateau(target, cl)
+            out["loading_dose_for_target [mg]"] = model.amount_to_reach(target, 0.0, cl, v, 0.0)
         lo, hi, has_window = _window(low, high, target)
         if lo is not None:
             out["in_window_at_steady_state"] = _inside(out, lo, hi, is_int)
@@ -239,9 +240,7 @@ def _inside(out, lo, hi, is_int):
 def _concentration_at(t, cl, v, reg: _Regimen):
     """Concentration at time t under repeated doses (closed-form series) or a constant
     infusion that may have ended."""
-    k = cl / v
-    on = np.minimum(t, reg.duration)               # infused so far (infusion rows)
-    infusion = reg.rate / cl * -np.expm1(-k * on) * np.exp(-k * (t - on))
+    infusion = model.single_infusion_concentration(t, reg.rate, reg.duration, cl, v)
     repeated = model.concentration_repeated(t, np.where(reg.is_int, reg.amount, 0.0),
                                             np.where(reg.is_int, reg.duration, 0.0),
                                             np.where(reg.is_int, reg.interval, 1.0), cl, v)
@@ -288,8 +287,8 @@ def _variability(cl, v, reg: _Regimen, mean_rate, loading, lo, hi,
         for t in options.at:
             c = _concentration_at(t, c_i, v_i, rg)
             if loading is not None:
-                c = c + np.where(np.isnan(loading[sl]), 0.0, loading[sl])[:, None] / v_i * \
-                    np.exp(-c_i / v_i * t)
+                c = c + model.bolus_concentration(
+                    t, np.where(np.isnan(loading[sl]), 0.0, loading[sl])[:, None], c_i, v_i)
             add(f"concentration_at_{t:g}h", c)
             ats.append(c)
         if lo is not None:

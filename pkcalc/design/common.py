@@ -9,6 +9,7 @@ from typing import Any
 
 import numpy as np
 
+from .. import model
 from .._format import format_table, short
 from ..core import DoseEvent
 
@@ -118,7 +119,7 @@ def rate_for_target(target, clearance, salt_factor=1.0):
     >>> rate_for_target(10.0, 2.8)
     28.0
     """
-    return target * clearance / salt_factor
+    return float(model.rate_for_plateau(target, clearance)) / salt_factor
 
 
 def loading_dose_for_target(target, volume, salt_factor=1.0, current=0.0):
@@ -131,7 +132,7 @@ def loading_dose_for_target(target, volume, salt_factor=1.0, current=0.0):
     >>> loading_dose_for_target(10.0, 35.0)
     350.0
     """
-    return (target - current) * volume / salt_factor
+    return float(model.amount_to_reach(target, current, 1.0, volume, 0.0)) / salt_factor
 
 
 def loading_infusion_for_target(target, clearance, volume, loading_time, salt_factor=1.0):
@@ -141,10 +142,8 @@ def loading_infusion_for_target(target, clearance, volume, loading_time, salt_fa
     ``LD = Ctarget CL T / (1 - exp(-kT)) / S``; it tends to ``Ctarget V / S``
     as ``T -> 0`` [calc].
     """
-    k = clearance / volume
-    if loading_time <= 0:
-        return target * volume / salt_factor
-    return target * clearance * loading_time / -math.expm1(-k * loading_time) / salt_factor
+    return float(model.amount_to_reach(target, 0.0, clearance, volume,
+                                       max(loading_time, 0.0))) / salt_factor
 
 
 # --------------------------------------------------------------------------- results
