@@ -43,6 +43,25 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
     """
     n = len(frame)
     err = RowErrors(n)
+    vals, parsed = _parse_inputs(frame, spec, err)
+    cl, v = _parameters(vals, err)
+    reg, mean_rate = _regimen(vals, err, n)
+    low, high = vals.get("window_low"), vals.get("window_high")
+    if low is not None and high is not None:
+        err.add(~np.isnan(low) & ~np.isnan(high) & (low >= high),
+                "window_low is not below window_high")
+    bad = err.bad
+    # computation on all rows; failed rows are blanked afterwards
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        cl = np.where(bad, np.nan, cl)
+        v = np.where(bad, np.nan, v)
+        out, has_window = _results(cl, v, reg, mean_rate, vals, spec, options)
+    return _assemble(frame, parsed, out, err, has_window)
+
+
+def _parse_inputs(frame: pd.DataFrame, spec: BatchSpec, err: RowErrors):
+    """Every recognised column in canonical units (per-kg values times the weight),
+    with text, range and missing-weight problems recorded per row."""
     vals: dict[str, np.ndarray] = {}
     weight = None
     if "weight" in spec.columns:
@@ -68,8 +87,13 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
             err.add(np.isnan(weight) & ~np.isnan(raw), f"'{header}' is per kg but the weight "
                                                        "is missing")
         vals[key] = value
+    return vals, parsed
+
+
+def _parameters(vals: dict[str, np.ndarray], err: RowErrors):
+    """Clearance and volume per row from any two parameters, checked for agreement
+    and range."""
     get = vals.get
-    nan = np.full(n, np.nan)
     # parameters
     for key in PARAMETERS:
         if key in vals:
@@ -92,6 +116,14 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
         for name, x in (("clearance", cl), ("volume", v), ("elimination rate", cl / v)):
             err.add(out_of_range_mask(x) & ~err.bad, f"the parameters imply a {name} outside the "
                                                  "range pkcalc computes in")
+    return cl, v
+
+
+def _regimen(vals: dict[str, np.ndarray], err: RowErrors, n: int):
+    """Per row: repeated doses when the row has an interval, else a constant-rate
+    infusion; and the mean input rate (for the plateau)."""
+    get = vals.get
+    nan = np.full(n, np.nan)
     # regimen
     rate, dose = get("rate"), get("dose")
     duration, interval = get("duration"), get("interval")
@@ -128,49 +160,56 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
     reg = _Regimen(is_int, np.where(is_int, amount, np.nan), np.where(is_int, dur_int, dur_c),
                    tau, np.where(is_int, np.nan, rate_c))
     mean_rate = np.where(is_int, reg.amount / tau, reg.rate)
+    return reg, mean_rate
+
+
+def _results(cl, v, reg: _Regimen, mean_rate, vals, spec: BatchSpec, options: BatchOptions):
+    """The result columns of every row (formulas from :mod:`pkcalc.model`)."""
+    get = vals.get
     low, high, target = get("window_low"), get("window_high"), get("target")
-    if low is not None and high is not None:
-        err.add(~np.isnan(low) & ~np.isnan(high) & (low >= high),
-                "window_low is not below window_high")
-    bad = err.bad
-    # computation on all rows; failed rows are blanked afterwards
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        cl = np.where(bad, np.nan, cl)
-        v = np.where(bad, np.nan, v)
-        out: dict[str, np.ndarray] = {}
-        p = model.derived_parameters(cl, v)
-        out["clearance [L/h]"] = p["clearance"]
-        out["volume [L]"] = p["volume"]
-        out["half_life [h]"] = p["half_life"]
-        out["elimination_rate [1/h]"] = p["elimination_rate"]
-        out["plateau_concentration [mg/L]"] = model.plateau_concentration(mean_rate, cl)
-        for f in FRACTIONS:
-            out[f"time_to_{f * 100:g}pct [h]"] = model.time_to_fraction(f, cl, v)
-        if spec.intermittent:  # columns depend on the header only (stable across chunks)
-            peak, trough, avg = model.steady_state_intermittent(reg.amount, reg.duration,
-                                                                reg.interval, cl, v)
-            out["steady_state_peak [mg/L]"] = peak
-            out["steady_state_trough [mg/L]"] = trough
-            out["steady_state_average [mg/L]"] = avg
-        loading = get("loading_dose")
+    is_int = reg.is_int
+    out: dict[str, np.ndarray] = {}
+    p = model.derived_parameters(cl, v)
+    out["clearance [L/h]"] = p["clearance"]
+    out["volume [L]"] = p["volume"]
+    out["half_life [h]"] = p["half_life"]
+    out["elimination_rate [1/h]"] = p["elimination_rate"]
+    out["plateau_concentration [mg/L]"] = model.plateau_concentration(mean_rate, cl)
+    for f in FRACTIONS:
+        out[f"time_to_{f * 100:g}pct [h]"] = model.time_to_fraction(f, cl, v)
+    if spec.intermittent:  # columns depend on the header only (stable across chunks)
+        peak, trough, avg = model.steady_state_intermittent(reg.amount, reg.duration,
+                                                            reg.interval, cl, v)
+        out["steady_state_peak [mg/L]"] = peak
+        out["steady_state_trough [mg/L]"] = trough
+        out["steady_state_average [mg/L]"] = avg
+    loading = get("loading_dose")
+    for t in options.at:
+        c = _concentration_at(t, cl, v, reg)
+        if loading is not None:
+            c = c + model.bolus_concentration(t, np.where(np.isnan(loading), 0.0, loading),
+                                              cl, v)
+        out[at_label(t)] = c
+    if target is not None:
+        out["rate_for_target [mg/h]"] = model.rate_for_plateau(target, cl)
+        out["loading_dose_for_target [mg]"] = model.amount_to_reach(target, 0.0, cl, v, 0.0)
+    lo, hi, has_window = _window(low, high, target)
+    if lo is not None:
+        out["in_window_at_steady_state"] = _inside(out, lo, hi, is_int)
         for t in options.at:
-            c = _concentration_at(t, cl, v, reg)
-            if loading is not None:
-                c = c + model.bolus_concentration(t, np.where(np.isnan(loading), 0.0, loading),
-                                                  cl, v)
-            out[at_label(t)] = c
-        if target is not None:
-            out["rate_for_target [mg/h]"] = model.rate_for_plateau(target, cl)
-            out["loading_dose_for_target [mg]"] = model.amount_to_reach(target, 0.0, cl, v, 0.0)
-        lo, hi, has_window = _window(low, high, target)
-        if lo is not None:
-            out["in_window_at_steady_state"] = _inside(out, lo, hi, is_int)
-            for t in options.at:
-                c = out[at_label(t)]
-                out[f"in_window_at_{t:g}h"] = (c >= lo) & (c <= hi)
-        if options.population:
-            out.update(_variability(cl, v, reg, mean_rate, loading, lo, hi, options,
-                                    spec.intermittent))
+            c = out[at_label(t)]
+            out[f"in_window_at_{t:g}h"] = (c >= lo) & (c <= hi)
+    if options.population:
+        out.update(_variability(cl, v, reg, mean_rate, loading, lo, hi, options,
+                                spec.intermittent))
+    return out, has_window
+
+
+def _assemble(frame: pd.DataFrame, parsed, out, err: RowErrors, has_window) -> pd.DataFrame:
+    """Input columns (recognised ones as parsed numbers), results blanked on failed
+    rows, and the error column; a result that overflowed is a row error."""
+    n = len(frame)
+    bad = err.bad
     overflow = np.zeros(n, bool)
     for col in out.values():
         if col.dtype != bool:
@@ -191,6 +230,8 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
         result[key] = col
     result["error"] = err.text
     return result
+
+
 
 
 def _window(low, high, target):
