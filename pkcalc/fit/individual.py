@@ -65,7 +65,31 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None,
     """
     opts = options or FitOptions()
     failures: list[tuple[str, str]] = []
-    kind = opts.method
+    usable = _usable_subjects(subjects, opts, prior_means, failures)
+    if usable is None:
+        return [], failures
+    keep, batch, notes, prior_info = usable
+    starts, n_starts = _starts(batch, opts)
+    sol, theta, sel, agreed = _best_of_starts(batch, starts, n_starts, opts)
+    final = _reweighted(batch, theta, opts)
+    stats = _statistics(final, theta, opts.method)
+    results = []
+    for i, s in enumerate(keep):
+        k = s.time.size
+        results.append(_result(
+            s, opts, final, i, theta[i], stats["obj"][i], float(stats["m2ll"][i]),
+            int(stats["n_used"][i]), stats["cov"][i], bool(stats["identifiable"][i]),
+            float(stats["scale"][i]), stats["lower"][i], stats["f"][i, :k],
+            stats["observed"][i, :k], stats["resid"][i, :k], stats["wres"][i, :k],
+            stats["tables"][i], bool(sol.converged[sel[i]]), sol.message[sel[i]],
+            int(sol.iterations[sel[i]]), n_starts, int(agreed[i]), notes[i],
+            {key: v[i] for key, v in prior_info.items()}))
+    return results, failures
+
+
+def _usable_subjects(subjects, opts: FitOptions, prior_means, failures):
+    """The batch of subjects that can be fitted (a measurable level, enough levels, a
+    weight for a per-kg prior); the others go to ``failures``.  None when none is left."""
     full, notes_all, n_used = prepare_batch(subjects, opts)
     has_level = (full.obs & (full.y > 0)).any(axis=1)
     enough = (n_used >= 2) | (opts.prior is not None)
@@ -76,12 +100,12 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None,
                                               "more (give a prior for a MAP estimate)"))
     good = np.flatnonzero(has_level & enough)
     if good.size == 0:
-        return [], failures
+        return None
     keep = [subjects[i] for i in good]
     batch = full if good.size == len(subjects) else full.rows(good)
     notes = [notes_all[i] for i in good]
-    prior_info = {}
-    if kind == "map":
+    prior_info: dict = {}
+    if opts.method == "map":
         batch, prior_info, bad = with_prior(batch, keep, opts, prior_means)
         for i in sorted(bad, reverse=True):
             failures.append((keep[i].subject, "the prior is per kg but the subject has no "
@@ -93,7 +117,13 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None,
             notes = [notes[i] for i in good]
             prior_info = {k: v[good] for k, v in prior_info.items()}
         if not keep:
-            return [], failures
+            return None
+    return keep, batch, notes, prior_info
+
+
+def _starts(batch: Batch, opts: FitOptions):
+    """Starting values per subject: data-based grid starts, more spread around the
+    best when asked, and the prior mean for MAP."""
     starts = starting_values(batch)                                        # (B, 3, 2)
     n_starts = opts.starts
     if n_starts > 3:
@@ -101,14 +131,19 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None,
         extra = starts[:, :1, :] + np.stack([np.log(spread), np.zeros_like(spread)], -1)[None]
         starts = np.concatenate([starts, extra], axis=1)
     starts = starts[:, :n_starts, :]
-    if kind == "map":
+    if opts.method == "map":
         # the prior mean is a natural extra start for sparse data
         starts = np.concatenate([batch.mu[:, None, :], starts], axis=1)[:, :max(n_starts, 1)]
         n_starts = starts.shape[1]
-    b = len(keep)
+    return starts, n_starts
+
+
+def _best_of_starts(batch: Batch, starts, n_starts: int, opts: FitOptions):
+    """Solve from every start; keep each subject's best, count the starts that agree."""
+    b = batch.t.shape[0]
     rep = batch.repeat(n_starts)
     theta0 = starts.reshape(b * n_starts, 2)
-    if kind == "likelihood":
+    if opts.method == "likelihood":
         # residual-error starts from each subject's best grid point, shared by its starts
         err0 = error_starts(batch, starts[:, 0, :])
         theta0 = np.concatenate([theta0, np.repeat(err0, n_starts, axis=0)], axis=1)
@@ -117,14 +152,23 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None,
     obj_ok = np.where(np.isfinite(obj), obj, np.inf)
     best = np.argmin(obj_ok, axis=1)
     sel = np.arange(b) * n_starts + best
-    theta = sol.theta[sel]
     agreed = (np.abs(obj_ok - obj_ok[np.arange(b), best][:, None]) <= AGREE_TOL).sum(axis=1)
-    final = batch  # one row per subject, in order (the starts only differ in theta)
-    if opts.weighting == "inverse_predicted_squared":
-        f0 = model.concentration(final.t, final.start, final.amount, final.duration,
-                                 np.exp(theta[:, 0]), np.exp(theta[:, 1]))
-        final = Batch(**{**final.__dict__, "w": np.where(final.obs, 1 / np.maximum(
-            f0, 1e-12) ** 2, 0.0)})
+    return sol, sol.theta[sel], sel, agreed
+
+
+def _reweighted(batch: Batch, theta, opts: FitOptions) -> Batch:
+    """For weights 1/predicted^2, the weights at the estimate (iteratively reweighted)."""
+    if opts.weighting != "inverse_predicted_squared":
+        return batch
+    f0 = model.concentration(batch.t, batch.start, batch.amount, batch.duration,
+                             np.exp(theta[:, 0]), np.exp(theta[:, 1]))
+    return Batch(**{**batch.__dict__, "w": np.where(batch.obs, 1 / np.maximum(
+        f0, 1e-12) ** 2, 0.0)})
+
+
+def _statistics(final: Batch, theta, kind: str) -> dict:
+    """Objective, information, covariance, estimates with intervals, -2 ln L and
+    residuals of every subject at its estimate."""
     f_obj, _, info, f = evaluate(final, theta)
     # information for the covariance: the scoring matrix (J'WJ for least squares, the
     # Fisher information -- plus the prior's -- for likelihood and MAP fits); with
@@ -136,8 +180,6 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None,
         hess = info.copy()
         hess[idx] = observed_hessian(final.rows(idx), theta[idx])
     cov, identifiable, scale = covariances(final, f_obj, hess, kind)
-    lower = bounds(final, theta.shape[1])
-    tables = structural_estimates(final, theta, cov, kind)
     n_used = final.n_obs
     if kind == "least_squares":
         sd_all = np.sqrt(scale[:, None] / np.maximum(final.w, 1e-300))
@@ -147,19 +189,12 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None,
     else:
         sd_all = np.sqrt(residual_variance(final, theta, f)[0])
         m2ll = f_obj
-    observed = np.where(final.obs | final.cens, final.y, np.nan)
     resid = np.where(final.obs, final.y - f, np.nan)
-    wres = resid / sd_all
-    results = []
-    for i, s in enumerate(keep):
-        k = s.time.size
-        results.append(_result(
-            s, opts, final, i, theta[i], f_obj[i], float(m2ll[i]), int(n_used[i]), cov[i],
-            bool(identifiable[i]), float(scale[i]), lower[i], f[i, :k], observed[i, :k],
-            resid[i, :k], wres[i, :k], tables[i], bool(sol.converged[sel[i]]),
-            sol.message[sel[i]], int(sol.iterations[sel[i]]), n_starts, int(agreed[i]),
-            notes[i], {key: v[i] for key, v in prior_info.items()}))
-    return results, failures
+    return {"obj": f_obj, "f": f, "cov": cov, "identifiable": identifiable, "scale": scale,
+            "lower": bounds(final, theta.shape[1]),
+            "tables": structural_estimates(final, theta, cov, kind), "n_used": n_used,
+            "m2ll": m2ll, "observed": np.where(final.obs | final.cens, final.y, np.nan),
+            "resid": resid, "wres": resid / sd_all}
 
 
 def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.ndarray,
