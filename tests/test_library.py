@@ -229,3 +229,21 @@ def test_results_have_a_notebook_view_with_the_caution():
     for result in (pkcalc.fit_study(study), pkcalc.nca_study(study)):
         html = result._repr_html_()
         assert "licensed clinicians" in html and "<table" in html
+
+
+# --------------------------------------------------------------------------- references
+def _references(text: str) -> set[str]:
+    links = set(re.findall(r"\]\(([^)#\s]+)\)", text))
+    paths = set(re.findall(r"`((?:pkcalc|tests|scenarios|docs)/[A-Za-z0-9_./-]+)", text))
+    return {p.rstrip("/.") for p in links | paths if "://" not in p and "*" not in p}
+
+
+@pytest.mark.parametrize("doc", ["README.md", "DEVELOPERS.md", "docs/methods.md",
+                                 "docs/design-notes.md", "docs/validation.md", "docs/dask.md",
+                                 "docs/formats.md"])
+def test_every_path_a_document_names_exists(doc):
+    text = (REPO / doc).read_text(encoding="utf-8")
+    base = (REPO / doc).parent
+    missing = [p for p in sorted(_references(text))
+               if not (base / p).exists() and not (REPO / p).exists()]
+    assert not missing, f"{doc} names paths that do not exist: {missing}"
