@@ -1,0 +1,271 @@
+"""The ``pkcalc`` argument parser: commands, options, help texts and examples.
+
+Parsing only; :mod:`pkcalc.cli` runs the commands.
+"""
+
+from __future__ import annotations
+
+import argparse
+
+__all__ = ["DESIGN_OPTIONS", "EXAMPLES", "PARAM_OPTIONS", "build_parser"]
+
+DESIGN_OPTIONS = ("plateau", "loading_time", "peak", "trough", "peak_min", "peak_max",
+                   "trough_min", "trough_max", "infusion_time", "dose_step", "rate_step",
+                   "max_rate", "max_dose", "max_loading", "salt_factor", "max_loading_ratio")
+PARAM_OPTIONS = ("clearance", "volume", "half_life", "elimination_rate", "time_constant",
+                  "weight")
+
+EXAMPLES = {
+    "predict": """examples:
+  pkcalc predict scenarios/demo.toml
+  pkcalc predict scenarios/demo.toml --json > prediction.json
+  pkcalc predict scenarios/demo.toml --out results/""",
+    "design": """examples:
+  pkcalc design --clearance "4 L/h" --half-life "8 h" --plateau "10 mg/L"
+  pkcalc design --clearance "4 L/h" --half-life "8 h" --plateau "10 mg/L" --loading-time "30 min"
+  pkcalc design --clearance "5.5 L/h" --volume "30 L" --peak-max "30 mg/L" --trough-min "8 mg/L" \\
+                --infusion-time "1 h" --dose-step "50 mg"
+  pkcalc design --clearance "5.5 L/h" --volume "30 L" --peak "25 mg/L" --trough "5 mg/L" \\
+                --infusion-time "30 min"
+  pkcalc design scenarios/demo-design.toml --out design-results/
+
+A scenario file holds a [scenarios.design] table per scenario, for designs
+(continuous, intermittent) and adjustments from measured levels
+(proportional, chiou, sawchuk_zaske, map) that start from the patient's
+current level; see scenarios/demo-design.toml.""",
+    "verify": """examples:
+  pkcalc verify scenarios/reference-cases.toml
+  pkcalc verify my-cases.toml --junit verify.xml
+  pkcalc verify my-cases.toml --json > verify.json
+
+exit code 0 when every check passes, 1 when any check fails, 2 when the file
+(or a case in it) cannot be used.""",
+    "fit": """examples:
+  pkcalc fit scenarios/demo-study.toml
+  pkcalc fit scenarios/demo-study.toml --with-nca --out fit-results/
+  pkcalc fit --levels levels.csv --doses doses.csv --weighting inverse_predicted_squared \\
+             --blq drop
+  pkcalc fit --levels levels.csv --doses doses.csv --error-model combined --ci profile
+  pkcalc fit --levels levels.csv --doses doses.csv --prior prior.toml     (MAP)
+
+Defaults: proportional error model by maximum likelihood, BLQ levels by the
+censored likelihood (Beal's M3), Wald intervals on the log scale, 3 starts.""",
+    "population": """examples:
+  pkcalc population scenarios/demo-sparse.toml
+  pkcalc population scenarios/demo-sparse.toml --covariate estimated --bootstrap 200
+  pkcalc population --levels L.csv --doses D.csv --subjects S.csv --method two-stage
+  pkcalc population scenarios/demo-sparse.toml --covariate per_kg --out pop-results/
+
+Iterative two-stage by default (Prevost 1977; Steimer et al. 1984): MAP
+estimates of every subject under the current population prior, then an update
+of the typical values, the between-subject covariance and the residual error,
+until they settle.""",
+    "batch": """examples:
+  pkcalc batch scenarios/demo-grid.toml --out grid-results.csv --at 24h,48h
+  pkcalc batch scenarios/demo-batch.csv --out results.parquet
+  pkcalc batch scenarios/demo-batch.csv --out pop.csv --population 10000 --seed 1 \\
+               --cv-clearance 30% --cv-volume 20%
+  pkcalc batch big.csv --out big-results.csv --engine dask
+  pkcalc batch big.parquet --out big-results.parquet --engine dask \\
+               --scheduler tcp://10.0.0.5:8786
+
+The input table has one row per scenario and units in the headers (any two of
+clearance, volume, half_life, elimination_rate, time_constant; rate or dose;
+optional duration, interval, loading_dose, target, window_low, window_high,
+weight).  Input columns are carried through; a row with a problem gets its
+reason in the 'error' column and empty results.  --out is the output table;
+--plots DIR writes the distribution plots and CAUTION.txt.""",
+    "nca": """examples:
+  pkcalc nca scenarios/demo-study.toml
+  pkcalc nca --levels levels.csv --doses doses.csv --auc-method linear --out nca-results/
+  pkcalc nca scenarios/demo-study.toml --terminal "3=8 h,12 h,24 h"
+
+Times in the results are hours after the start of the reference dose (the
+single dose, or the last of regular repeated doses).""",
+    "demo": """examples:
+  pkcalc demo --out demo-output""",
+}
+
+
+def _study_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument("study", nargs="?", metavar="STUDY.toml", help="study file naming the tables")
+    p.add_argument("--levels", metavar="L.csv", help="levels table")
+    p.add_argument("--doses", metavar="D.csv", help="doses table")
+    p.add_argument("--subjects", metavar="S.csv", help="subjects table (weights, covariates)")
+
+
+# --------------------------------------------------------------------------- parser
+def _add(sub, name: str, help_: str):
+    p = sub.add_parser(name, help=help_, description=help_, epilog=EXAMPLES.get(name),
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.set_defaults(command=name)
+    return p
+
+
+def _output_args(p: argparse.ArgumentParser, out_help: str) -> None:
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.add_argument("--out", metavar="DIR", help=out_help)
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="pkcalc",
+        description="Intravenous infusion pharmacokinetics (one-compartment, linear). "
+                    "Results are model estimates for research and review; dosing decisions "
+                    "belong to licensed clinicians and pharmacists under local protocols.",
+    )
+    from . import __version__
+
+    parser.add_argument("--version", action="version", version=f"pkcalc {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    _predict_parser(sub)
+    _design_parser(sub)
+    _fit_parser(sub)
+    _population_parser(sub)
+    _batch_parser(sub)
+    _nca_parser(sub)
+    _verify_parser(sub)
+    _demo_parser(sub)
+    return parser
+
+
+def _predict_parser(sub) -> None:
+    p = _add(sub, "predict",
+             "Concentration course, plateau, time to plateau and steady state of scenarios.")
+    p.add_argument("scenario", metavar="SCENARIO.toml", help="scenario file (docs/formats.md)")
+    _output_args(p, "write CSV, JSON and PNG files to DIR")
+
+
+def _design_parser(sub) -> None:
+    p = _add(sub, "design",
+             "Design a regimen to a target, or adjust one from measured levels.")
+    p.add_argument("scenario", nargs="?", metavar="SCENARIO.toml",
+                   help="scenario file with [scenarios.design] tables")
+    for name in PARAM_OPTIONS:
+        p.add_argument("--" + name.replace("_", "-"), metavar="Q", help=f"{name} with unit")
+    p.add_argument("--plateau", metavar="Q", help="target plateau (continuous infusion)")
+    p.add_argument("--window", nargs=2, metavar=("LOW", "HIGH"), help="acceptable plateau range")
+    p.add_argument("--loading-time", metavar="Q", help="loading dose duration (default: bolus)")
+    p.add_argument("--auc-24", nargs="+", metavar="Q",
+                   help='steady-state AUC over 24 h: a value or LOW HIGH, e.g. "400 mg*h/L" '
+                        '"600 mg*h/L" (alone or with peak/trough limits)')
+    for name in ("peak", "trough"):
+        p.add_argument(f"--{name}", metavar="Q", help=f"target steady-state {name}")
+        p.add_argument(f"--{name}-min", metavar="Q", help=f"lowest acceptable {name}")
+        p.add_argument(f"--{name}-max", metavar="Q", help=f"highest acceptable {name}")
+    p.add_argument("--infusion-time", metavar="Q", help="duration of each intermittent dose")
+    p.add_argument("--intervals", metavar="LIST",
+                   help='practical intervals, e.g. "6 h,8 h,12 h,24 h" (default 6-48 h)')
+    p.add_argument("--dose-step", metavar="Q", help="round doses to this step (default 10 mg)")
+    p.add_argument("--rate-step", metavar="Q", help="round rates to this step (default 0.1 mg/h)")
+    p.add_argument("--max-rate", metavar="Q", help="flag rates above this")
+    p.add_argument("--max-dose", metavar="Q", help="flag doses above this")
+    p.add_argument("--max-loading", metavar="Q", help="flag loading doses above this")
+    p.add_argument("--max-loading-ratio", type=float, metavar="N",
+                   help="flag loading doses above N maintenance doses (default 3)")
+    p.add_argument("--salt-factor", type=float, metavar="S",
+                   help="fraction of the product that is active drug (default 1)")
+    _output_args(p, "write CSV, JSON and PNG files to DIR")
+
+
+def _fit_parser(sub) -> None:
+    p = _add(sub, "fit",
+             "Estimate clearance, volume and half-life per subject from sampled levels.")
+    _study_args(p)
+    group = p.add_mutually_exclusive_group()
+    group.add_argument("--weighting", choices=["uniform", "inverse_observed",
+                                               "inverse_observed_squared",
+                                               "inverse_predicted_squared"],
+                       help="least squares with fixed weights")
+    group.add_argument("--error-model", choices=["additive", "proportional", "combined"],
+                       help="maximum likelihood with this residual error (default proportional)")
+    p.add_argument("--blq", choices=["drop", "likelihood", "half_lloq"],
+                   help="levels below LLOQ: drop (M1), likelihood (M3, default), half_lloq")
+    p.add_argument("--prior", metavar="PRIOR.toml", help="MAP estimation with this prior")
+    p.add_argument("--ci", choices=["wald", "profile"], help="interval method (default wald)")
+    p.add_argument("--starts", type=int, metavar="N", help="number of starts (default 3)")
+    p.add_argument("--with-nca", action="store_true",
+                   help="show the fit beside non-compartmental results")
+    p.add_argument("--nca-threshold", type=float, metavar="PERCENT",
+                   help="flag fit/NCA differences beyond this (default 20)")
+    _output_args(p, "write fit.csv, fit.json and plots to DIR")
+
+
+def _population_parser(sub) -> None:
+    p = _add(sub, "population",
+             "Typical values, between-subject variability and residual error from a study.")
+    _study_args(p)
+    p.add_argument("--method", choices=["two-stage", "iterative"],
+                   help="standard two-stage (rich data) or iterative two-stage (default)")
+    p.add_argument("--error-model", choices=["additive", "proportional", "combined"],
+                   help="residual error (default proportional)")
+    p.add_argument("--blq", choices=["likelihood", "drop", "half_lloq"],
+                   help="levels below LLOQ (default likelihood, Beal's M3)")
+    p.add_argument("--covariate", choices=["none", "allometric", "estimated", "per_kg"],
+                   help="body-weight model (default none)")
+    p.add_argument("--reference-weight", metavar="Q", help="reference weight (default 70 kg)")
+    p.add_argument("--bootstrap", type=int, metavar="N",
+                   help="bootstrap replicates over subjects for SEs (default 0)")
+    p.add_argument("--seed", type=int, metavar="S", help="seed for bootstrap and VPC (default 1)")
+    p.add_argument("--vpc-replicates", type=int, metavar="N",
+                   help="simulated replicates for the visual predictive check (default 200)")
+    _output_args(p, "write CSV, JSON and plots to DIR")
+
+
+def _batch_parser(sub) -> None:
+    p = _add(sub, "batch",
+             "Scenario tables at scale: plateau, time to plateau, steady state, variability.")
+    p.add_argument("input", metavar="INPUT", help="CSV, Parquet, or TOML ([grid] or "
+                                                  "[[scenarios]])")
+    p.add_argument("--out", metavar="OUTPUT", required=True,
+                   help="output table (.csv or .parquet), written atomically")
+    p.add_argument("--engine", choices=["local", "dask"], default="local",
+                   help="local numpy (default) or dask.dataframe partitions")
+    p.add_argument("--scheduler", metavar="ADDR",
+                   help="existing Dask scheduler, e.g. tcp://10.0.0.5:8786 (default: a local "
+                        "cluster)")
+    p.add_argument("--at", metavar="TIMES", help="concentration at these times, e.g. 24h,48h")
+    p.add_argument("--population", type=int, metavar="N",
+                   help="virtual subjects per row (percentiles, fraction inside the window)")
+    p.add_argument("--seed", type=int, metavar="S", help="seed of the virtual population")
+    p.add_argument("--cv-clearance", metavar="P", help="between-subject CV of clearance, e.g. 30%%")
+    p.add_argument("--cv-volume", metavar="P", help="between-subject CV of volume, e.g. 20%%")
+    p.add_argument("--correlation", type=float, metavar="R",
+                   help="correlation of ln CL and ln V (default 0)")
+    p.add_argument("--chunk-rows", type=int, metavar="N",
+                   help="rows per chunk (default 200000; memory stays bounded by it)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--plots", metavar="DIR", help="write distribution plots and CAUTION.txt")
+    p.add_argument("--json", action="store_true", help="print the run summary as JSON")
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+
+
+def _nca_parser(sub) -> None:
+    p = _add(sub, "nca",
+             "Non-compartmental analysis per subject (AUC, terminal slope, CL, volumes, MRT).")
+    _study_args(p)
+    p.add_argument("--auc-method", choices=["linear-up-log-down", "linear"],
+                   help="trapezoid rule (default linear-up-log-down)")
+    p.add_argument("--blq-rule", choices=["leading_zero", "zero", "drop"],
+                   help="BLQ levels: leading_zero (default: before the first measurable level "
+                        "as 0, later ones left out), zero, drop")
+    p.add_argument("--terminal", action="append", metavar="SUBJECT=T1,T2,...",
+                   help="choose a subject's terminal points by hand (repeatable)")
+    _output_args(p, "write nca.csv, nca.json and plots to DIR")
+
+
+def _verify_parser(sub) -> None:
+    p = _add(sub, "verify",
+             "Recompute worked examples and report PASS/FAIL per expected value.")
+    p.add_argument("cases", metavar="CASES.toml", help="cases file (docs/formats.md)")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.add_argument("--junit", metavar="FILE.xml", help="also write JUnit XML for CI systems")
+    p.add_argument("--out", metavar="DIR", help="write verify.csv, verify.json to DIR")
+    p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+
+
+def _demo_parser(sub) -> None:
+    p = _add(sub, "demo",
+             "Run the invented demo scenario end to end.")
+    p.add_argument("--out", metavar="DIR", help="output folder (default: pkcalc-demo)")
