@@ -225,34 +225,9 @@ def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.nd
     ests = dict(table)
     corr = None if cov is None else float(cov[0, 1] / math.sqrt(cov[0, 0] * cov[1, 1]))
     if opts.ci == "profile" and cov is not None:
-        for j, name in ((0, "clearance"), (1, "volume")):
-            lo, hi, note = profile_interval(batch.rows(np.array([i])), theta, j, obj,
-                                    math.sqrt(var[j]), opts, n_used)
-            if note:
-                notes.append(f"{name}: {note}")
-            e = ests[name]
-            ests[name] = Estimate(e.value, e.se, e.rse_percent, lo, hi)
-        notes.append("95 % intervals of clearance and volume by profile likelihood; derived "
-                     "ones (k, half-life) by the Wald method on the log scale")
-    residual: dict[str, Estimate] = {}
-    if kind == "likelihood":
-        names = {"additive": ["additive"], "proportional": ["proportional"],
-                 "combined": ["additive", "proportional"]}[batch.error]
-        for j, name in enumerate(names):
-            at_floor = theta[2 + j] <= lower[2 + j] + 1e-6
-            residual[name] = log_estimate(float(theta[2 + j]), None if at_floor or cov is None
-                                       else var[2 + j], qt)
-            if at_floor:
-                notes.append(f"the {name} error component is at its lower bound: the levels "
-                             f"support the other component alone")
-    elif kind == "map":
-        if batch.sa[i] > 0:
-            residual["additive"] = Estimate(float(batch.sa[i]))
-        if batch.sp[i] > 0:
-            residual["proportional"] = Estimate(float(batch.sp[i]))
-        notes.append("MAP estimate: residual error fixed at the prior's values")
-    else:
-        residual["scale"] = Estimate(math.sqrt(max(s2, 0.0)) if np.isfinite(s2) else math.nan)
+        _profile_intervals(ests, batch.rows(np.array([i])), theta, obj, var, opts, n_used,
+                           notes)
+    residual = _residual_estimates(batch, i, theta, lower, cov, var, qt, s2, notes)
     if not converged:
         warnings.append(f"did not converge: {message}")
     if agreed < n_starts:
@@ -263,21 +238,7 @@ def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.nd
                                                                                 "volume"):
             warnings.append(f"{name} is poorly determined (RSE {e.rse_percent:.0f} %)")
     warnings += parameter_warnings(ests["clearance"].value, ests["volume"].value, s.weight)
-    prior_out: dict[str, float] = {}
-    if kind == "map":
-        mu, omega = prior["mu"], prior["omega"]
-        prior_out = {"typical_clearance": math.exp(mu[0]), "typical_volume": math.exp(mu[1]),
-                     "ln_clearance_deviation": float(theta[0]) - mu[0],
-                     "ln_volume_deviation": float(theta[1]) - mu[1]}
-        if cov is not None:
-            prior_out["prior_variance_remaining_clearance_percent"] = 100 * cov[0, 0] / omega[
-                0, 0]
-            prior_out["prior_variance_remaining_volume_percent"] = 100 * cov[1, 1] / omega[1, 1]
-            notes.append(
-                f"{prior_out['prior_variance_remaining_clearance_percent']:.0f} % of the prior "
-                f"variance of ln CL and {prior_out['prior_variance_remaining_volume_percent']:.0f}"
-                " % of ln V remain after the levels (100 % = the levels say nothing; low values "
-                "= estimate driven by the data)")
+    prior_out = _prior_summary(prior, theta, cov, notes) if kind == "map" else {}
     return FitResult(
         subject=s.subject, converged=converged, method=kind,
         error_model=opts.error_model if kind != "least_squares" else None,
@@ -289,3 +250,58 @@ def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.nd
         weighted_residuals=wres, dose_start=s.dose_start, dose_amount=s.dose_amount,
         dose_duration=s.dose_duration, warnings=warnings, notes=notes, prior=prior_out,
         weight=s.weight, initial_concentration=s.initial_concentration)
+
+
+def _profile_intervals(ests, row: Batch, theta, obj, var, opts: FitOptions, n_used: int,
+                       notes: list[str]) -> None:
+    """Profile-likelihood intervals of clearance and volume (in place)."""
+    for j, name in ((0, "clearance"), (1, "volume")):
+        lo, hi, note = profile_interval(row, theta, j, obj, math.sqrt(var[j]), opts, n_used)
+        if note:
+            notes.append(f"{name}: {note}")
+        e = ests[name]
+        ests[name] = Estimate(e.value, e.se, e.rse_percent, lo, hi)
+    notes.append("95 % intervals of clearance and volume by profile likelihood; derived "
+                 "ones (k, half-life) by the Wald method on the log scale")
+
+
+def _residual_estimates(batch: Batch, i: int, theta, lower, cov, var, qt: float, s2: float,
+                        notes: list[str]) -> dict[str, Estimate]:
+    """The residual error: estimated (likelihood), fixed (MAP) or the LS scale."""
+    residual: dict[str, Estimate] = {}
+    if batch.kind == "likelihood":
+        names = {"additive": ["additive"], "proportional": ["proportional"],
+                 "combined": ["additive", "proportional"]}[batch.error]
+        for j, name in enumerate(names):
+            at_floor = theta[2 + j] <= lower[2 + j] + 1e-6
+            residual[name] = log_estimate(float(theta[2 + j]), None if at_floor or cov is None
+                                          else var[2 + j], qt)
+            if at_floor:
+                notes.append(f"the {name} error component is at its lower bound: the levels "
+                             f"support the other component alone")
+    elif batch.kind == "map":
+        if batch.sa[i] > 0:
+            residual["additive"] = Estimate(float(batch.sa[i]))
+        if batch.sp[i] > 0:
+            residual["proportional"] = Estimate(float(batch.sp[i]))
+        notes.append("MAP estimate: residual error fixed at the prior's values")
+    else:
+        residual["scale"] = Estimate(math.sqrt(max(s2, 0.0)) if np.isfinite(s2) else math.nan)
+    return residual
+
+
+def _prior_summary(prior: dict, theta, cov, notes: list[str]) -> dict[str, float]:
+    """MAP: typical values, the subject's deviations and the prior variance left."""
+    mu, omega = prior["mu"], prior["omega"]
+    out = {"typical_clearance": math.exp(mu[0]), "typical_volume": math.exp(mu[1]),
+           "ln_clearance_deviation": float(theta[0]) - mu[0],
+           "ln_volume_deviation": float(theta[1]) - mu[1]}
+    if cov is not None:
+        out["prior_variance_remaining_clearance_percent"] = 100 * cov[0, 0] / omega[0, 0]
+        out["prior_variance_remaining_volume_percent"] = 100 * cov[1, 1] / omega[1, 1]
+        notes.append(
+            f"{out['prior_variance_remaining_clearance_percent']:.0f} % of the prior "
+            f"variance of ln CL and {out['prior_variance_remaining_volume_percent']:.0f}"
+            " % of ln V remain after the levels (100 % = the levels say nothing; low values "
+            "= estimate driven by the data)")
+    return out
