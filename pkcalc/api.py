@@ -314,6 +314,7 @@ def population_study(study: Study, options: PopulationOptions | None = None,
         result.notes.append(f"standard errors and 95 % intervals of the typical values from "
                             f"{o.bootstrap} bootstrap replicates over subjects (seed {o.seed})")
     elif o.method == "iterative":
-        result.notes.append("standard errors of the typical values: sqrt(omega^2/N) on the log "
-                            "scale (run --bootstrap N for bootstrap intervals)")
+        result.notes.append("standard errors of the typical values: between-subject SD / "
+                            "sqrt(N) on the log scale (run --bootstrap N for bootstrap "
+                            "intervals)")
     return result

@@ -145,7 +145,7 @@ class PopulationResult:
         return result_html(self.summary(), self.to_frame())
 
     def to_frame(self):
-        """One row per subject: individual estimates, etas, weight."""
+        """One row per subject: individual estimates, ln deviations from typical, weight."""
         import pandas as pd
 
         rows = []
@@ -434,7 +434,8 @@ def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "prop
         f"convergence: largest change of the typical values (log scale) < {BETA_TOL:g} and "
         f"of the variances < {OMEGA_TOL:g} (relative); {'reached' if converged else 'NOT'}"
         f" after {it} iterations")
-    result.notes.append("shrinkage = 1 - SD(eta)/omega (Savic & Karlsson 2009, from memory); "
+    result.notes.append("shrinkage = 1 - SD(ln deviations from typical) / between-subject SD "
+                        "(Savic & Karlsson 2009, from memory); "
                         "high values (> 30 %) make individual estimates lean on the prior")
     if not converged:
         result.warnings.append(f"did not converge in {max_iterations} iterations: the "
