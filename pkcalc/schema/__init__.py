@@ -23,7 +23,8 @@ from .base import (
     validation_problems,
 )
 from .cases import CaseSpec, Expectation, VerifyCase, load_cases_file
-from .design import DESIGN_METHODS, DesignCase, DesignCaseSpec, DesignSpec, load_design_file
+from .design import DesignCase, DesignCaseSpec, load_design_file
+from .design_table import DESIGN_METHODS, DesignSpec
 from .scenario import DoseSpec, ScenarioSpec, TargetSpec, TimeRange, load_scenario_file
 
 __all__ = [

@@ -21,7 +21,7 @@ from .base import (
     load_items,
     resolve_partial,
 )
-from .design import DesignSpec, resolve_design
+from .design_table import DesignSpec, resolve_design
 from .scenario import DoseSpec, TimeRange, resolve_times
 
 __all__ = ["QUANTITIES", "CaseSpec", "Expectation", "VerifyCase", "load_cases_file"]
