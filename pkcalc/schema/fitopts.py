@@ -64,6 +64,28 @@ def parse_prior(raw: dict[str, Any], *, file: str | None = None) -> Prior:
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"prior.{key}",
                                 expected=", ".join(sorted(allowed))))
+    typical = _prior_typical(raw, problems, file)
+    omegas = _prior_variability(raw, problems, file)
+    corr = raw.get("correlation", 0.0)
+    if not isinstance(corr, int | float) or isinstance(corr, bool) or not -1 < corr < 1:
+        problems.append(Problem("correlation must be a number in (-1, 1)", file=file,
+                                field="prior.correlation"))
+        corr = 0.0
+    add, prop = _prior_error(raw, problems, file)
+    if problems:
+        raise PkcalcInputError(problems)
+    return Prior(typical["clearance"][0], typical["volume"][0], omegas["clearance"],
+                 omegas["volume"], float(corr), add, prop, typical["clearance"][1],
+                 typical["volume"][1], source=file or "")
+
+
+def _located(exc: PkcalcInputError, file: str | None) -> list[Problem]:
+    return [Problem(p.message, file=file, field=p.field, expected=p.expected)
+            for p in exc.problems]
+
+
+def _prior_typical(raw, problems: list[Problem], file) -> dict[str, tuple[float, bool]]:
+    """Typical clearance and volume (absolute or per kg)."""
     typical: dict[str, tuple[float, bool]] = {}
     for name in ("clearance", "volume"):
         text = raw.get(name)
@@ -74,14 +96,18 @@ def parse_prior(raw: dict[str, Any], *, file: str | None = None) -> Prior:
             value, unit = parse_number_and_unit(text, field=f"prior.{name}")
             spec = parse_unit(unit, name, field=f"prior.{name}")
         except PkcalcInputError as exc:
-            problems.extend(Problem(p.message, file=file, field=p.field, expected=p.expected)
-                            for p in exc.problems)
+            problems.extend(_located(exc, file))
             continue
         if not value > 0:
             problems.append(Problem("must be greater than zero", file=file,
                                     field=f"prior.{name}"))
             continue
         typical[name] = (value * spec.factor, spec.per_kg)
+    return typical
+
+
+def _prior_variability(raw, problems: list[Problem], file) -> dict[str, float]:
+    """SD of ln CL and ln V: from a CV (log-normal: ln(1 + CV^2)) or given directly."""
     omegas: dict[str, float] = {}
     for name in ("clearance", "volume"):
         cv, sd = raw.get(f"cv_{name}"), raw.get(f"sd_log_{name}")
@@ -92,7 +118,6 @@ def parse_prior(raw: dict[str, Any], *, file: str | None = None) -> Prior:
             continue
         if cv is not None:
             value = _percent_or_number(cv, f"prior.cv_{name}", problems, file)
-            # log-normal: SD of the log from the CV, omega^2 = ln(1 + CV^2)
             omega = value if value is None or value <= 0 else math.sqrt(math.log1p(value**2))
         else:
             omega = _percent_or_number(sd, f"prior.sd_log_{name}", problems, file,
@@ -102,11 +127,11 @@ def parse_prior(raw: dict[str, Any], *, file: str | None = None) -> Prior:
                                     file=file, field=f"prior.cv_{name}"))
         elif omega is not None:
             omegas[name] = omega
-    corr = raw.get("correlation", 0.0)
-    if not isinstance(corr, int | float) or not -1 < corr < 1:
-        problems.append(Problem("correlation must be a number in (-1, 1)", file=file,
-                                field="prior.correlation"))
-        corr = 0.0
+    return omegas
+
+
+def _prior_error(raw, problems: list[Problem], file) -> tuple[float, float]:
+    """The residual error of the prior: additive SD (mg/L) and proportional SD."""
     error = raw.get("error", {})
     if not isinstance(error, dict):
         problems.append(Problem("must be a table", file=file, field="prior.error"))
@@ -121,8 +146,7 @@ def parse_prior(raw: dict[str, Any], *, file: str | None = None) -> Prior:
             add = value * parse_unit(unit, "concentration",
                                      field="prior.error.additive").factor
         except PkcalcInputError as exc:
-            problems.extend(Problem(p.message, file=file, field=p.field, expected=p.expected)
-                            for p in exc.problems)
+            problems.extend(_located(exc, file))
     if "proportional" in error:
         prop = _percent_or_number(error["proportional"], "prior.error.proportional", problems,
                                   file) or 0.0
@@ -131,11 +155,7 @@ def parse_prior(raw: dict[str, Any], *, file: str | None = None) -> Prior:
                                 file=file, field="prior.error",
                                 expected="[prior.error] proportional = '10%', additive = "
                                          "'0.1 mg/L'"))
-    if problems:
-        raise PkcalcInputError(problems)
-    return Prior(typical["clearance"][0], typical["volume"][0], omegas["clearance"],
-                 omegas["volume"], float(corr), add, prop, typical["clearance"][1],
-                 typical["volume"][1], source=file or "")
+    return add, prop
 
 
 def load_prior(path: str | Path) -> Prior:
