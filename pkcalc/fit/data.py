@@ -23,9 +23,24 @@ def subject_events(s: SubjectData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 def prepare_batch(subjects: list[SubjectData], opts: FitOptions):
     """All subjects as one padded batch after the BLQ method and the weights.
 
-    Returns the batch, the data-handling notes of each subject and the number of
-    levels each one contributes.
+    Returns the batch, the data-handling notes of each subject (warnings as
+    ``("warning", text)``) and the number of levels each one contributes.
     """
+    t, y, lloq, blq, valid, start, amount, duration = _padded(subjects)
+    notes: list[list] = [[] for _ in subjects]
+    y, obs, cens = _blq_method(y, lloq, blq, valid, opts.blq, notes)
+    none_yet = valid & (model.concentration(t, start, amount, duration, 1.0, 1.0) <= 0)
+    _before_any_drug(subjects, t, y, obs, none_yet, notes)
+    obs &= ~none_yet
+    cens &= ~none_yet
+    obs, w = _weights(y, obs, opts.weighting, notes)
+    batch = Batch(t=t, y=y, w=w, obs=obs, cens=cens, start=start, amount=amount,
+                  duration=duration, kind=opts.method, error=opts.error_model or "additive")
+    return batch, notes, obs.sum(axis=1) + cens.sum(axis=1)
+
+
+def _padded(subjects: list[SubjectData]):
+    """Levels and dose events of every subject, padded to the longest."""
     b = len(subjects)
     n = max((s.time.size for s in subjects), default=1)
     events = [subject_events(s) for s in subjects]
@@ -42,57 +57,60 @@ def prepare_batch(subjects: list[SubjectData], opts: FitOptions):
                                                                        s.blq, True)
         m = events[i][0].size
         start[i, :m], amount[i, :m], duration[i, :m] = events[i]
-    blq &= valid
+    return t, y, lloq, blq & valid, valid, start, amount, duration
+
+
+def _blq_method(y, lloq, blq, valid, method: str, notes):
+    """What BLQ levels become: dropped (M1), LLOQ/2, or censored (M3)."""
     obs = valid & ~blq
     cens = np.zeros_like(blq)
-    n_blq = blq.sum(axis=1)
-    notes: list[list[str]] = [[] for _ in range(b)]
-    if opts.blq == "half_lloq":
+    if method == "half_lloq":
         y = np.where(blq, lloq / 2, y)
         obs = obs | blq
-    elif opts.blq == "likelihood":
+    elif method == "likelihood":
         y = np.where(blq, lloq, y)
         cens = blq.copy()
     text = {"drop": "BLQ level(s) dropped (Beal's M1)",
             "half_lloq": "BLQ level(s) set to LLOQ/2 (substitution, for comparison; Beal's "
                          "M5/M6 family)",
             "likelihood": "BLQ level(s) enter as P(C < LLOQ) (censored likelihood, "
-                          "Beal's M3)"}[opts.blq]
+                          "Beal's M3)"}[method]
+    n_blq = blq.sum(axis=1)
     for i in np.flatnonzero(n_blq):
         notes[i].append(f"{int(n_blq[i])} {text}")
-    y = np.where(np.isnan(y), 0.0, y)
-    # levels where no drug has entered yet (before or at the start of the first infusion,
-    # and no initial level): the model predicts exactly zero there, so they carry no
-    # information on CL and V and would put a zero variance into the likelihood
-    none_yet = valid & (model.concentration(t, start, amount, duration, 1.0, 1.0) <= 0)
-    warns: list[list[str]] = [[] for _ in range(b)]
+    return np.where(np.isnan(y), 0.0, y), obs, cens
+
+
+def _before_any_drug(subjects, t, y, obs, none_yet, notes) -> None:
+    """Levels where no drug has entered yet (before or at the start of the first
+    infusion, and no initial level): the model predicts exactly zero there, so they
+    carry no information on CL and V and would put a zero variance into the
+    likelihood; they are left out, with a warning when measurable."""
     for i in np.flatnonzero(none_yet.any(axis=1)):
         k = subjects[i].time.size
         times = ", ".join(f"{x:g} h" for x in t[i, :k][none_yet[i, :k]])
-        measured = (obs[i] & none_yet[i] & (y[i] > 0)).any()
         text = (f"level(s) at {times} drawn before any drug entered: the model predicts zero "
                 "there, so they were left out of the fit")
-        if measured:
-            warns[i].append(text + "; a measurable level before the first dose means drug "
-                            "on board from earlier therapy: give initial_concentration")
+        if (obs[i] & none_yet[i] & (y[i] > 0)).any():
+            notes[i].insert(0, ("warning", text + "; a measurable level before the first "
+                                "dose means drug on board from earlier therapy: give "
+                                "initial_concentration"))
         else:
             notes[i].append(text)
-    obs &= ~none_yet
-    cens &= ~none_yet
-    w = np.ones((b, n))
-    if opts.weighting in ("inverse_observed", "inverse_observed_squared"):
+
+
+def _weights(y, obs, weighting: str | None, notes):
+    """Least-squares weights (1 everywhere unless 1/observed or 1/observed^2)."""
+    w = np.ones_like(y)
+    if weighting in ("inverse_observed", "inverse_observed_squared"):
         bad = obs & ~(y > 0)
         obs = obs & ~bad
         for i in np.flatnonzero(bad.any(axis=1)):
             notes[i].append(f"{int(bad[i].sum())} level(s) of zero left out: weights "
                             "1/observed need positive levels")
-        power = 1.0 if opts.weighting == "inverse_observed" else 2.0
+        power = 1.0 if weighting == "inverse_observed" else 2.0
         w = np.where(obs, np.abs(np.where(obs, y, 1.0)) ** -power, 0.0)
-    batch = Batch(t=t, y=y, w=w, obs=obs, cens=cens, start=start, amount=amount,
-                  duration=duration, kind=opts.method, error=opts.error_model or "additive")
-    for i in range(b):
-        notes[i] = [("warning", x) for x in warns[i]] + notes[i]
-    return batch, notes, obs.sum(axis=1) + cens.sum(axis=1)
+    return obs, w
 
 
 def with_prior(batch: Batch, subjects: list[SubjectData], opts: FitOptions,
