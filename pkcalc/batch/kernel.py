@@ -296,60 +296,73 @@ def _variability(cl, v, reg: _Regimen, mean_rate, loading, lo, hi,
     ``seed``), so results do not depend on chunking or the engine and scenario
     differences are not blurred by sampling noise.
     """
-    n_sub = options.population
-    rng = np.random.default_rng(options.seed)
-    z = rng.standard_normal((n_sub, 2))
-    om_cl = math.sqrt(math.log1p(options.cv_clearance ** 2))
-    om_v = math.sqrt(math.log1p(options.cv_volume ** 2))
-    r = options.correlation
-    eta_cl = om_cl * z[:, 0]
-    eta_v = om_v * (r * z[:, 0] + math.sqrt(1 - r * r) * z[:, 1])
+    dev_cl, dev_v = _virtual_deviations(options)
     rows = cl.size
-    block = max(1, POPULATION_BLOCK // max(n_sub, 1))
+    block = max(1, POPULATION_BLOCK // max(options.population, 1))
     metrics: dict[str, list[np.ndarray]] = {}
-
-    def add(name, arr):
-        metrics.setdefault(name, []).append(arr)
-
     for s in range(0, rows, block):
         sl = slice(s, s + block)
-        c_i = cl[sl, None] * np.exp(eta_cl)[None, :]
-        v_i = v[sl, None] * np.exp(eta_v)[None, :]
-        rg = reg.rows(sl)
-        plateau = mean_rate[sl, None] / c_i
-        add("plateau_concentration", plateau)
-        add("time_to_90pct", model.time_to_fraction(0.9, c_i, v_i))
-        if any_int:
-            peak, trough, _ = model.steady_state_intermittent(rg.amount, rg.duration,
-                                                              rg.interval, c_i, v_i)
-            add("steady_state_peak", peak)
-            add("steady_state_trough", trough)
-        ats = []
-        for t in options.at:
-            c = _concentration_at(t, c_i, v_i, rg)
-            if loading is not None:
-                c = c + model.bolus_concentration(
-                    t, np.where(np.isnan(loading[sl]), 0.0, loading[sl])[:, None], c_i, v_i)
-            add(f"concentration_at_{t:g}h", c)
-            ats.append(c)
-        if lo is not None:
-            l_, h_ = lo[sl, None], hi[sl, None]
-            inside = (plateau >= l_) & (plateau <= h_)
-            if any_int:
-                inside = np.where(rg.is_int, (peak <= h_) & (trough >= l_), inside)
-            add("fraction_in_window_at_steady_state", inside.mean(axis=1))
-            for t, c in zip(options.at, ats, strict=True):
-                add(f"fraction_in_window_at_{t:g}h", ((c >= l_) & (c <= h_)).mean(axis=1))
+        load = None if loading is None else np.where(np.isnan(loading[sl]), 0.0, loading[sl])
+        _block_metrics(metrics, cl[sl, None] * np.exp(dev_cl)[None, :],
+                       v[sl, None] * np.exp(dev_v)[None, :], reg.rows(sl), mean_rate[sl],
+                       load, None if lo is None else (lo[sl, None], hi[sl, None]), options,
+                       any_int)
     if rows == 0:  # keep the columns of an empty chunk (schema of the output)
-        empty = np.empty((0, n_sub))
-        for name in ("plateau_concentration", "time_to_90pct") + (
-                ("steady_state_peak", "steady_state_trough") if any_int else ()) + tuple(
-                f"concentration_at_{t:g}h" for t in options.at):
-            add(name, empty)
+        names = ["plateau_concentration", "time_to_90pct",
+                 *(("steady_state_peak", "steady_state_trough") if any_int else ()),
+                 *(f"concentration_at_{t:g}h" for t in options.at)]
+        for name in names:
+            metrics[name] = [np.empty((0, options.population))]
         if lo is not None:
             for name in ("fraction_in_window_at_steady_state",
                          *(f"fraction_in_window_at_{t:g}h" for t in options.at)):
-                add(name, np.empty(0))
+                metrics[name] = [np.empty(0)]
+    return _percentile_columns(metrics)
+
+
+def _virtual_deviations(options: BatchOptions):
+    """Log-normal deviations of ln CL and ln V of the virtual subjects (SD of the log
+    ``sqrt(ln(1 + CV^2))``, correlation ``r``), the same draws for every row."""
+    z = np.random.default_rng(options.seed).standard_normal((options.population, 2))
+    sd_cl = math.sqrt(math.log1p(options.cv_clearance ** 2))
+    sd_v = math.sqrt(math.log1p(options.cv_volume ** 2))
+    r = options.correlation
+    return sd_cl * z[:, 0], sd_v * (r * z[:, 0] + math.sqrt(1 - r * r) * z[:, 1])
+
+
+def _block_metrics(metrics, c_i, v_i, rg: _Regimen, mean_rate, loading, window,
+                   options: BatchOptions, any_int: bool) -> None:
+    """The metrics of a block of rows x virtual subjects, appended to ``metrics``."""
+    def add(name, arr):
+        metrics.setdefault(name, []).append(arr)
+
+    plateau = model.plateau_concentration(mean_rate[:, None], c_i)
+    add("plateau_concentration", plateau)
+    add("time_to_90pct", model.time_to_fraction(0.9, c_i, v_i))
+    if any_int:
+        peak, trough, _ = model.steady_state_intermittent(rg.amount, rg.duration,
+                                                          rg.interval, c_i, v_i)
+        add("steady_state_peak", peak)
+        add("steady_state_trough", trough)
+    ats = []
+    for t in options.at:
+        c = _concentration_at(t, c_i, v_i, rg)
+        if loading is not None:
+            c = c + model.bolus_concentration(t, loading[:, None], c_i, v_i)
+        add(f"concentration_at_{t:g}h", c)
+        ats.append(c)
+    if window is not None:
+        l_, h_ = window
+        inside = (plateau >= l_) & (plateau <= h_)
+        if any_int:
+            inside = np.where(rg.is_int, (peak <= h_) & (trough >= l_), inside)
+        add("fraction_in_window_at_steady_state", inside.mean(axis=1))
+        for t, c in zip(options.at, ats, strict=True):
+            add(f"fraction_in_window_at_{t:g}h", ((c >= l_) & (c <= h_)).mean(axis=1))
+
+
+def _percentile_columns(metrics: dict[str, list[np.ndarray]]) -> dict[str, np.ndarray]:
+    """5th, 50th and 95th percentiles over the virtual subjects, per row."""
     out = {}
     units = {"plateau_concentration": "mg/L", "time_to_90pct": "h", "steady_state_peak": "mg/L",
              "steady_state_trough": "mg/L"}
@@ -363,5 +376,3 @@ def _variability(cl, v, reg: _Regimen, mean_rate, loading, lo, hi,
         for label, row in zip(("p05", "p50", "p95"), q, strict=True):
             out[f"{name}_{label} [{unit}]"] = row
     return out
-
-
