@@ -120,28 +120,9 @@ def design_intermittent(
     DesignResult
     """
     notes: list[str] = []
-    if peak is not None and peak_limits is None:
-        peak_limits = Limits.around(peak, DEFAULT_TARGET_TOLERANCE)
-        notes.append(f"no peak limits stated: acceptance taken as the target ±"
-                     f"{DEFAULT_TARGET_TOLERANCE:.0%} ({peak_limits.text()})")
-    if trough is not None and trough_limits is None:
-        trough_limits = Limits.around(trough, DEFAULT_TARGET_TOLERANCE)
-        notes.append(f"no trough limits stated: acceptance taken as the target ±"
-                     f"{DEFAULT_TARGET_TOLERANCE:.0%} ({trough_limits.text()})")
-    peak_limits = peak_limits or Limits()
-    trough_limits = trough_limits or Limits()
-    aim_auc_value = auc_24.low if auc_24 is not None and auc_24.low == auc_24.high else None
-    auc_24 = auc_range(auc_24, notes)
-    aim_peak = peak if peak is not None else aim_of(peak_limits, high_side=True)
-    aim_trough = trough if trough is not None else aim_of(trough_limits, high_side=False)
-    aim_auc = aim_auc_value or (aim_of(auc_24, high_side=True) if auc_24 is not None else None)
+    peak_limits, trough_limits, auc_24, (aim_peak, aim_trough, aim_auc) = _limits_and_aims(
+        peak, trough, peak_limits, trough_limits, auc_24, notes)
     by_levels = aim_peak is not None and aim_trough is not None
-    if not by_levels and aim_auc is None:
-        raise ValueError("need a peak target or limit and a trough target or limit, or an "
-                         "AUC24 target")
-    if by_levels and aim_trough >= aim_peak:
-        raise ValueError(f"the trough aim {aim_trough:g} mg/L must be below the peak aim "
-                         f"{aim_peak:g} mg/L")
     tau_exact = dose_exact = None
     if by_levels:
         tau_exact, dose_exact = exact_intermittent(clearance, volume, infusion_time, aim_peak,
@@ -164,22 +145,8 @@ def design_intermittent(
     if not regimens[0].meets_target:
         notes.append("no practical interval meets every limit; the nearest options are shown "
                      "with the limit each one misses")
-    best = regimens[0]
-    acc = 1.0 / -math.expm1(-clearance / volume * best.interval)
-    if state is None:
-        loading = round_to_step(best.dose * acc, dose_step)
-        notes.append(f"a first dose of {short(loading)} mg (accumulation factor {short(acc)}) "
-                     f"would give the steady-state peak at once; without it steady state takes "
-                     f"about {short(5 * model.LN2 * volume / clearance)} h (five half-lives)")
-        if max_loading_ratio is not None and acc > max_loading_ratio:
-            warnings.append(f"that loading dose ({short(loading)} mg) is more than "
-                            f"{max_loading_ratio:g} times the maintenance dose")
-    else:
-        notes.insert(0, f"the proposals start at {short(state.start)} h ({state.basis}); the "
-                        f"recorded doses from then on are replaced; the level then is "
-                        f"{short(state.level)} mg/L (projected from the history with the "
-                        "individual estimates); the first dose is sized (or delayed) so that "
-                        "the course joins its steady state after one infusion")
+    _first_dose_notes(regimens[0], clearance, volume, dose_step, max_loading_ratio, state,
+                      notes, warnings)
     if by_levels:
         notes.append(f"unrounded design: {short(dose_exact)} mg every {short(tau_exact)} h gives "
                      f"peak {short(aim_peak)} and trough {short(aim_trough)} mg/L exactly")
@@ -197,6 +164,55 @@ def design_intermittent(
         target["auc_24"] = [auc_24.low, auc_24.high]
     return DesignResult(name, "intermittent", clearance, volume, regimens, target=target,
                         notes=notes, warnings=warnings, salt_factor=salt_factor, state=state)
+
+
+def _limits_and_aims(peak, trough, peak_limits, trough_limits, auc_24, notes: list[str]):
+    """Limits (targets without limits get ±20 %, stated) and the aims of the unrounded
+    design: the targets, or the middle or stated side of the limits, or the AUC."""
+    if peak is not None and peak_limits is None:
+        peak_limits = Limits.around(peak, DEFAULT_TARGET_TOLERANCE)
+        notes.append(f"no peak limits stated: acceptance taken as the target ±"
+                     f"{DEFAULT_TARGET_TOLERANCE:.0%} ({peak_limits.text()})")
+    if trough is not None and trough_limits is None:
+        trough_limits = Limits.around(trough, DEFAULT_TARGET_TOLERANCE)
+        notes.append(f"no trough limits stated: acceptance taken as the target ±"
+                     f"{DEFAULT_TARGET_TOLERANCE:.0%} ({trough_limits.text()})")
+    peak_limits = peak_limits or Limits()
+    trough_limits = trough_limits or Limits()
+    aim_auc_value = auc_24.low if auc_24 is not None and auc_24.low == auc_24.high else None
+    auc_24 = auc_range(auc_24, notes)
+    aim_peak = peak if peak is not None else aim_of(peak_limits, high_side=True)
+    aim_trough = trough if trough is not None else aim_of(trough_limits, high_side=False)
+    aim_auc = aim_auc_value or (aim_of(auc_24, high_side=True) if auc_24 is not None else None)
+    by_levels = aim_peak is not None and aim_trough is not None
+    if not by_levels and aim_auc is None:
+        raise ValueError("need a peak target or limit and a trough target or limit, or an "
+                         "AUC24 target")
+    if by_levels and aim_trough >= aim_peak:
+        raise ValueError(f"the trough aim {aim_trough:g} mg/L must be below the peak aim "
+                         f"{aim_peak:g} mg/L")
+    return peak_limits, trough_limits, auc_24, (aim_peak, aim_trough, aim_auc)
+
+
+def _first_dose_notes(best: Regimen, clearance, volume, dose_step, max_loading_ratio, state,
+                      notes: list[str], warnings: list[str]) -> None:
+    """From zero: the loading first dose that gives the steady-state peak at once; from
+    the current state: where the proposals start and from which level."""
+    acc = 1.0 / -math.expm1(-clearance / volume * best.interval)
+    if state is None:
+        loading = round_to_step(best.dose * acc, dose_step)
+        notes.append(f"a first dose of {short(loading)} mg (accumulation factor {short(acc)}) "
+                     f"would give the steady-state peak at once; without it steady state takes "
+                     f"about {short(5 * model.LN2 * volume / clearance)} h (five half-lives)")
+        if max_loading_ratio is not None and acc > max_loading_ratio:
+            warnings.append(f"that loading dose ({short(loading)} mg) is more than "
+                            f"{max_loading_ratio:g} times the maintenance dose")
+    else:
+        notes.insert(0, f"the proposals start at {short(state.start)} h ({state.basis}); the "
+                        f"recorded doses from then on are replaced; the level then is "
+                        f"{short(state.level)} mg/L (projected from the history with the "
+                        "individual estimates); the first dose is sized (or delayed) so that "
+                        "the course joins its steady state after one infusion")
 
 
 def _intermittent_candidate(clearance, volume, infusion_time, tau, limits, aims, dose_step,
