@@ -83,9 +83,37 @@ def design_json(results, conv: UnitConverter, *, title: str | None = None,
     })
 
 
+#: Columns of the regimen table: (header, unit kind, key); ``p:`` keys are predictions.
+_COLUMNS = (
+    ("#", None, None), ("regimen", None, None), ("from", "time", "start"),
+    ("rate", "rate", "rate"), ("loading", "amount", "loading_dose"),
+    ("loading time", "time", "loading_time"), ("dose", "amount", "dose"),
+    ("every", "time", "interval"), ("infusion", "time", "infusion_time"),
+    ("peak", "concentration", "p:peak"), ("trough", "concentration", "p:trough"),
+    ("average", "concentration", "p:average"), ("AUC24", "auc", "p:auc_24"),
+    ("plateau", "concentration", "p:plateau"), ("highest", "concentration", "p:highest"),
+    ("lowest after loading", "concentration", "p:lowest_after_loading"),
+    ("level", "concentration", "p:level"), ("level at 72 h", "concentration", "p:level_at_72h"),
+    ("check", None, None),
+)
+
+
 def design_result_text(res, conv: UnitConverter) -> str:
-    u = conv.unit
     lines = [f"Design: {res.name}  (method: {res.method.replace('_', ' ')})"]
+    lines += _parameters_and_estimates(res, conv)
+    target = _target_line(res, conv)
+    if target:
+        lines.append(target)
+    lines += _regimen_table(res, conv)
+    for i, r in enumerate(res.regimens, 1):
+        lines += [f"  #{i} FLAG: {f}" for f in r.flags]
+    lines += [f"note: {n}" for n in res.notes]
+    return "\n".join(lines)
+
+
+def _parameters_and_estimates(res, conv: UnitConverter) -> list[str]:
+    u = conv.unit
+    lines = []
     if res.clearance is not None or res.volume is not None:
         lines.append(f"parameters used: clearance {fmt(conv(res.clearance, 'clearance'))} "
                      f"{u('clearance')}, volume {fmt(conv(res.volume, 'volume'))} {u('volume')}")
@@ -97,64 +125,44 @@ def design_result_text(res, conv: UnitConverter) -> str:
                          u(kind) if kind else ("%" if k.endswith("percent") else "")])
         lines += ["Individual estimates from the measured levels:",
                   format_table(["estimate", "value", "unit"], rows)]
-    tgt = _target_dict(res.target, conv)
-    tparts = []
-    for k, v in tgt.items():
+    return lines
+
+
+def _target_line(res, conv: UnitConverter) -> str | None:
+    parts = []
+    for k, v in _target_dict(res.target, conv).items():
         if v is None or v == [None, None]:
             continue
         text = " to ".join(fmt(x) for x in v) if isinstance(v, list) else fmt(v)
-        unit = u({"infusion_time": "time", "auc_24": "auc"}.get(k, "concentration"))
-        tparts.append(f"{k.replace('_', ' ')} {text} {unit}")
-    if tparts:
-        lines.append("Target: " + "; ".join(str(p) for p in tparts))
-    from_state = any(r.start or "start_level" in r.predicted for r in res.regimens)
-    columns = [
-        ("#", None, None), ("regimen", None, None),
-        (f"from [{u('time')}]", "start", "time"),
-        (f"rate [{u('rate')}]", "rate", "rate"),
-        (f"loading [{u('amount')}]", "loading_dose", "amount"),
-        (f"loading time [{u('time')}]", "loading_time", "time"),
-        (f"dose [{u('amount')}]", "dose", "amount"),
-        (f"every [{u('time')}]", "interval", "time"),
-        (f"infusion [{u('time')}]", "infusion_time", "time"),
-        (f"peak [{u('concentration')}]", "p:peak", "concentration"),
-        (f"trough [{u('concentration')}]", "p:trough", "concentration"),
-        (f"average [{u('concentration')}]", "p:average", "concentration"),
-        (f"AUC24 [{u('auc')}]", "p:auc_24", "auc"),
-        (f"plateau [{u('concentration')}]", "p:plateau", "concentration"),
-        (f"highest [{u('concentration')}]", "p:highest", "concentration"),
-        (f"lowest after loading [{u('concentration')}]", "p:lowest_after_loading",
-         "concentration"),
-        (f"level [{u('concentration')}]", "p:level", "concentration"),
-        (f"level at 72 h [{u('concentration')}]", "p:level_at_72h", "concentration"),
-        ("check", None, None),
-    ]
+        unit = conv.unit({"infusion_time": "time", "auc_24": "auc"}.get(k, "concentration"))
+        parts.append(f"{k.replace('_', ' ')} {text} {unit}")
+    return "Target: " + "; ".join(parts) if parts else None
 
-    def cell(r, i, key, kind, header):
-        if header == "#":
+
+def _regimen_table(res, conv: UnitConverter) -> list[str]:
+    """The proposals as a table; empty columns left out (``from`` only from a state)."""
+    from_state = any(r.start or "start_level" in r.predicted for r in res.regimens)
+
+    def cell(r, i, name, kind, key):
+        if name == "#":
             return i
-        if header == "regimen":
+        if name == "regimen":
             return r.label
-        if header == "check":
+        if name == "check":
             return "meets target" if r.meets_target else "FLAG"
         value = r.predicted.get(key[2:]) if key.startswith("p:") else getattr(r, key)
         return conv(value, kind)
 
-    table = [[cell(r, i, key, kind, h) for h, key, kind in columns]
-             for i, r in enumerate(res.regimens, 1)]
-    keep = [j for j, (h, key, _) in enumerate(columns)
+    table = [[cell(r, i, *c) for c in _COLUMNS] for i, r in enumerate(res.regimens, 1)]
+    keep = [j for j, (_, _, key) in enumerate(_COLUMNS)
             if (key is None or any(row[j] is not None for row in table))
             and (key != "start" or from_state)]
-    headers = [columns[j][0] for j in keep]
-    rows = [[row[j] for j in keep] for row in table]
+    headers = [name if kind is None else f"{name} [{conv.unit(kind)}]"
+               for name, kind, _ in (_COLUMNS[j] for j in keep)]
     heading = ("Proposed regimens (rounded; peak/trough/average/plateau at steady state; highest, "
                "lowest and level at 72 h on the course projected from the start):"
                if from_state else "Proposed regimens (predicted at steady state, rounded):")
-    lines += [heading, format_table(headers, rows)]
-    for i, r in enumerate(res.regimens, 1):
-        lines += [f"  #{i} FLAG: {f}" for f in r.flags]
-    lines += [f"note: {n}" for n in res.notes]
-    return "\n".join(lines)
+    return [heading, format_table(headers, [[row[j] for j in keep] for row in table])]
 
 
 def design_text(results, conv: UnitConverter, *, title: str | None = None, failures=(),
