@@ -108,6 +108,8 @@ class StudyNca:
         frame = pd.DataFrame(self.document(conv)["subjects"])
         frame["points_used"] = frame["points_used"].map(lambda xs: " ".join(f"{x:g}" for x in xs))
         frame["notes"] = frame["notes"].map(" | ".join)
+        if any(r.clock_origin for r in self.results):
+            frame.insert(1, "first_dose_clock", [r.clock_origin for r in self.results])
         return frame
 
     def _repr_html_(self) -> str:
@@ -223,7 +225,10 @@ class StudyFit:
                                           "starts", "starts_agreed")})
             row["warnings"] = " | ".join(d["warnings"])
             rows.append(row)
-        return pd.DataFrame(rows)
+        frame = pd.DataFrame(rows)
+        if any(r.clock_origin for r in self.results):
+            frame.insert(1, "first_dose_clock", [r.clock_origin for r in self.results])
+        return frame
 
     def levels_frame(self):
         """Every level with its prediction and residuals (``fit-levels.csv``)."""

@@ -200,6 +200,9 @@ class SubjectData:
         From the subjects table; ``weight`` in kg.
     notes : tuple of str
         Data-handling notes (sorting, BLQ numbers below LLOQ).
+    clock_origin : str or None
+        ISO 8601 date-time of the first dose when the data came with clock times
+        (times are hours since it).
     initial_concentration : float, mg/L
         Drug on board at time 0 from earlier therapy (decays with the subject's k);
         from an ``initial_concentration [..]`` column of the subjects table.
@@ -217,6 +220,7 @@ class SubjectData:
     covariates: dict[str, float] = field(default_factory=dict)
     notes: tuple[str, ...] = ()
     initial_concentration: float = 0.0
+    clock_origin: str | None = None
 
     def __post_init__(self) -> None:
         n = np.shape(self.time)[0] if np.ndim(self.time) else -1

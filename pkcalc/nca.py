@@ -226,6 +226,7 @@ class NcaResult:
               "adjusted_r2", "clearance", "mean_residence_time", "volume_terminal",
               "volume_steady_state", "auc_interval", "average_concentration",
               "fluctuation_percent", "accumulation_ratio")
+    clock_origin: str | None = None
 
     def to_dict(self) -> dict[str, object]:
         """Plain values (canonical units)."""
@@ -524,11 +525,12 @@ def nca_of_subject(subject: SubjectData, options: NcaOptions | None = None) -> N
     0.2
     """
     o = options or NcaOptions()
-    return nca_subject(subject.subject, subject.time, subject.conc, subject.blq,
+    result = nca_subject(subject.subject, subject.time, subject.conc, subject.blq,
                        subject.dose_start, subject.dose_amount, subject.dose_duration,
                        auc_method=o.auc_method, blq_rule=o.blq_rule,
                        terminal_times=o.terminal_points.get(subject.subject),
                        r2_tolerance=o.r2_tolerance, extrapolation_limit=o.extrapolation_limit)
+    return _with(result, clock_origin=subject.clock_origin) if subject.clock_origin else result
 
 
 def _with(base: NcaResult, **changes) -> NcaResult:

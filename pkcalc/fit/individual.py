@@ -249,7 +249,8 @@ def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.nd
         observed=observed, predicted=pred, blq=s.blq.copy(), residuals=resid,
         weighted_residuals=wres, dose_start=s.dose_start, dose_amount=s.dose_amount,
         dose_duration=s.dose_duration, warnings=warnings, notes=notes, prior=prior_out,
-        weight=s.weight, initial_concentration=s.initial_concentration)
+        weight=s.weight, initial_concentration=s.initial_concentration,
+        clock_origin=s.clock_origin)
 
 
 def _profile_intervals(ests, row: Batch, theta, obj, var, opts: FitOptions, n_used: int,

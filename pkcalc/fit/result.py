@@ -95,6 +95,7 @@ class FitResult:
     prior: dict[str, float] = field(default_factory=dict)
     weight: float | None = None
     initial_concentration: float = 0.0
+    clock_origin: str | None = None
 
     @property
     def clearance(self) -> float:
@@ -130,11 +131,16 @@ class FitResult:
         """Per-level diagnostics: time, observed, predicted, residuals, BLQ flag."""
         import pandas as pd
 
-        return pd.DataFrame({"subject": self.subject, "time [h]": self.time,
-                             "observed [mg/L]": self.observed,
-                             "predicted [mg/L]": self.predicted, "blq": self.blq,
-                             "residual [mg/L]": self.residuals,
-                             "weighted_residual": self.weighted_residuals})
+        frame = pd.DataFrame({"subject": self.subject, "time [h]": self.time,
+                              "observed [mg/L]": self.observed,
+                              "predicted [mg/L]": self.predicted, "blq": self.blq,
+                              "residual [mg/L]": self.residuals,
+                              "weighted_residual": self.weighted_residuals})
+        if self.clock_origin:  # the original clock time beside the hours since the first dose
+            origin = pd.Timestamp(self.clock_origin)
+            frame.insert(2, "clock_time", [(origin + pd.Timedelta(hours=float(h))).isoformat()
+                                           for h in self.time])
+        return frame
 
     def summary(self) -> str:
         """Plain-text summary (canonical units)."""

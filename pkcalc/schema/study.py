@@ -178,9 +178,15 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
         files.append(str(subjects))
     lvl = _read_levels(lv, problems)
     dos = _read_doses(ds, problems)
+    if ("clock" in lvl) != ("clock" in dos):
+        problems.append(Problem("the levels and doses tables must both use clock times "
+                                "(header '[clock]') or both relative times", file=lv_file,
+                                field="time", expected="time [clock] with start [clock], or "
+                                "time [h] with start [h]"))
     if problems:
         raise PkcalcInputError(problems)
     fails = _Failures()
+    origins = _clock_to_hours(lvl, dos, fails, lv_file) if "clock" in lvl else {}
     amount, duration = _dose_amounts(dos, covariates, fails, ds_file)
     blq = _level_checks(lvl, fails, lv_file)
     level_frame = pd.DataFrame({"subject": lvl["subject"], "time": lvl["time"],
@@ -190,8 +196,43 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
     dose_frame = pd.DataFrame({"subject": dos["subject"], "start": dos["start"],
                                "amount": amount, "duration": duration})
     _cross_checks(level_frame, dose_frame, covariates, fails, warnings, lv_file, ds_file)
-    good = _subjects(level_frame, dose_frame, covariates, fails, lv_file)
+    good = _subjects(level_frame, dose_frame, covariates, fails, lv_file, origins)
     return Study(good, fails.as_list(), warnings, files)
+
+
+def _clock_to_hours(lvl, dos, fails: _Failures, lv_file: str) -> dict[str, str]:
+    """Clock times -> hours since each subject's first dose (in place); the origins.
+
+    A subject whose date-times mix offsets and none is left out.
+    """
+    from ..clock import hours_since, same_kind
+
+    origins: dict[str, Any] = {}
+    for sid, clock in zip(dos["subject"], dos["clock"], strict=True):
+        if clock is not None and (sid not in origins or _before(clock, origins[sid])):
+            origins[sid] = clock
+    for table in (dos, lvl):
+        column = "start" if table is dos else "time"
+        values = table[column].to_numpy(float).copy()
+        for i, (sid, clock) in enumerate(zip(table["subject"], table["clock"], strict=True)):
+            if clock is None or sid not in origins:
+                continue
+            try:
+                same_kind([clock, origins[sid]])
+            except PkcalcInputError:
+                fails(sid, "some date-times have a time-zone offset and some do not (line "
+                      f"{i + 2})", lv_file, column)
+                continue
+            values[i] = hours_since(clock, origins[sid])
+        table[column] = pd.Series(values, index=table[column].index)
+    return {sid: o.isoformat() for sid, o in origins.items()}
+
+
+def _before(a, b) -> bool:
+    try:
+        return a < b
+    except TypeError:  # offset and no offset: the subject is refused later
+        return False
 
 
 class _Failures:
@@ -249,10 +290,46 @@ def _read_subjects(path: str | Path, warnings: list[str]) -> dict[str, dict[str,
             for i, sid in enumerate(ids)}
 
 
+CLOCK_UNITS = ("clock", "iso 8601", "iso8601")
+
+
+def _is_clock(cols: _Columns, name: str) -> bool:
+    """A time column whose header says it holds clock times: ``time [clock]``."""
+    unit = cols.map[name][1] if cols.has(name) else None
+    return unit is not None and unit.strip().lower() in CLOCK_UNITS
+
+
+def _clock_column(cols: _Columns, name: str, problems: list[Problem]) -> list:
+    """Date-times of a clock column (None where a cell is empty or unusable)."""
+    from ..clock import parse_clock
+
+    out: list = []
+    bad = []
+    for i, text in enumerate(cols.text(name)):
+        if text == "":
+            out.append(None)
+            continue
+        try:
+            out.append(parse_clock(text, field=name))
+        except PkcalcInputError as exc:
+            out.append(None)
+            bad.append((i + 2, exc.problems[0]))
+    for line, problem in bad[:3]:
+        problems.append(Problem(f"{problem.message} (line {line})", file=cols.file,
+                                field=cols.map[name][0], expected=problem.expected))
+    return out
+
+
 def _read_levels(lv: _Columns, problems: list[Problem]) -> dict[str, pd.Series]:
-    """The levels table's columns in canonical units."""
-    out = {"subject": lv.text("subject")}
-    out["time"], _ = lv.numeric("time", "time", problems)
+    """The levels table's columns in canonical units (clock times kept as date-times
+    until the subject's first dose is known)."""
+    out: dict[str, Any] = {"subject": lv.text("subject")}
+    if _is_clock(lv, "time"):
+        out["clock"] = _clock_column(lv, "time", problems)
+        out["time"] = pd.Series(np.where([c is None for c in out["clock"]], np.nan, 0.0),
+                                index=lv.frame.index)
+    else:
+        out["time"], _ = lv.numeric("time", "time", problems)
     out["conc"], _ = lv.numeric("concentration", "concentration", problems)
     index = out["time"].index
     out["lloq"] = (lv.numeric("lloq", "concentration", problems)[0] if lv.has("lloq")
@@ -272,7 +349,12 @@ def _read_levels(lv: _Columns, problems: list[Problem]) -> dict[str, pd.Series]:
 def _read_doses(ds: _Columns, problems: list[Problem]) -> dict[str, Any]:
     """The doses table's columns in canonical units (per-kg columns still per kg)."""
     out: dict[str, Any] = {"subject": ds.text("subject"), "given": {}, "specs": {}}
-    out["start"], _ = ds.numeric("start", "time", problems)
+    if _is_clock(ds, "start"):
+        out["clock"] = _clock_column(ds, "start", problems)
+        out["start"] = pd.Series(np.where([c is None for c in out["clock"]], np.nan, 0.0),
+                                 index=ds.frame.index)
+    else:
+        out["start"], _ = ds.numeric("start", "time", problems)
     for name, kind in (("amount", "amount"), ("rate", "rate"), ("duration", "time")):
         if ds.has(name):
             out["given"][name], out["specs"][name] = ds.numeric(name, kind, problems)
@@ -355,7 +437,7 @@ def _cross_checks(level_frame, dose_frame, covariates, fails: _Failures, warning
 
 
 def _subjects(level_frame, dose_frame, covariates, fails: _Failures,
-              lv_file: str) -> list[SubjectData]:
+              lv_file: str, origins: dict[str, str] | None = None) -> list[SubjectData]:
     """One SubjectData per subject without problems."""
     good: list[SubjectData] = []
     doses_by = {sid: g for sid, g in dose_frame.groupby("subject", sort=False)}
@@ -380,7 +462,8 @@ def _subjects(level_frame, dose_frame, covariates, fails: _Failures,
             rows=g["row"].to_numpy(int), dose_start=d["start"].to_numpy(float),
             dose_amount=d["amount"].to_numpy(float), dose_duration=d["duration"].to_numpy(float),
             covariates={k: x for k, x in cov.items() if k != "initial_concentration"},
-            notes=tuple(notes), initial_concentration=cov.get("initial_concentration", 0.0)))
+            notes=tuple(notes), initial_concentration=cov.get("initial_concentration", 0.0),
+            clock_origin=(origins or {}).get(sid)))
     return good
 
 
