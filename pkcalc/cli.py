@@ -160,7 +160,8 @@ def cmd_fit(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_fit
     from .schema import study_fit_options
 
-    study = load_study_input(args.study, args.levels, args.doses, args.subjects)
+    study = load_study_input(args.study, args.levels, args.doses, args.subjects,
+                             args.sdtm, args.analyte)
     options = study_fit_options(study, {
         "weighting": args.weighting, "error_model": args.error_model, "blq": args.blq,
         "ci": args.ci, "prior": args.prior, "starts": args.starts,
@@ -172,7 +173,8 @@ def cmd_population(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_population
     from .schema import study_population_options
 
-    study = load_study_input(args.study, args.levels, args.doses, args.subjects)
+    study = load_study_input(args.study, args.levels, args.doses, args.subjects,
+                             args.sdtm, args.analyte)
     options = study_population_options(study, {
         "method": args.method, "error_model": args.error_model, "blq": args.blq,
         "covariate": args.covariate, "reference_weight": args.reference_weight,
@@ -252,7 +254,8 @@ def cmd_nca(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_nca
     from .schema import study_nca_options
 
-    study = load_study_input(args.study, args.levels, args.doses, args.subjects)
+    study = load_study_input(args.study, args.levels, args.doses, args.subjects,
+                             args.sdtm, args.analyte)
     options = study_nca_options(study, _nca_overrides(args))
     return _finish(run_nca(study, options, colour=_colour()), args)
 
@@ -322,7 +325,8 @@ COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "verify": cmd_verify, "demo": cmd_demo,
 }
 
-_INPUT_ARGS = ("scenario", "study", "levels", "doses", "subjects", "cases", "input", "prior")
+_INPUT_ARGS = ("scenario", "study", "levels", "doses", "subjects", "cases", "input", "prior",
+               "sdtm")
 
 
 def _outputs(args: argparse.Namespace):

@@ -92,6 +92,9 @@ def _study_args(p: argparse.ArgumentParser) -> None:
     p.add_argument("--levels", metavar="L.csv", help="levels table")
     p.add_argument("--doses", metavar="D.csv", help="doses table")
     p.add_argument("--subjects", metavar="S.csv", help="subjects table (weights, covariates)")
+    p.add_argument("--sdtm", metavar="DIR", help="CDISC SDTM datasets pc, ex (vs, dm) as .xpt "
+                                                 "or .csv in DIR")
+    p.add_argument("--analyte", metavar="PCTESTCD", help="the analyte when PC holds several")
 
 
 # --------------------------------------------------------------------------- parser

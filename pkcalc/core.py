@@ -268,6 +268,9 @@ class Study:
     options: dict[str, Any] = field(default_factory=dict)
     title: str | None = None
     output: dict[str, str] = field(default_factory=dict)
+    import_report: dict[str, Any] = field(default_factory=dict)
+    import_lines: list[str] = field(default_factory=list)
+    tables: dict[str, Any] = field(default_factory=dict)
 
     def subject(self, name: str) -> SubjectData:
         for s in self.subjects:

@@ -286,17 +286,24 @@ def run_verify(cases_path: str | Path, *, colour: bool = False) -> tuple[Run, An
 
 # --------------------------------------------------------------------------- studies
 def load_study_input(study: str | None = None, levels: str | None = None,
-                     doses: str | None = None, subjects: str | None = None):
-    """A study from a study TOML, or from the three tables named directly."""
+                     doses: str | None = None, subjects: str | None = None,
+                     sdtm: str | None = None, analyte: str | None = None):
+    """A study from a study TOML, from SDTM datasets, or from the three tables."""
     from .schema import load_study, load_study_file
 
-    if study and (levels or doses or subjects):
-        raise PkcalcInputError("give a study file or --levels/--doses, not both")
+    if sum(bool(x) for x in (study, levels or doses or subjects, sdtm)) > 1:
+        raise PkcalcInputError("give one of: a study file, --levels/--doses, or --sdtm")
+    if analyte and not sdtm:
+        raise PkcalcInputError("--analyte goes with --sdtm", field="--analyte")
+    if sdtm:
+        from .schema.sdtm import load_sdtm
+
+        return load_sdtm(sdtm, analyte)
     if study:
         return load_study_file(study)
     if not (levels and doses):
-        raise PkcalcInputError("no study given", expected="STUDY.toml, or --levels L.csv "
-                               "--doses D.csv [--subjects S.csv]")
+        raise PkcalcInputError("no study given", expected="STUDY.toml, --sdtm DIR, or "
+                               "--levels L.csv --doses D.csv [--subjects S.csv]")
     return load_study(levels, doses, subjects)
 
 
@@ -310,8 +317,7 @@ def run_nca(study, options=None, *, colour: bool = False) -> Run:
         raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
                                or "no subjects to analyse")
     conv = report.UnitConverter(study.output or None)
-    doc = result.document(conv)
-    text = result.summary(conv, colour=colour)
+    doc, text = _with_import(study, result.document(conv), result.summary(conv, colour=colour))
 
     def figures() -> dict[str, Any]:
         from .plots import nca_figure
@@ -327,7 +333,7 @@ def run_nca(study, options=None, *, colour: bool = False) -> Run:
         written.append(report.write_atomic(out / "nca.csv",
                                            result.to_frame(conv).to_csv(index=False)))
         written.append(report.write_atomic(out / "nca.json", report.dumps(doc)))
-        return written
+        return written + _export_tables(study, out)
 
     return Run("nca", EXIT_PARTIAL if study.failures else EXIT_OK, doc, text,
                list(study.files), study.title or "pkcalc nca", figures, files,
@@ -342,8 +348,7 @@ def run_fit(study, options=None, *, colour: bool = False) -> Run:
 
     result = fit_study(study, options)
     conv = report.UnitConverter(study.output or None)
-    doc = result.document(conv)
-    text = result.summary(conv, colour=colour)
+    doc, text = _with_import(study, result.document(conv), result.summary(conv, colour=colour))
 
     def figures() -> dict[str, Any]:
         from .plots import diagnostics_figure, fit_figure
@@ -365,11 +370,31 @@ def run_fit(study, options=None, *, colour: bool = False) -> Run:
         written.append(report.write_atomic(out / "fit-levels.csv",
                                            result.levels_frame().to_csv(index=False)))
         written.append(report.write_atomic(out / "fit.json", report.dumps(doc)))
-        return written
+        return written + _export_tables(study, out)
 
     return Run("fit", EXIT_PARTIAL if result.failures else EXIT_OK, doc, text,
                list(study.files), study.title or "pkcalc fit", figures, files,
                lambda pngs: fit_sections(doc, pngs), warnings=list(study.warnings))
+
+
+def _with_import(study, doc: dict[str, Any], text: str) -> tuple[dict[str, Any], str]:
+    """A study read from SDTM carries its import report into the JSON and the text."""
+    if not study.import_report:
+        return doc, text
+    doc["import"] = study.import_report
+    doc["import_lines"] = study.import_lines
+    return doc, text + "\n\n" + "\n".join(study.import_lines)
+
+
+def _export_tables(study, out: Path) -> list[Path]:
+    """The analysis-ready tables of a study read from SDTM (relative and clock times), so
+    the same analysis can be rerun without SDTM."""
+    if not study.tables:
+        return []
+    from .schema.sdtm import export_tables
+
+    return [report.write_atomic(out / f"analysis-{name}.csv", frame.to_csv(index=False))
+            for name, frame in export_tables(study).items()]
 
 
 def run_population(study, options=None, *, colour: bool = False) -> Run:
@@ -396,6 +421,7 @@ def run_population(study, options=None, *, colour: bool = False) -> Run:
     doc["warnings"] = list(study.warnings) + list(result.warnings)
     text = population_text(result, conv, title=study.title, failures=failures,
                            settings=settings, colour=colour)
+    doc, text = _with_import(study, doc, text)
     fitted = {r.subject for r in result.subjects}
     used = [s for s in subjects if s.subject in fitted]
 
@@ -425,7 +451,7 @@ def run_population(study, options=None, *, colour: bool = False) -> Run:
         written.append(report.write_atomic(out / "population-iterations.csv",
                                            iters.to_csv(index=False)))
         written.append(report.write_atomic(out / "population.json", report.dumps(doc)))
-        return written
+        return written + _export_tables(study, out)
 
     return Run("population", EXIT_PARTIAL if failures else EXIT_OK, doc, text,
                list(study.files), study.title or "pkcalc population", figures, files,

@@ -93,6 +93,14 @@ def lines_item(kind: str, lines: list[str]) -> dict[str, Any]:
     return {"kind": kind, "lines": list(lines)}
 
 
+def _import_section(doc: dict[str, Any]) -> list[dict[str, Any]]:
+    """The import report of a study read from SDTM (what was read, used and skipped)."""
+    lines = doc.get("import_lines")
+    if not lines:
+        return []
+    return [{"heading": "Study data imported from SDTM", "blocks": [lines_item("text", lines)]}]
+
+
 def input_items(paths: list[str | Path]) -> tuple[list[dict[str, Any]], list[dict[str, str]]]:
     """The input files as text blocks, and their names with SHA-256."""
     items, files = [], []
@@ -253,7 +261,7 @@ def nca_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
         if s["subject"] in figures:
             items.append(figure_item(figures[s["subject"]],
                                      f"subject {s['subject']}: log concentration vs time"))
-    return [{"heading": "Non-compartmental analysis", "blocks": items}]
+    return [{"heading": "Non-compartmental analysis", "blocks": items}, *_import_section(doc)]
 
 
 def fit_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
@@ -300,7 +308,8 @@ def fit_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
         if d["subject"] in figures:
             items.append(figure_item(figures[d["subject"]],
                                      f"subject {d['subject']}: levels and fitted course"))
-    return [{"heading": "Individual fits (one-compartment)", "blocks": items}]
+    return [{"heading": "Individual fits (one-compartment)", "blocks": items},
+            *_import_section(doc)]
 
 
 def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
@@ -342,7 +351,7 @@ def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[
                          ("__vpc__", "Visual predictive check")):
         if key in figures:
             items.append(figure_item(figures[key], caption))
-    return [{"heading": "Population estimates", "blocks": items}]
+    return [{"heading": "Population estimates", "blocks": items}, *_import_section(doc)]
 
 
 def batch_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:

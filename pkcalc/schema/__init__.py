@@ -74,7 +74,9 @@ def __getattr__(name: str):
     """Study tables need pandas; load them on first use so that ``pkcalc predict``
     starts quickly."""
     if name in _LAZY:
-        from . import options, study
+        from . import options, study, studyfile
 
-        return getattr(options if name.startswith("study_") else study, name)
+        module = options if name.startswith("study_") else (
+            studyfile if name == "load_study_file" else study)
+        return getattr(module, name)
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -20,13 +20,11 @@ import pandas as pd
 from ..core import NCA_AUC_METHODS, NCA_BLQ_RULES, NcaOptions, Study, SubjectData
 from ..errors import PkcalcInputError, Problem
 from ..units import KINDS, NUMERIC_RANGE, parse_header, parse_unit
-from .base import read_toml
 
 __all__ = [
     "Study",
     "SubjectData",
     "load_study",
-    "load_study_file",
     "nca_options",
     "read_table",
 ]
@@ -47,7 +45,7 @@ def read_table(path: str | Path) -> pd.DataFrame:
     return frame
 
 
-class _Columns:
+class Columns:
     """Header parsing for one table: name -> (column, unit)."""
 
     def __init__(self, frame: pd.DataFrame, file: str) -> None:
@@ -112,20 +110,20 @@ class _Columns:
         return canonical, spec
 
 
-def _require(cols: _Columns, names: list[str], problems: list[Problem]) -> None:
+def _require(cols: Columns, names: list[str], problems: list[Problem]) -> None:
     for n in names:
         if not cols.has(n):
             problems.append(Problem(f"missing column '{n}'", file=cols.file, field=n,
                                     expected=", ".join(names)))
 
 
-def _warn_unknown(cols: _Columns, known: set[str], warnings: list[str]) -> None:
+def _warn_unknown(cols: Columns, known: set[str], warnings: list[str]) -> None:
     unknown = [c for k, (c, _) in cols.map.items() if k not in known]
     if unknown:
         warnings.append(f"{cols.file}: columns ignored: {', '.join(map(str, unknown))}")
 
 
-def _bool_column(cols: _Columns, name: str, problems: list[Problem]) -> pd.Series:
+def _bool_column(cols: Columns, name: str, problems: list[Problem]) -> pd.Series:
     raw = cols.text(name).str.lower()
     bad = ~raw.isin(_TRUE | _FALSE)
     if bad.any():
@@ -160,11 +158,19 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
         For unusable files (missing, empty, not CSV, missing columns or units,
         text in numeric columns).
     """
+    lv = Columns(read_table(levels), str(levels))
+    ds = Columns(read_table(doses), str(doses))
+    sb = None if subjects is None else Columns(read_table(subjects), str(subjects))
+    return study_from_tables(lv, ds, sb)
+
+
+def study_from_tables(lv: Columns, ds: Columns, sb: Columns | None,
+                      failures: Failures | None = None) -> Study:
+    """A study from tables already read (CSV files, or tables built from SDTM); subjects
+    with problems found earlier can be passed in ``failures``."""
     problems: list[Problem] = []
     warnings: list[str] = []
-    lv_file, ds_file = str(levels), str(doses)
-    lv = _Columns(read_table(levels), lv_file)
-    ds = _Columns(read_table(doses), ds_file)
+    lv_file, ds_file = lv.file, ds.file
     _require(lv, ["subject", "time", "concentration"], problems)
     _require(ds, ["subject", "start"], problems)
     if problems:
@@ -173,9 +179,9 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
     _warn_unknown(ds, {"subject", "start", "amount", "rate", "duration"}, warnings)
     files = [lv_file, ds_file]
     covariates: dict[str, dict[str, float]] = {}
-    if subjects is not None:
-        covariates = _read_subjects(subjects, warnings)
-        files.append(str(subjects))
+    if sb is not None:
+        covariates = _read_subjects(sb, warnings)
+        files.append(sb.file)
     lvl = _read_levels(lv, problems)
     dos = _read_doses(ds, problems)
     if ("clock" in lvl) != ("clock" in dos):
@@ -185,7 +191,7 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
                                 "time [h] with start [h]"))
     if problems:
         raise PkcalcInputError(problems)
-    fails = _Failures()
+    fails = failures if failures is not None else Failures()
     origins = _clock_to_hours(lvl, dos, fails, lv_file) if "clock" in lvl else {}
     amount, duration = _dose_amounts(dos, covariates, fails, ds_file)
     blq = _level_checks(lvl, fails, lv_file)
@@ -200,7 +206,7 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
     return Study(good, fails.as_list(), warnings, files)
 
 
-def _clock_to_hours(lvl, dos, fails: _Failures, lv_file: str) -> dict[str, str]:
+def _clock_to_hours(lvl, dos, fails: Failures, lv_file: str) -> dict[str, str]:
     """Clock times -> hours since each subject's first dose (in place); the origins.
 
     A subject whose date-times mix offsets and none is left out.
@@ -235,7 +241,7 @@ def _before(a, b) -> bool:
         return False
 
 
-class _Failures:
+class Failures:
     """Problems per subject (a subject with any is left out of the study)."""
 
     def __init__(self) -> None:
@@ -252,10 +258,9 @@ class _Failures:
         return [(f"subject '{sid}'", PkcalcInputError(p)) for sid, p in self.by_subject.items()]
 
 
-def _read_subjects(path: str | Path, warnings: list[str]) -> dict[str, dict[str, float]]:
+def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, float]]:
     """The subjects table: weight, initial_concentration and numeric covariates by subject."""
     problems: list[Problem] = []
-    sb = _Columns(read_table(path), str(path))
     _require(sb, ["subject"], problems)
     if problems:
         raise PkcalcInputError(problems)
@@ -293,13 +298,13 @@ def _read_subjects(path: str | Path, warnings: list[str]) -> dict[str, dict[str,
 CLOCK_UNITS = ("clock", "iso 8601", "iso8601")
 
 
-def _is_clock(cols: _Columns, name: str) -> bool:
+def _is_clock(cols: Columns, name: str) -> bool:
     """A time column whose header says it holds clock times: ``time [clock]``."""
     unit = cols.map[name][1] if cols.has(name) else None
     return unit is not None and unit.strip().lower() in CLOCK_UNITS
 
 
-def _clock_column(cols: _Columns, name: str, problems: list[Problem]) -> list:
+def _clock_column(cols: Columns, name: str, problems: list[Problem]) -> list:
     """Date-times of a clock column (None where a cell is empty or unusable)."""
     from ..clock import parse_clock
 
@@ -320,7 +325,7 @@ def _clock_column(cols: _Columns, name: str, problems: list[Problem]) -> list:
     return out
 
 
-def _read_levels(lv: _Columns, problems: list[Problem]) -> dict[str, pd.Series]:
+def _read_levels(lv: Columns, problems: list[Problem]) -> dict[str, pd.Series]:
     """The levels table's columns in canonical units (clock times kept as date-times
     until the subject's first dose is known)."""
     out: dict[str, Any] = {"subject": lv.text("subject")}
@@ -346,7 +351,7 @@ def _read_levels(lv: _Columns, problems: list[Problem]) -> dict[str, pd.Series]:
     return out
 
 
-def _read_doses(ds: _Columns, problems: list[Problem]) -> dict[str, Any]:
+def _read_doses(ds: Columns, problems: list[Problem]) -> dict[str, Any]:
     """The doses table's columns in canonical units (per-kg columns still per kg)."""
     out: dict[str, Any] = {"subject": ds.text("subject"), "given": {}, "specs": {}}
     if _is_clock(ds, "start"):
@@ -368,7 +373,7 @@ def _read_doses(ds: _Columns, problems: list[Problem]) -> dict[str, Any]:
     return out
 
 
-def _dose_amounts(dos: dict[str, Any], covariates, fails: _Failures, ds_file: str):
+def _dose_amounts(dos: dict[str, Any], covariates, fails: Failures, ds_file: str):
     """Amount and duration per dose row (per-kg columns times the weight); problems
     per subject."""
     d_subject, given = dos["subject"], dict(dos["given"])
@@ -390,7 +395,7 @@ def _dose_amounts(dos: dict[str, Any], covariates, fails: _Failures, ds_file: st
     return amount, duration
 
 
-def _level_checks(lvl: dict[str, pd.Series], fails: _Failures, lv_file: str) -> pd.Series:
+def _level_checks(lvl: dict[str, pd.Series], fails: Failures, lv_file: str) -> pd.Series:
     """BLQ per level (marked, a number under its LLOQ, or empty with an LLOQ) and the
     level problems per subject."""
     subject, conc, lloq, mark, time = (lvl[k] for k in ("subject", "conc", "lloq",
@@ -412,7 +417,7 @@ def _level_checks(lvl: dict[str, pd.Series], fails: _Failures, lv_file: str) -> 
     return blq
 
 
-def _cross_checks(level_frame, dose_frame, covariates, fails: _Failures, warnings: list[str],
+def _cross_checks(level_frame, dose_frame, covariates, fails: Failures, warnings: list[str],
                   lv_file: str, ds_file: str) -> None:
     """Duplicate sample times, and subjects present in one table only."""
     dup = level_frame.duplicated(["subject", "time"], keep=False)
@@ -436,7 +441,7 @@ def _cross_checks(level_frame, dose_frame, covariates, fails: _Failures, warning
                             f"{', '.join(no_cov)}")
 
 
-def _subjects(level_frame, dose_frame, covariates, fails: _Failures,
+def _subjects(level_frame, dose_frame, covariates, fails: Failures,
               lv_file: str, origins: dict[str, str] | None = None) -> list[SubjectData]:
     """One SubjectData per subject without problems."""
     good: list[SubjectData] = []
@@ -494,44 +499,6 @@ def _resolve_doses(given: dict[str, pd.Series]) -> tuple[pd.Series, pd.Series, p
     problem = problem.mask(r & (rate <= 0) & a & ~d, "rate must be positive")
     problem = problem.mask(r & d & (duration <= 0), "an infusion rate needs a duration > 0")
     return out_amount, out_duration, problem
-
-
-def load_study_file(path: str | Path, *, extra_sections: tuple[str, ...] = ()) -> Study:
-    """A study TOML: ``levels``, ``doses``, optional ``subjects`` (paths relative to the
-    TOML file), optional ``title`` and option tables ``[fit]``, ``[nca]``,
-    ``[population]``."""
-    data = read_toml(path)
-    base = Path(path).parent
-    allowed = {"title", "levels", "doses", "subjects", "output", "fit", "nca", "population",
-               *extra_sections}
-    unknown = sorted(set(data) - allowed)
-    if unknown:
-        raise PkcalcInputError([Problem("unknown key", file=str(path), field=k,
-                                        expected=", ".join(sorted(allowed))) for k in unknown])
-    missing = [k for k in ("levels", "doses") if not isinstance(data.get(k), str)]
-    if missing:
-        raise PkcalcInputError([Problem("the study file must name this table", file=str(path),
-                                        field=k, expected="a path such as 'levels.csv'")
-                                for k in missing])
-    from ..tables import check_input_file
-
-    problems = []
-    for key in ("levels", "doses", "subjects"):
-        if isinstance(data.get(key), str):
-            try:
-                check_input_file(base / data[key])
-            except PkcalcInputError as exc:
-                problems += [Problem(f"'{data[key]}' {p.message}", file=str(path), field=key,
-                                     expected=p.expected) for p in exc.problems]
-    if problems:
-        raise PkcalcInputError(problems)
-    study = load_study(base / data["levels"], base / data["doses"],
-                       base / data["subjects"] if isinstance(data.get("subjects"), str) else None)
-    study.options = {k: data[k] for k in ("fit", "nca", "population") if k in data}
-    study.title = data.get("title") if isinstance(data.get("title"), str) else None
-    study.output = data.get("output", {}) if isinstance(data.get("output"), dict) else {}
-    study.files = [str(path), *study.files]
-    return study
 
 
 # --------------------------------------------------------------------------- options
