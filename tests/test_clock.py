@@ -118,3 +118,58 @@ def test_clock_and_relative_tables_together_are_refused(tmp_path, run_cli):
     (tmp_path / "d.csv").write_text("subject,start [clock],amount [mg]\nA,04/03/2026 08:00,500\n")
     r = run_cli("fit", "--levels", tmp_path / "l.csv", "--doses", tmp_path / "d.csv")
     assert r.code == 2 and "cannot be told apart" in r.err and "line 2" in r.err
+
+
+SCENARIO = """[[scenarios]]
+name = "s"
+clearance = "3 L/h"
+half_life = "8 h"
+doses = [ {{ start = "{d0}", amount = "300 mg", duration = "1 h" }},
+          {{ start = "{d1}", amount = "300 mg", duration = "1 h" }} ]
+times = ["{t0}", "{t1}"]
+"""
+
+
+def test_scenario_in_clock_times_predicts_like_relative_times(run_cli, write):
+    rel = run_cli("predict", write("r.toml", SCENARIO.format(
+        d0="0 h", d1="12 h", t0="1 h", t1="24.5 h")), "--json").json()
+    clk = run_cli("predict", write("c.toml", SCENARIO.format(
+        d0="2026-03-28T20:00+01:00", d1="2026-03-29T09:00+02:00",
+        t0="2026-03-28T21:00+01:00", t1="2026-03-29T21:30+02:00")), "--json").json()
+    a, b = rel["scenarios"][0]["profile"], clk["scenarios"][0]["profile"]
+    np.testing.assert_allclose(b["time"], a["time"], atol=1e-9)
+    np.testing.assert_allclose(b["concentration"], a["concentration"], rtol=1e-12)
+    bad = run_cli("predict", write("m.toml", SCENARIO.format(
+        d0="2026-03-28T20:00", d1="12 h", t0="1 h", t1="2 h")))
+    assert bad.code == 2 and "mix clock times" in bad.err
+
+
+MAP_CLOCK = """[[scenarios]]
+name = "m"
+doses = [ {{ start = "{d0}", amount = "400 mg", duration = "30 min" }},
+          {{ start = "{d1}", rate = "35 mg/h", duration = "23.5 h" }} ]
+[scenarios.design]
+method = "map"
+levels = [ {{ time = "{t1}", concentration = "7.1 mg/L" }},
+           {{ time = "{t2}", concentration = "6.2 mg/L" }} ]
+plateau = "8 mg/L"
+window = ["6 mg/L", "10 mg/L"]
+[scenarios.design.prior]
+clearance = "4.2 L/h"
+volume = "48 L"
+cv_clearance = "35%"
+cv_volume = "25%"
+error = {{ proportional = "10%", additive = "0.2 mg/L" }}
+"""
+
+
+def test_design_history_in_clock_times_equals_relative_times(run_cli, write):
+    rel = run_cli("design", write("r.toml", MAP_CLOCK.format(
+        d0="0 h", d1="0.5 h", t1="6 h", t2="22 h")), "--json").json()
+    clk = run_cli("design", write("c.toml", MAP_CLOCK.format(
+        d0="2026-05-01T08:00", d1="2026-05-01T08:30", t1="2026-05-01T14:00",
+        t2="2026-05-02T06:00")), "--json").json()
+    assert clk["regimens"][0]["start"] == pytest.approx(rel["regimens"][0]["start"])
+    assert clk["regimens"][0]["loading_dose"] == rel["regimens"][0]["loading_dose"]
+    assert clk["designs"][0]["estimates"]["clearance"] == pytest.approx(
+        rel["designs"][0]["estimates"]["clearance"], rel=1e-9)

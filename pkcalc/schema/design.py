@@ -19,7 +19,7 @@ from .base import (
     resolve_partial,
     validation_problems,
 )
-from .design_table import DesignSpec, resolve_design
+from .design_table import DesignSpec, SampleSpec, resolve_design
 
 
 class DesignCaseSpec(WithParameters):
@@ -39,9 +39,10 @@ class DesignCaseSpec(WithParameters):
     def _to_canonical(self) -> DesignCaseSpec:
         col, weight, values = self.start_collecting()
         cl, v = (None, None) if col.problems else resolve_partial(values, col)
-        method, opts = resolve_design(self.design, cl, v, col, history=bool(self.doses))
+        doses, design = _clock_history(self.doses, self.design, col)
+        method, opts = resolve_design(design, cl, v, col, history=bool(doses))
         if method in LEVEL_METHODS:
-            _history(self, method, opts, col)
+            _history(doses, design, method, opts, col)
         elif self.design.start is not None or self.design.initial_concentration is not None:
             col.add(f"'start' and 'initial_concentration' belong to adjustments from levels, "
                     f"not to method '{method}'", "design.start")
@@ -56,13 +57,55 @@ class DesignCaseSpec(WithParameters):
 LEVEL_METHODS = ("proportional", "chiou", "sawchuk_zaske", "map")
 
 
-def _history(spec: DesignCaseSpec, method: str, opts: dict[str, Any], col: Collector) -> None:
+def _clock_history(doses, design: DesignSpec, col: Collector):
+    """A history written in clock times (ISO 8601): dose starts, level times and the
+    start become hours since the first dose (see :func:`.scenario.clock_to_hours`)."""
+    from ..clock import is_clock
+    from .scenario import DoseSpec, clock_to_hours
+
+    samples = [(f"design.levels[{i}].time", x) for i, x in enumerate(design.levels or [])]
+    samples += [(f"design.samples[{i}].time", x) for i, x in enumerate(design.samples or [])]
+    samples += [(f"design.{k}.time", getattr(design, k)) for k in
+                ("peak_sample", "trough_sample", "measured")
+                if isinstance(getattr(design, k), SampleSpec)]
+    texts = [x.time for _, x in samples] + ([design.start] if design.start else [])
+    texts += [d.get("start") for d in doses or [] if isinstance(d, dict)]
+    if not doses or not any(is_clock(t) for t in texts):
+        return doses, design
+    try:
+        specs = [DoseSpec.model_validate(d) for d in doses]
+    except ValidationError:
+        return doses, design  # reported by _history
+    extra = [(f, x.time) for f, x in samples] + (
+        [("design.start", design.start)] if design.start else [])
+    specs, _, converted = clock_to_hours(specs, None, col, extra)
+    if not specs:
+        return [], design
+    new = dict(converted)
+    update: dict[str, Any] = {}
+    for key in ("levels", "samples"):
+        items = getattr(design, key)
+        if items:
+            update[key] = [x.model_copy(update={"time": new[f"design.{key}[{i}].time"]})
+                           for i, x in enumerate(items)]
+    for key in ("peak_sample", "trough_sample", "measured"):
+        item = getattr(design, key)
+        if isinstance(item, SampleSpec):
+            update[key] = item.model_copy(update={"time": new[f"design.{key}.time"]})
+    if design.start:
+        update["start"] = new["design.start"]
+    return ([d.model_dump(by_alias=True, exclude_none=True) for d in specs],
+            design.model_copy(update=update))
+
+
+def _history(doses, spec: DesignSpec, method: str, opts: dict[str, Any],
+             col: Collector) -> None:
     """The recorded doses, the start and the initial level of an adjustment from levels,
     checked against the level times (all on the history clock)."""
     from .scenario import DoseSpec
 
     events = []
-    for i, raw in enumerate(spec.doses or []):
+    for i, raw in enumerate(doses or []):
         try:
             ev = DoseSpec.model_validate(raw).to_event(col, f"doses[{i}]")
         except ValidationError as exc:
@@ -70,15 +113,15 @@ def _history(spec: DesignCaseSpec, method: str, opts: dict[str, Any], col: Colle
             continue
         if ev is not None:
             events.append(ev)
-    d = spec.design
+    d = spec
     start = col.q(d.start, "time", "design.start", nonnegative=True)
     initial = col.q(d.initial_concentration, "concentration", "design.initial_concentration",
                     nonnegative=True)
-    if method == "map" and not events and not spec.doses:
+    if method == "map" and not events and not doses:
         col.add("method 'map' needs the doses given before the levels", "doses",
                 "doses = [ { start = '0 h', amount = '500 mg', duration = '1 h' } ]")
     if not events:
-        if spec.doses is None and (start is not None or initial is not None):
+        if doses is None and (start is not None or initial is not None):
             col.add("'start' and 'initial_concentration' need the dose history", "doses",
                     "doses = [...] with the recorded doses (times on one clock)")
         return

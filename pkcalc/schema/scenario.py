@@ -11,6 +11,7 @@ import numpy as np
 from pydantic import Field, StrictInt, model_validator
 
 from ..core import DoseEvent, ScenarioInput, Target
+from ..errors import PkcalcInputError
 from .base import (
     Collector,
     LenientModel,
@@ -86,6 +87,47 @@ class DoseSpec(LenientModel):
             col.add("'every' needs 'count' (the number of doses)", f"{where}.count")
             return None
         return DoseEvent(start, amount, duration, every if count > 1 else None, count)
+
+
+def clock_to_hours(doses: list[DoseSpec], times, col: Collector, extra_times=()):
+    """Clock-time dose starts and times (ISO 8601) -> hours since the first dose.
+
+    Either every dose start and time of a scenario is a clock time or none is; the
+    origin is the earliest dose start.  ``extra_times`` (``(field, text)`` pairs, e.g.
+    level times of a design) are converted too and returned third.
+    """
+    from ..clock import hours_since, is_clock, parse_clock, same_kind
+
+    texts = [d.start for d in doses] + (list(times) if isinstance(times, list) else []) \
+        + [t for _, t in extra_times]
+    clock = [is_clock(t) for t in texts]
+    if not any(clock):
+        return doses, times, list(extra_times)
+    if not all(clock):
+        col.add("dose starts and times mix clock times and relative times", "doses",
+                "every start and time as an ISO 8601 date-time, or every one with a unit")
+        return [], None, []
+    try:
+        starts = [parse_clock(d.start, field=f"doses[{i}].start") for i, d in enumerate(doses)]
+        origin = min(starts)
+        same_kind(starts, field="doses")
+
+        def rel(text, field):
+            t = parse_clock(text, field=field)
+            same_kind([t, origin], field=field)
+            return f"{hours_since(t, origin):.17g} h"
+        new_doses = [d.model_copy(update={"start": rel(d.start, f"doses[{i}].start")})
+                     for i, d in enumerate(doses)]
+        new_times = [rel(t, f"times[{i}]") for i, t in enumerate(times)] \
+            if isinstance(times, list) else times
+        new_extra = [(f, rel(t, f)) for f, t in extra_times]
+    except (PkcalcInputError, TypeError) as exc:
+        if isinstance(exc, PkcalcInputError):
+            col.problems.extend(exc.problems)
+        else:
+            col.add("some date-times have a time-zone offset and some do not", "doses")
+        return [], None, []
+    return new_doses, new_times, new_extra
 
 
 class TimeRange(LenientModel):
@@ -177,11 +219,12 @@ class ScenarioSpec(WithParameters):
         doses = []
         if not self.doses:
             col.add("no doses given", "doses", "a list of dose events")
-        for i, d in enumerate(self.doses):
+        dose_specs, times_spec, _ = clock_to_hours(self.doses, self.times, col)
+        for i, d in enumerate(dose_specs):
             ev = d.to_event(col, f"doses[{i}]")
             if ev is not None:
                 doses.append(ev)
-        times = resolve_times(self.times, col)
+        times = resolve_times(times_spec, col)
         n_events = sum(d.count for d in doses)
         if n_events > MAX_DOSE_EVENTS:
             col.add(f"the doses expand to {n_events} single doses, more than the "
