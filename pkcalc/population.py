@@ -153,6 +153,8 @@ class PopulationResult:
             row = {"subject": r.subject, "weight [kg]": r.weight,
                    "clearance [L/h]": r.clearance, "volume [L]": r.volume,
                    "half_life [h]": r.estimates["half_life"].value}
+            if r.clock_origin:
+                row["first_dose_clock"] = r.clock_origin
             if self.eta is not None:
                 row["ln_clearance_deviation"], row["ln_volume_deviation"] = self.eta[i]
             rows.append(row)

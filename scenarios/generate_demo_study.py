@@ -116,11 +116,70 @@ def sparse_study(seed: int = 7) -> dict[str, str]:
             "demo-sparse-subjects.csv": subjects}
 
 
+def sdtm_study() -> dict[str, str]:
+    """The rich study as CDISC SDTM datasets (PC, EX, VS, DM as CSV), with clock times:
+    each subject starts on its own day, some levels are reported in ng/mL, BLQ levels
+    as text ("<0.2"), and one planned sample per subject was not done (PCSTAT)."""
+    from datetime import datetime, timedelta
+
+    rich = rich_study()
+    levels = [line.split(",") for line in rich["demo-study-levels.csv"].splitlines()[1:]]
+    doses = [line.split(",") for line in rich["demo-study-doses.csv"].splitlines()[1:]]
+    weights = dict(line.split(",") for line in
+                   rich["demo-study-subjects.csv"].splitlines()[1:])
+    subjects = sorted({row[0] for row in doses})
+    origin = {sid: datetime(2026, 4, 6 + i, 8 + i % 3, 15 * (i % 4))
+              for i, sid in enumerate(subjects)}
+
+    def stamp(sid: str, hours: float) -> str:
+        return (origin[sid] + timedelta(hours=hours)).strftime("%Y-%m-%dT%H:%M")
+
+    pc = io.StringIO()
+    pc.write("STUDYID,DOMAIN,USUBJID,PCSEQ,PCTESTCD,PCTEST,PCORRES,PCORRESU,PCSTRESC,"
+             "PCSTRESN,PCSTRESU,PCLLOQ,PCSTAT,PCDTC\n")
+    seq: dict[str, int] = {}
+    for sid, t, conc, lloq, blq in levels:
+        n = seq[sid] = seq.get(sid, 0) + 1
+        usub = f"INVENTED-{sid}"
+        ng = n % 2 == 0  # every other level reported in ng/mL
+        if blq == "true":
+            row = (f"<{lloq}", "", "ug/mL", lloq)
+        elif ng:
+            v = _fmt(float(conc) * 1000)
+            row = (v, v, "ng/mL", _fmt(float(lloq) * 1000))
+        else:
+            row = (conc, conc, "ug/mL", lloq)
+        pc.write(f"INV-DEMO,PC,{usub},{n},VELTA,Veltaramide,{row[0]},{row[2]},{row[0]},"
+                 f"{row[1]},{row[2]},{row[3]},,{stamp(sid, float(t))}\n")
+    for sid in subjects:  # a planned sample not done
+        pc.write(f"INV-DEMO,PC,INVENTED-{sid},99,VELTA,Veltaramide,,,,,ug/mL,0.2,NOT DONE,"
+                 f"{stamp(sid, 30.0)}\n")
+    ex = io.StringIO()
+    ex.write("STUDYID,DOMAIN,USUBJID,EXSEQ,EXTRT,EXDOSE,EXDOSU,EXROUTE,EXSTDTC,EXENDTC\n")
+    count: dict[str, int] = {}
+    for sid, start, amount, minutes in doses:
+        n = count[sid] = count.get(sid, 0) + 1
+        s0, s1 = float(start), float(start) + float(minutes) / 60
+        ex.write(f"INV-DEMO,EX,INVENTED-{sid},{n},VELTARAMIDE,{amount},mg,INTRAVENOUS,"
+                 f"{stamp(sid, s0)},{stamp(sid, s1)}\n")
+    vs = io.StringIO()
+    vs.write("STUDYID,DOMAIN,USUBJID,VSSEQ,VSTESTCD,VSTEST,VSSTRESN,VSSTRESU,VSDTC\n")
+    dm = io.StringIO()
+    dm.write("STUDYID,DOMAIN,USUBJID,SUBJID,RFSTDTC\n")
+    for sid in subjects:
+        vs.write(f"INV-DEMO,VS,INVENTED-{sid},1,WEIGHT,Weight,{weights[sid]},kg,"
+                 f"{stamp(sid, -1.0)}\n")
+        dm.write(f"INV-DEMO,DM,INVENTED-{sid},{sid},{stamp(sid, 0.0)}\n")
+    return {"demo-sdtm/pc.csv": pc.getvalue(), "demo-sdtm/ex.csv": ex.getvalue(),
+            "demo-sdtm/vs.csv": vs.getvalue(), "demo-sdtm/dm.csv": dm.getvalue()}
+
+
 def all_files() -> dict[str, str]:
-    return {**rich_study(), **sparse_study()}
+    return {**rich_study(), **sparse_study(), **sdtm_study()}
 
 
 if __name__ == "__main__":
     for name, text in all_files().items():
+        (HERE / name).parent.mkdir(exist_ok=True)
         (HERE / name).write_text(text, encoding="utf-8")
         print("wrote", name)

@@ -499,9 +499,54 @@ def option_cases() -> list[Case]:
     return [Case(i, r, a, study, 2, p) for i, r, a, p in rows]
 
 
+def clock_and_sdtm_cases() -> list[Case]:
+    levels = "subject,time [clock],concentration [mg/L]\nA,{t},5\nA,2026-03-04T14:00,3\n"
+    doses = "subject,start [clock],amount [mg]\nA,2026-03-04T08:00,500\n"
+    out = [Case(f"fit-clock-{i}", r, ("fit", "--levels", "l.csv", "--doses", "d.csv"),
+                {"l.csv": levels.format(t=t), "d.csv": doses}, 2, p)
+           for i, r, t, p in (("date-only", "K1", "2026-03-04", "without a time"),
+                              ("time-only", "K1", "09:00", "without a date"),
+                              ("slashes", "K1", "04/03/2026 09:00", "cannot be told apart"),
+                              ("words", "K1", "Tuesday morning", "not an ISO 8601"))]
+    out.append(Case("fit-clock-with-relative-doses", "K2",
+                    ("fit", "--levels", "l.csv", "--doses", "d.csv"),
+                    {"l.csv": levels.format(t="2026-03-04T09:00"),
+                     "d.csv": "subject,start [h],amount [mg]\nA,0,500\n"}, 2,
+                    "both use clock times"))
+    out.append(Case("predict-clock-mixed", "K3", ("predict", "s.toml"),
+                    {"s.toml": scenario(start='"2026-03-04T08:00"') + 'times = ["1 h"]\n'}, 2,
+                    "mix clock times"))
+    pc = ("USUBJID,PCTESTCD,PCSTRESN,PCSTRESU,PCSTRESC,PCLLOQ,PCSTAT,PCDTC\n"
+          "S1,DRG,5,mg/L,5,0.1,,2026-03-04T09:00\nS1,DRG,3,mg/L,3,0.1,,2026-03-04T14:00\n")
+    ex = "USUBJID,EXDOSE,EXDOSU,EXROUTE,EXSTDTC,EXENDTC\nS1,500,mg,INTRAVENOUS,2026-03-04T08:00,\n"
+    cases = [
+        ("no-pc", "X1", {"sd/ex.csv": ex}, "no PC dataset"),
+        ("pc-variable", "X1", {"sd/pc.csv": pc.replace("PCDTC", "PCDATE"), "sd/ex.csv": ex},
+         "PCDTC"),
+        ("damaged-xpt", "X1", {"sd/pc.xpt": b"garbage", "sd/ex.csv": ex}, "SAS transport"),
+        ("two-analytes", "X2", {"sd/pc.csv": pc + "S1,OTHER,1,mg/L,1,0.1,,2026-03-04T10:00\n",
+                                "sd/ex.csv": ex}, "several analytes"),
+    ]
+    out += [Case(f"nca-sdtm-{i}", r, ("nca", "--sdtm", "sd"), f, 2, p) for i, r, f, p in cases]
+    out.append(Case("nca-sdtm-analyte-unknown", "X2", ("nca", "--sdtm", "sd", "--analyte", "X"),
+                    {"sd/pc.csv": pc, "sd/ex.csv": ex}, 2, "unknown analyte"))
+    out.append(Case("fit-sdtm-oral", "X5", ("fit", "--sdtm", "sd"),
+                    {"sd/pc.csv": pc, "sd/ex.csv": ex.replace("INTRAVENOUS", "ORAL")}, 2,
+                    "not intravenous"))
+    out.append(Case("fit-sdtm-unit", "X4", ("fit", "--sdtm", "sd"),
+                    {"sd/pc.csv": pc.replace("mg/L", "furlongs"), "sd/ex.csv": ex}, 2,
+                    "furlongs"))
+    out.append(Case("fit-sdtm-per-kg-no-weight", "X6", ("fit", "--sdtm", "sd"),
+                    {"sd/pc.csv": pc, "sd/ex.csv": ex.replace(",mg,", ",mg/kg,")}, 2,
+                    "body weight"))
+    out.append(Case("fit-sdtm-not-a-folder", "X1", ("fit", "--sdtm", "sd.csv"),
+                    {"sd.csv": "x"}, 2, "is not a folder"))
+    return out
+
+
 CORPUS = (quantity_cases() + dose_and_time_cases() + parameter_cases() + file_cases()
           + study_cases() + batch_cases() + output_cases() + design_cases() + verify_cases()
-          + option_cases())
+          + option_cases() + clock_and_sdtm_cases())
 
 
 def test_the_corpus_is_large_and_cites_its_rules():

@@ -152,6 +152,7 @@ def load_sdtm(folder: str | Path, analyte: str | None = None) -> Study:
     subjects = pd.DataFrame({"subject": list(weights),
                              "weight [kg]": [f"{w:.17g}" for w in weights.values()]})
     if "dm" in data:
+        log.used["dm"] = len(set(data["dm"]["USUBJID"]) & set(levels["subject"]))
         without = sorted(set(data["dm"]["USUBJID"]) - set(levels["subject"]))
         if without:
             log.notes.append(f"{len(without)} subject(s) in DM have no levels: "
