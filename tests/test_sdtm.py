@@ -179,3 +179,11 @@ def test_a_study_file_can_name_an_sdtm_folder(tmp_path, run_cli):
     r = run_cli("population", tmp_path / "study.toml", "--method", "two-stage")
     assert r.code == 0, r.err
     assert "Imported from SDTM" in r.out
+
+
+def test_the_html_report_carries_the_import_report(tmp_path, run_cli):
+    folder = _study(tmp_path, "csv")
+    r = run_cli("fit", "--sdtm", folder, "--report", tmp_path / "r.html")
+    assert r.code == 0, r.err
+    html = (tmp_path / "r.html").read_text(encoding="utf-8")
+    assert "imported from SDTM" in html and "not done (PCSTAT)" in html
