@@ -92,6 +92,7 @@ class ScenarioPrediction:
     initial_concentration: float = 0.0
     highest: float | None = None
     highest_time: float | None = None
+    clock_origin: str | None = None
 
     def model_events(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Single events for :func:`pkcalc.model.concentration` (initial level included)."""
@@ -329,6 +330,7 @@ def predict_scenario(scenario: ScenarioInput, fractions: Sequence[float] = FRACT
         steady_state=ss, doses=doses, target=scenario.target, flags=flags, warnings=warnings,
         weight=scenario.weight, initial_concentration=scenario.initial_concentration,
         highest=highest, highest_time=highest_time,
+        clock_origin=scenario.extra.get("clock_origin"),
     )
 
 

@@ -190,6 +190,11 @@ def _write_predict_files(out: Path, preds, conv, doc, pngs, inputs) -> list[Path
     for pred, s, d in zip(preds, slugs, doc["scenarios"], strict=True):
         frame = pd.DataFrame({f"time [{tu}]": d["profile"]["time"],
                               f"concentration [{cu}]": d["profile"]["concentration"]})
+        origin = pred.clock_origin
+        if origin:  # the clock time beside the hours since the first dose
+            start = pd.Timestamp(origin)
+            frame.insert(1, "clock_time", [(start + pd.Timedelta(hours=float(h))).isoformat()
+                                           for h in pred.time])
         written.append(report.write_atomic(out / s / "profile.csv", frame.to_csv(index=False)))
         written.append(report.write_atomic(out / s / "profile.png", pngs[pred.name]))
         row = {"scenario": pred.name, "folder": s}

@@ -173,3 +173,13 @@ def test_design_history_in_clock_times_equals_relative_times(run_cli, write):
     assert clk["regimens"][0]["loading_dose"] == rel["regimens"][0]["loading_dose"]
     assert clk["designs"][0]["estimates"]["clearance"] == pytest.approx(
         rel["designs"][0]["estimates"]["clearance"], rel=1e-9)
+
+
+def test_predicted_profiles_keep_the_clock_time(run_cli, write, tmp_path):
+    r = run_cli("predict", write("c.toml", SCENARIO.format(
+        d0="2026-03-04T08:00", d1="2026-03-04T20:00", t0="2026-03-04T09:00",
+        t1="2026-03-05T08:00")), "--out", tmp_path / "o")
+    assert r.code == 0
+    profile = pd.read_csv(tmp_path / "o" / "s" / "profile.csv")
+    assert list(profile["clock_time"]) == ["2026-03-04T09:00:00", "2026-03-05T08:00:00"]
+    assert list(profile["time [h]"]) == [1.0, 24.0]

@@ -78,7 +78,7 @@ def _clock_history(doses, design: DesignSpec, col: Collector):
         return doses, design  # reported by _history
     extra = [(f, x.time) for f, x in samples] + (
         [("design.start", design.start)] if design.start else [])
-    specs, _, converted = clock_to_hours(specs, None, col, extra)
+    specs, _, converted, _ = clock_to_hours(specs, None, col, extra)
     if not specs:
         return [], design
     new = dict(converted)

@@ -102,11 +102,11 @@ def clock_to_hours(doses: list[DoseSpec], times, col: Collector, extra_times=())
         + [t for _, t in extra_times]
     clock = [is_clock(t) for t in texts]
     if not any(clock):
-        return doses, times, list(extra_times)
+        return doses, times, list(extra_times), None
     if not all(clock):
         col.add("dose starts and times mix clock times and relative times", "doses",
                 "every start and time as an ISO 8601 date-time, or every one with a unit")
-        return [], None, []
+        return [], None, [], None
     try:
         starts = [parse_clock(d.start, field=f"doses[{i}].start") for i, d in enumerate(doses)]
         origin = min(starts)
@@ -126,8 +126,8 @@ def clock_to_hours(doses: list[DoseSpec], times, col: Collector, extra_times=())
             col.problems.extend(exc.problems)
         else:
             col.add("some date-times have a time-zone offset and some do not", "doses")
-        return [], None, []
-    return new_doses, new_times, new_extra
+        return [], None, [], None
+    return new_doses, new_times, new_extra, origin.isoformat()
 
 
 class TimeRange(LenientModel):
@@ -219,7 +219,7 @@ class ScenarioSpec(WithParameters):
         doses = []
         if not self.doses:
             col.add("no doses given", "doses", "a list of dose events")
-        dose_specs, times_spec, _ = clock_to_hours(self.doses, self.times, col)
+        dose_specs, times_spec, _, origin = clock_to_hours(self.doses, self.times, col)
         for i, d in enumerate(dose_specs):
             ev = d.to_event(col, f"doses[{i}]")
             if ev is not None:
@@ -248,7 +248,8 @@ class ScenarioSpec(WithParameters):
             weight=weight,
             target=target,
             given=tuple(n for n, v in values.items() if v is not None),
-            extra={"design": self.design} if self.design is not None else {},
+            extra={**({"design": self.design} if self.design is not None else {}),
+                   **({"clock_origin": origin} if origin else {})},
             initial_concentration=initial or 0.0,
         )
         return self
