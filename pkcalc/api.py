@@ -44,9 +44,29 @@ def _subject_failures(study: Study, extra=()) -> list[tuple[str, PkcalcInputErro
         for sid, reason in extra]
 
 
+class _PerSubject:
+    """What every study-level result shares: iteration over the per-subject results,
+    one subject by name, and the notebook view (summary and table)."""
+
+    results: list
+
+    def __iter__(self) -> Iterator:
+        return iter(self.results)
+
+    def __len__(self) -> int:
+        return len(self.results)
+
+    def subject(self, name: str):
+        """The result of one subject."""
+        return next(r for r in self.results if r.subject == name)
+
+    def _repr_html_(self) -> str:
+        return result_html(self.summary(), self.to_frame())
+
+
 # --------------------------------------------------------------------------- NCA
 @dataclass
-class StudyNca:
+class StudyNca(_PerSubject):
     """Non-compartmental analysis of every subject of a study.
 
     Attributes
@@ -64,16 +84,6 @@ class StudyNca:
     warnings: list[str] = field(default_factory=list)
     title: str | None = None
     units: dict[str, str] | None = None
-
-    def __iter__(self) -> Iterator:
-        return iter(self.results)
-
-    def __len__(self) -> int:
-        return len(self.results)
-
-    def subject(self, name: str):
-        """The result of one subject."""
-        return next(r for r in self.results if r.subject == name)
 
     @property
     def settings(self) -> dict[str, str]:
@@ -112,8 +122,6 @@ class StudyNca:
             frame.insert(1, "first_dose_clock", [r.clock_origin for r in self.results])
         return frame
 
-    def _repr_html_(self) -> str:
-        return result_html(self.summary(), self.to_frame())
 
 
 def nca_study(study: Study, options: NcaOptions | None = None, *,
@@ -144,7 +152,7 @@ def nca_study(study: Study, options: NcaOptions | None = None, *,
 
 # --------------------------------------------------------------------------- fit
 @dataclass
-class StudyFit:
+class StudyFit(_PerSubject):
     """Individual fits of every subject of a study.
 
     Attributes
@@ -166,16 +174,6 @@ class StudyFit:
     warnings: list[str] = field(default_factory=list)
     title: str | None = None
     units: dict[str, str] | None = None
-
-    def __iter__(self) -> Iterator:
-        return iter(self.results)
-
-    def __len__(self) -> int:
-        return len(self.results)
-
-    def subject(self, name: str):
-        """The fit of one subject."""
-        return next(r for r in self.results if r.subject == name)
 
     @property
     def settings(self) -> dict[str, Any]:
@@ -236,8 +234,6 @@ class StudyFit:
 
         return pd.concat([r.to_frame() for r in self.results], ignore_index=True)
 
-    def _repr_html_(self) -> str:
-        return result_html(self.summary(), self.to_frame())
 
 
 def fit_study(study: Study, options: FitOptions | None = None, *,

@@ -51,3 +51,27 @@ def write(tmp_path):
         return path
 
     return _write
+
+
+#: An invented MAP design scenario (the demo's veltaramide history); fill d0, d1 (dose
+#: starts), t1, t2 (level times) and extra (more design keys).
+MAP_SCENARIO = """[[scenarios]]
+name = "m"
+doses = [ {{ start = "{d0}", amount = "400 mg", duration = "30 min" }},
+          {{ start = "{d1}", rate = "35 mg/h", duration = "23.5 h" }} ]
+[scenarios.design]
+method = "map"
+levels = [ {{ time = "{t1}", concentration = "7.1 mg/L" }},
+           {{ time = "{t2}", concentration = "6.2 mg/L" }} ]
+{extra}
+[scenarios.design.prior]
+clearance = "4.2 L/h"
+volume = "48 L"
+cv_clearance = "35%"
+cv_volume = "25%"
+error = {{ proportional = "10%", additive = "0.2 mg/L" }}
+"""
+
+
+def map_scenario(d0="0 h", d1="0.5 h", t1="6 h", t2="22 h", extra='plateau = "8 mg/L"'):
+    return MAP_SCENARIO.format(d0=d0, d1=d1, t1=t1, t2=t2, extra=extra)

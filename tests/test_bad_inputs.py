@@ -16,6 +16,8 @@ import pytest
 
 from pkcalc.cli import main
 
+from .conftest import map_scenario
+
 
 @dataclass(frozen=True)
 class Case:
@@ -77,27 +79,8 @@ half_life = "8 h"
 [scenarios.design]
 plateau = "8 mg/L"
 """
-MAP = """[[scenarios]]
-name = "m"
-doses = [ {{ start = "{d0}", amount = "400 mg", duration = "30 min" }},
-          {{ start = "{d1}", rate = "35 mg/h", duration = "23.5 h" }} ]
-[scenarios.design]
-method = "map"
-levels = [ {{ time = "{t1}", concentration = "7.1 mg/L" }},
-           {{ time = "{t2}", concentration = "6.2 mg/L" }} ]
-plateau = "8 mg/L"
-{extra}
-[scenarios.design.prior]
-clearance = "4.2 L/h"
-volume = "48 L"
-cv_clearance = "35%"
-cv_volume = "25%"
-error = {{ proportional = "10%" }}
-"""
-
-
 def map_file(d0="0 h", d1="0.5 h", t1="6 h", t2="22 h", extra="") -> str:
-    return MAP.format(d0=d0, d1=d1, t1=t1, t2=t2, extra=extra)
+    return map_scenario(d0, d1, t1, t2, 'plateau = "8 mg/L"\n' + extra)
 
 
 def study_files(levels=LEVELS, doses=DOSES, subjects=SUBJECTS) -> dict[str, str | bytes]:

@@ -16,7 +16,7 @@ import pkcalc
 from pkcalc.clock import hours_since, parse_clock
 from pkcalc.errors import PkcalcInputError
 
-from .conftest import SCENARIOS
+from .conftest import SCENARIOS, map_scenario
 
 
 @pytest.mark.parametrize("text", ["2026-03-04T08:15", "2026-03-04 08:15:30",
@@ -144,31 +144,17 @@ def test_scenario_in_clock_times_predicts_like_relative_times(run_cli, write):
     assert bad.code == 2 and "mix clock times" in bad.err
 
 
-MAP_CLOCK = """[[scenarios]]
-name = "m"
-doses = [ {{ start = "{d0}", amount = "400 mg", duration = "30 min" }},
-          {{ start = "{d1}", rate = "35 mg/h", duration = "23.5 h" }} ]
-[scenarios.design]
-method = "map"
-levels = [ {{ time = "{t1}", concentration = "7.1 mg/L" }},
-           {{ time = "{t2}", concentration = "6.2 mg/L" }} ]
-plateau = "8 mg/L"
-window = ["6 mg/L", "10 mg/L"]
-[scenarios.design.prior]
-clearance = "4.2 L/h"
-volume = "48 L"
-cv_clearance = "35%"
-cv_volume = "25%"
-error = {{ proportional = "10%", additive = "0.2 mg/L" }}
-"""
+
+
+
+WINDOW = 'plateau = "8 mg/L"\nwindow = ["6 mg/L", "10 mg/L"]'
 
 
 def test_design_history_in_clock_times_equals_relative_times(run_cli, write):
-    rel = run_cli("design", write("r.toml", MAP_CLOCK.format(
-        d0="0 h", d1="0.5 h", t1="6 h", t2="22 h")), "--json").json()
-    clk = run_cli("design", write("c.toml", MAP_CLOCK.format(
+    rel = run_cli("design", write("r.toml", map_scenario(extra=WINDOW)), "--json").json()
+    clk = run_cli("design", write("c.toml", map_scenario(
         d0="2026-05-01T08:00", d1="2026-05-01T08:30", t1="2026-05-01T14:00",
-        t2="2026-05-02T06:00")), "--json").json()
+        t2="2026-05-02T06:00", extra=WINDOW)), "--json").json()
     assert clk["regimens"][0]["start"] == pytest.approx(rel["regimens"][0]["start"])
     assert clk["regimens"][0]["loading_dose"] == rel["regimens"][0]["loading_dose"]
     assert clk["designs"][0]["estimates"]["clearance"] == pytest.approx(

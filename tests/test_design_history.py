@@ -27,6 +27,8 @@ from pkcalc.design import (
 )
 from pkcalc.design.projection import history_events
 
+from .conftest import map_scenario
+
 TOL = 0.03  # the issue's acceptance: within 3 % of a limit
 
 
@@ -310,23 +312,7 @@ peak = ["20 mg/L", "30 mg/L"]
 trough = ["5 mg/L", "10 mg/L"]
 """
 
-MAP_FILE = """
-[[scenarios]]
-name = "m"
-doses = [ {{ start = "0 h", amount = "400 mg", duration = "30 min" }},
-          {{ start = "0.5 h", rate = "35 mg/h", duration = "23.5 h" }} ]
-[scenarios.design]
-method = "map"
-levels = [ {{ time = "{t1}", concentration = "7.1 mg/L" }},
-           {{ time = "{t2}", concentration = "6.2 mg/L" }} ]
-{extra}
-[scenarios.design.prior]
-clearance = "4.2 L/h"
-volume = "48 L"
-cv_clearance = "35%"
-cv_volume = "25%"
-error = {{ proportional = "10%" }}
-"""
+
 
 
 @pytest.mark.parametrize(("fmt", "phrase"), [
@@ -341,15 +327,13 @@ error = {{ proportional = "10%" }}
      "window low"),
 ])
 def test_bad_history_inputs_exit_2(run_cli, write, fmt, phrase):
-    r = run_cli("design", write("m.toml", MAP_FILE.format(**fmt)))
+    r = run_cli("design", write("m.toml", map_scenario(**fmt)))
     assert r.code == 2 and phrase in r.err and "scenario 'm'" in r.err
     assert "Traceback" not in r.err
 
 
 def test_level_before_first_dose_needs_initial_concentration(run_cli, write):
-    text = MAP_FILE.format(t1="6 h", t2="22 h", extra='plateau = "8 mg/L"').replace(
-        'start = "0 h", amount = "400 mg"', 'start = "8 h", amount = "400 mg"').replace(
-        'start = "0.5 h", rate', 'start = "8.5 h", rate').replace('"22 h"', '"24 h"')
+    text = map_scenario(d0="8 h", d1="8.5 h", t2="24 h")
     r = run_cli("design", write("m.toml", text))
     assert r.code == 2 and "initial_concentration" in r.err
     fixed = text.replace('plateau = "8 mg/L"', 'plateau = "8 mg/L"\ninitial_concentration = '

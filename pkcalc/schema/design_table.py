@@ -246,13 +246,7 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
 def _options_continuous(c: _DesignContext, opts: dict[str, Any]) -> None:
     """Options of method 'continuous'."""
     method = "continuous"
-    spec = c.spec
-    col = c.col
-    q = c.col.q
-    cl = c.cl
-    v = c.v
-    plateau = c.plateau
-    auc = c.auc
+    spec, col, q, cl, v, plateau, auc = c.spec, c.col, c.col.q, c.cl, c.v, c.plateau, c.auc
     window = c.window
     if spec.plateau is None and spec.auc_24 is None:
         col.add("method 'continuous' needs a plateau or an AUC24 target", "design.plateau",
@@ -275,16 +269,8 @@ def _options_continuous(c: _DesignContext, opts: dict[str, Any]) -> None:
 def _options_intermittent(c: _DesignContext, opts: dict[str, Any]) -> None:
     """Options of method 'intermittent'."""
     method = "intermittent"
-    spec = c.spec
-    col = c.col
-    q = c.col.q
-    cl = c.cl
-    v = c.v
-    peak = c.peak
-    trough = c.trough
-    peak_limits = c.peak_limits
-    trough_limits = c.trough_limits
-    interval_opts = c.interval_opts
+    spec, col, q, cl, v, peak, trough = c.spec, c.col, c.col.q, c.cl, c.v, c.peak, c.trough
+    peak_limits, trough_limits, interval_opts = c.peak_limits, c.trough_limits, c.interval_opts
     auc = c.auc
     t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
     if _need(col, method, infusion_time=t_inf, clearance=cl, volume=v):
@@ -303,13 +289,7 @@ def _options_intermittent(c: _DesignContext, opts: dict[str, Any]) -> None:
 def _options_proportional(c: _DesignContext, opts: dict[str, Any]) -> None:
     """Options of method 'proportional'."""
     method = "proportional"
-    spec = c.spec
-    col = c.col
-    q = c.col.q
-    cl = c.cl
-    v = c.v
-    history = c.history
-    plateau = c.plateau
+    spec, col, q, cl, v, history, plateau = c.spec, c.col, c.col.q, c.cl, c.v, c.history, c.plateau
     window = c.window
     measured_time = None
     if isinstance(spec.measured, SampleSpec):
@@ -341,12 +321,7 @@ def _options_proportional(c: _DesignContext, opts: dict[str, Any]) -> None:
 def _options_chiou(c: _DesignContext, opts: dict[str, Any]) -> None:
     """Options of method 'chiou'."""
     method = "chiou"
-    spec = c.spec
-    col = c.col
-    q = c.col.q
-    v = c.v
-    history = c.history
-    plateau = c.plateau
+    spec, col, q, v, history, plateau = c.spec, c.col, c.col.q, c.v, c.history, c.plateau
     window = c.window
     rate = q(spec.rate, "rate", "design.rate", positive=True)
     samples = [_sample(col, s, f"design.samples[{i}]")
@@ -372,15 +347,8 @@ def _options_chiou(c: _DesignContext, opts: dict[str, Any]) -> None:
 
 def _options_map(c: _DesignContext, opts: dict[str, Any]) -> None:
     """Options of method 'map'."""
-    spec = c.spec
-    col = c.col
-    q = c.col.q
-    plateau = c.plateau
-    peak = c.peak
-    peak_limits = c.peak_limits
-    interval_opts = c.interval_opts
-    auc = c.auc
-    window = c.window
+    spec, col, q, plateau, peak = c.spec, c.col, c.col.q, c.plateau, c.peak
+    peak_limits, interval_opts, auc, window = c.peak_limits, c.interval_opts, c.auc, c.window
     from .fitopts import load_prior, parse_prior
 
     levels = [_sample(col, x, f"design.levels[{i}]")
@@ -417,15 +385,8 @@ def _options_map(c: _DesignContext, opts: dict[str, Any]) -> None:
 def _options_sawchuk_zaske(c: _DesignContext, opts: dict[str, Any]) -> None:
     """Options of method 'sawchuk_zaske'."""
     method = "sawchuk_zaske"
-    spec = c.spec
-    col = c.col
-    q = c.col.q
-    history = c.history
-    peak = c.peak
-    trough = c.trough
-    peak_limits = c.peak_limits
-    trough_limits = c.trough_limits
-    interval_opts = c.interval_opts
+    spec, col, q, history, peak, trough = c.spec, c.col, c.col.q, c.history, c.peak, c.trough
+    peak_limits, trough_limits, interval_opts = c.peak_limits, c.trough_limits, c.interval_opts
     auc = c.auc
     dose = q(spec.dose, "amount", "design.dose", positive=True)
     t_inf = q(spec.infusion_time, "time", "design.infusion_time", nonnegative=True)
