@@ -176,11 +176,18 @@ class StudyFit(_PerSubject):
     units: dict[str, str] | None = None
 
     @property
+    def adequacy_counts(self) -> dict[str, int] | None:
+        """Subjects per adequacy verdict (None when the check was off)."""
+        from .fit import adequacy_counts
+
+        return adequacy_counts(self.results)
+
+    @property
     def settings(self) -> dict[str, Any]:
         o = self.options
         out: dict[str, Any] = {"method": o.method, "error_model": o.error_model,
                                "weighting": o.weighting, "blq": o.blq, "intervals": o.ci,
-                               "starts": o.starts}
+                               "starts": o.starts, "adequacy_check": o.adequacy}
         if o.prior is not None:
             out["prior"] = o.prior.source or "inline"
         return out
@@ -221,6 +228,14 @@ class StudyFit(_PerSubject):
                     row[f"{name}{suffix} [{'%' if key == 'rse_percent' else unit}]"] = e[key]
             row.update({k: d[k] for k in ("objective", "aic", "bic", "n_obs", "n_blq",
                                           "starts", "starts_agreed")})
+            a = d["adequacy"]
+            if a is not None:
+                row.update({"one_compartment": a["verdict"], "adequacy_delta_aic":
+                            a["delta_aic"], "adequacy_lrt_p": a["likelihood_ratio_p"],
+                            "adequacy_runs_p": a["runs_test_p"],
+                            "adequacy_trend_p": a["trend_test_p"],
+                            f"earliest_sampling_after_infusion [{doc['units']['time']}]":
+                            a["earliest_sampling_after_infusion"]})
             row["warnings"] = " | ".join(d["warnings"])
             rows.append(row)
         frame = pd.DataFrame(rows)
@@ -254,7 +269,7 @@ def fit_study(study: Study, options: FitOptions | None = None, *,
     PkcalcInputError
         When no subject could be fitted.
     """
-    from .fit import compare_with_nca, fit_subjects
+    from .fit import check_adequacy, compare_with_nca, fit_subjects
     from .schema import study_fit_options
 
     opts = options if options is not None else study_fit_options(study, overrides)
@@ -263,10 +278,15 @@ def fit_study(study: Study, options: FitOptions | None = None, *,
     if not results:
         raise PkcalcInputError([p for _, err in failures for p in err.problems]
                                or "no subject could be fitted")
+    if opts.adequacy:
+        found = check_adequacy(study.subjects, results, opts)
+        for r in results:
+            r.adequacy = found.get(r.subject)
     nca = comparisons = None
     if opts.with_nca:
         nca = nca_study(study, units=units)  # the study's [nca] options, as `pkcalc nca`
-        comparisons = compare_with_nca(results, nca.results, opts.nca_threshold)
+        comparisons = compare_with_nca(results, nca.results, opts.nca_threshold,
+                                       nca.options.extrapolation_limit)
     return StudyFit(results, failures, opts, comparisons, nca, list(study.warnings),
                     study.title, units or study.output or None)
 
@@ -303,6 +323,13 @@ def population_study(study: Study, options: PopulationOptions | None = None,
         raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
                                + PkcalcInputError(str(exc), file=study.files[0] if study.files
                                                   else None).problems) from None
+    if o.adequacy:
+        from .fit import check_adequacy
+
+        found = check_adequacy(study.subjects, result.subjects,
+                               FitOptions(error_model=o.error_model, blq=o.blq))
+        for r in result.subjects:
+            r.adequacy = found.get(r.subject)
     if o.bootstrap and o.method == "iterative":
         result.bootstrap.update(bootstrap(study.subjects, result, o.bootstrap, o.seed,
                                           error_model=o.error_model, covariate=o.covariate,

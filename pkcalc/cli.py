@@ -165,7 +165,8 @@ def cmd_fit(args: argparse.Namespace) -> int:
     options = study_fit_options(study, {
         "weighting": args.weighting, "error_model": args.error_model, "blq": args.blq,
         "ci": args.ci, "prior": args.prior, "starts": args.starts,
-        "with_nca": True if args.with_nca else None, "nca_threshold": args.nca_threshold})
+        "with_nca": True if args.with_nca else None, "nca_threshold": args.nca_threshold,
+        "adequacy": False if args.no_adequacy else None})
     return _finish(run_fit(study, options, colour=_colour()), args)
 
 
@@ -179,7 +180,8 @@ def cmd_population(args: argparse.Namespace) -> int:
         "method": args.method, "error_model": args.error_model, "blq": args.blq,
         "covariate": args.covariate, "reference_weight": args.reference_weight,
         "bootstrap": args.bootstrap, "seed": args.seed,
-        "vpc_replicates": args.vpc_replicates})
+        "vpc_replicates": args.vpc_replicates,
+        "adequacy": False if args.no_adequacy else None})
     return _finish(run_population(study, options, colour=_colour()), args)
 
 

@@ -105,6 +105,12 @@ def _add(sub, name: str, help_: str):
     return p
 
 
+def _adequacy_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--no-adequacy", action="store_true",
+                   help="skip the check of one compartment against two exponentials "
+                        "(faster)")
+
+
 def _output_args(p: argparse.ArgumentParser, out_help: str) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--out", metavar="DIR", help=out_help)
@@ -192,6 +198,7 @@ def _fit_parser(sub) -> None:
                    help="show the fit beside non-compartmental results")
     p.add_argument("--nca-threshold", type=float, metavar="PERCENT",
                    help="flag fit/NCA differences beyond this (default 20)")
+    _adequacy_arg(p)
     _output_args(p, "write fit.csv, fit.json and plots to DIR")
 
 
@@ -213,6 +220,7 @@ def _population_parser(sub) -> None:
     p.add_argument("--seed", type=int, metavar="S", help="seed for bootstrap and VPC (default 1)")
     p.add_argument("--vpc-replicates", type=int, metavar="N",
                    help="simulated replicates for the visual predictive check (default 200)")
+    _adequacy_arg(p)
     _output_args(p, "write CSV, JSON and plots to DIR")
 
 

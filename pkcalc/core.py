@@ -352,6 +352,7 @@ class FitOptions:
     starts: int = 3
     with_nca: bool = False
     nca_threshold: float = 20.0
+    adequacy: bool = True
 
     def __post_init__(self) -> None:
         _check(self.weighting is None or self.weighting in WEIGHTINGS, "weighting",
@@ -373,6 +374,8 @@ class FitOptions:
                self.starts)
         _check(_finite(self.nca_threshold) and self.nca_threshold > 0, "nca_threshold",
                "must be a positive percentage", self.nca_threshold)
+        _check(isinstance(self.adequacy, bool), "adequacy", "must be true or false",
+               self.adequacy)
 
     @property
     def method(self) -> str:
@@ -393,8 +396,11 @@ class PopulationOptions:
     bootstrap: int = 0
     seed: int = 1
     vpc_replicates: int = 200
+    adequacy: bool = True
 
     def __post_init__(self) -> None:
+        _check(isinstance(self.adequacy, bool), "adequacy", "must be true or false",
+               self.adequacy)
         _check(self.method in ("two-stage", "iterative"), "method",
                "must be 'two-stage' or 'iterative'", self.method)
         _check(self.error_model in ERROR_MODELS, "error_model",

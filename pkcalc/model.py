@@ -46,6 +46,9 @@ __all__ = [
     "steady_state_profile",
     "time_to_fall",
     "time_to_fraction",
+    "two_compartment_and_gradient",
+    "two_compartment_concentration",
+    "two_compartment_macro",
 ]
 
 LN2 = float(np.log(2.0))
@@ -774,3 +777,125 @@ def bolus_concentration(t, amount, clearance, volume):
     t, amount, clearance, volume = (np.asarray(a, float) for a in (t, amount, clearance,
                                                                     volume))
     return amount / volume * np.exp(-clearance / volume * t) + 0.0
+
+
+# --------------------------------------------------------------------------- two compartments
+# Used only by the adequacy check (a sensitivity check beside the one-compartment fit,
+# never a second modelling path).  Central volume V1, peripheral volume V2,
+# inter-compartmental clearance Q:  V1 dC1/dt = input - CL C1 - Q C1 + Q C2,
+# V2 dC2/dt = Q C1 - Q C2.
+
+
+def two_compartment_macro(clearance, central_volume, intercompartmental, peripheral_volume):
+    """Macro-constants of the two-compartment model from its micro-constants.
+
+    With ``k10 = CL/V1``, ``k12 = Q/V1``, ``k21 = Q/V2``, the disposition rates
+    are the roots of ``x^2 - (k10 + k12 + k21) x + k10 k21 = 0``:
+    ``alpha > beta > 0``; a unit bolus gives ``C1(t) = (c_alpha e^(-alpha t) +
+    c_beta e^(-beta t)) / V1`` with ``c_alpha = (alpha - k21) / (alpha - beta)``
+    and ``c_beta = 1 - c_alpha`` (Gibaldi & Perrier, ch. 2 -- from memory).
+
+    Returns
+    -------
+    alpha, beta : ndarray, 1/h
+    c_alpha, c_beta : ndarray
+        Fractions of ``D/V1`` in the fast and slow exponentials.
+
+    Examples
+    --------
+    >>> a, b, ca, cb = two_compartment_macro(5.0, 10.0, 10.0, 40.0)
+    >>> round(float(a * b), 6) == round(0.5 * 0.25, 6)       # alpha beta = k10 k21
+    True
+    """
+    cl, v1, q, v2 = (np.asarray(x, float) for x in (clearance, central_volume,
+                                                     intercompartmental, peripheral_volume))
+    k10, k12, k21 = cl / v1, q / v1, q / v2
+    s = k10 + k12 + k21
+    root = np.sqrt(np.maximum(s * s - 4 * k10 * k21, 0.0))
+    alpha = 0.5 * (s + root)
+    beta = k10 * k21 / alpha                  # the small root without cancellation
+    spread = np.maximum(alpha - beta, 1e-300)
+    c_alpha = (alpha - k21) / spread
+    return alpha, beta, c_alpha, 1.0 - c_alpha
+
+
+def two_compartment_concentration(t, start, amount, duration, clearance, central_volume,
+                                  intercompartmental, peripheral_volume):
+    """Central concentration after any bolus / infusion events, two compartments.
+
+    Each exponential of the unit response behaves like a one-compartment body
+    with rate ``alpha`` (or ``beta``) and volume ``V1``, so by superposition::
+
+        C(t) = c_alpha * C_1cmt(t; CL = alpha V1, V = V1)
+             + c_beta  * C_1cmt(t; CL = beta  V1, V = V1)
+
+    with :func:`concentration` as ``C_1cmt``.  An initial-level event puts
+    ``C0`` in the central compartment with an empty periphery.  Shapes as in
+    :func:`concentration`.
+
+    Examples
+    --------
+    >>> c = two_compartment_concentration([0.0], [0.0], [100.0], [0.0], 5.0, 10.0, 10.0, 40.0)
+    >>> float(c[0])                                          # D / V1 at the bolus
+    10.0
+    """
+    return two_compartment_and_gradient(t, start, amount, duration, clearance, central_volume,
+                                        intercompartmental, peripheral_volume,
+                                        gradient=False)[0]
+
+
+def two_compartment_and_gradient(t, start, amount, duration, clearance, central_volume,
+                                 intercompartmental, peripheral_volume, *, geometry=None,
+                                 gradient: bool = True):
+    """Central concentration and its derivatives with respect to ``ln CL, ln V1, ln Q,
+    ln V2``.
+
+    With the decomposition of :func:`two_compartment_concentration` and
+    ``g_x = (dC_1cmt/d ln CL, dC_1cmt/d ln V)`` at ``(x V1, V1)``::
+
+        dC = (C_a - C_b) dc_alpha + sum_x c_x [g_x0 (d ln x + d ln V1) + g_x1 d ln V1]
+
+    where ``alpha, beta = (s +- r)/2``, ``s = k10 + k12 + k21``,
+    ``r = sqrt(s^2 - 4 k10 k21)``, so ``d alpha = (ds + (s ds - 2 dp)/r)/2``
+    (``p = k10 k21``), ``d beta = ds - d alpha`` and
+    ``d c_alpha = (d alpha - d k21)/r - (alpha - k21) dr / r^2``.
+
+    Returns
+    -------
+    conc : ndarray, shape (..., T)
+    grad : ndarray, shape (4, ..., T) or None
+    """
+    cl, v1, q, v2 = (np.asarray(x, float) for x in (clearance, central_volume,
+                                                     intercompartmental, peripheral_volume))
+    alpha, beta, c_a, c_b = two_compartment_macro(cl, v1, q, v2)
+    geom = geometry if geometry is not None else event_geometry(t, start, duration)
+    c_fast, g_fast = concentration_and_gradient(t, start, amount, duration, alpha * v1, v1,
+                                                geometry=geom)
+    c_slow, g_slow = concentration_and_gradient(t, start, amount, duration, beta * v1, v1,
+                                                geometry=geom)
+    ca, cb = c_a[..., None], c_b[..., None]
+    conc = ca * c_fast + cb * c_slow
+    if not gradient:
+        return conc, None
+    k10, k12, k21 = cl / v1, q / v1, q / v2
+    s = k10 + k12 + k21
+    p = k10 * k21
+    r = np.maximum(alpha - beta, 1e-300)
+    # derivatives of k10, k12, k21 with respect to ln CL, ln V1, ln Q, ln V2
+    zero = np.zeros_like(k10)
+    dk10 = [k10, -k10, zero, zero]
+    dk12 = [zero, -k12, k12, zero]
+    dk21 = [zero, zero, k21, -k21]
+    grads = []
+    for j in range(4):
+        ds = dk10[j] + dk12[j] + dk21[j]
+        dp = dk10[j] * k21 + k10 * dk21[j]
+        d_alpha = 0.5 * (ds + (s * ds - 2 * dp) / r)
+        d_beta = ds - d_alpha
+        dr = d_alpha - d_beta
+        dca = (d_alpha - dk21[j]) / r - (alpha - k21) * dr / (r * r)
+        dlnv1 = 1.0 if j == 1 else 0.0
+        fast = g_fast[0] * (d_alpha / alpha + dlnv1)[..., None] + g_fast[1] * dlnv1
+        slow = g_slow[0] * (d_beta / beta + dlnv1)[..., None] + g_slow[1] * dlnv1
+        grads.append(dca[..., None] * (c_fast - c_slow) + ca * fast + cb * slow)
+    return conc, np.stack(grads)

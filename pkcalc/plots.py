@@ -225,6 +225,12 @@ def fit_figure(result, conv: UnitConverter | None = None) -> Figure:
     fig, ax = new_figure(6.5, 4.2)
     ax.plot(conv(grid, "time"), conv(result.predict(grid), "concentration"), color="black",
             lw=1.4, label="fitted one-compartment course")
+    a = getattr(result, "adequacy", None)
+    if a is not None and a.verdict == "distribution_phase":
+        ax.plot(conv(grid, "time"), conv(result.predict_two_exponential(grid), "concentration"),
+                "--", color="0.35", lw=1.2, label="two-exponential fit (sensitivity check)")
+        ax.text(0.99, 0.97, "distribution phase evident: one compartment not adequate",
+                transform=ax.transAxes, ha="right", va="top", fontsize=7.5)
     meas = ~result.blq & np.isfinite(result.observed)
     ax.plot(conv(result.time[meas], "time"), conv(result.observed[meas], "concentration"), "o",
             color="black", mfc="white", ms=5, label="measured levels")

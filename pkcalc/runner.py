@@ -420,7 +420,8 @@ def run_population(study, options=None, *, colour: bool = False) -> Run:
         for sid, reason in result.failures]
     settings = {"method": options.method, "error_model": options.error_model,
                 "blq": options.blq, "covariate": options.covariate,
-                "reference_weight": f"{options.reference_weight:g} kg"}
+                "reference_weight": f"{options.reference_weight:g} kg",
+                "adequacy_check": options.adequacy}
     doc = population_json(result, conv, title=study.title, failures=failures,
                           settings=settings)
     doc["warnings"] = list(study.warnings) + list(result.warnings)
@@ -429,11 +430,17 @@ def run_population(study, options=None, *, colour: bool = False) -> Run:
     doc, text = _with_import(study, doc, text)
     fitted = {r.subject for r in result.subjects}
     used = [s for s in subjects if s.subject in fitted]
+    flagged = [r for r in result.subjects
+               if r.adequacy is not None and r.adequacy.verdict == "distribution_phase"]
 
     def figures() -> dict[str, Any]:
         from .plots import population_figure, vpc_figure
 
+        from .plots import fit_figure
+
         figs = {"__diagnostics__": population_figure(result, used, conv)}
+        for r in flagged:
+            figs[r.subject] = fit_figure(r, conv)
         if options.vpc_replicates and result.method == "iterative":
             sim = simulate_design(used, result, options.vpc_replicates, options.seed)
             figs["__vpc__"] = vpc_figure(used, sim, conv)
@@ -447,6 +454,10 @@ def run_population(study, options=None, *, colour: bool = False) -> Run:
                                      "vpc.png")]
         check_not_input(targets, study.files)
         written = [report.write_atomic(out / "diagnostics.png", pngs["__diagnostics__"])]
+        slugs = unique_slugs([r.subject for r in flagged])
+        check_not_input([out / f"adequacy-{s}.png" for s in slugs], study.files)
+        written += [report.write_atomic(out / f"adequacy-{s}.png", pngs[r.subject])
+                    for r, s in zip(flagged, slugs, strict=True)]
         if "__vpc__" in pngs:
             written.append(report.write_atomic(out / "vpc.png", pngs["__vpc__"]))
         written.append(report.write_atomic(out / "population-subjects.csv",

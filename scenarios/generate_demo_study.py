@@ -8,7 +8,9 @@ parameters, not measured in anyone.
 
 The rich study (12 subjects, 9-12 levels each) feeds ``pkcalc fit`` and
 ``pkcalc nca``; the sparse study (60 subjects, 2-3 levels each) feeds
-``pkcalc population``.  ``tests/test_demo_data.py`` checks that the committed
+``pkcalc population``; the biphasic example (8 subjects of the fictional
+"corvanide", simulated from a two-compartment model) shows the adequacy check
+finding a distribution phase.  ``tests/test_demo_data.py`` checks that the committed
 files equal what this script produces.
 """
 
@@ -174,8 +176,38 @@ def sdtm_study() -> dict[str, str]:
             "demo-sdtm/vs.csv": vs.getvalue(), "demo-sdtm/dm.csv": dm.getvalue()}
 
 
+#: True values of the biphasic example (two compartments; invented compound "corvanide").
+BIPHASIC = {"clearance": 6.0, "central_volume": 12.0, "intercompartmental": 20.0,
+            "peripheral_volume": 30.0, "cv": 0.25, "proportional_error": 0.06}
+
+
+def biphasic_study(seed: int = 41) -> dict[str, str]:
+    """Levels and doses of the biphasic example: 8 subjects simulated from a
+    two-compartment model (a distribution phase after each infusion), so the
+    one-compartment adequacy check has something to find."""
+    rng = np.random.default_rng(seed)
+    levels = io.StringIO()
+    doses = io.StringIO()
+    levels.write("subject,time [h],concentration [mg/L]\n")
+    doses.write("subject,start [h],amount [mg],duration [min]\n")
+    t = np.array([0.75, 1.25, 1.5, 2, 3, 4, 6, 8, 12, 16, 24.0])
+    for i in range(8):
+        sid = f"B{i + 1}"
+        p = {k: BIPHASIC[k] * np.exp(BIPHASIC["cv"] * rng.standard_normal())
+             for k in ("clearance", "central_volume", "intercompartmental",
+                       "peripheral_volume")}
+        c = model.two_compartment_concentration(
+            t, [0.0], [400.0], [1.0], p["clearance"], p["central_volume"],
+            p["intercompartmental"], p["peripheral_volume"])
+        c = c * np.exp(BIPHASIC["proportional_error"] * rng.standard_normal(t.size))
+        levels.writelines(f"{sid},{_fmt(tt)},{_fmt(cc)}\n" for tt, cc in zip(t, c, strict=True))
+        doses.write(f"{sid},0,400,60\n")
+    return {"demo-biphasic-levels.csv": levels.getvalue(),
+            "demo-biphasic-doses.csv": doses.getvalue()}
+
+
 def all_files() -> dict[str, str]:
-    return {**rich_study(), **sparse_study(), **sdtm_study()}
+    return {**rich_study(), **sparse_study(), **sdtm_study(), **biphasic_study()}
 
 
 if __name__ == "__main__":

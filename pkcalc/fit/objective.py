@@ -29,7 +29,7 @@ from scipy.special import log_ndtr
 
 from .. import model
 
-__all__ = ["Batch", "build_batch", "evaluate", "n_error_params", "profiled_sigma"]
+__all__ = ["Batch", "build_batch", "evaluate", "n_error_params", "profiled_sigma", "structural"]
 
 LOG_2PI = math.log(2 * math.pi)
 
@@ -72,6 +72,7 @@ class Batch:
     mu: np.ndarray | None = None
     omega_inv: np.ndarray | None = None
     geometry: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+    compartments: int = 1
 
     def __post_init__(self) -> None:
         if self.geometry is None:  # parameter-free part of the model, computed once
@@ -91,6 +92,12 @@ class Batch:
     def repeat(self, n: int) -> Batch:
         """Each row repeated ``n`` times consecutively (for several starts)."""
         return self.rows(np.repeat(np.arange(self.t.shape[0]), n))
+
+    @property
+    def n_structural(self) -> int:
+        """Structural parameters: ``ln CL, ln V`` (one compartment) or ``ln CL, ln V1,
+        ln Q, ln V2`` (two compartments, the adequacy check)."""
+        return 2 if self.compartments == 1 else 4
 
     @property
     def n_obs(self) -> np.ndarray:
@@ -139,12 +146,13 @@ def residual_variance(batch: Batch, theta: np.ndarray, f: np.ndarray):
         sp = batch.sp[:, None]
         err_params = []
     else:
+        p = batch.n_structural
         if batch.error == "additive":
-            sa, sp = np.exp(theta[:, 2])[:, None], np.zeros((theta.shape[0], 1))
+            sa, sp = np.exp(theta[:, p])[:, None], np.zeros((theta.shape[0], 1))
         elif batch.error == "proportional":
-            sa, sp = np.zeros((theta.shape[0], 1)), np.exp(theta[:, 2])[:, None]
+            sa, sp = np.zeros((theta.shape[0], 1)), np.exp(theta[:, p])[:, None]
         else:
-            sa, sp = np.exp(theta[:, 2])[:, None], np.exp(theta[:, 3])[:, None]
+            sa, sp = np.exp(theta[:, p])[:, None], np.exp(theta[:, p + 1])[:, None]
         err_params = {"additive": ["a"], "proportional": ["p"], "combined": ["a", "p"]}[
             batch.error]
     v = sa**2 + sp**2 * f**2
@@ -165,25 +173,24 @@ def _rowsum(a: np.ndarray) -> np.ndarray:
 
 
 def _gram(w: np.ndarray, jac: np.ndarray) -> np.ndarray:
-    """``sum_n w[b, n] jac[i, b, n] jac[j, b, n]`` for the 2 x 2 structural block."""
-    j0, j1 = jac
-    w0 = w * j0
-    g01 = _dot(w0, j1)
-    out = np.empty((w.shape[0], 2, 2))
-    out[:, 0, 0] = _dot(w0, j0)
-    out[:, 1, 1] = _dot(w * j1, j1)
-    out[:, 0, 1] = g01
-    out[:, 1, 0] = g01
+    """``sum_n w[b, n] jac[i, b, n] jac[j, b, n]`` for the structural block."""
+    p = jac.shape[0]
+    out = np.empty((w.shape[0], p, p))
+    for i in range(p):
+        wi = w * jac[i]
+        for j in range(i, p):
+            out[:, i, j] = out[:, j, i] = _dot(wi, jac[j])
     return out
 
 
 def _block_sum(s: np.ndarray, e: list[np.ndarray], jac: np.ndarray) -> np.ndarray:
     """``sum_n`` of the vectors ``s * jac (+) e`` (structural part, error parts)."""
-    out = np.empty((s.shape[0], 2 + len(e)))
-    out[:, 0] = _dot(s, jac[0])
-    out[:, 1] = _dot(s, jac[1])
+    p = jac.shape[0]
+    out = np.empty((s.shape[0], p + len(e)))
+    for i in range(p):
+        out[:, i] = _dot(s, jac[i])
     for j, x in enumerate(e):
-        out[:, 2 + j] = _rowsum(x)
+        out[:, p + j] = _rowsum(x)
     return out
 
 
@@ -191,16 +198,17 @@ def _block_gram(w: np.ndarray, s: np.ndarray, e: list[np.ndarray], jac: np.ndarr
                 structural_weight: np.ndarray | None = None) -> np.ndarray:
     """``sum_n w v v'`` for the vectors ``v = s * jac (+) e``; the structural block may be
     given its own weight (to add a mean term to the same Gram)."""
-    q = 2 + len(e)
+    p = jac.shape[0]
+    q = p + len(e)
     out = np.empty((w.shape[0], q, q))
-    out[:, :2, :2] = _gram(w * s * s if structural_weight is None else structural_weight, jac)
+    out[:, :p, :p] = _gram(w * s * s if structural_weight is None else structural_weight, jac)
     for i, ei in enumerate(e):
         wse = w * s * ei
-        cross = np.stack([_dot(wse, jac[0]), _dot(wse, jac[1])], axis=1)
-        out[:, 2 + i, :2] = cross
-        out[:, :2, 2 + i] = cross
+        cross = np.stack([_dot(wse, jac[k]) for k in range(p)], axis=1)
+        out[:, p + i, :p] = cross
+        out[:, :p, p + i] = cross
         for j, ej in enumerate(e):
-            out[:, 2 + i, 2 + j] = _dot(w * ei, ej)
+            out[:, p + i, p + j] = _dot(w * ei, ej)
     return out
 
 
@@ -217,6 +225,18 @@ def profiled_sigma(batch: Batch, f: np.ndarray, floor: np.ndarray) -> np.ndarray
     n = np.maximum(_rowsum(o.astype(float)), 1.0)
     s2 = _rowsum(np.where(o, r * r, 0.0)) / n
     return np.maximum(0.5 * np.log(np.maximum(s2, 1e-300)), floor)
+
+
+def structural(batch: Batch, theta: np.ndarray):
+    """Predictions and their derivatives with respect to the structural log-parameters
+    (the first ``batch.n_structural`` columns of ``theta``)."""
+    if batch.compartments == 1:
+        return model.concentration_and_gradient(
+            batch.t, batch.start, batch.amount, batch.duration, np.exp(theta[:, 0]),
+            np.exp(theta[:, 1]), geometry=batch.geometry)
+    return model.two_compartment_and_gradient(
+        batch.t, batch.start, batch.amount, batch.duration, *np.exp(theta[:, :4]).T,
+        geometry=batch.geometry)
 
 
 def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None = None):
@@ -242,9 +262,7 @@ def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None 
     f : ndarray, shape (B, N)
         Predictions.
     """
-    cl, v_ = np.exp(theta[:, 0]), np.exp(theta[:, 1])
-    f, jac = model.concentration_and_gradient(batch.t, batch.start, batch.amount,
-                                              batch.duration, cl, v_, geometry=batch.geometry)
+    f, jac = structural(batch, theta)
     if batch.kind == "least_squares":
         r = np.where(batch.obs, batch.y - f, 0.0)
         wr = batch.w * r
@@ -285,10 +303,11 @@ def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None 
         grad = grad + _block_sum(g * s_z, [g * e for e in e_z], jac)
         info = info + _block_gram(np.where(c, 2 * lam * (z + lam), 0.0), s_z, e_z, jac)
     if sigma_floor is not None:
-        i_ss, i_se, i_ee = info[:, :2, :2], info[:, :2, 2], info[:, 2, 2]
+        p = batch.n_structural
+        i_ss, i_se, i_ee = info[:, :p, :p], info[:, :p, p], info[:, p, p]
         info = i_ss - i_se[:, :, None] * i_se[:, None, :] / np.maximum(i_ee, 1e-300)[:, None,
                                                                                    None]
-        return obj, grad[:, :2], info, f
+        return obj, grad[:, :p], info, f
     if batch.kind == "map":
         d = theta[:, :2] - batch.mu
         od = np.einsum("bij,bj->bi", batch.omega_inv, d)

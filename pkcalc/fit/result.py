@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -61,6 +62,9 @@ class FitResult:
     warnings, notes : list of str
     prior : dict
         MAP only: typical values, ``eta`` and the prior variance remaining.
+    adequacy : Adequacy or None
+        Whether one compartment describes the levels (:mod:`pkcalc.fit.adequacy`);
+        None when the check was turned off.
     """
 
     subject: str
@@ -96,6 +100,7 @@ class FitResult:
     weight: float | None = None
     initial_concentration: float = 0.0
     clock_origin: str | None = None
+    adequacy: Any = None
 
     @property
     def clearance(self) -> float:
@@ -110,16 +115,28 @@ class FitResult:
         e = self.estimates[name]
         return e.ci_low, e.ci_high
 
-    def predict(self, t) -> np.ndarray:
-        """Concentration (mg/L) at times ``t`` (h) with the estimates (an initial level,
-        if any, included)."""
+    def events(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Dose events for the model (an initial level, if any, as an initial-level
+        event at time 0)."""
         start, amount, duration = self.dose_start, self.dose_amount, self.dose_duration
         if self.initial_concentration:
             start, amount, duration = (np.append(start, 0.0),
                                        np.append(amount, self.initial_concentration),
                                        np.append(duration, model.INITIAL_LEVEL))
-        return model.concentration(np.asarray(t, float), start, amount, duration,
-                                   self.clearance, self.volume)
+        return start, amount, duration
+
+    def predict_two_exponential(self, t) -> np.ndarray | None:
+        """The adequacy check's two-exponential curve at times ``t`` (a sensitivity
+        check), or None when there is none."""
+        if self.adequacy is None:
+            return None
+        return self.adequacy.predict_two_exponential(t, *self.events())
+
+    def predict(self, t) -> np.ndarray:
+        """Concentration (mg/L) at times ``t`` (h) with the estimates (an initial level,
+        if any, included)."""
+        return model.concentration(np.asarray(t, float), *self.events(), self.clearance,
+                                   self.volume)
 
     def _repr_html_(self) -> str:
         """Notebook view: the caution, the table and the summary."""
@@ -155,6 +172,9 @@ class FitResult:
                  f"{self.n_obs} levels ({self.n_blq} BLQ), {self.starts_agreed}/{self.starts} "
                  "starts agreed",
                  format_table(["parameter", "value", "SE", "RSE %", "CI low", "CI high"], rows)]
+        if self.adequacy is not None:
+            lines.append(f"one compartment: {self.adequacy.verdict.replace('_', ' ')} -- "
+                         f"{self.adequacy.reason}")
         lines += [f"warning: {w}" for w in self.warnings]
         lines += [f"note: {n}" for n in self.notes]
         return "\n".join(lines)

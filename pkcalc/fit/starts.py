@@ -6,7 +6,7 @@ import numpy as np
 
 from .. import model
 from ..core import FitOptions
-from .objective import Batch, evaluate, profiled_sigma
+from .objective import Batch, evaluate, profiled_sigma, structural
 from .solver import Solution, minimise
 
 #: Starts whose objectives differ by less than this (in -2 ln L units) agree.
@@ -97,13 +97,14 @@ def bounds(batch: Batch, q: int) -> np.ndarray:
     (additive 1e-4 of the median level, proportional 0.1 %) so that a component
     the data do not support ends at its bound instead of at zero variance."""
     lower = np.full((batch.t.shape[0], q), -30.0)
+    p = batch.n_structural
     if batch.kind == "likelihood":
         ymed = row_median(batch)
         floors = {"additive": [np.log(1e-4 * ymed)],
                   "proportional": [np.full_like(ymed, np.log(1e-3))],
                   "combined": [np.log(1e-4 * ymed), np.full_like(ymed, np.log(1e-3))]}
         for j, floor in enumerate(floors[batch.error]):
-            lower[:, 2 + j] = floor
+            lower[:, p + j] = floor
     return lower
 
 
@@ -141,20 +142,20 @@ def solve(batch: Batch, theta0: np.ndarray, opts: FitOptions, reference=None):
         return obj, grad, info
 
     lower = bounds(batch, theta0.shape[1])
+    p = batch.n_structural
     if batch.kind == "likelihood" and batch.error != "combined" and not batch.cens.any():
-        # the residual SD has a closed-form optimum: profile it out (2 parameters)
-        floor = lower[:, 2]
+        # the residual SD has a closed-form optimum: profile it out (structural only)
+        floor = lower[:, p]
 
         def profiled(theta, idx):
             rows = batch if idx.size == n_rows else batch.rows(idx)
             obj, grad, info, _ = evaluate(rows, theta, sigma_floor=floor[idx])
             return obj, grad, info
 
-        ref = None if reference is None else (reference[0][:, :2], reference[1])
-        sol = minimise(profiled, theta0[:, :2], lower=lower[:, :2], reference=ref,
+        ref = None if reference is None else (reference[0][:, :p], reference[1])
+        sol = minimise(profiled, theta0[:, :p], lower=lower[:, :p], reference=ref,
                        reference_tol=(1e-3, AGREE_TOL))
-        f = model.concentration(batch.t, batch.start, batch.amount, batch.duration,
-                                np.exp(sol.theta[:, 0]), np.exp(sol.theta[:, 1]))
+        f = structural(batch, sol.theta)[0]
         sol.theta = np.concatenate([sol.theta, profiled_sigma(batch, f, floor)[:, None]], 1)
         return sol
     if opts.weighting != "inverse_predicted_squared":

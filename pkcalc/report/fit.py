@@ -18,6 +18,47 @@ def _estimate_dict(e, kind: str | None, conv: UnitConverter) -> dict[str, Any]:
             "ci_low": c(e.ci_low), "ci_high": c(e.ci_high)}
 
 
+_TWO_KIND = {"clearance": "clearance", "central_volume": "volume",
+             "intercompartmental_clearance": "clearance", "peripheral_volume": "volume",
+             "terminal_half_life": "time", "distribution_half_life": "time",
+             "fast_fraction": None}
+
+
+def adequacy_dict(a, conv: UnitConverter) -> dict[str, Any] | None:
+    """The ``adequacy`` object of a subject (docs/formats.md; display units)."""
+    if a is None:
+        return None
+
+    def c(x, kind):
+        return json_number(x if kind is None or x is None else conv(x, kind))
+
+    diffs = {k: c(v, "time" if k == "early_level_time_after_end" else None)
+             for k, v in a.differences.items()}
+    return {"verdict": a.verdict, "reason": a.reason,
+            "levels_after_infusion": a.levels_after_infusion,
+            "objective_one_compartment": json_number(a.objective_one),
+            "objective_two_exponential": json_number(a.objective_two),
+            "delta_aic": json_number(a.delta_aic), "likelihood_ratio_p": json_number(a.lrt_p),
+            "runs": a.runs, "runs_test_p": json_number(a.runs_p),
+            "trend_test_p": json_number(a.trend_p),
+            "two_exponential_sensitivity_check": {k: c(v, _TWO_KIND[k])
+                                                  for k, v in a.two_exponential.items()}
+            or None,
+            "differences": diffs or None,
+            "earliest_sampling_after_infusion": c(a.earliest_sampling_after_infusion, "time"),
+            "notes": list(a.notes)}
+
+
+def adequacy_summary(results) -> dict[str, Any] | None:
+    """Study-level counts of the adequacy verdicts and the sentence that says them."""
+    from ..fit.adequacy import adequacy_counts, counts_sentence
+
+    counts = adequacy_counts(results)
+    if counts is None:
+        return None
+    return {**counts, "subjects": sum(counts.values()), "text": counts_sentence(counts)}
+
+
 def fit_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
     """One subject's JSON object (docs/formats.md keys, display units)."""
     return {
@@ -32,6 +73,7 @@ def fit_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
         "starts": r.starts, "starts_agreed": r.starts_agreed, "iterations": r.iterations,
         "prior": {k: json_number(v) for k, v in r.prior.items()} or None,
         "warnings": list(r.warnings), "notes": list(r.notes),
+        "adequacy": adequacy_dict(r.adequacy, conv),
     }
 
 
@@ -46,7 +88,8 @@ def comparison_dicts(comparisons, conv: UnitConverter) -> list[dict[str, Any]]:
                          "fit": json_number(conv(row["fit"], kind)),
                          "nca": json_number(conv(row["nca"], kind)),
                          "ratio": json_number(row["ratio"])})
-        out.append({"subject": c.subject, "rows": rows, "flags": list(c.flags)})
+        out.append({"subject": c.subject, "rows": rows, "flags": list(c.flags),
+                    "causes": list(c.causes)})
     return out
 
 
@@ -55,7 +98,8 @@ def fit_json(results, conv: UnitConverter, *, title: str | None = None, failures
     """The ``pkcalc fit --json`` document."""
     body: dict[str, Any] = {"title": title, "settings": settings or {},
                             "subjects": [fit_subject_dict(r, conv) for r in results],
-                            "failures": failures_json(failures)}
+                            "failures": failures_json(failures),
+                            "adequacy_summary": adequacy_summary(results)}
     if comparisons is not None:
         body["comparison_with_nca"] = comparison_dicts(comparisons, conv)
     return json_document("fit", conv, body)
@@ -100,6 +144,9 @@ def fit_text(results, conv: UnitConverter, *, title: str | None = None, failures
     if res_rows:
         sections.append("Residual error:\n" + format_table(
             ["subject", "component", "value", "unit", "RSE %", "95% CI"], res_rows))
+    adequacy = adequacy_text(dicts, results, conv)
+    if adequacy:
+        sections.append(adequacy)
     if comparisons:
         crow = []
         for c in comparison_dicts(comparisons, conv):
@@ -120,4 +167,42 @@ def fit_text(results, conv: UnitConverter, *, title: str | None = None, failures
     return assemble_text(sections, warn_items, title=title, failures=failures, colour=colour)
 
 
-__all__ = ["comparison_dicts", "fit_json", "fit_subject_dict", "fit_text"]
+_VERDICT_WORDS = {"adequate": "adequate", "distribution_phase": "DISTRIBUTION PHASE",
+                  "not_enough_data": "too few levels"}
+
+
+def adequacy_text(dicts, results, conv: UnitConverter, max_rows: int | None = None
+                  ) -> str | None:
+    """The adequacy section: the study count, a row per subject, the flagged subjects'
+    evidence in words and the sampling-time advice."""
+    summary = adequacy_summary(results)
+    if summary is None:
+        return None
+    u = conv.unit
+    rows = []
+    for d in dicts:
+        a = d["adequacy"]
+        if a is None:
+            continue
+        rows.append([d["subject"], _VERDICT_WORDS[a["verdict"]], a["levels_after_infusion"],
+                     a["delta_aic"], a["likelihood_ratio_p"], a["runs_test_p"],
+                     a["trend_test_p"], a["earliest_sampling_after_infusion"]])
+    more = 0 if max_rows is None else max(len(rows) - max_rows, 0)
+    rows = rows if max_rows is None else rows[:max_rows]
+    lines = [f"Is one compartment adequate? {summary['text']}.",
+             format_table(["subject", "one compartment", "levels after infusion",
+                           "dAIC (2-exp)", "LRT p", "runs p", "trend p",
+                           f"draw from [{u('time')} after infusion]"], rows)
+             + (f"\n... and {more} more subjects (all in --json / --out)" if more else "")]
+    for d in dicts:
+        a = d["adequacy"]
+        if a is not None and a["verdict"] == "distribution_phase":
+            lines.append(f"  subject {d['subject']}: {a['reason']}")
+            lines += [f"    {n}" for n in a["notes"]]
+    lines.append("  (two-exponential numbers are a sensitivity check; the reported estimates "
+                 "stay one-compartment)")
+    return "\n".join(lines)
+
+
+__all__ = ["adequacy_dict", "adequacy_summary", "adequacy_text", "comparison_dicts", "fit_json",
+           "fit_subject_dict", "fit_text"]

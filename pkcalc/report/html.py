@@ -287,6 +287,8 @@ def fit_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
         items.append(table_item(["subject", "residual error", "value", "RSE %"], res,
                                 "Residual error (additive in concentration units, "
                                 "proportional as a fraction)"))
+    if doc.get("adequacy_summary"):
+        items += _adequacy_items(doc)
     if doc.get("comparison_with_nca"):
         crow = [[c["subject"], r["quantity"], r["fit"], r["nca"], r["ratio"]]
                 for c in doc["comparison_with_nca"] for r in c["rows"]]
@@ -310,6 +312,30 @@ def fit_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
                                      f"subject {d['subject']}: levels and fitted course"))
     return [{"heading": "Individual fits (one-compartment)", "blocks": items},
             *_import_section(doc)]
+
+
+def _adequacy_items(doc: dict[str, Any]) -> list[dict[str, Any]]:
+    """Is one compartment adequate: the study count, a row per subject, the evidence."""
+    rows, words = [], []
+    for d in doc["subjects"]:
+        a = d.get("adequacy")
+        if a is None:
+            continue
+        rows.append([d["subject"], a["verdict"].replace("_", " "), a["levels_after_infusion"],
+                     a["delta_aic"], a["likelihood_ratio_p"], a["runs_test_p"],
+                     a["trend_test_p"], a["earliest_sampling_after_infusion"]])
+        if a["verdict"] == "distribution_phase":
+            words += [f"subject {d['subject']}: {a['reason']}",
+                      *[f"subject {d['subject']}: {n}" for n in a["notes"]]]
+    u = doc["units"]
+    items = [table_item(["subject", "one compartment", "levels after infusion",
+                         "ΔAIC (two-exp.)", "LRT p", "runs p", "trend p",
+                         f"draw from [{u['time']} after infusion]"], rows,
+                        "Is one compartment adequate? " + doc["adequacy_summary"]["text"]
+                        + " (two-exponential numbers are a sensitivity check)")]
+    if words:
+        items.append(lines_item("flags", words))
+    return items
 
 
 def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
@@ -347,10 +373,16 @@ def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[
     if doc.get("warnings"):
         items.append(lines_item("warnings", doc["warnings"]))
     items.append(lines_item("notes", doc["notes"]))
+    if doc.get("adequacy_summary"):
+        items += _adequacy_items(doc)
     for key, caption in (("__diagnostics__", "Population diagnostics"),
                          ("__vpc__", "Visual predictive check")):
         if key in figures:
             items.append(figure_item(figures[key], caption))
+    for d in doc["subjects"]:
+        if d["subject"] in figures:
+            items.append(figure_item(figures[d["subject"]], f"subject {d['subject']}: "
+                                     "distribution phase (one compartment and two exponentials)"))
     return [{"heading": "Population estimates", "blocks": items}, *_import_section(doc)]
 
 

@@ -6,7 +6,7 @@ from typing import Any
 
 from .._format import format_table
 from .base import UnitConverter, assemble_text, failures_json, json_document, json_number
-from .fit import fit_subject_dict
+from .fit import adequacy_summary, adequacy_text, fit_subject_dict
 
 _MAX_ROWS = 25
 
@@ -44,6 +44,7 @@ def population_json(result, conv: UnitConverter, *, title: str | None = None, fa
         "shrinkage_percent": {k: json_number(v) for k, v in result.shrinkage_percent.items()},
         "percentiles": result.percentiles,
         "subjects": [fit_subject_dict(r, conv) for r in result.subjects],
+        "adequacy_summary": adequacy_summary(result.subjects),
         "iterations": result.iterations, "converged": result.converged,
         "objective_per_iteration": [json_number(x) for x in result.objective_per_iteration],
         "bootstrap": {k: v for k, v in result.bootstrap.items() if k != "state"} or None,
@@ -110,6 +111,9 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
          f"t1/2 [{conv.unit('time')}]", "ln CL deviation from typical",
          "ln V deviation from typical", "levels"], srows)
         + (f"\n... and {more} more subjects (all in --json / --out)" if more > 0 else ""))
+    adequacy = adequacy_text(doc["subjects"], result.subjects, conv, max_rows=_MAX_ROWS)
+    if adequacy:
+        sections.append(adequacy)
     if result.notes:
         sections.append("Notes:\n" + "\n".join(f"  {n}" for n in result.notes))
     return assemble_text(sections, [("population", result.warnings)], title=title,

@@ -173,7 +173,7 @@ def fit_options(raw: dict[str, Any] | None = None, *, base: Path | None = None,
     raw = {k: v for k, v in (raw or {}).items() if v is not None}
     problems: list[Problem] = []
     allowed = {"weighting", "error_model", "blq", "ci", "prior", "starts", "with_nca",
-               "nca_threshold"}
+               "nca_threshold", "adequacy"}
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"fit.{key}",
                                 expected=", ".join(sorted(allowed))))
@@ -223,12 +223,18 @@ def fit_options(raw: dict[str, Any] | None = None, *, base: Path | None = None,
     if not isinstance(threshold, int | float) or not threshold > 0:
         problems.append(Problem("must be a positive percentage", file=file,
                                 field="fit.nca_threshold"))
+    adequacy = raw.get("adequacy", True)
+    if not isinstance(adequacy, bool):
+        problems.append(Problem("must be true or false", file=file, field="fit.adequacy",
+                                expected="adequacy = false (turns the one-compartment "
+                                         "adequacy check off)"))
     if problems:
         raise PkcalcInputError(problems)
     if prior is not None:
         error_model = prior.error_model
     return FitOptions(weighting, None if weighting else error_model, blq, ci, prior,
-                      int(starts), bool(raw.get("with_nca", False)), float(threshold))
+                      int(starts), bool(raw.get("with_nca", False)), float(threshold),
+                      adequacy)
 
 
 def population_options(raw: dict[str, Any] | None = None, *, file: str | None = None
@@ -239,7 +245,7 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
     raw = {k: v for k, v in (raw or {}).items() if v is not None}
     problems: list[Problem] = []
     allowed = {"method", "error_model", "blq", "covariate", "reference_weight", "bootstrap",
-               "seed", "vpc_replicates"}
+               "seed", "vpc_replicates", "adequacy"}
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"population.{key}",
                                 expected=", ".join(sorted(allowed))))
@@ -267,10 +273,14 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
                            or not lo <= raw[key] <= hi):
             problems.append(Problem(f"must be a whole number from {lo} to {hi}", file=file,
                                     field=f"population.{key}"))
+    if not isinstance(raw.get("adequacy", True), bool):
+        problems.append(Problem("must be true or false", file=file, field="population.adequacy",
+                                expected="adequacy = false (turns the one-compartment "
+                                         "adequacy check off)"))
     if problems:
         raise PkcalcInputError(problems)
     return PopulationOptions(
         method=raw.get("method", "iterative"), error_model=raw.get("error_model", "proportional"),
         blq=raw.get("blq", "likelihood"), covariate=raw.get("covariate", "none"),
         reference_weight=ref, bootstrap=raw.get("bootstrap", 0), seed=raw.get("seed", 1),
-        vpc_replicates=raw.get("vpc_replicates", 200))
+        vpc_replicates=raw.get("vpc_replicates", 200), adequacy=raw.get("adequacy", True))

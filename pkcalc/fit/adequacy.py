@@ -1,0 +1,416 @@
+"""Is one compartment enough?  A check beside every individual fit.
+
+For each subject with enough levels drawn after the end of an infusion, the
+one-compartment likelihood fit is compared with a two-exponential disposition
+fit (a two-compartment model with the same dose history, error model and BLQ
+handling, fitted by the same solver from several starts around the
+one-compartment answer):
+
+- **likelihood-ratio test**: ``D = -2 ln L(one) - (-2 ln L(two))`` against a
+  chi-square with 2 degrees of freedom (the two extra parameters ``Q``, ``V2``);
+  ``delta AIC = D - 4`` (positive favours two exponentials);
+- **runs test** on the signs of the weighted residuals of the reported fit,
+  ordered by time, and a **trend test** of those residuals against the time
+  since the last dose (:mod:`pkcalc.fit.residuals`) -- reported as evidence.
+
+Verdict: ``distribution_phase`` when the likelihood-ratio test rejects one
+compartment at ``ALPHA``; ``adequate`` otherwise; ``not_enough_data`` when the
+subject has too few levels (fewer than ``MIN_AFTER_INFUSION`` after the end of
+an infusion, or too few in all for five or six parameters).  The nesting is
+at the boundary (``Q -> 0``) and samples are small, where the chi-square
+reference is approximate; the level ``ALPHA = 0.005`` keeps false alarms on
+one-compartment data below 5 % (measured by the tests over simulated subjects).
+
+The two-exponential numbers are a **sensitivity check**, never a replacement
+for the one-compartment estimates.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .. import model
+from ..core import FitOptions, SubjectData
+from .data import prepare_batch, subject_events
+from .objective import Batch, n_error_params, structural
+from .residuals import runs_test, trend_test
+from .starts import solve_starts
+
+__all__ = ["ALPHA", "Adequacy", "adequacy_counts", "check_adequacy", "counts_sentence", "levels_after_infusion"]
+
+#: Level of the likelihood-ratio test that flags a distribution phase.
+ALPHA = 0.005
+#: Levels drawn after the end of an infusion (no infusion running) needed for the check.
+MIN_AFTER_INFUSION = 3
+#: Levels beyond the two-exponential model's parameter count needed for the check.
+MIN_SPARE = 2
+#: Starts of the two-exponential fit: central volume as a fraction of the
+#: one-compartment volume, inter-compartmental clearance as a multiple of its clearance.
+STARTS = ((0.5, 2.0), (0.2, 5.0))
+
+VERDICTS = ("adequate", "distribution_phase", "not_enough_data")
+
+
+@dataclass(frozen=True)
+class Adequacy:
+    """Whether one compartment describes one subject's levels, with the evidence.
+
+    Attributes
+    ----------
+    verdict : str
+        ``adequate``, ``distribution_phase`` or ``not_enough_data``.
+    reason : str
+        The verdict in plain words.
+    levels_after_infusion : int
+    objective_one, objective_two : float or None
+        ``-2 ln L`` of the one-compartment and two-exponential fits.
+    delta_aic : float or None
+        AIC(one) - AIC(two); positive favours two exponentials.
+    lrt_p : float or None
+        Likelihood-ratio test p-value (chi-square, 2 df).
+    runs, runs_p : int, float or None
+        Runs of residual signs and the exact p-value of that few.
+    trend_p : float or None
+        Spearman test of residuals against time since the last dose.
+    two_exponential : dict of str to float
+        Sensitivity check (canonical units): ``clearance``, ``central_volume``,
+        ``intercompartmental_clearance``, ``peripheral_volume``,
+        ``terminal_half_life``, ``distribution_half_life``, ``fast_fraction``.
+    differences : dict
+        ``clearance_percent`` (one-compartment relative to two-exponential),
+        ``terminal_half_life_percent``, and for the earliest level after an
+        infusion ``early_level_time_after_end`` (h), ``early_level_percent``
+        (observed vs the one-compartment curve) and
+        ``early_level_two_exponential_percent``.
+    earliest_sampling_after_infusion : float or None
+        Hours after the end of an infusion from which the fast phase is below
+        the residual error (flagged subjects).
+    notes : list of str
+    """
+
+    verdict: str
+    reason: str
+    levels_after_infusion: int = 0
+    objective_one: float | None = None
+    objective_two: float | None = None
+    delta_aic: float | None = None
+    lrt_p: float | None = None
+    runs: int | None = None
+    runs_p: float | None = None
+    trend_p: float | None = None
+    two_exponential: dict[str, float] = field(default_factory=dict)
+    differences: dict[str, float] = field(default_factory=dict)
+    earliest_sampling_after_infusion: float | None = None
+    notes: list[str] = field(default_factory=list)
+
+    def predict_two_exponential(self, t, start, amount, duration) -> np.ndarray | None:
+        """The two-exponential curve at times ``t`` (sensitivity check), or None."""
+        p = self.two_exponential
+        if not p:
+            return None
+        return model.two_compartment_concentration(
+            np.asarray(t, float), start, amount, duration, p["clearance"], p["central_volume"],
+            p["intercompartmental_clearance"], p["peripheral_volume"])
+
+
+def adequacy_counts(results) -> dict[str, int] | None:
+    """Subjects per verdict over fit results (None when no result carries a check)."""
+    found = [r.adequacy for r in results if getattr(r, "adequacy", None) is not None]
+    if not found:
+        return None
+    return {v: sum(a.verdict == v for a in found) for v in VERDICTS}
+
+
+def counts_sentence(counts: dict[str, int]) -> str:
+    """"2 of 12 subjects show a distribution phase; ..." in plain words."""
+    n = sum(counts.values())
+    return (f"{counts['distribution_phase']} of {n} subjects show a distribution phase "
+            f"(one compartment not adequate); {counts['adequate']} adequate; "
+            f"{counts['not_enough_data']} with too few levels to tell")
+
+
+# --------------------------------------------------------------------------- timing
+def _infusion_running(t: np.ndarray, start: np.ndarray, duration: np.ndarray) -> np.ndarray:
+    """True where any infusion is running at the sample time (start < t < end)."""
+    inf = duration > 0
+    s, e = start[inf], (start + duration)[inf]
+    return ((t[:, None] > s[None, :]) & (t[:, None] < e[None, :])).any(axis=1)
+
+
+def _after_dose(s: SubjectData) -> np.ndarray:
+    """Levels drawn after drug entered, while no infusion is running."""
+    entered = s.time > (s.dose_start.min() if s.dose_start.size else np.inf)
+    if s.initial_concentration:
+        entered = s.time >= 0
+    return entered & ~_infusion_running(s.time, s.dose_start, s.dose_duration)
+
+
+def levels_after_infusion(s: SubjectData) -> int:
+    """Measured (or BLQ) levels drawn after a dose ended, no infusion running."""
+    usable = np.isfinite(s.conc) | s.blq
+    return int((_after_dose(s) & usable).sum())
+
+
+def _time_since_dose(s: SubjectData, t: np.ndarray) -> np.ndarray:
+    """Hours since the start of the most recent dose (NaN before any dose)."""
+    starts = np.sort(s.dose_start)
+    idx = np.searchsorted(starts, t, side="right") - 1
+    return np.where(idx >= 0, t - starts[np.maximum(idx, 0)], np.nan)
+
+
+def _time_after_end(s: SubjectData, t: float) -> float:
+    """Hours since the most recent end of a dose (bolus: its time) before ``t``."""
+    ends = s.dose_start + np.maximum(s.dose_duration, 0.0)
+    before = ends[ends <= t]
+    return float(t - before.max()) if before.size else math.nan
+
+
+# --------------------------------------------------------------------------- the check
+def check_adequacy(subjects: list[SubjectData], fits: list, options: FitOptions
+                   ) -> dict[str, Adequacy]:
+    """The adequacy of one compartment for every fitted subject.
+
+    Parameters
+    ----------
+    subjects : list of SubjectData
+    fits : list of FitResult
+        The reported (one-compartment) fits; their weighted residuals feed the
+        runs and trend tests.
+    options : FitOptions
+        The fit's options: its error model (least squares: proportional error
+        for relative weights, additive for uniform) and BLQ handling are used by
+        both likelihood fits.
+
+    Returns
+    -------
+    dict of subject to Adequacy
+    """
+    by_id = {s.subject: s for s in subjects}
+    pairs = [(by_id[f.subject], f) for f in fits if f.subject in by_id]
+    opts = _likelihood_options(options)
+    p_two = 4 + (2 if opts.error_model == "combined" else 1)
+    need = p_two + MIN_SPARE
+    out: dict[str, Adequacy] = {}
+    eligible = []
+    for s, f in pairs:
+        after = levels_after_infusion(s)
+        runs, runs_p, trend_p = _residual_tests(s, f)
+        common = {"levels_after_infusion": after, "runs": runs, "runs_p": runs_p,
+                  "trend_p": trend_p}
+        if after < MIN_AFTER_INFUSION:
+            out[s.subject] = Adequacy(
+                "not_enough_data", f"{after} level(s) after the end of an infusion: the check "
+                f"needs at least {MIN_AFTER_INFUSION}", **common)
+        elif f.n_obs < need:
+            out[s.subject] = Adequacy(
+                "not_enough_data", f"{f.n_obs} levels: the two-exponential check needs at "
+                f"least {need}", **common)
+        else:
+            eligible.append((s, f, common))
+    if eligible:
+        out.update(_compare(eligible, opts))
+    return out
+
+
+def _likelihood_options(options: FitOptions) -> FitOptions:
+    """Likelihood options matching the reported fit (error model and BLQ)."""
+    if options.error_model is not None and options.prior is None:
+        return FitOptions(error_model=options.error_model, blq=options.blq)
+    if options.prior is not None:
+        return FitOptions(error_model=options.prior.error_model, blq=options.blq)
+    error = "additive" if options.weighting in (None, "uniform") else "proportional"
+    return FitOptions(error_model=error, blq="drop" if options.blq == "likelihood"
+                      else options.blq)
+
+
+def _residual_tests(s: SubjectData, f) -> tuple[int | None, float | None, float | None]:
+    ok = np.isfinite(f.weighted_residuals)
+    if ok.sum() < 3:
+        return None, None, None
+    order = np.argsort(f.time[ok], kind="stable")
+    wres = f.weighted_residuals[ok][order]
+    t = f.time[ok][order]
+    runs, runs_p = runs_test(wres)
+    return runs, runs_p, trend_test(wres, _time_since_dose(s, t))
+
+
+def _compare(eligible, opts: FitOptions) -> dict[str, Adequacy]:
+    """Fit both models by likelihood and compare them (the reported fits serve as the
+    one-compartment likelihood fits when they are such fits)."""
+    from .individual import fit_subjects
+
+    subjects = [s for s, _, _ in eligible]
+    if all(f.method == "likelihood" and f.error_model == opts.error_model
+           and f.blq_method == opts.blq for _, f, _ in eligible):
+        one = [f for _, f, _ in eligible]
+    else:
+        one, _ = fit_subjects(subjects, opts)
+    one_by_id = {r.subject: r for r in one}
+    keep = [i for i, s in enumerate(subjects) if s.subject in one_by_id]
+    subjects = [subjects[i] for i in keep]
+    eligible = [eligible[i] for i in keep]
+    if not subjects:
+        return {}
+    batch1, _, _ = prepare_batch(subjects, opts)
+    batch = Batch(**{**batch1.__dict__, "compartments": 2})
+    theta_two, obj_two = _fit_two(batch, [one_by_id[s.subject] for s in subjects], opts)
+    out = {}
+    for i, (s, _, common) in enumerate(eligible):
+        out[s.subject] = _verdict(s, one_by_id[s.subject], theta_two[i], float(obj_two[i]),
+                                  batch, common)
+    return out
+
+
+def _fit_two(batch: Batch, ones: list, opts: FitOptions):
+    """The two-exponential likelihood fit of every row, best of several starts."""
+    b, n = batch.t.shape[0], len(STARTS)
+    n_err = n_error_params(batch)
+    theta0 = np.empty((b, n, 4 + n_err))
+    for i, r in enumerate(ones):
+        ln_err = [math.log(r.residual_error[k].value) for k in ("additive", "proportional")
+                  if k in r.residual_error]
+        for j, (fv, fq) in enumerate(STARTS):
+            theta0[i, j] = [math.log(r.clearance), math.log(fv * r.volume),
+                            math.log(fq * r.clearance), math.log((1 - fv) * r.volume), *ln_err]
+    sol = solve_starts(batch.repeat(n), theta0.reshape(b * n, -1), opts, n)
+    obj = np.where(np.isfinite(sol.obj), sol.obj, np.inf).reshape(b, n)
+    best = np.argmin(obj, axis=1)
+    rows = np.arange(b) * n + best
+    return sol.theta[rows], obj[np.arange(b), best]
+
+
+def _verdict(s: SubjectData, one, theta: np.ndarray, obj_two: float, batch: Batch,
+             common: dict) -> Adequacy:
+    from scipy.stats import chi2
+
+    obj_one = float(one.objective)
+    d = max(obj_one - obj_two, 0.0)
+    p = float(chi2.sf(d, 2))
+    cl, v1, q, v2 = np.exp(theta[:4])
+    alpha, beta, c_a, _ = model.two_compartment_macro(cl, v1, q, v2)
+    two = {"clearance": float(cl), "central_volume": float(v1),
+           "intercompartmental_clearance": float(q), "peripheral_volume": float(v2),
+           "terminal_half_life": model.LN2 / float(beta),
+           "distribution_half_life": model.LN2 / float(alpha), "fast_fraction": float(c_a)}
+    evidence = {**common, "objective_one": obj_one, "objective_two": obj_two,
+                "delta_aic": d - 4.0, "lrt_p": p, "two_exponential": two}
+    if p >= ALPHA:
+        hint = (f"; p is below 0.05 but above the check's level {ALPHA:g}: at most a weak hint "
+                "of a second phase" if p < 0.05 else "")
+        return Adequacy("adequate", f"one compartment describes the levels (two-exponential "
+                        f"fit: likelihood-ratio p = {p:.2g}, delta AIC {d - 4:+.1f}{hint})",
+                        **evidence, notes=_pattern_note(common))
+    diffs = _differences(s, one, two)
+    sd = _residual_sd(batch, theta)
+    advice = _earliest_time(s, two, sd)
+    words = [f"distribution phase evident (likelihood-ratio p = {p:.2g}, delta AIC "
+             f"{d - 4:+.1f} for two exponentials)",
+             f"one-compartment clearance is {_rel(diffs['clearance_percent'])} the "
+             f"two-exponential estimate (sensitivity check)",
+             f"its half-life is {_rel(diffs['terminal_half_life_percent'])} the terminal "
+             f"half-life of {two['terminal_half_life']:.3g} h"]
+    if "early_level_percent" in diffs:
+        words.append(f"the level drawn {diffs['early_level_time_after_end']:.3g} h after the "
+                     f"dose ended is {_rel(diffs['early_level_percent'], 'above', 'below')} the "
+                     "one-compartment curve")
+    notes = []
+    if advice is not None:
+        notes.append(f"levels drawn from {advice:.3g} h after the end of an infusion are past "
+                     "the fast phase (it has fallen below the residual error there); draw "
+                     "levels after distribution is complete (common practice in level "
+                     "monitoring)")
+    else:
+        notes.append("the fast phase stays above the residual error until the next dose: "
+                     "levels in this schedule cannot avoid it")
+    return Adequacy("distribution_phase", "; ".join(words), **evidence, differences=diffs,
+                    earliest_sampling_after_infusion=advice,
+                    notes=notes + _pattern_note(common))
+
+
+def _rel(pct: float, up: str = "above", down: str = "below") -> str:
+    """"16 % below" / "within 1 % of" (for "... the two-exponential estimate")."""
+    if abs(pct) < 1.0:
+        return "within 1 % of"
+    return f"{abs(pct):.0f} % {up if pct >= 0 else down}"
+
+
+def _pattern_note(common: dict) -> list[str]:
+    notes = []
+    if common["runs_p"] is not None and common["runs_p"] < 0.05:
+        notes.append(f"the weighted residuals run in long stretches of one sign ({common['runs']} "
+                     f"runs, runs test p = {common['runs_p']:.2g})")
+    if common["trend_p"] is not None and common["trend_p"] < 0.05:
+        notes.append(f"the weighted residuals trend with time since the dose (Spearman p = "
+                     f"{common['trend_p']:.2g})")
+    return notes
+
+
+def _differences(s: SubjectData, one, two: dict) -> dict[str, float]:
+    """How far apart the two models are, in percent of the two-exponential values."""
+    out = {"clearance_percent": 100 * (one.clearance / two["clearance"] - 1),
+           "terminal_half_life_percent": 100 * (one.estimates["half_life"].value
+                                                / two["terminal_half_life"] - 1)}
+    after = _after_dose(s) & np.isfinite(s.conc) & ~s.blq & (s.conc > 0)
+    if after.any():
+        idx = np.flatnonzero(after)
+        since_end = np.array([_time_after_end(s, s.time[j]) for j in idx])
+        i = int(idx[np.nanargmin(since_end)])        # the level soonest after a dose ended
+        t = s.time[i]
+        start, amount, duration = subject_events(s)
+        c1 = float(one.predict([t])[0])
+        c2 = float(model.two_compartment_concentration(
+            [t], start, amount, duration, two["clearance"], two["central_volume"],
+            two["intercompartmental_clearance"], two["peripheral_volume"])[0])
+        if c1 > 0:
+            out.update({"early_level_time_after_end": _time_after_end(s, t),
+                        "early_level_percent": 100 * (s.conc[i] / c1 - 1),
+                        "early_level_two_exponential_percent": 100 * (c2 / c1 - 1)})
+    return out
+
+
+def _residual_sd(batch: Batch, theta: np.ndarray) -> tuple[float, float]:
+    """Additive and proportional SDs of the two-exponential fit."""
+    err = np.exp(theta[4:])
+    if batch.error == "additive":
+        return float(err[0]), 0.0
+    if batch.error == "proportional":
+        return 0.0, float(err[0])
+    return float(err[0]), float(err[1])
+
+
+def _earliest_time(s: SubjectData, two: dict, sd: tuple[float, float]) -> float | None:
+    """Hours after the end of the last infusion before the last level from which the fast
+    exponential is below the residual SD of the level (None if not before the next dose)."""
+    start, amount, duration = subject_events(s)
+    ends = s.dose_start + np.maximum(s.dose_duration, 0.0)
+    last = s.time.max()
+    before = ends[ends <= last]
+    if before.size == 0:
+        return None
+    end = float(before.max())
+    later = s.dose_start[s.dose_start > end]
+    alpha, beta, c_a, _ = model.two_compartment_macro(
+        two["clearance"], two["central_volume"], two["intercompartmental_clearance"],
+        two["peripheral_volume"])
+    horizon = 12 * model.LN2 / float(alpha)
+    if later.size:
+        horizon = min(horizon, float(later.min()) - end)
+    tau = np.linspace(0.0, horizon, 481)
+    v1 = two["central_volume"]
+    fast = float(c_a) * model.concentration(end + tau, start, amount, duration,
+                                            float(alpha) * v1, v1)
+    total = model.two_compartment_concentration(
+        end + tau, start, amount, duration, two["clearance"], v1,
+        two["intercompartmental_clearance"], two["peripheral_volume"])
+    below = np.abs(fast) <= np.sqrt(sd[0] ** 2 + (sd[1] * total) ** 2)
+    if not below.any():
+        return None
+    # the first time from which the fast phase stays below the error
+    idx = np.flatnonzero(~below)
+    first = 0 if idx.size == 0 else idx.max() + 1
+    if first >= tau.size:
+        return None
+    return float(tau[first])
