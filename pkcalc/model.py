@@ -879,7 +879,6 @@ def two_compartment_and_gradient(t, start, amount, duration, clearance, central_
         return conc, None
     k10, k12, k21 = cl / v1, q / v1, q / v2
     s = k10 + k12 + k21
-    p = k10 * k21
     r = np.maximum(alpha - beta, 1e-300)
     # derivatives of k10, k12, k21 with respect to ln CL, ln V1, ln Q, ln V2
     zero = np.zeros_like(k10)

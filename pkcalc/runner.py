@@ -434,9 +434,7 @@ def run_population(study, options=None, *, colour: bool = False) -> Run:
                if r.adequacy is not None and r.adequacy.verdict == "distribution_phase"]
 
     def figures() -> dict[str, Any]:
-        from .plots import population_figure, vpc_figure
-
-        from .plots import fit_figure
+        from .plots import fit_figure, population_figure, vpc_figure
 
         figs = {"__diagnostics__": population_figure(result, used, conv)}
         for r in flagged:

@@ -35,11 +35,12 @@ import numpy as np
 from .. import model
 from ..core import FitOptions, SubjectData
 from .data import prepare_batch, subject_events
-from .objective import Batch, n_error_params, structural
+from .objective import Batch, n_error_params
 from .residuals import runs_test, trend_test
 from .starts import solve_starts
 
-__all__ = ["ALPHA", "Adequacy", "adequacy_counts", "check_adequacy", "counts_sentence", "levels_after_infusion"]
+__all__ = ["ALPHA", "Adequacy", "adequacy_counts", "check_adequacy", "counts_sentence",
+           "levels_after_infusion"]
 
 #: Level of the likelihood-ratio test that flags a distribution phase.
 ALPHA = 0.005
@@ -392,7 +393,7 @@ def _earliest_time(s: SubjectData, two: dict, sd: tuple[float, float]) -> float 
         return None
     end = float(before.max())
     later = s.dose_start[s.dose_start > end]
-    alpha, beta, c_a, _ = model.two_compartment_macro(
+    alpha, _, c_a, _ = model.two_compartment_macro(
         two["clearance"], two["central_volume"], two["intercompartmental_clearance"],
         two["peripheral_volume"])
     horizon = 12 * model.LN2 / float(alpha)
