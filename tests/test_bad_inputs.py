@@ -479,7 +479,12 @@ def option_cases() -> list[Case]:
                                                "--reference-weight", "70 L"), "dimension"),
         ("nca-terminal-bad", "F3", ("nca", "study.toml", "--terminal", "A"), "terminal"),
     ]
-    return [Case(i, r, a, study, 2, p) for i, r, a, p in rows]
+    out = [Case(i, r, a, study, 2, p) for i, r, a, p in rows]
+    for command in ("fit", "population"):  # the adequacy switch is true or false
+        files = {**study, "study.toml": STUDY_TOML + f'\n[{command}]\nadequacy = "no"\n'}
+        out.append(Case(f"{command}-adequacy-not-bool", "F3", (command, "study.toml"), files,
+                        2, f"{command}.adequacy"))
+    return out
 
 
 def clock_and_sdtm_cases() -> list[Case]:

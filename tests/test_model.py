@@ -470,3 +470,88 @@ def test_row_formulas_match_the_ode():
     assert model.bolus_concentration(10.0, 350.0, cl, v) == pytest.approx(sol.y[0][0],
                                                                           rel=1e-8)
     assert model.rate_for_plateau(8.0, cl) == pytest.approx(8.0 * cl)
+
+
+# --------------------------------------------------------------------------- two compartments
+def ode_two_compartments(t_eval, start, amount, duration, cl, v1, q, v2):
+    """solve_ivp of the two-compartment amounts, piecewise between event boundaries
+    (bolus jumps into the central compartment), rtol 1e-12 -- independent of the
+    closed form."""
+    bolus = duration == 0
+    marks = np.unique(np.concatenate([[0.0], start, (start + duration)[~bolus], t_eval]))
+
+    def rate(t):
+        on = (~bolus) & (start <= t) & (t < start + duration)
+        return float(np.sum(amount[on] / duration[on]))
+
+    def rhs(_t, y, r):
+        c1, c2 = y[0] / v1, y[1] / v2
+        return [r - cl * c1 - q * c1 + q * c2, q * c1 - q * c2]
+
+    out, y = {}, np.zeros(2)
+    for a, b in itertools.pairwise(marks):
+        y[0] += float(np.sum(amount[bolus & (start == a)]))
+        if a in t_eval:
+            out[a] = y[0] / v1
+        sol = solve_ivp(rhs, (a, b), y, args=(rate(0.5 * (a + b)),), rtol=1e-12, atol=1e-14,
+                        method="DOP853")
+        y = sol.y[:, -1].copy()
+    last = marks[-1]
+    y[0] += float(np.sum(amount[bolus & (start == last)]))
+    out[last] = y[0] / v1
+    return np.array([out[t] for t in t_eval])
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_two_compartments_match_solve_ivp(seed):
+    # Reference: scipy.integrate.solve_ivp of the two-compartment ODEs (independent solver).
+    rng = np.random.default_rng(seed)
+    start, amount, duration = random_regimen(rng)
+    cl, v1, q, v2 = rng.uniform(1, 10), rng.uniform(5, 30), rng.uniform(1, 30), \
+        rng.uniform(10, 100)
+    t = np.unique(np.concatenate([np.linspace(0, 60, 37), start[:3] + 0.1]))
+    ours = model.two_compartment_concentration(t, start, amount, duration, cl, v1, q, v2)
+    ref = ode_two_compartments(t, start, amount, duration, cl, v1, q, v2)
+    np.testing.assert_allclose(ours, ref, rtol=1e-8, atol=1e-10)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.floats(0.1, 50), st.floats(1, 200), st.floats(0.05, 100), st.floats(1, 500))
+def test_two_compartment_macro_constants_satisfy_the_standard_identities(cl, v1, q, v2):
+    # Gibaldi & Perrier, Pharmacokinetics, ch. 2 (from memory): alpha + beta =
+    # k10 + k12 + k21, alpha beta = k10 k21; the unit-bolus coefficients sum to 1, their
+    # initial slope is k10 + k12, and the area D/V1 (c_a/alpha + c_b/beta) equals D/CL.
+    a, b, ca, cb = model.two_compartment_macro(cl, v1, q, v2)
+    k10, k12, k21 = cl / v1, q / v1, q / v2
+    assert a >= b > 0
+    assert math.isclose(a + b, k10 + k12 + k21, rel_tol=1e-10)
+    assert math.isclose(a * b, k10 * k21, rel_tol=1e-10)
+    assert math.isclose(ca + cb, 1.0, rel_tol=1e-12)
+    assert math.isclose(ca * a + cb * b, k10 + k12, rel_tol=1e-8)
+    assert math.isclose(ca / a + cb / b, 1 / k10, rel_tol=1e-8)
+
+
+def test_two_compartment_gradient_matches_finite_differences():
+    # Reference: central differences of the closed form (independent of the analytic chain).
+    rng = np.random.default_rng(7)
+    start, amount, duration = random_regimen(rng)
+    t = np.linspace(0, 48, 41)
+    theta = np.log([4.0, 12.0, 9.0, 35.0])
+    _, grad = model.two_compartment_and_gradient(t, start, amount, duration, *np.exp(theta))
+    for j in range(4):
+        h = np.zeros(4)
+        h[j] = 1e-6
+        up = model.two_compartment_concentration(t, start, amount, duration, *np.exp(theta + h))
+        dn = model.two_compartment_concentration(t, start, amount, duration, *np.exp(theta - h))
+        np.testing.assert_allclose(grad[j], (up - dn) / 2e-6, rtol=1e-6, atol=1e-9)
+
+
+def test_two_compartments_without_exchange_are_one_compartment():
+    # Fact of the model: with Q -> 0 the periphery never fills and the central
+    # compartment is a one-compartment body of volume V1.
+    rng = np.random.default_rng(3)
+    start, amount, duration = random_regimen(rng)
+    t = np.linspace(0, 60, 61)
+    np.testing.assert_allclose(
+        model.two_compartment_concentration(t, start, amount, duration, 3.0, 20.0, 1e-9, 50.0),
+        model.concentration(t, start, amount, duration, 3.0, 20.0), rtol=1e-7, atol=1e-12)

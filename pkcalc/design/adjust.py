@@ -447,7 +447,23 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
                            f"{fit.n_obs} level(s) and the prior ({prior.source or 'inline'})")
     result.notes += fit.notes
     result.warnings += fit.warnings
+    _adequacy_of_levels(subject, fit, prior, result)
     return result
+
+
+def _adequacy_of_levels(subject: SubjectData, fit, prior, result: DesignResult) -> None:
+    """With enough levels, whether one compartment describes them (a distribution phase
+    makes every level-based estimate, and so the proposal, less trustworthy)."""
+    from ..fit import check_adequacy
+
+    a = check_adequacy([subject], [fit], FitOptions(prior=prior, blq="drop"))[subject.subject]
+    if a.verdict == "distribution_phase":
+        result.warnings.append("one compartment does not describe these levels: " + a.reason)
+        result.notes += a.notes
+    elif a.verdict == "adequate":
+        result.notes.append("one compartment is adequate for these levels: " + a.reason)
+    else:
+        result.notes.append(f"one-compartment adequacy not checked: {a.reason}")
 
 
 _CONTINUOUS_KEYS = ("rate_step", "dose_step", "max_rate", "max_loading", "max_loading_ratio")
