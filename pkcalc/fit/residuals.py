@@ -16,11 +16,10 @@
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
+from scipy.special import gammaln, stdtr
 
-__all__ = ["runs_count", "runs_test", "trend_test"]
+__all__ = ["runs_count", "runs_test", "runs_tests", "trend_test", "trend_tests"]
 
 
 def runs_count(signs: np.ndarray) -> int:
@@ -29,16 +28,46 @@ def runs_count(signs: np.ndarray) -> int:
     return 0 if signs.size == 0 else int(1 + np.count_nonzero(signs[1:] != signs[:-1]))
 
 
-def _runs_pmf(r: int, n_pos: int, n_neg: int) -> float:
-    """Exact probability of ``r`` runs with ``n_pos`` and ``n_neg`` signs in random order."""
-    total = math.comb(n_pos + n_neg, n_pos)
-    m, odd = divmod(r, 2)
-    if not odd:
-        ways = 2 * math.comb(n_pos - 1, m - 1) * math.comb(n_neg - 1, m - 1) if m >= 1 else 0
-    else:
-        ways = (math.comb(n_pos - 1, m) * math.comb(n_neg - 1, m - 1)
-                + math.comb(n_pos - 1, m - 1) * math.comb(n_neg - 1, m)) if m >= 1 else 0
-    return ways / total
+def _log_comb(n: np.ndarray, k: np.ndarray) -> np.ndarray:
+    """ln C(n, k), -inf where k < 0 or k > n."""
+    ok = (k >= 0) & (k <= n)
+    n_, k_ = np.where(ok, n, 0), np.where(ok, k, 0)
+    return np.where(ok, gammaln(n_ + 1) - gammaln(k_ + 1) - gammaln(n_ - k_ + 1), -np.inf)
+
+
+def runs_tests(residuals: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Runs test of every row (residuals already in time order; ``mask`` marks the
+    ones to use -- zero and non-finite residuals are skipped).
+
+    Returns
+    -------
+    runs : ndarray of int, shape (B,)
+    p : ndarray, shape (B,)
+        Exact ``P(R <= runs)`` (see the module); NaN when a row has one sign only
+        or fewer than 3 usable residuals.
+    """
+    x = np.asarray(residuals, float)
+    use = np.asarray(mask, bool) & np.isfinite(x) & (x != 0)
+    n = x.shape[1]
+    # compact each row's usable signs to the left, in order
+    order = np.argsort(~use, axis=1, kind="stable")
+    sign = np.take_along_axis(np.where(use, np.sign(x), 0.0), order, axis=1)
+    count = use.sum(axis=1)
+    valid_pair = np.arange(1, n)[None, :] < count[:, None]
+    runs = np.where(count > 0, 1 + (valid_pair & (sign[:, 1:] != sign[:, :-1])).sum(axis=1), 0)
+    n_pos, n_neg = (sign > 0).sum(axis=1), (sign < 0).sum(axis=1)
+    r = np.arange(2, max(n, 2) + 1)[None, :]                       # possible run counts
+    m, odd = r // 2, r % 2 == 1
+    a, c = (n_pos - 1)[:, None], (n_neg - 1)[:, None]
+    even_ways = np.log(2.0) + _log_comb(a, m - 1) + _log_comb(c, m - 1)
+    odd_ways = np.logaddexp(_log_comb(a, m) + _log_comb(c, m - 1),
+                            _log_comb(a, m - 1) + _log_comb(c, m))
+    log_total = _log_comb((n_pos + n_neg)[:, None], n_pos[:, None])
+    with np.errstate(invalid="ignore"):
+        pmf = np.exp(np.where(odd, odd_ways, even_ways) - log_total)
+    p = np.where(r <= runs[:, None], np.nan_to_num(pmf), 0.0).sum(axis=1)
+    p = np.where((n_pos > 0) & (n_neg > 0) & (count >= 3), np.minimum(p, 1.0), np.nan)
+    return runs.astype(int), p
 
 
 def runs_test(residuals: np.ndarray) -> tuple[int, float | None]:
@@ -53,51 +82,46 @@ def runs_test(residuals: np.ndarray) -> tuple[int, float | None]:
 
     Examples
     --------
-    >>> runs_test(np.array([1.0, 2.0, -1.0, -2.0]))      # ++-- : 2 runs
-    (2, 0.3333333333333333)
+    >>> runs, p = runs_test(np.array([1.0, 2.0, -1.0, -2.0]))   # ++-- : 2 runs
+    >>> runs, round(p, 12)                                     # 2 of the 6 orders
+    (2, 0.333333333333)
     """
-    x = np.asarray(residuals, float)
-    x = x[np.isfinite(x) & (x != 0)]
-    signs = np.sign(x)
-    n_pos, n_neg = int((signs > 0).sum()), int((signs < 0).sum())
-    runs = runs_count(signs)
-    if n_pos == 0 or n_neg == 0 or x.size < 3:
-        return runs, None
-    p = sum(_runs_pmf(r, n_pos, n_neg) for r in range(2, runs + 1))
-    return runs, float(min(p, 1.0))
+    x = np.asarray(residuals, float)[None, :]
+    runs, p = runs_tests(x, np.ones_like(x, bool))
+    return int(runs[0]), None if np.isnan(p[0]) else float(p[0])
 
 
-def _average_ranks(x: np.ndarray) -> np.ndarray:
-    """Ranks 1..n with ties given their average rank."""
-    order = np.argsort(x, kind="stable")
-    xs = x[order]
-    new = np.r_[True, xs[1:] != xs[:-1]]
-    group = np.cumsum(new) - 1
-    first = np.flatnonzero(new)
-    last = np.r_[first[1:], xs.size] - 1
-    ranks = np.empty(x.size)
-    ranks[order] = 0.5 * (first + last)[group] + 1.0
-    return ranks
-
-
-def trend_test(residuals: np.ndarray, time_since_dose: np.ndarray) -> float | None:
-    """Two-sided p-value of Spearman's rank correlation between residuals and the time
-    since the last dose (the t approximation with ``n - 2`` degrees of freedom, as
-    ``scipy.stats.spearmanr``); None with fewer than 4 levels or no spread in either."""
-    from scipy.special import stdtr
+def trend_tests(residuals: np.ndarray, time_since_dose: np.ndarray, mask: np.ndarray
+                ) -> np.ndarray:
+    """Two-sided p-values of Spearman's rank correlation between residuals and the
+    time since the last dose, per row (the t approximation with ``n - 2`` degrees of
+    freedom, ties at their average rank, as ``scipy.stats.spearmanr``); NaN with
+    fewer than 4 usable levels or no spread in either."""
+    from scipy.stats import rankdata
 
     x = np.asarray(residuals, float)
     t = np.asarray(time_since_dose, float)
-    ok = np.isfinite(x) & np.isfinite(t)
-    x, t = x[ok], t[ok]
-    if x.size < 4 or np.ptp(x) == 0 or np.ptp(t) == 0:
-        return None
-    rx, rt = _average_ranks(x), _average_ranks(t)
-    rx -= rx.mean()
-    rt -= rt.mean()
-    r = float(rx @ rt / math.sqrt((rx @ rx) * (rt @ rt)))
-    df = x.size - 2
-    if abs(r) >= 1.0:
-        return 0.0
-    stat = r * math.sqrt(df / (1.0 - r * r))
-    return float(2 * stdtr(df, -abs(stat)))
+    use = np.asarray(mask, bool) & np.isfinite(x) & np.isfinite(t)
+    n = use.sum(axis=1)
+    # padding ranks after every usable value, so it cannot disturb their ranks
+    rx = rankdata(np.where(use, x, np.inf), axis=1)
+    rt = rankdata(np.where(use, t, np.inf), axis=1)
+    nn = np.maximum(n, 1)
+    dx = np.where(use, rx - (np.where(use, rx, 0).sum(axis=1) / nn)[:, None], 0.0)
+    dt = np.where(use, rt - (np.where(use, rt, 0).sum(axis=1) / nn)[:, None], 0.0)
+    sxx, stt = (dx * dx).sum(axis=1), (dt * dt).sum(axis=1)
+    ok = (n >= 4) & (sxx > 0) & (stt > 0)
+    r = np.where(ok, (dx * dt).sum(axis=1) / np.sqrt(np.where(ok, sxx * stt, 1.0)), 0.0)
+    r = np.clip(r, -1.0, 1.0)
+    df = np.maximum(n - 2, 1)
+    with np.errstate(divide="ignore"):
+        stat = np.abs(r) * np.sqrt(df / np.maximum(1.0 - r * r, 0.0))
+    p = np.where(np.abs(r) >= 1.0, 0.0, 2 * stdtr(df, -stat))
+    return np.where(ok, p, np.nan)
+
+
+def trend_test(residuals: np.ndarray, time_since_dose: np.ndarray) -> float | None:
+    """:func:`trend_tests` of one series; None when it cannot be computed."""
+    x = np.asarray(residuals, float)[None, :]
+    p = trend_tests(x, np.asarray(time_since_dose, float)[None, :], np.ones_like(x, bool))
+    return None if np.isnan(p[0]) else float(p[0])

@@ -50,7 +50,8 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
              max_iter: int = 200, tol: float = 1e-9, xtol: float = 1e-6,
              lower: float | np.ndarray = -30.0, upper: float | np.ndarray = 30.0,
              reference: tuple[np.ndarray, np.ndarray] | None = None,
-             reference_tol: tuple[float, float] = (1e-4, 1e-4)) -> Solution:
+             reference_tol: tuple[float, float] = (1e-4, 1e-4),
+             settle: tuple[int, float] | None = None) -> Solution:
     """Minimise many small problems at once.
 
     Parameters
@@ -69,6 +70,10 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
         there is none).  A row that comes within ``reference_tol`` (largest
         log-parameter difference, objective difference) of it has reached that
         optimum and stops there.
+    settle : (int, float), optional
+        ``(k, drop)``: a row whose objective fell by less than ``drop`` (absolute)
+        over its last ``k`` iterations stops as converged -- for callers that need
+        the objective, not the point (a flat ridge is crawled along slowly).
 
     Returns
     -------
@@ -88,7 +93,8 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
     iterations = np.zeros(b, int)
     message = ["" if a else "objective not finite at the start" for a in active]
     eye = np.eye(q)
-    for _ in range(max_iter):
+    history = None if settle is None else np.full((settle[0], b), np.inf)
+    for it in range(max_iter):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
@@ -132,6 +138,15 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
             for r in acc[near & ~done]:
                 message[r] = "reached the optimum found from the first start"
             done |= near
+        if history is not None:
+            k, drop = settle
+            past = history[it % k, idx].copy()
+            history[it % k, idx] = obj[idx]
+            flat = (it >= k) & (past - obj[idx] < drop)
+            for r in idx[flat & active[idx]]:
+                message[r] = f"objective changed by less than {drop:g} over {k} iterations"
+            converged[idx[flat]] = True
+            active[idx[flat]] = False
         converged[acc[done]] = True
         active[acc[done]] = False
         stuck = rej[lam[rej] > 1e12]

@@ -108,18 +108,20 @@ def bounds(batch: Batch, q: int) -> np.ndarray:
     return lower
 
 
-def solve_starts(batch: Batch, theta0: np.ndarray, opts: FitOptions, n_starts: int):
+def solve_starts(batch: Batch, theta0: np.ndarray, opts: FitOptions, n_starts: int, *,
+                 max_iter: int = 200, settle: tuple[int, float] | None = None):
     """Solve the first start of every subject, then the other starts; an other start
     that reaches the first start's optimum stops there (it agrees)."""
     if n_starts == 1 or opts.weighting == "inverse_predicted_squared":
-        return solve(batch, theta0, opts)
+        return solve(batch, theta0, opts, max_iter=max_iter, settle=settle)
     which = np.arange(theta0.shape[0]) % n_starts
     first, others = np.flatnonzero(which == 0), np.flatnonzero(which > 0)
-    sol1 = solve(batch.rows(first), theta0[first], opts)
+    sol1 = solve(batch.rows(first), theta0[first], opts, max_iter=max_iter, settle=settle)
     ref_theta = np.repeat(np.where(sol1.converged[:, None], sol1.theta, np.nan),
                           n_starts - 1, axis=0)
     ref_obj = np.repeat(np.where(sol1.converged, sol1.obj, np.nan), n_starts - 1)
-    sol2 = solve(batch.rows(others), theta0[others], opts, reference=(ref_theta, ref_obj))
+    sol2 = solve(batch.rows(others), theta0[others], opts, reference=(ref_theta, ref_obj),
+                 max_iter=max_iter, settle=settle)
     out = Solution(np.empty_like(theta0), np.empty(theta0.shape[0]),
                    np.empty((theta0.shape[0], sol1.grad.shape[1])),
                    np.empty((theta0.shape[0], *sol1.info.shape[1:])),
@@ -133,7 +135,8 @@ def solve_starts(batch: Batch, theta0: np.ndarray, opts: FitOptions, n_starts: i
     return out
 
 
-def solve(batch: Batch, theta0: np.ndarray, opts: FitOptions, reference=None):
+def solve(batch: Batch, theta0: np.ndarray, opts: FitOptions, reference=None, *,
+          max_iter: int = 200, settle: tuple[int, float] | None = None):
     n_rows = batch.t.shape[0]
 
     def fun(theta, idx):
@@ -154,12 +157,14 @@ def solve(batch: Batch, theta0: np.ndarray, opts: FitOptions, reference=None):
 
         ref = None if reference is None else (reference[0][:, :p], reference[1])
         sol = minimise(profiled, theta0[:, :p], lower=lower[:, :p], reference=ref,
+                       max_iter=max_iter, settle=settle,
                        reference_tol=(1e-3, AGREE_TOL))
         f = structural(batch, sol.theta)[0]
         sol.theta = np.concatenate([sol.theta, profiled_sigma(batch, f, floor)[:, None]], 1)
         return sol
     if opts.weighting != "inverse_predicted_squared":
-        return minimise(fun, theta0, lower=lower, reference=reference,
+        return minimise(fun, theta0, lower=lower, reference=reference, max_iter=max_iter,
+                        settle=settle,
                         reference_tol=(1e-3, AGREE_TOL))
     # iteratively reweighted: w = 1/f^2 from the current prediction
     theta = theta0
