@@ -279,3 +279,18 @@ def test_map_adjustment_checks_adequacy_when_levels_allow():
                for w in rich.warnings)
     sparse = adjust_map(doses, list(zip(t[-2:], c[-2:], strict=True)), prior, plateau=8.0)
     assert any(n.startswith("one-compartment adequacy not checked") for n in sparse.notes)
+
+
+def test_flagged_subject_plot_shows_both_curves():
+    from pkcalc.plots import fit_figure
+
+    subs = simulate(2, 25, noise=0.05, two=True)
+    fits, _ = fit_subjects(subs, FitOptions())
+    found = check_adequacy(subs, fits, FitOptions())
+    fits[0].adequacy = found[fits[0].subject]
+    assert fits[0].adequacy.verdict == "distribution_phase"
+    labels = [ln.get_label() for ln in fit_figure(fits[0]).axes[0].get_lines()]
+    assert "two-exponential fit (sensitivity check)" in labels
+    fits[1].adequacy = None
+    labels = [ln.get_label() for ln in fit_figure(fits[1]).axes[0].get_lines()]
+    assert "two-exponential fit (sensitivity check)" not in labels
