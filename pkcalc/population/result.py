@@ -1,0 +1,116 @@
+"""The result of a population estimate (every method)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .._format import format_table, short
+from ..fit import FitResult
+
+
+@dataclass
+class PopulationResult:
+    """Population estimates (canonical units; per kg when ``covariate == 'per_kg'``).
+
+    Attributes
+    ----------
+    method : str
+        ``two-stage`` or ``iterative``.
+    typical : dict of str to float
+        Typical clearance and volume (at the reference weight).
+    typical_se : dict of str to float or None
+        Standard errors (bootstrap when run, otherwise sqrt(omega^2/N) on the log
+        scale times the value).
+    typical_ci : dict of str to (float, float) or None
+        95 % intervals (bootstrap percentiles, or log-scale Wald).
+    variability_cv_percent : dict of str to float
+        Between-subject CV, ``100 sqrt(exp(omega^2) - 1)``.
+    omega : ndarray, shape (2, 2)
+        Covariance of ``ln CL, ln V`` between subjects.
+    correlation : float
+    exponents : dict of str to float
+        Weight exponents (fixed or estimated).
+    exponent_ci : dict of str to (float, float) or None
+    residual_error : dict of str to float
+    shrinkage_percent : dict of str to float
+        ``100 (1 - SD(eta_i) / omega)`` (iterative only).
+    subjects : list of FitResult
+        Individual estimates (MAP under the final population prior for the
+        iterative method).
+    failures : list of (str, str)
+    iterations : int
+    objective_per_iteration : list of float
+        Approximate ``-2 ln L`` (first-order Laplace form) per iteration.
+    converged : bool
+    percentiles : dict
+        Two-stage: median and 5th/95th percentiles of the individual estimates.
+    notes, warnings : list of str
+    """
+
+    method: str
+    typical: dict[str, float]
+    variability_cv_percent: dict[str, float]
+    omega: np.ndarray
+    residual_error: dict[str, float]
+    subjects: list[FitResult]
+    failures: list[tuple[str, str]]
+    covariate: str = "none"
+    reference_weight: float | None = None
+    exponents: dict[str, float] = field(default_factory=dict)
+    exponent_ci: dict[str, tuple[float, float]] | None = None
+    typical_se: dict[str, float | None] = field(default_factory=dict)
+    typical_ci: dict[str, tuple[float, float] | None] = field(default_factory=dict)
+    correlation: float | None = None
+    shrinkage_percent: dict[str, float] = field(default_factory=dict)
+    iterations: int = 0
+    objective_per_iteration: list[float] = field(default_factory=list)
+    converged: bool = True
+    percentiles: dict[str, dict[str, float]] = field(default_factory=dict)
+    bootstrap: dict[str, object] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    eta: np.ndarray | None = None
+    population_predictions: dict[str, np.ndarray] = field(default_factory=dict)
+
+    def summary(self) -> str:
+        """Plain-text summary (canonical units)."""
+        rows = [[k, v, self.typical_se.get(k), self.variability_cv_percent.get(k),
+                 self.shrinkage_percent.get(k)] for k, v in self.typical.items()]
+        lines = [f"Population ({self.method}, covariate: {self.covariate}); "
+                 f"{len(self.subjects)} subjects, {self.iterations} iterations, "
+                 f"{'converged' if self.converged else 'NOT converged'}",
+                 format_table(["parameter", "typical", "SE", "CV %", "shrinkage %"], rows)]
+        if self.exponents:
+            lines.append("weight exponents: " + ", ".join(
+                f"{k} {short(v)}" for k, v in self.exponents.items()))
+        lines.append("residual error: " + ", ".join(
+            f"{k} {short(v)}" for k, v in self.residual_error.items()))
+        lines += [f"note: {n}" for n in self.notes]
+        lines += [f"warning: {w}" for w in self.warnings]
+        return "\n".join(lines)
+
+    def _repr_html_(self) -> str:
+        """Notebook view: the caution, the table and the summary."""
+        from ._format import result_html
+
+        return result_html(self.summary(), self.to_frame())
+
+    def to_frame(self):
+        """One row per subject: individual estimates, ln deviations from typical, weight."""
+        import pandas as pd
+
+        rows = []
+        for i, r in enumerate(self.subjects):
+            row = {"subject": r.subject, "weight [kg]": r.weight,
+                   "clearance [L/h]": r.clearance, "volume [L]": r.volume,
+                   "half_life [h]": r.estimates["half_life"].value}
+            if r.clock_origin:
+                row["first_dose_clock"] = r.clock_origin
+            if self.eta is not None:
+                row["ln_clearance_deviation"], row["ln_volume_deviation"] = self.eta[i]
+            rows.append(row)
+        return pd.DataFrame(rows)
+
+
