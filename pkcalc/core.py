@@ -29,8 +29,12 @@ __all__ = [
     "WEIGHTINGS",
     "DesignCase",
     "DoseEvent",
+    "EFFECT_FORMS",
+    "Effect",
     "FitOptions",
     "NcaOptions",
+    "POPULATION_METHODS",
+    "PopulationModel",
     "PopulationOptions",
     "Prior",
     "ScenarioInput",
@@ -196,8 +200,9 @@ class SubjectData:
         Line numbers of the levels in their file (for messages).
     dose_start, dose_amount, dose_duration : ndarray, h, mg, h
         Dose events (duration 0 for a bolus).
-    covariates : dict of str to float
-        From the subjects table; ``weight`` in kg.
+    covariates : dict of str to float or str
+        From the subjects table; ``weight`` in kg; text columns (categorical
+        factors) as text.
     notes : tuple of str
         Data-handling notes (sorting, BLQ numbers below LLOQ).
     clock_origin : str or None
@@ -217,7 +222,7 @@ class SubjectData:
     dose_start: np.ndarray
     dose_amount: np.ndarray
     dose_duration: np.ndarray
-    covariates: dict[str, float] = field(default_factory=dict)
+    covariates: dict[str, float | str] = field(default_factory=dict)
     notes: tuple[str, ...] = ()
     initial_concentration: float = 0.0
     clock_origin: str | None = None
@@ -384,11 +389,96 @@ class FitOptions:
         return "least_squares" if self.weighting else "likelihood"
 
 
+EFFECT_FORMS = ("power", "linear", "categorical")
+POPULATION_METHODS = ("marginal", "iterative", "two-stage")
+
+
+@dataclass(frozen=True)
+class Effect:
+    """One covariate effect of a population model, from a subjects-table column.
+
+    Attributes
+    ----------
+    column : str
+        The subjects-table column (``weight``, or any other).
+    parameter : str
+        ``clearance`` or ``volume``.
+    form : str
+        ``power``: ``typical x (value / reference)^exponent``; ``linear``:
+        ``typical x (1 + slope (value - reference))``; ``categorical``: one
+        multiplicative factor per level other than the reference level.
+    reference : float, str or None
+        The reference value (power, linear; default the median over the
+        subjects) or level (categorical; default the most frequent).
+    fixed : float or None
+        A fixed exponent (power only; e.g. 0.75 for allometric clearance):
+        nothing is estimated.
+    """
+
+    column: str
+    parameter: str
+    form: str = "power"
+    reference: float | str | None = None
+    fixed: float | None = None
+
+    def __post_init__(self) -> None:
+        _check(isinstance(self.column, str) and self.column.strip() != "", "column",
+               "must name a subjects-table column", self.column)
+        _check(self.parameter in ("clearance", "volume"), "parameter",
+               "must be 'clearance' or 'volume'", self.parameter)
+        _check(self.form in EFFECT_FORMS, "form", f"must be one of {', '.join(EFFECT_FORMS)}",
+               self.form)
+        _check(self.fixed is None or (self.form == "power" and _finite(self.fixed)), "fixed",
+               "a fixed exponent applies to the power form only", self.fixed)
+        _check(self.reference is None or self.form == "categorical"
+               or (_finite(self.reference) and (self.form == "linear" or self.reference > 0)),
+               "reference", "must be a positive number (power) or a number (linear)",
+               self.reference)
+
+    @property
+    def label(self) -> str:
+        """``weight on clearance (power)`` -- the words the model was declared in."""
+        extra = "" if self.fixed is None else f" fixed {self.fixed:g}"
+        ref = "" if self.reference is None else f" around {self.reference}"
+        return f"{self.column} on {self.parameter} ({self.form}{extra}{ref})"
+
+    @property
+    def estimated(self) -> bool:
+        return self.fixed is None
+
+
+@dataclass(frozen=True)
+class PopulationModel:
+    """A named set of covariate effects (the base model has none)."""
+
+    name: str
+    effects: tuple[Effect, ...] = ()
+
+    def __post_init__(self) -> None:
+        _check(isinstance(self.name, str) and self.name != "", "name", "must not be empty",
+               self.name)
+        _check(all(isinstance(e, Effect) for e in self.effects), "effects",
+               "must be Effect objects", self.effects)
+        keys = [(e.column, e.parameter) for e in self.effects]
+        _check(len(set(keys)) == len(keys), "effects",
+               "name each column at most once per parameter", keys)
+
+
 @dataclass(frozen=True)
 class PopulationOptions:
-    """Validated options of ``pkcalc population``."""
+    """Validated options of ``pkcalc population``.
 
-    method: str = "iterative"
+    ``method`` ``marginal`` (default) maximises the marginal likelihood, the
+    individual deviations integrated out by the Laplace approximation
+    (``nodes = 1``) or adaptive Gauss-Hermite quadrature (``nodes`` per
+    dimension); ``iterative`` and ``two-stage`` are the two-stage methods.
+    ``between_subject`` is ``full`` (a correlation of clearance and volume) or
+    ``diagonal``.  ``effects`` are the covariate effects of the model; ``models``
+    several models to compare; ``stepwise`` candidate effects for forward
+    inclusion (``p_in``) and backward elimination (``p_out``).
+    """
+
+    method: str = "marginal"
     error_model: str = "proportional"
     blq: str = "likelihood"
     covariate: str = "none"
@@ -397,12 +487,34 @@ class PopulationOptions:
     seed: int = 1
     vpc_replicates: int = 200
     adequacy: bool = True
+    nodes: int = 1
+    between_subject: str = "full"
+    effects: tuple[Effect, ...] = ()
+    models: tuple[PopulationModel, ...] = ()
+    stepwise: tuple[Effect, ...] = ()
+    p_in: float = 0.05
+    p_out: float = 0.01
 
     def __post_init__(self) -> None:
         _check(isinstance(self.adequacy, bool), "adequacy", "must be true or false",
                self.adequacy)
-        _check(self.method in ("two-stage", "iterative"), "method",
-               "must be 'two-stage' or 'iterative'", self.method)
+        _check(self.method in POPULATION_METHODS, "method",
+               f"must be one of {', '.join(POPULATION_METHODS)}", self.method)
+        _check(isinstance(self.nodes, int) and not isinstance(self.nodes, bool)
+               and 1 <= self.nodes <= 15, "nodes", "must be a whole number from 1 to 15",
+               self.nodes)
+        _check(self.between_subject in ("full", "diagonal"), "between_subject",
+               "must be 'full' or 'diagonal'", self.between_subject)
+        _check(all(isinstance(e, Effect) for e in self.effects + self.stepwise), "effects",
+               "must be Effect objects", self.effects)
+        _check(all(isinstance(m, PopulationModel) for m in self.models), "models",
+               "must be PopulationModel objects", self.models)
+        for name in ("p_in", "p_out"):
+            x = getattr(self, name)
+            _check(_finite(x) and 0 < x < 1, name, "must be a probability between 0 and 1", x)
+        _check(self.method == "marginal" or not (self.effects or self.models or self.stepwise),
+               "method", "covariate effects, model comparison and stepwise selection need "
+               "the marginal method", self.method)
         _check(self.error_model in ERROR_MODELS, "error_model",
                f"must be one of {', '.join(ERROR_MODELS)}", self.error_model)
         _check(self.blq in BLQ_METHODS, "blq", f"must be one of {', '.join(BLQ_METHODS)}",

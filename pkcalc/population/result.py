@@ -47,6 +47,18 @@ class PopulationResult:
     percentiles : dict
         Two-stage: median and 5th/95th percentiles of the individual estimates.
     notes, warnings : list of str
+    subject_means : dict of str to (float, float)
+        Each subject's typical ``ln CL, ln V`` (with its covariates).
+    model_name, effects, parameters : str, list of dict
+        Marginal likelihood: the model, each covariate effect and every estimated
+        parameter with its SE and 95 % interval (the covariance step).
+    objective, n_parameters, n_levels, aic, bic : float, int
+        ``-2 ln L`` of the marginal likelihood, parameters, levels; AIC ``= -2 ln L
+        + 2 p``, BIC ``= -2 ln L + p ln(levels)``.
+    parameter_names, parameter_correlation, condition_number
+        The covariance step on the estimation scale.
+    nodes : int
+        Gauss-Hermite nodes per dimension (1: Laplace).
     """
 
     method: str
@@ -73,6 +85,22 @@ class PopulationResult:
     warnings: list[str] = field(default_factory=list)
     eta: np.ndarray | None = None
     population_predictions: dict[str, np.ndarray] = field(default_factory=dict)
+    subject_means: dict[str, tuple[float, float]] = field(default_factory=dict)
+    # marginal likelihood (method "marginal")
+    model_name: str = "base"
+    effects: list[dict] = field(default_factory=list)
+    parameters: list[dict] = field(default_factory=list)
+    objective: float | None = None
+    n_parameters: int | None = None
+    n_levels: int | None = None
+    aic: float | None = None
+    bic: float | None = None
+    parameter_names: list[str] = field(default_factory=list)
+    parameter_correlation: np.ndarray | None = None
+    condition_number: float | None = None
+    nodes: int | None = None
+    between_subject: str = "full"
+    seconds: float | None = None
 
     def summary(self) -> str:
         """Plain-text summary (canonical units)."""
@@ -87,6 +115,14 @@ class PopulationResult:
                 f"{k} {short(v)}" for k, v in self.exponents.items()))
         lines.append("residual error: " + ", ".join(
             f"{k} {short(v)}" for k, v in self.residual_error.items()))
+        if self.objective is not None:
+            lines.append(f"-2 ln L {short(self.objective, 8)}, {self.n_parameters} parameters, "
+                         f"AIC {short(self.aic, 8)}, BIC {short(self.bic, 8)}")
+        if self.parameters:
+            lines.append(format_table(
+                ["parameter", "value", "SE", "RSE %", "CI low", "CI high"],
+                [[p["name"], p["value"], p["se"], p["rse_percent"], p["ci_low"], p["ci_high"]]
+                 for p in self.parameters]))
         lines += [f"note: {n}" for n in self.notes]
         lines += [f"warning: {w}" for w in self.warnings]
         return "\n".join(lines)

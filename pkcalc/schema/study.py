@@ -258,8 +258,9 @@ class Failures:
         return [(f"subject '{sid}'", PkcalcInputError(p)) for sid, p in self.by_subject.items()]
 
 
-def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, float]]:
-    """The subjects table: weight, initial_concentration and numeric covariates by subject."""
+def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, float | str]]:
+    """The subjects table by subject: weight, initial_concentration, numeric covariates and
+    text covariates (categorical factors; an empty cell is a missing value)."""
     problems: list[Problem] = []
     _require(sb, ["subject"], problems)
     if problems:
@@ -279,7 +280,7 @@ def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, floa
             if unit is not None or numeric.notna().sum() == (raw != "").sum():
                 table[key] = numeric
             else:
-                warnings.append(f"{sb.file}: text column '{col}' kept out of the covariates")
+                table[key] = raw.where(raw.str.strip() != "").str.strip()
     dup = ids[ids.duplicated()]
     if len(dup):
         problems.append(Problem(f"subject '{dup.iloc[0]}' appears twice", file=sb.file,
@@ -291,7 +292,8 @@ def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, floa
             problems.append(Problem(f"{key} {rule} (line {line})", file=sb.file, field=key))
     if problems:
         raise PkcalcInputError(problems)
-    return {sid: {k: float(v.iloc[i]) for k, v in table.items() if not pd.isna(v.iloc[i])}
+    return {sid: {k: (v.iloc[i] if isinstance(v.iloc[i], str) else float(v.iloc[i]))
+                  for k, v in table.items() if not pd.isna(v.iloc[i])}
             for i, sid in enumerate(ids)}
 
 

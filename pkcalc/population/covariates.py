@@ -1,0 +1,210 @@
+"""Covariate effects as a mean function of the population model.
+
+For subject ``i`` the typical log-parameters are::
+
+    ln CL_i = b_CL + sum over the clearance effects
+    ln V_i  = b_V  + sum over the volume effects
+
+with, for an effect of column ``c`` (value ``c_i``):
+
+- power:       ``e ln(c_i / ref)``          (``e`` estimated, or fixed);
+- linear:      ``ln(1 + s (c_i - ref))``    (``s`` estimated; the typical value is
+  ``typical (1 + s (c_i - ref))``, which must stay positive);
+- categorical: ``g_l`` for subjects of level ``l`` (one per level other than the
+  reference; the factor on the typical value is ``exp(g_l)``).
+
+References default to the median (numeric) or the most frequent level (text).
+A text column named with the power form becomes categorical.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from ..core import Effect, SubjectData
+
+__all__ = ["CovariateError", "Design", "build_design", "weight_effects"]
+
+
+class CovariateError(ValueError):
+    """A covariate model that cannot be estimated on these subjects (the message says
+    which column and which subjects)."""
+
+
+@dataclass
+class _Term:
+    effect: Effect
+    row: int                     # 0 clearance, 1 volume
+    values: np.ndarray           # ln(c/ref), c - ref, or one-hot (N, L-1)
+    names: list[str]             # names of the estimated parameters (empty when fixed)
+    levels: list[str]
+
+
+@dataclass
+class Design:
+    """The mean function of one population model on one set of subjects.
+
+    Attributes
+    ----------
+    effects : tuple of Effect
+        With references and forms resolved.
+    names : list of str
+        Names of the fixed-effect parameters: ``ln typical clearance``, ``ln typical
+        volume``, then one per estimated effect parameter.
+    """
+
+    effects: tuple[Effect, ...]
+    names: list[str]
+    terms: list[_Term]
+    n_subjects: int
+
+    @property
+    def n_beta(self) -> int:
+        return len(self.names)
+
+    def means(self, beta: np.ndarray) -> np.ndarray:
+        """Typical ``ln CL, ln V`` of every subject, shape (N, 2); ``inf`` where a linear
+        effect makes a typical value non-positive."""
+        mu = np.tile(np.asarray(beta[:2], float), (self.n_subjects, 1))
+        k = 2
+        for term in self.terms:
+            e = term.effect
+            if e.form == "categorical":
+                m = len(term.names)
+                mu[:, term.row] += term.values @ beta[k:k + m]
+                k += m
+            elif e.form == "linear":
+                arg = 1.0 + beta[k] * term.values
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    mu[:, term.row] += np.where(arg > 0, np.log(np.where(arg > 0, arg, 1.0)),
+                                                np.inf)
+                k += 1
+            elif e.fixed is not None:
+                mu[:, term.row] += e.fixed * term.values
+            else:
+                mu[:, term.row] += beta[k] * term.values
+                k += 1
+        return mu
+
+    def start(self, ln_typical: np.ndarray) -> np.ndarray:
+        """Fixed-effect starting values: the given typical values, no effect."""
+        beta = np.zeros(self.n_beta)
+        beta[:2] = ln_typical
+        return beta
+
+    def describe(self, beta: np.ndarray) -> list[dict]:
+        """Each estimated effect parameter in plain words with its natural value."""
+        out, k = [], 2
+        for term in self.terms:
+            e = term.effect
+            for j, name in enumerate(term.names):
+                value = float(beta[k + j])
+                if e.form == "categorical":
+                    out.append({"name": name, "effect": e.label, "kind": "factor",
+                                "level": term.levels[j], "reference": e.reference,
+                                "log_value": value, "value": math.exp(value)})
+                else:
+                    out.append({"name": name, "effect": e.label,
+                                "kind": "exponent" if e.form == "power" else "slope",
+                                "reference": e.reference, "value": value})
+            k += len(term.names)
+        return out
+
+
+def weight_effects(covariate: str, reference_weight: float) -> tuple[Effect, ...]:
+    """The body-weight models of the two-stage methods as effects."""
+    if covariate == "none":
+        return ()
+    if covariate == "per_kg":
+        return (Effect("weight", "clearance", "power", 1.0, 1.0),
+                Effect("weight", "volume", "power", 1.0, 1.0))
+    if covariate == "allometric":
+        return (Effect("weight", "clearance", "power", reference_weight, 0.75),
+                Effect("weight", "volume", "power", reference_weight, 1.0))
+    return (Effect("weight", "clearance", "power", reference_weight),
+            Effect("weight", "volume", "power", reference_weight))
+
+
+def _values(subjects: list[SubjectData], column: str) -> list:
+    missing = [s.subject for s in subjects if column not in s.covariates]
+    if len(missing) == len(subjects):
+        raise CovariateError(f"no column '{column}' in the subjects table (or no value in it)")
+    if missing:
+        shown = ", ".join(missing[:8]) + (f" and {len(missing) - 8} more" if len(missing) > 8
+                                          else "")
+        raise CovariateError(f"column '{column}' has no value for subject(s) {shown}: give "
+                             "every subject a value or leave the effect out")
+    return [s.covariates[column] for s in subjects]
+
+
+def build_design(subjects: list[SubjectData], effects: tuple[Effect, ...]) -> Design:
+    """Resolve references and forms and build the mean function.
+
+    Raises
+    ------
+    CovariateError
+        A column missing for some subjects, a constant column, a level with one
+        subject, a non-positive value under a power effect.
+    """
+    names = ["ln typical clearance", "ln typical volume"]
+    terms, resolved = [], []
+    for e in effects:
+        raw = _values(subjects, e.column)
+        text = any(isinstance(x, str) for x in raw)
+        if text and e.form == "linear":
+            raise CovariateError(f"column '{e.column}' holds text: a linear effect needs "
+                                 "numbers (a text column is a categorical factor)")
+        row = 0 if e.parameter == "clearance" else 1
+        if text or e.form == "categorical":
+            e, term = _categorical(e, [str(x) for x in raw], row)
+        else:
+            e, term = _numeric(e, np.asarray(raw, float), row, subjects)
+        terms.append(term)
+        resolved.append(e)
+        names += term.names
+    return Design(tuple(resolved), names, terms, len(subjects))
+
+
+def _categorical(e: Effect, raw: list[str], row: int):
+    counts = Counter(raw)
+    if len(counts) < 2:
+        raise CovariateError(f"column '{e.column}' has the same level for every subject: its "
+                             "effect cannot be estimated")
+    single = sorted(level for level, c in counts.items() if c == 1)
+    if single:
+        raise CovariateError(f"level(s) {', '.join(repr(x) for x in single)} of column "
+                             f"'{e.column}' have one subject: too few to estimate a factor "
+                             "(merge levels or leave the effect out)")
+    ref = e.reference if e.reference is not None else \
+        sorted(counts, key=lambda x: (-counts[x], x))[0]
+    if str(ref) not in counts:
+        raise CovariateError(f"reference level {ref!r} does not occur in column '{e.column}'")
+    levels = sorted(x for x in counts if x != str(ref))
+    onehot = np.array([[1.0 if x == level else 0.0 for level in levels] for x in raw])
+    e = replace(e, form="categorical", reference=str(ref), fixed=None)
+    names = [f"{e.column}={level} on {e.parameter}: ln factor" for level in levels]
+    return e, _Term(e, row, onehot, names, levels)
+
+
+def _numeric(e: Effect, values: np.ndarray, row: int, subjects: list[SubjectData]):
+    if np.ptp(values) == 0 and e.fixed is None:
+        raise CovariateError(f"column '{e.column}' has the same value for every subject: its "
+                             "effect cannot be estimated")
+    ref = float(np.median(values)) if e.reference is None else float(e.reference)
+    if e.form == "power":
+        bad = [s.subject for s, x in zip(subjects, values, strict=True) if not x > 0]
+        if bad:
+            raise CovariateError(f"a power effect needs positive values of '{e.column}': "
+                                 f"subject(s) {', '.join(bad[:8])} have zero or less (use the "
+                                 "linear form)")
+        x = np.log(values / ref)
+        name = [] if e.fixed is not None else [f"{e.column} on {e.parameter}: exponent"]
+    else:
+        x = values - ref
+        name = [f"{e.column} on {e.parameter}: slope per unit"]
+    e = replace(e, reference=ref)
+    return e, _Term(e, row, x, name, [])

@@ -1,0 +1,350 @@
+"""Population estimates by maximum marginal likelihood.
+
+The model: ``ln theta_i = mu_i(beta) + eta_i`` with ``theta = (CL, V)``,
+``eta_i ~ N(0, Omega)`` (full 2 x 2 or diagonal), ``mu_i`` the typical values
+with covariate effects (:mod:`pkcalc.population.covariates`), and the levels
+``y_ij ~ N(f_ij, sa^2 + sp^2 f_ij^2)`` (additive, proportional, combined error;
+BLQ levels by Beal's M3, ``P(y < LLOQ)``).  Each subject's deviations are
+integrated out::
+
+    L_i = integral p(y_i | eta) p(eta) d eta
+
+With ``h(eta) = -2 ln[p(y_i | eta) p(eta)]``, its minimum ``eta^`` (the
+conditional mode: the MAP estimate of :mod:`pkcalc.fit`) and ``H`` its Hessian
+there (observed: differences of the analytic gradient):
+
+- **Laplace**: ``-2 ln L_i = h(eta^) - q ln(2 pi) + ln|H / 2|``
+  (Tierney & Kadane, JASA 1986;81:82 -- from memory);
+- **adaptive Gauss-Hermite quadrature** with ``n`` nodes per dimension:
+  ``eta_k = eta^ + sqrt(2) B x_k`` with ``B B' = (H/2)^-1`` and ``x_k, w_k`` the
+  Gauss-Hermite nodes and weights, ``L_i = 2^(q/2) |B| sum_k w_k e^(x_k'x_k)
+  e^(-h(eta_k)/2)`` (Pinheiro & Bates, JCGS 1995;4:12 -- from memory); one node
+  is the Laplace approximation.
+
+The outer parameters -- ``beta``, the Cholesky factor of ``Omega`` (log
+diagonal, off-diagonal) and the log residual SDs -- maximise the summed
+likelihood by BFGS on central-difference gradients; the inner modes are found
+by the damped-scoring solver of :mod:`pkcalc.fit`, warm-started.  The
+covariance step inverts the observed information, ``2 x`` the inverse of the
+Hessian of ``-2 ln L`` by central differences.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from ..core import FitOptions, SubjectData
+from ..fit.data import prepare_batch
+from ..fit.objective import Batch, evaluate
+from ..fit.solver import minimise
+from ..fit.uncertainty import observed_hessian
+from .covariates import Design
+
+__all__ = ["MarginalFit", "MarginalProblem", "integrate_subjects", "log_integral"]
+
+LOG_2PI = math.log(2 * math.pi)
+#: Central-difference steps (log-parameters) for the gradient and the Hessian.
+GRAD_STEP = 1e-4
+HESS_STEP = 2e-3
+#: Condition number of the information (correlation form) above which the covariance
+#: step warns that the estimates are nearly confounded (common practice: 1e3 is a
+#: warning sign, 1e6 a failure; we warn from 1e4).
+CONDITION_WARN = 1e4
+
+
+def gauss_hermite(nodes: int, q: int = 2) -> tuple[np.ndarray, np.ndarray]:
+    """Product Gauss-Hermite nodes ``(K, q)`` and log weights ``(K,)`` (weight
+    ``e^(-x'x)``), ``K = nodes^q``."""
+    x, w = np.polynomial.hermite.hermgauss(nodes)
+    grid = np.stack(np.meshgrid(*([x] * q), indexing="ij"), -1).reshape(-1, q)
+    lw = np.sum(np.stack(np.meshgrid(*([np.log(w)] * q), indexing="ij"), -1).reshape(-1, q),
+                axis=1)
+    return grid, lw
+
+
+def log_integral(h_nodes: np.ndarray, chol: np.ndarray, nodes: int) -> np.ndarray:
+    """``-2 ln`` of ``integral exp(-h/2)`` by adaptive Gauss-Hermite quadrature.
+
+    Parameters
+    ----------
+    h_nodes : ndarray, shape (B, K)
+        ``h`` at the nodes ``eta^ + sqrt(2) B x_k`` (``K = nodes^q``, order of
+        :func:`gauss_hermite`).
+    chol : ndarray, shape (B, q, q)
+        ``B``: Cholesky factor of the inverse of ``H / 2``.
+    nodes : int
+
+    Returns
+    -------
+    ndarray, shape (B,)
+    """
+    q = chol.shape[-1]
+    grid, lw = gauss_hermite(nodes, q)
+    terms = lw[None, :] + (grid**2).sum(axis=1)[None, :] - 0.5 * h_nodes
+    top = terms.max(axis=1)
+    lse = top + np.log(np.exp(terms - top[:, None]).sum(axis=1))
+    logdet_b = np.log(np.abs(np.diagonal(chol, axis1=1, axis2=2))).sum(axis=1)
+    return -2.0 * (0.5 * q * math.log(2.0) + logdet_b + lse)
+
+
+@dataclass
+class MarginalFit:
+    """The optimum of one model (see :class:`MarginalProblem`)."""
+
+    psi: np.ndarray
+    objective: float
+    converged: bool
+    message: str
+    iterations: int
+    evaluations: int
+    covariance: np.ndarray | None
+    correlation: np.ndarray | None
+    condition_number: float | None
+    warnings: list[str]
+    theta: np.ndarray              # conditional modes (N, 2): ln CL_i, ln V_i
+    posterior: np.ndarray          # (N, 2, 2)
+    seconds: float
+
+
+class MarginalProblem:
+    """The marginal likelihood of one population model on one set of subjects.
+
+    Parameters
+    ----------
+    subjects : list of SubjectData
+    design : Design
+        Covariate effects (the mean function).
+    error_model, blq : str
+    nodes : int
+        Gauss-Hermite nodes per dimension (1 = Laplace).
+    diagonal : bool
+        Between-subject covariance without the correlation.
+    """
+
+    def __init__(self, subjects: list[SubjectData], design: Design, *, error_model: str,
+                 blq: str, nodes: int = 1, diagonal: bool = False) -> None:
+        batch, _, n_used = prepare_batch(subjects, FitOptions(error_model=error_model,
+                                                              blq=blq))
+        self.batch = batch
+        self.subjects = subjects
+        self.design = design
+        self.error = error_model
+        self.nodes = nodes
+        self.diagonal = diagonal
+        self.n = len(subjects)
+        self.n_levels = int(n_used.sum())
+        self.n_omega = 2 if diagonal else 3
+        self.n_error = 2 if error_model == "combined" else 1
+        self.theta: np.ndarray | None = None       # warm-start modes (N, 2)
+        self.evaluations = 0
+        self._grid = gauss_hermite(nodes, 2)[0] if nodes > 1 else None
+
+    # ------------------------------------------------------------------ parameters
+    @property
+    def n_params(self) -> int:
+        return self.design.n_beta + self.n_omega + self.n_error
+
+    def names(self) -> list[str]:
+        omega = ["ln SD of ln clearance", "ln SD of ln volume"]
+        if not self.diagonal:
+            omega.append("clearance-volume Cholesky term")
+        err = {"additive": ["ln additive SD"], "proportional": ["ln proportional SD"],
+               "combined": ["ln additive SD", "ln proportional SD"]}[self.error]
+        return self.design.names + omega + err
+
+    def unpack(self, psi: np.ndarray):
+        """``beta``, ``Omega``, ``sa``, ``sp`` from the outer parameter vector."""
+        k = self.design.n_beta
+        beta = psi[:k]
+        l11, l22 = math.exp(psi[k]), math.exp(psi[k + 1])
+        l21 = 0.0 if self.diagonal else float(psi[k + 2])
+        chol = np.array([[l11, 0.0], [l21, l22]])
+        omega = chol @ chol.T
+        e = psi[k + self.n_omega:]
+        sa = math.exp(e[0]) if self.error in ("additive", "combined") else 0.0
+        sp = math.exp(e[-1]) if self.error in ("proportional", "combined") else 0.0
+        return beta, omega, sa, sp
+
+    def pack(self, beta, omega, sa: float, sp: float) -> np.ndarray:
+        chol = np.linalg.cholesky(omega if not self.diagonal
+                                  else np.diag(np.diag(omega)))
+        om = [math.log(chol[0, 0]), math.log(chol[1, 1])] + ([] if self.diagonal
+                                                             else [chol[1, 0]])
+        la, lp = math.log(max(sa, 1e-12)), math.log(max(sp, 1e-12))
+        err = {"additive": [la], "proportional": [lp], "combined": [la, lp]}[self.error]
+        return np.concatenate([np.asarray(beta, float), om, err])
+
+    # ------------------------------------------------------------------ the likelihood
+    def _map_batch(self, mu, omega, sa, sp) -> Batch:
+        oi = np.linalg.inv(omega)
+        return replace(self.batch, kind="map", mu=mu, omega_inv=np.repeat(oi[None], self.n, 0),
+                       sa=np.full(self.n, sa), sp=np.full(self.n, sp),
+                       geometry=self.batch.geometry)
+
+    def _modes(self, b: Batch, mu: np.ndarray, both: bool):
+        """Conditional modes: from the warm start (and the typical values when ``both``
+        or there is no warm start), the better end point kept."""
+        n = self.n
+        warm = self.theta if self.theta is not None else mu
+        starts = [warm, mu] if (both or self.theta is None) else [warm]
+        m = len(starts)
+        bm = b if m == 1 else b.repeat(m)
+
+        def fun(th, idx):
+            rows = bm if idx.size == bm.t.shape[0] else bm.rows(idx)
+            obj, grad, info, _ = evaluate(rows, th)
+            return obj, grad, info
+
+        theta0 = np.stack(starts, axis=1).reshape(n * m, 2)
+        sol = minimise(fun, theta0, tol=1e-12, xtol=1e-8)
+        obj = np.where(np.isfinite(sol.obj), sol.obj, np.inf).reshape(n, m)
+        pick = np.arange(n) * m + np.argmin(obj, axis=1)
+        return sol.theta[pick]
+
+    def subject_terms(self, psi: np.ndarray, *, update: bool = True, both: bool = False):
+        """Every subject's ``-2 ln L_i``, conditional modes and posterior covariances."""
+        self.evaluations += 1
+        beta, omega, sa, sp = self.unpack(psi)
+        mu = self.design.means(beta)
+        if not np.all(np.isfinite(mu)) or (self.error != "proportional" and sa <= 0):
+            return np.full(self.n, np.inf), None, None
+        b = self._map_batch(mu, omega, sa, sp)
+        theta = self._modes(b, mu, both)
+        g, _, info, _ = evaluate(b, theta)
+        hess = observed_hessian(b, theta)
+        half = 0.5 * hess
+        det = half[:, 0, 0] * half[:, 1, 1] - half[:, 0, 1] ** 2
+        bad = ~((half[:, 0, 0] > 0) & (det > 0))
+        if bad.any():                       # not positive definite: the scoring matrix
+            half[bad] = 0.5 * info[bad]
+        post = np.linalg.inv(half)
+        logdet_omega = float(np.linalg.slogdet(omega)[1])
+        if self.nodes == 1:
+            m2ll = g + logdet_omega + np.linalg.slogdet(half)[1]
+        else:
+            chol = np.linalg.cholesky(post)
+            pts = theta[:, None, :] + math.sqrt(2.0) * np.einsum("bij,kj->bki", chol,
+                                                                   self._grid)
+            k = pts.shape[1]
+            g_nodes, _, _, _ = evaluate(b.repeat(k), pts.reshape(-1, 2))
+            h_nodes = g_nodes.reshape(self.n, k) + logdet_omega + 2 * LOG_2PI
+            m2ll = log_integral(h_nodes, chol, self.nodes)
+        if update:
+            self.theta = theta
+        return m2ll, theta, post
+
+    def objective(self, psi: np.ndarray, *, update: bool = False) -> float:
+        m2ll, _, _ = self.subject_terms(psi, update=update)
+        total = float(np.sum(m2ll))
+        return total if math.isfinite(total) else math.inf
+
+    def gradient(self, psi: np.ndarray) -> np.ndarray:
+        """Central differences from the current modes (not updated)."""
+        g = np.empty(psi.size)
+        for j in range(psi.size):
+            step = np.zeros(psi.size)
+            step[j] = GRAD_STEP
+            up, dn = self.objective(psi + step), self.objective(psi - step)
+            g[j] = (up - dn) / (2 * GRAD_STEP) if math.isfinite(up) and math.isfinite(dn) \
+                else 0.0
+        return g
+
+    def hessian(self, psi: np.ndarray) -> np.ndarray:
+        """Hessian of the summed ``-2 ln L`` by second central differences."""
+        p = psi.size
+        h = HESS_STEP
+        f0 = self.objective(psi)
+        hess = np.empty((p, p))
+        e = np.eye(p) * h
+        fp = [self.objective(psi + e[j]) for j in range(p)]
+        fm = [self.objective(psi - e[j]) for j in range(p)]
+        for j in range(p):
+            hess[j, j] = (fp[j] - 2 * f0 + fm[j]) / h**2
+            for k in range(j):
+                v = (self.objective(psi + e[j] + e[k]) - self.objective(psi + e[j] - e[k])
+                     - self.objective(psi - e[j] + e[k]) + self.objective(psi - e[j] - e[k]))
+                hess[j, k] = hess[k, j] = v / (4 * h * h)
+        return hess
+
+    # ------------------------------------------------------------------ the optimum
+    def fit(self, psi0: np.ndarray, *, progress: Callable[[str], None] | None = None,
+            covariance: bool = True, max_iter: int = 300) -> MarginalFit:
+        """Maximise the marginal likelihood from ``psi0``; then the covariance step."""
+        from scipy.optimize import minimize
+
+        t0 = time.perf_counter()
+        self.theta = None
+        state = {"it": 0}
+
+        def fun(psi):
+            return self.objective(psi, update=False)
+
+        def jac(psi):
+            return self.gradient(psi)
+
+        def callback(psi):
+            state["it"] += 1
+            value = self.objective(psi, update=True)     # move the warm start along
+            if progress is not None:
+                progress(f"iteration {state['it']}: -2 ln L {value:.4f}")
+
+        self.objective(psi0, update=True)
+        self.subject_terms(psi0, update=True, both=True)
+        res = minimize(fun, psi0, jac=jac, method="BFGS", callback=callback,
+                       options={"gtol": 5e-3, "maxiter": max_iter})
+        psi = np.asarray(res.x, float)
+        m2ll, theta, post = self.subject_terms(psi, update=True, both=True)
+        value = float(np.sum(m2ll))
+        grad = self.gradient(psi)
+        gmax = float(np.max(np.abs(grad))) if grad.size else 0.0
+        converged = bool(res.success) or gmax < 0.05
+        message = "converged" if res.success else (
+            f"stopped ({res.message.strip().rstrip('.')}); largest gradient {gmax:.2g}")
+        warnings: list[str] = []
+        cov = corr = cond = None
+        if covariance and math.isfinite(value):
+            cov, corr, cond, warn = self._covariance(psi)
+            warnings += warn
+        return MarginalFit(psi, value, converged and math.isfinite(value), message,
+                           int(res.nit), self.evaluations, cov, corr, cond, warnings, theta,
+                           post, time.perf_counter() - t0)
+
+    def _covariance(self, psi: np.ndarray):
+        """Covariance of the outer parameters from the observed information."""
+        hess = self.hessian(psi)
+        hess = 0.5 * (hess + hess.T)
+        info = 0.5 * hess
+        d = np.sqrt(np.abs(np.diag(info)))
+        warnings = []
+        if not np.all(np.isfinite(info)) or np.any(d == 0):
+            return None, None, None, ["the information matrix is not finite or has a zero "
+                                      "row: no standard errors"]
+        scaled = info / np.outer(d, d)
+        eig = np.linalg.eigvalsh(scaled)
+        cond = float(eig.max() / eig.min()) if eig.min() > 0 else math.inf
+        if eig.min() <= 1e-10:
+            vec = np.linalg.eigh(scaled)[1][:, 0]     # direction the data do not see
+            weak = self.names()[int(np.argmax(np.abs(vec)))]
+            return None, None, cond, [
+                f"the information matrix is singular (smallest eigenvalue {eig.min():.2g} in "
+                f"correlation form): the data do not determine every parameter (look at "
+                f"'{weak}'); no standard errors"]
+        cov = np.linalg.inv(info)
+        sd = np.sqrt(np.diag(cov))
+        corr = cov / np.outer(sd, sd)
+        if cond > CONDITION_WARN:
+            warnings.append(f"the information matrix is ill-conditioned (condition number "
+                            f"{cond:.3g} in correlation form): some estimates are nearly "
+                            "confounded and their standard errors unreliable")
+        return cov, corr, cond, warnings
+
+
+def integrate_subjects(problem: MarginalProblem, psi: np.ndarray) -> np.ndarray:
+    """Every subject's ``-2 ln L_i`` at ``psi`` (both starts for the modes)."""
+    m2ll, _, _ = problem.subject_terms(psi, update=False, both=True)
+    return m2ll
