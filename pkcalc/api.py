@@ -21,12 +21,12 @@ canonical units unless a unit map (the study file's ``[output]`` table, or
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
 from ._format import result_html
-from .core import FitOptions, NcaOptions, PopulationOptions, Study
+from .core import FitOptions, NcaOptions, PopulationModel, PopulationOptions, Study
 from .errors import PkcalcInputError
 
 __all__ = ["StudyFit", "StudyNca", "fit_study", "nca_study", "population_study"]
@@ -292,33 +292,40 @@ def fit_study(study: Study, options: FitOptions | None = None, *,
 
 
 # --------------------------------------------------------------------------- population
-def population_study(study: Study, options: PopulationOptions | None = None,
-                     **overrides: Any):
-    """Population estimates of a study (two-stage or iterative two-stage), with
-    bootstrap standard errors when ``options.bootstrap`` > 0.
+def population_study(study: Study, options: PopulationOptions | None = None, *,
+                     progress: Callable[[str], None] | None = None, **overrides: Any):
+    """Population estimates of a study: maximum marginal likelihood (default; Laplace
+    or adaptive quadrature, with a covariance step, covariate effects, model
+    comparison and stepwise selection), or the standard / iterative two-stage
+    methods; bootstrap standard errors when ``options.bootstrap`` > 0.
+
+    Parameters
+    ----------
+    study : Study
+    options : PopulationOptions, optional
+        Default: the study file's ``[population]`` table with ``overrides``.
+    progress : callable, optional
+        Receives a line of text per iteration or bootstrap replicate (the command
+        line prints them on a terminal).
 
     Returns
     -------
     PopulationResult
-        With ``failures`` naming subjects left out (reading and fitting).
+        With ``failures`` naming subjects left out (reading and fitting) and, for a
+        comparison, ``comparison`` (every model) -- the result is then the selected
+        model (stepwise) or the one with the lowest AIC.
 
     Raises
     ------
     PkcalcInputError
-        When too few subjects remain (the subjects left out are named first).
+        When too few subjects remain or the model cannot be estimated (the
+        subjects left out are named first).
     """
-    from .population import bootstrap, iterative_two_stage, two_stage
     from .schema import study_population_options
 
     o = options if options is not None else study_population_options(study, overrides)
     try:
-        if o.method == "two-stage":
-            result = two_stage(study.subjects, FitOptions(error_model=o.error_model, blq=o.blq),
-                               covariate=o.covariate, reference_weight=o.reference_weight)
-        else:
-            result = iterative_two_stage(study.subjects, error_model=o.error_model,
-                                         covariate=o.covariate,
-                                         reference_weight=o.reference_weight, blq=o.blq)
+        result = _population_estimate(study, o, progress)
     except ValueError as exc:
         raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
                                + PkcalcInputError(str(exc), file=study.files[0] if study.files
@@ -330,19 +337,75 @@ def population_study(study: Study, options: PopulationOptions | None = None,
                                FitOptions(error_model=o.error_model, blq=o.blq))
         for r in result.subjects:
             r.adequacy = found.get(r.subject)
-    if o.bootstrap and o.method == "iterative":
-        result.bootstrap.update(bootstrap(study.subjects, result, o.bootstrap, o.seed,
-                                          error_model=o.error_model, covariate=o.covariate,
-                                          reference_weight=o.reference_weight, blq=o.blq))
-        for k in ("clearance", "volume"):
-            b = result.bootstrap.get(k)
-            if isinstance(b, dict):
-                result.typical_se[k] = b["se"]
-                result.typical_ci[k] = (b["ci_low"], b["ci_high"])
-        result.notes.append(f"standard errors and 95 % intervals of the typical values from "
-                            f"{o.bootstrap} bootstrap replicates over subjects (seed {o.seed})")
-    elif o.method == "iterative":
-        result.notes.append("standard errors of the typical values: between-subject SD / "
-                            "sqrt(N) on the log scale (run --bootstrap N for bootstrap "
-                            "intervals)")
+    if o.bootstrap:
+        _population_bootstrap(study, o, result, progress)
+    elif result.method == "iterative":
+        result.notes.append("standard errors of the typical values from the linearised "
+                            "information, each subject's posterior covariance included (run "
+                            "--bootstrap N for bootstrap intervals)")
     return result
+
+
+def _population_estimate(study: Study, o: PopulationOptions, progress):
+    """The estimate of the chosen method (marginal falls back to the iterative two-stage
+    method, with a warning, when it does not converge and no effect needs it)."""
+    from .population import iterative_two_stage, two_stage
+    from .population.compare import compare_models, stepwise
+    from .population.estimate import marginal_estimate
+
+    if o.method == "two-stage":
+        return two_stage(study.subjects, FitOptions(error_model=o.error_model, blq=o.blq),
+                         covariate=o.covariate, reference_weight=o.reference_weight)
+    if o.method == "iterative":
+        return iterative_two_stage(study.subjects, error_model=o.error_model,
+                                   covariate=o.covariate, reference_weight=o.reference_weight,
+                                   blq=o.blq)
+    if o.models or o.stepwise:
+        comparison = (stepwise(study.subjects, o, o.stepwise, progress=progress) if o.stepwise
+                      else compare_models(study.subjects, o, o.models, progress=progress))
+        best = comparison.best()
+        if best is None:
+            raise ValueError("no model of the comparison could be estimated: " + "; ".join(
+                f"{r.name}: {r.error}" for r in comparison.rows if r.error))
+        result = marginal_estimate(study.subjects, o, PopulationModel(best.name, best.effects),
+                                   progress=progress, start=best.result)
+        result.comparison = comparison
+        result.notes.insert(0, f"reported model: '{best.name}' ("
+                            + ("selected stepwise" if o.stepwise else "lowest AIC") + ")")
+        result.failures += [(f"model '{r.name}'", r.error) for r in comparison.failed]
+        return result
+    result = marginal_estimate(study.subjects, o, progress=progress)
+    if not result.converged and not o.effects:
+        fallback = iterative_two_stage(study.subjects, error_model=o.error_model,
+                                       covariate=o.covariate,
+                                       reference_weight=o.reference_weight, blq=o.blq)
+        fallback.warnings.append("the marginal-likelihood estimate did not converge ("
+                                 + "; ".join(result.warnings) + "): the iterative two-stage "
+                                 "estimate is reported instead")
+        return fallback
+    return result
+
+
+def _population_bootstrap(study: Study, o: PopulationOptions, result, progress) -> None:
+    """Bootstrap over subjects: SEs and percentile intervals of the typical values."""
+    from .population import bootstrap
+    from .population.estimate import marginal_estimate
+
+    estimate = None
+    if result.method == "marginal":
+        model = PopulationModel(result.model_name, tuple(result.model_effects))
+
+        def estimate(sample):
+            return marginal_estimate(sample, o, model, start=result, final_fits=False,
+                                     covariance=False)
+    result.bootstrap.update(bootstrap(
+        study.subjects, result, o.bootstrap, o.seed, progress=progress, estimate=estimate,
+        error_model=o.error_model, covariate=o.covariate, reference_weight=o.reference_weight,
+        blq=o.blq))
+    for k in ("clearance", "volume"):
+        b = result.bootstrap.get(k)
+        if isinstance(b, dict):
+            result.typical_se[k] = b["se"]
+            result.typical_ci[k] = (b["ci_low"], b["ci_high"])
+    result.notes.append(f"standard errors and 95 % intervals of the typical values from "
+                        f"{o.bootstrap} bootstrap replicates over subjects (seed {o.seed})")

@@ -181,8 +181,51 @@ def cmd_population(args: argparse.Namespace) -> int:
         "covariate": args.covariate, "reference_weight": args.reference_weight,
         "bootstrap": args.bootstrap, "seed": args.seed,
         "vpc_replicates": args.vpc_replicates,
-        "adequacy": False if args.no_adequacy else None})
-    return _finish(run_population(study, options, colour=_colour()), args)
+        "adequacy": False if args.no_adequacy else None, "nodes": args.nodes,
+        "between_subject": args.between_subject, "effects": args.effect,
+        "models": _models_arg(args.model), "stepwise": _stepwise_arg(args)})
+    progress = _progress_printer("population") if sys.stderr.isatty() and not args.quiet \
+        else None
+    run = run_population(study, options, colour=_colour(), progress=progress)
+    if progress is not None:
+        print("\r\033[K", end="", file=sys.stderr, flush=True)
+    return _finish(run, args)
+
+
+def _models_arg(items: list[str] | None) -> dict | None:
+    """``--model "NAME: effect; effect"`` (repeatable) as the study file's models table."""
+    if not items:
+        return None
+    out: dict[str, list[str]] = {}
+    for item in items:
+        name, sep, effects = item.partition(":")
+        if not sep or not name.strip():
+            raise PkcalcInputError(f"'{item}' is not NAME: EFFECTS", field="--model",
+                                   expected='e.g. --model "base:" --model "weight: weight on '
+                                            'clearance; sex on volume"')
+        out[name.strip()] = [e.strip() for e in effects.split(";") if e.strip()]
+    return out
+
+
+def _stepwise_arg(args: argparse.Namespace) -> dict | None:
+    if not args.stepwise:
+        if args.p_in is not None or args.p_out is not None:
+            raise PkcalcInputError("--p-in and --p-out need --stepwise candidates",
+                                   field="--stepwise")
+        return None
+    step: dict = {"candidates": list(args.stepwise)}
+    if args.p_in is not None:
+        step["p_in"] = args.p_in
+    if args.p_out is not None:
+        step["p_out"] = args.p_out
+    return step
+
+
+def _progress_printer(command: str):
+    """Progress lines on stderr, overwriting one line (a terminal only)."""
+    def show(text: str) -> None:
+        print(f"\rpkcalc {command}: {text}\033[K", end="", file=sys.stderr, flush=True)
+    return show
 
 
 def _percent(text: str | None, option: str) -> float:

@@ -53,6 +53,11 @@ censored likelihood (Beal's M3), Wald intervals on the log scale, 3 starts.""",
     "population": """examples:
   pkcalc population scenarios/demo-sparse.toml
   pkcalc population scenarios/demo-sparse.toml --covariate estimated --bootstrap 200
+  pkcalc population scenarios/demo-sparse.toml --effect "weight on clearance and volume"
+  pkcalc population scenarios/demo-sparse.toml --model "base:" \
+                    --model "weight: weight on clearance and volume"
+  pkcalc population scenarios/demo-sparse.toml --stepwise "weight on clearance" \
+                    --stepwise "weight on volume" --p-in 0.05 --p-out 0.01
   pkcalc population --levels L.csv --doses D.csv --subjects S.csv --method two-stage
   pkcalc population scenarios/demo-sparse.toml --covariate per_kg --out pop-results/
 
@@ -206,8 +211,27 @@ def _population_parser(sub) -> None:
     p = _add(sub, "population",
              "Typical values, between-subject variability and residual error from a study.")
     _study_args(p)
-    p.add_argument("--method", choices=["two-stage", "iterative"],
-                   help="standard two-stage (rich data) or iterative two-stage (default)")
+    p.add_argument("--method", choices=["marginal", "iterative", "two-stage"],
+                   help="maximum marginal likelihood (default), iterative two-stage, or "
+                        "standard two-stage (rich data)")
+    p.add_argument("--nodes", type=int, metavar="N",
+                   help="Gauss-Hermite nodes per dimension (default 1: Laplace)")
+    p.add_argument("--between-subject", choices=["full", "diagonal"],
+                   help="variability of clearance and volume with (full, default) or "
+                        "without their correlation")
+    p.add_argument("--effect", action="append", metavar="TEXT",
+                   help='a covariate effect, e.g. "weight on clearance and volume", '
+                        '"sex on volume", "age on clearance linear around 40" (repeatable)')
+    p.add_argument("--model", action="append", metavar="NAME: EFFECTS",
+                   help='a model to compare, e.g. "base:" or "weight: weight on clearance; '
+                        'sex on volume" (repeatable; the first is the base)')
+    p.add_argument("--stepwise", action="append", metavar="TEXT",
+                   help="a candidate effect for stepwise selection (repeatable)")
+    p.add_argument("--p-in", type=float, metavar="P",
+                   help="forward inclusion level (default 0.05)")
+    p.add_argument("--p-out", type=float, metavar="P",
+                   help="backward elimination level (default 0.01)")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.add_argument("--error-model", choices=["additive", "proportional", "combined"],
                    help="residual error (default proportional)")
     p.add_argument("--blq", choices=["likelihood", "drop", "half_lloq"],

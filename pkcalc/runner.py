@@ -402,8 +402,8 @@ def _export_tables(study, out: Path) -> list[Path]:
             for name, frame in export_tables(study).items()]
 
 
-def run_population(study, options=None, *, colour: bool = False) -> Run:
-    """``pkcalc population``: two-stage or iterative two-stage estimates
+def run_population(study, options=None, *, colour: bool = False, progress=None) -> Run:
+    """``pkcalc population``: marginal-likelihood or two-stage estimates
     (:func:`pkcalc.api.population_study`)."""
     from .api import population_study
     from .population import simulate_design
@@ -412,7 +412,7 @@ def run_population(study, options=None, *, colour: bool = False) -> Run:
     from .schema import study_population_options
 
     options = options if options is not None else study_population_options(study)
-    result = population_study(study, options)
+    result = population_study(study, options, progress=progress)
     conv = report.UnitConverter(study.output or None)
     subjects = study.subjects
     failures = list(study.failures) + [
@@ -422,6 +422,9 @@ def run_population(study, options=None, *, colour: bool = False) -> Run:
                 "blq": options.blq, "covariate": options.covariate,
                 "reference_weight": f"{options.reference_weight:g} kg",
                 "adequacy_check": options.adequacy}
+    if options.method == "marginal":
+        settings.update({"nodes": options.nodes, "between_subject": options.between_subject,
+                         "effects": "; ".join(e.label for e in options.effects) or "none"})
     doc = population_json(result, conv, title=study.title, failures=failures,
                           settings=settings)
     doc["warnings"] = list(study.warnings) + list(result.warnings)
@@ -439,7 +442,7 @@ def run_population(study, options=None, *, colour: bool = False) -> Run:
         figs = {"__diagnostics__": population_figure(result, used, conv)}
         for r in flagged:
             figs[r.subject] = fit_figure(r, conv)
-        if options.vpc_replicates and result.method == "iterative":
+        if options.vpc_replicates and result.method in ("iterative", "marginal"):
             sim = simulate_design(used, result, options.vpc_replicates, options.seed)
             figs["__vpc__"] = vpc_figure(used, sim, conv)
         return figs

@@ -49,7 +49,7 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
                       pmodel: PopulationModel | None = None, *,
                       progress: Callable[[str], None] | None = None,
                       start: PopulationResult | None = None,
-                      final_fits: bool = True) -> PopulationResult:
+                      final_fits: bool = True, covariance: bool = True) -> PopulationResult:
     """Marginal-likelihood estimate of one model.
 
     Parameters
@@ -65,6 +65,8 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
         A previous estimate to start from (model comparison, bootstrap).
     final_fits : bool
         Individual estimates (conditional modes with their SEs) under the result.
+    covariance : bool
+        The covariance step (standard errors); off for bootstrap replicates.
 
     Raises
     ------
@@ -93,9 +95,10 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
             best = fit
     assert best is not None
     problem.theta = best.theta
-    cov, corr, cond, warn = problem._covariance(best.psi)
-    best.covariance, best.correlation, best.condition_number = cov, corr, cond
-    best.warnings += warn
+    if covariance:
+        cov, corr, cond, warn = problem._covariance(best.psi)
+        best.covariance, best.correlation, best.condition_number = cov, corr, cond
+        best.warnings += warn
     result = _assemble(problem, best, options, name, failures)
     agreed = sum(abs(e - best.objective) <= AGREE for e in ends)
     result.notes.append(f"{agreed} of {len(ends)} starts reached the best -2 ln L "
@@ -128,9 +131,8 @@ def _starts(problem: MarginalProblem, subjects, options: PopulationOptions,
 def _from_result(problem: MarginalProblem, r: PopulationResult) -> np.ndarray:
     """A start from an earlier estimate: its own parameters when it is the same model,
     otherwise its typical values, variability and residual error (no covariate effect)."""
-    psi = r.bootstrap.get("psi")
-    if psi is not None and r.parameter_names == problem.names():
-        return np.array(psi, float)
+    if r.psi is not None and r.parameter_names == problem.names():
+        return np.array(r.psi, float)
     beta = problem.design.start(np.log([r.typical["clearance"], r.typical["volume"]]))
     return _pack_result(problem, r, beta)
 
@@ -258,7 +260,8 @@ def _assemble(problem: MarginalProblem, fit: MarginalFit, options: PopulationOpt
     if not fit.converged:
         result.warnings.append(f"the marginal-likelihood estimate did not converge: "
                                f"{fit.message}")
-    result.bootstrap = {"psi": fit.psi.tolist()}
+    result.psi = fit.psi.copy()
+    result.model_effects = list(problem.design.effects)
     return result
 
 

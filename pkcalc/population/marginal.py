@@ -179,6 +179,20 @@ class MarginalProblem:
         err = {"additive": [la], "proportional": [lp], "combined": [la, lp]}[self.error]
         return np.concatenate([np.asarray(beta, float), om, err])
 
+    def lower_bounds(self) -> np.ndarray:
+        """Floors of the outer parameters: between-subject SDs of at least 0.01 (log
+        scale), residual SDs of at least 1e-4 of the median level (additive) and 0.1 %
+        (proportional), so a component the data do not support ends at its floor."""
+        lower = np.full(self.n_params, -np.inf)
+        k = self.design.n_beta
+        lower[k:k + 2] = math.log(0.01)
+        ymed = float(np.median(self.batch.y[self.batch.obs])) if self.batch.obs.any() else 1.0
+        e = k + self.n_omega
+        floors = {"additive": [math.log(1e-4 * ymed)], "proportional": [math.log(1e-3)],
+                  "combined": [math.log(1e-4 * ymed), math.log(1e-3)]}[self.error]
+        lower[e:] = floors
+        return lower
+
     # ------------------------------------------------------------------ the likelihood
     def _map_batch(self, mu, omega, sa, sp) -> Batch:
         oi = np.linalg.inv(omega)
@@ -293,19 +307,26 @@ class MarginalProblem:
             if progress is not None:
                 progress(f"iteration {state['it']}: -2 ln L {value:.4f}")
 
-        self.objective(psi0, update=True)
+        lower = self.lower_bounds()
+        psi0 = np.maximum(psi0, lower + 1e-3)
         self.subject_terms(psi0, update=True, both=True)
-        res = minimize(fun, psi0, jac=jac, method="BFGS", callback=callback,
-                       options={"gtol": 5e-3, "maxiter": max_iter})
+        res = minimize(fun, psi0, jac=jac, method="L-BFGS-B", callback=callback,
+                       bounds=[(lo, None) for lo in lower],
+                       options={"gtol": 5e-3, "ftol": 1e-12, "maxiter": max_iter})
         psi = np.asarray(res.x, float)
         m2ll, theta, post = self.subject_terms(psi, update=True, both=True)
         value = float(np.sum(m2ll))
         grad = self.gradient(psi)
-        gmax = float(np.max(np.abs(grad))) if grad.size else 0.0
+        free = ~((psi <= lower + 1e-6) & (grad > 0))        # at a floor, pushed down
+        gmax = float(np.max(np.abs(grad[free]))) if free.any() else 0.0
         converged = bool(res.success) or gmax < 0.05
         message = "converged" if res.success else (
             f"stopped ({res.message.strip().rstrip('.')}); largest gradient {gmax:.2g}")
         warnings: list[str] = []
+        names = self.names()
+        for j in np.flatnonzero(psi <= lower + 1e-6):
+            warnings.append(f"'{names[j]}' is at its lower bound: the data do not support "
+                            "that component (consider a simpler model)")
         cov = corr = cond = None
         if covariance and math.isfinite(value):
             cov, corr, cond, warn = self._covariance(psi)

@@ -101,6 +101,9 @@ class PopulationResult:
     nodes: int | None = None
     between_subject: str = "full"
     seconds: float | None = None
+    comparison: object | None = None
+    model_effects: list = field(default_factory=list)
+    psi: np.ndarray | None = None
 
     def summary(self) -> str:
         """Plain-text summary (canonical units)."""

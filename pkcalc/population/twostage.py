@@ -16,8 +16,15 @@
   3. the residual error by maximum likelihood on the pooled residuals with
      variance ``v_ij + j_ij' C_i j_ij``;
 
-  until the largest change of ``beta`` is below 1e-4 (log scale) and of the
-  diagonal of ``Omega`` below 1e-3 (relative), or 200 iterations.
+  until the largest change of ``beta`` is below 1e-4 (log scale), of the
+  diagonal of ``Omega`` below 1e-3 (relative) and of the residual SDs below 1e-3
+  of the residual SD at the median level, or 200 iterations.
+
+  Standard errors of the typical values come from the linearised information
+  ``sum X_i' (Omega^-1 - Omega^-1 C_i Omega^-1) X_i`` -- the marginal covariance
+  of a subject's estimate is ``Omega + S_i`` with ``S_i`` its estimation error, and
+  by Woodbury ``(Omega + S_i)^-1 = Omega^-1 - Omega^-1 C_i Omega^-1`` with the
+  posterior covariance ``C_i`` -- so sparse subjects count less than rich ones.
 
 Covariates (body weight): none; allometric with fixed exponents (0.75 for
 clearance, 1 for volume); estimated exponents; or per-kg normalisation
@@ -55,6 +62,8 @@ FIXED_EXPONENTS = {"allometric": (0.75, 1.0), "per_kg": (1.0, 1.0)}
 MAX_ITERATIONS = 200
 BETA_TOL = 1e-4
 OMEGA_TOL = 1e-3
+#: Largest change of the residual SDs, relative to the residual SD at the median level.
+SIGMA_TOL = 1e-3
 
 
 # --------------------------------------------------------------------------- helpers
@@ -293,6 +302,7 @@ def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "prop
     history: list[float] = []
     converged = False
     it = 0
+    ymed = float(np.median(batch.y[batch.obs])) if batch.obs.any() else 1.0
     while it < max_iterations:
         it += 1
         mu = _means(beta, x, offset, estimate)
@@ -303,15 +313,17 @@ def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "prop
         history.append(float(obj.sum() + n * np.linalg.slogdet(omega)[1] - logdet_c.sum()))
         new_beta, _, resid = _gls(theta, x, offset, omega, estimate)
         new_omega = (np.einsum("ni,nj->ij", resid, resid) + cpost.sum(axis=0)) / n
-        sa, sp = _residual_update(batch, f, jac, cpost, error_model,
-                                  (max(sa, 1e-3), max(sp, 1e-3)))
+        new_sa, new_sp = _residual_update(batch, f, jac, cpost, error_model,
+                                          (max(sa, 1e-3), max(sp, 1e-3)))
         d_beta = np.abs(new_beta - beta).max()
         d_omega = np.abs(np.diag(new_omega) / np.diag(omega) - 1).max()
-        beta, omega = new_beta, new_omega
-        if d_beta < BETA_TOL and d_omega < OMEGA_TOL:
+        d_sigma = max(abs(new_sa - sa), abs(new_sp - sp) * ymed) / max(
+            new_sa + new_sp * ymed, 1e-12)
+        beta, omega, sa, sp = new_beta, new_omega, new_sa, new_sp
+        if d_beta < BETA_TOL and d_omega < OMEGA_TOL and d_sigma < SIGMA_TOL:
             converged = True
             break
-    _, beta_cov, _ = _gls(theta, x, offset, omega, estimate)
+    beta_cov = _linearised_cov(x, omega, cpost, estimate)
     result = _assemble("iterative", beta, beta_cov, omega, estimate, covariate,
                        reference_weight, [], failures)
     result.iterations = it
@@ -321,6 +333,8 @@ def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "prop
     mu = _means(beta, x, offset, estimate)
     eta = theta - mu
     result.eta = eta
+    result.subject_means = {s.subject: (float(mu[i, 0]), float(mu[i, 1]))
+                            for i, s in enumerate(subjects)}
     result.shrinkage_percent = {
         name: 100 * (1 - float(np.std(eta[:, j])) / math.sqrt(omega[j, j]))
         for j, name in enumerate(("clearance", "volume"))}
@@ -329,9 +343,10 @@ def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "prop
                                        math.exp(mu[i, 0]), math.exp(mu[i, 1]))
         for i, s in enumerate(subjects)}
     result.notes.append(
-        f"convergence: largest change of the typical values (log scale) < {BETA_TOL:g} and "
-        f"of the variances < {OMEGA_TOL:g} (relative); {'reached' if converged else 'NOT'}"
-        f" after {it} iterations")
+        f"convergence: largest change of the typical values (log scale) < {BETA_TOL:g}, "
+        f"of the variances < {OMEGA_TOL:g} (relative) and of the residual error < "
+        f"{SIGMA_TOL:g} (relative); {'reached' if converged else 'NOT'} after {it} "
+        "iterations")
     result.notes.append("shrinkage = 1 - SD(ln deviations from typical) / between-subject SD "
                         "(Savic & Karlsson 2009, from memory); "
                         "high values (> 30 %) make individual estimates lean on the prior")
@@ -350,6 +365,20 @@ def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "prop
     return result
 
 
+def _linearised_cov(x: np.ndarray, omega: np.ndarray, cpost: np.ndarray, estimate: bool
+                    ) -> np.ndarray:
+    """Covariance of ``beta``: the inverse of ``sum X_i' (Omega^-1 - Omega^-1 C_i
+    Omega^-1) X_i`` (each subject's posterior covariance ``C_i`` included)."""
+    oi = np.linalg.inv(omega)
+    w = oi[None] - np.einsum("ij,njk,kl->nil", oi, cpost, oi)          # (N, 2, 2)
+    if not estimate:
+        return np.linalg.inv(w.sum(axis=0))
+    n = x.shape[0]
+    xm = np.zeros((n, 2, 4))
+    xm[:, 0, 0], xm[:, 0, 1], xm[:, 1, 2], xm[:, 1, 3] = 1.0, x, 1.0, x
+    return np.linalg.inv(np.einsum("nki,nkl,nlj->ij", xm, w, xm))
+
+
 def _as_prior(omega: np.ndarray, sa: float, sp: float) -> Prior:
     oc, ov = math.sqrt(omega[0, 0]), math.sqrt(omega[1, 1])
     r = float(np.clip(omega[0, 1] / (oc * ov), -0.99, 0.99))
@@ -357,31 +386,49 @@ def _as_prior(omega: np.ndarray, sa: float, sp: float) -> Prior:
 
 
 def bootstrap(subjects: list[SubjectData], result: PopulationResult, n_boot: int, seed: int,
-              **kwargs) -> dict[str, object]:
+              *, progress=None, estimate=None, **kwargs) -> dict[str, object]:
     """Bootstrap over subjects: re-estimate on resampled subjects (seeded), warm-started
-    from the estimate; percentile 95 % intervals and SEs of the typical values."""
+    from the estimate; percentile 95 % intervals and SEs of the typical values.
+
+    ``estimate(sample, start_state)`` re-estimates one replicate (default: the
+    iterative two-stage method with ``kwargs``); ``progress`` receives a line per
+    replicate with the time left.
+    """
+    import time
+
+    t0 = time.perf_counter()
     rng = np.random.default_rng(seed)
-    state = result.bootstrap["state"]
-    names = [s.subject for s in subjects]
-    idx_of = {name: i for i, name in enumerate(names)}
+    state = result.bootstrap.get("state")
     fitted = [s for s in subjects if s.subject in {r.subject for r in result.subjects}] \
         or subjects
-    theta_by = {s.subject: state["theta"][i] for i, s in enumerate(fitted)
-                if i < len(state["theta"])}
+    theta_by = {} if state is None else {s.subject: state["theta"][i]
+                                         for i, s in enumerate(fitted)
+                                         if i < len(state["theta"])}
     draws = {"clearance": [], "volume": [], "cv_clearance": [], "cv_volume": []}
     exps: dict[str, list[float]] = {"clearance": [], "volume": []}
     fails = 0
-    for _ in range(n_boot):
+    for rep in range(n_boot):
         pick = rng.integers(0, len(fitted), len(fitted))
         sample = [replace(fitted[i], subject=f"{fitted[i].subject}#{k}")
                   for k, i in enumerate(pick)]
-        start = dict(state, theta=np.array([theta_by.get(fitted[i].subject,
-                                                         state["theta"][0]) for i in pick]))
         try:
-            r = iterative_two_stage(sample, start=start, final_fits=False,
-                                    max_iterations=60, **kwargs)
-        except (ValueError, np.linalg.LinAlgError):
+            if estimate is not None:
+                r = estimate(sample)
+            else:
+                start = dict(state, theta=np.array([theta_by.get(fitted[i].subject,
+                                                                 state["theta"][0])
+                                                    for i in pick]))
+                r = iterative_two_stage(sample, start=start, final_fits=False,
+                                        max_iterations=60, **kwargs)
+        except (ValueError, ArithmeticError, np.linalg.LinAlgError):
             fails += 1
+            r = None
+        if progress is not None:
+            done = rep + 1
+            left = (time.perf_counter() - t0) / done * (n_boot - done)
+            progress(f"bootstrap replicate {done} of {n_boot} ({n_boot - done} left, about "
+                     f"{left:.0f} s)")
+        if r is None:
             continue
         draws["clearance"].append(r.typical["clearance"])
         draws["volume"].append(r.typical["volume"])
@@ -389,7 +436,6 @@ def bootstrap(subjects: list[SubjectData], result: PopulationResult, n_boot: int
         draws["cv_volume"].append(r.variability_cv_percent["volume"])
         for k, v in r.exponents.items():
             exps[k].append(v)
-    del idx_of
     out: dict[str, object] = {"replicates": n_boot, "failed": fails, "seed": seed}
     for k, vals in draws.items():
         a = np.array(vals)
@@ -421,12 +467,7 @@ def simulate_design(subjects: list[SubjectData], result: PopulationResult, repli
         In the order of the subjects and their sample times.
     """
     rng = np.random.default_rng(seed)
-    x, offset, estimate = _design(subjects, result.covariate, result.reference_weight or 70.0)
-    beta = np.log([result.typical["clearance"], result.typical["volume"]])
-    if estimate:
-        beta = np.array([beta[0], result.exponents["clearance"], beta[1],
-                         result.exponents["volume"]])
-    mu = _means(beta, x, offset, estimate)
+    mu = np.array([result.subject_means[s.subject] for s in subjects])
     sa = result.residual_error.get("additive", 0.0)
     sp = result.residual_error.get("proportional", 0.0)
     # all replicates at once: subjects padded to one width, parameters (R, S)

@@ -360,6 +360,25 @@ def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[
                                                     doc["residual_error"].items()))
     text.append(f"iterations: {doc['iterations']}; converged: {doc['converged']}")
     items.append(lines_item("text", text))
+    if doc.get("parameters"):
+        items.append(table_item(
+            ["parameter", "value", "unit", "SE", "RSE %", "CI low", "CI high"],
+            [[p["name"], p["value"], p["unit"], p["se"], p["rse_percent"], p["ci_low"],
+              p["ci_high"]] for p in doc["parameters"]],
+            f"Every parameter (covariance step): -2 ln L {doc['objective']:.4f}, "
+            f"{doc['n_parameters']} parameters, AIC {doc['aic']:.4f}, BIC {doc['bic']:.4f}"))
+    if doc.get("comparison"):
+        comp = doc["comparison"]
+        items.append(table_item(
+            ["model", "effects", "-2 ln L", "parameters", "AIC", "BIC", "LRT df", "LRT p",
+             "note"],
+            [[m["model"], "; ".join(m["effects"]) or "(none)", m["objective"],
+              m["n_parameters"], m["aic"], m["bic"], m["lrt_df"], m["lrt_p"],
+              m["error"] or ""] for m in comp["models"]],
+            f"Models compared (likelihood-ratio test against '{comp['base']}')"))
+        if comp["stepwise"]:
+            items.append(lines_item("text", [
+                f"{s['step']}: {s['effect']}: p = {s['p']:.3g}" for s in comp["stepwise"]]))
     srows = [[d["subject"], d["estimates"]["clearance"]["value"],
               d["estimates"]["volume"]["value"], d["estimates"]["half_life"]["value"],
               (d.get("prior") or {}).get("ln_clearance_deviation"),

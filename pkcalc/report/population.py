@@ -51,7 +51,82 @@ def population_json(result, conv: UnitConverter, *, title: str | None = None, fa
         "notes": list(result.notes), "warnings": list(result.warnings),
         "failures": failures_json(failures),
     }
+    body.update(marginal_json(result, conv, per_kg))
     return json_document("population", conv, body)
+
+
+def _row_units(row: dict, conv: UnitConverter, per_kg: bool) -> tuple[Any, str]:
+    """A parameter row's value converter and unit (display units; per kg when so)."""
+    kind = row.get("kind")
+    if kind is None:
+        unit = "%" if row["name"].endswith("%") else ""
+        return (lambda x: json_number(x)), unit
+    unit = conv.unit(kind) + ("/kg" if per_kg and row["name"].startswith("typical") else "")
+    return (lambda x: json_number(None if x is None else conv(x, kind))), unit
+
+
+def parameter_dicts(rows: list[dict], conv: UnitConverter, per_kg: bool) -> list[dict]:
+    """The covariance step's table in display units."""
+    out = []
+    for r in rows:
+        c, unit = _row_units(r, conv, per_kg)
+        out.append({"name": r["name"], "value": c(r["value"]), "unit": unit, "se": c(r["se"]),
+                    "rse_percent": json_number(r["rse_percent"]), "ci_low": c(r["ci_low"]),
+                    "ci_high": c(r["ci_high"])})
+    return out
+
+
+def marginal_json(result, conv: UnitConverter, per_kg: bool) -> dict[str, Any]:
+    """The marginal-likelihood keys: objective, parameters, covariance step, comparison."""
+    if result.method != "marginal":
+        return {}
+    corr = result.parameter_correlation
+    out: dict[str, Any] = {
+        "model": result.model_name, "objective": json_number(result.objective),
+        "n_parameters": result.n_parameters, "n_levels": result.n_levels,
+        "aic": json_number(result.aic), "bic": json_number(result.bic),
+        "nodes": result.nodes, "between_subject": result.between_subject,
+        "parameters": parameter_dicts(result.parameters, conv, per_kg),
+        "effects": [{k: (json_number(v) if isinstance(v, float) else v) for k, v in e.items()}
+                    for e in result.effects],
+        "covariance_step": {
+            "names": list(result.parameter_names),
+            "correlation": None if corr is None else [[json_number(x) for x in row]
+                                                      for row in corr],
+            "condition_number": json_number(result.condition_number)},
+    }
+    comp = result.comparison
+    if comp is not None:
+        out["comparison"] = {"base": comp.base, "selected": comp.selected,
+                             "models": [{k: (json_number(v) if isinstance(v, float) else v)
+                                         for k, v in r.as_dict().items()} for r in comp.rows],
+                             "stepwise": [{k: (json_number(v) if isinstance(v, float) else v)
+                                           for k, v in s.items()} for s in comp.steps]}
+    return out
+
+
+def comparison_text(doc: dict[str, Any]) -> str | None:
+    """The comparison table (and the stepwise path)."""
+    comp = doc.get("comparison")
+    if not comp:
+        return None
+    rows = [[m["model"], "; ".join(m["effects"]) or "(none)", m["objective"], m["n_parameters"],
+             m["aic"], m["bic"], m["lrt_df"], m["lrt_p"],
+             "FAILED: " + m["error"] if m["error"] else ("yes" if m["converged"] else "NO")]
+            for m in comp["models"]]
+    lines = [f"Models compared (likelihood-ratio test against '{comp['base']}' for models "
+             "that contain its effects):",
+             format_table(["model", "effects", "-2lnL", "parameters", "AIC", "BIC", "LRT df",
+                           "LRT p", "converged"], rows)]
+    for s in comp["stepwise"]:
+        verdict = ("kept" if s["step"] == "forward" else "removed") if s["accepted"] else \
+            ("not added" if s["step"] == "forward" else "kept")
+        lines.append(f"  {s['step']}: {s['effect']}: p = {s['p']:.3g} -> {verdict}")
+    return "\n".join(lines)
+
+
+def _num(x) -> str:
+    return "-" if x is None else f"{x:.3g}"
 
 
 def population_text(result, conv: UnitConverter, *, title: str | None = None, failures=(),
@@ -72,6 +147,18 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
     sections.append(f"Population estimates ({result.method} method):\n" + format_table(
         ["parameter", "typical", "unit", "SE", "95% CI", "between-subject CV %",
          "shrinkage %"], rows))
+    if doc.get("parameters"):
+        prow = [[p["name"], p["value"], p["unit"], p["se"], p["rse_percent"],
+                 "-" if p["ci_low"] is None else f"{p['ci_low']:.4g}-{p['ci_high']:.4g}"]
+                for p in doc["parameters"]]
+        head = (f"Every parameter (covariance step; -2lnL {doc['objective']:.4f}, "
+                f"{doc['n_parameters']} parameters, AIC {doc['aic']:.4f}, BIC {doc['bic']:.4f};"
+                f" condition number {_num(doc['covariance_step']['condition_number'])}):\n")
+        sections.append(head + format_table(["parameter", "value", "unit", "SE", "RSE %",
+                                             "95% CI"], prow))
+    comparison = comparison_text(doc)
+    if comparison:
+        sections.append(comparison)
     extra = []
     cov = doc["covariate"]
     if cov["model"] != "none":
@@ -120,4 +207,5 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
                          failures=failures, colour=colour)
 
 
-__all__ = ["population_json", "population_text"]
+__all__ = ["comparison_text", "marginal_json", "parameter_dicts", "population_json",
+           "population_text"]

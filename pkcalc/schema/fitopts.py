@@ -16,8 +16,11 @@ from ..core import (
     BLQ_METHODS,
     CI_METHODS,
     ERROR_MODELS,
+    POPULATION_METHODS,
     WEIGHTINGS,
+    Effect,
     FitOptions,
+    PopulationModel,
     PopulationOptions,
     Prior,
 )
@@ -237,6 +240,104 @@ def fit_options(raw: dict[str, Any] | None = None, *, base: Path | None = None,
                       adequacy)
 
 
+EFFECT_HELP = ('"weight on clearance", "weight on clearance and volume", "sex on volume", '
+               '"age on clearance linear around 40", "weight on clearance fixed 0.75 around '
+               '70 kg"')
+
+
+def parse_effects(text: Any, field: str, file: str | None = None) -> tuple[Effect, ...]:
+    """Effects from words: ``COLUMN on clearance|volume [and volume] [power|linear|
+    categorical] [fixed EXPONENT] [around REFERENCE]``."""
+    from ..units import to_canonical
+
+    def fail(why: str):
+        raise PkcalcInputError(f"{why}: {text!r}", file=file, field=field,
+                               expected=EFFECT_HELP)
+
+    if not isinstance(text, str) or " on " not in f" {text.strip()} ":
+        fail("an effect names a column and a parameter")
+    words = text.replace(",", " ").split()
+    if "on" not in words[1:]:
+        fail("an effect names a column and a parameter")
+    k = words.index("on", 1)
+    column = " ".join(words[:k])
+    rest = words[k + 1:]
+    params, form, fixed, ref = [], "power", None, None
+    i = 0
+    while i < len(rest):
+        w = rest[i].lower()
+        if w in ("clearance", "volume"):
+            params.append(w)
+        elif w == "and":
+            pass
+        elif w in ("power", "linear", "categorical"):
+            form = w
+        elif w == "fixed" and i + 1 < len(rest):
+            try:
+                fixed = float(rest[i + 1])
+            except ValueError:
+                fail(f"'fixed' takes a number, not '{rest[i + 1]}'")
+            i += 1
+        elif w == "around" and i + 1 < len(rest):
+            value = " ".join(rest[i + 1:])
+            try:
+                ref = float(value)
+            except ValueError:
+                if column == "weight":
+                    ref = to_canonical(value, "weight", field=field)
+                elif len(rest[i + 1:]) == 1:
+                    ref = value                   # a reference level of a text column
+                else:
+                    fail(f"'around' takes a number or a level, not '{value}'")
+            break
+        else:
+            fail(f"unknown word '{rest[i]}'")
+        i += 1
+    if not params:
+        fail("say which parameter: clearance, volume or both")
+    if isinstance(ref, str) and form != "categorical":
+        form = "categorical"
+    try:
+        return tuple(Effect(column, p, form, ref, fixed) for p in dict.fromkeys(params))
+    except ValueError as exc:
+        fail(str(exc))
+        raise
+
+
+def _effect_list(value: Any, field: str, file: str | None, problems: list[Problem]
+                 ) -> tuple[Effect, ...]:
+    items = [value] if isinstance(value, str) else value
+    if not isinstance(items, list):
+        problems.append(Problem("must be a list of effects", file=file, field=field,
+                                expected=EFFECT_HELP))
+        return ()
+    out: list[Effect] = []
+    for item in items:
+        try:
+            out += parse_effects(item, field, file)
+        except PkcalcInputError as exc:
+            problems.extend(exc.problems)
+    return tuple(out)
+
+
+def _models(value: Any, file: str | None, problems: list[Problem]
+            ) -> tuple[PopulationModel, ...]:
+    """``[population.models]``: name = [effects]; at least two models."""
+    if not isinstance(value, dict) or len(value) < 2:
+        problems.append(Problem("give at least two models to compare, each a list of effects",
+                                file=file, field="population.models",
+                                expected='base = [], weight = ["weight on clearance"]'))
+        return ()
+    out = []
+    for name, effects in value.items():
+        eff = _effect_list(effects, f"population.models.{name}", file, problems)
+        try:
+            out.append(PopulationModel(str(name), eff))
+        except ValueError as exc:
+            problems.append(Problem(str(exc), file=file, field=f"population.models.{name}"))
+    return tuple(out)
+
+
 def population_options(raw: dict[str, Any] | None = None, *, file: str | None = None
                        ) -> PopulationOptions:
     """Validate the ``[population]`` table (merged with command-line values)."""
@@ -245,12 +346,14 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
     raw = {k: v for k, v in (raw or {}).items() if v is not None}
     problems: list[Problem] = []
     allowed = {"method", "error_model", "blq", "covariate", "reference_weight", "bootstrap",
-               "seed", "vpc_replicates", "adequacy"}
+               "seed", "vpc_replicates", "adequacy", "nodes", "between_subject", "effects",
+               "models", "stepwise"}
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"population.{key}",
                                 expected=", ".join(sorted(allowed))))
-    choices = {"method": ("two-stage", "iterative"), "error_model": ERROR_MODELS,
-               "blq": BLQ_METHODS, "covariate": ("none", "allometric", "estimated", "per_kg")}
+    choices = {"method": POPULATION_METHODS, "error_model": ERROR_MODELS,
+               "blq": BLQ_METHODS, "covariate": ("none", "allometric", "estimated", "per_kg"),
+               "between_subject": ("full", "diagonal")}
     for key, allowed_values in choices.items():
         if key in raw and raw[key] not in allowed_values:
             problems.append(Problem(f"unknown value '{raw[key]}'", file=file,
@@ -273,6 +376,41 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
                            or not lo <= raw[key] <= hi):
             problems.append(Problem(f"must be a whole number from {lo} to {hi}", file=file,
                                     field=f"population.{key}"))
+    nodes = raw.get("nodes", 1)
+    if not isinstance(nodes, int) or isinstance(nodes, bool) or not 1 <= nodes <= 15:
+        problems.append(Problem("must be a whole number from 1 to 15 (1: Laplace)", file=file,
+                                field="population.nodes"))
+    effects = _effect_list(raw.get("effects", []), "population.effects", file, problems)
+    models = _models(raw["models"], file, problems) if "models" in raw else ()
+    step = raw.get("stepwise")
+    candidates: tuple[Effect, ...] = ()
+    p_in, p_out = 0.05, 0.01
+    if step is not None:
+        if not isinstance(step, dict) or not step.get("candidates"):
+            problems.append(Problem("stepwise selection needs candidate effects", file=file,
+                                    field="population.stepwise",
+                                    expected='candidates = ["sex on clearance"], p_in = 0.05, '
+                                             'p_out = 0.01'))
+        else:
+            candidates = _effect_list(step["candidates"], "population.stepwise.candidates",
+                                      file, problems)
+            p_in, p_out = step.get("p_in", 0.05), step.get("p_out", 0.01)
+            for key, x in (("p_in", p_in), ("p_out", p_out)):
+                if not isinstance(x, int | float) or isinstance(x, bool) or not 0 < x < 1:
+                    problems.append(Problem("must be a probability between 0 and 1",
+                                            file=file, field=f"population.stepwise.{key}"))
+            for key in sorted(set(step) - {"candidates", "p_in", "p_out"}):
+                problems.append(Problem("unknown key", file=file,
+                                        field=f"population.stepwise.{key}",
+                                        expected="candidates, p_in, p_out"))
+    method = raw.get("method", "marginal")
+    if method in ("iterative", "two-stage") and (effects or models or candidates):
+        problems.append(Problem("covariate effects, model comparison and stepwise selection "
+                                "need the marginal method", file=file,
+                                field="population.method", expected="method = \"marginal\""))
+    if models and candidates:
+        problems.append(Problem("give models to compare or stepwise candidates, not both",
+                                file=file, field="population.stepwise"))
     if not isinstance(raw.get("adequacy", True), bool):
         problems.append(Problem("must be true or false", file=file, field="population.adequacy",
                                 expected="adequacy = false (turns the one-compartment "
@@ -280,7 +418,9 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
     if problems:
         raise PkcalcInputError(problems)
     return PopulationOptions(
-        method=raw.get("method", "iterative"), error_model=raw.get("error_model", "proportional"),
+        method=method, error_model=raw.get("error_model", "proportional"),
         blq=raw.get("blq", "likelihood"), covariate=raw.get("covariate", "none"),
         reference_weight=ref, bootstrap=raw.get("bootstrap", 0), seed=raw.get("seed", 1),
-        vpc_replicates=raw.get("vpc_replicates", 200), adequacy=raw.get("adequacy", True))
+        vpc_replicates=raw.get("vpc_replicates", 200), adequacy=raw.get("adequacy", True),
+        nodes=nodes, between_subject=raw.get("between_subject", "full"), effects=effects,
+        models=models, stepwise=candidates, p_in=float(p_in), p_out=float(p_out))

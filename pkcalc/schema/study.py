@@ -267,7 +267,7 @@ def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, floa
         raise PkcalcInputError(problems)
     ids = sb.text("subject")
     table: dict[str, pd.Series] = {}
-    for key, (col, unit) in sb.map.items():
+    for key, (_col, unit) in sb.map.items():
         if key == "subject":
             continue
         if key == "weight":

@@ -1,0 +1,171 @@
+"""Several covariate models side by side, and stepwise covariate selection.
+
+Every model is estimated by maximum marginal likelihood on the same subjects.
+The table gives ``-2 ln L``, the number of parameters, AIC, BIC and the
+likelihood-ratio test against the base model: ``D = -2 ln L(base) - (-2 ln
+L(model))`` against a chi-square with as many degrees of freedom as the model
+has extra parameters, for models that contain every effect of the base
+(nested); otherwise no test (compare by AIC/BIC).  Stepwise selection
+(common practice: forward inclusion at p < 0.05, backward elimination at
+p > 0.01) adds the candidate effect with the smallest p-value while it is below
+``p_in``, then removes the effect with the largest p-value while it is above
+``p_out``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..core import Effect, PopulationModel, PopulationOptions, SubjectData
+from .estimate import marginal_estimate, model_effects
+from .result import PopulationResult
+
+__all__ = ["ModelComparison", "compare_models", "stepwise"]
+
+
+@dataclass
+class ModelRow:
+    """One model of a comparison: its estimate, or why it failed."""
+
+    name: str
+    effects: tuple[Effect, ...]
+    result: PopulationResult | None = None
+    error: str | None = None
+    lrt_df: int | None = None
+    lrt_statistic: float | None = None
+    lrt_p: float | None = None
+
+    def as_dict(self) -> dict:
+        r = self.result
+        return {"model": self.name, "effects": [e.label for e in self.effects],
+                "objective": None if r is None else r.objective,
+                "n_parameters": None if r is None else r.n_parameters,
+                "aic": None if r is None else r.aic, "bic": None if r is None else r.bic,
+                "converged": None if r is None else r.converged,
+                "lrt_df": self.lrt_df, "lrt_statistic": self.lrt_statistic,
+                "lrt_p": self.lrt_p, "error": self.error}
+
+
+@dataclass
+class ModelComparison:
+    """The models, the base they are tested against and the stepwise path (if any)."""
+
+    rows: list[ModelRow]
+    base: str
+    steps: list[dict] = field(default_factory=list)
+    selected: str | None = None
+
+    @property
+    def failed(self) -> list[ModelRow]:
+        return [r for r in self.rows if r.result is None]
+
+    def best(self) -> ModelRow | None:
+        """The selected model (stepwise), else the lowest AIC."""
+        ok = [r for r in self.rows if r.result is not None]
+        if self.selected is not None:
+            return next((r for r in ok if r.name == self.selected), None)
+        return min(ok, key=lambda r: r.result.aic, default=None)
+
+
+def _test(small: ModelRow, big: ModelRow) -> tuple[int, float, float] | None:
+    """Likelihood-ratio test of ``small`` nested in ``big``: (df, statistic, p)."""
+    from scipy.stats import chi2
+
+    if small.result is None or big.result is None or small is big:
+        return None
+    extra = big.result.n_parameters - small.result.n_parameters
+    nested = {(e.column, e.parameter) for e in small.effects} <= \
+        {(e.column, e.parameter) for e in big.effects}
+    if extra <= 0 or not nested:
+        return None
+    d = max(small.result.objective - big.result.objective, 0.0)
+    return extra, d, float(chi2.sf(d, extra))
+
+
+def _lrt(base: ModelRow, row: ModelRow) -> None:
+    test = _test(base, row)
+    if test is not None:
+        row.lrt_df, row.lrt_statistic, row.lrt_p = test
+
+
+def _estimate(subjects, options, pm: PopulationModel, progress, start) -> ModelRow:
+    row = ModelRow(pm.name, pm.effects)
+    try:
+        row.result = marginal_estimate(subjects, options, pm, progress=progress, start=start,
+                                       final_fits=False)
+    except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+        row.error = str(exc)
+    return row
+
+
+def compare_models(subjects: list[SubjectData], options: PopulationOptions,
+                   models: tuple[PopulationModel, ...], *,
+                   progress: Callable[[str], None] | None = None) -> ModelComparison:
+    """Estimate every model; likelihood-ratio tests against the first (the base)."""
+    rows: list[ModelRow] = []
+    start = None
+    for pm in models:
+        row = _estimate(subjects, options, pm, progress, start)
+        rows.append(row)
+        if start is None and row.result is not None:
+            start = row.result          # later models start from the base estimate
+    for row in rows[1:]:
+        _lrt(rows[0], row)
+    return ModelComparison(rows, models[0].name)
+
+
+def stepwise(subjects: list[SubjectData], options: PopulationOptions,
+             candidates: tuple[Effect, ...], *,
+             progress: Callable[[str], None] | None = None) -> ModelComparison:
+    """Forward inclusion at ``options.p_in``, then backward elimination at
+    ``options.p_out``, from the model of ``options`` (its effects always stay)."""
+    base_effects = model_effects(options)
+    current = PopulationModel("base", base_effects)
+    current_row = _estimate(subjects, options, current, progress, None)
+    rows, steps = [current_row], []
+    if current_row.result is None:
+        return ModelComparison(rows, "base", steps, None)
+    pool = [c for c in candidates
+            if (c.column, c.parameter) not in {(e.column, e.parameter) for e in base_effects}]
+    while pool:
+        trials = []
+        for c in pool:
+            pm = PopulationModel(f"{current.name} + {c.column} on {c.parameter}",
+                                 (*current.effects, c))
+            row = _estimate(subjects, options, pm, progress, current_row.result)
+            _lrt(current_row, row)
+            rows.append(row)
+            trials.append((c, row))
+        ok = [(c, r) for c, r in trials if r.lrt_p is not None]
+        if not ok:
+            break
+        c, r = min(ok, key=lambda x: x[1].lrt_p)
+        steps.append({"step": "forward", "effect": c.label, "p": r.lrt_p,
+                      "accepted": r.lrt_p < options.p_in})
+        if r.lrt_p >= options.p_in:
+            break
+        current, current_row = PopulationModel(r.name, r.effects), r
+        pool.remove(c)
+    while True:
+        removable = [e for e in current.effects if e not in base_effects]
+        ok = []
+        for e in removable:
+            pm = PopulationModel(f"{current.name} - {e.column} on {e.parameter}",
+                                 tuple(x for x in current.effects if x != e))
+            row = _estimate(subjects, options, pm, progress, current_row.result)
+            rows.append(row)
+            test = _test(row, current_row)
+            if test is not None:
+                ok.append((e, row, test[2]))
+        if not ok:
+            break
+        e, row, p = max(ok, key=lambda x: x[2])
+        steps.append({"step": "backward", "effect": e.label, "p": p,
+                      "accepted": p > options.p_out})
+        if p <= options.p_out:
+            break
+        current, current_row = PopulationModel(row.name, row.effects), row
+    return ModelComparison(rows, "base", steps, current.name)
