@@ -437,10 +437,15 @@ class Effect:
 
     @property
     def label(self) -> str:
-        """``weight on clearance (power)`` -- the words the model was declared in."""
-        extra = "" if self.fixed is None else f" fixed {self.fixed:g}"
-        ref = "" if self.reference is None else f" around {self.reference}"
-        return f"{self.column} on {self.parameter} ({self.form}{extra}{ref})"
+        """``weight on clearance (around 70)`` -- the words the model is declared in."""
+        words = [] if self.form == "power" and self.fixed is None else [self.form]
+        if self.fixed is not None:
+            words.append(f"fixed {self.fixed:g}")
+        if self.reference is not None:
+            ref = self.reference
+            words.append(f"around {ref:g}" if isinstance(ref, float) else f"around {ref}")
+        return f"{self.column} on {self.parameter}" + (f" ({' '.join(words)})" if words
+                                                       else "")
 
     @property
     def estimated(self) -> bool:
@@ -501,7 +506,7 @@ class PopulationOptions:
         _check(self.method in POPULATION_METHODS, "method",
                f"must be one of {', '.join(POPULATION_METHODS)}", self.method)
         _check(isinstance(self.nodes, int) and not isinstance(self.nodes, bool)
-               and 1 <= self.nodes <= 15, "nodes", "must be a whole number from 1 to 15",
+               and 1 <= self.nodes <= 31, "nodes", "must be a whole number from 1 to 31",
                self.nodes)
         _check(self.between_subject in ("full", "diagonal"), "between_subject",
                "must be 'full' or 'diagonal'", self.between_subject)

@@ -45,7 +45,8 @@ from ..fit.solver import minimise
 from ..fit.uncertainty import observed_hessian
 from .covariates import Design
 
-__all__ = ["MarginalFit", "MarginalProblem", "integrate_subjects", "log_integral"]
+__all__ = ["MarginalFit", "MarginalProblem", "gauss_hermite", "integrate_subjects", "laplace",
+           "log_integral"]
 
 LOG_2PI = math.log(2 * math.pi)
 #: Central-difference steps (log-parameters) for the gradient and the Hessian.
@@ -65,6 +66,13 @@ def gauss_hermite(nodes: int, q: int = 2) -> tuple[np.ndarray, np.ndarray]:
     lw = np.sum(np.stack(np.meshgrid(*([np.log(w)] * q), indexing="ij"), -1).reshape(-1, q),
                 axis=1)
     return grid, lw
+
+
+def laplace(h_mode: np.ndarray, half_hessian: np.ndarray) -> np.ndarray:
+    """``-2 ln`` of ``integral exp(-h/2)`` by the Laplace approximation:
+    ``h(eta^) - q ln(2 pi) + ln|H/2|`` (``half_hessian`` is ``H/2``, shape (B, q, q))."""
+    q = half_hessian.shape[-1]
+    return h_mode - q * LOG_2PI + np.linalg.slogdet(half_hessian)[1]
 
 
 def log_integral(h_nodes: np.ndarray, chol: np.ndarray, nodes: int) -> np.ndarray:
@@ -239,7 +247,7 @@ class MarginalProblem:
         post = np.linalg.inv(half)
         logdet_omega = float(np.linalg.slogdet(omega)[1])
         if self.nodes == 1:
-            m2ll = g + logdet_omega + np.linalg.slogdet(half)[1]
+            m2ll = laplace(g + logdet_omega + 2 * LOG_2PI, half)
         else:
             chol = np.linalg.cholesky(post)
             pts = theta[:, None, :] + math.sqrt(2.0) * np.einsum("bij,kj->bki", chol,

@@ -377,8 +377,8 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
             problems.append(Problem(f"must be a whole number from {lo} to {hi}", file=file,
                                     field=f"population.{key}"))
     nodes = raw.get("nodes", 1)
-    if not isinstance(nodes, int) or isinstance(nodes, bool) or not 1 <= nodes <= 15:
-        problems.append(Problem("must be a whole number from 1 to 15 (1: Laplace)", file=file,
+    if not isinstance(nodes, int) or isinstance(nodes, bool) or not 1 <= nodes <= 31:
+        problems.append(Problem("must be a whole number from 1 to 31 (1: Laplace)", file=file,
                                 field="population.nodes"))
     effects = _effect_list(raw.get("effects", []), "population.effects", file, problems)
     models = _models(raw["models"], file, problems) if "models" in raw else ()

