@@ -351,7 +351,7 @@ def _population_estimate(study: Study, o: PopulationOptions, progress):
     method, with a warning, when it does not converge and no effect needs it)."""
     from .population import iterative_two_stage, two_stage
     from .population.compare import compare_models, stepwise
-    from .population.estimate import marginal_estimate
+    from .population.estimate import individual_estimates, marginal_estimate, usable_subjects
 
     if o.method == "two-stage":
         return two_stage(study.subjects, FitOptions(error_model=o.error_model, blq=o.blq),
@@ -367,8 +367,8 @@ def _population_estimate(study: Study, o: PopulationOptions, progress):
         if best is None:
             raise ValueError("no model of the comparison could be estimated: " + "; ".join(
                 f"{r.name}: {r.error}" for r in comparison.rows if r.error))
-        result = marginal_estimate(study.subjects, o, PopulationModel(best.name, best.effects),
-                                   progress=progress, start=best.result)
+        result = best.result
+        individual_estimates(result, usable_subjects(study.subjects, o)[0], o)
         result.comparison = comparison
         result.notes.insert(0, f"reported model: '{best.name}' ("
                             + ("selected stepwise" if o.stepwise else "lowest AIC") + ")")

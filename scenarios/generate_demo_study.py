@@ -111,8 +111,11 @@ def sparse_study(seed: int = 7) -> dict[str, str]:
             levels.write(f"{sid},{_fmt(tt)},{_fmt(max(cc, 0.01))}\n")
         doses.write(f"{sid},0,{_fmt(load)},{_fmt(load / 0.5)}\n")
         doses.write(f"{sid},0.5,{_fmt(rate * 47.5)},{_fmt(rate)}\n")
-    subjects = "subject,weight [kg]\n" + "".join(
-        f"S{i + 1:03d},{weight[i]:.1f}\n" for i in range(n))
+    # an invented ward of admission: a text covariate with no effect on the kinetics
+    # (its own random stream, so the other columns do not change)
+    ward = np.random.default_rng(seed + 1).choice(["north", "south", "east"], n)
+    subjects = "subject,weight [kg],ward\n" + "".join(
+        f"S{i + 1:03d},{weight[i]:.1f},{ward[i]}\n" for i in range(n))
     return {"demo-sparse-levels.csv": levels.getvalue(),
             "demo-sparse-doses.csv": doses.getvalue(),
             "demo-sparse-subjects.csv": subjects}

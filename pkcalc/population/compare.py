@@ -104,7 +104,12 @@ def _estimate(subjects, options, pm: PopulationModel, progress, start) -> ModelR
 def compare_models(subjects: list[SubjectData], options: PopulationOptions,
                    models: tuple[PopulationModel, ...], *,
                    progress: Callable[[str], None] | None = None) -> ModelComparison:
-    """Estimate every model; likelihood-ratio tests against the first (the base)."""
+    """Estimate every model; likelihood-ratio tests against the first (the base).  Every
+    model also carries the effects of ``options`` (its body-weight model and effects)."""
+    common = model_effects(options)
+    keys = {(e.column, e.parameter) for e in common}
+    models = tuple(PopulationModel(pm.name, common + tuple(
+        e for e in pm.effects if (e.column, e.parameter) not in keys)) for pm in models)
     rows: list[ModelRow] = []
     start = None
     for pm in models:

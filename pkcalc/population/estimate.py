@@ -17,7 +17,7 @@ from .marginal import MarginalFit, MarginalProblem
 from .result import PopulationResult
 from .twostage import _as_prior, _cv, iterative_two_stage, two_stage
 
-__all__ = ["marginal_estimate", "model_effects"]
+__all__ = ["individual_estimates", "marginal_estimate", "model_effects", "usable_subjects"]
 
 Z95 = 1.959963984540054
 #: Starts whose optima differ by less than this (-2 ln L) agree.
@@ -104,7 +104,7 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
     result.notes.append(f"{agreed} of {len(ends)} starts reached the best -2 ln L "
                         f"({', '.join(f'{e:.4f}' for e in ends)})")
     if final_fits:
-        _individual(result, subjects, options)
+        individual_estimates(result, subjects, options)
     return result
 
 
@@ -302,8 +302,8 @@ def _weight_exponents(design: Design, rows: list[dict]):
     return exps, (ci or None)
 
 
-def _individual(result: PopulationResult, subjects: list[SubjectData],
-                options: PopulationOptions) -> None:
+def individual_estimates(result: PopulationResult, subjects: list[SubjectData],
+                         options: PopulationOptions) -> None:
     """Conditional modes with their SEs: MAP under the final model."""
     sa = result.residual_error.get("additive", 0.0)
     sp = result.residual_error.get("proportional", 0.0)

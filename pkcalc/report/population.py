@@ -161,7 +161,7 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
         sections.append(comparison)
     extra = []
     cov = doc["covariate"]
-    if cov["model"] != "none":
+    if cov["model"] != "none" and cov["reference_weight_kg"] is not None:
         ref = cov["reference_weight_kg"]
         text = (f"weight model: {cov['model']} (typical at {ref:g} kg); exponents "
                 + ", ".join(f"{k} {v:.3g}" for k, v in cov["exponents"].items()))
