@@ -89,7 +89,8 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
     for k, psi0 in enumerate(starts):
         say = None if progress is None else (
             lambda text, k=k: progress(f"{name}, start {k + 1} of {len(starts)}: {text}"))
-        fit = problem.fit(psi0, progress=say, covariance=False)
+        ref = None if best is None else (best.psi, best.objective)
+        fit = problem.fit(psi0, progress=say, covariance=False, reference=ref)
         ends.append(fit.objective)
         if best is None or fit.objective < best.objective:
             best = fit
