@@ -90,9 +90,10 @@ def test_quadrature_with_many_nodes_equals_brute_force_integration():
             f = model.concentration(s.time, s.dose_start, s.dose_amount, s.dose_duration,
                                     5.0 * math.exp(e1), 50.0 * math.exp(e2))
             sd = 0.12 * f
-            like = np.prod(np.exp(-0.5 * ((s.conc - f) / sd) ** 2) / (sd * math.sqrt(2 * math.pi)))
-            prior = math.exp(-0.5 * eta @ oi @ eta) / (2 * math.pi * math.sqrt(np.linalg.det(omega)))
-            return like * prior
+            like = np.prod(np.exp(-0.5 * ((s.conc - f) / sd) ** 2)
+                           / (sd * math.sqrt(2 * math.pi)))
+            norm = 2 * math.pi * math.sqrt(np.linalg.det(omega))
+            return like * math.exp(-0.5 * eta @ oi @ eta) / norm
         value, _ = integrate.dblquad(integrand, -2.5, 2.5, -2.5, 2.5, epsabs=0, epsrel=1e-11)
         brute = -2 * math.log(value)
         print(f"\n[marginal] subject {s.subject}: quadrature (25 nodes) {ours[i]:.9f}, dblquad "

@@ -187,11 +187,15 @@ def _parameter_rows(problem: MarginalProblem, fit: MarginalFit) -> list[dict]:
         jac[:, j] = (up - dn) / 2e-6
     var = None if fit.covariance is None else np.einsum("ij,jk,ik->i", jac, fit.covariance,
                                                          jac)
+    # a parameter at its floor has no meaningful SE (nor has anything derived from it)
+    floor = fit.psi <= problem.lower_bounds() + 1e-6
+    on_floor = (np.abs(jac[:, floor]) > 0).any(axis=1) if floor.any() else \
+        np.zeros(len(base), bool)
     rows = []
     for i, (name, value, kind, positive) in enumerate(base):
-        se = None if var is None or not var[i] >= 0 else math.sqrt(var[i])
+        se = None if var is None or not var[i] >= 0 or on_floor[i] else math.sqrt(var[i])
         row = {"name": name, "value": value, "kind": kind, "se": se, "rse_percent": None,
-               "ci_low": None, "ci_high": None}
+               "ci_low": None, "ci_high": None, "at_lower_bound": bool(on_floor[i])}
         if se is not None:
             if positive and value > 0:
                 sl = se / value

@@ -110,13 +110,20 @@ def comparison_text(doc: dict[str, Any]) -> str | None:
     comp = doc.get("comparison")
     if not comp:
         return None
-    rows = [[m["model"], "; ".join(m["effects"]) or "(none)", m["objective"], m["n_parameters"],
+    base = set(comp["models"][0]["effects"]) if comp["models"] else set()
+
+    def own(m, first):
+        effects = m["effects"] if first else [e for e in m["effects"] if e not in base]
+        return "; ".join(effects) or "(none)"
+
+    rows = [[m["model"], own(m, i == 0), m["objective"], m["n_parameters"],
              m["aic"], m["bic"], m["lrt_df"], m["lrt_p"],
              "FAILED: " + m["error"] if m["error"] else ("yes" if m["converged"] else "NO")]
-            for m in comp["models"]]
+            for i, m in enumerate(comp["models"])]
     lines = [f"Models compared (likelihood-ratio test against '{comp['base']}' for models "
              "that contain its effects):",
-             format_table(["model", "effects", "-2lnL", "parameters", "AIC", "BIC", "LRT df",
+             format_table(["model", "effects (beyond the first model's)", "-2lnL", "parameters",
+                           "AIC", "BIC", "LRT df",
                            "LRT p", "converged"], rows)]
     for s in comp["stepwise"]:
         verdict = ("kept" if s["step"] == "forward" else "removed") if s["accepted"] else \
