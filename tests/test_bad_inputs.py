@@ -480,6 +480,30 @@ def option_cases() -> list[Case]:
         ("nca-terminal-bad", "F3", ("nca", "study.toml", "--terminal", "A"), "terminal"),
     ]
     out = [Case(i, r, a, study, 2, p) for i, r, a, p in rows]
+    pop = [  # population options: M1-M3 (a single model refused before any estimate)
+        ("effect-no-on", "M1", ["--effect", "weight clearance"], "names a column"),
+        ("effect-bad-word", "M1", ["--effect", "weight on clearance quickly"], "unknown word"),
+        ("effect-fixed-text", "M1", ["--effect", "weight on clearance fixed big"],
+         "'fixed' takes a number"),
+        ("effect-no-parameter", "M1", ["--effect", "weight on kidneys"], "unknown word"),
+        ("nodes-0", "M1", ["--nodes", "0"], "1 to 31"),
+        ("nodes-big", "M1", ["--nodes", "40"], "1 to 31"),
+        ("p-in-1", "M1", ["--stepwise", "weight on clearance", "--p-in", "1.5"],
+         "probability"),
+        ("effect-iterative", "M2", ["--method", "iterative", "--effect",
+                                    "weight on clearance"], "marginal method"),
+        ("models-one", "M2", ["--model", "only: weight on clearance"], "at least two models"),
+        ("models-and-stepwise", "M2", ["--model", "a:", "--model", "b: weight on volume",
+                                       "--stepwise", "weight on clearance"], "not both"),
+        ("p-out-alone", "M2", ["--p-out", "0.01"], "need --stepwise"),
+        ("model-no-name", "M2", ["--model", "weight on clearance"], "NAME: EFFECTS"),
+        ("column-missing", "M3", ["--effect", "height on clearance"], "no column 'height'"),
+        ("column-constant", "M3", ["--effect", "site on clearance"], "same level"),
+    ]
+    sub = "subject,weight [kg],site\nA,70,x\nB,80,x\nC,65,x\nD,90,x\n"
+    out += [Case(f"population-{i}", r, ("population", "study.toml", "--vpc-replicates", "0",
+                                        *a), {**study, "subjects.csv": sub}, 2, p)
+            for i, r, a, p in pop]
     for command in ("fit", "population"):  # the adequacy switch is true or false
         files = {**study, "study.toml": STUDY_TOML + f'\n[{command}]\nadequacy = "no"\n'}
         out.append(Case(f"{command}-adequacy-not-bool", "F3", (command, "study.toml"), files,

@@ -319,3 +319,15 @@ def test_simulation_study_bias_se_coverage_and_type_one_error():
     assert np.all((ratio > 0.75) & (ratio < 1.25))
     assert np.all((cover.mean(axis=0) >= 0.90) & (cover.mean(axis=0) <= 0.98))
     assert 0.01 <= np.mean(reject) <= 0.11
+
+
+def test_progress_lines_on_a_terminal(run_cli, write, monkeypatch):
+    # On a terminal the iterations are shown on stderr; --quiet turns them off.
+    import sys
+
+    path = write_study(write, invented_study(15, seed=13))
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True, raising=False)
+    r = run_cli("population", path, "--vpc-replicates", "0", "--no-adequacy")
+    assert r.code == 0 and "iteration" in r.err
+    r = run_cli("population", path, "--vpc-replicates", "0", "--no-adequacy", "--quiet")
+    assert r.code == 0 and "iteration" not in r.err
