@@ -331,3 +331,15 @@ def test_progress_lines_on_a_terminal(run_cli, write, monkeypatch):
     assert r.code == 0 and "iteration" in r.err
     r = run_cli("population", path, "--vpc-replicates", "0", "--no-adequacy", "--quiet")
     assert r.code == 0 and "iteration" not in r.err
+
+
+def test_bootstrap_of_the_marginal_estimate_is_seeded(run_cli, write):
+    path = write_study(write, invented_study(15, seed=14))
+    args = ("population", path, "--json", "--bootstrap", "3", "--seed", "5",
+            "--vpc-replicates", "0", "--no-adequacy")
+    a, b = run_cli(*args), run_cli(*args)
+    assert a.code == 0, a.err
+    boot = a.json()["bootstrap"]
+    assert boot["replicates"] == 3 and boot["seed"] == 5
+    assert boot["clearance"]["ci_low"] < a.json()["typical"]["clearance"] * 1.5
+    assert a.json()["bootstrap"] == b.json()["bootstrap"]
