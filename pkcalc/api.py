@@ -373,6 +373,9 @@ def _population_estimate(study: Study, o: PopulationOptions, progress):
         result.notes.insert(0, f"reported model: '{best.name}' ("
                             + ("selected stepwise" if o.stepwise else "lowest AIC") + ")")
         result.failures += [(f"model '{r.name}'", r.error) for r in comparison.failed]
+        result.failures += [(f"model '{r.name}'", _model_trouble(r.result))
+                            for r in comparison.rows
+                            if r.result is not None and _model_trouble(r.result)]
         return result
     result = marginal_estimate(study.subjects, o, progress=progress)
     if not result.converged and not o.effects:
@@ -384,6 +387,15 @@ def _population_estimate(study: Study, o: PopulationOptions, progress):
                                  "estimate is reported instead")
         return fallback
     return result
+
+
+def _model_trouble(result) -> str:
+    """Why a compared model's numbers are not to be trusted ('' when they are)."""
+    if not result.converged:
+        return "did not converge: " + "; ".join(result.warnings)
+    if result.parameters and all(p["se"] is None for p in result.parameters):
+        return "no standard errors: " + "; ".join(result.warnings)
+    return ""
 
 
 def _population_bootstrap(study: Study, o: PopulationOptions, result, progress) -> None:

@@ -75,12 +75,21 @@ def test_laplace_and_quadrature_are_exact_for_a_gaussian_integrand(nodes):
 
 
 def test_quadrature_with_many_nodes_equals_brute_force_integration():
-    # One invented subject, proportional error, 3 levels: the likelihood integrated over
-    # (eta_CL, eta_V) with scipy dblquad, the density written out with numpy.
+    # Invented subjects, proportional error, 3 levels (the second's last level censored
+    # at an LLOQ: Beal's M3 inside the integral): the likelihood integrated over
+    # (eta_CL, eta_V) with scipy dblquad, the densities written out with numpy/scipy.
+    from scipy.stats import norm
+
     subs = invented_study(4, seed=11)
+    s1 = subs[1]
+    lloq = float(s1.conc[-1]) * 1.3
+    subs[1] = SubjectData(**{**s1.__dict__, "conc": np.r_[s1.conc[:-1], np.nan],
+                             "lloq": np.r_[s1.lloq[:-1], lloq],
+                             "blq": np.r_[s1.blq[:-1], True]})
     design = build_design(subs, ())
     omega = np.array([[0.09, 0.02], [0.02, 0.05]])
-    problem = MarginalProblem(subs, design, error_model="proportional", blq="drop", nodes=25)
+    problem = MarginalProblem(subs, design, error_model="proportional", blq="likelihood",
+                              nodes=25)
     psi = problem.pack(np.log([5.0, 50.0]), omega, 0.0, 0.12)
     ours = problem.subject_terms(psi, both=True)[0]
     oi = np.linalg.inv(omega)
@@ -90,10 +99,12 @@ def test_quadrature_with_many_nodes_equals_brute_force_integration():
             f = model.concentration(s.time, s.dose_start, s.dose_amount, s.dose_duration,
                                     5.0 * math.exp(e1), 50.0 * math.exp(e2))
             sd = 0.12 * f
-            like = np.prod(np.exp(-0.5 * ((s.conc - f) / sd) ** 2)
-                           / (sd * math.sqrt(2 * math.pi)))
-            norm = 2 * math.pi * math.sqrt(np.linalg.det(omega))
-            return like * math.exp(-0.5 * eta @ oi @ eta) / norm
+            m = ~s.blq
+            like = np.prod(np.exp(-0.5 * ((s.conc[m] - f[m]) / sd[m]) ** 2)
+                           / (sd[m] * math.sqrt(2 * math.pi)))
+            like *= np.prod(norm.cdf((s.lloq[~m] - f[~m]) / sd[~m]))
+            scale = 2 * math.pi * math.sqrt(np.linalg.det(omega))
+            return like * math.exp(-0.5 * eta @ oi @ eta) / scale
         value, _ = integrate.dblquad(integrand, -2.5, 2.5, -2.5, 2.5, epsabs=0, epsrel=1e-11)
         brute = -2 * math.log(value)
         print(f"\n[marginal] subject {s.subject}: quadrature (25 nodes) {ours[i]:.9f}, dblquad "
@@ -186,6 +197,21 @@ def test_stepwise_adds_the_real_effect_only():
     print(f"\n[marginal] stepwise: {comp.steps}")
     assert any(a.startswith("sex on clearance") for a in added)
     assert comp.selected is not None and "sex" in comp.selected
+
+
+def test_singular_information_is_reported_without_standard_errors():
+    # Two copies of one column (weight in kg and in g): their exponents are confounded,
+    # so the information is singular and no SE is printed.
+    subs = invented_study(30, seed=15)
+    subs = [SubjectData(**{**s.__dict__, "covariates": {**s.covariates,
+                                                       "weight_g": 1000 * s.covariates["weight"]}})
+            for s in subs]
+    pm = PopulationModel("twice", (Effect("weight", "clearance"),
+                                   Effect("weight_g", "clearance")))
+    r = marginal_estimate(subs, PopulationOptions(), pm, final_fits=False)
+    assert any("singular" in w or "ill-conditioned" in w for w in r.warnings), r.warnings
+    if any("singular" in w for w in r.warnings):
+        assert all(p["se"] is None for p in r.parameters)
 
 
 @pytest.mark.parametrize(("covariates", "phrase"), [
