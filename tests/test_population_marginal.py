@@ -316,7 +316,7 @@ def test_simulation_study_bias_se_coverage_and_type_one_error():
     # null text covariate (sex, no effect).  Bias of typical values < 5 %, SEs within
     # 25 % of the empirical SD, 95 % coverage 90-98 %, the likelihood-ratio test of the
     # null covariate rejecting about 5 %.
-    reps, est, se, cover, reject = 100, [], [], [], []
+    reps, est, se, cover, reject, failed = 100, [], [], [], [], 0
     full = PopulationModel("w", (Effect("weight", "clearance", reference=70.0),))
     null = PopulationModel("w+sex", (*full.effects, Effect("sex", "clearance")))
     for k in range(reps):
@@ -324,6 +324,10 @@ def test_simulation_study_bias_se_coverage_and_type_one_error():
         comp = compare_models(subs, PopulationOptions(), (full, null))
         r = comp.rows[0].result
         rows = {p["name"]: p for p in r.parameters}
+        if not r.converged or rows["typical clearance"]["se"] is None \
+                or comp.rows[1].lrt_p is None:
+            failed += 1
+            continue
         vals = [math.log(r.typical["clearance"]), math.log(r.typical["volume"]),
                 r.effects[0]["value"]]
         ses = [rows["typical clearance"]["rse_percent"] / 100,
@@ -339,7 +343,8 @@ def test_simulation_study_bias_se_coverage_and_type_one_error():
     print(f"\n[marginal, {reps} studies] bias CL {bias[0]:+.1%}, V {bias[1]:+.1%}; exponent "
           f"mean {est[:, 2].mean():.3f} (true 0.75); SE / empirical SD {np.round(ratio, 3)}; "
           f"coverage {np.round(cover.mean(axis=0), 3)}; type-I error of the null covariate "
-          f"{np.mean(reject):.3f}")
+          f"{np.mean(reject):.3f}; {failed} studies without a converged estimate or SEs")
+    assert failed <= 0.05 * reps
     assert np.all(np.abs(bias) < 0.05)
     assert abs(est[:, 2].mean() - 0.75) < 0.1
     assert np.all((ratio > 0.75) & (ratio < 1.25))

@@ -187,6 +187,22 @@ class MarginalProblem:
         err = {"additive": [la], "proportional": [lp], "combined": [la, lp]}[self.error]
         return np.concatenate([np.asarray(beta, float), om, err])
 
+    def upper_bounds(self) -> np.ndarray:
+        """Ceilings that keep the search in numbers: between-subject SDs of at most 3
+        (log scale; CV about 9,000 %), a Cholesky term within +-10, residual SDs of at
+        most 100 times the median level (additive) and 1,000 % (proportional)."""
+        upper = np.full(self.n_params, np.inf)
+        k = self.design.n_beta
+        upper[k:k + 2] = math.log(3.0)
+        if not self.diagonal:
+            upper[k + 2] = 10.0
+        ymed = float(np.median(self.batch.y[self.batch.obs])) if self.batch.obs.any() else 1.0
+        e = k + self.n_omega
+        ceil = {"additive": [math.log(100 * ymed)], "proportional": [math.log(10.0)],
+                "combined": [math.log(100 * ymed), math.log(10.0)]}[self.error]
+        upper[e:] = ceil
+        return upper
+
     def lower_bounds(self) -> np.ndarray:
         """Floors of the outer parameters: between-subject SDs of at least 0.01 (log
         scale), residual SDs of at least 1e-4 of the median level (additive) and 0.1 %
@@ -199,6 +215,8 @@ class MarginalProblem:
         floors = {"additive": [math.log(1e-4 * ymed)], "proportional": [math.log(1e-3)],
                   "combined": [math.log(1e-4 * ymed), math.log(1e-3)]}[self.error]
         lower[e:] = floors
+        if not self.diagonal:
+            lower[k + 2] = -10.0
         return lower
 
     # ------------------------------------------------------------------ the likelihood
@@ -341,11 +359,12 @@ class MarginalProblem:
                 state["reached"] = True
                 raise StopIteration
 
-        lower = self.lower_bounds()
-        psi0 = np.maximum(psi0, lower + 1e-3)
+        lower, upper = self.lower_bounds(), self.upper_bounds()
+        psi0 = np.clip(psi0, lower + 1e-3, upper - 1e-3)
         self.subject_terms(psi0, update=True, both=True)
         res = minimize(fun, psi0, jac=jac, method="L-BFGS-B", callback=callback,
-                       bounds=[(lo, None) for lo in lower],
+                       bounds=[(lo, None if not math.isfinite(hi) else hi)
+                               for lo, hi in zip(lower, upper, strict=True)],
                        options={"gtol": 5e-3, "ftol": 1e-12, "maxiter": max_iter})
         psi = np.asarray(res.x, float)
         m2ll, theta, post = self.subject_terms(psi, update=True, both=True)
