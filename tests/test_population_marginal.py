@@ -280,8 +280,10 @@ def test_cli_comparison_writes_the_other_models_when_one_fails(run_cli, write, t
     path = write_study(write, subs, '[population.models]\nbase = []\nsex = ["sex on '
                        'clearance"]\nheight = ["height on clearance"]\n')
     r = run_cli("population", path, "--json", "--vpc-replicates", "0", "--no-adequacy",
-                "--out", tmp_path / "out")
+                "--out", tmp_path / "out", "--report", tmp_path / "r.html")
     assert r.code == 1, r.err
+    html = (tmp_path / "r.html").read_text(encoding="utf-8")
+    assert "Models compared" in html and "Every parameter" in html
     doc = r.json()
     models = {m["model"]: m for m in doc["comparison"]["models"]}
     assert models["height"]["error"] and "no column 'height'" in models["height"]["error"]
