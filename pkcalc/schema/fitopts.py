@@ -313,6 +313,9 @@ def _effect_list(value: Any, field: str, file: str | None, problems: list[Proble
         return ()
     out: list[Effect] = []
     for item in items:
+        if isinstance(item, Effect):            # already an effect (from Python)
+            out.append(item)
+            continue
         try:
             out += parse_effects(item, field, file)
         except PkcalcInputError as exc:
@@ -322,7 +325,10 @@ def _effect_list(value: Any, field: str, file: str | None, problems: list[Proble
 
 def _models(value: Any, file: str | None, problems: list[Problem]
             ) -> tuple[PopulationModel, ...]:
-    """``[population.models]``: name = [effects]; at least two models."""
+    """``[population.models]``: name = [effects]; at least two models (or, from Python,
+    PopulationModel objects)."""
+    if isinstance(value, list | tuple) and all(isinstance(m, PopulationModel) for m in value):
+        value = {m.name: list(m.effects) for m in value}
     if not isinstance(value, dict) or len(value) < 2:
         problems.append(Problem("give at least two models to compare, each a list of effects",
                                 file=file, field="population.models",
