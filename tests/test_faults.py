@@ -31,9 +31,16 @@ def _grid(path: Path, n_clearance: int) -> Path:
     return path
 
 
+def _default_sigint() -> None:
+    # a shell starts background jobs with SIGINT ignored, and a child inherits that:
+    # restore the default so the test does not depend on how the suite was launched
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def _start(args, cwd):
     return subprocess.Popen([sys.executable, "-m", "pkcalc", *map(str, args)], cwd=cwd,
-                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                            preexec_fn=_default_sigint)
 
 
 def _wait_for_temp(folder: Path, name: str, proc, limit: float = 60.0) -> list[Path]:
