@@ -317,8 +317,8 @@ def test_simulation_study_bias_se_coverage_and_type_one_error():
     # 100 invented studies x 150 subjects x 3 levels: weight exponents 0.75 on CL and 1
     # on V (both estimated: leaving the volume's out biases the clearance exponent, as
     # a first run of this test showed), a null text covariate (sex, no effect).  Bias of
-    # typical values < 5 %, SEs within 25 % of the empirical SD, 95 % coverage 90-98 %, the likelihood-ratio test of the
-    # null covariate rejecting about 5 %.
+    # typical values < 5 %, SEs within 25 % of the empirical SD, 95 % coverage 90-98 %,
+    # the likelihood-ratio test of the null covariate rejecting about 5 %.
     reps, est, se, cover, reject, failed = 100, [], [], [], [], 0
     full = PopulationModel("w", (Effect("weight", "clearance", reference=70.0),
                                  Effect("weight", "volume", reference=70.0)))
