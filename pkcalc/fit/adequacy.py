@@ -39,8 +39,7 @@ from .objective import Batch, n_error_params
 from .residuals import runs_tests, trend_tests
 from .starts import solve
 
-__all__ = ["ALPHA", "Adequacy", "adequacy_counts", "check_adequacy", "counts_sentence",
-           "levels_after_infusion"]
+__all__ = ["ALPHA", "Adequacy", "adequacy_counts", "check_adequacy", "counts_sentence"]
 
 #: Level of the likelihood-ratio test that flags a distribution phase.
 ALPHA = 0.005
@@ -168,12 +167,6 @@ def _time_since_dose(batch: Batch) -> np.ndarray:
     return np.where(np.isfinite(prev), batch.t - prev, np.nan)
 
 
-def levels_after_infusion(s: SubjectData, options: FitOptions | None = None) -> int:
-    """Levels used by the fit that were drawn after a dose ended, no infusion running."""
-    batch, _, _ = prepare_batch([s], _likelihood_options(options or FitOptions()))
-    return int(_after_infusion(batch).sum())
-
-
 def _time_after_end(s: SubjectData, t: float) -> float:
     """Hours since the most recent end of a dose (bolus: its time) before ``t``."""
     ends = s.dose_start + np.maximum(s.dose_duration, 0.0)
@@ -290,6 +283,7 @@ def _compare(pairs, batch1: Batch, commons: list[dict], opts: FitOptions
     p = np.exp(-0.5 * d)             # chi-square upper tail with 2 degrees of freedom
     cl, v1, q, v2 = np.exp(theta[:, :4]).T
     alpha, beta, c_a, _ = model.two_compartment_macro(cl, v1, q, v2)
+    after = _after_infusion(batch)
     out = {}
     for i, s in enumerate(subjects):
         two = {"clearance": float(cl[i]), "central_volume": float(v1[i]),
@@ -303,7 +297,8 @@ def _compare(pairs, batch1: Batch, commons: list[dict], opts: FitOptions
         if p[i] >= ALPHA:
             out[s.subject] = _adequate(evidence)
         else:
-            out[s.subject] = _distribution_phase(s, one[i], evidence, batch, theta[i],
+            out[s.subject] = _distribution_phase(s, one[i], evidence, batch,
+                                                 after[i, :s.time.size], theta[i],
                                                  bool(finished[i]))
     return out
 
@@ -359,10 +354,10 @@ def _adequate(evidence: dict) -> Adequacy:
 
 
 def _distribution_phase(s: SubjectData, one, evidence: dict, batch: Batch,
-                        theta: np.ndarray, finished: bool) -> Adequacy:
+                        after: np.ndarray, theta: np.ndarray, finished: bool) -> Adequacy:
     """The flagged subject's evidence in words, and the sampling advice."""
     p, d4, two = evidence["lrt_p"], evidence["delta_aic"], evidence["two_exponential"]
-    diffs = _differences(s, one, two)
+    diffs = _differences(s, one, two, after)
     advice = _earliest_time(s, two, _residual_sd(batch, theta))
     words = [f"distribution phase evident (likelihood-ratio p = {p:.2g}, delta AIC "
              f"{d4:+.1f} for two exponentials)",
@@ -410,16 +405,13 @@ def _pattern_note(common: dict) -> list[str]:
     return notes
 
 
-def _differences(s: SubjectData, one, two: dict) -> dict[str, float]:
-    """How far apart the two models are, in percent of the two-exponential values."""
+def _differences(s: SubjectData, one, two: dict, after: np.ndarray) -> dict[str, float]:
+    """How far apart the two models are, in percent of the two-exponential values
+    (``after``: the subject's levels drawn after a dose ended, no infusion running)."""
     out = {"clearance_percent": 100 * (one.clearance / two["clearance"] - 1),
            "terminal_half_life_percent": 100 * (one.estimates["half_life"].value
                                                 / two["terminal_half_life"] - 1)}
-    inf = s.dose_duration > 0
-    running = ((s.time[:, None] > s.dose_start[inf]) &
-               (s.time[:, None] < (s.dose_start + s.dose_duration)[inf])).any(axis=1)
-    after = (s.time > s.dose_start.min()) & ~running & np.isfinite(s.conc) & ~s.blq & \
-        (s.conc > 0)
+    after = after & np.isfinite(s.conc) & ~s.blq & (s.conc > 0)
     if after.any():
         idx = np.flatnonzero(after)
         since_end = np.array([_time_after_end(s, s.time[j]) for j in idx])

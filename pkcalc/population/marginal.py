@@ -45,8 +45,7 @@ from ..fit.solver import minimise
 from ..fit.uncertainty import observed_hessian
 from .covariates import Design
 
-__all__ = ["MarginalFit", "MarginalProblem", "gauss_hermite", "integrate_subjects", "laplace",
-           "log_integral"]
+__all__ = ["MarginalFit", "MarginalProblem", "gauss_hermite", "laplace", "log_integral"]
 
 LOG_2PI = math.log(2 * math.pi)
 #: Central-difference steps (log-parameters) for the gradient and the Hessian.
@@ -418,8 +417,3 @@ class MarginalProblem:
                             "confounded and their standard errors unreliable")
         return cov, corr, cond, warnings
 
-
-def integrate_subjects(problem: MarginalProblem, psi: np.ndarray) -> np.ndarray:
-    """Every subject's ``-2 ln L_i`` at ``psi`` (both starts for the modes)."""
-    m2ll, _, _ = problem.subject_terms(psi, update=False, both=True)
-    return m2ll
