@@ -27,6 +27,7 @@ from typing import Any
 
 from ._format import result_html
 from .core import FitOptions, NcaOptions, PopulationModel, PopulationOptions, Study
+from .engines import Engine
 from .errors import PkcalcInputError
 
 __all__ = ["StudyFit", "StudyNca", "fit_study", "nca_study", "population_study"]
@@ -293,7 +294,8 @@ def fit_study(study: Study, options: FitOptions | None = None, *,
 
 # --------------------------------------------------------------------------- population
 def population_study(study: Study, options: PopulationOptions | None = None, *,
-                     progress: Callable[[str], None] | None = None, **overrides: Any):
+                     progress: Callable[[str], None] | None = None,
+                     engine: Engine | None = None, **overrides: Any):
     """Population estimates of a study: maximum marginal likelihood (default; Laplace
     or adaptive quadrature, with a covariance step, covariate effects, model
     comparison and stepwise selection), or the standard / iterative two-stage
@@ -307,6 +309,9 @@ def population_study(study: Study, options: PopulationOptions | None = None, *,
     progress : callable, optional
         Receives a line of text per iteration or bootstrap replicate (the command
         line prints them on a terminal).
+    engine : Engine, optional
+        Where the bootstrap replicates run (:mod:`pkcalc.engines`; default this
+        process).  The result does not depend on it.
 
     Returns
     -------
@@ -338,7 +343,7 @@ def population_study(study: Study, options: PopulationOptions | None = None, *,
         for r in result.subjects:
             r.adequacy = found.get(r.subject)
     if o.bootstrap:
-        _population_bootstrap(study, o, result, progress)
+        _population_bootstrap(study, o, result, progress, engine)
     elif result.method == "iterative":
         result.notes.append("standard errors of the typical values from the linearised "
                             "information, each subject's posterior covariance included (run "
@@ -398,22 +403,24 @@ def _model_trouble(result) -> str:
     return ""
 
 
-def _population_bootstrap(study: Study, o: PopulationOptions, result, progress) -> None:
+def _population_bootstrap(study: Study, o: PopulationOptions, result, progress,
+                          engine: Engine | None) -> None:
     """Bootstrap over subjects: SEs and percentile intervals of the typical values."""
+    from functools import partial
+
     from .population import bootstrap
     from .population.estimate import marginal_estimate
 
     estimate = None
     if result.method == "marginal":
         model = PopulationModel(result.model_name, tuple(result.model_effects))
-
-        def estimate(sample):
-            return marginal_estimate(sample, o, model, start=result, final_fits=False,
-                                     covariance=False)
+        # a partial of a module-level function: worker processes can run it
+        estimate = partial(marginal_estimate, options=o, pmodel=model, start=result,
+                           final_fits=False, covariance=False)
     result.bootstrap.update(bootstrap(
         study.subjects, result, o.bootstrap, o.seed, progress=progress, estimate=estimate,
-        error_model=o.error_model, covariate=o.covariate, reference_weight=o.reference_weight,
-        blq=o.blq))
+        engine=engine, error_model=o.error_model, covariate=o.covariate,
+        reference_weight=o.reference_weight, blq=o.blq))
     for k in ("clearance", "volume"):
         b = result.bootstrap.get(k)
         if isinstance(b, dict):

@@ -186,7 +186,13 @@ def cmd_population(args: argparse.Namespace) -> int:
         "models": _models_arg(args.model), "stepwise": _stepwise_arg(args)})
     progress = _progress_printer("population") if sys.stderr.isatty() and not args.quiet \
         else None
-    run = run_population(study, options, colour=_colour(), progress=progress)
+    engine = _engine(args)
+    if engine.kind == "dask" or (engine.workers or 1) > 1:
+        if not options.bootstrap:
+            raise PkcalcInputError("the engine runs bootstrap replicates",
+                                   field="--engine" if engine.kind == "dask" else "--workers",
+                                   expected="--bootstrap N with it")
+    run = run_population(study, options, colour=_colour(), progress=progress, engine=engine)
     if progress is not None:
         print("\r\033[K", end="", file=sys.stderr, flush=True)
     return _finish(run, args)
@@ -243,6 +249,21 @@ def _percent(text: str | None, option: str) -> float:
     return number / 100.0
 
 
+def _engine(args: argparse.Namespace):
+    """The --engine, --workers, --scheduler and --timeout options as an Engine."""
+    from .engines import Engine
+
+    if args.scheduler and args.engine != "dask":
+        raise PkcalcInputError("a scheduler is only used by the dask engine",
+                               field="--scheduler", expected="--engine dask --scheduler ADDR")
+    try:
+        return Engine(args.engine, workers=args.workers, scheduler=args.scheduler,
+                      timeout=args.timeout if args.timeout is not None else 20.0)
+    except ValueError as exc:
+        name, _, message = str(exc).partition(": ")
+        raise PkcalcInputError(message, field="--" + name) from None
+
+
 def cmd_batch(args: argparse.Namespace) -> int:
     from .batch import BatchOptions
     from .runner import run_batch_command, write_outputs, write_report
@@ -267,8 +288,8 @@ def cmd_batch(args: argparse.Namespace) -> int:
                            cv_volume=_percent(args.cv_volume, "--cv-volume"),
                            correlation=args.correlation or 0.0)
     progress = sys.stderr.isatty() and not args.quiet
-    run = run_batch_command(args.input, args.out, options, engine=args.engine,
-                            scheduler=args.scheduler, chunk_rows=args.chunk_rows,
+    run = run_batch_command(args.input, args.out, options, engine=_engine(args),
+                            chunk_rows=args.chunk_rows, partitioned=args.partitioned,
                             progress=progress, colour=_colour())
     if args.json:
         from . import report
@@ -383,8 +404,10 @@ def _outputs(args: argparse.Namespace):
     if out is None and args.command == "demo":
         out = "pkcalc-demo"
     if out is not None:
-        kind = "file" if args.command == "batch" else "folder"
-        outs.append(Output(Path(out), kind, "--out"))
+        kind = "file" if args.command == "batch" and not args.partitioned else "folder"
+        outs.append(Output(Path(out), kind, "--out", owns_names=args.command != "batch"))
+        if args.command == "batch":
+            kind = "file"  # the table's format is its suffix, folder or not
         if kind == "file" and not Path(out).is_dir() and \
                 Path(out).suffix.lower() not in (".csv", ".txt", ".parquet", ".pq"):
             raise PkcalcInputError(f"unknown table format '{Path(out).suffix}'", file=str(out),

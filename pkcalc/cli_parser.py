@@ -71,8 +71,9 @@ until they settle.""",
   pkcalc batch scenarios/demo-batch.csv --out pop.csv --population 10000 --seed 1 \\
                --cv-clearance 30% --cv-volume 20%
   pkcalc batch big.csv --out big-results.csv --engine dask
-  pkcalc batch big.parquet --out big-results.parquet --engine dask \\
-               --scheduler tcp://10.0.0.5:8786
+  pkcalc batch big.parquet --out big-results.parquet --engine dask --partitioned
+  pkcalc batch /shared/big.parquet --out /shared/results.parquet --engine dask \\
+               --partitioned --scheduler tcp://10.0.0.5:8786
 
 The input table has one row per scenario and units in the headers (any two of
 clearance, volume, half_life, elimination_rate, time_constant; rate or dose;
@@ -242,10 +243,24 @@ def _population_parser(sub) -> None:
     p.add_argument("--bootstrap", type=int, metavar="N",
                    help="bootstrap replicates over subjects for SEs (default 0)")
     p.add_argument("--seed", type=int, metavar="S", help="seed for bootstrap and VPC (default 1)")
+    _engine_args(p, "where bootstrap replicates run: this process (default; --workers N for "
+                    "N local processes) or Dask workers")
     p.add_argument("--vpc-replicates", type=int, metavar="N",
                    help="simulated replicates for the visual predictive check (default 200)")
     _adequacy_arg(p)
     _output_args(p, "write CSV, JSON and plots to DIR")
+
+
+def _engine_args(p, engine_help: str) -> None:
+    """--engine, --workers, --scheduler, --timeout: where independent pieces run."""
+    p.add_argument("--engine", choices=["local", "dask"], default="local", help=engine_help)
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="worker processes (dask: of the local cluster, default one per core)")
+    p.add_argument("--scheduler", metavar="ADDR",
+                   help="running Dask scheduler, e.g. tcp://10.0.0.5:8786 (default: a local "
+                        "cluster on 127.0.0.1)")
+    p.add_argument("--timeout", type=float, metavar="S",
+                   help="seconds to reach the scheduler and see a worker (default 20)")
 
 
 def _batch_parser(sub) -> None:
@@ -255,11 +270,10 @@ def _batch_parser(sub) -> None:
                                                   "[[scenarios]])")
     p.add_argument("--out", metavar="OUTPUT", required=True,
                    help="output table (.csv or .parquet), written atomically")
-    p.add_argument("--engine", choices=["local", "dask"], default="local",
-                   help="local numpy (default) or dask.dataframe partitions")
-    p.add_argument("--scheduler", metavar="ADDR",
-                   help="existing Dask scheduler, e.g. tcp://10.0.0.5:8786 (default: a local "
-                        "cluster)")
+    _engine_args(p, "partitions computed in this process (default) or on Dask workers")
+    p.add_argument("--partitioned", action="store_true",
+                   help="write OUTPUT as a folder of part files (part-00000.csv|.parquet ...), "
+                        "each written by the worker that computed it")
     p.add_argument("--at", metavar="TIMES", help="concentration at these times, e.g. 24h,48h")
     p.add_argument("--population", type=int, metavar="N",
                    help="virtual subjects per row (percentiles, fraction inside the window)")

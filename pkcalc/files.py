@@ -80,7 +80,12 @@ def clean_stale(path: str | Path) -> list[Path]:
         m = _TMP.match(entry.name)
         if m and m.group("name") == path.name and not _alive(int(m.group("pid"))):
             with contextlib.suppress(OSError):
-                entry.unlink()
+                if entry.is_dir() and not entry.is_symlink():
+                    import shutil
+
+                    shutil.rmtree(entry)  # the part files of a killed partitioned run
+                else:
+                    entry.unlink()
                 removed.append(entry)
     return removed
 

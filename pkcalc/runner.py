@@ -402,7 +402,8 @@ def _export_tables(study, out: Path) -> list[Path]:
             for name, frame in export_tables(study).items()]
 
 
-def run_population(study, options=None, *, colour: bool = False, progress=None) -> Run:
+def run_population(study, options=None, *, colour: bool = False, progress=None,
+                   engine=None) -> Run:
     """``pkcalc population``: marginal-likelihood or two-stage estimates
     (:func:`pkcalc.api.population_study`)."""
     from .api import population_study
@@ -412,7 +413,7 @@ def run_population(study, options=None, *, colour: bool = False, progress=None) 
     from .schema import study_population_options
 
     options = options if options is not None else study_population_options(study)
-    result = population_study(study, options, progress=progress)
+    result = population_study(study, options, progress=progress, engine=engine)
     conv = report.UnitConverter(study.output or None)
     subjects = study.subjects
     failures = list(study.failures) + [
@@ -477,19 +478,26 @@ def run_population(study, options=None, *, colour: bool = False, progress=None) 
 
 
 # --------------------------------------------------------------------------- batch
-def run_batch_command(input_path: str, output_path: str, options, *, engine: str = "local",
-                      scheduler: str | None = None, chunk_rows: int | None = None,
+def run_batch_command(input_path: str, output_path: str, options, *, engine="local",
+                      chunk_rows: int | None = None, partitioned: bool = False,
                       progress: bool = False, colour: bool = False) -> Run:
     """``pkcalc batch``: stream the input to the output table; summary, plots."""
     from .batch import DEFAULT_CHUNK_ROWS, run_batch
     from .report.html import batch_sections
 
     check_not_input([Path(output_path)], [input_path])
-    summary = run_batch(input_path, output_path, options, engine=engine, scheduler=scheduler,
-                        chunk_rows=chunk_rows or DEFAULT_CHUNK_ROWS, progress=progress)
+    summary = run_batch(input_path, output_path, options, engine=engine,
+                        chunk_rows=chunk_rows or DEFAULT_CHUNK_ROWS, progress=progress,
+                        partitioned=partitioned)
 
     doc = report.json_document("batch", report.UnitConverter(), {
-        "input": str(input_path), "output": str(output_path), "engine": engine,
+        "input": str(input_path), "output": str(output_path), "engine": summary.engine,
+        "partitioned": summary.partitioned, "partitions": summary.partitions,
+        "partition_rows": summary.partition_rows, "workers": summary.workers,
+        "peak_memory_mb": {"client": round(summary.client_peak_rss_mb, 1),
+                           "workers": {k: round(v, 1)
+                                       for k, v in summary.worker_peak_rss_mb.items()}}
+        if summary.client_peak_rss_mb else None,
         "rows": summary.rows, "failed": summary.failed,
         "first_errors": summary.first_errors, "seconds": round(summary.seconds, 3),
         "options": {"at": list(options.at), "population": options.population,

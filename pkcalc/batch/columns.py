@@ -94,6 +94,17 @@ class BatchSummary:
     warnings : list of str
     plateau, time_to_90, fraction_in_window : list of float
         Values of the first rows (for percentiles and plots).
+    partitioned : bool
+        The output is a folder of part files (``part-00000.csv`` ...).
+    partitions, partition_rows, partition_source : int, int, str
+        Partitioned runs: how many partitions, their usual size in rows and what
+        set it (the input's row groups or ``--chunk-rows``).
+    workers : int
+        Processes that computed the partitions (0: this process).
+    client_peak_rss_mb : float
+        Peak resident memory of this process (partitioned and Dask runs).
+    worker_peak_rss_mb : dict of str to float
+        Peak resident memory of each worker process (``host:pid``).
     """
 
     rows: int = 0
@@ -107,6 +118,13 @@ class BatchSummary:
     fraction_in_window: list[float] = field(default_factory=list)
     input: str = ""
     engine: str = "local"
+    partitioned: bool = False
+    partitions: int = 0
+    partition_rows: int = 0
+    partition_source: str = ""
+    workers: int = 0
+    client_peak_rss_mb: float = 0.0
+    worker_peak_rss_mb: dict[str, float] = field(default_factory=dict)
 
     def distribution(self) -> dict[str, dict[str, float] | None]:
         """5th, 50th and 95th percentiles of plateau, time to 90 % and the fraction
@@ -132,6 +150,15 @@ class BatchSummary:
                      " (their results are empty; the reason is in the error column)"
                      if self.failed else "")]
         lines += [f"  {e}" for e in self.first_errors]
+        if self.partitions:
+            where = f"{self.workers} worker processes" if self.workers else "this process"
+            lines.append(f"partitions: {self.partitions:,} of about {self.partition_rows:,} "
+                         f"rows ({self.partition_source}), computed by {where}")
+        if self.client_peak_rss_mb:
+            mem = f"peak memory: this process {self.client_peak_rss_mb:,.0f} MB"
+            if self.worker_peak_rss_mb:
+                mem += f", largest worker {max(self.worker_peak_rss_mb.values()):,.0f} MB"
+            lines.append(mem)
         rows = [[name.replace("_", " "), d["p05"], d["p50"], d["p95"]]
                 for name, d in self.distribution().items() if d is not None]
         if rows:
@@ -140,12 +167,25 @@ class BatchSummary:
         return "\n".join(lines)
 
     def to_frame(self, max_rows: int | None = None):
-        """The output table (or its first ``max_rows`` rows)."""
-        if self.output.lower().endswith((".parquet", ".pq")):
-            frame = pd.read_parquet(self.output)
-            return frame if max_rows is None else frame.head(max_rows)
-        return pd.read_csv(self.output, nrows=max_rows, keep_default_na=False,
-                           na_values=[""])
+        """The output table (or its first ``max_rows`` rows); a partitioned output's
+        parts are read in order."""
+        from pathlib import Path
+
+        out = Path(self.output)
+        files = sorted(out.glob("part-*")) if out.is_dir() else [out]
+        frames, rows = [], 0
+        for f in files:
+            if f.suffix.lower() in (".parquet", ".pq"):
+                frame = pd.read_parquet(f)
+            else:
+                frame = pd.read_csv(f, nrows=None if max_rows is None else max_rows - rows,
+                                    keep_default_na=False, na_values=[""])
+            frames.append(frame)
+            rows += len(frame)
+            if max_rows is not None and rows >= max_rows:
+                break
+        frame = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
+        return frame if max_rows is None else frame.head(max_rows)
 
     def _repr_html_(self) -> str:
         from .._format import result_html

@@ -1,72 +1,165 @@
-"""The Dask engine of ``pkcalc batch``: the same kernel on dask.dataframe partitions.
+"""Partitioned batch runs on Dask workers, or in this process (``--partitioned``).
 
-Partitions are computed on a cluster (a local one on loopback by default, or an
-existing scheduler) with :func:`pkcalc.batch.compute` via ``map_partitions``;
-the client receives them in order and writes one output file atomically.
-Every column is read as text and converted by the kernel, so results are the
-same to the last bit as the local engine's.  See docs/dask.md for running on
-several machines.
+The client plans the partitions (:mod:`pkcalc.batch.parts`), checks that every
+worker reaches the input and the output's folder, and submits one task per
+partition.  Each worker reads its partition from the input, computes it with the
+batch kernel and writes its part file into a temporary folder beside the output;
+only counts and a few summary values travel back.  The client then commits:
+
+- a partitioned output: the folder of parts is renamed to the output path;
+- a single output file: the parts are streamed in order into it (one block in
+  memory at a time) while later partitions are still being computed.
+
+Results are the same to the last bit as the local engine's: the same kernel,
+the same parsing, and variability draws that do not depend on the partitions.
+See docs/dask.md for several machines.
 """
 
 from __future__ import annotations
 
+import os
+import time
+from functools import partial
 from pathlib import Path
 
-import pandas as pd
-
+from ..engines import Engine, dask_client
 from ..errors import PkcalcInputError
 from .columns import BatchOptions, BatchSummary, parse_columns
-from .io import csv_chunks, normalise_types, parquet_chunks, write_stream
-from .kernel import compute
+from .io import Writer, csv_chunks, parquet_chunks
+from .parts import (
+    Part,
+    PartResult,
+    append_part,
+    check_dataset_target,
+    commit_dataset,
+    csv_layout,
+    merge_result,
+    part_file,
+    part_names,
+    plan_partitions,
+    remove_folder,
+    run_part,
+    temp_folder,
+)
 
-__all__ = ["run_dask"]
+__all__ = ["run_partitioned"]
 
 
-def _kernel(part: pd.DataFrame, spec, options) -> pd.DataFrame:
-    return normalise_types(compute(part, spec, options), spec)
+def _access(src: str, folder: str) -> str:
+    """Runs on every worker before the work: '' or what the worker cannot reach."""
+    if not os.path.isfile(src):
+        return f"cannot read the input {src}"
+    if not os.access(folder, os.W_OK):
+        return f"cannot write into {folder}"
+    return ""
 
 
-def run_dask(src: Path, dst: Path, fmt_in: str, fmt_out: str, options: BatchOptions,
-             scheduler: str | None, chunk_rows: int, summary: BatchSummary,
-             collect: int) -> None:
-    """Run the batch on Dask (see the module docstring)."""
-    try:
-        import dask.dataframe as dd
-        from distributed import Client, LocalCluster
-    except ImportError:
-        raise PkcalcInputError("the dask engine needs dask[distributed] and dask[dataframe]",
-                               expected="pip install 'pkcalc[dask]'") from None
+def _progress_line(summary: BatchSummary, done: int, total: int, started: float) -> None:
+    import sys
+
+    elapsed = time.perf_counter() - started
+    left = elapsed / done * (total - done) if done else 0.0
+    sys.stderr.write(f"\r  partition {done:,} of {total:,}, {summary.rows:,} rows "
+                     f"(about {left:.0f} s left)   ")
+    sys.stderr.flush()
+
+
+def run_partitioned(src: Path, dst: Path, fmt_in: str, fmt_out: str, options: BatchOptions,
+                    engine: Engine, chunk_rows: int, summary: BatchSummary, collect: int,
+                    partitioned: bool, progress: bool = False) -> None:
+    """Run the batch partition by partition on ``engine`` (see the module docstring)."""
     reader = csv_chunks if fmt_in == "csv" else parquet_chunks
     header, _ = reader(src, 1)
     spec = parse_columns(header, file=str(src))
     if spec.unknown:
         summary.warnings.append(f"columns not used (carried through): "
                                 f"{', '.join(spec.unknown)}")
-    cluster = None
+    if partitioned:
+        check_dataset_target(dst)
+    plan = plan_partitions(src, fmt_in, chunk_rows)
+    layout = csv_layout(src) if fmt_in == "csv" else None
+    summary.partitions = len(plan)
+    summary.partition_rows = max((p.rows_hint for p in plan), default=0)
+    summary.partition_source = ("the input's row groups" if fmt_in == "parquet"
+                                else f"byte ranges of about --chunk-rows {chunk_rows:,} rows")
+    summary.partitioned = partitioned
+    folder = temp_folder(dst)
+    task = partial(run_part, spec=spec, options=options, folder=str(folder),
+                   fmt_out=fmt_out, chunk_rows=chunk_rows, collect=collect, layout=layout)
+    writer = None if partitioned else Writer(dst, fmt_out)
+    started = time.perf_counter()
+    results: list[PartResult] = []
     try:
-        if scheduler:
-            client = Client(scheduler, timeout="20s")
+        for result in _results(plan, task, engine, src, folder, summary):
+            merge_result(summary, result, collect)
+            results.append(result)
+            if writer is not None and result.rows:
+                append_part(writer, part_file(folder, result.index, fmt_out), fmt_out,
+                            first=len(part_names(results)) == 1)
+                part_file(folder, result.index, fmt_out).unlink()
+            if progress:
+                _progress_line(summary, len(results), len(plan), started)
+        if summary.rows == 0:
+            raise PkcalcInputError("the table has a header but no rows", file=str(src))
+        if writer is not None:
+            writer.commit()
+            remove_folder(folder)
         else:
-            cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                   host="127.0.0.1", dashboard_address=None)
-            client = Client(cluster)
-    except OSError as exc:
-        raise PkcalcInputError(f"cannot reach the Dask scheduler ({exc})",
-                               field="--scheduler", expected="tcp://HOST:PORT") from None
-    try:
-        if fmt_in == "csv":
-            # blocks of roughly chunk_rows rows (about 40 bytes a row)
-            ddf = dd.read_csv(str(src), dtype=str, keep_default_na=False, na_values=[""],
-                              skipinitialspace=True, blocksize=max(chunk_rows * 40, 1 << 20))
-        else:
-            ddf = dd.read_parquet(str(src))
-        meta = _kernel(ddf._meta if fmt_in == "parquet" else pd.DataFrame(
-            {h: pd.Series(dtype=str) for h in header}), spec, options)
-        out = ddf.map_partitions(_kernel, spec, options, meta=meta)
-        futures = client.compute(out.to_delayed())
-        # computed on the cluster, written here in partition order
-        write_stream((fut.result() for fut in futures), dst, fmt_out, summary, collect, src)
+            commit_dataset(folder, dst, summary, part_names(results))
+    except BaseException:
+        if writer is not None:
+            writer.abort()
+        remove_folder(folder)
+        raise
     finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
+        if progress:
+            import sys
+
+            sys.stderr.write("\n")
+        from .parts import _peak_rss_mb
+
+        summary.client_peak_rss_mb = _peak_rss_mb()
+
+
+def _results(plan: list[Part], task, engine: Engine, src: Path, folder: Path,
+             summary: BatchSummary):
+    """The parts' results in order, computed here or on the cluster."""
+    if engine.kind == "local":
+        summary.workers = 0
+        for part in plan:
+            yield task(part)
+        return
+    with dask_client(engine) as client:
+        workers = client.scheduler_info().get("workers", {})
+        summary.workers = len(workers)
+        trouble = {w: m for w, m in client.run(_access, str(src.resolve()),
+                                               str(folder.resolve())).items() if m}
+        if trouble:
+            worker, message = next(iter(trouble.items()))
+            raise PkcalcInputError(
+                f"{len(trouble)} of {len(workers)} Dask workers cannot do the work "
+                f"(worker {worker}: {message})", file=str(src),
+                expected="the input and the output's folder on storage that every worker "
+                         "reaches at the same path (a shared file system)")
+        futures = client.map(task, plan, pure=False)
+        try:
+            for fut in futures:
+                yield _result(fut)
+        finally:
+            client.cancel(futures)
+
+
+def _result(fut) -> PartResult:
+    try:
+        return fut.result()
+    except PkcalcInputError:
+        raise
+    except Exception as exc:
+        from distributed import KilledWorker
+
+        if isinstance(exc, KilledWorker):
+            raise PkcalcInputError(
+                "a Dask worker died while computing a partition (often out of memory)",
+                field="--chunk-rows", expected="smaller partitions, e.g. --chunk-rows "
+                                               "100000, or workers with more memory") from None
+        raise

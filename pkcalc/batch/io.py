@@ -134,7 +134,10 @@ class Writer:
     def write(self, frame: pd.DataFrame) -> None:
         import pyarrow as pa
 
-        table = pa.Table.from_pandas(frame, preserve_index=False)
+        self.write_arrow(pa.Table.from_pandas(frame, preserve_index=False))
+
+    def write_arrow(self, table) -> None:
+        """Append an Arrow table (the same schema as the first one written)."""
         if self.fmt == "csv":
             # Arrow's CSV writer: shortest round-trip floats, several times faster than
             # DataFrame.to_csv (numbers read back bit for bit)

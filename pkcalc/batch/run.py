@@ -9,6 +9,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from ..engines import Engine
 from ..errors import PkcalcInputError
 from .columns import (
     DEFAULT_CHUNK_ROWS,
@@ -42,9 +43,10 @@ def _progress(enabled: bool) -> Callable[[int, float], None]:
 
 
 def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOptions, *,
-              engine: str = "local", scheduler: str | None = None,
+              engine: str | Engine = "local", scheduler: str | None = None,
               chunk_rows: int = DEFAULT_CHUNK_ROWS, progress: bool = False,
-              collect: int = 200_000) -> BatchSummary:
+              collect: int = 200_000, partitioned: bool = False,
+              workers: int | None = None) -> BatchSummary:
     """Run a batch file to an output table (CSV or Parquet), streaming in chunks.
 
     Parameters
@@ -52,17 +54,24 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
     input_path : path
         ``.csv``, ``.parquet`` or ``.toml`` (``[grid]`` or ``[[scenarios]]``).
     output_path : path
-        ``.csv`` or ``.parquet``; written atomically, never over the input.
+        ``.csv`` or ``.parquet``; written atomically, never over the input.  With
+        ``partitioned`` a folder of that name holding ``part-00000.<fmt>`` ... and a
+        manifest.
     options : BatchOptions
-    engine : {"local", "dask"}
+    engine : {"local", "dask"} or Engine
+        ``"dask"`` computes partitions on Dask workers (see docs/dask.md).
     scheduler : str, optional
         Address of an existing Dask scheduler (``tcp://host:port``).
     chunk_rows : int
-        Rows per chunk (memory stays bounded by it).
+        Rows per chunk (memory stays bounded by it); partitions of CSV inputs.
     progress : bool
         Progress on standard error.
     collect : int
         Keep up to this many plateau / time-to-90 % values for the summary plots.
+    partitioned : bool
+        Write a partitioned dataset (a folder of part files) instead of one file.
+    workers : int, optional
+        Worker processes of the local Dask cluster (default: one per core).
 
     Returns
     -------
@@ -71,6 +80,12 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
     src, dst = Path(input_path), Path(output_path)
     from ..tables import check_input_file
 
+    if not isinstance(engine, Engine):
+        try:
+            engine = Engine(engine, workers=workers, scheduler=scheduler)
+        except ValueError as exc:
+            raise PkcalcInputError(str(exc).split(": ", 1)[-1],
+                                   field="--" + str(exc).split(":", 1)[0]) from None
     check_input_file(src, "a .csv, .parquet or .toml table")
     if dst.exists() and dst.resolve() == src.resolve():
         raise PkcalcInputError("refusing to overwrite the input file", file=str(dst),
@@ -78,15 +93,21 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
     fmt_in, fmt_out = detect_format(src), detect_format(dst)
     if fmt_out == "toml":
         raise PkcalcInputError("the output must be .csv or .parquet", file=str(dst))
-    summary = BatchSummary(output=str(dst), input=str(src), engine=engine)
+    summary = BatchSummary(output=str(dst), input=str(src), engine=engine.kind)
     started = time.perf_counter()
-    if engine == "dask":
-        from .engine_dask import run_dask
+    if engine.kind == "dask" or partitioned:
+        from .engine_dask import run_partitioned
 
         if fmt_in == "toml":
-            raise PkcalcInputError("the dask engine reads CSV or Parquet tables",
-                                   file=str(src), expected="--engine local for TOML inputs")
-        run_dask(src, dst, fmt_in, fmt_out, options, scheduler, chunk_rows, summary, collect)
+            raise PkcalcInputError("partitioned and dask runs read CSV or Parquet tables",
+                                   file=str(src), expected="--engine local without "
+                                                           "--partitioned for TOML inputs")
+        if engine.kind == "local" and engine.workers not in (None, 1):
+            raise PkcalcInputError("the local engine computes in this process",
+                                   field="--workers", expected="--engine dask for several "
+                                                               "worker processes")
+        run_partitioned(src.resolve(), dst.resolve(), fmt_in, fmt_out, options, engine,
+                        chunk_rows, summary, collect, partitioned, progress)
         summary.seconds = time.perf_counter() - started
         return summary
     if fmt_in == "toml":

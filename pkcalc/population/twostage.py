@@ -42,6 +42,7 @@ from scipy.optimize import minimize as scipy_minimize
 
 from .. import model
 from ..core import FitOptions, Prior, SubjectData
+from ..engines import Engine
 from ..fit import fit_subjects
 from ..fit.data import prepare_batch
 from ..fit.objective import Batch, evaluate
@@ -385,18 +386,46 @@ def _as_prior(omega: np.ndarray, sa: float, sp: float) -> Prior:
     return Prior(1.0, 1.0, oc, ov, r, sa, sp, source="population estimate")
 
 
+def _bootstrap_replicate(pick: np.ndarray, fitted: list[SubjectData], estimate,
+                         start_state, theta_by: dict, kwargs: dict):
+    """One bootstrap replicate (runs wherever the engine puts it): the estimate on the
+    resampled subjects, or None when it fails."""
+    sample = [replace(fitted[i], subject=f"{fitted[i].subject}#{k}")
+              for k, i in enumerate(pick)]
+    try:
+        if estimate is not None:
+            r = estimate(sample)
+        else:
+            start = dict(start_state, theta=np.array([theta_by.get(fitted[i].subject,
+                                                                    start_state["theta"][0])
+                                                       for i in pick]))
+            r = iterative_two_stage(sample, start=start, final_fits=False,
+                                    max_iterations=60, **kwargs)
+    except (ValueError, ArithmeticError, np.linalg.LinAlgError):
+        return None
+    return (r.typical["clearance"], r.typical["volume"],
+            r.variability_cv_percent["clearance"], r.variability_cv_percent["volume"],
+            dict(r.exponents))
+
+
 def bootstrap(subjects: list[SubjectData], result: PopulationResult, n_boot: int, seed: int,
-              *, progress=None, estimate=None, **kwargs) -> dict[str, object]:
+              *, progress=None, estimate=None, engine: Engine | None = None,
+              **kwargs) -> dict[str, object]:
     """Bootstrap over subjects: re-estimate on resampled subjects (seeded), warm-started
     from the estimate; percentile 95 % intervals and SEs of the typical values.
 
-    ``estimate(sample, start_state)`` re-estimates one replicate (default: the
-    iterative two-stage method with ``kwargs``); ``progress`` receives a line per
-    replicate with the time left.
+    ``estimate(sample)`` re-estimates one replicate (default: the iterative
+    two-stage method with ``kwargs``; a module-level function or a
+    :func:`functools.partial` of one, so that worker processes can run it);
+    ``engine`` says where the replicates run (:mod:`pkcalc.engines`; default this
+    process).  Every resample is drawn here from ``seed`` before any replicate
+    runs, so the result does not depend on the engine or the number of workers.
+    ``progress`` receives a line per finished replicate with the time left.
     """
-    import time
+    from functools import partial
 
-    t0 = time.perf_counter()
+    from ..engines import map_ordered
+
     rng = np.random.default_rng(seed)
     state = result.bootstrap.get("state")
     fitted = [s for s in subjects if s.subject in {r.subject for r in result.subjects}] \
@@ -404,37 +433,27 @@ def bootstrap(subjects: list[SubjectData], result: PopulationResult, n_boot: int
     theta_by = {} if state is None else {s.subject: state["theta"][i]
                                          for i, s in enumerate(fitted)
                                          if i < len(state["theta"])}
+    picks = [rng.integers(0, len(fitted), len(fitted)) for _ in range(n_boot)]
+
+    def show(done: int, total: int, seconds: float) -> None:
+        left = seconds / done * (total - done)
+        progress(f"bootstrap replicate {done} of {total} ({total - done} left, about "
+                 f"{left:.0f} s)")
+
+    task = partial(_bootstrap_replicate, fitted=fitted, estimate=estimate,
+                   start_state=state, theta_by=theta_by, kwargs=kwargs)
+    replicates = map_ordered(task, picks, engine,
+                             progress=show if progress is not None else None)
     draws = {"clearance": [], "volume": [], "cv_clearance": [], "cv_volume": []}
     exps: dict[str, list[float]] = {"clearance": [], "volume": []}
     fails = 0
-    for rep in range(n_boot):
-        pick = rng.integers(0, len(fitted), len(fitted))
-        sample = [replace(fitted[i], subject=f"{fitted[i].subject}#{k}")
-                  for k, i in enumerate(pick)]
-        try:
-            if estimate is not None:
-                r = estimate(sample)
-            else:
-                start = dict(state, theta=np.array([theta_by.get(fitted[i].subject,
-                                                                 state["theta"][0])
-                                                    for i in pick]))
-                r = iterative_two_stage(sample, start=start, final_fits=False,
-                                        max_iterations=60, **kwargs)
-        except (ValueError, ArithmeticError, np.linalg.LinAlgError):
+    for rep in replicates:
+        if rep is None:
             fails += 1
-            r = None
-        if progress is not None:
-            done = rep + 1
-            left = (time.perf_counter() - t0) / done * (n_boot - done)
-            progress(f"bootstrap replicate {done} of {n_boot} ({n_boot - done} left, about "
-                     f"{left:.0f} s)")
-        if r is None:
             continue
-        draws["clearance"].append(r.typical["clearance"])
-        draws["volume"].append(r.typical["volume"])
-        draws["cv_clearance"].append(r.variability_cv_percent["clearance"])
-        draws["cv_volume"].append(r.variability_cv_percent["volume"])
-        for k, v in r.exponents.items():
+        for key, value in zip(draws, rep[:4], strict=True):
+            draws[key].append(value)
+        for k, v in rep[4].items():
             exps[k].append(v)
     out: dict[str, object] = {"replicates": n_boot, "failed": fails, "seed": seed}
     for k, vals in draws.items():

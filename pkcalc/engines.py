@@ -1,0 +1,175 @@
+"""Where independent work runs: this process, local worker processes, or a Dask cluster.
+
+One engine layer for every job made of independent pieces (batch partitions,
+bootstrap replicates): the caller decides *what* each piece computes and how it is
+seeded; this module only decides *where* it runs and hands the results back in
+the pieces' order.  Seeds therefore never depend on the engine or the number of
+workers.
+
+- ``Engine("local")`` with ``workers=1`` (the default) runs the pieces one after
+  the other in this process; ``workers=N`` runs them in N worker processes
+  (:mod:`concurrent.futures`, started with ``spawn``).
+- ``Engine("dask")`` starts a ``distributed.LocalCluster`` on 127.0.0.1 with
+  ``workers`` processes of one thread (default: one per core), or connects to
+  ``scheduler`` (``tcp://HOST:PORT``).  Connecting and waiting for workers are
+  bounded by ``timeout`` seconds; an unreachable scheduler or one without workers
+  is an input error (exit code 2), never a hang.
+
+Only the standard library and :mod:`pkcalc.errors` are imported here; dask is
+imported when a Dask engine is used.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import time
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from .errors import PkcalcInputError
+
+__all__ = ["ENGINES", "Engine", "dask_client", "map_ordered"]
+
+#: The engines a job can run on.
+ENGINES = ("local", "dask")
+#: Most worker processes pkcalc starts on this machine.
+MAX_WORKERS = 256
+
+
+@dataclass(frozen=True)
+class Engine:
+    """Where a job's independent pieces run.
+
+    Attributes
+    ----------
+    kind : {"local", "dask"}
+    workers : int or None
+        Local: worker processes (None or 1: this process).  Dask: processes of the
+        local cluster pkcalc starts (None: one per core); ignored with ``scheduler``.
+    scheduler : str or None
+        Address of a running Dask scheduler (``tcp://HOST:PORT``); Dask only.
+    timeout : float
+        Seconds allowed to reach the scheduler and to see its first worker.
+    """
+
+    kind: str = "local"
+    workers: int | None = None
+    scheduler: str | None = None
+    timeout: float = 20.0
+
+    def __post_init__(self) -> None:
+        if self.kind not in ENGINES:
+            raise ValueError(f"kind: '{self.kind}' is not one of {', '.join(ENGINES)}")
+        if self.workers is not None and not (isinstance(self.workers, int)
+                                             and 1 <= self.workers <= MAX_WORKERS):
+            raise ValueError(f"workers: must be a whole number from 1 to {MAX_WORKERS}")
+        if self.scheduler is not None and self.kind != "dask":
+            raise ValueError("scheduler: only the dask engine connects to a scheduler")
+        if not self.timeout > 0:
+            raise ValueError("timeout: must be > 0 seconds")
+
+    @property
+    def label(self) -> str:
+        """The engine in words, e.g. ``"dask (scheduler tcp://10.0.0.5:8786)"``."""
+        if self.kind == "local":
+            n = self.workers or 1
+            return "local" if n == 1 else f"local ({n} processes)"
+        if self.scheduler:
+            return f"dask (scheduler {self.scheduler})"
+        return f"dask (local cluster, {self.workers or os.cpu_count() or 1} processes)"
+
+
+def _need_distributed():
+    try:
+        import distributed
+    except ImportError:
+        raise PkcalcInputError("the dask engine needs dask[distributed]",
+                               expected="pip install 'pkcalc[dask]'") from None
+    return distributed
+
+
+@contextlib.contextmanager
+def dask_client(engine: Engine) -> Iterator[Any]:
+    """A ``distributed.Client`` for ``engine`` (a local cluster or the scheduler),
+    closed (and the local cluster stopped) when the block ends."""
+    distributed = _need_distributed()
+    import logging
+
+    cluster = None
+    client = None
+    try:
+        if engine.scheduler:
+            try:
+                client = distributed.Client(engine.scheduler, timeout=f"{engine.timeout}s")
+            except (OSError, TimeoutError, ValueError) as exc:
+                raise PkcalcInputError(
+                    f"cannot reach the Dask scheduler at {engine.scheduler} within "
+                    f"{engine.timeout:g} s ({exc.__class__.__name__})", field="--scheduler",
+                    expected="tcp://HOST:PORT of a running scheduler") from None
+            try:
+                client.wait_for_workers(1, timeout=engine.timeout)
+            except (TimeoutError, OSError):
+                raise PkcalcInputError(
+                    f"the Dask scheduler at {engine.scheduler} has no workers "
+                    f"(waited {engine.timeout:g} s)", field="--scheduler",
+                    expected="workers started with 'dask worker ADDRESS'") from None
+        else:
+            n = engine.workers or os.cpu_count() or 1
+            cluster = distributed.LocalCluster(
+                n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+                dashboard_address=None, silence_logs=logging.ERROR)
+            client = distributed.Client(cluster)
+        yield client
+    finally:
+        if client is not None:
+            with contextlib.suppress(Exception):
+                client.close()
+        if cluster is not None:
+            with contextlib.suppress(Exception):
+                cluster.close()
+
+
+def _report(progress: Callable[[int, int, float], None] | None, done: int, total: int,
+            started: float) -> None:
+    if progress is not None:
+        progress(done, total, time.perf_counter() - started)
+
+
+def map_ordered(fn: Callable[[Any], Any], items: Sequence[Any], engine: Engine | None = None,
+                *, progress: Callable[[int, int, float], None] | None = None) -> list[Any]:
+    """``[fn(x) for x in items]`` on ``engine``, results in the items' order.
+
+    ``fn`` and the items must be picklable for worker processes (a module-level
+    function or a :func:`functools.partial` of one).  ``progress(done, total,
+    seconds)`` is called as pieces finish.  An exception raised by ``fn`` ends
+    the job and is raised here; a piece that may fail on its own should return
+    its failure instead.
+    """
+    engine = engine or Engine()
+    items = list(items)
+    total = len(items)
+    started = time.perf_counter()
+    if engine.kind == "local" and (engine.workers or 1) == 1:
+        out = []
+        for i, x in enumerate(items):
+            out.append(fn(x))
+            _report(progress, i + 1, total, started)
+        return out
+    if engine.kind == "local":
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor, as_completed
+
+        with ProcessPoolExecutor(max_workers=min(engine.workers, max(total, 1)),
+                                 mp_context=multiprocessing.get_context("spawn")) as pool:
+            futures = [pool.submit(fn, x) for x in items]
+            for done, _ in enumerate(as_completed(futures), 1):
+                _report(progress, done, total, started)
+            return [f.result() for f in futures]
+    distributed = _need_distributed()
+    with dask_client(engine) as client:
+        futures = client.map(fn, items, pure=False)
+        for done, _ in enumerate(distributed.as_completed(futures), 1):
+            _report(progress, done, total, started)
+        return client.gather(futures)
