@@ -119,7 +119,7 @@ def dask_client(engine: Engine) -> Iterator[Any]:
             n = engine.workers or os.cpu_count() or 1
             cluster = distributed.LocalCluster(
                 n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                dashboard_address=None, silence_logs=logging.ERROR)
+                dashboard_address=":0", silence_logs=logging.ERROR)
             client = distributed.Client(cluster)
         yield client
     finally:

@@ -126,37 +126,6 @@ def test_fraction_inside_window():
                                                                                abs=0.005)
 
 
-# --------------------------------------------------------------------------- engines
-@pytest.fixture(scope="module")
-def local_cluster():
-    distributed = pytest.importorskip("distributed")
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       host="127.0.0.1", dashboard_address=None)
-    yield cluster.scheduler_address
-    cluster.close()
-
-
-@pytest.mark.parametrize("fmt", ["csv", "parquet"])
-def test_dask_and_local_agree_exactly(tmp_path, local_cluster, fmt):
-    frame = random_table(3000, seed=4)
-    frame.loc[5, "half_life [h]"] = -1.0          # a bad row
-    src = tmp_path / f"in.{fmt}"
-    if fmt == "csv":
-        frame.to_csv(src, index=False)
-    else:
-        frame.to_parquet(src, index=False, row_group_size=500)
-    opts = BatchOptions(at=(24.0,), population=30, cv_clearance=0.3, cv_volume=0.2, seed=9)
-    a = run_batch(src, tmp_path / f"local.{fmt}", opts, chunk_rows=700)
-    b = run_batch(src, tmp_path / f"dask.{fmt}", opts, engine="dask", scheduler=local_cluster,
-                  chunk_rows=700)
-    assert a.rows == b.rows == 3000 and a.failed == b.failed == 1
-    read = pd.read_csv if fmt == "csv" else pd.read_parquet
-    left, right = read(tmp_path / f"local.{fmt}"), read(tmp_path / f"dask.{fmt}")
-    numeric = [c for c in left.columns if c.endswith("]")]
-    np.testing.assert_array_equal(left[numeric].to_numpy(), right[numeric].to_numpy())
-    assert (left["error"].fillna("") == right["error"].fillna("")).all()
-
-
 # --------------------------------------------------------------------------- inputs
 def test_grid_product(tmp_path):
     frame = grid_frame({"clearance": ["3 L/h", "50 mL/min"], "volume": ["20 L"],

@@ -36,6 +36,7 @@ from .parts import (
     merge_result,
     part_file,
     part_names,
+    peak_rss_mb,
     plan_partitions,
     remove_folder,
     run_part,
@@ -116,9 +117,7 @@ def run_partitioned(src: Path, dst: Path, fmt_in: str, fmt_out: str, options: Ba
             import sys
 
             sys.stderr.write("\n")
-        from .parts import _peak_rss_mb
-
-        summary.client_peak_rss_mb = _peak_rss_mb()
+        summary.client_peak_rss_mb = peak_rss_mb()
 
 
 def _results(plan: list[Part], task, engine: Engine, src: Path, folder: Path,
