@@ -300,6 +300,13 @@ def batch_cases() -> list[Case]:
         ("cv-text", "B3", ("--population", "10", "--cv-clearance", "lots"), "--cv-clearance"),
         ("cv-negative", "B3", ("--population", "10", "--cv-clearance", "-5%"),
          "--cv-clearance"),
+        ("workers-0", "B5", ("--engine", "dask", "--workers", "0"), "--workers"),
+        ("workers-local", "B5", ("--workers", "2"), "--engine dask"),
+        ("scheduler-local", "B5", ("--scheduler", "tcp://127.0.0.1:9"),
+         "only used by the dask engine"),
+        ("timeout-0", "B5", ("--engine", "dask", "--timeout", "0"), "--timeout"),
+        ("scheduler-unreachable", "B5", ("--engine", "dask", "--scheduler", "tcp://127.0.0.1:9",
+                                         "--timeout", "2"), "cannot reach the Dask scheduler"),
         ("at-bare", "Q1", ("--at", "24"), "has no unit"),
         ("at-wrong-unit", "Q2", ("--at", "24 mg"), "dimension"),
     ]
@@ -316,6 +323,19 @@ def batch_cases() -> list[Case]:
              {"b.xlsx": "x"}, 2, "unknown table format"),
         Case("batch-parquet-garbage", "F2", ("batch", "b.parquet", "--out", "o.csv"),
              {"b.parquet": b"PAR1 not really"}, 2, "Parquet"),
+        Case("batch-partitioned-toml", "B5", ("batch", "g.toml", "--out", "o.csv",
+                                              "--partitioned"),
+             {"g.toml": '[grid]\nclearance = ["3 L/h"]\nvolume = ["30 L"]\n'
+                        'rate = ["10 mg/h"]\n'}, 2, "CSV or Parquet"),
+        Case("batch-partitioned-over-folder", "B6", ("batch", "b.csv", "--out", "o.csv",
+                                                     "--partitioned"),
+             {"b.csv": BATCH, "o.csv/mine.txt": "keep"}, 2,
+             "not a partitioned pkcalc output"),
+        Case("batch-partitioned-over-file", "B6", ("batch", "b.csv", "--out", "o.csv",
+                                                   "--partitioned"),
+             {"b.csv": BATCH, "o.csv": "a file"}, 2, "is a file, not a folder"),
+        Case("population-engine-no-bootstrap", "B5", ("population", "study.toml", "--engine",
+                                                      "dask"), study_files(), 2, "--bootstrap"),
     ]
     return out
 

@@ -114,6 +114,19 @@ def test_bootstrap_is_seeded_and_reproducible():
     assert a["clearance"]["ci_low"] < res.typical["clearance"] < a["clearance"]["ci_high"]
 
 
+def test_bootstrap_does_not_depend_on_the_engine_or_the_workers():
+    # the reference is the plain in-process loop; every resample is drawn before the
+    # replicates run, so processes and Dask workers must give the same numbers
+    pytest.importorskip("distributed")
+    from pkcalc.engines import Engine
+
+    subs = sparse_subjects(seed=4, n=30)
+    res = iterative_two_stage(subs, final_fits=True)
+    ref = bootstrap(subs, res, 6, seed=3)
+    assert bootstrap(subs, res, 6, seed=3, engine=Engine("local", workers=2)) == ref
+    assert bootstrap(subs, res, 6, seed=3, engine=Engine("dask", workers=2)) == ref
+
+
 def test_vpc_simulation_shape_and_seed():
     subs = sparse_subjects(seed=5, n=20)
     res = iterative_two_stage(subs)

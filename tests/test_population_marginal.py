@@ -385,3 +385,7 @@ def test_bootstrap_of_the_marginal_estimate_is_seeded(run_cli, write):
     assert boot["replicates"] == 3 and boot["seed"] == 5
     assert boot["clearance"]["ci_low"] < a.json()["typical"]["clearance"] * 1.5
     assert a.json()["bootstrap"] == b.json()["bootstrap"]
+    # the marginal re-estimates on two local worker processes: the same numbers
+    c = run_cli(*args, "--workers", "2")
+    assert c.code == 0, c.err
+    assert c.json()["bootstrap"] == boot

@@ -86,6 +86,10 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
         except ValueError as exc:
             raise PkcalcInputError(str(exc).split(": ", 1)[-1],
                                    field="--" + str(exc).split(":", 1)[0]) from None
+    if engine.kind == "local" and engine.workers not in (None, 1):
+        raise PkcalcInputError("the local batch engine computes in this process",
+                               field="--workers", expected="--engine dask for several "
+                                                           "worker processes")
     check_input_file(src, "a .csv, .parquet or .toml table")
     if dst.exists() and dst.resolve() == src.resolve():
         raise PkcalcInputError("refusing to overwrite the input file", file=str(dst),
@@ -102,10 +106,6 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
             raise PkcalcInputError("partitioned and dask runs read CSV or Parquet tables",
                                    file=str(src), expected="--engine local without "
                                                            "--partitioned for TOML inputs")
-        if engine.kind == "local" and engine.workers not in (None, 1):
-            raise PkcalcInputError("the local engine computes in this process",
-                                   field="--workers", expected="--engine dask for several "
-                                                               "worker processes")
         run_partitioned(src.resolve(), dst.resolve(), fmt_in, fmt_out, options, engine,
                         chunk_rows, summary, collect, partitioned, progress)
         summary.seconds = time.perf_counter() - started
