@@ -8,6 +8,7 @@ independent path: chunked streaming in this process, no partitions).
 
 from __future__ import annotations
 
+import itertools
 import os
 import signal
 import subprocess
@@ -135,7 +136,7 @@ def test_the_plan_follows_row_groups_and_byte_ranges(tmp_path):
     csv = write_input(tmp_path, "csv")
     parts = plan_partitions(csv, "csv", 1000)
     assert parts[0].start > 0 and parts[-1].end == csv.stat().st_size
-    assert all(a.end == b.start for a, b in zip(parts, parts[1:], strict=False))
+    assert all(a.end == b.start for a, b in itertools.pairwise(parts))
 
 
 def test_a_partitioned_output_replaces_only_an_earlier_one(tmp_path):
