@@ -127,6 +127,19 @@ def test_a_started_local_cluster_gives_the_same_table(tmp_path):
     assert len(s.to_frame()) == 3000 and len(s.to_frame(max_rows=7)) == 7
 
 
+@pytest.mark.parametrize("fmt", ["csv", "parquet"])
+def test_the_summary_uses_the_same_first_rows(tmp_path, clusters, fmt):
+    # fewer summary values than rows: the rows without error among the first 1,234,
+    # wherever the partitions fall (a bad row at 5 lies inside, one at 2,500 outside)
+    src = write_input(tmp_path, fmt)
+    a = run_batch(src, tmp_path / f"a.{fmt}", OPTIONS, chunk_rows=700, collect=1234)
+    b = run_batch(src, tmp_path / f"b.{fmt}", OPTIONS, chunk_rows=700, collect=1234,
+                  engine="dask", scheduler=clusters[3])
+    assert len(a.plateau) == 1233 and a.plateau == b.plateau
+    assert a.time_to_90 == b.time_to_90
+    np.testing.assert_array_equal(a.fraction_in_window, b.fraction_in_window)
+
+
 def test_the_plan_follows_row_groups_and_byte_ranges(tmp_path):
     src = write_input(tmp_path, "parquet")
     plan = plan_partitions(src, "parquet", 1200)

@@ -35,7 +35,6 @@ from .parts import (
     csv_layout,
     merge_result,
     part_file,
-    part_names,
     peak_rss_mb,
     plan_partitions,
     remove_folder,
@@ -89,24 +88,25 @@ def run_partitioned(src: Path, dst: Path, fmt_in: str, fmt_out: str, options: Ba
                    fmt_out=fmt_out, chunk_rows=chunk_rows, collect=collect, layout=layout)
     writer = None if partitioned else Writer(dst, fmt_out)
     started = time.perf_counter()
-    results: list[PartResult] = []
+    names: list[str] = []  # part files written, in order (results are not kept)
     try:
-        for result in _results(plan, task, engine, src, folder, summary):
+        for done, result in enumerate(_results(plan, task, engine, src, folder, summary), 1):
             merge_result(summary, result, collect)
-            results.append(result)
+            if result.rows:
+                names.append(result.file)
             if writer is not None and result.rows:
                 append_part(writer, part_file(folder, result.index, fmt_out), fmt_out,
-                            first=len(part_names(results)) == 1)
+                            first=len(names) == 1)
                 part_file(folder, result.index, fmt_out).unlink()
             if progress:
-                _progress_line(summary, len(results), len(plan), started)
+                _progress_line(summary, done, len(plan), started)
         if summary.rows == 0:
             raise PkcalcInputError("the table has a header but no rows", file=str(src))
         if writer is not None:
             writer.commit()
             remove_folder(folder)
         else:
-            commit_dataset(folder, dst, summary, part_names(results))
+            commit_dataset(folder, dst, summary, names)
     except BaseException:
         if writer is not None:
             writer.abort()
@@ -142,10 +142,13 @@ def _results(plan: list[Part], task, engine: Engine, src: Path, folder: Path,
                          "reaches at the same path (a shared file system)")
         futures = client.map(task, plan, pure=False)
         try:
-            for fut in futures:
-                yield _result(fut)
+            for i, fut in enumerate(futures):
+                result = _result(fut)
+                futures[i] = None  # released: the worker drops its copy of the result
+                fut.release()
+                yield result
         finally:
-            client.cancel(futures)
+            client.cancel([f for f in futures if f is not None])
 
 
 def _result(fut) -> PartResult:

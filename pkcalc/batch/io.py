@@ -97,7 +97,9 @@ def parquet_chunks(path: Path, chunk_rows: int) -> tuple[list[str], Iterator[pd.
     try:
         import pyarrow.parquet as pq
 
-        pf = pq.ParquetFile(path)
+        # no pre-buffering: its cache keeps every row group read until the file is
+        # closed, so memory would grow with the table
+        pf = pq.ParquetFile(path, pre_buffer=False)
     except ImportError:
         raise PkcalcInputError("Parquet needs pyarrow", file=str(path),
                                expected="pip install pyarrow") from None
@@ -214,14 +216,14 @@ def tally(summary: BatchSummary, result: pd.DataFrame, collect: int) -> None:
     summary.failed += int(failed.sum())
     for i in np.flatnonzero(failed)[: max(0, 5 - len(summary.first_errors))]:
         summary.first_errors.append(f"row {first + i + 1}: {errors[i]}")
-    room = collect - len(summary.plateau)
+    room = collect - first  # values of the rows without error among the first `collect`
     if room > 0:
-        ok = ~failed
-        summary.plateau += result["plateau_concentration [mg/L]"].to_numpy()[ok][:room].tolist()
-        summary.time_to_90 += result["time_to_90pct [h]"].to_numpy()[ok][:room].tolist()
+        ok = ~failed[:room]
+        summary.plateau += result["plateau_concentration [mg/L]"].to_numpy()[:room][ok].tolist()
+        summary.time_to_90 += result["time_to_90pct [h]"].to_numpy()[:room][ok].tolist()
         if "fraction_in_window_at_steady_state" in result:
             summary.fraction_in_window += result["fraction_in_window_at_steady_state"] \
-                .to_numpy()[ok][:room].tolist()
+                .to_numpy()[:room][ok].tolist()
 
 
 def scenario_rows(path: Path, options: BatchOptions) -> tuple[pd.DataFrame, list]:

@@ -27,7 +27,7 @@ import json
 import os
 import shutil
 import socket
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -58,6 +58,8 @@ class Part:
     start: int = 0
     end: int = 0
     rows_hint: int = 0
+    #: the first row's number in the table when known before reading (Parquet)
+    offset: int | None = None
 
 
 @dataclass
@@ -69,9 +71,11 @@ class PartResult:
     rows: int = 0
     failed: int = 0
     errors: list[tuple[int, str]] = field(default_factory=list)
+    #: the part's first rows (as many as the summary can use), row by row
+    ok: np.ndarray = field(default_factory=lambda: np.empty(0, bool))
     plateau: np.ndarray = field(default_factory=lambda: np.empty(0))
     time_to_90: np.ndarray = field(default_factory=lambda: np.empty(0))
-    fraction: np.ndarray = field(default_factory=lambda: np.empty(0))
+    fraction: np.ndarray | None = None
     peak_rss_mb: float = 0.0
     worker: str = ""
 
@@ -102,15 +106,19 @@ def plan_partitions(src: Path, fmt: str, chunk_rows: int) -> list[Part]:
         parts: list[Part] = []
         group: list[int] = []
         rows = 0
+        offset = 0
         for i in range(meta.num_row_groups):
             n = meta.row_group(i).num_rows
             if group and rows + n > chunk_rows:
-                parts.append(Part(len(parts), str(src), fmt, tuple(group), rows_hint=rows))
+                parts.append(Part(len(parts), str(src), fmt, tuple(group), rows_hint=rows,
+                                  offset=offset))
+                offset += rows
                 group, rows = [], 0
             group.append(i)
             rows += n
         if group:
-            parts.append(Part(len(parts), str(src), fmt, tuple(group), rows_hint=rows))
+            parts.append(Part(len(parts), str(src), fmt, tuple(group), rows_hint=rows,
+                              offset=offset))
         return parts
     layout_end = csv_header_end(src)
     size = src.stat().st_size
@@ -191,7 +199,7 @@ def _read_part(part: Part, block: int, layout: CsvLayout | None) -> Iterator[pd.
     if part.fmt == "parquet":
         import pyarrow.parquet as pq
 
-        pf = pq.ParquetFile(part.path)
+        pf = pq.ParquetFile(part.path, pre_buffer=False)  # memory: see io.parquet_chunks
         for rb in pf.iter_batches(batch_size=block, row_groups=list(part.row_groups)):
             yield rb.to_pandas()
         return
@@ -232,6 +240,9 @@ def run_part(part: Part, spec: BatchSpec, options: BatchOptions, folder: str, fm
     """
     out = part_file(folder, part.index, fmt_out)
     result = PartResult(part.index, out.name)
+    # the summary uses the first `collect` rows of the table: a part whose place is
+    # known sends only what falls among them, any other at most `collect` rows
+    limit = collect if part.offset is None else max(0, collect - part.offset)
     writer = None
     try:
         for frame in _read_part(part, block_rows(chunk_rows, options), layout):
@@ -239,7 +250,7 @@ def run_part(part: Part, spec: BatchSpec, options: BatchOptions, folder: str, fm
             if writer is None:
                 writer = _PartWriter(out, fmt_out)
             writer.write(res)
-            _tally_part(result, res, collect)
+            _tally_part(result, res, limit)
         if writer is not None:
             writer.close()
     except OSError as exc:
@@ -289,23 +300,24 @@ class _PartWriter:
         self.handle.close()
 
 
-def _tally_part(result: PartResult, frame: pd.DataFrame, collect: int) -> None:
+def _tally_part(result: PartResult, frame: pd.DataFrame, limit: int) -> None:
     errors = frame["error"].to_numpy()
     failed = errors != ""
     for i in np.flatnonzero(failed)[: max(0, PART_ERRORS - len(result.errors))]:
         result.errors.append((result.rows + int(i), str(errors[i])))
+    room = limit - result.rows
     result.rows += len(frame)
     result.failed += int(failed.sum())
-    room = collect - len(result.plateau)
     if room > 0:
-        ok = ~failed
+        result.ok = np.concatenate([result.ok, ~failed[:room]])
         result.plateau = np.concatenate(
-            [result.plateau, frame["plateau_concentration [mg/L]"].to_numpy(float)[ok][:room]])
+            [result.plateau, frame["plateau_concentration [mg/L]"].to_numpy(float)[:room]])
         result.time_to_90 = np.concatenate(
-            [result.time_to_90, frame["time_to_90pct [h]"].to_numpy(float)[ok][:room]])
+            [result.time_to_90, frame["time_to_90pct [h]"].to_numpy(float)[:room]])
         if "fraction_in_window_at_steady_state" in frame:
-            result.fraction = np.concatenate([result.fraction, frame[
-                "fraction_in_window_at_steady_state"].to_numpy(float)[ok][:room]])
+            result.fraction = np.concatenate([
+                result.fraction if result.fraction is not None else np.empty(0),
+                frame["fraction_in_window_at_steady_state"].to_numpy(float)[:room]])
 
 
 # --------------------------------------------------------------------------- the client side
@@ -314,13 +326,15 @@ def merge_result(summary: BatchSummary, result: PartResult, collect: int) -> Non
     for row, message in result.errors:
         if len(summary.first_errors) < 5:
             summary.first_errors.append(f"row {summary.rows + row + 1}: {message}")
+    room = collect - summary.rows  # as the local engine: rows without error among the first
     summary.rows += result.rows
     summary.failed += result.failed
-    room = collect - len(summary.plateau)
     if room > 0:
-        summary.plateau += result.plateau[:room].tolist()
-        summary.time_to_90 += result.time_to_90[:room].tolist()
-        summary.fraction_in_window += result.fraction[:room].tolist()
+        ok = result.ok[:room]
+        summary.plateau += result.plateau[:room][ok].tolist()
+        summary.time_to_90 += result.time_to_90[:room][ok].tolist()
+        if result.fraction is not None:
+            summary.fraction_in_window += result.fraction[:room][ok].tolist()
     if result.worker and summary.workers:
         summary.worker_peak_rss_mb[result.worker] = max(
             summary.worker_peak_rss_mb.get(result.worker, 0.0), result.peak_rss_mb)
@@ -402,6 +416,3 @@ def append_part(writer: Writer, path: Path, fmt: str, first: bool) -> None:
     for i in range(pf.num_row_groups):
         writer.write_arrow(pf.read_row_group(i))
 
-
-def part_names(results: Iterable[PartResult]) -> list[str]:
-    return [r.file for r in results if r.rows]
