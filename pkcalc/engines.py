@@ -116,10 +116,19 @@ def dask_client(engine: Engine) -> Iterator[Any]:
                     f"(waited {engine.timeout:g} s)", field="--scheduler",
                     expected="workers started with 'dask worker ADDRESS'") from None
         else:
+            import dask
+
             n = engine.workers or os.cpu_count() or 1
-            cluster = distributed.LocalCluster(
-                n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                dashboard_address=":0", silence_logs=logging.ERROR)
+            # Dask starts workers with MALLOC_TRIM_THRESHOLD_ set, which makes every
+            # large numpy array a fresh mmap (measured: the batch kernel ~15 % slower);
+            # pkcalc's tasks hold bounded blocks, so the workers keep glibc's default
+            environ = {k: v for k, v in
+                       dask.config.get("distributed.nanny.pre-spawn-environ", {}).items()
+                       if k != "MALLOC_TRIM_THRESHOLD_"}
+            with dask.config.set({"distributed.nanny.pre-spawn-environ": environ}):
+                cluster = distributed.LocalCluster(
+                    n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+                    dashboard_address=":0", silence_logs=logging.ERROR)
             client = distributed.Client(cluster)
         yield client
     finally:

@@ -271,7 +271,8 @@ class _PartWriter:
 
     def __init__(self, path: Path, fmt: str) -> None:
         self.path, self.fmt = path, fmt
-        self.handle = open(path, "wb")  # closed in close()
+        # Parquet: pyarrow opens the path itself (native writes, no Python file object)
+        self.handle = open(path, "wb") if fmt == "csv" else None  # closed in close()
         self.pq = None
         self.first = True
 
@@ -288,7 +289,7 @@ class _PartWriter:
             import pyarrow.parquet as pq
 
             if self.pq is None:
-                self.pq = pq.ParquetWriter(self.handle, table.schema)
+                self.pq = pq.ParquetWriter(str(self.path), table.schema)
             else:
                 table = table.cast(self.pq.schema)
             self.pq.write_table(table)
@@ -297,7 +298,8 @@ class _PartWriter:
     def close(self) -> None:
         if self.pq is not None:
             self.pq.close()
-        self.handle.close()
+        if self.handle is not None:
+            self.handle.close()
 
 
 def _tally_part(result: PartResult, frame: pd.DataFrame, limit: int) -> None:

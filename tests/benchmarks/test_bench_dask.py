@@ -13,6 +13,7 @@ time):
 - peak memory of the client (VmHWM, printed by pkcalc in ``--json``) and of each
   worker, and of the local engine's process.
 
+Times are the median of three runs at 10,000,000 rows (one run at 100,000,000).
 Targets (issue): Dask with 2 workers at least as fast as local, >= 1.6x faster
 than Dask with 1 worker; client under 500 MB and every worker under 1 GB at both
 sizes.  The memory bounds are asserted; the times are printed with the ratios
@@ -72,7 +73,7 @@ def remove(path: Path) -> None:
         path.unlink(missing_ok=True)
 
 
-@pytest.mark.parametrize("rows", [10_000_000, 100_000_000])
+@pytest.mark.parametrize("rows", [10_000_000, 100_000_000], ids=["10M", "100M"])
 def test_bench_dask_scales_with_workers_and_memory_stays_bounded(tmp_path, rows):
     src = tmp_path / "big.parquet"
     t0 = time.perf_counter()
@@ -85,17 +86,25 @@ def test_bench_dask_scales_with_workers_and_memory_stays_bounded(tmp_path, rows)
             ("dask-1", ["--engine", "dask", "--workers", "1", "--partitioned"]),
             ("dask-2", ["--engine", "dask", "--workers", "2", "--partitioned"]),
             ("dask-2-one-file", ["--engine", "dask", "--workers", "2"])]
+    repeats = 3 if rows <= 10_000_000 else 1   # the median of three where it is cheap
     for name, extra in runs:
-        wall, doc, rss = run([str(src), "--out", str(out), *extra])
-        assert doc["rows"] == rows and doc["failed"] == 0
-        mem = doc.get("peak_memory_mb") or {}
-        workers = mem.get("workers") or {}
-        figures[name] = (wall, mem.get("client") or rss, max(workers.values(), default=0.0))
-        print(f"[bench]   {name:16s} {wall:7.2f} s   client peak {figures[name][1]:6.0f} MB"
+        walls, clients, largest = [], [], []
+        for _ in range(repeats):
+            wall, doc, rss = run([str(src), "--out", str(out), *extra])
+            assert doc["rows"] == rows and doc["failed"] == 0
+            mem = doc.get("peak_memory_mb") or {}
+            workers = mem.get("workers") or {}
+            walls.append(wall)
+            clients.append(mem.get("client") or rss)
+            largest.append(max(workers.values(), default=0.0))
+            remove(out)
+        figures[name] = (float(np.median(walls)), max(clients), max(largest))
+        print(f"[bench]   {name:16s} {figures[name][0]:7.2f} s (runs: "
+              f"{', '.join(f'{w:.2f}' for w in walls)})   client peak "
+              f"{figures[name][1]:6.0f} MB"
               + (f"   largest worker {figures[name][2]:6.0f} MB ({len(workers)} workers; "
                  f"{doc['partitions']} partitions of about {doc['partition_rows']:,} rows)"
                  if workers else ""))
-        remove(out)
     local, one, two = figures["local"][0], figures["dask-1"][0], figures["dask-2"][0]
     print(f"[bench]   dask 2 workers vs local: {local / two:.2f}x (target >= 1.0); "
           f"vs dask 1 worker: {one / two:.2f}x (target >= 1.6); one output file with 2 "
