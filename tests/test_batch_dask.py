@@ -222,3 +222,16 @@ def test_a_killed_dask_run_leaves_nothing_at_the_output(tmp_path):
     s = run_batch(src, out, BatchOptions(), partitioned=True, chunk_rows=1_000_000)
     assert s.rows == n
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
+
+
+def test_the_command_reports_row_errors_with_exit_1(tmp_path, clusters, run_cli):
+    src = write_input(tmp_path, "csv")
+    out = tmp_path / "res.csv"
+    r = run_cli("batch", src, "--out", out, "--engine", "dask", "--scheduler", clusters[2],
+                "--partitioned", "--chunk-rows", "1000", "--json")
+    assert r.code == 1, r.err
+    doc = r.json()
+    assert doc["partitioned"] and doc["workers"] == 2 and doc["partitions"] >= 3
+    assert doc["failed"] == 2 and doc["peak_memory_mb"]["client"] > 0
+    assert "row 6: half_life must be > 0" in r.err
+    assert (out / MANIFEST_NAME).is_file() and (tmp_path / "CAUTION.txt").is_file()
