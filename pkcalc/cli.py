@@ -129,6 +129,31 @@ def cmd_design(args: argparse.Namespace) -> int:
     return _finish(run, args)
 
 
+# --------------------------------------------------------------------------- sampling
+def cmd_sampling(args: argparse.Namespace) -> int:
+    from .runner import run_sampling
+
+    if args.simulate is not None and args.simulate < 0:
+        raise PkcalcInputError("must be 0 or more replicates", field="--simulate")
+    if args.seed is not None and not 0 <= args.seed < 2**32:
+        raise PkcalcInputError("must be a whole number from 0 to 4294967295", field="--seed")
+    if args.starts is not None and not 1 <= args.starts <= 1000:
+        raise PkcalcInputError("must be from 1 to 1000", field="--starts")
+    engine = _engine(args)
+    if (engine.kind == "dask" or (engine.workers or 1) > 1) and not args.simulate:
+        raise PkcalcInputError("the engine runs simulated replicates",
+                               field="--engine" if engine.kind == "dask" else "--workers",
+                               expected="--simulate N with it")
+    progress = _progress_printer("sampling") if sys.stderr.isatty() and not args.quiet \
+        else None
+    run = run_sampling(args.scenario, simulate=args.simulate or 0, seed=args.seed or 1,
+                       refit=args.refit, starts=args.starts or 12, engine=engine,
+                       progress=progress, colour=_colour())
+    if progress is not None:
+        print("\r\033[K", end="", file=sys.stderr, flush=True)
+    return _finish(run, args)
+
+
 # --------------------------------------------------------------------------- verify
 def cmd_verify(args: argparse.Namespace) -> int:
     from . import report
@@ -387,6 +412,7 @@ def _demo(out: Path, args: argparse.Namespace) -> int:
 
 COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "predict": cmd_predict, "design": cmd_design, "fit": cmd_fit,
+    "sampling": cmd_sampling,
     "population": cmd_population, "batch": cmd_batch, "nca": cmd_nca,
     "verify": cmd_verify, "demo": cmd_demo,
 }

@@ -65,6 +65,17 @@ Iterative two-stage by default (Prevost 1977; Steimer et al. 1984): MAP
 estimates of every subject under the current population prior, then an update
 of the typical values, the between-subject covariance and the residual error,
 until they settle.""",
+    "sampling": """examples:
+  pkcalc sampling scenarios/demo-sampling.toml
+  pkcalc sampling scenarios/demo-sampling.toml --simulate 500 --workers 2 --out sampling/
+  pkcalc sampling scenarios/demo-sampling.toml --simulate 1000 --engine dask \\
+                  --scheduler tcp://10.0.0.5:8786 --json
+
+The [scenarios.sampling] table gives the levels per subject, the window, the
+residual error and, for a study, the between-subject variability and subjects
+(docs/formats.md).  Times maximise the expected information about ln CL and ln V
+(D-optimal); the expected relative SEs are printed for the optimum and for the
+schedules under 'compare', and --simulate N checks them by re-estimation.""",
     "batch": """examples:
   pkcalc batch scenarios/demo-grid.toml --out grid-results.csv --at 24h,48h
   pkcalc batch scenarios/demo-batch.csv --out results.parquet
@@ -139,6 +150,7 @@ def build_parser() -> argparse.ArgumentParser:
     _fit_parser(sub)
     _population_parser(sub)
     _batch_parser(sub)
+    _sampling_parser(sub)
     _nca_parser(sub)
     _verify_parser(sub)
     _demo_parser(sub)
@@ -261,6 +273,26 @@ def _engine_args(p, engine_help: str) -> None:
                         "cluster on 127.0.0.1)")
     p.add_argument("--timeout", type=float, metavar="S",
                    help="seconds to reach the scheduler and see a worker (default 20)")
+
+
+def _sampling_parser(sub) -> None:
+    p = _add(sub, "sampling",
+             "When to draw levels: D-optimal sampling times for a patient or a study, with "
+             "the expected precision of clearance and volume.")
+    p.add_argument("scenario", metavar="SCENARIO.toml",
+                   help="scenario file with [scenarios.sampling] tables")
+    p.add_argument("--simulate", type=int, metavar="N",
+                   help="simulate and re-estimate N replicates of every design (default 0)")
+    p.add_argument("--seed", type=int, metavar="S", help="seed of the simulations (default 1)")
+    p.add_argument("--refit", choices=["iterative", "marginal"],
+                   help="population re-estimates: iterative two-stage (default) or the "
+                        "marginal likelihood")
+    p.add_argument("--starts", type=int, metavar="N",
+                   help="optimiser starts per design (default 12)")
+    _engine_args(p, "where simulated replicates run: this process (default; --workers N for "
+                    "N local processes) or Dask workers")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    _output_args(p, "write sampling.json, sampling-times.csv and a plot per scenario to DIR")
 
 
 def _batch_parser(sub) -> None:

@@ -37,6 +37,8 @@ __all__ = [
     "PopulationModel",
     "PopulationOptions",
     "Prior",
+    "SamplingGroup",
+    "SamplingProblem",
     "ScenarioInput",
     "Study",
     "SubjectData",
@@ -590,3 +592,131 @@ class DesignCase:
     weight: float | None = None
 
 
+
+
+SAMPLING_DESIGNS = ("individual", "map", "population")
+SAMPLING_CRITERIA = ("D", "A")
+#: Most levels per subject a sampling design places.
+MAX_SAMPLING_LEVELS = 24
+
+
+@dataclass(frozen=True)
+class SamplingGroup:
+    """Subjects that share one sampling schedule.
+
+    Attributes
+    ----------
+    name : str
+    subjects : int
+        How many subjects (1 for an individual design).
+    levels : int
+        Levels per subject.
+    times : tuple of float or None, h
+        The user's own schedule for this group (compared with the optimum).
+    """
+
+    name: str
+    subjects: int
+    levels: int
+    times: tuple[float, ...] | None = None
+
+    def __post_init__(self) -> None:
+        _check(isinstance(self.subjects, int) and self.subjects >= 1, "subjects",
+               "must be a whole number >= 1", self.subjects)
+        _check(isinstance(self.levels, int) and 1 <= self.levels <= MAX_SAMPLING_LEVELS,
+               "levels", f"must be a whole number from 1 to {MAX_SAMPLING_LEVELS}", self.levels)
+        if self.times is not None:
+            _check(len(self.times) == self.levels and all(_finite(t) for t in self.times),
+                   "times", "must give one finite time per level", self.times)
+
+
+@dataclass(frozen=True)
+class SamplingProblem:
+    """A validated sampling-time design request in canonical units (h, mg, L, L/h).
+
+    Attributes
+    ----------
+    name : str
+    design : {"individual", "map", "population"}
+    clearance, volume : float
+        Typical (population, MAP prior) or the patient's (individual) values.
+    doses : tuple of DoseEvent
+    initial_concentration : float, mg/L
+    omega : ndarray (2, 2) or None
+        Covariance of ln CL and ln V between subjects (None without variability).
+    additive, proportional : float
+        Residual error SDs (mg/L; fraction).
+    groups : tuple of SamplingGroup
+    window : (float, float), h
+    avoid_infusion : bool
+        No level during an infusion (its end is allowed).
+    daytime : (float, float) or None
+        Allowed hours of the day (clock scenarios).
+    clock_hour : float or None
+        Hour of the day at time 0 (clock scenarios).
+    clock_origin : str or None
+        ISO 8601 date-time of time 0 (clock scenarios, for reports).
+    min_spacing : float, h
+    candidates : tuple of float or None, h
+        When given, levels are drawn only at these times.
+    compare : tuple of tuple of float
+        The user's schedules to compare (individual and MAP designs).
+    criterion : {"D", "A"}
+    starts : int
+        Optimiser starts.
+    """
+
+    name: str
+    design: str
+    clearance: float
+    volume: float
+    doses: tuple[DoseEvent, ...]
+    additive: float
+    proportional: float
+    groups: tuple[SamplingGroup, ...]
+    window: tuple[float, float]
+    omega: np.ndarray | None = None
+    initial_concentration: float = 0.0
+    avoid_infusion: bool = False
+    daytime: tuple[float, float] | None = None
+    clock_hour: float | None = None
+    clock_origin: str | None = None
+    min_spacing: float = 0.0
+    candidates: tuple[float, ...] | None = None
+    compare: tuple[tuple[float, ...], ...] = ()
+    criterion: str = "D"
+    starts: int = 12
+
+    def __post_init__(self) -> None:
+        _check(self.design in SAMPLING_DESIGNS, "design",
+               f"must be one of {', '.join(SAMPLING_DESIGNS)}", self.design)
+        _check(self.criterion in SAMPLING_CRITERIA, "criterion",
+               f"must be one of {', '.join(SAMPLING_CRITERIA)}", self.criterion)
+        for name in ("clearance", "volume"):
+            x = getattr(self, name)
+            _check(_finite(x) and x > 0, name, "must be a positive finite number", x)
+        _check(_finite(self.additive) and _finite(self.proportional) and self.additive >= 0
+               and self.proportional >= 0 and self.additive + self.proportional > 0,
+               "additive/proportional", "need a residual error SD > 0",
+               (self.additive, self.proportional))
+        _check(len(self.window) == 2 and all(_finite(t) for t in self.window)
+               and 0 <= self.window[0] < self.window[1], "window",
+               "must be (earliest, latest) with 0 <= earliest < latest", self.window)
+        _check(bool(self.groups), "groups", "need at least one group", self.groups)
+        if self.design != "population":
+            _check(len(self.groups) == 1 and self.groups[0].subjects == 1, "groups",
+                   "an individual or MAP design has one subject", self.groups)
+        if self.design in ("map", "population"):
+            om = None if self.omega is None else np.asarray(self.omega, float)
+            _check(om is not None and om.shape == (2, 2) and bool(np.all(np.isfinite(om)))
+                   and om[0, 0] > 0 and om[1, 1] > 0
+                   and om[0, 1] ** 2 < om[0, 0] * om[1, 1], "omega",
+                   f"a {self.design} design needs between-subject variances > 0",
+                   self.omega)
+        _check(_finite(self.min_spacing) and self.min_spacing >= 0, "min_spacing",
+               "must be >= 0 h", self.min_spacing)
+        _check(isinstance(self.starts, int) and 1 <= self.starts <= 1000, "starts",
+               "must be a whole number from 1 to 1000", self.starts)
+        if self.daytime is not None:
+            _check(self.clock_hour is not None, "daytime",
+                   "needs a scenario on the clock (dose starts as date-times)", self.daytime)

@@ -427,3 +427,53 @@ def batch_figure(summary, conv: UnitConverter | None = None) -> Figure:
     for ax in np.atleast_1d(axes):
         ax.grid(True, color="0.88", linewidth=0.6)
     return fig
+
+
+def sampling_figure(result, conv: UnitConverter | None = None) -> Figure:
+    """Why those times: the typical course with the designed times marked (top) and
+    the relative sensitivity of the level to CL and V over time (bottom)."""
+    conv = conv or UnitConverter()
+    p = result.problem
+    fig = Figure(figsize=(7.5, 6.0), layout="constrained")
+    ax, ax2 = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 2]})
+    fig.text(0.01, 0.005, CAUTION_SHORT, fontsize=6.5, color="0.25", ha="left", va="bottom")
+    fig.get_layout_engine().set(rect=(0, 0.035, 1, 0.965))
+    start, amount, duration = expand_events(p.doses)
+    if p.initial_concentration > 0:
+        start, amount, duration = (np.append(start, 0.0),
+                                   np.append(amount, p.initial_concentration),
+                                   np.append(duration, model.INITIAL_LEVEL))
+    lo, hi = p.window
+    t = np.unique(np.concatenate([np.linspace(0.0, hi * 1.05, 1500), start, start +
+                                  np.maximum(duration, 0.0)]))
+    t = t[t <= hi * 1.05]
+    f, grad = model.concentration_and_gradient(t, start, amount, duration, p.clearance,
+                                               p.volume)
+    tt = conv(t, "time")
+    ax.plot(tt, conv(f, "concentration"), color="black", lw=1.4, label="typical course")
+    for a, b in result.allowed:
+        ax.axvspan(conv(a, "time"), conv(b, "time"), color="0.93", zorder=0)
+    marks = ["o", "s", "^", "D", "v"]
+    for i, d in enumerate(result.designs[:5]):
+        times = np.concatenate([np.asarray(x, float) for x in d.times])
+        ft = model.concentration(times, start, amount, duration, p.clearance, p.volume)
+        ax.plot(conv(times, "time"), conv(ft, "concentration"), ls="none", marker=marks[i],
+                ms=7 if i == 0 else 5, mfc="black" if i == 0 else "white", mec="black",
+                label=d.label)
+        for x in times:
+            ax2.axvline(conv(x, "time"), color="0.6" if i else "black", lw=0.8,
+                        ls="-" if i == 0 else ":")
+    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_title(f"{p.name}: sampling times (allowed periods shaded)", fontsize=10)
+    ax.legend(fontsize=8, loc="best")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel = np.where(f > 0, grad / f, np.nan)
+    ax2.plot(tt, rel[0], color="black", lw=1.3, label="d ln C / d ln CL")
+    ax2.plot(tt, rel[1], color="0.45", lw=1.3, ls="--", label="d ln C / d ln V")
+    ax2.axhline(0.0, color="0.7", lw=0.6)
+    ax2.set_ylabel("relative sensitivity")
+    ax2.set_xlabel(f"time [{conv.unit('time')}]")
+    ax2.legend(fontsize=8, loc="best")
+    ax2.grid(True, color="0.88", linewidth=0.6)
+    ax.grid(True, color="0.88", linewidth=0.6)
+    return fig

@@ -199,6 +199,47 @@ def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict
     return out
 
 
+def sampling_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
+    """Report sections of a sampling JSON document (one per scenario)."""
+    u = doc["units"]
+    out = []
+    for sc in doc["scenarios"]:
+        items: list[dict[str, Any]] = [lines_item("warnings", [doc["sampling_caution"]])]
+        items.append(lines_item("text", [
+            f"{sc['design']} design, {sc['criterion']}-optimal; clearance "
+            f"{fmt(sc['parameters']['clearance'])} {u['clearance']}, volume "
+            f"{fmt(sc['parameters']['volume'])} {u['volume']}; allowed periods: "
+            + "; ".join(f"{fmt(a)}-{fmt(b)} {u['time']}" for a, b in sc["allowed"])]))
+        rows = []
+        for d in sc["designs"]:
+            for g in d["groups"]:
+                rows.append([d["label"], g["name"], g["subjects"],
+                             ", ".join(fmt(t) for t in g["times"]),
+                             ", ".join(g["clock_times"]) if g["clock_times"] else "",
+                             d["expected_rse_percent"]["clearance"],
+                             d["expected_rse_percent"]["volume"], d["efficiency"]])
+        items.append(table_item(["design", "group", "subjects", f"times [{u['time']}]",
+                                 "clock times", "expected RSE CL %", "expected RSE V %",
+                                 "efficiency"], rows, "Sampling times"))
+        sims = [(d["label"], d["simulation"]) for d in sc["designs"] if d["simulation"]]
+        if sims:
+            srows = [[label, k, s["parameters"][k]["empirical_rse_percent"],
+                      s["parameters"][k]["bias_percent"], s["parameters"][k]["rmse_percent"],
+                      s["parameters"][k]["coverage_percent"], s["replicates"], s["failed"]]
+                     for label, s in sims for k in ("clearance", "volume")]
+            items.append(table_item(["design", "parameter", "simulated RSE %", "bias %",
+                                     "RMSE %", "95% coverage %", "replicates", "failed"],
+                                    srows, f"Simulation and re-estimation ({sims[0][1]['method']}"
+                                           f", seed {sims[0][1]['seed']})"))
+        items.append(lines_item("notes", sc["notes"]))
+        if sc["warnings"]:
+            items.append(lines_item("warnings", sc["warnings"]))
+        if sc["name"] in figures:
+            items.append(figure_item(figures[sc["name"]], f"Sampling times: {sc['name']}"))
+        out.append({"heading": f"Sampling: {sc['name']}", "blocks": items})
+    return out
+
+
 def verify_sections(doc: dict[str, Any]) -> list[dict[str, Any]]:
     """One section with a table per case."""
     items: list[dict[str, Any]] = [lines_item("text", [

@@ -209,6 +209,7 @@ class ScenarioSpec(WithParameters):
     times: list[QuantityText] | TimeRange | None = None
     target: TargetSpec | None = None
     design: dict[str, Any] | None = None
+    sampling: dict[str, Any] | None = None
     initial_concentration: QuantityText | None = None
 
 
@@ -249,6 +250,7 @@ class ScenarioSpec(WithParameters):
             target=target,
             given=tuple(n for n, v in values.items() if v is not None),
             extra={**({"design": self.design} if self.design is not None else {}),
+                   **({"sampling": self.sampling} if self.sampling is not None else {}),
                    **({"clock_origin": origin} if origin else {})},
             initial_concentration=initial or 0.0,
         )
