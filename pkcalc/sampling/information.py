@@ -110,8 +110,21 @@ def population_information(c: Course, omega: np.ndarray, additive: float,
     return out
 
 
+#: Information whose scaled form (unit diagonal) has a smallest eigenvalue below this
+#: counts as singular: some parameter combination is not identified.
+SINGULAR = 1e-10
+
+
 def log_det(m: np.ndarray) -> float:
-    """``ln det M`` (``-inf`` when M is singular)."""
+    """``ln det M`` (``-inf`` when M is singular, judged on its scaled form so that
+    rounding does not pass for information)."""
+    d = np.diag(m)
+    if not np.all(d > 0) or not np.all(np.isfinite(m)):
+        return -np.inf
+    s = 1.0 / np.sqrt(d)
+    scaled = m * s[:, None] * s[None, :]
+    if np.linalg.eigvalsh(scaled)[0] < SINGULAR:
+        return -np.inf
     sign, value = np.linalg.slogdet(m)
     return float(value) if sign > 0 and np.isfinite(value) else -np.inf
 

@@ -111,6 +111,10 @@ def _fit_individuals(p: SamplingProblem, subjects, omega, out: np.ndarray) -> No
         FitOptions(error_model=error_model(p), adequacy=False)
     results, _ = fit_subjects(subjects, opts)
     index = {s.subject: i for i, s in enumerate(subjects)}
+    # without a prior the residual error is estimated too: intervals only when the
+    # levels leave it degrees of freedom (else they are the fit's, not the design's)
+    n_error = 2 if error_model(p) == "combined" else 1
+    intervals = prior is not None or subjects[0].time.size > 2 + n_error
     for res in results:
         i = index[res.subject]
         cl, v = res.estimates.get("clearance"), res.estimates.get("volume")
@@ -118,7 +122,7 @@ def _fit_individuals(p: SamplingProblem, subjects, omega, out: np.ndarray) -> No
             continue
         out[i, 0] = 1.0
         out[i, 3:5] = (cl.value, v.value)
-        if cl.ci_low is not None and v.ci_low is not None:
+        if intervals and cl.ci_low is not None and v.ci_low is not None:
             out[i, 5:9] = (cl.ci_low, cl.ci_high, v.ci_low, v.ci_high)
 
 
