@@ -371,6 +371,7 @@ def _demo(out: Path, args: argparse.Namespace) -> int:
         run_nca,
         run_population,
         run_predict,
+        run_sampling,
         run_verify,
         write_outputs,
         write_report,
@@ -394,6 +395,7 @@ def _demo(out: Path, args: argparse.Namespace) -> int:
     sparse = load_study_file(example_file("demo-sparse.toml"))
     runs.append(run_population(sparse, study_population_options(sparse, {"vpc_replicates": 100}),
                                colour=_colour()))
+    runs.append(run_sampling(example_file("demo-sampling.toml"), colour=_colour()))
     runs.append(run_verify(example_file("reference-cases.toml"), colour=_colour())[0])
     (out / "batch").mkdir(parents=True, exist_ok=True)
     runs.append(run_batch_command(str(example_file("demo-grid.toml")),

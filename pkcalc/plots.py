@@ -443,7 +443,7 @@ def sampling_figure(result, conv: UnitConverter | None = None) -> Figure:
         start, amount, duration = (np.append(start, 0.0),
                                    np.append(amount, p.initial_concentration),
                                    np.append(duration, model.INITIAL_LEVEL))
-    lo, hi = p.window
+    hi = p.window[1]
     t = np.unique(np.concatenate([np.linspace(0.0, hi * 1.05, 1500), start, start +
                                   np.maximum(duration, 0.0)]))
     t = t[t <= hi * 1.05]

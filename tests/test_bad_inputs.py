@@ -576,9 +576,97 @@ def clock_and_sdtm_cases() -> list[Case]:
     return out
 
 
+SAMPLING_TABLE = """
+[scenarios.sampling]
+levels = 2
+window = ["1 h", "24 h"]
+error = { proportional = "10%" }
+"""
+CLOCK_DOSES = 'doses = [ { start = "2026-03-02T20:00", amount = "300 mg", duration = "1 h" } ]'
+
+
+def sampling_cases() -> list[Case]:
+    def file(table: str = SAMPLING_TABLE, doses: str | None = None) -> str:
+        return scenario_lines(table, doses=doses)
+
+    def swap(old: str, new: str) -> str:
+        assert old in SAMPLING_TABLE
+        return SAMPLING_TABLE.replace(old, new)
+
+    rows = [
+        ("unknown-key", "P1", file(SAMPLING_TABLE + "colour = 'red'\n"), "unknown key"),
+        ("levels-0", "P1", file(swap("levels = 2", "levels = 0")), "1 to 24"),
+        ("levels-text", "P1", file(swap("levels = 2", "levels = 'two'")), "1 to 24"),
+        ("no-error", "P1", file(swap('error = { proportional = "10%" }\n', "")), "error"),
+        ("error-zero", "P1", file(swap('proportional = "10%"', 'proportional = "0%"')),
+         "residual error"),
+        ("design-bad", "P1", file(SAMPLING_TABLE + "design = 'clever'\n"), "not a design"),
+        ("criterion-bad", "P1", file(SAMPLING_TABLE + "criterion = 'E'\n"), "criterion"),
+        ("cv-one", "P2", file(SAMPLING_TABLE + "cv_clearance = '30%'\n"), "both clearance"),
+        ("cv-and-sd", "P2", file(SAMPLING_TABLE + "cv_clearance = '30%'\nsd_log_clearance = "
+                                                  "0.3\ncv_volume = '20%'\n"), "one of"),
+        ("population-zero-cv", "P2", file(SAMPLING_TABLE + "design = 'population'\n"
+                                          "subjects = 20\n"), "variability above zero"),
+        ("population-cv-0", "P2", file(SAMPLING_TABLE + "cv_clearance = '0%'\ncv_volume = "
+                                       "'0%'\nsubjects = 20\n"), "variability above zero"),
+        ("individual-with-cv", "P2", file(SAMPLING_TABLE + "design = 'individual'\n"
+                                          "cv_clearance = '30%'\ncv_volume = '20%'\n"),
+         "takes no variability"),
+        ("window-reversed", "P3", file(swap('["1 h", "24 h"]', '["24 h", "1 h"]')),
+         "not before the latest"),
+        ("window-horizon", "P3", file(swap('["1 h", "24 h"]', '["1 h", "2000 h"]')),
+         "after the horizon"),
+        ("window-bare", "P3", file(swap('["1 h", "24 h"]', '[1, 24]')), "has no unit"),
+        ("window-clock-relative", "P3", file(doses=CLOCK_DOSES), "relative time"),
+        ("candidate-outside", "P3", file(SAMPLING_TABLE + "candidates = ['2 h', '30 h']\n"),
+         "outside the window"),
+        ("compare-outside", "P3", file(SAMPLING_TABLE + "compare = [['2 h', '30 h']]\n"),
+         "outside the window"),
+        ("daytime-relative", "P3", file(SAMPLING_TABLE + "daytime = ['06:00', '22:00']\n"),
+         "on the clock"),
+        ("daytime-bad", "P3", file('\n[scenarios.sampling]\nlevels = 2\nwindow = '
+                                   '["2026-03-03T06:00", "2026-03-03T20:00"]\nerror = '
+                                   '{ proportional = "10%" }\ndaytime = ["6", "22:00"]\n',
+                                   doses=CLOCK_DOSES), "hour of the day"),
+        ("candidates-too-few", "P4", file(SAMPLING_TABLE + "candidates = ['2 h']\n"),
+         "1 candidate time"),
+        ("candidates-in-infusion", "P4",
+         file(SAMPLING_TABLE.replace('"1 h"', '"0 h"') + "avoid_infusion = true\n"
+              "candidates = ['0.5 h', '0.7 h', '2 h']\n"), "1 candidate time"),
+        ("spacing-too-wide", "P4", file(SAMPLING_TABLE + "min_spacing = '30 h'\n"),
+         "hold only 1"),
+        ("population-no-subjects", "P5", file(SAMPLING_TABLE + "design = 'population'\n"
+                                              "cv_clearance = '30%'\ncv_volume = '20%'\n"),
+         "number of subjects"),
+        ("population-one-level", "P5", file(swap("levels = 2", "levels = 1")
+                                            + "cv_clearance = '30%'\ncv_volume = '20%'\n"
+                                            "subjects = 40\n"), "singular"),
+        ("compare-length", "P5", file(SAMPLING_TABLE + "compare = [['2 h']]\n"),
+         "gives 1 times for 2 levels"),
+        ("groups-individual", "P5", file(SAMPLING_TABLE + "groups = [{ subjects = 3 }]\n"),
+         "population design"),
+    ]
+    out = [Case(f"sampling-{i}", r, ("sampling", "s.toml"), {"s.toml": x}, 2, p)
+           for i, r, x, p in rows]
+    good = {"s.toml": file()}
+    opts = [
+        ("simulate-negative", "P6", ("--simulate", "-1"), "--simulate"),
+        ("simulate-huge", "P6", ("--simulate", "1000000"), "100,000"),
+        ("engine-no-simulate", "P6", ("--engine", "dask"), "--simulate"),
+        ("workers-no-simulate", "P6", ("--workers", "2"), "--simulate"),
+        ("starts-0", "P6", ("--starts", "0"), "--starts"),
+        ("seed-negative", "P6", ("--seed", "-3"), "--seed"),
+    ]
+    out += [Case(f"sampling-option-{i}", r, ("sampling", "s.toml", *a), good, 2, p)
+            for i, r, a, p in opts]
+    out.append(Case("sampling-no-table", "P1", ("sampling", "s.toml"),
+                    {"s.toml": scenario_lines()}, 2, "no scenario has a [scenarios.sampling]"))
+    return out
+
+
 CORPUS = (quantity_cases() + dose_and_time_cases() + parameter_cases() + file_cases()
           + study_cases() + batch_cases() + output_cases() + design_cases() + verify_cases()
-          + option_cases() + clock_and_sdtm_cases())
+          + option_cases() + clock_and_sdtm_cases() + sampling_cases())
 
 
 def test_the_corpus_is_large_and_cites_its_rules():
@@ -589,7 +677,7 @@ def test_the_corpus_is_large_and_cites_its_rules():
         assert f"**{c.rule}**" in rules, f"{c.id}: rule {c.rule} is not in docs/formats.md"
     commands = {c.args[0] for c in CORPUS}
     assert commands >= {"predict", "design", "fit", "nca", "population", "batch", "verify",
-                        "demo"}
+                        "demo", "sampling"}
 
 
 def _digest(folder: Path) -> dict[str, str]:

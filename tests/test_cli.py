@@ -132,3 +132,4 @@ def test_demo_writes_outputs(run_cli, tmp_path):
     assert r.out.startswith("!!!")  # the caution block comes first
     assert (tmp_path / "demo" / "predict" / "predict.json").exists()
     assert (tmp_path / "demo" / "design" / "design.json").exists()
+    assert (tmp_path / "demo" / "sampling" / "sampling.json").exists()

@@ -1,0 +1,69 @@
+"""``pkcalc sampling`` end to end: the JSON contract, files, report, exit codes."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from .conftest import SCENARIOS
+
+DEMO = SCENARIOS / "demo-sampling.toml"
+
+
+def test_json_contract_times_and_expected_rse(run_cli):
+    r = run_cli("sampling", DEMO, "--json")
+    assert r.code == 0, r.err
+    doc = r.json()
+    assert doc["command"] == "sampling" and doc["caution"] and doc["sampling_caution"]
+    assert doc["units"]["time"] == "h"
+    assert len(doc["scenarios"]) == 3
+    one = doc["scenarios"][0]
+    assert one["design"] == "individual"
+    best = one["designs"][0]
+    assert best["label"] == "optimal" and len(best["times"]) == 2
+    assert set(best["expected_rse_percent"]) == {"clearance", "volume"}
+    assert one["designs"][1]["label"] == "yours" and 0 < one["designs"][1]["efficiency"] < 1
+    clock = doc["scenarios"][1]
+    assert clock["design"] == "map" and clock["designs"][0]["groups"][0]["clock_times"][0] \
+        .startswith("2026-03-03T")
+    pop = doc["scenarios"][2]
+    assert pop["design"] == "population" and len(pop["designs"][0]["times"]) == 3
+    for t in (t for g in pop["designs"][0]["times"] for t in g):   # candidate times only
+        assert f"{t:g} h" in DEMO.read_text()
+
+
+def test_times_follow_the_output_time_unit(run_cli, write):
+    text = DEMO.read_text().replace('time = "h"', 'time = "min"')
+    path = write("s.toml", text)
+    r = run_cli("sampling", path, "--json")
+    h = run_cli("sampling", DEMO, "--json")
+    a, b = r.json()["scenarios"][0]["designs"][0]["times"], \
+        h.json()["scenarios"][0]["designs"][0]["times"]
+    assert a == pytest.approx([60 * x for x in b])
+
+
+def test_outputs_report_and_simulation(run_cli, tmp_path):
+    out = tmp_path / "o"
+    r = run_cli("sampling", DEMO, "--simulate", "20", "--seed", "3", "--out", out,
+                "--report", tmp_path / "r.html")
+    assert r.code == 0, r.err
+    names = sorted(p.name for p in out.iterdir())
+    assert "sampling.json" in names and "sampling-times.csv" in names and "CAUTION.txt" in names
+    assert sum(n.endswith(".png") for n in names) == 3
+    doc = json.loads((out / "sampling.json").read_text())
+    sim = doc["scenarios"][0]["designs"][0]["simulation"]
+    assert sim["replicates"] == 20 and sim["seed"] == 3
+    html = (tmp_path / "r.html").read_text()
+    assert html.index("CAUTION") < html.index("Sampling times")
+    csv = (out / "sampling-times.csv").read_text().splitlines()
+    assert csv[0].startswith("scenario,design,group,subjects,level,time [h]")
+
+
+def test_a_scenario_with_a_problem_is_named_and_the_rest_computed(run_cli, write):
+    bad = DEMO.read_text().replace('levels = 2\nwindow = ["16 h", "32 h"]',
+                                   'levels = 2\nwindow = ["16 h", "3200 h"]')
+    r = run_cli("sampling", write("s.toml", bad), "--json")
+    assert r.code == 1
+    assert "after the horizon" in r.err and "scenario 'orvimycin: two levels" in r.err
+    assert len(r.json()["scenarios"]) == 2
