@@ -31,6 +31,8 @@ _EXPORTS = {
     "example_file": "examples",
     "fit_study": "api", "nca_study": "api", "population_study": "api",
     "StudyFit": "api", "StudyNca": "api",
+    "SamplingProblem": "core", "SamplingGroup": "core", "design_sampling": "sampling",
+    "sampling_file": "api", "SamplingFile": "api", "Engine": "engines",
 }
 
 __all__ = ["__version__", *sorted(_EXPORTS)]
@@ -38,7 +40,7 @@ __all__ = ["__version__", *sorted(_EXPORTS)]
 
 _MODULES = {"core", "model", "predict", "design", "fit", "nca", "population", "batch",
             "schema", "units", "errors", "report", "plots", "verify", "files", "tables",
-            "examples", "api", "runner", "cli", "plausibility"}
+            "examples", "api", "runner", "cli", "plausibility", "sampling", "engines"}
 
 
 def __getattr__(name: str) -> Any:

@@ -428,3 +428,77 @@ def _population_bootstrap(study: Study, o: PopulationOptions, result, progress,
             result.typical_ci[k] = (b["ci_low"], b["ci_high"])
     result.notes.append(f"standard errors and 95 % intervals of the typical values from "
                         f"{o.bootstrap} bootstrap replicates over subjects (seed {o.seed})")
+
+
+# --------------------------------------------------------------------------- sampling
+@dataclass
+class SamplingFile:
+    """The sampling designs of a scenario file.
+
+    Attributes
+    ----------
+    results : list of SamplingResult
+        One per scenario with a usable ``[scenarios.sampling]`` table.
+    failures : list of (str, PkcalcInputError)
+        Scenarios that could not be designed, with their problems.
+    title : str or None
+    units : dict
+        The file's display units (``[output]``).
+    """
+
+    results: list[Any]
+    failures: list[tuple[str, PkcalcInputError]]
+    title: str | None = None
+    units: dict[str, str] = field(default_factory=dict)
+
+    def summary(self) -> str:
+        return "\n\n".join(r.summary() for r in self.results)
+
+    def to_frame(self):
+        import pandas as pd
+
+        frames = []
+        for r in self.results:
+            f = r.to_frame()
+            f.insert(0, "scenario", r.problem.name)
+            frames.append(f)
+        return pd.concat(frames, ignore_index=True)
+
+    def _repr_html_(self) -> str:
+        return result_html(self.summary(), self.to_frame())
+
+
+def sampling_file(path, *, simulate: int = 0, seed: int = 1, engine: Engine | None = None,
+                  refit: str | None = None, starts: int = 12,
+                  progress: Callable[[str], None] | None = None) -> SamplingFile:
+    """Sampling-time designs of every scenario of ``path`` that has a
+    ``[scenarios.sampling]`` table (docs/formats.md), optionally proven by ``simulate``
+    replicates per design (see :func:`pkcalc.sampling.design_sampling`).
+
+    Raises
+    ------
+    PkcalcInputError
+        When the file is unusable or no scenario could be designed.
+    """
+    from dataclasses import replace
+
+    from .sampling import design_sampling
+    from .schema.sampling import load_sampling_file, sampling_problem
+
+    sfile = load_sampling_file(path)
+    results, failures = [], list(sfile.failures)
+    for s in sfile.scenarios:
+        label = f"scenario '{s.name}'"
+        try:
+            problem = sampling_problem(s, starts=starts)
+            results.append(design_sampling(problem, simulate=simulate, seed=seed,
+                                           engine=engine, refit=refit, progress=progress))
+        except PkcalcInputError as exc:
+            failures.append((label, PkcalcInputError(
+                [replace(p, file=p.file or str(path), item=p.item or label)
+                 for p in exc.problems])))
+        except ValueError as exc:  # a core type refused a combination
+            failures.append((label, PkcalcInputError(str(exc), file=str(path), item=label)))
+    if not results:
+        raise PkcalcInputError([p for _, err in failures for p in err.problems])
+    return SamplingFile(results, failures, sfile.title, sfile.output.units())

@@ -9,7 +9,7 @@ once, for ``--out`` and ``--report`` alike.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
 from typing import Any
@@ -270,30 +270,16 @@ def run_design(cases, *, failures=(), title: str | None = None,
 def run_sampling(path: str | Path, *, simulate: int = 0, seed: int = 1, refit=None,
                  starts: int = 12, engine=None, progress=None, colour: bool = False) -> Run:
     """``pkcalc sampling``: the design of every scenario with a sampling table."""
+    from .api import sampling_file
     from .report.html import sampling_sections
     from .report.sampling import sampling_json, sampling_text
-    from .sampling import design_sampling
-    from .schema.sampling import load_sampling_file, sampling_problem
 
-    sfile = load_sampling_file(path)
-    results, failures = [], list(sfile.failures)
-    for s in sfile.scenarios:
-        label = f"scenario '{s.name}'"
-        try:
-            problem = sampling_problem(s, starts=starts)
-            results.append(design_sampling(problem, simulate=simulate, seed=seed,
-                                           engine=engine, refit=refit, progress=progress))
-        except PkcalcInputError as exc:
-            failures.append((label, PkcalcInputError(
-                [replace(p, file=p.file or str(path), item=p.item or label)
-                 for p in exc.problems])))
-        except ValueError as exc:  # a core type refused a combination
-            failures.append((label, PkcalcInputError(str(exc), file=str(path), item=label)))
-    if not results:
-        raise PkcalcInputError([p for _, err in failures for p in err.problems])
-    conv = report.UnitConverter(sfile.output.units())
-    doc = sampling_json(results, conv, title=sfile.title, failures=failures)
-    text = sampling_text(results, title=sfile.title, failures=failures, colour=colour)
+    sf = sampling_file(path, simulate=simulate, seed=seed, engine=engine, refit=refit,
+                       starts=starts, progress=progress)
+    results, failures = sf.results, sf.failures
+    conv = report.UnitConverter(sf.units)
+    doc = sampling_json(results, conv, title=sf.title, failures=failures)
+    text = sampling_text(results, title=sf.title, failures=failures, colour=colour)
 
     def figures() -> dict[str, Any]:
         from .plots import sampling_figure
@@ -321,7 +307,7 @@ def run_sampling(path: str | Path, *, simulate: int = 0, seed: int = 1, refit=No
         return written
 
     return Run("sampling", EXIT_PARTIAL if failures else EXIT_OK, doc, text, [str(path)],
-               sfile.title or f"pkcalc sampling: {Path(path).name}", figures, files,
+               sf.title or f"pkcalc sampling: {Path(path).name}", figures, files,
                lambda pngs: sampling_sections(doc, pngs), seed=seed if simulate else None,
                warnings=[w for r in results for w in r.warnings])
 
