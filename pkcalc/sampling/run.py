@@ -67,7 +67,8 @@ def _evaluate(ev: Evaluator, label: str, schedules: list[np.ndarray], names: lis
             out[name] = float(rse[i])          # SE of the log = RSE
         else:
             out[name] = float(rse[i] / values[i])  # SE of a variance relative to it
-    return DesignEvaluation(label, [[float(t) for t in s] for s in schedules], out,
+    # times to 1e-9 h (3.6 us): the optimiser's rounding noise is not shown
+    return DesignEvaluation(label, [[round(float(t), 9) for t in s] for s in schedules], out,
                             log_det(m))
 
 
