@@ -21,8 +21,10 @@ import numpy as np
 from scipy.optimize import minimize
 
 from ..core import SamplingProblem
-from .constraints import AllowedSet, spacing_ok
+from .constraints import TOLERANCE, AllowedSet, spacing_ok
 from .information import (
+    SINGULAR,
+    Course,
     course,
     individual_information,
     log_det,
@@ -33,6 +35,10 @@ __all__ = ["Evaluator", "optimise"]
 
 #: Candidate combinations searched exhaustively (more: the exchange search).
 EXHAUSTIVE = 5000
+#: Points of the grid the free-time search starts from (plus the course's corners).
+GRID = 160
+#: Most passes of the exchange search over every level.
+MAX_SWEEPS = 20
 _BAD = 1e30
 
 
@@ -52,12 +58,18 @@ class Evaluator:
         self.doses = (start, amount, duration)
         self.omega = None if p.omega is None else np.asarray(p.omega, float)
 
-    def subject_information(self, times: np.ndarray) -> np.ndarray:
+    def course(self, times: np.ndarray) -> Course:
         p = self.p
-        c = course(times, self.doses, p.clearance, p.volume, p.additive, p.proportional)
+        return course(times, self.doses, p.clearance, p.volume, p.additive, p.proportional)
+
+    def course_information(self, c: Course) -> np.ndarray:
+        p = self.p
         if p.design == "population":
             return population_information(c, self.omega, p.additive, p.proportional)
         return individual_information(c, self.omega if p.design == "map" else None)
+
+    def subject_information(self, times: np.ndarray) -> np.ndarray:
+        return self.course_information(self.course(times))
 
     def information(self, schedules: list[np.ndarray]) -> np.ndarray:
         """The whole design's information (subjects x each group's information)."""
@@ -69,7 +81,9 @@ class Evaluator:
 
     def loss(self, schedules: list[np.ndarray]) -> float:
         """The criterion to minimise (large when the information is singular)."""
-        m = self.information(schedules)
+        return self.loss_of(self.information(schedules))
+
+    def loss_of(self, m: np.ndarray) -> float:
         ld = log_det(m)
         if not math.isfinite(ld):
             return _BAD
@@ -79,8 +93,49 @@ class Evaluator:
         return float(cov[0, 0] + cov[1, 1])
 
 
-def _split(x: np.ndarray, sizes: list[int]) -> list[np.ndarray]:
-    return np.split(x, np.cumsum(sizes)[:-1])
+    def loss_batch(self, ms: np.ndarray) -> np.ndarray:
+        """:meth:`loss_of` of a stack of matrices (k, p, p) at once."""
+        d = np.diagonal(ms, axis1=1, axis2=2)
+        ok = np.all(d > 0, axis=1) & np.all(np.isfinite(ms), axis=(1, 2))
+        out = np.full(ms.shape[0], _BAD)
+        if not ok.any():
+            return out
+        m = ms[ok]
+        sc = 1.0 / np.sqrt(np.diagonal(m, axis1=1, axis2=2))
+        scaled = m * sc[:, :, None] * sc[:, None, :]
+        good = np.linalg.eigvalsh(scaled)[:, 0] >= SINGULAR
+        sign, ld = np.linalg.slogdet(m)
+        good &= (sign > 0) & np.isfinite(ld)
+        vals = np.full(m.shape[0], _BAD)
+        if self.p.criterion == "D":
+            vals[good] = -ld[good]
+        elif good.any():
+            cov = np.linalg.inv(m[good])
+            vals[good] = cov[:, 0, 0] + cov[:, 1, 1]
+        out[ok] = vals
+        return out
+
+    def loss_and_gradient(self, schedules: list[np.ndarray], step: float = 1e-6
+                          ) -> tuple[float, np.ndarray]:
+        """The criterion and its forward-difference gradient in every time, from one
+        model evaluation per group (the times and the times + step together)."""
+        parts, courses = [], []
+        for g, t in zip(self.p.groups, schedules, strict=True):
+            both = self.course(np.concatenate([t, t + step]))
+            n = t.size
+            base = Course(both.f[:n], both.F[:n], both.var[:n])
+            courses.append((both, base, n))
+            parts.append(g.subjects * self.course_information(base))
+        total = sum(parts)
+        loss = self.loss_of(total)
+        grad = []
+        for (both, base, n), g, part in zip(courses, self.p.groups, parts, strict=True):
+            for j in range(n):
+                f, F, var = base.f.copy(), base.F.copy(), base.var.copy()
+                f[j], F[j], var[j] = both.f[n + j], both.F[n + j], both.var[n + j]
+                moved = total - part + g.subjects * self.course_information(Course(f, F, var))
+                grad.append((self.loss_of(moved) - loss) / step)
+        return loss, np.array(grad)
 
 
 def _feasible(schedules, allowed: AllowedSet, spacing: float) -> bool:
@@ -88,51 +143,165 @@ def _feasible(schedules, allowed: AllowedSet, spacing: float) -> bool:
                for t in schedules)
 
 
-def _continuous(ev: Evaluator, allowed: AllowedSet, rng: np.random.Generator
-                ) -> list[np.ndarray] | None:
+def grid_times(ev: Evaluator, allowed: AllowedSet, points: int = GRID) -> np.ndarray:
+    """A grid over the allowed set: evenly spread points plus every piece's ends and
+    every dose start and infusion end inside it (where the course has a corner and
+    optima often sit)."""
+    start, _, duration = ev.doses
+    corners = np.concatenate([start, start + np.maximum(duration, 0.0)])
+    out = [corners[allowed.contains(corners)]]
+    spacing = ev.p.min_spacing
+    for a, b in allowed.pieces:
+        n = max(2, math.ceil(points * (b - a) / max(allowed.length, 1e-12)) + 1)
+        out.append(np.linspace(a, b, n))
+        if spacing > 0:  # tightly packed schedules from either end stay reachable
+            k = np.arange(min(int((b - a) / spacing) + 1, points))
+            out += [a + k * spacing, b - k * spacing]
+    return np.unique(np.concatenate(out))
+
+
+class _Rows:
+    """The course at fixed times, so that any subset's information needs no model call."""
+
+    def __init__(self, ev: Evaluator, times: np.ndarray) -> None:
+        self.ev, self.times = ev, times
+        self.c = ev.course(times)
+        # individual and MAP information is a sum over levels: each time's own term
+        self.additive = ev.p.design != "population"
+        if self.additive:
+            F, w = self.c.F, 1.0 / np.maximum(self.c.var, 1e-300)
+            self.terms = w[:, None, None] * F[:, :, None] * F[:, None, :]
+
+    def info(self, g_subjects: int, idx: np.ndarray) -> np.ndarray:
+        c = self.c
+        return g_subjects * self.ev.course_information(Course(c.f[idx], c.F[idx], c.var[idx]))
+
+
+def _exchange(ev: Evaluator, rows: _Rows, rng: np.random.Generator, starts: int
+              ) -> tuple[list[np.ndarray] | None, float]:
+    """Exchange search over the rows' times: swap one chosen time for an unchosen one
+    while the criterion improves; the best of several starts (index arrays)."""
     p = ev.p
     sizes = [g.levels for g in p.groups]
-    L, s = allowed.length, p.min_spacing
-
-    def schedules(x):
-        return [allowed.to_time(u) for u in _split(x, sizes)]
-
-    def fun(x):
-        return ev.loss(schedules(x))
-
-    cons = []
-    offset = 0
-    for n in sizes:
-        for j in range(n - 1):
-            a, b = offset + j, offset + j + 1
-            cons.append({"type": "ineq", "fun": lambda x, a=a, b=b:
-                         allowed.to_time(x[b]) - allowed.to_time(x[a]) - s})
-            if s == 0:
-                cons.append({"type": "ineq", "fun": lambda x, a=a, b=b: x[b] - x[a]})
-        offset += n
-    starts = []
-    for k in range(p.starts):
-        parts = []
-        for n in sizes:
-            if k == 0:
-                parts.append(np.linspace(0.0, L, n + 2)[1:-1] if n > 1 else np.array([L / 2]))
-            elif k == 1:
-                parts.append(np.linspace(0.0, L, n))
-            else:
-                parts.append(np.sort(rng.uniform(0.0, L, n)))
-        starts.append(np.concatenate(parts))
+    subjects = [g.subjects for g in p.groups]
+    times, s, m = rows.times, p.min_spacing, rows.times.size
     best, best_loss = None, math.inf
-    for x0 in starts:
-        res = minimize(fun, x0, method="SLSQP", bounds=[(0.0, L)] * len(x0),
-                       constraints=cons, options={"maxiter": 200, "ftol": 1e-10})
-        cand = [np.sort(t) for t in schedules(res.x)]
-        cand = [_repair(t, allowed, s) for t in cand]
-        if any(t is None for t in cand) or not _feasible(cand, allowed, s):
+    for k in range(starts):
+        chosen = []
+        for n in sizes:
+            pick = _random_subset(times, n, s, rng, spread=k == 0)
+            if pick is None:  # this start found no spaced subset: try the next
+                break
+            chosen.append(np.sort(pick))
+        if len(chosen) < len(sizes):
             continue
-        loss = ev.loss(cand)
+        parts = [rows.info(subjects[g], chosen[g]) for g in range(len(sizes))]
+        total = sum(parts)
+        loss = ev.loss_of(total)
+        for _ in range(MAX_SWEEPS):
+            improved = False
+            for g, n in enumerate(sizes):
+                for j in range(n):
+                    if rows.additive:
+                        # information adds over levels: every swap at once
+                        new, c = _best_swap(ev, rows, subjects[g], total, chosen[g], j, s)
+                        if c is not None and new < loss - 1e-12:
+                            trial = chosen[g].copy()
+                            trial[j] = c
+                            trial.sort()
+                            part = rows.info(subjects[g], trial)
+                            total = total - parts[g] + part
+                            chosen[g], parts[g], loss, improved = trial, part, \
+                                ev.loss_of(total), True
+                        continue
+                    base = total - parts[g]
+                    for c in range(m):
+                        if c in chosen[g]:
+                            continue
+                        trial = chosen[g].copy()
+                        trial[j] = c
+                        trial.sort()
+                        if not spacing_ok(times[trial], s):
+                            continue
+                        part = rows.info(subjects[g], trial)
+                        new = ev.loss_of(base + part)
+                        if new < loss - 1e-12:
+                            chosen[g], parts[g], loss, improved = trial, part, new, True
+                            total = base + part
+            if not improved:
+                break
         if loss < best_loss:
-            best, best_loss = cand, loss
-    return best if best_loss < _BAD else None
+            best, best_loss = [c.copy() for c in chosen], loss
+    return (best if best_loss < _BAD else None), best_loss
+
+
+def _best_swap(ev: Evaluator, rows: _Rows, subjects: int, total: np.ndarray,
+               chosen: np.ndarray, j: int, spacing: float) -> tuple[float, int | None]:
+    """The best replacement of level j among every time (additive information)."""
+    times = rows.times
+    base = total - subjects * rows.terms[chosen[j]]
+    losses = ev.loss_batch(base[None, :, :] + subjects * rows.terms)
+    others = np.delete(chosen, j)
+    ok = np.ones(times.size, bool)
+    ok[chosen] = False
+    for o in others:
+        ok &= np.abs(times - times[o]) >= spacing - 1e-9
+    if not ok.any():
+        return math.inf, None
+    losses = np.where(ok, losses, np.inf)
+    c = int(np.argmin(losses))
+    return float(losses[c]), c
+
+
+def _polish(ev: Evaluator, allowed: AllowedSet, schedules: list[np.ndarray]
+            ) -> list[np.ndarray]:
+    """SLSQP from the grid's best, each time kept inside its own allowed piece (where
+    the criterion is smooth between corners), the spacing as linear constraints."""
+    p = ev.p
+    sizes = [g.levels for g in p.groups]
+    s = p.min_spacing
+    x0 = np.concatenate(schedules)
+    bounds = []
+    for t in x0:
+        piece = next((a, b) for a, b in allowed.pieces
+                     if a - TOLERANCE <= t <= b + TOLERANCE)
+        bounds.append(piece)
+    pairs, offset = [], 0
+    for n in sizes:
+        pairs += [(offset + j, offset + j + 1) for j in range(n - 1)]
+        offset += n
+    cons = []
+    if pairs:
+        ia = np.array([a for a, _ in pairs], int)
+        ib = np.array([b for _, b in pairs], int)
+        jac = np.zeros((len(pairs), x0.size))
+        jac[np.arange(len(pairs)), ia] = -1.0
+        jac[np.arange(len(pairs)), ib] = 1.0
+        cons.append({"type": "ineq", "fun": lambda x: x[ib] - x[ia] - s, "jac": lambda x: jac})
+
+    def split(x):
+        return np.split(x, np.cumsum(sizes)[:-1])
+
+    try:
+        res = minimize(lambda x: ev.loss_and_gradient(split(x)), x0, jac=True,
+                       method="SLSQP", bounds=bounds, constraints=cons,
+                       options={"maxiter": 100, "ftol": 1e-12})
+    except (ValueError, np.linalg.LinAlgError):
+        return schedules
+    lo, hi = np.array(bounds).T
+    cand = [_repair(np.sort(t), allowed, s) for t in split(np.clip(res.x, lo, hi))]
+    if any(t is None for t in cand) or not _feasible(cand, allowed, s):
+        return schedules
+    return cand if ev.loss(cand) < ev.loss(schedules) else schedules
+
+
+def _continuous(ev: Evaluator, allowed: AllowedSet, rng: np.random.Generator
+                ) -> list[np.ndarray] | None:
+    rows = _Rows(ev, grid_times(ev, allowed))
+    best, _ = _exchange(ev, rows, rng, ev.p.starts)
+    if best is None:
+        return None
+    return _polish(ev, allowed, [rows.times[b] for b in best])
 
 
 def _repair(t: np.ndarray, allowed: AllowedSet, spacing: float) -> np.ndarray | None:
@@ -156,57 +325,28 @@ def _discrete(ev: Evaluator, cands: np.ndarray, rng: np.random.Generator
     sizes = [g.levels for g in p.groups]
     s = p.min_spacing
     m = cands.size
+    rows = _Rows(ev, cands)
     if len(sizes) == 1 and math.comb(m, sizes[0]) <= EXHAUSTIVE:
         best, best_loss = None, math.inf
         for idx in itertools.combinations(range(m), sizes[0]):
-            t = cands[list(idx)]
-            if not spacing_ok(t, s):
+            idx = np.array(idx)
+            if not spacing_ok(cands[idx], s):
                 continue
-            loss = ev.loss([t])
+            loss = ev.loss_of(rows.info(p.groups[0].subjects, idx))
             if loss < best_loss:
-                best, best_loss = [t], loss
+                best, best_loss = [cands[idx]], loss
         return best if best_loss < _BAD else None
-    best, best_loss = None, math.inf
-    for k in range(p.starts):
-        chosen = []
-        for n in sizes:
-            pick = _random_subset(cands, n, s, rng, spread=k == 0)
-            if pick is None:
-                return None
-            chosen.append(pick)
-        loss = ev.loss([cands[c] for c in chosen])
-        for _ in range(50):
-            improved = False
-            for g, n in enumerate(sizes):
-                for j in range(n):
-                    for c in range(m):
-                        if c in chosen[g]:
-                            continue
-                        trial = chosen[g].copy()
-                        trial[j] = c
-                        t = cands[np.sort(trial)]
-                        if not spacing_ok(t, s):
-                            continue
-                        sched = [cands[np.sort(x)] for x in chosen]
-                        sched[g] = t
-                        new = ev.loss(sched)
-                        if new < loss - 1e-12:
-                            chosen[g], loss, improved = trial, new, True
-            if not improved:
-                break
-        if loss < best_loss:
-            best, best_loss = [cands[np.sort(c)] for c in chosen], loss
-    return best if best_loss < _BAD else None
+    best, _ = _exchange(ev, rows, rng, p.starts)
+    return None if best is None else [cands[b] for b in best]
 
 
 def _random_subset(cands: np.ndarray, n: int, spacing: float, rng: np.random.Generator,
                    spread: bool) -> np.ndarray | None:
     """Indices of n candidates that keep the spacing (evenly spread or random)."""
-    order = np.linspace(0, cands.size - 1, cands.size).astype(int) if spread \
-        else rng.permutation(cands.size)
+    order = rng.permutation(cands.size)
     if spread:
         order = np.concatenate([np.round(np.linspace(0, cands.size - 1, n)).astype(int),
-                                order])
+                                np.arange(cands.size)])
     picked: list[int] = []
     for c in order:
         if c in picked:
