@@ -37,7 +37,7 @@ import numpy as np
 from .. import model
 
 __all__ = ["Course", "course", "individual_information", "log_det", "population_information",
-           "population_parameters", "rse_percent"]
+           "population_information_batch", "population_parameters", "rse_percent"]
 
 
 @dataclass(frozen=True)
@@ -85,28 +85,39 @@ def population_information(c: Course, omega: np.ndarray, additive: float,
                            proportional: float) -> np.ndarray:
     """One subject's first-order population information (block-diagonal), p x p in the
     order of :func:`population_parameters`."""
-    F = c.F
-    n = F.shape[0]
-    V = F @ omega @ F.T + np.diag(c.var)
+    return population_information_batch(c.f[None], c.F[None], c.var[None], omega,
+                                        additive, proportional)[0]
+
+
+def population_information_batch(f: np.ndarray, F: np.ndarray, var: np.ndarray,
+                                 omega: np.ndarray, additive: float, proportional: float
+                                 ) -> np.ndarray:
+    """:func:`population_information` of k schedules at once: ``f``, ``var`` (k, n),
+    ``F`` (k, n, 2); returns (k, p, p)."""
+    k, n = f.shape
+    V = np.einsum("kia,ab,kjb->kij", F, omega, F)
+    V[:, np.arange(n), np.arange(n)] += var
     Vi = np.linalg.inv(V)
-    fixed = F.T @ Vi @ F
-    f1, f2 = F[:, :1], F[:, 1:]
-    dV = [f1 @ f1.T, f2 @ f2.T]
+    fixed = np.einsum("kia,kij,kjb->kab", F, Vi, F)
+    f1, f2 = F[:, :, 0], F[:, :, 1]
+    dV = [f1[:, :, None] * f1[:, None, :], f2[:, :, None] * f2[:, None, :]]
     if omega[0, 1] != 0.0:
-        dV.append(f1 @ f2.T + f2 @ f1.T)
+        cross = f1[:, :, None] * f2[:, None, :]
+        dV.append(cross + np.swapaxes(cross, 1, 2))
     if additive > 0:
-        dV.append(np.eye(n))
+        dV.append(np.broadcast_to(np.eye(n), (k, n, n)))
     if proportional > 0:
-        dV.append(np.diag(c.f**2))
+        eye = np.zeros((k, n, n))
+        eye[:, np.arange(n), np.arange(n)] = f**2
+        dV.append(eye)
     A = [Vi @ d for d in dV]
     q = len(A)
-    var_block = np.empty((q, q))
+    out = np.zeros((k, 2 + q, 2 + q))
+    out[:, :2, :2] = fixed
     for i in range(q):
         for j in range(i, q):
-            var_block[i, j] = var_block[j, i] = 0.5 * float(np.sum(A[i] * A[j].T))
-    out = np.zeros((2 + q, 2 + q))
-    out[:2, :2] = fixed
-    out[2:, 2:] = var_block
+            out[:, 2 + i, 2 + j] = out[:, 2 + j, 2 + i] = \
+                0.5 * np.einsum("kab,kba->k", A[i], A[j])
     return out
 
 

@@ -29,6 +29,7 @@ from .information import (
     individual_information,
     log_det,
     population_information,
+    population_information_batch,
 )
 
 __all__ = ["Evaluator", "optimise"]
@@ -184,7 +185,7 @@ def _exchange(ev: Evaluator, rows: _Rows, rng: np.random.Generator, starts: int
     p = ev.p
     sizes = [g.levels for g in p.groups]
     subjects = [g.subjects for g in p.groups]
-    times, s, m = rows.times, p.min_spacing, rows.times.size
+    times, s = rows.times, p.min_spacing
     best, best_loss = None, math.inf
     for k in range(starts):
         chosen = []
@@ -202,32 +203,19 @@ def _exchange(ev: Evaluator, rows: _Rows, rng: np.random.Generator, starts: int
             improved = False
             for g, n in enumerate(sizes):
                 for j in range(n):
-                    if rows.additive:
-                        # information adds over levels: every swap at once
+                    if rows.additive:  # information adds over levels: every swap at once
                         new, c = _best_swap(ev, rows, subjects[g], total, chosen[g], j, s)
-                        if c is not None and new < loss - 1e-12:
-                            trial = chosen[g].copy()
-                            trial[j] = c
-                            trial.sort()
-                            part = rows.info(subjects[g], trial)
-                            total = total - parts[g] + part
-                            chosen[g], parts[g], loss, improved = trial, part, \
-                                ev.loss_of(total), True
+                    else:
+                        new, c = _best_population_swap(ev, rows, subjects[g],
+                                                       total - parts[g], chosen[g], j, s)
+                    if c is None or not new < loss - 1e-12:
                         continue
-                    base = total - parts[g]
-                    for c in range(m):
-                        if c in chosen[g]:
-                            continue
-                        trial = chosen[g].copy()
-                        trial[j] = c
-                        trial.sort()
-                        if not spacing_ok(times[trial], s):
-                            continue
-                        part = rows.info(subjects[g], trial)
-                        new = ev.loss_of(base + part)
-                        if new < loss - 1e-12:
-                            chosen[g], parts[g], loss, improved = trial, part, new, True
-                            total = base + part
+                    trial = chosen[g].copy()
+                    trial[j] = c
+                    trial.sort()
+                    part = rows.info(subjects[g], trial)
+                    total = total - parts[g] + part
+                    chosen[g], parts[g], loss, improved = trial, part, ev.loss_of(total), True
             if not improved:
                 break
         if loss < best_loss:
@@ -238,19 +226,41 @@ def _exchange(ev: Evaluator, rows: _Rows, rng: np.random.Generator, starts: int
 def _best_swap(ev: Evaluator, rows: _Rows, subjects: int, total: np.ndarray,
                chosen: np.ndarray, j: int, spacing: float) -> tuple[float, int | None]:
     """The best replacement of level j among every time (additive information)."""
-    times = rows.times
     base = total - subjects * rows.terms[chosen[j]]
     losses = ev.loss_batch(base[None, :, :] + subjects * rows.terms)
-    others = np.delete(chosen, j)
-    ok = np.ones(times.size, bool)
-    ok[chosen] = False
-    for o in others:
-        ok &= np.abs(times - times[o]) >= spacing - 1e-9
+    ok = _swap_mask(rows.times, chosen, j, spacing)
     if not ok.any():
         return math.inf, None
     losses = np.where(ok, losses, np.inf)
     c = int(np.argmin(losses))
     return float(losses[c]), c
+
+
+def _swap_mask(times: np.ndarray, chosen: np.ndarray, j: int, spacing: float) -> np.ndarray:
+    ok = np.ones(times.size, bool)
+    ok[chosen] = False
+    for o in np.delete(chosen, j):
+        ok &= np.abs(times - times[o]) >= spacing - 1e-9
+    return ok
+
+
+def _best_population_swap(ev: Evaluator, rows: _Rows, subjects: int, rest: np.ndarray,
+                          chosen: np.ndarray, j: int, spacing: float
+                          ) -> tuple[float, int | None]:
+    """The best replacement of level j among every time (population information of
+    every trial schedule in one batch)."""
+    ok = _swap_mask(rows.times, chosen, j, spacing)
+    cand = np.flatnonzero(ok)
+    if cand.size == 0:
+        return math.inf, None
+    idx = np.repeat(chosen[None, :], cand.size, axis=0)
+    idx[:, j] = cand
+    c, p = rows.c, ev.p
+    info = population_information_batch(c.f[idx], c.F[idx], c.var[idx], ev.omega,
+                                        p.additive, p.proportional)
+    losses = ev.loss_batch(rest[None] + subjects * info)
+    best = int(np.argmin(losses))
+    return float(losses[best]), int(cand[best])
 
 
 def _polish(ev: Evaluator, allowed: AllowedSet, schedules: list[np.ndarray]
