@@ -67,3 +67,15 @@ def test_a_scenario_with_a_problem_is_named_and_the_rest_computed(run_cli, write
     assert r.code == 1
     assert "after the horizon" in r.err and "scenario 'orvimycin: two levels" in r.err
     assert len(r.json()["scenarios"]) == 2
+
+
+def test_progress_on_a_terminal_only(run_cli, write, monkeypatch):
+    import sys
+
+    one = DEMO.read_text().split("# The same patient")[0]   # the first scenario only
+    path = write("one.toml", one)
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True, raising=False)
+    r = run_cli("sampling", path, "--simulate", "300")
+    assert r.code == 0 and "replicates" in r.err and "left" in r.err
+    r = run_cli("sampling", path, "--simulate", "300", "--quiet")
+    assert r.code == 0 and "replicates" not in r.err
