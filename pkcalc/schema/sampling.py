@@ -159,7 +159,8 @@ def _groups(raw: dict, col: Collector, design: str, levels, origin) -> list[Samp
                     "subjects = 100, or groups = [{ subjects = 50, levels = 2 }, ...]")
             return []
         if design != "population" and subjects != 1:
-            col.add(f"an {design} design is for one subject", "sampling.subjects",
+            kind = "an individual" if design == "individual" else "a MAP"
+            col.add(f"{kind} design is for one subject", "sampling.subjects",
                     "design = 'population' for a study")
             return []
         if not isinstance(subjects, int) or isinstance(subjects, bool) or subjects < 1:
