@@ -119,16 +119,23 @@ def parquet_chunks(path: Path, chunk_rows: int) -> tuple[list[str], Iterator[pd.
 
 
 class Writer:
-    """Writes result chunks to a temporary file beside the output, renamed at the end."""
+    """Writes result chunks to a temporary file beside the output, renamed at the end.
 
-    def __init__(self, output: Path, fmt: str) -> None:
-        self.output, self.fmt = output, fmt
+    With ``atomic=False`` it writes ``output`` itself (a part file inside a folder
+    that is temporary as a whole) and :meth:`commit` only closes it.
+    """
+
+    def __init__(self, output: Path, fmt: str, *, atomic: bool = True) -> None:
+        self.output, self.fmt, self.atomic = output, fmt, atomic
         from ..files import clean_stale, temp_path
 
-        output.parent.mkdir(parents=True, exist_ok=True)
-        clean_stale(output)  # temporary files of killed runs to the same path
-        self.tmp = temp_path(output)
-        self.tmp.touch(mode=0o600)
+        if atomic:
+            output.parent.mkdir(parents=True, exist_ok=True)
+            clean_stale(output)  # temporary files of killed runs to the same path
+            self.tmp = temp_path(output)
+            self.tmp.touch(mode=0o600)
+        else:
+            self.tmp = output
         self.first = True
         self.pq_writer = None
         self.handle = None
@@ -152,8 +159,8 @@ class Writer:
         else:
             import pyarrow.parquet as pq
 
-            if self.pq_writer is None:
-                self.pq_writer = pq.ParquetWriter(self.tmp, table.schema)
+            if self.pq_writer is None:  # pyarrow opens the path itself (native writes)
+                self.pq_writer = pq.ParquetWriter(str(self.tmp), table.schema)
             else:
                 table = table.cast(self.pq_writer.schema)
             self.pq_writer.write_table(table)
@@ -164,6 +171,8 @@ class Writer:
             self.pq_writer.close()
         if self.handle is not None:
             self.handle.close()
+        if not self.atomic:
+            return
         from ..files import current_umask
 
         os.chmod(self.tmp, 0o666 & ~current_umask())

@@ -247,15 +247,15 @@ def run_part(part: Part, spec: BatchSpec, options: BatchOptions, folder: str, fm
     try:
         for frame in _read_part(part, block_rows(chunk_rows, options), layout):
             res = normalise_types(compute(frame, spec, options), spec)
-            if writer is None:
-                writer = _PartWriter(out, fmt_out)
+            if writer is None:  # the folder is temporary as a whole: no file-level rename
+                writer = Writer(out, fmt_out, atomic=False)
             writer.write(res)
             _tally_part(result, res, limit)
         if writer is not None:
-            writer.close()
+            writer.commit()
     except OSError as exc:
         if writer is not None:
-            writer.close()
+            writer.abort()
         raise PkcalcInputError(
             f"the worker {_worker_name()} cannot read the input or write its part "
             f"({exc.strerror or exc.__class__.__name__}: {exc.filename or ''})",
@@ -264,42 +264,6 @@ def run_part(part: Part, spec: BatchSpec, options: BatchOptions, folder: str, fm
     result.peak_rss_mb = peak_rss_mb()
     result.worker = _worker_name()
     return result
-
-
-class _PartWriter:
-    """One part file, written block by block (the folder itself is temporary)."""
-
-    def __init__(self, path: Path, fmt: str) -> None:
-        self.path, self.fmt = path, fmt
-        # Parquet: pyarrow opens the path itself (native writes, no Python file object)
-        self.handle = open(path, "wb") if fmt == "csv" else None  # closed in close()
-        self.pq = None
-        self.first = True
-
-    def write(self, frame: pd.DataFrame) -> None:
-        import pyarrow as pa
-
-        table = pa.Table.from_pandas(frame, preserve_index=False)
-        if self.fmt == "csv":
-            import pyarrow.csv as pcsv
-
-            pcsv.write_csv(table, self.handle,
-                           write_options=pcsv.WriteOptions(include_header=self.first))
-        else:
-            import pyarrow.parquet as pq
-
-            if self.pq is None:
-                self.pq = pq.ParquetWriter(str(self.path), table.schema)
-            else:
-                table = table.cast(self.pq.schema)
-            self.pq.write_table(table)
-        self.first = False
-
-    def close(self) -> None:
-        if self.pq is not None:
-            self.pq.close()
-        if self.handle is not None:
-            self.handle.close()
 
 
 def _tally_part(result: PartResult, frame: pd.DataFrame, limit: int) -> None:

@@ -160,6 +160,17 @@ def predict_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dic
     return out
 
 
+def _closing_blocks(item: dict[str, Any], figures: dict[str, bytes], caption: str
+                    ) -> list[dict[str, Any]]:
+    """An item's notes, warnings (when any) and figure (when drawn)."""
+    out = [lines_item("notes", item["notes"])]
+    if item["warnings"]:
+        out.append(lines_item("warnings", item["warnings"]))
+    if item["name"] in figures:
+        out.append(figure_item(figures[item["name"]], caption))
+    return out
+
+
 def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
     """Report sections of a design JSON document (one per design)."""
     u = doc["units"]
@@ -190,11 +201,7 @@ def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict
         flags = [f"#{i} {f}" for i, r in enumerate(d["regimens"], 1) for f in r["flags"]]
         if flags:
             items.append(lines_item("flags", flags))
-        items.append(lines_item("notes", d["notes"]))
-        if d["warnings"]:
-            items.append(lines_item("warnings", d["warnings"]))
-        if d["name"] in figures:
-            items.append(figure_item(figures[d["name"]], f"Proposed regimens: {d['name']}"))
+        items += _closing_blocks(d, figures, f"Proposed regimens: {d['name']}")
         out.append({"heading": f"Design: {d['name']}", "blocks": items})
     return out
 
@@ -231,11 +238,7 @@ def sampling_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[di
                                      "RMSE %", "95% coverage %", "replicates", "failed"],
                                     srows, f"Simulation and re-estimation ({sims[0][1]['method']}"
                                            f", seed {sims[0][1]['seed']})"))
-        items.append(lines_item("notes", sc["notes"]))
-        if sc["warnings"]:
-            items.append(lines_item("warnings", sc["warnings"]))
-        if sc["name"] in figures:
-            items.append(figure_item(figures[sc["name"]], f"Sampling times: {sc['name']}"))
+        items += _closing_blocks(sc, figures, f"Sampling times: {sc['name']}")
         out.append({"heading": f"Sampling: {sc['name']}", "blocks": items})
     return out
 
