@@ -35,6 +35,13 @@ def _problems_to_stderr(run, command: str) -> None:
     for failure in (run.doc.get("failures") or []) + (run.doc.get("errors") or []):
         for p in failure.get("problems", []):
             print(f"pkcalc {command}: error: {Problem(**p)}", file=sys.stderr)
+    imported = run.doc.get("import") or {}
+    for domain, reasons in (imported.get("rows_skipped") or {}).items():
+        for reason, e in reasons.items():
+            if e.get("problem"):
+                print(f"pkcalc {command}: warning: {domain.upper()}: {e['count']} row(s) left "
+                      f"out: {reason} (e.g. {', '.join(e['first_rows'][:3])})",
+                      file=sys.stderr)
 
 
 def _finish(run, args: argparse.Namespace) -> int:
@@ -181,12 +188,19 @@ def _nca_overrides(args: argparse.Namespace) -> dict:
             "terminal_points": points or None}
 
 
+def _import_args(args: argparse.Namespace) -> dict:
+    """The study-import choices of the command line (None where not given)."""
+    return {"specimen": args.specimen, "treatment": args.treatment, "times": args.times,
+            "infusion_duration": args.infusion_duration, "pre_dose": args.pre_dose,
+            "strict": args.strict}
+
+
 def cmd_fit(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_fit
     from .schema import study_fit_options
 
     study = load_study_input(args.study, args.levels, args.doses, args.subjects,
-                             args.sdtm, args.analyte)
+                             args.sdtm, args.analyte, **_import_args(args))
     options = study_fit_options(study, {
         "weighting": args.weighting, "error_model": args.error_model, "blq": args.blq,
         "ci": args.ci, "prior": args.prior, "starts": args.starts,
@@ -200,7 +214,7 @@ def cmd_population(args: argparse.Namespace) -> int:
     from .schema import study_population_options
 
     study = load_study_input(args.study, args.levels, args.doses, args.subjects,
-                             args.sdtm, args.analyte)
+                             args.sdtm, args.analyte, **_import_args(args))
     options = study_population_options(study, {
         "method": args.method, "error_model": args.error_model, "blq": args.blq,
         "covariate": args.covariate, "reference_weight": args.reference_weight,
@@ -346,7 +360,7 @@ def cmd_nca(args: argparse.Namespace) -> int:
     from .schema import study_nca_options
 
     study = load_study_input(args.study, args.levels, args.doses, args.subjects,
-                             args.sdtm, args.analyte)
+                             args.sdtm, args.analyte, **_import_args(args))
     options = study_nca_options(study, _nca_overrides(args))
     return _finish(run_nca(study, options, colour=_colour()), args)
 

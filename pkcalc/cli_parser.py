@@ -109,9 +109,22 @@ def _study_args(p: argparse.ArgumentParser) -> None:
     p.add_argument("--levels", metavar="L.csv", help="levels table")
     p.add_argument("--doses", metavar="D.csv", help="doses table")
     p.add_argument("--subjects", metavar="S.csv", help="subjects table (weights, covariates)")
-    p.add_argument("--sdtm", metavar="DIR", help="CDISC SDTM datasets pc, ex (vs, dm) as .xpt "
-                                                 "or .csv in DIR")
+    p.add_argument("--sdtm", metavar="DIR", help="CDISC SDTM datasets pc, ex or ec (dm, vs, "
+                                                 "lb) as .xpt, Dataset-JSON or .csv in DIR")
     p.add_argument("--analyte", metavar="PCTESTCD", help="the analyte when PC holds several")
+    p.add_argument("--specimen", metavar="PCSPEC", help="the specimen analysed (default: the "
+                   "only plasma, serum or blood specimen in PC)")
+    p.add_argument("--treatment", metavar="EXTRT", help="the treatment whose doses are "
+                   "analysed (default: the only active treatment in EX)")
+    p.add_argument("--times", choices=("actual", "nominal"), help="sample times from PCDTC "
+                   "(actual, the default) or PCRFTDTC + PCELTM (nominal)")
+    p.add_argument("--infusion-duration", metavar="Q", help="length of each administration "
+                   "when EX gives no EXDUR and no usable end, e.g. '1 h' ('0 h': injections)")
+    p.add_argument("--pre-dose", choices=("omit", "drug_on_board"), help="a measurable level "
+                   "before the first dose: left out with a warning (omit, the default) or "
+                   "taken as the drug on board at the first dose")
+    p.add_argument("--strict", action="store_true", help="refuse SDTM data with any row or "
+                   "subject left out as a problem (default: leave them out, named)")
 
 
 # --------------------------------------------------------------------------- parser

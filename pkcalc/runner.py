@@ -338,24 +338,38 @@ def run_verify(cases_path: str | Path, *, colour: bool = False) -> tuple[Run, An
 # --------------------------------------------------------------------------- studies
 def load_study_input(study: str | None = None, levels: str | None = None,
                      doses: str | None = None, subjects: str | None = None,
-                     sdtm: str | None = None, analyte: str | None = None):
-    """A study from a study TOML, from SDTM datasets, or from the three tables."""
-    from .schema import load_study, load_study_file
+                     sdtm: str | None = None, analyte: str | None = None, **options):
+    """A study from a study TOML, from SDTM datasets, or from the three tables.
 
+    ``options`` are the import choices (``specimen``, ``treatment``, ``times``,
+    ``infusion_duration``, ``strict`` for SDTM; ``pre_dose`` for any study), as given
+    on the command line (None when not given); they override a study file's keys.
+    """
+    from .schema import load_study, load_study_file
+    from .schema.studyfile import SDTM_KEYS, import_options
+
+    given = {k: v for k, v in options.items() if v is not None and v is not False}
     if sum(bool(x) for x in (study, levels or doses or subjects, sdtm)) > 1:
         raise PkcalcInputError("give one of: a study file, --levels/--doses, or --sdtm")
-    if analyte and not sdtm:
+    if analyte and not (sdtm or study):
         raise PkcalcInputError("--analyte goes with --sdtm", field="--analyte")
+    if analyte:
+        given["analyte"] = analyte
     if sdtm:
         from .schema.sdtm import load_sdtm
 
-        return load_sdtm(sdtm, analyte)
+        return load_sdtm(sdtm, **import_options(given, "the command line"))
     if study:
-        return load_study_file(study)
+        return load_study_file(study, overrides=given)
+    wrong = sorted(set(given) & set(SDTM_KEYS))
+    if wrong:
+        raise PkcalcInputError(f"--{wrong[0].replace('_', '-')} goes with SDTM data",
+                               field=f"--{wrong[0].replace('_', '-')}",
+                               expected="--sdtm DIR, or a study file naming sdtm")
     if not (levels and doses):
         raise PkcalcInputError("no study given", expected="STUDY.toml, --sdtm DIR, or "
                                "--levels L.csv --doses D.csv [--subjects S.csv]")
-    return load_study(levels, doses, subjects)
+    return load_study(levels, doses, subjects, **import_options(given, "the command line"))
 
 
 def run_nca(study, options=None, *, colour: bool = False) -> Run:

@@ -22,6 +22,7 @@ from ..errors import PkcalcInputError, Problem
 from ..units import KINDS, NUMERIC_RANGE, parse_header, parse_unit
 
 __all__ = [
+    "PRE_DOSE_RULES",
     "Study",
     "SubjectData",
     "load_study",
@@ -46,11 +47,19 @@ def read_table(path: str | Path) -> pd.DataFrame:
 
 
 class Columns:
-    """Header parsing for one table: name -> (column, unit)."""
+    """Header parsing for one table: name -> (column, unit).
 
-    def __init__(self, frame: pd.DataFrame, file: str) -> None:
+    ``labels`` names each row in messages (default ``line N`` of a CSV file; tables
+    built from SDTM say ``pc.xpt row 17 (PCSEQ 5)``); ``fields`` gives the source
+    variable of a column for messages (SDTM: ``time`` is ``PCDTC``).
+    """
+
+    def __init__(self, frame: pd.DataFrame, file: str, *, labels=None,
+                 fields: dict[str, str] | None = None) -> None:
         self.file = file
         self.frame = frame
+        self.labels = labels
+        self.fields = dict(fields or {})
         self.map: dict[str, tuple[str, str | None]] = {}
         problems = []
         for col in frame.columns:
@@ -62,6 +71,16 @@ class Columns:
             self.map[key] = (col, unit)
         if problems:
             raise PkcalcInputError(problems)
+
+    def where(self, i: int) -> str:
+        """The row in words: ``line 12`` (CSV) or the source row's label."""
+        return str(self.labels[i]) if self.labels is not None else f"line {i + 2}"
+
+    def field(self, name: str) -> str:
+        """The column (or source variable) called ``name`` in messages."""
+        if name in self.fields:
+            return self.fields[name]
+        return str(self.map[name][0]) if name in self.map else name
 
     def has(self, name: str) -> bool:
         return name in self.map
@@ -85,16 +104,23 @@ class Columns:
             problems.extend(Problem(p.message, file=self.file, field=p.field,
                                     expected=p.expected) for p in exc.problems)
             return pd.Series(np.nan, index=self.frame.index), None
-        raw = self.frame[col].astype(str).str.strip()
-        values = pd.to_numeric(raw.where(raw != ""), errors="coerce")
-        bad = values.isna() & (raw != "")
-        bad |= np.isinf(values.fillna(0.0))
+        column = self.frame[col]
+        if pd.api.types.is_numeric_dtype(column) and not pd.api.types.is_bool_dtype(column):
+            values = column.astype(float)       # a table built in memory: numbers already
+            raw = None
+            bad = pd.Series(np.isinf(values.to_numpy()), index=values.index)
+        else:
+            raw = column.astype(str).str.strip()
+            values = pd.to_numeric(raw.where(raw != ""), errors="coerce")
+            bad = values.isna() & (raw != "")
+            bad |= np.isinf(values.fillna(0.0))
+        shown = (lambda i: raw.iloc[i]) if raw is not None else (lambda i: f"{values.iloc[i]:g}")
         if bad.any():
-            lines = (np.flatnonzero(bad.to_numpy()) + 2)[:_MAX_LISTED]
-            examples = ", ".join(f"line {n}: '{raw.iloc[n - 2]}'" for n in lines)
-            more = f" and {int(bad.sum()) - len(lines)} more" if bad.sum() > len(lines) else ""
+            rows = np.flatnonzero(bad.to_numpy())[:_MAX_LISTED]
+            examples = ", ".join(f"{self.where(i)}: '{shown(i)}'" for i in rows)
+            more = f" and {int(bad.sum()) - len(rows)} more" if bad.sum() > len(rows) else ""
             problems.append(Problem(f"text or non-finite values in a numeric column ({examples}"
-                                    f"{more})", file=self.file, field=str(col),
+                                    f"{more})", file=self.file, field=self.field(name),
                                     expected="numbers"))
         factor = spec.factor if spec is not None else 1.0
         canonical = values * factor
@@ -102,11 +128,11 @@ class Columns:
         outside = ~bad & canonical.notna() & (np.isinf(a) | ((a != 0) & (
             (a < NUMERIC_RANGE[0]) | (a > NUMERIC_RANGE[1]))))
         if outside.any():
-            n = int(np.flatnonzero(outside.to_numpy())[0]) + 2
-            problems.append(Problem(f"'{raw.iloc[n - 2]}' (line {n}) is outside the range "
+            i = int(np.flatnonzero(outside.to_numpy())[0])
+            problems.append(Problem(f"'{shown(i)}' ({self.where(i)}) is outside the range "
                                     f"pkcalc computes in (zero, or {NUMERIC_RANGE[0]:g} to "
                                     f"{NUMERIC_RANGE[1]:g} in canonical units)", file=self.file,
-                                    field=str(col), expected="numbers of a realistic size"))
+                                    field=self.field(name), expected="numbers of a realistic size"))
         return canonical, spec
 
 
@@ -117,36 +143,89 @@ def _require(cols: Columns, names: list[str], problems: list[Problem]) -> None:
                                     expected=", ".join(names)))
 
 
+#: Columns that trace a row back to its source (tables built from SDTM carry them); they
+#: are kept in the analysis tables and never read as data.
+TRACE_COLUMNS = frozenset({"source", "usubjid", "pcseq", "exseq", "ecseq", "visit", "pctpt",
+                           "time_basis", "reference_dose", "treatment", "administration",
+                           "specimen", "analyte"})
+
+
 def _warn_unknown(cols: Columns, known: set[str], warnings: list[str]) -> None:
-    unknown = [c for k, (c, _) in cols.map.items() if k not in known]
+    unknown = [c for k, (c, _) in cols.map.items() if k not in known and k not in TRACE_COLUMNS]
     if unknown:
         warnings.append(f"{cols.file}: columns ignored: {', '.join(map(str, unknown))}")
 
 
 def _bool_column(cols: Columns, name: str, problems: list[Problem]) -> pd.Series:
+    column = cols.frame[cols.map[name][0]]
+    if pd.api.types.is_bool_dtype(column):
+        return column.astype(bool)
     raw = cols.text(name).str.lower()
     bad = ~raw.isin(_TRUE | _FALSE)
     if bad.any():
-        lines = (np.flatnonzero(bad.to_numpy()) + 2)[:_MAX_LISTED]
-        problems.append(Problem(f"not true/false at line(s) {', '.join(map(str, lines))}",
-                                file=cols.file, field=name, expected="true or false"))
+        rows = np.flatnonzero(bad.to_numpy())[:_MAX_LISTED]
+        problems.append(Problem(f"not true/false at {', '.join(cols.where(i) for i in rows)}",
+                                file=cols.file, field=cols.field(name),
+                                expected="true or false"))
     return raw.isin(_TRUE)
 
 
 # --------------------------------------------------------------------------- loading
-def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | None = None
-               ) -> Study:
+#: What a level drawn before time zero (the first dose) becomes: ``omit`` leaves a
+#: measurable one out with a warning; ``drug_on_board`` takes it as the level already
+#: present at the first dose (earlier therapy).  Levels below the LLOQ (or zero) before
+#: the first dose are always the zero at the first dose.
+PRE_DOSE_RULES = ("omit", "drug_on_board")
+
+
+def _table(source, what: str) -> Columns:
+    """A study table from a path, a file-like object or a pandas DataFrame (the same
+    rules and messages; a frame's rows are named by their index)."""
+    if isinstance(source, pd.DataFrame):
+        if source.empty:
+            raise PkcalcInputError("the table has no rows", file=f"the {what} frame")
+        frame = source.copy()
+        frame.columns = [str(c) for c in frame.columns]
+        labels = [f"row {ix!r}" if not isinstance(ix, int | np.integer) else f"row {ix}"
+                  for ix in frame.index]
+        return Columns(frame.reset_index(drop=True), f"the {what} frame", labels=labels)
+    if hasattr(source, "read"):
+        from io import StringIO
+
+        text = source.read()
+        if isinstance(text, bytes):
+            try:
+                text = text.decode("utf-8-sig")
+            except UnicodeDecodeError as exc:
+                raise PkcalcInputError(f"is not UTF-8 text (byte at position {exc.start})",
+                                       file=f"the {what} stream") from None
+        frame = pd.read_csv(StringIO(text), dtype=str, keep_default_na=False,
+                            skipinitialspace=True, index_col=False)
+        if frame.empty:
+            raise PkcalcInputError("the table has a header but no rows",
+                                   file=f"the {what} stream")
+        return Columns(frame, f"the {what} stream")
+    if not isinstance(source, str | Path):
+        raise PkcalcInputError(f"got {type(source).__name__}", field=what,
+                               expected="a path, a file-like object or a pandas DataFrame")
+    return Columns(read_table(source), str(source))
+
+
+def load_study(levels, doses, subjects=None, *, pre_dose: str = "omit") -> Study:
     """Read and check the study tables.
 
     Parameters
     ----------
-    levels : path
+    levels : path, file-like or pandas.DataFrame
         ``subject, time [..], concentration [..]``, optional ``lloq [..]``, ``blq``.
-    doses : path
+    doses : path, file-like or pandas.DataFrame
         ``subject, start [..]`` and two of ``amount [..]``, ``rate [..]``,
         ``duration [..]`` (an amount alone is a bolus).
-    subjects : path, optional
+    subjects : path, file-like or pandas.DataFrame, optional
         ``subject, weight [..], ...`` covariates.
+    pre_dose : {"omit", "drug_on_board"}
+        What a measurable level drawn before the first dose becomes
+        (:data:`PRE_DOSE_RULES`).
 
     Returns
     -------
@@ -155,29 +234,33 @@ def load_study(levels: str | Path, doses: str | Path, subjects: str | Path | Non
     Raises
     ------
     PkcalcInputError
-        For unusable files (missing, empty, not CSV, missing columns or units,
+        For unusable tables (missing, empty, not CSV, missing columns or units,
         text in numeric columns).
     """
-    lv = Columns(read_table(levels), str(levels))
-    ds = Columns(read_table(doses), str(doses))
-    sb = None if subjects is None else Columns(read_table(subjects), str(subjects))
-    return study_from_tables(lv, ds, sb)
+    lv = _table(levels, "levels")
+    ds = _table(doses, "doses")
+    sb = None if subjects is None else _table(subjects, "subjects")
+    return study_from_tables(lv, ds, sb, pre_dose=pre_dose)
 
 
 def study_from_tables(lv: Columns, ds: Columns, sb: Columns | None,
-                      failures: Failures | None = None) -> Study:
+                      failures: Failures | None = None, *, pre_dose: str = "omit",
+                      origins: dict[str, str] | None = None) -> Study:
     """A study from tables already read (CSV files, or tables built from SDTM); subjects
-    with problems found earlier can be passed in ``failures``."""
+    with problems found earlier can be passed in ``failures``; ``origins`` gives the
+    clock time of each subject's time zero when the tables hold hours already."""
+    if pre_dose not in PRE_DOSE_RULES:
+        raise PkcalcInputError(f"unknown rule '{pre_dose}'", field="pre_dose",
+                               expected=" or ".join(PRE_DOSE_RULES))
     problems: list[Problem] = []
     warnings: list[str] = []
-    lv_file, ds_file = lv.file, ds.file
     _require(lv, ["subject", "time", "concentration"], problems)
     _require(ds, ["subject", "start"], problems)
     if problems:
         raise PkcalcInputError(problems)
     _warn_unknown(lv, {"subject", "time", "concentration", "lloq", "blq"}, warnings)
     _warn_unknown(ds, {"subject", "start", "amount", "rate", "duration"}, warnings)
-    files = [lv_file, ds_file]
+    files = [lv.file, ds.file]
     covariates: dict[str, dict[str, float]] = {}
     if sb is not None:
         covariates = _read_subjects(sb, warnings)
@@ -186,59 +269,61 @@ def study_from_tables(lv: Columns, ds: Columns, sb: Columns | None,
     dos = _read_doses(ds, problems)
     if ("clock" in lvl) != ("clock" in dos):
         problems.append(Problem("the levels and doses tables must both use clock times "
-                                "(header '[clock]') or both relative times", file=lv_file,
+                                "(header '[clock]') or both relative times", file=lv.file,
                                 field="time", expected="time [clock] with start [clock], or "
                                 "time [h] with start [h]"))
     if problems:
         raise PkcalcInputError(problems)
     fails = failures if failures is not None else Failures()
-    origins = _clock_to_hours(lvl, dos, fails, lv_file) if "clock" in lvl else {}
-    amount, duration = _dose_amounts(dos, covariates, fails, ds_file)
-    blq = _level_checks(lvl, fails, lv_file)
+    if "clock" in lvl:
+        origins = _clock_to_hours(lvl, dos, fails, lv, ds)
+    amount, duration = _dose_amounts(dos, covariates, fails, ds)
+    blq = _level_checks(lvl, fails, lv)
     level_frame = pd.DataFrame({"subject": lvl["subject"], "time": lvl["time"],
                                 "conc": lvl["conc"], "lloq": lvl["lloq"], "blq": blq,
                                 "marked": lvl["blq_mark"],
-                                "row": np.arange(len(lvl["time"])) + 2})
+                                "row": np.arange(len(lvl["time"]))})
     dose_frame = pd.DataFrame({"subject": dos["subject"], "start": dos["start"],
                                "amount": amount, "duration": duration})
-    _cross_checks(level_frame, dose_frame, covariates, fails, warnings, lv_file, ds_file)
-    good = _subjects(level_frame, dose_frame, covariates, fails, lv_file, origins)
+    _cross_checks(level_frame, dose_frame, covariates, fails, warnings, lv, ds)
+    good = _subjects(level_frame, dose_frame, covariates, fails, lv, origins or {}, pre_dose,
+                     warnings)
     return Study(good, fails.as_list(), warnings, files)
 
 
-def _clock_to_hours(lvl, dos, fails: Failures, lv_file: str) -> dict[str, str]:
-    """Clock times -> hours since each subject's first dose (in place); the origins.
+def _clock_to_hours(lvl, dos, fails: Failures, lv: Columns, ds: Columns) -> dict[str, str]:
+    """Clock times -> hours since each subject's first dose (in place); the origins
+    (the first dose's date-time as written, normalised).
 
     A subject whose date-times mix offsets and none is left out.
     """
-    from ..clock import hours_since, same_kind
+    from ..clock import parse_clock
 
-    origins: dict[str, Any] = {}
-    for sid, clock in zip(dos["subject"], dos["clock"], strict=True):
-        if clock is not None and (sid not in origins or _before(clock, origins[sid])):
-            origins[sid] = clock
-    for table in (dos, lvl):
+    d_sec, d_off = dos["clock"].seconds, dos["clock"].offset
+    l_sec, l_off = lvl["clock"].seconds, lvl["clock"].offset
+    d_sub = dos["subject"].to_numpy(object)
+    l_sub = lvl["subject"].to_numpy(object)
+    frame = pd.DataFrame({"subject": np.concatenate([d_sub, l_sub]),
+                          "offset": np.concatenate([d_off, l_off]),
+                          "ok": np.concatenate([~np.isnan(d_sec), ~np.isnan(l_sec)])})
+    kinds = frame[frame["ok"]].groupby("subject")["offset"].agg(["any", "all"])
+    mixed = set(kinds.index[kinds["any"] & ~kinds["all"]])
+    for sid in sorted(mixed):
+        fails(sid, "some date-times have a time-zone offset and some do not: the hours "
+              "between them would be a guess", lv.file, lv.field("time"))
+    starts = pd.DataFrame({"subject": d_sub, "sec": d_sec, "i": np.arange(d_sub.size)})
+    starts = starts[~np.isnan(d_sec)]
+    first = starts.loc[starts.groupby("subject")["sec"].idxmin()]
+    origin_sec = dict(zip(first["subject"], first["sec"], strict=True))
+    texts = ds.text("start").to_numpy(object)
+    origins = {sid: parse_clock(texts[i]).isoformat() for sid, i in
+               zip(first["subject"], first["i"], strict=True) if sid not in mixed}
+    for table, sec, sub in ((dos, d_sec, d_sub), (lvl, l_sec, l_sub)):
         column = "start" if table is dos else "time"
-        values = table[column].to_numpy(float).copy()
-        for i, (sid, clock) in enumerate(zip(table["subject"], table["clock"], strict=True)):
-            if clock is None or sid not in origins:
-                continue
-            try:
-                same_kind([clock, origins[sid]])
-            except PkcalcInputError:
-                fails(sid, "some date-times have a time-zone offset and some do not (line "
-                      f"{i + 2})", lv_file, column)
-                continue
-            values[i] = hours_since(clock, origins[sid])
-        table[column] = pd.Series(values, index=table[column].index)
-    return {sid: o.isoformat() for sid, o in origins.items()}
-
-
-def _before(a, b) -> bool:
-    try:
-        return a < b
-    except TypeError:  # offset and no offset: the subject is refused later
-        return False
+        base = pd.Series(sub).map(origin_sec).to_numpy(float)
+        hours = (sec - base) / 3600.0
+        table[column] = pd.Series(hours, index=table[column].index)
+    return origins
 
 
 class Failures:
@@ -268,13 +353,17 @@ def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, floa
     ids = sb.text("subject")
     table: dict[str, pd.Series] = {}
     for key, (_col, unit) in sb.map.items():
-        if key == "subject":
+        if key == "subject" or key in TRACE_COLUMNS:
             continue
         if key == "weight":
             table["weight"], _ = sb.numeric("weight", "weight", problems)
         elif key == "initial_concentration":
             table[key], _ = sb.numeric(key, "concentration", problems)
         else:
+            column = sb.frame[sb.map[key][0]]
+            if pd.api.types.is_numeric_dtype(column) and not pd.api.types.is_bool_dtype(column):
+                table[key] = column.astype(float)
+                continue
             raw = sb.text(key)
             numeric = pd.to_numeric(raw.where(raw != ""), errors="coerce")
             if unit is not None or numeric.notna().sum() == (raw != "").sum():
@@ -284,16 +373,18 @@ def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, floa
     dup = ids[ids.duplicated()]
     if len(dup):
         problems.append(Problem(f"subject '{dup.iloc[0]}' appears twice", file=sb.file,
-                                field="subject"))
+                                field=sb.field("subject")))
     for key, bad, rule in (("initial_concentration", lambda x: x < 0, "must not be negative"),
                            ("weight", lambda x: x <= 0, "must be positive")):
         if key in table and bad(table[key]).any():
-            line = int(np.flatnonzero(bad(table[key]).to_numpy())[0]) + 2
-            problems.append(Problem(f"{key} {rule} (line {line})", file=sb.file, field=key))
+            i = int(np.flatnonzero(bad(table[key]).to_numpy())[0])
+            problems.append(Problem(f"{key} {rule} ({sb.where(i)})", file=sb.file,
+                                    field=sb.field(key)))
     if problems:
         raise PkcalcInputError(problems)
-    return {sid: {k: (v.iloc[i] if isinstance(v.iloc[i], str) else float(v.iloc[i]))
-                  for k, v in table.items() if not pd.isna(v.iloc[i])}
+    columns = {k: v.to_numpy(object) for k, v in table.items()}
+    return {sid: {k: (v[i] if isinstance(v[i], str) else float(v[i]))
+                  for k, v in columns.items() if not pd.isna(v[i])}
             for i, sid in enumerate(ids)}
 
 
@@ -306,34 +397,28 @@ def _is_clock(cols: Columns, name: str) -> bool:
     return unit is not None and unit.strip().lower() in CLOCK_UNITS
 
 
-def _clock_column(cols: Columns, name: str, problems: list[Problem]) -> list:
-    """Date-times of a clock column (None where a cell is empty or unusable)."""
-    from ..clock import parse_clock
+def _clock_column(cols: Columns, name: str, problems: list[Problem]):
+    """Date-times of a clock column (:class:`~pkcalc.clock.ClockArray`; NaN where a
+    cell is empty or unusable, with the first three problems reported)."""
+    from ..clock import EMPTY, ISO_FORM, MINUTE, parse_clock_array
 
-    out: list = []
-    bad = []
-    for i, text in enumerate(cols.text(name)):
-        if text == "":
-            out.append(None)
-            continue
-        try:
-            out.append(parse_clock(text, field=name))
-        except PkcalcInputError as exc:
-            out.append(None)
-            bad.append((i + 2, exc.problems[0]))
-    for line, problem in bad[:3]:
-        problems.append(Problem(f"{problem.message} (line {line})", file=cols.file,
-                                field=cols.map[name][0], expected=problem.expected))
-    return out
+    text = cols.text(name).to_numpy(object)
+    clock = parse_clock_array(text)
+    bad = np.flatnonzero((clock.precision != EMPTY) & (clock.precision < MINUTE))
+    for i in bad[:3]:
+        problems.append(Problem(f"{clock.why(int(i), text[i])} ({cols.where(int(i))})",
+                                file=cols.file, field=cols.field(name), expected=ISO_FORM))
+    clock.seconds[bad] = np.nan
+    return clock
 
 
-def _read_levels(lv: Columns, problems: list[Problem]) -> dict[str, pd.Series]:
-    """The levels table's columns in canonical units (clock times kept as date-times
+def _read_levels(lv: Columns, problems: list[Problem]) -> dict[str, Any]:
+    """The levels table's columns in canonical units (clock times kept as seconds
     until the subject's first dose is known)."""
     out: dict[str, Any] = {"subject": lv.text("subject")}
     if _is_clock(lv, "time"):
         out["clock"] = _clock_column(lv, "time", problems)
-        out["time"] = pd.Series(np.where([c is None for c in out["clock"]], np.nan, 0.0),
+        out["time"] = pd.Series(np.where(np.isnan(out["clock"].seconds), np.nan, 0.0),
                                 index=lv.frame.index)
     else:
         out["time"], _ = lv.numeric("time", "time", problems)
@@ -344,12 +429,13 @@ def _read_levels(lv: Columns, problems: list[Problem]) -> dict[str, pd.Series]:
     out["blq_mark"] = (_bool_column(lv, "blq", problems) if lv.has("blq")
                        else pd.Series(False, index=index))
     if out["subject"].eq("").any():
-        problems.append(Problem("empty subject at line "
-                                f"{int(np.flatnonzero(out['subject'].eq('').to_numpy())[0]) + 2}",
-                                file=lv.file, field="subject"))
+        i = int(np.flatnonzero(out["subject"].eq("").to_numpy())[0])
+        problems.append(Problem(f"empty subject at {lv.where(i)}", file=lv.file,
+                                field=lv.field("subject")))
     if out["time"].isna().any() and not problems:
-        line = int(np.flatnonzero(out["time"].isna().to_numpy())[0]) + 2
-        problems.append(Problem(f"missing time at line {line}", file=lv.file, field="time"))
+        i = int(np.flatnonzero(out["time"].isna().to_numpy())[0])
+        problems.append(Problem(f"missing time at {lv.where(i)}", file=lv.file,
+                                field=lv.field("time")))
     return out
 
 
@@ -358,7 +444,7 @@ def _read_doses(ds: Columns, problems: list[Problem]) -> dict[str, Any]:
     out: dict[str, Any] = {"subject": ds.text("subject"), "given": {}, "specs": {}}
     if _is_clock(ds, "start"):
         out["clock"] = _clock_column(ds, "start", problems)
-        out["start"] = pd.Series(np.where([c is None for c in out["clock"]], np.nan, 0.0),
+        out["start"] = pd.Series(np.where(np.isnan(out["clock"].seconds), np.nan, 0.0),
                                  index=ds.frame.index)
     else:
         out["start"], _ = ds.numeric("start", "time", problems)
@@ -370,12 +456,13 @@ def _read_doses(ds: Columns, problems: list[Problem]) -> dict[str, Any]:
                                 "duration", file=ds.file, field="amount",
                                 expected="amount [..] and optionally rate [..] or duration [..]"))
     if out["start"].isna().any() and not problems:
-        line = int(np.flatnonzero(out["start"].isna().to_numpy())[0]) + 2
-        problems.append(Problem(f"missing start at line {line}", file=ds.file, field="start"))
+        i = int(np.flatnonzero(out["start"].isna().to_numpy())[0])
+        problems.append(Problem(f"missing start at {ds.where(i)}", file=ds.file,
+                                field=ds.field("start")))
     return out
 
 
-def _dose_amounts(dos: dict[str, Any], covariates, fails: Failures, ds_file: str):
+def _dose_amounts(dos: dict[str, Any], covariates, fails: Failures, ds: Columns):
     """Amount and duration per dose row (per-kg columns times the weight); problems
     per subject."""
     d_subject, given = dos["subject"], dict(dos["given"])
@@ -387,64 +474,107 @@ def _dose_amounts(dos: dict[str, Any], covariates, fails: Failures, ds_file: str
             per_kg_missing |= weight_of.isna()
     amount, duration, dose_problem = _resolve_doses(given)
     for i in np.flatnonzero((dose_problem != "").to_numpy() & ~per_kg_missing.to_numpy()):
-        fails(d_subject.iloc[i], f"{dose_problem.iloc[i]} (line {i + 2})", ds_file)
+        fails(d_subject.iloc[i], f"{dose_problem.iloc[i]} ({ds.where(i)})", ds.file)
     for i in np.flatnonzero(per_kg_missing.to_numpy()):
-        fails(d_subject.iloc[i], f"a per-kg dose needs the subject's weight (line {i + 2}): "
+        fails(d_subject.iloc[i], f"a per-kg dose needs the subject's weight ({ds.where(i)}): "
               + ("give it in the subjects table" if covariates else
-                 "no subjects table with a weight column was given"), ds_file, "weight")
+                 "no subjects table with a weight column was given"), ds.file, "weight")
     for i in np.flatnonzero((dos["start"] < 0).to_numpy()):
-        fails(d_subject.iloc[i], f"negative dose start (line {i + 2})", ds_file, "start")
+        fails(d_subject.iloc[i], f"negative dose start ({ds.where(i)})", ds.file,
+              ds.field("start"))
     return amount, duration
 
 
-def _level_checks(lvl: dict[str, pd.Series], fails: Failures, lv_file: str) -> pd.Series:
+def _level_checks(lvl: dict[str, pd.Series], fails: Failures, lv: Columns) -> pd.Series:
     """BLQ per level (marked, a number under its LLOQ, or empty with an LLOQ) and the
-    level problems per subject."""
-    subject, conc, lloq, mark, time = (lvl[k] for k in ("subject", "conc", "lloq",
-                                                        "blq_mark", "time"))
+    level problems per subject (levels before time zero are pre-dose levels, handled
+    per subject later)."""
+    subject, conc, lloq, mark = (lvl[k] for k in ("subject", "conc", "lloq", "blq_mark"))
     blq = mark | (conc < lloq) | (conc.isna() & lloq.notna())
+    f_blq, f_lloq, f_conc = lv.field("blq"), lv.field("lloq"), lv.field("concentration")
     for i in np.flatnonzero((mark & (conc > lloq)).to_numpy()):
         fails(subject.iloc[i], f"marked BLQ but the level {conc.iloc[i]:g} mg/L is above its "
-              f"LLOQ {lloq.iloc[i]:g} mg/L (line {i + 2})", lv_file, "blq")
+              f"LLOQ {lloq.iloc[i]:g} mg/L ({lv.where(i)})", lv.file, f_blq)
     for i in np.flatnonzero((mark & lloq.isna() & conc.isna()).to_numpy()):
-        fails(subject.iloc[i], f"a BLQ level needs its LLOQ (line {i + 2})", lv_file, "lloq")
+        fails(subject.iloc[i], f"a BLQ level needs its LLOQ ({lv.where(i)})", lv.file, f_lloq)
     for i in np.flatnonzero((conc.isna() & ~blq).to_numpy()):
-        fails(subject.iloc[i], f"missing concentration (line {i + 2}); a level below the "
-              "limit of quantification needs blq = true and its lloq", lv_file, "concentration")
+        fails(subject.iloc[i], f"missing concentration ({lv.where(i)}); a level below the "
+              "limit of quantification needs blq = true and its lloq", lv.file, f_conc)
     for i in np.flatnonzero((conc < 0).to_numpy()):
-        fails(subject.iloc[i], f"negative concentration {conc.iloc[i]:g} mg/L (line {i + 2})",
-              lv_file, "concentration")
-    for i in np.flatnonzero((time < 0).to_numpy()):
-        fails(subject.iloc[i], f"negative time (line {i + 2})", lv_file, "time")
+        fails(subject.iloc[i], f"negative concentration {conc.iloc[i]:g} mg/L ({lv.where(i)})",
+              lv.file, f_conc)
     return blq
 
 
 def _cross_checks(level_frame, dose_frame, covariates, fails: Failures, warnings: list[str],
-                  lv_file: str, ds_file: str) -> None:
+                  lv: Columns, ds: Columns) -> None:
     """Duplicate sample times, and subjects present in one table only."""
     dup = level_frame.duplicated(["subject", "time"], keep=False)
     for sid, rows in level_frame[dup].groupby("subject")["row"]:
-        fails(sid, f"duplicate sample times (lines {', '.join(map(str, rows.tolist()))})",
-              lv_file, "time")
+        fails(sid, f"duplicate sample times ({', '.join(lv.where(int(i)) for i in rows)})",
+              lv.file, lv.field("time"))
     level_ids = set(level_frame["subject"])
     dose_ids = set(dose_frame["subject"])
     for sid in sorted(level_ids - dose_ids):
-        fails(sid, "has levels but no doses", ds_file, "subject")
+        fails(sid, "has levels but no doses", ds.file, ds.field("subject"))
     only_doses = sorted(dose_ids - level_ids)
     if only_doses:
-        warnings.append(f"subjects with doses but no levels (left out): {', '.join(only_doses)}")
+        warnings.append(f"subjects with doses but no levels (left out): "
+                        f"{_listed(only_doses)}")
     if covariates:
         only_cov = sorted(set(covariates) - level_ids)
         if only_cov:
-            warnings.append(f"subjects in the subjects table only: {', '.join(only_cov)}")
+            warnings.append(f"subjects in the subjects table only: {_listed(only_cov)}")
         no_cov = sorted(level_ids - set(covariates))
         if no_cov:
             warnings.append(f"subjects without a row in the subjects table: "
-                            f"{', '.join(no_cov)}")
+                            f"{_listed(no_cov)}")
 
 
-def _subjects(level_frame, dose_frame, covariates, fails: Failures,
-              lv_file: str, origins: dict[str, str] | None = None) -> list[SubjectData]:
+def _listed(names: list[str], most: int = 10) -> str:
+    more = f" and {len(names) - most} more" if len(names) > most else ""
+    return ", ".join(names[:most]) + more
+
+
+def _pre_dose(g: pd.DataFrame, cov: dict, rule: str, lv: Columns, notes: list[str],
+              warnings: list[str], sid: str) -> tuple[pd.DataFrame, float | None]:
+    """Levels before time zero: below the LLOQ (or zero) they are the zero at the first
+    dose; a measurable one is left out with a warning (``omit``) or becomes the drug on
+    board at the first dose (``drug_on_board``).  Returns the levels from time zero on
+    and the drug on board taken from a pre-dose level (None when none)."""
+    pre = (g["time"] < 0).to_numpy()
+    if not pre.any():
+        return g, None
+    p = g[pre]
+    zero = (p["blq"] | (p["conc"] == 0)).to_numpy()
+    if zero.any():
+        notes.append(f"{int(zero.sum())} pre-dose level(s) below the LLOQ or zero: the level "
+                     "is zero at the first dose")
+    measurable = p[~zero]
+    on_board = None
+    if len(measurable):
+        last = measurable.iloc[-1]
+        where = lv.where(int(last["row"]))
+        text = (f"subject '{sid}': measurable pre-dose level {last['conc']:.4g} mg/L "
+                f"{-last['time']:.4g} h before the first dose ({where})")
+        if rule == "drug_on_board" and "initial_concentration" not in cov:
+            on_board = float(last["conc"])
+            notes.append(f"pre-dose level {on_board:.4g} mg/L ({where}) taken as the drug on "
+                         "board at the first dose")
+        elif rule == "drug_on_board":
+            notes.append(f"pre-dose level ({where}) left out: the subjects table gives the "
+                         "initial concentration")
+        else:
+            warnings.append(text + ": left out (drug from earlier therapy?); use the "
+                            "pre-dose rule 'drug_on_board' to take it as the level at the "
+                            "first dose")
+            notes.append(f"{len(measurable)} measurable pre-dose level(s) left out")
+    return g[~pre], on_board
+
+
+def _subjects(level_frame, dose_frame, covariates, fails: Failures, lv: Columns,
+              origins: dict[str, str], pre_dose: str, warnings: list[str]
+              ) -> list[SubjectData]:
     """One SubjectData per subject without problems."""
     good: list[SubjectData] = []
     doses_by = {sid: g for sid, g in dose_frame.groupby("subject", sort=False)}
@@ -452,25 +582,27 @@ def _subjects(level_frame, dose_frame, covariates, fails: Failures,
         if sid in fails:
             continue
         d = doses_by[sid].sort_values("start", kind="stable")
-        notes = []
+        notes: list[str] = []
         if not g["time"].is_monotonic_increasing:
             notes.append("levels were not in time order; sorted by time")
             g = g.sort_values("time", kind="stable")
-        if (g["time"] <= d["start"].min()).all():
-            fails(sid, "no level after the first dose", lv_file, "time")
+        cov = covariates.get(sid, {})
+        g, on_board = _pre_dose(g, cov, pre_dose, lv, notes, warnings, str(sid))
+        if not len(g) or (g["time"] <= d["start"].min()).all():
+            fails(sid, "no level after the first dose", lv.file, lv.field("time"))
             continue
         n_under = int((g["blq"] & ~g["marked"] & g["conc"].notna()).sum())
         if n_under:
             notes.append(f"{n_under} level(s) below their LLOQ treated as BLQ")
-        cov = covariates.get(sid, {})
+        initial = on_board if on_board is not None else cov.get("initial_concentration", 0.0)
         good.append(SubjectData(
             subject=str(sid), time=g["time"].to_numpy(float), conc=g["conc"].to_numpy(float),
             lloq=g["lloq"].to_numpy(float), blq=g["blq"].to_numpy(bool),
             rows=g["row"].to_numpy(int), dose_start=d["start"].to_numpy(float),
             dose_amount=d["amount"].to_numpy(float), dose_duration=d["duration"].to_numpy(float),
             covariates={k: x for k, x in cov.items() if k != "initial_concentration"},
-            notes=tuple(notes), initial_concentration=cov.get("initial_concentration", 0.0),
-            clock_origin=(origins or {}).get(sid)))
+            notes=tuple(notes), initial_concentration=initial,
+            clock_origin=origins.get(sid)))
     return good
 
 

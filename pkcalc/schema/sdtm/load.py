@@ -1,0 +1,312 @@
+"""A study from CDISC SDTM datasets: the choices, the clock, the tables.
+
+What is analysed is chosen explicitly, with safe defaults:
+
+- **analyte** (PCTESTCD): the only one, else ``--analyte``;
+- **specimen** (PCSPEC): the only plasma, serum or blood specimen, else
+  ``--specimen``; rows of other specimens (urine, ...) are counted, never mixed in;
+- **treatment** (EXTRT/ECTRT): the only active (non-placebo) treatment, else
+  ``--treatment``; records of other treatments are counted and never added (their
+  route does not matter); subjects given placebo (by arm, records or zero doses)
+  or only another treatment are reported and do not fail the run;
+- an analyte that is not the treatment by name (a metabolite) is analysed against
+  the treatment's doses with a prominent note: its clearance and volume are
+  apparent.
+
+Time zero of each subject is the start of their first administration of the
+treatment; a level before it is a pre-dose level (see the study tables' rule S6).
+A level whose date-time is too imprecise is left out with its reason (a row
+problem); a dose that cannot be placed leaves its subject out, named.  With
+``strict`` any row problem or subject left out refuses the import instead.
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ...clock import clock_text
+from ...core import Study
+from ...errors import PkcalcInputError, Problem
+from ..study import PRE_DOSE_RULES, Columns, Failures, study_from_tables
+from .concentrations import PC_VARIABLES, map_levels
+from .datasets import Dataset, find_datasets, frame_dataset, read_dataset
+from .exposure import EXPOSURE_VARIABLES, map_doses
+from .log import ImportLog
+from .subjects import DM_VARIABLES, LB_VARIABLES, VS_VARIABLES, arm_placebo, map_subjects
+
+__all__ = ["TIME_BASES", "export_tables", "load_sdtm"]
+
+TIME_BASES = ("actual", "nominal")
+_WANTED = {"pc": PC_VARIABLES, "ex": EXPOSURE_VARIABLES, "ec": EXPOSURE_VARIABLES,
+           "vs": VS_VARIABLES, "dm": DM_VARIABLES, "lb": LB_VARIABLES}
+
+
+def _datasets(source, log: ImportLog) -> dict[str, Dataset]:
+    """The datasets of a folder, or given as DataFrames (``{"pc": frame, ...}``)."""
+    out: dict[str, Dataset] = {}
+    if isinstance(source, dict):
+        log.folder = "DataFrames"
+        unknown = sorted(set(map(str.lower, source)) - set(_WANTED))
+        if unknown:
+            raise PkcalcInputError(f"unknown dataset(s) {', '.join(unknown)}", field="datasets",
+                                   expected=", ".join(sorted(_WANTED)))
+        for domain, frame in source.items():
+            d = domain.lower()
+            out[d] = frame_dataset(frame, d, _WANTED[d])
+    else:
+        folder = Path(source)
+        if not folder.is_dir():
+            raise PkcalcInputError("is not a folder", file=str(folder),
+                                   expected="a folder holding pc and ex (.xpt, .json or .csv)")
+        paths, notes = find_datasets(folder, set(_WANTED))
+        log.notes += notes
+        problems = []
+        for domain, path in paths.items():
+            try:
+                out[domain] = read_dataset(path, domain, _WANTED[domain])
+            except PkcalcInputError as exc:
+                problems += exc.located(file=str(path)).problems
+        if problems:
+            raise PkcalcInputError(problems)
+    for domain in ("pc",):
+        if domain not in out:
+            raise PkcalcInputError(f"no {domain.upper()} dataset", file=log.folder,
+                                   expected=f"{domain}.xpt, {domain}.json or {domain}.csv")
+    if "ex" not in out and "ec" not in out:
+        raise PkcalcInputError("no EX (or EC) dataset", file=log.folder,
+                               expected="ex.xpt, ex.json or ex.csv")
+    for d, ds in out.items():
+        log.datasets[d] = ds.name
+        log.read[d] = len(ds)
+        log.notes += ds.notes
+    return out
+
+
+def _words(text: str) -> str:
+    return re.sub(r"[^A-Z0-9]", "", str(text).upper())
+
+
+def _apparent(log: ImportLog) -> None:
+    """A prominent note when the analyte is not the dosed treatment by name."""
+    if not log.treatment or not log.analyte:
+        return
+    trt = _words(log.treatment)
+    names = [_words(log.analyte), _words(log.analyte_name)]
+    if any(n and (trt.startswith(n) or n.startswith(trt)) for n in names):
+        return
+    shown = log.analyte + (f" ({log.analyte_name})" if log.analyte_name else "")
+    log.apparent = (f"the analyte {shown} is not the dosed treatment {log.treatment} by name "
+                    "(a metabolite?): its clearance and volume are apparent values relative "
+                    f"to the dose of {log.treatment}")
+
+
+def load_sdtm(source, analyte: str | None = None, *, specimen: str | None = None,
+              treatment: str | None = None, times: str = "actual",
+              infusion_duration: float | None = None, pre_dose: str = "omit",
+              strict: bool = False) -> Study:
+    """A study from the SDTM datasets of a folder (PC and EX or EC; DM, VS, LB when
+    present), or from DataFrames ``{"pc": ..., "ex": ..., ...}``.
+
+    Parameters
+    ----------
+    source : path or dict of pandas.DataFrame
+    analyte : str, optional
+        PCTESTCD (needed when PC holds several).
+    specimen : str, optional
+        PCSPEC (default: the only plasma, serum or blood specimen).
+    treatment : str, optional
+        EXTRT (default: the only active treatment).
+    times : {"actual", "nominal"}
+        Sample times from PCDTC, or from PCRFTDTC + PCELTM where both are given.
+    infusion_duration : float, optional, h
+        Length of each administration when EX gives neither EXDUR nor a usable end.
+    pre_dose : {"omit", "drug_on_board"}
+        What a measurable level before the first dose becomes (rule S6).
+    strict : bool
+        Refuse the import when any row is left out as a problem or any subject fails.
+
+    Returns
+    -------
+    Study
+        With ``import_report`` (dict), ``import_lines`` (text) and ``tables`` (the
+        analysis tables with their source rows).
+
+    Raises
+    ------
+    PkcalcInputError
+        Unusable datasets, ambiguous choices, or (``strict``) any problem.
+    """
+    if times not in TIME_BASES:
+        raise PkcalcInputError(f"unknown time basis '{times}'", field="times",
+                               expected=" or ".join(TIME_BASES))
+    if pre_dose not in PRE_DOSE_RULES:
+        raise PkcalcInputError(f"unknown rule '{pre_dose}'", field="pre_dose",
+                               expected=" or ".join(PRE_DOSE_RULES))
+    if infusion_duration is not None and not (0 <= infusion_duration < 1e4):
+        raise PkcalcInputError("must be a length from 0 h", field="infusion_duration")
+    log = ImportLog(str(source) if not isinstance(source, dict) else "DataFrames")
+    data = _datasets(source, log)
+    exposure = data.get("ec") or data["ex"]
+    if "ec" in data and "ex" in data:
+        log.notes.append("EC (exposure as collected) gives the administrations; EX is not used")
+        log.used["ex"] = 0
+    fails = Failures()
+    placebo_arm = arm_placebo(data.get("dm"))
+    doses, not_dosed, dose_warnings = map_doses(exposure, log, fails, treatment=treatment,
+                                                infusion_duration=infusion_duration,
+                                                arm_placebo=placebo_arm)
+    log.placebo = sorted(s for s, why in not_dosed.items() if why.startswith("placebo"))
+    levels = map_levels(data["pc"], log, analyte=analyte, specimen=specimen, times=times,
+                        placebo=set(not_dosed))
+    _apparent(log)
+    first = doses.groupby("subject")["sec"].min().to_dict() if len(doses) else {}
+    subjects, weights = map_subjects(data.get("dm"), data.get("vs"), data.get("lb"), log,
+                                     first)
+    _per_kg(doses, weights, fails, exposure)
+    origins = _clock(levels, doses, fails, data["pc"], exposure, log, times)
+    _unmatched(levels, doses, fails, exposure, not_dosed)
+    study = _study(levels, doses, subjects, data, exposure, fails, origins, pre_dose, log)
+    study.warnings += dose_warnings + log.problems
+    if log.apparent:
+        study.warnings.insert(0, log.apparent.capitalize())
+    if strict:
+        _strict(study, log)
+    study.import_report = log.as_dict()
+    study.import_lines = log.lines()
+    study.tables = _tables(levels, doses, subjects, study)
+    return study
+
+
+def _per_kg(doses: pd.DataFrame, weights: dict[str, float], fails: Failures,
+            ex: Dataset) -> None:
+    """mg/kg amounts times the subject's weight (a subject without one fails)."""
+    if not doses["per_kg"].any():
+        return
+    w = doses["subject"].map(weights).to_numpy(float)
+    need = doses["per_kg"].to_numpy(bool)
+    for sid, src in doses.loc[need & np.isnan(w), ["subject", "source"]].itertuples(index=False):
+        if sid not in fails:
+            fails(sid, f"a dose per kg needs the body weight (VS WEIGHT, baseline or on or "
+                  f"before the first dose) ({src})", ex.name, f"{ex.domain.upper()}DOSU")
+    doses["amount"] = np.where(need, doses["amount"] * w, doses["amount"])
+
+
+def _clock(levels, doses, fails: Failures, pc: Dataset, ex: Dataset, log: ImportLog,
+           times: str) -> dict[str, str]:
+    """Hours since each subject's first administration; the origins as ISO 8601 text."""
+    origins: dict[str, str] = {}
+    if doses.empty:
+        levels["hours"] = np.nan
+        doses["hours"] = np.nan
+        return origins
+    first = doses.loc[doses.groupby("subject")["sec"].idxmin()]
+    origin = dict(zip(first["subject"], first["sec"], strict=True))
+    kinds = pd.concat([levels[["subject", "offset"]], doses[["subject", "offset"]]])
+    mixed = kinds.groupby("subject")["offset"].agg(lambda x: x.any() and not x.all())
+    for sid in mixed.index[mixed]:
+        fails(sid, "some date-times have a time-zone offset and some do not: the hours between "
+              "them would be a guess", pc.name, "PCDTC")
+    for sid, text in zip(first["subject"], first["clock"], strict=True):
+        origins[sid] = text
+    doses["hours"] = (doses["sec"] - doses["subject"].map(origin)) / 3600.0
+    at = np.where(np.isnan(levels["nominal_sec"]), levels["sec"], levels["nominal_sec"])
+    levels["hours"] = (at - levels["subject"].map(origin).to_numpy(float)) / 3600.0
+    trt = log.treatment or "the treatment"
+    log.time_origin = (f"each subject's first administration of {trt} "
+                       f"({ex.domain.upper()}STDTC); levels before it are pre-dose levels")
+    if times == "actual":
+        log.time_basis = {"actual (PCDTC)": len(levels)}
+    return origins
+
+
+def _unmatched(levels, doses, fails: Failures, ex: Dataset, not_dosed) -> None:
+    have = set(doses["subject"])
+    for sid in sorted(set(levels["subject"]) - have - set(not_dosed)):
+        if sid not in fails:
+            fails(sid, "has PC levels but no exposure records of the analysed treatment",
+                  ex.name, "USUBJID")
+
+
+def _study(levels, doses, subjects, data, ex: Dataset, fails, origins, pre_dose,
+           log: ImportLog) -> Study:
+    lv_frame = pd.DataFrame({
+        "subject": levels["subject"], "time [h]": levels["hours"],
+        "concentration [mg/L]": levels["conc"], "lloq [mg/L]": levels["lloq"],
+        "blq": levels["blq"].astype(bool), "source": levels["source"]})
+    p = ex.domain.upper()
+    ds_frame = pd.DataFrame({"subject": doses["subject"], "start [h]": doses["hours"],
+                             "amount [mg]": doses["amount"], "duration [h]": doses["duration"],
+                             "source": doses["source"]})
+    lv = Columns(lv_frame, data["pc"].name, labels=list(levels["source"]),
+                 fields={"subject": "USUBJID", "time": "PCDTC", "concentration": "PCSTRESN",
+                         "lloq": "PCLLOQ", "blq": "PCSTRESC"})
+    ds = Columns(ds_frame, ex.name, labels=list(doses["source"]),
+                 fields={"subject": "USUBJID", "start": f"{p}STDTC", "amount": f"{p}DOSE",
+                         "duration": f"{p}ENDTC / {p}DUR"})
+    sb = None
+    if len(subjects):
+        names = [data[d].name for d in ("dm", "vs", "lb") if d in data]
+        sb = Columns(subjects, " / ".join(names), labels=[f"subject '{s}'" for s in
+                                                          subjects["subject"]])
+    keep = levels["subject"].isin(set(doses["subject"]) - set(fails.by_subject))
+    if not keep.all():
+        lv = Columns(lv_frame[keep].reset_index(drop=True), lv.file,
+                     labels=list(levels.loc[keep, "source"]), fields=lv.fields)
+    if lv.frame.empty:
+        raise PkcalcInputError([p for _, err in fails.as_list() for p in err.problems]
+                               + [Problem(line) for line in log.problems] + [Problem(
+                                   "no level of the analysed analyte, specimen and treatment "
+                                   "is left to analyse", file=data["pc"].name,
+                                   expected="levels of subjects given the treatment")])
+    study = study_from_tables(lv, ds, sb, fails, pre_dose=pre_dose,
+                              origins={s: o for s, o in origins.items()})
+    study.files = [d.path or d.name for d in data.values()]
+    if sb is not None:  # the subjects table's own warnings (subjects in DM only) are noise
+        study.warnings = [w for w in study.warnings if "subjects table" not in w]
+    return study
+
+
+def _strict(study: Study, log: ImportLog) -> None:
+    problems = [Problem(line) for line in log.problems]
+    problems += [p for _, err in study.failures for p in err.problems]
+    if problems:
+        raise PkcalcInputError([*problems, Problem(
+            "refused because strict: without --strict these rows and subjects are left out "
+            "and the rest analysed")])
+
+
+def _tables(levels, doses, subjects, study: Study) -> dict[str, pd.DataFrame]:
+    """The analysis tables (clock and relative times, with the source rows)."""
+    lv = pd.DataFrame({
+        "subject": levels["subject"], "time [clock]": levels["clock"],
+        "time [h]": levels["hours"], "concentration [mg/L]": levels["conc"],
+        "lloq [mg/L]": levels["lloq"], "blq": np.where(levels["blq"], "true", "false"),
+        "source": levels["source"], "pcseq": levels["pcseq"], "visit": levels["visit"],
+        "pctpt": levels["pctpt"], "time_basis": levels["time_basis"],
+        "reference_dose": levels["reference_dose"]})
+    ds = pd.DataFrame({
+        "subject": doses["subject"], "start [clock]": doses["clock"],
+        "start [h]": doses["hours"], "amount [mg]": doses["amount"],
+        "duration [h]": doses["duration"], "source": doses["source"],
+        "exseq": doses["seq"], "treatment": doses["treatment"],
+        "administration": doses["administration"]})
+    if levels["time_basis"].eq("nominal").any():  # the clock column holds the nominal time
+        nominal = levels["time_basis"].eq("nominal").to_numpy()
+        lv.loc[nominal, "time [clock]"] = [clock_text(s) for s in
+                                           levels.loc[nominal, "nominal_sec"]]
+    analysed = {s.subject for s in study.subjects}
+    out = {"levels": lv[lv["subject"].isin(analysed)].reset_index(drop=True),
+           "doses": ds[ds["subject"].isin(analysed)].reset_index(drop=True)}
+    if len(subjects):
+        out["subjects"] = subjects[subjects["subject"].isin(analysed)].reset_index(drop=True)
+    return out
+
+
+def export_tables(study: Study) -> dict[str, pd.DataFrame]:
+    """The analysis-ready tables of a study read from SDTM, with hours since each
+    subject's first dose beside the clock times (rerun them with ``--levels`` etc.)."""
+    return {k: v.copy() for k, v in study.tables.items() if len(v)}
