@@ -23,7 +23,7 @@ from .datasets import Dataset
 from .log import ImportLog
 from .terms import SYSTEMIC_SPECIMENS, iso_duration_hours
 
-__all__ = ["PC_VARIABLES", "map_levels"]
+__all__ = ["PC_VARIABLES", "choose_analyte", "map_levels"]
 
 PC_VARIABLES = {"USUBJID", "PCSEQ", "PCTESTCD", "PCTEST", "PCSPEC", "PCSTAT", "PCDTC",
                 "PCSTRESN", "PCSTRESC", "PCSTRESU", "PCLLOQ", "PCRFTDTC", "PCELTM",
@@ -32,7 +32,12 @@ _BLQ_TEXT = re.compile(r"^\s*(<|BLQ|BQL|LLOQ|NQ|BELOW|NOT QUANTIFIABLE)", re.IGN
 _REQUIRED = ("USUBJID", "PCTESTCD", "PCSTRESN", "PCSTRESU", "PCDTC")
 
 
-def _choose_analyte(pc: Dataset, analyte: str | None, log: ImportLog) -> str:
+def choose_analyte(pc: Dataset, analyte: str | None, log: ImportLog) -> str:
+    """The analysed PCTESTCD (recorded in the log with its PCTEST name)."""
+    missing = [v for v in _REQUIRED if not pc.has(v)]
+    if missing:
+        raise PkcalcInputError(f"variable(s) {', '.join(missing)} missing", file=pc.name,
+                               expected=", ".join(_REQUIRED))
     codes = pc.text("PCTESTCD")
     names = dict(zip(codes, pc.text("PCTEST"), strict=True)) if pc.has("PCTEST") else {}
     analytes = sorted(set(codes) - {""})
@@ -95,7 +100,7 @@ def _choose_specimen(pc: Dataset, rows: Rows, of_analyte: np.ndarray, specimen: 
     rows.drop(spec != chosen, "another specimen (PCSPEC), not analysed")
 
 
-def map_levels(pc: Dataset, log: ImportLog, *, analyte: str | None, specimen: str | None,
+def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | None,
                times: str, placebo: set[str]) -> pd.DataFrame:
     """The analyte's levels, one row per PC row kept.
 
@@ -105,14 +110,9 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str | None, specimen: st
     (PCRFTDTC as written), ``nominal_sec`` (PCRFTDTC + PCELTM, NaN when not used),
     ``time_basis``.
     """
-    missing = [v for v in _REQUIRED if not pc.has(v)]
-    if missing:
-        raise PkcalcInputError(f"variable(s) {', '.join(missing)} missing", file=pc.name,
-                               expected=", ".join(_REQUIRED))
     subject = pc.text("USUBJID")
     rows = Rows(pc, log, subject)
-    chosen = _choose_analyte(pc, analyte, log)
-    of_analyte = (pc.text("PCTESTCD") == chosen).to_numpy()
+    of_analyte = (pc.text("PCTESTCD") == analyte).to_numpy()
     rows.drop(~of_analyte, "another analyte (PCTESTCD)")
     _choose_specimen(pc, rows, of_analyte, specimen, log)
     rows.drop(pc.text("PCSTAT").str.upper().to_numpy(object) == "NOT DONE",

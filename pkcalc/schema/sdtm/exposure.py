@@ -34,6 +34,7 @@ from .terms import (
     IV_ROUTES,
     PLACEBO,
     SPACING_NOTE,
+    analyte_is_treatment,
     frequency_hours,
     iso_duration_hours,
 )
@@ -50,7 +51,8 @@ MAX_ADMINISTRATIONS = 5000
 def _treatment(ds: Dataset, p: str, rows: Rows, treatment: str | None, log: ImportLog
                ) -> tuple[str | None, np.ndarray]:
     """The analysed treatment and the mask of its records (other treatments and placebo
-    records are counted, never mixed in)."""
+    records are counted, never mixed in).  Without ``treatment``: the only active one,
+    else the only one named like the analyte, else a refusal listing them."""
     if not ds.has(f"{p}TRT"):
         if treatment is not None:
             raise PkcalcInputError(f"{p} has no {p}TRT to choose '{treatment}' from",
@@ -70,6 +72,11 @@ def _treatment(ds: Dataset, p: str, rows: Rows, treatment: str | None, log: Impo
         chosen = match[0]
     elif len(active) == 1:
         chosen = active[0]
+    elif len(like := [t for t in active if analyte_is_treatment(t, log.analyte or "",
+                                                                 log.analyte_name)]) == 1:
+        chosen = like[0]
+        log.notes.append(f"{p} holds several treatments ({', '.join(active)}): {chosen} is "
+                         f"analysed, named like the analyte {log.analyte}")
     elif not active:
         raise PkcalcInputError(f"no active treatment in {p} (only {', '.join(names) or 'none'})",
                                file=ds.name, field=f"{p}TRT")

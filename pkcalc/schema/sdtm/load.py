@@ -22,7 +22,6 @@ problem); a dose that cannot be placed leaves its subject out, named.  With
 
 from __future__ import annotations
 
-import re
 from pathlib import Path
 
 import numpy as np
@@ -32,11 +31,12 @@ from ...clock import clock_text
 from ...core import Study
 from ...errors import PkcalcInputError, Problem
 from ..study import PRE_DOSE_RULES, Columns, Failures, study_from_tables
-from .concentrations import PC_VARIABLES, map_levels
+from .concentrations import PC_VARIABLES, choose_analyte, map_levels
 from .datasets import Dataset, find_datasets, frame_dataset, read_dataset
 from .exposure import EXPOSURE_VARIABLES, map_doses
 from .log import ImportLog
 from .subjects import DM_VARIABLES, LB_VARIABLES, VS_VARIABLES, arm_placebo, map_subjects
+from .terms import analyte_is_treatment
 
 __all__ = ["TIME_BASES", "export_tables", "load_sdtm"]
 
@@ -86,17 +86,11 @@ def _datasets(source, log: ImportLog) -> dict[str, Dataset]:
     return out
 
 
-def _words(text: str) -> str:
-    return re.sub(r"[^A-Z0-9]", "", str(text).upper())
-
-
 def _apparent(log: ImportLog) -> None:
     """A prominent note when the analyte is not the dosed treatment by name."""
     if not log.treatment or not log.analyte:
         return
-    trt = _words(log.treatment)
-    names = [_words(log.analyte), _words(log.analyte_name)]
-    if any(n and (trt.startswith(n) or n.startswith(trt)) for n in names):
+    if analyte_is_treatment(log.treatment, log.analyte, log.analyte_name):
         return
     shown = log.analyte + (f" ({log.analyte_name})" if log.analyte_name else "")
     log.apparent = (f"the analyte {shown} is not the dosed treatment {log.treatment} by name "
@@ -155,12 +149,13 @@ def load_sdtm(source, analyte: str | None = None, *, specimen: str | None = None
         log.notes.append("EC (exposure as collected) gives the administrations; EX is not used")
         log.used["ex"] = 0
     fails = Failures()
+    chosen = choose_analyte(data["pc"], analyte, log)
     placebo_arm = arm_placebo(data.get("dm"))
     doses, not_dosed, dose_warnings = map_doses(exposure, log, fails, treatment=treatment,
                                                 infusion_duration=infusion_duration,
                                                 arm_placebo=placebo_arm)
     log.placebo = sorted(s for s, why in not_dosed.items() if why.startswith("placebo"))
-    levels = map_levels(data["pc"], log, analyte=analyte, specimen=specimen, times=times,
+    levels = map_levels(data["pc"], log, analyte=chosen, specimen=specimen, times=times,
                         placebo=set(not_dosed))
     _apparent(log)
     first = doses.groupby("subject")["sec"].min().to_dict() if len(doses) else {}
@@ -169,10 +164,11 @@ def load_sdtm(source, analyte: str | None = None, *, specimen: str | None = None
     _per_kg(doses, weights, fails, exposure)
     origins = _clock(levels, doses, fails, data["pc"], exposure, log, times)
     _unmatched(levels, doses, fails, exposure, not_dosed)
+    _count_pre_dose(levels, log, pre_dose)
     study = _study(levels, doses, subjects, data, exposure, fails, origins, pre_dose, log)
     study.warnings += dose_warnings + log.problems
     if log.apparent:
-        study.warnings.insert(0, log.apparent.capitalize())
+        study.warnings.insert(0, log.apparent[0].upper() + log.apparent[1:])
     if strict:
         _strict(study, log)
     study.import_report = log.as_dict()
@@ -223,6 +219,20 @@ def _clock(levels, doses, fails: Failures, pc: Dataset, ex: Dataset, log: Import
     return origins
 
 
+def _count_pre_dose(levels: pd.DataFrame, log: ImportLog, rule: str) -> None:
+    pre = (levels["hours"] < 0).to_numpy()
+    if not pre.any():
+        return
+    zero = pre & (levels["blq"].to_numpy(bool) | (levels["conc"].to_numpy(float) == 0))
+    text = (f"{int(pre.sum())} pre-dose level(s) (before the subject's first dose): "
+            f"{int(zero.sum())} below the LLOQ or zero, the zero at the first dose")
+    if (pre & ~zero).any():
+        text += (f"; {int((pre & ~zero).sum())} measurable, "
+                 + ("taken as drug on board" if rule == "drug_on_board" else
+                    "left out with a warning"))
+    log.notes.append(text)
+
+
 def _unmatched(levels, doses, fails: Failures, ex: Dataset, not_dosed) -> None:
     have = set(doses["subject"])
     for sid in sorted(set(levels["subject"]) - have - set(not_dosed)):
@@ -257,11 +267,11 @@ def _study(levels, doses, subjects, data, ex: Dataset, fails, origins, pre_dose,
         lv = Columns(lv_frame[keep].reset_index(drop=True), lv.file,
                      labels=list(levels.loc[keep, "source"]), fields=lv.fields)
     if lv.frame.empty:
-        raise PkcalcInputError([p for _, err in fails.as_list() for p in err.problems]
-                               + [Problem(line) for line in log.problems] + [Problem(
-                                   "no level of the analysed analyte, specimen and treatment "
-                                   "is left to analyse", file=data["pc"].name,
-                                   expected="levels of subjects given the treatment")])
+        found = ([p for _, err in fails.as_list() for p in err.problems]
+                 + [Problem(line) for line in log.problems])
+        raise PkcalcInputError(found or Problem(
+            "no level of the analysed analyte, specimen and treatment is left to analyse",
+            file=data["pc"].name, expected="levels of subjects given the treatment"))
     study = study_from_tables(lv, ds, sb, fails, pre_dose=pre_dose,
                               origins={s: o for s, o in origins.items()})
     study.files = [d.path or d.name for d in data.values()]

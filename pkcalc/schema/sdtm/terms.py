@@ -29,6 +29,7 @@ __all__ = [
     "IV_ROUTES",
     "PLACEBO",
     "SYSTEMIC_SPECIMENS",
+    "analyte_is_treatment",
     "frequency_hours",
     "iso_duration_hours",
     "normalise_unit",
@@ -148,3 +149,25 @@ def normalise_unit(text: str) -> str:
 
     s = _TOKEN.sub(word, s)
     return re.sub(r"([A-Za-z])([23])\b", r"\1**\2", s)
+
+
+def _key(x: str) -> str:
+    return re.sub(r"[^A-Z0-9]", "", str(x).upper())
+
+
+def analyte_is_treatment(treatment: str, code: str, name: str = "") -> bool:
+    """True when the analyte (PCTESTCD ``code``, PCTEST ``name``) is the dosed treatment
+    by name: the same name (letters and digits), or the code an abbreviation that starts
+    the treatment's name; an analyte whose name says metabolite never is.
+
+    Examples
+    --------
+    >>> analyte_is_treatment("ORVEXAMIDE", "ORVX", "Orvexamide")
+    True
+    >>> analyte_is_treatment("ORVEXAMIDE", "ORVM1", "Orvexamide metabolite M1")
+    False
+    """
+    if "METABOLITE" in str(name).upper():
+        return False
+    t = _key(treatment)
+    return bool(t) and (_key(name) == t or (bool(_key(code)) and t.startswith(_key(code))))
