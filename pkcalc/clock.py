@@ -171,12 +171,15 @@ class ClockArray:
         return f"'{text}': {PRECISION_WORDS[p]}"
 
 
-_PLAIN = r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(?::\d{2}(?:\.\d{1,6})?)?"
+_PLAIN = (("%Y-%m-%dT%H:%M", r"^\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}$"),
+          ("%Y-%m-%dT%H:%M:%S", r"^\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}:\d{2}$"))
 
 
 def parse_clock_array(texts) -> ClockArray:
-    """Parse many ISO 8601 date-times (each distinct text once; the plain form without
-    an offset is converted by numpy's ISO 8601 parser, the rest one by one).
+    """Parse many ISO 8601 date-times: the plain forms without an offset
+    (``2026-03-04T08:15``, with seconds, ``T`` or a space) by pyarrow's parser, checked
+    so that an impossible date (30 February) is not rolled over; everything else one by
+    one (each distinct text once).
 
     Examples
     --------
@@ -187,28 +190,40 @@ def parse_clock_array(texts) -> ClockArray:
     8.25
     """
     import pandas as pd
+    import pyarrow as pa
+    import pyarrow.compute as pc
 
-    series = pd.Series(texts, dtype=object).fillna("").astype(str).str.strip()
-    codes, uniq = pd.factorize(series)
-    unique = pd.Series(uniq, dtype=object)
-    n = len(unique)
+    if isinstance(texts, pd.Series):
+        arr = pa.array(texts.astype("string[pyarrow]"), type=pa.string())
+    else:
+        arr = pa.array(["" if t is None else str(t) for t in texts], type=pa.string())
+    arr = pc.utf8_trim_whitespace(pc.fill_null(arr, ""))
+    n = len(arr)
     seconds = np.full(n, np.nan)
     offset = np.zeros(n, bool)
-    precision = np.zeros(n, int)
-    fast = (unique.str.fullmatch(_PLAIN).to_numpy(bool).copy() if n
-            else np.zeros(0, bool))
-    if fast.any():
-        values = unique[fast].str.replace(" ", "T", regex=False).to_numpy(str)
-        try:
-            stamps = np.array(values, dtype="datetime64[us]")
-        except ValueError:  # an impossible date among them: every one on its own
-            fast[:] = False
-        else:
-            seconds[fast] = stamps.astype(np.int64) / 1e6
-            precision[fast] = MINUTE
-    for i in np.flatnonzero(~fast):
-        seconds[i], offset[i], precision[i] = _one(unique.iloc[i])
-    return ClockArray(seconds[codes], offset[codes], precision[codes])
+    precision = np.full(n, -1, dtype=int)
+    dashed = pc.replace_substring(arr, " ", "T", max_replacements=1)
+    for fmt, pattern in _PLAIN:
+        match = pc.match_substring_regex(arr, pattern)
+        stamps = pc.strptime(pc.if_else(match, dashed, pa.scalar(None, pa.string())),
+                             format=fmt, unit="s", error_is_null=True)
+        day = pc.cast(pc.if_else(match, pc.utf8_slice_codeunits(arr, 8, 10), "00"),
+                      pa.int64())
+        same_day = pc.equal(pc.day(stamps), day)
+        ok = pc.fill_null(pc.and_(match, same_day), False).to_numpy(zero_copy_only=False)
+        where = ok & (precision < 0)
+        seconds[where] = pc.cast(stamps, pa.int64()).to_numpy(zero_copy_only=False)[where]
+        precision[where] = MINUTE
+    rest = np.flatnonzero(precision < 0)
+    if rest.size:
+        values = pd.Series(arr.take(pa.array(rest)).to_numpy(zero_copy_only=False),
+                           dtype=object)
+        codes, uniq = pd.factorize(values)
+        parsed = [_one(u) for u in uniq]
+        for j, (sec, off, prec) in enumerate(parsed):
+            at = rest[codes == j]
+            seconds[at], offset[at], precision[at] = sec, off, prec
+    return ClockArray(seconds, offset, precision)
 
 
 def clock_text(seconds: float, offset: bool = False) -> str:

@@ -74,7 +74,9 @@ class Columns:
 
     def where(self, i: int) -> str:
         """The row in words: ``line 12`` (CSV) or the source row's label."""
-        return str(self.labels[i]) if self.labels is not None else f"line {i + 2}"
+        if self.labels is None:
+            return f"line {i + 2}"
+        return str(self.labels.iloc[i] if hasattr(self.labels, "iloc") else self.labels[i])
 
     def field(self, name: str) -> str:
         """The column (or source variable) called ``name`` in messages."""
@@ -513,8 +515,8 @@ def _cross_checks(level_frame, dose_frame, covariates, fails: Failures, warnings
     for sid, rows in level_frame[dup].groupby("subject")["row"]:
         fails(sid, f"duplicate sample times ({', '.join(lv.where(int(i)) for i in rows)})",
               lv.file, lv.field("time"))
-    level_ids = set(level_frame["subject"])
-    dose_ids = set(dose_frame["subject"])
+    level_ids = set(level_frame["subject"].unique())
+    dose_ids = set(dose_frame["subject"].unique())
     for sid in sorted(level_ids - dose_ids):
         fails(sid, "has levels but no doses", ds.file, ds.field("subject"))
     only_doses = sorted(dose_ids - level_ids)
@@ -536,70 +538,94 @@ def _listed(names: list[str], most: int = 10) -> str:
     return ", ".join(names[:most]) + more
 
 
-def _pre_dose(g: pd.DataFrame, cov: dict, rule: str, lv: Columns, notes: list[str],
-              warnings: list[str], sid: str) -> tuple[pd.DataFrame, float | None]:
+def _pre_dose(sid: str, t, c, blq, rows, cov: dict, rule: str, lv: Columns,
+              notes: list[str], warnings: list[str]) -> tuple[np.ndarray, float | None]:
     """Levels before time zero: below the LLOQ (or zero) they are the zero at the first
     dose; a measurable one is left out with a warning (``omit``) or becomes the drug on
-    board at the first dose (``drug_on_board``).  Returns the levels from time zero on
-    and the drug on board taken from a pre-dose level (None when none)."""
-    pre = (g["time"] < 0).to_numpy()
+    board at the first dose (``drug_on_board``).  Returns the mask of the levels kept
+    (from time zero on) and the drug on board taken from a pre-dose level (None when
+    none)."""
+    pre = t < 0
     if not pre.any():
-        return g, None
-    p = g[pre]
-    zero = (p["blq"] | (p["conc"] == 0)).to_numpy()
+        return ~pre, None
+    zero = pre & (blq | (c == 0))
     if zero.any():
         notes.append(f"{int(zero.sum())} pre-dose level(s) below the LLOQ or zero: the level "
                      "is zero at the first dose")
-    measurable = p[~zero]
+    measurable = np.flatnonzero(pre & ~zero)
     on_board = None
-    if len(measurable):
-        last = measurable.iloc[-1]
-        where = lv.where(int(last["row"]))
-        text = (f"subject '{sid}': measurable pre-dose level {last['conc']:.4g} mg/L "
-                f"{-last['time']:.4g} h before the first dose ({where})")
+    if measurable.size:
+        j = int(measurable[-1])
+        where = lv.where(int(rows[j]))
         if rule == "drug_on_board" and "initial_concentration" not in cov:
-            on_board = float(last["conc"])
+            on_board = float(c[j])
             notes.append(f"pre-dose level {on_board:.4g} mg/L ({where}) taken as the drug on "
                          "board at the first dose")
         elif rule == "drug_on_board":
             notes.append(f"pre-dose level ({where}) left out: the subjects table gives the "
                          "initial concentration")
         else:
-            warnings.append(text + ": left out (drug from earlier therapy?); use the "
-                            "pre-dose rule 'drug_on_board' to take it as the level at the "
-                            "first dose")
-            notes.append(f"{len(measurable)} measurable pre-dose level(s) left out")
-    return g[~pre], on_board
+            warnings.append(f"subject '{sid}': measurable pre-dose level {c[j]:.4g} mg/L "
+                            f"{-t[j]:.4g} h before the first dose ({where}): left out (drug "
+                            "from earlier therapy?); use the pre-dose rule 'drug_on_board' to "
+                            "take it as the level at the first dose")
+            notes.append(f"{measurable.size} measurable pre-dose level(s) left out")
+    return ~pre, on_board
 
 
 def _subjects(level_frame, dose_frame, covariates, fails: Failures, lv: Columns,
               origins: dict[str, str], pre_dose: str, warnings: list[str]
               ) -> list[SubjectData]:
-    """One SubjectData per subject without problems."""
+    """One SubjectData per subject without problems (numpy slices of the tables sorted
+    once, in the order subjects first appear in the levels table)."""
+    codes, names = pd.factorize(level_frame["subject"])       # in order of appearance
+    d_codes = pd.Index(names).get_indexer(dose_frame["subject"])
+    t = level_frame["time"].to_numpy(float)
+    conc = level_frame["conc"].to_numpy(float)
+    lloq = level_frame["lloq"].to_numpy(float)
+    blq = level_frame["blq"].to_numpy(bool)
+    marked = level_frame["marked"].to_numpy(bool)
+    rows = level_frame["row"].to_numpy(int)
+    l_order = np.argsort(codes, kind="stable")               # by subject, file order within
+    d_start = dose_frame["start"].to_numpy(float)
+    d_order = np.lexsort((d_start, d_codes))
+    d_amount = dose_frame["amount"].to_numpy(float)
+    d_duration = dose_frame["duration"].to_numpy(float)
+    l_bounds = np.searchsorted(codes[l_order], np.arange(len(names) + 1))
+    d_bounds = np.searchsorted(d_codes[d_order], np.arange(len(names) + 1))
+    n = len(names)
+    sorted_codes = codes[l_order]
+    backwards = np.zeros(n, bool)      # a subject's levels not in time order
+    step = np.diff(t[l_order]) < 0
+    backwards[sorted_codes[1:][step & (sorted_codes[1:] == sorted_codes[:-1])]] = True
+    has_pre = np.bincount(codes, weights=(t < 0), minlength=n) > 0
     good: list[SubjectData] = []
-    doses_by = {sid: g for sid, g in dose_frame.groupby("subject", sort=False)}
-    for sid, g in level_frame.groupby("subject", sort=False):
+    for k, sid in enumerate(names):
         if sid in fails:
             continue
-        d = doses_by[sid].sort_values("start", kind="stable")
+        idx = l_order[l_bounds[k]:l_bounds[k + 1]]
         notes: list[str] = []
-        if not g["time"].is_monotonic_increasing:
+        if backwards[k]:
             notes.append("levels were not in time order; sorted by time")
-            g = g.sort_values("time", kind="stable")
+            idx = idx[np.argsort(t[idx], kind="stable")]
+        di = d_order[d_bounds[k]:d_bounds[k + 1]]
         cov = covariates.get(sid, {})
-        g, on_board = _pre_dose(g, cov, pre_dose, lv, notes, warnings, str(sid))
-        if not len(g) or (g["time"] <= d["start"].min()).all():
+        on_board = None
+        if has_pre[k]:
+            keep, on_board = _pre_dose(sid, t[idx], conc[idx], blq[idx], rows[idx], cov,
+                                       pre_dose, lv, notes, warnings)
+            idx = idx[keep]
+        if not idx.size or (t[idx] <= d_start[di].min()).all():
             fails(sid, "no level after the first dose", lv.file, lv.field("time"))
             continue
-        n_under = int((g["blq"] & ~g["marked"] & g["conc"].notna()).sum())
+        n_under = int((blq[idx] & ~marked[idx] & ~np.isnan(conc[idx])).sum())
         if n_under:
             notes.append(f"{n_under} level(s) below their LLOQ treated as BLQ")
         initial = on_board if on_board is not None else cov.get("initial_concentration", 0.0)
         good.append(SubjectData(
-            subject=str(sid), time=g["time"].to_numpy(float), conc=g["conc"].to_numpy(float),
-            lloq=g["lloq"].to_numpy(float), blq=g["blq"].to_numpy(bool),
-            rows=g["row"].to_numpy(int), dose_start=d["start"].to_numpy(float),
-            dose_amount=d["amount"].to_numpy(float), dose_duration=d["duration"].to_numpy(float),
+            subject=str(sid), time=t[idx], conc=conc[idx], lloq=lloq[idx], blq=blq[idx],
+            rows=rows[idx], dose_start=d_start[di], dose_amount=d_amount[di],
+            dose_duration=d_duration[di],
             covariates={k: x for k, x in cov.items() if k != "initial_concentration"},
             notes=tuple(notes), initial_concentration=initial,
             clock_origin=origins.get(sid)))

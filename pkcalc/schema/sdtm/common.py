@@ -76,9 +76,15 @@ class Rows:
                           self.ds.labels, problem=problem)
             self.keep &= ~mask
 
-    def drop_each(self, mask, reasons, *, problem: bool = False) -> None:
-        """Leave out the rows of ``mask``, each with its own reason text."""
+    def drop_each(self, mask, reason, *, problem: bool = False) -> None:
+        """Leave out the rows of ``mask``, each with its own reason: ``reason(i)`` for
+        row ``i`` (called for those rows only)."""
         mask = np.asarray(mask, bool) & self.keep
-        reasons = np.asarray(reasons, dtype=object)
-        for reason in pd.unique(reasons[mask]):
-            self.drop(mask & (reasons == reason), str(reason), problem=problem)
+        rows = np.flatnonzero(mask)
+        if not rows.size:
+            return
+        reasons = np.array([reason(int(i)) for i in rows], dtype=object)
+        for r in pd.unique(reasons):
+            chosen = np.zeros_like(mask)
+            chosen[rows[reasons == r]] = True
+            self.drop(chosen, str(r), problem=problem)

@@ -28,7 +28,7 @@ __all__ = ["PC_VARIABLES", "choose_analyte", "map_levels"]
 PC_VARIABLES = {"USUBJID", "PCSEQ", "PCTESTCD", "PCTEST", "PCSPEC", "PCSTAT", "PCDTC",
                 "PCSTRESN", "PCSTRESC", "PCSTRESU", "PCLLOQ", "PCRFTDTC", "PCELTM",
                 "PCTPTREF", "PCTPT", "PCTPTNUM", "VISIT", "VISITNUM"}
-_BLQ_TEXT = re.compile(r"^\s*(<|BLQ|BQL|LLOQ|NQ|BELOW|NOT QUANTIFIABLE)", re.IGNORECASE)
+_BLQ_TEXT = re.compile(r"^\s*(?:<|BLQ|BQL|LLOQ|NQ|BELOW|NOT QUANTIFIABLE)", re.IGNORECASE)
 _REQUIRED = ("USUBJID", "PCTESTCD", "PCSTRESN", "PCSTRESU", "PCDTC")
 
 
@@ -39,8 +39,9 @@ def choose_analyte(pc: Dataset, analyte: str | None, log: ImportLog) -> str:
         raise PkcalcInputError(f"variable(s) {', '.join(missing)} missing", file=pc.name,
                                expected=", ".join(_REQUIRED))
     codes = pc.text("PCTESTCD")
-    names = dict(zip(codes, pc.text("PCTEST"), strict=True)) if pc.has("PCTEST") else {}
-    analytes = sorted(set(codes) - {""})
+    pairs = pd.DataFrame({"code": codes, "name": pc.text("PCTEST")}).drop_duplicates("code")
+    names = dict(zip(pairs["code"], pairs["name"], strict=True))
+    analytes = sorted(set(pairs["code"]) - {""})
     shown = ", ".join(f"{a} ({names[a]})" if names.get(a) else a for a in analytes)
     if not analytes:
         raise PkcalcInputError("no analyte: PCTESTCD is empty on every row", file=pc.name,
@@ -121,7 +122,7 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
     if subject.eq("").any():
         rows.drop(subject.eq("").to_numpy(), "no subject (USUBJID empty)", problem=True)
 
-    clock_text = pc.text("PCDTC").to_numpy(object)
+    clock_text = pc.text("PCDTC")
     clock = parse_clock_array(clock_text)
     nominal_sec = np.full(len(pc), np.nan)
     nominal_offset = np.zeros(len(pc), bool)
@@ -129,18 +130,19 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
         nominal_sec, nominal_offset = _nominal(pc, log)
     actual_ok = clock.precision >= MINUTE
     use_actual = np.isnan(nominal_sec)
-    reasons = np.array([f"PCDTC is {PRECISION_WORDS[int(p)]}" for p in clock.precision],
-                       dtype=object)
-    rows.drop_each(use_actual & ~actual_ok, reasons, problem=True)
+    rows.drop_each(use_actual & ~actual_ok,
+                   lambda i: f"PCDTC is {PRECISION_WORDS[int(clock.precision[i])]}",
+                   problem=True)
 
     value, bad = pc.number("PCSTRESN")
     bad = bad.to_numpy()
-    raw = pc.text("PCSTRESN").to_numpy(object)
-    rows.drop_each(bad, np.array([f"PCSTRESN '{x}' is not a number" for x in raw],
-                                 dtype=object), problem=True)
+    raw = pc.text("PCSTRESN")
+    rows.drop_each(bad, lambda i: f"PCSTRESN '{raw.iloc[i]}' is not a number", problem=True)
     text = pc.text("PCSTRESC")
-    blq = (value.isna() & text.str.match(_BLQ_TEXT)).to_numpy()
-    rows.drop(value.isna().to_numpy() & ~blq, "no result (PCSTRESN empty and PCSTRESC not "
+    empty = np.flatnonzero(value.isna().to_numpy(bool))
+    blq = np.zeros(len(pc), bool)
+    blq[empty] = text.iloc[empty].str.match(_BLQ_TEXT.pattern, case=False).to_numpy(bool)
+    rows.drop(value.isna().to_numpy(bool) & ~blq, "no result (PCSTRESN empty and PCSTRESC not "
               "a below-LLOQ text)")
 
     unit = pc.text("PCSTRESU")
@@ -152,15 +154,16 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
                              f"(PCSTRESU) take the analyte's unit {usual.iloc[0]}")
             unit = unit.where(~fill, usual.iloc[0])
     factor, _, problem, seen = unit_specs(unit, "concentration")
-    rows.drop_each(problem != "", np.array([f"PCSTRESU: {p}" for p in problem], dtype=object),
-                   problem=True)
+    rows.drop_each(problem != "", lambda i: f"PCSTRESU: {problem[i]}", problem=True)
     lloq_value, lloq_bad = pc.number("PCLLOQ")
-    lloq_raw = pc.text("PCLLOQ").to_numpy(object)
-    rows.drop_each(lloq_bad.to_numpy(), np.array([f"PCLLOQ '{x}' is not a number"
-                                                  for x in lloq_raw], dtype=object),
-                   problem=True)
-    from_text = pd.to_numeric(text.str.extract(r"(\d+(?:\.\d+)?)", expand=False),
-                              errors="coerce").to_numpy(float)
+    lloq_raw = pc.text("PCLLOQ")
+    rows.drop_each(lloq_bad.to_numpy(), lambda i: f"PCLLOQ '{lloq_raw.iloc[i]}' is not a "
+                   "number", problem=True)
+    from_text = np.full(len(pc), np.nan)
+    need = np.flatnonzero(blq & ~np.isfinite(lloq_value.to_numpy(float)))
+    if need.size:
+        from_text[need] = pd.to_numeric(text.iloc[need].str.extract(
+            r"(\d+(?:\.\d+)?)", expand=False), errors="coerce").to_numpy(float)
     lloq = np.where(np.isfinite(lloq_value), lloq_value, np.where(blq, from_text, np.nan))
     keep = rows.keep
     log_units(log, "pc", "PCSTRESU", "concentration", seen, keep)
@@ -170,17 +173,18 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
     if times == "nominal":
         for k, n in zip(*np.unique(basis, return_counts=True), strict=True):
             log.time_basis[str(k)] = int(n)
+    def pick(var: str) -> pd.Series:
+        return pc.text(var).iloc[idx].reset_index(drop=True)
+
     return pd.DataFrame({
-        "subject": subject.to_numpy(object)[idx], "sec": clock.seconds[idx],
+        "subject": pick("USUBJID"), "sec": clock.seconds[idx],
         "offset": np.where(use_actual, clock.offset, nominal_offset)[idx],
-        "clock": clock_text[idx],
+        "clock": pick("PCDTC"),
         "conc": (value.to_numpy(float) * factor)[idx], "lloq": (lloq * factor)[idx],
         "blq": blq[idx], "row": idx, "source": pc.labels(idx),
-        "pcseq": pc.text("PCSEQ").to_numpy(object)[idx],
-        "visit": pc.text("VISIT").to_numpy(object)[idx],
-        "pctpt": pc.text("PCTPT").to_numpy(object)[idx],
-        "reference_dose": pc.text("PCRFTDTC").to_numpy(object)[idx],
-        "nominal_sec": nominal_sec[idx], "time_basis": basis})
+        "pcseq": pick("PCSEQ"), "visit": pick("VISIT"), "pctpt": pick("PCTPT"),
+        "reference_dose": pick("PCRFTDTC"), "nominal_sec": nominal_sec[idx],
+        "time_basis": basis})
 
 
 def _nominal(pc: Dataset, log: ImportLog) -> tuple[np.ndarray, np.ndarray]:

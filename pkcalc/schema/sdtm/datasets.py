@@ -58,6 +58,7 @@ class Dataset:
     path: str = ""
     notes: list[str] = field(default_factory=list)
     _seq: object = field(default=None, repr=False)
+    _cache: dict = field(default_factory=dict, repr=False)
 
     def __len__(self) -> int:
         return len(self.frame)
@@ -66,28 +67,41 @@ class Dataset:
         return var in self.frame.columns
 
     def text(self, var: str) -> pd.Series:
-        """The variable as text ('' when missing or empty)."""
-        if var not in self.frame.columns:
-            return pd.Series("", index=self.frame.index, dtype=object)
-        col = self.frame[var]
-        if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
-            return col.map(lambda x: "" if pd.isna(x) else f"{x:.15g}").astype(object)
-        return col.astype(object).where(col.notna(), "").astype(str).str.strip()
+        """The variable as text ('' when missing or empty; computed once)."""
+        key = ("text", var)
+        if key not in self._cache:
+            if var not in self.frame.columns:
+                out = pd.Series("", dtype="string[pyarrow]", index=self.frame.index)
+            else:
+                col = self.frame[var]
+                if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
+                    out = _number_text(col.to_numpy(float), self.frame.index)
+                else:
+                    out = col
+            self._cache[key] = out
+        return self._cache[key]
 
     def number(self, var: str) -> tuple[pd.Series, pd.Series]:
         """The variable as numbers (NaN where empty) and where it holds text that is not
         a number (``1,5``, ``abc``, ``n/a``)."""
+        key = ("number", var)
+        if key in self._cache:
+            return self._cache[key]
         if var not in self.frame.columns:
             nan = pd.Series(np.nan, index=self.frame.index)
-            return nan, pd.Series(False, index=self.frame.index)
-        col = self.frame[var]
-        if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
-            values = col.astype(float)
-            return values, pd.Series(np.isinf(values.to_numpy()), index=col.index)
-        raw = self.text(var)
-        values = pd.to_numeric(raw.where(raw != ""), errors="coerce").astype(float)
-        bad = (values.isna() & (raw != "")) | np.isinf(values.fillna(0.0))
-        return values.where(~bad), bad
+            out = nan, pd.Series(False, index=self.frame.index)
+        else:
+            col = self.frame[var]
+            if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
+                values = col.astype(float)
+                out = values, pd.Series(np.isinf(values.to_numpy()), index=col.index)
+            else:
+                raw = self.text(var)
+                values = pd.to_numeric(raw.where(raw != ""), errors="coerce").astype(float)
+                bad = (values.isna() & (raw != "")) | np.isinf(values.fillna(0.0))
+                out = values.where(~bad), bad
+        self._cache[key] = out
+        return out
 
     def label(self, i: int) -> str:
         """Row ``i`` (0-based) in words: ``pc.xpt row 17 (PCSEQ 5)``."""
@@ -97,15 +111,53 @@ class Dataset:
             text += f" ({self.domain.upper()}SEQ {seq[i]})"
         return text
 
-    def labels(self, rows) -> list[str]:
-        """:meth:`label` of many rows at once."""
-        return [self.label(int(i)) for i in rows]
+    def labels(self, rows) -> pd.Series:
+        """:meth:`label` of many rows at once (a text Series)."""
+        rows = np.asarray(rows, dtype=np.int64)
+        text = pd.Series(rows + 1, dtype="int64").astype("string[pyarrow]")
+        text = f"{self.name} row " + text
+        seq = self._sequence()
+        if seq is not None:
+            s = pd.Series(seq[rows], dtype="string[pyarrow]")
+            var = f" ({self.domain.upper()}SEQ "
+            text = text.where(s == "", text + var + s + ")")
+        return text
 
     def _sequence(self):
         if self._seq is None:
             var = f"{self.domain.upper()}SEQ"
-            self._seq = self.text(var).to_numpy(object) if self.has(var) else False
+            self._seq = self.text(var).to_numpy(dtype=object) if self.has(var) else False
         return None if self._seq is False else self._seq
+
+
+def _arrow_text(values) -> pd.Series:
+    """Python text values as a pandas string Series; a column with few distinct values
+    (most SDTM variables) goes through a dictionary, which is faster."""
+    import pyarrow as pa
+
+    sample = pd.unique(np.asarray(values[:2000], dtype=object))
+    if len(sample) * 4 > min(len(values), 2000):
+        return pd.Series(values, dtype="string[pyarrow]")
+    array = np.asarray(values, dtype=object)
+    codes, uniq = pd.factorize(array)
+    if len(uniq) * 4 > max(len(array), 1) or (codes < 0).any():
+        return pd.Series(values, dtype="string[pyarrow]")
+    text = [u if isinstance(u, str) else str(u) for u in uniq]
+    decoded = pa.DictionaryArray.from_arrays(pa.array(codes.astype(np.int32)),
+                                             pa.array(text, type=pa.string())).cast(pa.string())
+    return pd.Series(pd.arrays.ArrowStringArray(decoded))
+
+
+def _number_text(values: np.ndarray, index) -> pd.Series:
+    """Numbers as text ('' for NaN): whole numbers without a decimal point (sequence
+    numbers), others with 15 significant digits."""
+    finite = np.isfinite(values)
+    if np.all(values[finite] == np.round(values[finite])) and \
+            np.all(np.abs(values[finite]) < 1e15):
+        whole = pd.Series(np.where(finite, values, 0).astype(np.int64), index=index)
+        return whole.astype("string[pyarrow]").where(finite, "")
+    return pd.Series([f"{x:.15g}" if x == x else "" for x in values],
+                     dtype="string[pyarrow]", index=index)
 
 
 def find_datasets(folder: Path, domains) -> tuple[dict[str, Path], list[str]]:
@@ -154,20 +206,31 @@ def frame_dataset(frame: pd.DataFrame, domain: str, wanted: set[str]) -> Dataset
 
 
 def _normalise(frame: pd.DataFrame) -> pd.DataFrame:
-    frame = frame.copy()
-    frame.columns = [str(c).strip().upper() for c in frame.columns]
-    if frame.columns.duplicated().any():
-        dup = frame.columns[frame.columns.duplicated()][0]
+    """Upper-case names; numbers as float; everything else as stripped text ('' when
+    empty) in pandas' string dtype (its vectorised string operations keep a large PC
+    dataset fast)."""
+    names = [str(c).strip().upper() for c in frame.columns]
+    if len(set(names)) < len(names):
+        dup = next(n for n in names if names.count(n) > 1)
         raise PkcalcInputError(f"variable {dup} appears twice", field=dup,
                                expected="each variable once")
-    for c in frame.columns:
+    out = {}
+    for name, c in zip(names, frame.columns, strict=True):
         col = frame[c]
         if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
-            frame[c] = col.astype(float)
+            out[name] = col.to_numpy(float)
+            continue
+        if not pd.api.types.is_string_dtype(col) or col.dtype == object:
+            values = col.to_numpy(dtype=object)
+            if pd.api.types.infer_dtype(values, skipna=True) not in ("string", "empty"):
+                values = np.array([v if isinstance(v, str) or v is None or v != v else str(v)
+                                   for v in values], dtype=object)
+            col = pd.Series(values, dtype="string[pyarrow]")
         else:
-            frame[c] = col.astype(object).where(col.notna(), "").map(
-                lambda x: x if isinstance(x, str) else ("" if x is None else str(x)))
-    return frame
+            col = col.astype("string[pyarrow]")
+        out[name] = col.fillna("").str.strip().to_numpy(dtype=object) \
+            if len(col) == 0 else col.fillna("").str.strip().reset_index(drop=True)
+    return pd.DataFrame(out, index=pd.RangeIndex(len(frame)))
 
 
 def _read_xpt(path: Path, wanted: set[str]) -> tuple[pd.DataFrame, list[str]]:
@@ -185,16 +248,23 @@ def _read_xpt(path: Path, wanted: set[str]) -> tuple[pd.DataFrame, list[str]]:
                                f"({exc.__class__.__name__})", file=str(path)) from None
     use = [c for c in meta.column_names if c.strip().upper() in wanted]
     notes: list[str] = []
+    options = {"usecols": use, "output_format": "dict", "disable_datetime_conversion": True}
     try:
-        frame, _ = pyreadstat.read_xport(str(path), usecols=use,
-                                         encoding=meta.file_encoding or None)
+        data, _ = pyreadstat.read_xport(str(path), encoding=meta.file_encoding or None,
+                                        **options)
     except UnicodeDecodeError:
-        frame, _ = pyreadstat.read_xport(str(path), usecols=use, encoding="latin1")
+        data, _ = pyreadstat.read_xport(str(path), encoding="latin1", **options)
         notes.append(f"{path.name}: text is not UTF-8; read as Latin-1")
     except Exception as exc:
         raise PkcalcInputError(f"is not a readable SAS transport file "
                                f"({exc.__class__.__name__})", file=str(path)) from None
-    return frame, notes
+    columns = {}
+    for name, values in data.items():
+        if isinstance(values, np.ndarray) and values.dtype.kind in "fiu":
+            columns[name] = values.astype(float)
+        else:
+            columns[name] = _arrow_text(values)
+    return pd.DataFrame(columns, index=pd.RangeIndex(len(next(iter(data.values()), [])))), notes
 
 
 def _decode(path: Path) -> tuple[str, list[str]]:
@@ -206,11 +276,31 @@ def _decode(path: Path) -> tuple[str, list[str]]:
 
 
 def _read_csv(path: Path, wanted: set[str]) -> tuple[pd.DataFrame, list[str]]:
-    text, notes = _decode(path)
+    """A CSV dataset read by pyarrow's CSV reader (the variables used only, as text)."""
+    import csv
+    from io import BytesIO
+
+    data = path.read_bytes()
+    notes: list[str] = []
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
     try:
-        frame = pd.read_csv(StringIO(text), dtype=str, keep_default_na=False, index_col=False,
-                            usecols=lambda c: str(c).strip().upper() in wanted)
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError:
+        text = data.decode("latin-1")
+        data = text.encode("utf-8")
+        notes.append(f"{path.name}: text is not UTF-8; read as Latin-1")
+    header = next(csv.reader(StringIO(text[:65536].split("\n", 1)[0])), [])
+    keys = [h.strip().upper() for h in header]
+    if len(set(keys)) < len(keys):
+        dup = next(k for k in keys if keys.count(k) > 1)
+        raise PkcalcInputError(f"variable {dup} appears twice in the header", file=str(path),
+                               field=dup, expected="each variable once")
+    use = [h for h, k in zip(header, keys, strict=True) if k in wanted]
+    try:
+        frame = pd.read_csv(BytesIO(data), dtype=str, keep_default_na=False, engine="pyarrow",
+                            usecols=use)
+    except Exception as exc:  # pyarrow and pandas raise several kinds for a broken table
         first = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
         raise PkcalcInputError(f"not a readable CSV table ({first})", file=str(path)) from None
     return frame, notes

@@ -17,7 +17,6 @@ named.  A single administration lasts from EXSTDTC to EXENDTC (or EXDUR).
 
 from __future__ import annotations
 
-import math
 from datetime import datetime, timedelta
 
 import numpy as np
@@ -61,7 +60,7 @@ def _treatment(ds: Dataset, p: str, rows: Rows, treatment: str | None, log: Impo
                          "treatment")
         return None, rows.keep.copy()
     trt = ds.text(f"{p}TRT").to_numpy(object)
-    seen = pd.Series(trt[rows.keep]).value_counts()
+    seen = pd.Series(trt[rows.keep], dtype=object).value_counts()
     names = [t for t in seen.index if t]
     active = [t for t in names if not PLACEBO.search(t)]
     if treatment is not None:
@@ -91,23 +90,27 @@ def _treatment(ds: Dataset, p: str, rows: Rows, treatment: str | None, log: Impo
     return chosen, trt == chosen
 
 
+def _placebo(trt) -> np.ndarray:
+    """Where a treatment's name says placebo (vectorised)."""
+    return pd.Series(trt, dtype="string[pyarrow]").str.contains(
+        PLACEBO.pattern, case=False, regex=True).fillna(False).to_numpy(bool)
+
+
 def _not_dosed(subject: np.ndarray, mine: np.ndarray, keep: np.ndarray, trt: np.ndarray,
                zero: np.ndarray, arm_placebo: set[str]) -> dict[str, str]:
     """Subjects with records who were not given the analysed treatment: placebo (by
     arm, by their records, or every dose zero) or another treatment only."""
     out: dict[str, str] = {}
     frame = pd.DataFrame({"s": subject, "mine": mine & keep, "dose": mine & keep & ~zero,
-                          "placebo": np.array([bool(PLACEBO.search(t or "")) for t in trt])})
+                          "placebo": _placebo(trt)})
     by = frame.groupby("s").agg(mine=("mine", "any"), dose=("dose", "any"),
                                 placebo=("placebo", "any"))
-    for sid, r in by.iterrows():
-        if not sid:
-            continue
-        if r["mine"] and not r["dose"]:
-            out[sid] = "placebo (every dose of the analysed treatment is zero)"
-        elif not r["mine"]:
-            out[sid] = ("placebo" if r["placebo"] or sid in arm_placebo
-                        else "not given the analysed treatment")
+    by = by[by.index != ""]
+    for sid in by.index[by["mine"] & ~by["dose"]]:
+        out[sid] = "placebo (every dose of the analysed treatment is zero)"
+    for sid, placebo in by.loc[~by["mine"], "placebo"].items():
+        out[sid] = ("placebo" if placebo or sid in arm_placebo
+                    else "not given the analysed treatment")
     for sid in arm_placebo:
         out.setdefault(sid, "placebo (arm)")
     return out
@@ -140,10 +143,9 @@ def map_doses(ds: Dataset, log: ImportLog, fails: Failures, *, treatment: str | 
     _chosen, mine = _treatment(ds, p, rows, treatment, log)
     trt = ds.text(f"{p}TRT").to_numpy(object)
     value, bad_value = ds.number(f"{p}DOSE")
-    zero = (value.to_numpy(float) == 0) & ~bad_value.to_numpy()
+    zero = (value.to_numpy(float) == 0) & ~bad_value.to_numpy(bool)
     not_dosed = _not_dosed(subject, mine, rows.keep, trt, zero, arm_placebo)
-    rows.drop(~mine & np.array([bool(PLACEBO.search(t or "")) for t in trt]),
-              "placebo treatment")
+    rows.drop(~mine & _placebo(trt), "placebo treatment")
     rows.drop(~mine, "another treatment")
     rows.drop(np.isin(subject, list(not_dosed)), "subject not given the analysed treatment")
     doses = _administrations(ds, p, rows, log, fails, subject, value, bad_value,
@@ -153,110 +155,122 @@ def map_doses(ds: Dataset, log: ImportLog, fails: Failures, *, treatment: str | 
     return doses, not_dosed, warnings
 
 
+def _per_distinct(texts: np.ndarray, parse) -> tuple[np.ndarray, np.ndarray]:
+    """``parse`` of each distinct text once: (values, problems) per row (NaN for None)."""
+    codes, uniq = pd.factorize(texts)
+    values = np.full(len(uniq), np.nan)
+    problems = np.full(len(uniq), "", dtype=object)
+    for j, u in enumerate(uniq):
+        try:
+            v = parse(u)
+        except ValueError as exc:
+            problems[j] = str(exc)
+            continue
+        values[j] = np.nan if v is None else v
+    return values[codes], problems[codes]
+
+
 def _administrations(ds, p, rows: Rows, log, fails: Failures, subject, value, bad_value,
                      infusion_duration):
-    """Per record kept: check, expand, and one row per administration."""
-    idx = np.flatnonzero(rows.keep)
-    start_text = ds.text(f"{p}STDTC").to_numpy(object)
-    end_text = ds.text(f"{p}ENDTC").to_numpy(object)
-    start = parse_clock_array(start_text)
-    end = parse_clock_array(end_text)
+    """Every record kept is checked (a failing record leaves its subject out, named) and
+    expanded into its administrations, one row each (vectorised over the records).
+
+    A record with a frequency spans ``floor((end - start) / interval) + 1``
+    administrations (an end given as a date only runs to the end of that day); each
+    lasts EXDUR, else (one administration with a precise end) end - start, else nothing
+    for an intravenous bolus, else ``infusion_duration`` -- otherwise the record is
+    refused, named.
+    """
+    n_rows = len(ds)
+    start_text = ds.text(f"{p}STDTC")
+    end_text = ds.text(f"{p}ENDTC")
+    start, end = parse_clock_array(start_text), parse_clock_array(end_text)
     factor, per_kg, unit_problem, seen = unit_specs(ds.text(f"{p}DOSU"), "amount")
     route = ds.text(f"{p}ROUTE").str.upper().to_numpy(object)
     freq = ds.text(f"{p}DOSFRQ").to_numpy(object)
     dur_text = ds.text(f"{p}DUR").to_numpy(object)
-    raw_dose = ds.text(f"{p}DOSE").to_numpy(object)
-    seq = ds.text(f"{p}SEQ").to_numpy(object)
-    trt = ds.text(f"{p}TRT").to_numpy(object)
-    out = []
-    notes: dict[str, int] = {}
-    for i in idx:
-        sid, where = subject[i], ds.label(i)
+    value = value.to_numpy(float)
+    bad_value = bad_value.to_numpy(bool)
+    tau, tau_problem = _per_distinct(freq, frequency_hours)
+    given, dur_problem = _per_distinct(dur_text, lambda x: iso_duration_hours(x) if x else None)
+    s, e, ep = start.seconds, end.seconds, end.precision
+    problem = np.full(n_rows, "", dtype=object)
+    field = np.full(n_rows, "", dtype=object)
+    st_text, en_text = start_text.to_numpy(object), end_text.to_numpy(object)
 
-        def fail(message: str, field: str, sid=sid, where=where) -> None:
-            fails(sid, f"{message} ({where})", ds.name, field)
+    def flag(mask, message, where_field) -> None:
+        for i in np.flatnonzero(mask & rows.keep & (problem == "")):
+            problem[i], field[i] = message(i), where_field
 
-        if route[i] and route[i] not in IV_ROUTES:
-            fail(f"route '{route[i]}' is not intravenous: only intravenous doses are "
-                 "modelled", f"{p}ROUTE")
-            continue
-        if start.precision[i] < MINUTE:
-            fail(f"{p}STDTC '{start_text[i]}' is {PRECISION_WORDS[int(start.precision[i])]}: "
-                 "the administration cannot be placed", f"{p}STDTC")
-            continue
-        if bad_value.iloc[i] or not math.isfinite(value.iloc[i]):
-            fail(f"{p}DOSE '{raw_dose[i]}' is not a number (a unit belongs in {p}DOSU)",
-                 f"{p}DOSE")
-            continue
-        if unit_problem[i]:
-            fail(f"{p}DOSU: {unit_problem[i]}", f"{p}DOSU")
-            continue
-        try:
-            tau = frequency_hours(freq[i])
-            given = iso_duration_hours(dur_text[i]) if dur_text[i] else None
-        except ValueError as exc:
-            fail(str(exc), f"{p}DUR" if "duration" in str(exc) else f"{p}DOSFRQ")
-            continue
-        if given is not None and given < 0:
-            fail(f"{p}DUR '{dur_text[i]}' is negative", f"{p}DUR")
-            continue
-        plan = _plan(i, start, end, end_text, tau, given, route[i], infusion_duration, p)
-        if isinstance(plan, str):
-            fail(plan, f"{p}ENDTC" if "ENDTC" in plan else f"{p}DUR")
-            continue
-        n, length = plan
-        if n > MAX_ADMINISTRATIONS:
-            fail(f"{freq[i]} from {start_text[i]} to {end_text[i]} is {n} administrations "
-                 f"(at most {MAX_ADMINISTRATIONS:,})", f"{p}DOSFRQ")
-            continue
-        if n > 1:
-            key = freq[i].upper() + (f" ({SPACING_NOTE[freq[i].upper()]})"
-                                     if freq[i].upper() in SPACING_NOTE else "")
-            notes[key] = notes.get(key, 0) + 1
-        for k in range(n):
-            out.append((sid, start.seconds[i] + 3600.0 * k * (tau or 0.0), start.offset[i],
-                        _shifted(start_text[i], k * (tau or 0.0)), value.iloc[i] * factor[i],
-                        bool(per_kg[i]), length, i, where, seq[i], trt[i],
-                        f"{k + 1} of {n}" if n > 1 else ""))
-    for key, count in notes.items():
-        log.notes.append(f"{count} {p} record(s) with {p}DOSFRQ {key} expanded into their "
-                         "administrations")
-    log_units(log, ds.domain, f"{p}DOSU", "amount", seen, rows.keep)
-    columns = ["subject", "sec", "offset", "clock", "amount", "per_kg", "duration", "row",
-               "source", "seq", "treatment", "administration"]
-    return pd.DataFrame(out, columns=columns)
-
-
-def _plan(i, start, end, end_text, tau, given, route, infusion_duration, p):
-    """(administrations, hours each) of record ``i``, or why it cannot be used."""
-    s, e, ep = start.seconds[i], end.seconds[i], int(end.precision[i])
-    if ep not in (EMPTY, DATE, HOUR, MINUTE):
-        return f"{p}ENDTC '{end_text[i]}' is {PRECISION_WORDS[ep]}"
-    if ep >= HOUR and e < s:
-        return f"{p}ENDTC '{end_text[i]}' is before {p}STDTC"
-    if ep == DATE and e + 86400.0 <= s:
-        return f"{p}ENDTC '{end_text[i]}' is before {p}STDTC"
-    bolus = route in BOLUS_ROUTES
-    if tau is None:
-        n = 1
-    elif ep == EMPTY:
-        return (f"{p}DOSFRQ gives repeated administrations but {p}ENDTC is empty: how many "
-                "is unknown")
-    else:
-        last = e if ep >= HOUR else e + 86400.0 - 1.0
-        n = math.floor((last - s) / (3600.0 * tau) + 1e-9) + 1
-    if given is not None:
-        return n, given
-    if n == 1 and ep >= HOUR:
-        return 1, (e - s) / 3600.0
-    if bolus:
-        return n, 0.0
+    flag((route != "") & ~np.isin(route, IV_ROUTES), lambda i: f"route '{route[i]}' is not "
+         "intravenous: only intravenous doses are modelled", f"{p}ROUTE")
+    flag(start.precision < MINUTE, lambda i: f"{p}STDTC '{st_text[i]}' is "
+         f"{PRECISION_WORDS[int(start.precision[i])]}: the administration cannot be placed",
+         f"{p}STDTC")
+    raw_dose = ds.text(f"{p}DOSE")
+    flag(bad_value | ~np.isfinite(value), lambda i: f"{p}DOSE '{raw_dose.iloc[i]}' is not a "
+         f"number (a unit belongs in {p}DOSU)", f"{p}DOSE")
+    flag(unit_problem != "", lambda i: f"{p}DOSU: {unit_problem[i]}", f"{p}DOSU")
+    flag(tau_problem != "", lambda i: tau_problem[i], f"{p}DOSFRQ")
+    flag(dur_problem != "", lambda i: dur_problem[i], f"{p}DUR")
+    flag(given < 0, lambda i: f"{p}DUR '{dur_text[i]}' is negative", f"{p}DUR")
+    flag(~np.isin(ep, (EMPTY, DATE, HOUR, MINUTE)),
+         lambda i: f"{p}ENDTC '{en_text[i]}' is {PRECISION_WORDS[int(ep[i])]}", f"{p}ENDTC")
+    flag(((ep >= HOUR) & (e < s)) | ((ep == DATE) & (e + 86400.0 <= s)),
+         lambda i: f"{p}ENDTC '{en_text[i]}' is before {p}STDTC", f"{p}ENDTC")
+    repeated = np.isfinite(tau)
+    flag(repeated & (ep == EMPTY), lambda i: f"{p}DOSFRQ gives repeated administrations but "
+         f"{p}ENDTC is empty: how many is unknown", f"{p}ENDTC")
+    with np.errstate(invalid="ignore"):
+        last = np.where(ep >= HOUR, e, e + 86400.0 - 1.0)
+        n = np.where(repeated & (problem == ""),
+                     np.floor((last - s) / (3600.0 * np.where(repeated, tau, 1.0)) + 1e-9) + 1,
+                     1.0)
+    n = np.nan_to_num(n, nan=1.0).clip(1, None).astype(np.int64)
+    length = np.where(np.isfinite(given), given, np.nan)
+    length = np.where(np.isnan(length) & (n == 1) & (ep >= HOUR), (e - s) / 3600.0, length)
+    length = np.where(np.isnan(length) & np.isin(route, BOLUS_ROUTES), 0.0, length)
     if infusion_duration is not None:
-        return n, infusion_duration
-    what = (f"{n} administrations" if n > 1 else "the administration")
-    return (f"the length of {what} is unknown ({p}ENDTC "
-            f"{'empty' if ep == EMPTY else 'a date only' if ep == DATE else 'spans them'} and "
-            f"no {p}DUR): give {p}DUR or --infusion-duration (0 h for injections)")
+        length = np.where(np.isnan(length), infusion_duration, length)
+
+    def unknown(i: int) -> str:
+        what = f"{n[i]} administrations" if n[i] > 1 else "the administration"
+        how = "empty" if ep[i] == EMPTY else "a date only" if ep[i] == DATE else "spans them"
+        return (f"the length of {what} is unknown ({p}ENDTC {how} and no {p}DUR): give "
+                f"{p}DUR or --infusion-duration (0 h for injections)")
+
+    flag(np.isnan(length), unknown, f"{p}DUR")
+    flag(n > MAX_ADMINISTRATIONS, lambda i: f"{freq[i]} from {st_text[i]} to {en_text[i]} is "
+         f"{n[i]} administrations (at most {MAX_ADMINISTRATIONS:,})", f"{p}DOSFRQ")
+    bad = np.flatnonzero(rows.keep & (problem != ""))
+    for i, where in zip(bad, ds.labels(bad), strict=True):
+        fails(subject[i], f"{problem[i]} ({where})", ds.name, field[i])
+    good = np.flatnonzero(rows.keep & (problem == ""))
+    counts = n[good]
+    many = freq[good][counts > 1]
+    for term in pd.unique(many):
+        key = term.upper() + (f" ({SPACING_NOTE[term.upper()]})" if term.upper() in
+                              SPACING_NOTE else "")
+        log.notes.append(f"{int(np.sum(many == term))} {p} record(s) with {p}DOSFRQ {key} "
+                         "expanded into their administrations")
+    log_units(log, ds.domain, f"{p}DOSU", "amount", seen, rows.keep)
+    rec = np.repeat(good, counts)
+    k = np.arange(rec.size) - np.repeat(np.cumsum(counts) - counts, counts)
+    step = np.where(np.isfinite(tau), tau, 0.0)[rec]
+    clock = st_text[rec].copy()
+    for j in np.flatnonzero(k > 0):
+        clock[j] = _shifted(clock[j], float(k[j] * step[j]))
+    of_n = n[rec]
+    administration = np.full(rec.size, "", dtype=object)
+    for j in np.flatnonzero(of_n > 1):
+        administration[j] = f"{k[j] + 1} of {of_n[j]}"
+    return pd.DataFrame({
+        "subject": subject[rec], "sec": s[rec] + 3600.0 * k * step, "offset": start.offset[rec],
+        "clock": clock, "amount": (value * factor)[rec], "per_kg": per_kg[rec].astype(bool),
+        "duration": length[rec], "row": rec, "source": ds.labels(rec).to_numpy(object),
+        "seq": ds.text(f"{p}SEQ").to_numpy(object)[rec],
+        "treatment": ds.text(f"{p}TRT").to_numpy(object)[rec],
+        "administration": administration})
 
 
 def _shifted(text: str, hours: float) -> str:
@@ -279,16 +293,15 @@ def _duplicates(doses: pd.DataFrame, fails: Failures, ds: Dataset) -> list[str]:
     sec, dur = d["sec"].to_numpy(float), d["duration"].to_numpy(float)
     amount = d["amount"].to_numpy(float)
     src = d["source"].to_numpy(object)
-    for j in range(1, len(d)):
-        if sid[j] != sid[j - 1]:
-            continue
-        same = (abs(sec[j] - sec[j - 1]) < 60.0 and np.isclose(amount[j], amount[j - 1])
-                and np.isclose(dur[j], dur[j - 1]))
-        if same:
-            fails(sid[j], f"two records give the same administration ({src[j - 1]} and "
-                  f"{src[j]}): a duplicated record?", ds.name, f"{ds.domain.upper()}STDTC")
-        elif dur[j] > 0 and dur[j - 1] > 0 and sec[j] < sec[j - 1] + 3600.0 * dur[j - 1] - 1.0 \
-                and len(warnings) < 20:
-            warnings.append(f"subject '{sid[j]}': the infusion of {src[j]} starts before the "
-                            f"one of {src[j - 1]} ends: overlapping infusions add up")
+    same_subject = sid[1:] == sid[:-1]
+    same = same_subject & (np.abs(sec[1:] - sec[:-1]) < 60.0) & np.isclose(
+        amount[1:], amount[:-1]) & np.isclose(dur[1:], dur[:-1])
+    for j in np.flatnonzero(same) + 1:
+        fails(sid[j], f"two records give the same administration ({src[j - 1]} and "
+              f"{src[j]}): a duplicated record?", ds.name, f"{ds.domain.upper()}STDTC")
+    overlap = same_subject & ~same & (dur[1:] > 0) & (dur[:-1] > 0) & (
+        sec[1:] < sec[:-1] + 3600.0 * dur[:-1] - 1.0)
+    for j in (np.flatnonzero(overlap) + 1)[:20]:
+        warnings.append(f"subject '{sid[j]}': the infusion of {src[j]} starts before the "
+                        f"one of {src[j - 1]} ends: overlapping infusions add up")
     return warnings

@@ -202,8 +202,8 @@ def _clock(levels, doses, fails: Failures, pc: Dataset, ex: Dataset, log: Import
     first = doses.loc[doses.groupby("subject")["sec"].idxmin()]
     origin = dict(zip(first["subject"], first["sec"], strict=True))
     kinds = pd.concat([levels[["subject", "offset"]], doses[["subject", "offset"]]])
-    mixed = kinds.groupby("subject")["offset"].agg(lambda x: x.any() and not x.all())
-    for sid in mixed.index[mixed]:
+    agg = kinds.groupby("subject")["offset"].agg(["any", "all"])
+    for sid in agg.index[agg["any"] & ~agg["all"]]:
         fails(sid, "some date-times have a time-zone offset and some do not: the hours between "
               "them would be a guess", pc.name, "PCDTC")
     for sid, text in zip(first["subject"], first["clock"], strict=True):
@@ -234,8 +234,8 @@ def _count_pre_dose(levels: pd.DataFrame, log: ImportLog, rule: str) -> None:
 
 
 def _unmatched(levels, doses, fails: Failures, ex: Dataset, not_dosed) -> None:
-    have = set(doses["subject"])
-    for sid in sorted(set(levels["subject"]) - have - set(not_dosed)):
+    have = set(doses["subject"].unique())
+    for sid in sorted(set(levels["subject"].unique()) - have - set(not_dosed)):
         if sid not in fails:
             fails(sid, "has PC levels but no exposure records of the analysed treatment",
                   ex.name, "USUBJID")
@@ -251,10 +251,10 @@ def _study(levels, doses, subjects, data, ex: Dataset, fails, origins, pre_dose,
     ds_frame = pd.DataFrame({"subject": doses["subject"], "start [h]": doses["hours"],
                              "amount [mg]": doses["amount"], "duration [h]": doses["duration"],
                              "source": doses["source"]})
-    lv = Columns(lv_frame, data["pc"].name, labels=list(levels["source"]),
+    lv = Columns(lv_frame, data["pc"].name, labels=levels["source"],
                  fields={"subject": "USUBJID", "time": "PCDTC", "concentration": "PCSTRESN",
                          "lloq": "PCLLOQ", "blq": "PCSTRESC"})
-    ds = Columns(ds_frame, ex.name, labels=list(doses["source"]),
+    ds = Columns(ds_frame, ex.name, labels=doses["source"],
                  fields={"subject": "USUBJID", "start": f"{p}STDTC", "amount": f"{p}DOSE",
                          "duration": f"{p}ENDTC / {p}DUR"})
     sb = None
@@ -265,7 +265,7 @@ def _study(levels, doses, subjects, data, ex: Dataset, fails, origins, pre_dose,
     keep = levels["subject"].isin(set(doses["subject"]) - set(fails.by_subject))
     if not keep.all():
         lv = Columns(lv_frame[keep].reset_index(drop=True), lv.file,
-                     labels=list(levels.loc[keep, "source"]), fields=lv.fields)
+                     labels=levels.loc[keep, "source"].reset_index(drop=True), fields=lv.fields)
     if lv.frame.empty:
         found = ([p for _, err in fails.as_list() for p in err.problems]
                  + [Problem(line) for line in log.problems])

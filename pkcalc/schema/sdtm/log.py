@@ -48,8 +48,8 @@ class ImportLog:
         entry = self.skipped[domain].setdefault(
             reason, {"count": 0, "first_rows": [], "first_subjects": [], "problem": problem})
         entry["count"] += len(rows)
-        entry["first_rows"] += labels(rows[:_SHOWN - len(entry["first_rows"])]) \
-            if len(entry["first_rows"]) < _SHOWN else []
+        if len(entry["first_rows"]) < _SHOWN:
+            entry["first_rows"] += list(labels(rows[:_SHOWN - len(entry["first_rows"])]))
         seen = entry["first_subjects"]
         for s in subjects:
             if len(seen) >= _SHOWN:

@@ -43,49 +43,55 @@ def arm_placebo(dm: Dataset | None) -> set[str]:
     return {s for s, a in zip(ids, arms, strict=True) if s and PLACEBO.search(a or "")}
 
 
-def _baseline(ds: Dataset, prefix: str, mask: np.ndarray, first: dict[str, float],
+def _baseline(ds: Dataset, prefix: str, test: np.ndarray, first: dict[str, float],
               rows: Rows) -> pd.DataFrame:
-    """Per subject the chosen row among ``mask``: the last flagged baseline, else the last
-    on or before the first dose.  Columns: subject, row, how."""
+    """Per test and subject the chosen row: the last flagged baseline, else the last on or
+    before the first dose.  Columns: test, subject, row, how."""
     subject = ds.text("USUBJID").to_numpy(object)
-    when = parse_clock_array(ds.text(f"{prefix}DTC").to_numpy(object))
+    when = parse_clock_array(ds.text(f"{prefix}DTC"))
     flag = ds.text(f"{prefix}BLFL").str.upper().to_numpy(object) == "Y"
-    first_sec = pd.Series(subject).map(first).to_numpy(float)
+    first_sec = pd.Series(subject, dtype=object).map(first).to_numpy(float)
     dated = when.precision >= DATE
     # a date only counts when its day is the first dose's day or earlier
     day_end = np.where(when.precision == DATE, when.seconds + 86400.0 - 1.0, when.seconds)
     before = dated & (day_end <= first_sec + np.where(when.precision == DATE, 86400.0, 0.0))
-    ok = mask & rows.keep
-    frame = pd.DataFrame({"subject": subject, "row": np.arange(len(ds)), "flag": flag & ok,
-                          "before": before & ok & ~np.isnan(first_sec),
+    ok = rows.keep
+    undated = ok & (when.precision == EMPTY) & ~flag
+    if undated.any():
+        rows.log.notes.append(f"{ds.domain.upper()}: {int(undated.sum())} row(s) without a "
+                              f"date ({prefix}DTC) or a baseline flag cannot be placed: not used")
+    frame = pd.DataFrame({"test": test, "subject": subject, "row": np.arange(len(ds)),
                           "sec": np.where(dated, when.seconds, -np.inf)})
-    flagged = frame[frame["flag"]].groupby("subject").tail(1).assign(how="baseline flag")
-    rest = frame[frame["before"] & ~frame["subject"].isin(flagged["subject"])]
-    last = rest.sort_values(["subject", "sec", "row"], kind="stable").groupby("subject").tail(1)
-    last = last.assign(how="last on or before the first dose")
-    undated = frame[ok & (when.precision == EMPTY) & ~frame["subject"].isin(
-        pd.concat([flagged["subject"], last["subject"]]))]
-    if len(undated):
-        rows.log.notes.append(f"{ds.domain.upper()}: {len(undated)} row(s) without a date "
-                              f"({prefix}DTC) and no baseline flag not used")
-    return pd.concat([flagged, last])[["subject", "row", "how"]]
+    flagged = frame[flag & ok].drop_duplicates(["test", "subject"], keep="last")
+    rest = frame[before & ok & ~np.isnan(first_sec)]
+    taken = pd.MultiIndex.from_frame(flagged[["test", "subject"]])
+    rest = rest[~pd.MultiIndex.from_frame(rest[["test", "subject"]]).isin(taken)]
+    last = rest.sort_values(["test", "subject", "sec", "row"], kind="stable").drop_duplicates(
+        ["test", "subject"], keep="last")
+    return pd.concat([flagged.assign(how="baseline flag"),
+                      last.assign(how="last on or before the first dose")])
 
 
-def _vs(vs: Dataset, log: ImportLog, first: dict[str, float], table: dict[str, dict]) -> dict:
-    """Weight, height and BMI per subject from VS; returns the weights in kg."""
+def _column(chosen: pd.DataFrame, t: str, values: np.ndarray) -> pd.Series:
+    picked = chosen[chosen["test"] == t]
+    return pd.Series(values[picked["row"].to_numpy(int)], index=picked["subject"].to_numpy(object))
+
+
+def _vs(vs: Dataset, log: ImportLog, first: dict[str, float]) -> dict[str, pd.Series]:
+    """Weight, height and BMI per subject from VS (weights also into the log)."""
     for v in ("USUBJID", "VSTESTCD", "VSSTRESN", "VSSTRESU"):
         if not vs.has(v):
             raise PkcalcInputError(f"variable {v} missing", file=vs.name,
                                    expected="USUBJID, VSTESTCD, VSSTRESN, VSSTRESU")
     subject = vs.text("USUBJID").to_numpy(object)
-    rows = Rows(vs, log, pd.Series(subject))
+    rows = Rows(vs, log, pd.Series(subject, dtype=object))
     test = vs.text("VSTESTCD").str.upper().to_numpy(object)
     rows.drop(~np.isin(test, ["WEIGHT", "HEIGHT", "BMI"]), "another test (VSTESTCD)")
     value, bad = vs.number("VSSTRESN")
-    raw = vs.text("VSSTRESN").to_numpy(object)
-    rows.drop_each(bad.to_numpy(), np.array([f"VSSTRESN '{x}' is not a number" for x in raw],
-                                            dtype=object), problem=True)
-    rows.drop(value.isna().to_numpy(), "no result (VSSTRESN empty)")
+    raw = vs.text("VSSTRESN")
+    rows.drop_each(bad.to_numpy(bool), lambda i: f"VSSTRESN '{raw.iloc[i]}' is not a number",
+                   problem=True)
+    rows.drop(value.isna().to_numpy(bool), "no result (VSSTRESN empty)")
     unit = vs.text("VSSTRESU").to_numpy(object)
     target = {"WEIGHT": "kg", "HEIGHT": "cm", "BMI": "kg/m**2"}
     factor = np.full(len(vs), np.nan)
@@ -103,26 +109,25 @@ def _vs(vs: Dataset, log: ImportLog, first: dict[str, float], table: dict[str, d
                     log.convert("vs", f"VSSTRESU ({t})", u, float(factor[sel][0]), to,
                                 int((sel & rows.keep).sum()))
     kg = value.to_numpy(float) * factor
-    bad_weight = (test == "WEIGHT") & ~(kg > 0)
-    rows.drop(bad_weight, "weight not positive", problem=True)
-    weights: dict[str, float] = {}
-    for t, column in (("WEIGHT", "weight [kg]"), ("HEIGHT", "height [cm]"),
-                      ("BMI", "bmi [kg/m2]")):
-        chosen = _baseline(vs, "VS", test == t, first, rows)
-        for sid, r, how in chosen.itertuples(index=False):
-            table.setdefault(sid, {})[column] = float(kg[r])
-            if t == "WEIGHT":
-                weights[sid] = float(kg[r])
-                log.weights[sid] = {"kg": float(kg[r]), "source": f"{how} ({vs.label(r)})"}
-    for cov in table.values():
-        if "bmi [kg/m2]" not in cov and "weight [kg]" in cov and "height [cm]" in cov:
-            cov["bmi [kg/m2]"] = cov["weight [kg]"] / (cov["height [cm]"] / 100.0) ** 2
+    rows.drop((test == "WEIGHT") & ~(kg > 0), "weight not positive", problem=True)
+    chosen = _baseline(vs, "VS", test, first, rows)
+    weight = chosen[chosen["test"] == "WEIGHT"]
+    labels = vs.labels(weight["row"].to_numpy(int)).to_numpy(object)
+    for (sid, r, how), where in zip(weight[["subject", "row", "how"]].itertuples(index=False),
+                                    labels, strict=True):
+        log.weights[sid] = {"kg": float(kg[r]), "source": f"{how} ({where})"}
     log.used["vs"] = int(rows.keep.sum())
-    return weights
+    return {"weight [kg]": _column(chosen, "WEIGHT", kg),
+            "height [cm]": _column(chosen, "HEIGHT", kg),
+            "bmi [kg/m2]": _column(chosen, "BMI", kg)}
 
 
-def _dm(dm: Dataset, table: dict[str, dict], log: ImportLog) -> None:
+def _dm(dm: Dataset, log: ImportLog) -> dict[str, pd.Series]:
     ids = dm.text("USUBJID").to_numpy(object)
+    keep = (ids != "") & ~pd.Series(ids, dtype=object).duplicated().to_numpy(bool)
+    if np.sum(ids != "") > keep.sum():
+        log.notes.append("DM lists a subject more than once: the first row is used")
+    out: dict[str, pd.Series] = {}
     if dm.has("AGE"):
         age, _ = dm.number("AGE")
         units = dm.text("AGEU").str.upper().to_numpy(object)
@@ -132,66 +137,73 @@ def _dm(dm: Dataset, table: dict[str, dict], log: ImportLog) -> None:
             log.notes.append(f"DM: AGEU {', '.join(unknown)} not understood: those ages "
                              "are not used")
         years = age.to_numpy(float) * scale
-        for sid, y in zip(ids, years, strict=True):
-            if sid and np.isfinite(y):
-                table.setdefault(sid, {})["age [years]"] = float(y)
+        ok = keep & np.isfinite(years)
+        out["age [years]"] = pd.Series(years[ok], index=ids[ok])
     for var in ("SEX", "RACE", "ARM", "ACTARM", "COUNTRY"):
         if dm.has(var):
-            for sid, x in zip(ids, dm.text(var).to_numpy(object), strict=True):
-                if sid and x:
-                    table.setdefault(sid, {})[var.lower()] = x
-    log.used["dm"] = int(np.sum(ids != ""))
+            x = dm.text(var).to_numpy(object)
+            ok = keep & (x != "")
+            out[var.lower()] = pd.Series(x[ok], index=ids[ok], dtype=object)
+    log.used["dm"] = int(keep.sum())
+    return out
 
 
-def _lb(lb: Dataset, table: dict[str, dict], log: ImportLog, first: dict[str, float]) -> None:
+def _lb(lb: Dataset, log: ImportLog, first: dict[str, float], taken: set[str]
+        ) -> dict[str, pd.Series]:
     """Each laboratory test's baseline value as a column ``<test> [unit]``."""
     for v in ("USUBJID", "LBTESTCD", "LBSTRESN"):
         if not lb.has(v):
             raise PkcalcInputError(f"variable {v} missing", file=lb.name,
                                    expected="USUBJID, LBTESTCD, LBSTRESN, LBSTRESU")
     subject = lb.text("USUBJID").to_numpy(object)
-    rows = Rows(lb, log, pd.Series(subject))
+    rows = Rows(lb, log, pd.Series(subject, dtype=object))
     test = lb.text("LBTESTCD").str.upper().to_numpy(object)
     value, bad = lb.number("LBSTRESN")
-    rows.drop(bad.to_numpy(), "LBSTRESN is not a number", problem=True)
-    rows.drop(value.isna().to_numpy(), "no result (LBSTRESN empty)")
+    rows.drop(bad.to_numpy(bool), "LBSTRESN is not a number", problem=True)
+    rows.drop(value.isna().to_numpy(bool), "no result (LBSTRESN empty)")
     unit = lb.text("LBSTRESU").to_numpy(object)
-    taken = {c.split(" [")[0] for cov in table.values() for c in cov}
+    scaled = value.to_numpy(float).copy()
+    names: dict[str, str] = {}
     for t in sorted(set(test[rows.keep]) - {""}):
         sel = (test == t) & rows.keep
-        usual = pd.Series(unit[sel]).mode().iloc[0]
-        scale = np.where(unit == usual, 1.0, np.nan)
+        usual = pd.Series(unit[sel], dtype=object).mode().iloc[0]
         for other in set(unit[sel]) - {usual}:
+            mine = sel & (unit == other)
             try:
-                scale[sel & (unit == other)] = float(ureg.Quantity(
-                    1.0, normalise_unit(other)).to(normalise_unit(usual)).magnitude)
-                log.convert("lb", f"LBSTRESU ({t})", other, float(
-                    scale[sel & (unit == other)][0]), usual, int((sel & (unit == other)).sum()))
+                f = float(ureg.Quantity(1.0, normalise_unit(other)).to(
+                    normalise_unit(usual)).magnitude)
             except Exception:  # pint: unknown unit or another dimension
-                rows.drop(sel & (unit == other), f"{t}: LBSTRESU '{other}' cannot be "
-                          f"converted to {usual}", problem=True)
+                rows.drop(mine, f"{t}: LBSTRESU '{other}' cannot be converted to {usual}",
+                          problem=True)
+                continue
+            scaled[mine] *= f
+            log.convert("lb", f"LBSTRESU ({t})", other, f, usual, int(mine.sum()))
         name = t.lower() if t.lower() not in taken else f"lb_{t.lower()}"
-        column = f"{name} [{usual}]" if usual else name
-        chosen = _baseline(lb, "LB", test == t, first, rows)
-        for sid, r, _how in chosen.itertuples(index=False):
-            table.setdefault(sid, {})[column] = float(value.iloc[r] * scale[r])
+        names[t] = f"{name} [{usual}]" if usual else name
+    chosen = _baseline(lb, "LB", test, first, rows)
     log.used["lb"] = int(rows.keep.sum())
+    return {column: _column(chosen, t, scaled) for t, column in names.items()}
 
 
 def map_subjects(dm: Dataset | None, vs: Dataset | None, lb: Dataset | None,
                  log: ImportLog, first: dict[str, float]) -> tuple[pd.DataFrame, dict]:
-    """The subjects table (one row per subject with any covariate) and the weights."""
-    table: dict[str, dict] = {}
-    weights: dict[str, float] = {}
+    """The subjects table (one row per subject with any covariate) and the weights (kg)."""
+    columns: dict[str, pd.Series] = {}
     if vs is not None:
-        weights = _vs(vs, log, first, table)
+        columns.update(_vs(vs, log, first))
     if dm is not None:
-        _dm(dm, table, log)
+        columns.update(_dm(dm, log))
     if lb is not None:
-        _lb(lb, table, log, first)
-    if not table:
+        columns.update(_lb(lb, log, first, {c.split(" [")[0] for c in columns}))
+    columns = {k: v for k, v in columns.items() if len(v)}
+    weights = columns["weight [kg]"].to_dict() if "weight [kg]" in columns else {}
+    if not columns:
         return pd.DataFrame({"subject": []}), weights
-    frame = pd.DataFrame.from_dict(table, orient="index")
+    frame = pd.concat(columns, axis=1)
+    if {"weight [kg]", "height [cm]"} <= set(frame.columns):
+        bmi = frame["weight [kg]"] / (frame["height [cm]"] / 100.0) ** 2
+        frame["bmi [kg/m2]"] = frame["bmi [kg/m2]"].fillna(bmi) if "bmi [kg/m2]" in frame \
+            else bmi
+    frame = frame.dropna(axis=1, how="all")
     frame.insert(0, "subject", frame.index.astype(str))
     return frame.reset_index(drop=True), weights
-

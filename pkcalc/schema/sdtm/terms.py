@@ -42,7 +42,7 @@ BOLUS_ROUTES = ("INTRAVENOUS BOLUS",)
 #: Specimens whose concentrations are the systemic levels the model describes.
 SYSTEMIC_SPECIMENS = ("PLASMA", "SERUM", "BLOOD", "WHOLE BLOOD")
 #: A placebo (or vehicle, sham) treatment or arm, by its words.
-PLACEBO = re.compile(r"\b(PLACEBO|VEHICLE|SHAM)\b", re.IGNORECASE)
+PLACEBO = re.compile(r"\b(?:PLACEBO|VEHICLE|SHAM)\b", re.IGNORECASE)
 
 _ONCE = {"", "ONCE", "CONTINUOUS", "SINGLE", "1 TIME", "ONE TIME"}
 _FIXED = {"QD": 24.0, "DAILY": 24.0, "BID": 12.0, "TID": 8.0, "QID": 6.0, "QOD": 48.0,
