@@ -384,10 +384,13 @@ def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, floa
                                     field=sb.field(key)))
     if problems:
         raise PkcalcInputError(problems)
-    columns = {k: v.to_numpy(object) for k, v in table.items()}
-    return {sid: {k: (v[i] if isinstance(v[i], str) else float(v[i]))
-                  for k, v in columns.items() if not pd.isna(v[i])}
-            for i, sid in enumerate(ids)}
+    if not table:
+        return {sid: {} for sid in ids}
+    frame = pd.DataFrame({k: v.reset_index(drop=True) for k, v in table.items()})
+    records = frame.astype(object).where(frame.notna(), None).to_dict("records")
+    return {sid: {k: (x if isinstance(x, str) else float(x)) for k, x in r.items()
+                  if x is not None}
+            for sid, r in zip(ids, records, strict=True)}
 
 
 CLOCK_UNITS = ("clock", "iso 8601", "iso8601")
@@ -598,7 +601,9 @@ def _subjects(level_frame, dose_frame, covariates, fails: Failures, lv: Columns,
     backwards = np.zeros(n, bool)      # a subject's levels not in time order
     step = np.diff(t[l_order]) < 0
     backwards[sorted_codes[1:][step & (sorted_codes[1:] == sorted_codes[:-1])]] = True
-    has_pre = np.bincount(codes, weights=(t < 0), minlength=n) > 0
+    pre = t < 0
+    pre_measured = np.bincount(codes, weights=pre & ~(blq | (conc == 0)), minlength=n) > 0
+    pre_zero = np.bincount(codes, weights=pre & (blq | (conc == 0)), minlength=n).astype(int)
     good: list[SubjectData] = []
     for k, sid in enumerate(names):
         if sid in fails:
@@ -611,10 +616,14 @@ def _subjects(level_frame, dose_frame, covariates, fails: Failures, lv: Columns,
         di = d_order[d_bounds[k]:d_bounds[k + 1]]
         cov = covariates.get(sid, {})
         on_board = None
-        if has_pre[k]:
+        if pre_measured[k]:
             keep, on_board = _pre_dose(sid, t[idx], conc[idx], blq[idx], rows[idx], cov,
                                        pre_dose, lv, notes, warnings)
             idx = idx[keep]
+        elif pre_zero[k]:
+            notes.append(f"{pre_zero[k]} pre-dose level(s) below the LLOQ or zero: the level "
+                         "is zero at the first dose")
+            idx = idx[~pre[idx]]
         if not idx.size or (t[idx] <= d_start[di].min()).all():
             fails(sid, "no level after the first dose", lv.file, lv.field("time"))
             continue

@@ -136,8 +136,8 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
 
     value, bad = pc.number("PCSTRESN")
     bad = bad.to_numpy()
-    raw = pc.text("PCSTRESN")
-    rows.drop_each(bad, lambda i: f"PCSTRESN '{raw.iloc[i]}' is not a number", problem=True)
+    rows.drop_each(bad, lambda i: f"PCSTRESN '{pc.text('PCSTRESN').iloc[i]}' is not a number",
+                   problem=True)
     text = pc.text("PCSTRESC")
     empty = np.flatnonzero(value.isna().to_numpy(bool))
     blq = np.zeros(len(pc), bool)
@@ -156,9 +156,8 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
     factor, _, problem, seen = unit_specs(unit, "concentration")
     rows.drop_each(problem != "", lambda i: f"PCSTRESU: {problem[i]}", problem=True)
     lloq_value, lloq_bad = pc.number("PCLLOQ")
-    lloq_raw = pc.text("PCLLOQ")
-    rows.drop_each(lloq_bad.to_numpy(), lambda i: f"PCLLOQ '{lloq_raw.iloc[i]}' is not a "
-                   "number", problem=True)
+    rows.drop_each(lloq_bad.to_numpy(bool), lambda i: f"PCLLOQ '{pc.text('PCLLOQ').iloc[i]}' "
+                   "is not a number", problem=True)
     from_text = np.full(len(pc), np.nan)
     need = np.flatnonzero(blq & ~np.isfinite(lloq_value.to_numpy(float)))
     if need.size:
@@ -181,7 +180,7 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
         "offset": np.where(use_actual, clock.offset, nominal_offset)[idx],
         "clock": pick("PCDTC"),
         "conc": (value.to_numpy(float) * factor)[idx], "lloq": (lloq * factor)[idx],
-        "blq": blq[idx], "row": idx, "source": pc.labels(idx),
+        "blq": blq[idx], "row": idx, "source": pc.labels_fast(idx),
         "pcseq": pick("PCSEQ"), "visit": pick("VISIT"), "pctpt": pick("PCTPT"),
         "reference_dose": pick("PCRFTDTC"), "nominal_sec": nominal_sec[idx],
         "time_basis": basis})

@@ -21,6 +21,7 @@
 from __future__ import annotations
 
 import json
+import re
 from dataclasses import dataclass, field
 from io import StringIO
 from pathlib import Path
@@ -97,11 +98,20 @@ class Dataset:
                 out = values, pd.Series(np.isinf(values.to_numpy()), index=col.index)
             else:
                 raw = self.text(var)
-                values = pd.to_numeric(raw.where(raw != ""), errors="coerce").astype(float)
+                values = _numbers(raw)
                 bad = (values.isna() & (raw != "")) | np.isinf(values.fillna(0.0))
                 out = values.where(~bad), bad
         self._cache[key] = out
         return out
+
+    def labels_fast(self, rows) -> list[str]:
+        """:meth:`labels` as a list of Python text."""
+        seq = self._sequence()
+        var = f"{self.domain.upper()}SEQ"
+        if seq is None:
+            return [f"{self.name} row {i + 1}" for i in np.asarray(rows).tolist()]
+        return [f"{self.name} row {i + 1} ({var} {seq[i]})" if seq[i] else
+                f"{self.name} row {i + 1}" for i in np.asarray(rows).tolist()]
 
     def label(self, i: int) -> str:
         """Row ``i`` (0-based) in words: ``pc.xpt row 17 (PCSEQ 5)``."""
@@ -128,6 +138,21 @@ class Dataset:
             var = f"{self.domain.upper()}SEQ"
             self._seq = self.text(var).to_numpy(dtype=object) if self.has(var) else False
         return None if self._seq is False else self._seq
+
+
+def _numbers(raw: pd.Series) -> pd.Series:
+    """Text as numbers (NaN where empty or not a number): pyarrow's cast when every
+    value is a number, pandas' parser (per value) otherwise."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    try:
+        arr = pa.array(raw, type=pa.string())
+        empty = pc.if_else(pc.equal(arr, ""), pa.scalar(None, pa.string()), arr)
+        values = pc.cast(empty, pa.float64()).to_numpy(zero_copy_only=False)
+        return pd.Series(values, index=raw.index)
+    except (pa.ArrowInvalid, pa.ArrowTypeError):
+        return pd.to_numeric(raw.where(raw != ""), errors="coerce").astype(float)
 
 
 def _arrow_text(values) -> pd.Series:
@@ -258,10 +283,12 @@ def _read_xpt(path: Path, wanted: set[str]) -> tuple[pd.DataFrame, list[str]]:
     except Exception as exc:
         raise PkcalcInputError(f"is not a readable SAS transport file "
                                f"({exc.__class__.__name__})", file=str(path)) from None
+    kinds = getattr(meta, "readstat_variable_types", {}) or {}
     columns = {}
     for name, values in data.items():
-        if isinstance(values, np.ndarray) and values.dtype.kind in "fiu":
-            columns[name] = values.astype(float)
+        if kinds.get(name, "string") != "string" or (isinstance(values, np.ndarray)
+                                                     and values.dtype.kind in "fiu"):
+            columns[name] = np.asarray(values, dtype=float)    # None (missing) -> NaN
         else:
             columns[name] = _arrow_text(values)
     return pd.DataFrame(columns, index=pd.RangeIndex(len(next(iter(data.values()), [])))), notes
@@ -306,39 +333,185 @@ def _read_csv(path: Path, wanted: set[str]) -> tuple[pd.DataFrame, list[str]]:
     return frame, notes
 
 
+_BATCH = 20_000
+_NUMERIC_TYPES = ("integer", "float", "double", "decimal")
+
+
+class _Columns:
+    """Rows of a Dataset-JSON file gathered into columns a batch at a time (the wanted
+    variables only, as arrow text or float arrays), so that memory stays near the size
+    of the data rather than of millions of Python objects."""
+
+    def __init__(self, columns: list[dict], wanted: set[str], path: Path) -> None:
+        self.path = path
+        self.names = [str(c.get("name", "")) for c in columns]
+        self.keep = [i for i, n in enumerate(self.names) if n.strip().upper() in wanted]
+        self.numeric = {i for i in self.keep
+                        if str(columns[i].get("dataType", "string")).lower() in _NUMERIC_TYPES}
+        self.chunks: dict[int, list] = {i: [] for i in self.keep}
+        self.batch: list = []
+        self.count = 0
+
+    def add(self, rows: list) -> None:
+        """Take many rows (each a list of one value per column)."""
+        n = len(self.names)
+        if rows and ({type(r) for r in rows} != {list} or set(map(len, rows)) != {n}):
+            bad = next(k for k, r in enumerate(rows) if not isinstance(r, list) or len(r) != n)
+            raise PkcalcInputError(f"row {self.count + bad + 1} does not have one value per "
+                                   f"column ({n})", file=str(self.path),
+                                   expected="rows as arrays matching 'columns'")
+        self.batch.extend(rows)
+        self.count += len(rows)
+        if len(self.batch) >= _BATCH:
+            self.flush()
+
+    def flush(self) -> None:
+        import pyarrow as pa
+
+        if not self.batch:
+            return
+        columns = list(zip(*self.batch, strict=True))
+        for i in self.keep:
+            values = columns[i]
+            if i in self.numeric:
+                try:
+                    self.chunks[i].append(np.array(values, dtype=float))
+                except (TypeError, ValueError):  # decimals written as text
+                    self.chunks[i].append(pd.to_numeric(pd.Series(values, dtype=object),
+                                                        errors="coerce").to_numpy(float))
+                continue
+            try:
+                self.chunks[i].append(pa.array(values, type=pa.string()))
+            except (pa.ArrowInvalid, pa.ArrowTypeError):  # numbers in a text column
+                self.chunks[i].append(pa.array([v if v is None or isinstance(v, str) else
+                                                str(v) for v in values], type=pa.string()))
+        self.batch = []
+
+    def frame(self) -> pd.DataFrame:
+        import pyarrow as pa
+
+        self.flush()
+        data = {}
+        for i in self.keep:
+            if i in self.numeric:
+                data[self.names[i]] = (np.concatenate(self.chunks[i]) if self.chunks[i]
+                                       else np.zeros(0))
+            else:
+                arr = pa.chunked_array(self.chunks[i], type=pa.string()).combine_chunks()
+                data[self.names[i]] = pd.Series(pd.arrays.ArrowStringArray(arr))
+        return pd.DataFrame(data, index=pd.RangeIndex(self.count))
+
+
+def _skip(text: str, i: int) -> int:
+    while i < len(text) and text[i] in " \t\r\n":
+        i += 1
+    return i
+
+
 def _read_json(path: Path, wanted: set[str]) -> tuple[pd.DataFrame, list[str]]:
+    """Dataset-JSON: the top-level object read key by key, its rows streamed into
+    columns (:class:`_Columns`); NDJSON line by line; the v1.0 layout parsed whole."""
     text, notes = _decode(path)
+    decoder = json.JSONDecoder()
     try:
         if path.suffix.lower() == ".ndjson":
-            lines = [ln for ln in text.splitlines() if ln.strip()]
-            meta = json.loads(lines[0]) if lines else {}
-            rows = [json.loads(ln) for ln in lines[1:]]
-        else:
-            meta = json.loads(text)
-            rows = None
-    except (json.JSONDecodeError, ValueError) as exc:
-        raise PkcalcInputError(f"is not valid JSON ({exc.msg if hasattr(exc, 'msg') else exc})",
+            lines = iter(text.splitlines())
+            meta = json.loads(next((ln for ln in lines if ln.strip()), "{}"))
+            if not isinstance(meta, dict) or "columns" not in meta:
+                raise PkcalcInputError("the first line holds no 'columns'", file=str(path),
+                                       expected="CDISC Dataset-JSON v1.1 (NDJSON)")
+            cols = _Columns(meta["columns"], wanted, path)
+            cols.add([json.loads(ln) for ln in lines if ln.strip()])
+            return _checked(cols, meta.get("records"), path), notes
+        meta, cols = _stream_object(text, decoder, wanted, path)
+    except json.JSONDecodeError as exc:
+        raise PkcalcInputError(f"is not valid JSON ({exc.msg} at character {exc.pos})",
                                file=str(path), expected="CDISC Dataset-JSON") from None
-    if not isinstance(meta, dict):
+    if cols is None:  # the v1.0 layout, or rows before columns
+        columns, rows, records = _json_layout(meta, None, path)
+        cols = _Columns(columns, wanted, path)
+        cols.add(list(rows))
+        return _checked(cols, records, path), notes
+    return _checked(cols, meta.get("records"), path), notes
+
+
+def _checked(cols: _Columns, records, path: Path) -> pd.DataFrame:
+    if isinstance(records, int) and records != cols.count:
+        raise PkcalcInputError(f"'records' says {records} rows but {cols.count} are present "
+                               "(a truncated file?)", file=str(path))
+    return cols.frame()
+
+
+_BOUNDARY = re.compile(r"\]\s*,\s*\[")
+_SPAN = 4_000_000  # characters of rows parsed at once
+
+
+def _rows(text: str, i: int, decoder, cols: _Columns) -> int:
+    """Parse the rows array from ``i`` (just after its ``[``) into ``cols``; returns the
+    index after its ``]``.  Spans of many rows are parsed by ``json.loads`` at once, cut
+    where one row ends and the next begins; a cut that falls inside a text value cannot
+    parse and is taken row by row instead."""
+    i = _skip(text, i)
+    while i < len(text) and text[i] != "]":
+        m = _BOUNDARY.search(text, i + _SPAN) if len(text) - i > 2 * _SPAN else None
+        if m is not None:
+            try:
+                cols.add(json.loads("[" + text[i:m.start() + 1] + "]"))
+                i = m.end() - 1
+                continue
+            except json.JSONDecodeError:
+                pass
+            stop = m.end() - 1
+            while i < stop:
+                row, i = decoder.raw_decode(text, i)
+                cols.add([row])
+                i = _skip(text, i)
+                if text[i] == ",":
+                    i = _skip(text, i + 1)
+            continue
+        end = text.rfind("]", i)
+        try:                                  # the rest of the rows, up to the last ']'
+            rest = json.loads("[" + text[i:end] + "]")
+            tail = _skip(text, end + 1)
+            if tail < len(text) and text[tail] in ",}":
+                cols.add(rest)
+                return end + 1
+        except json.JSONDecodeError:
+            pass
+        row, i = decoder.raw_decode(text, i)
+        cols.add([row])
+        i = _skip(text, i)
+        if i < len(text) and text[i] == ",":
+            i = _skip(text, i + 1)
+    return i + 1
+
+
+def _stream_object(text: str, decoder, wanted: set[str], path: Path):
+    """The top-level object's keys (``rows`` streamed when ``columns`` came first)."""
+    i = _skip(text, 0)
+    if i >= len(text) or text[i] != "{":
         raise PkcalcInputError("is not a Dataset-JSON object", file=str(path),
                                expected="CDISC Dataset-JSON v1.1")
-    columns, rows, records = _json_layout(meta, rows, path)
-    names = [str(c.get("name", "")) for c in columns]
-    if any(not isinstance(r, list) or len(r) != len(names) for r in rows):
-        raise PkcalcInputError(f"a row does not have one value per column ({len(names)})",
-                               file=str(path), expected="rows as arrays matching 'columns'")
-    if records is not None and records != len(rows):
-        raise PkcalcInputError(f"'records' says {records} rows but {len(rows)} are present "
-                               "(a truncated file?)", file=str(path))
-    keep = [i for i, n in enumerate(names) if n.strip().upper() in wanted]
-    data = {names[i]: [r[i] for r in rows] for i in keep}
-    frame = pd.DataFrame(data)
-    for i in keep:
-        kind = str(columns[i].get("dataType", "string")).lower()
-        if kind in ("integer", "float", "double", "decimal"):
-            frame[names[i]] = pd.to_numeric(frame[names[i]].map(
-                lambda x: np.nan if x is None or x == "" else x), errors="coerce")
-    return frame, notes
+    meta: dict = {}
+    cols = None
+    i += 1
+    while True:
+        i = _skip(text, i)
+        if i < len(text) and text[i] == "}":
+            return meta, cols
+        key, i = decoder.raw_decode(text, i)
+        i = _skip(text, i)
+        if i >= len(text) or text[i] != ":":
+            raise json.JSONDecodeError("expected ':'", text, i)
+        i = _skip(text, i + 1)
+        if key == "rows" and isinstance(meta.get("columns"), list) and text[i] == "[":
+            cols = _Columns(meta["columns"], wanted, path)
+            i = _rows(text, i + 1, decoder, cols)
+        else:
+            meta[key], i = decoder.raw_decode(text, i)
+        i = _skip(text, i)
+        if i < len(text) and text[i] == ",":
+            i += 1
 
 
 def _json_layout(meta: dict, rows, path: Path):

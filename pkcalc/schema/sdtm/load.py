@@ -262,7 +262,7 @@ def _study(levels, doses, subjects, data, ex: Dataset, fails, origins, pre_dose,
         names = [data[d].name for d in ("dm", "vs", "lb") if d in data]
         sb = Columns(subjects, " / ".join(names), labels=[f"subject '{s}'" for s in
                                                           subjects["subject"]])
-    keep = levels["subject"].isin(set(doses["subject"]) - set(fails.by_subject))
+    keep = levels["subject"].isin(set(doses["subject"].unique()) - set(fails.by_subject))
     if not keep.all():
         lv = Columns(lv_frame[keep].reset_index(drop=True), lv.file,
                      labels=levels.loc[keep, "source"].reset_index(drop=True), fields=lv.fields)
