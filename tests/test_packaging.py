@@ -10,5 +10,6 @@ from .conftest import REPO
 def test_all_subpackages_are_declared():
     config = tomllib.loads((REPO / "pyproject.toml").read_text())
     declared = set(config["tool"]["setuptools"]["packages"])
-    found = {"pkcalc." + p.parent.name for p in (REPO / "pkcalc").glob("*/__init__.py")}
+    found = {".".join(p.parent.relative_to(REPO).parts)
+             for p in (REPO / "pkcalc").rglob("*/__init__.py")}
     assert found | {"pkcalc", "pkcalc.scenarios"} <= declared
