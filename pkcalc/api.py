@@ -90,8 +90,14 @@ class StudyNca(_PerSubject):
     def settings(self) -> dict[str, str]:
         from .nca import BLQ_RULES
 
-        return {"auc_method": self.options.auc_method, "blq": BLQ_RULES[self.options.blq_rule],
-                "times": "hours after the start of the reference dose"}
+        o = self.options
+        return {"auc_method": o.auc_method, "blq": BLQ_RULES[o.blq_rule],
+                "times": "hours after the start of the reference dose",
+                "regular_doses": f"every gap within the larger of {o.interval_tolerance[0]:.0%} "
+                                 f"of the interval and {o.interval_tolerance[1]:g} h; every "
+                                 f"infusion within the larger of {o.duration_tolerance[0]:.0%} "
+                                 f"and {o.duration_tolerance[1]:g} h of the typical one",
+                "intervals": o.interval}
 
     def document(self, conv=None) -> dict[str, Any]:
         """The ``pkcalc nca --json`` document."""
@@ -99,7 +105,8 @@ class StudyNca(_PerSubject):
         from .report.nca import nca_json
 
         doc = nca_json(self.results, conv or UnitConverter(self.units), title=self.title,
-                       failures=self.failures, settings=self.settings)
+                       failures=self.failures, settings=self.settings,
+                       choice=self.options.interval)
         doc["warnings"] = list(self.warnings)
         return doc
 
@@ -110,18 +117,33 @@ class StudyNca(_PerSubject):
 
         return nca_text(self.results, conv or UnitConverter(self.units), title=self.title,
                         failures=self.failures, warnings=self.warnings,
-                        settings=self.settings, colour=colour)
+                        settings=self.settings, colour=colour, choice=self.options.interval)
 
     def to_frame(self, conv=None):
         """One row per subject: the table ``pkcalc nca --out`` writes (``nca.csv``)."""
         import pandas as pd
 
-        frame = pd.DataFrame(self.document(conv)["subjects"])
+        frame = pd.DataFrame(self.document(conv)["subjects"]).drop(columns=["intervals"])
         frame["points_used"] = frame["points_used"].map(lambda xs: " ".join(f"{x:g}" for x in xs))
-        frame["notes"] = frame["notes"].map(" | ".join)
+        for key in ("notes", "assumptions"):
+            frame[key] = frame[key].map(" | ".join)
         if any(r.clock_origin for r in self.results):
             frame.insert(1, "first_dose_clock", [r.clock_origin for r in self.results])
         return frame
+
+    def intervals_frame(self, conv=None):
+        """One row per dosing interval (the table ``pkcalc nca --out`` writes as
+        ``nca-intervals.csv``)."""
+        import pandas as pd
+
+        rows = []
+        for s in self.document(conv)["subjects"]:
+            for d in s["intervals"]:
+                rows.append({"subject": s["subject"], **{k: v for k, v in d.items()
+                                                         if k not in ("points_used", "notes")},
+                             "points_used": " ".join(f"{x:g}" for x in d["points_used"]),
+                             "notes": " | ".join(d["notes"])})
+        return pd.DataFrame(rows)
 
 
 

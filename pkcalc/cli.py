@@ -185,7 +185,9 @@ def _nca_overrides(args: argparse.Namespace) -> dict:
                                    expected='e.g. --terminal "3=8 h,12 h,24 h"')
         points[sid.strip()] = [t.strip() for t in times.split(",")]
     return {"auc_method": args.auc_method, "blq": args.blq_rule,
-            "terminal_points": points or None}
+            "terminal_points": points or None, "interval": args.interval,
+            "interval_tolerance": args.interval_tolerance,
+            "duration_tolerance": args.duration_tolerance}
 
 
 def _import_args(args: argparse.Namespace) -> dict:
@@ -362,7 +364,7 @@ def cmd_nca(args: argparse.Namespace) -> int:
     study = load_study_input(args.study, args.levels, args.doses, args.subjects,
                              args.sdtm, args.analyte, **_import_args(args))
     options = study_nca_options(study, _nca_overrides(args))
-    return _finish(run_nca(study, options, colour=_colour()), args)
+    return _finish(run_nca(study, options, colour=_colour(), pp=args.pp), args)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -459,7 +461,8 @@ def _outputs(args: argparse.Namespace):
             raise PkcalcInputError("pkcalc writes its CAUTION.txt beside the output table: "
                                    "choose another name", file=str(out), field="--out",
                                    expected="a .csv or .parquet file name")
-    for option, kind in (("report", "file"), ("junit", "file"), ("plots", "folder")):
+    for option, kind in (("report", "file"), ("junit", "file"), ("plots", "folder"),
+                         ("pp", "folder")):
         value = getattr(args, option, None)
         if value is not None:
             outs.append(Output(Path(value), kind, "--" + option))

@@ -346,7 +346,19 @@ def _nca_parser(sub) -> None:
                         "as 0, later ones left out), zero, drop")
     p.add_argument("--terminal", action="append", metavar="SUBJECT=T1,T2,...",
                    help="choose a subject's terminal points by hand (repeatable)")
-    _output_args(p, "write nca.csv, nca.json and plots to DIR")
+    p.add_argument("--interval", metavar="first|last|each|N",
+                   help="the dosing intervals reported (default each: every interval, those "
+                        "with too few levels with the reason)")
+    p.add_argument("--interval-tolerance", metavar="PCT,TIME",
+                   help="repeated doses are regular when every gap is within the larger of "
+                        "PCT of the interval and TIME (default '10%%,1 h')")
+    p.add_argument("--duration-tolerance", metavar="PCT,TIME",
+                   help="... and every infusion time within the larger of PCT and TIME of "
+                        "the typical one (default '10%%,15 min')")
+    p.add_argument("--pp", metavar="DIR",
+                   help="also write the results as a CDISC SDTM PP dataset (pp.xpt, pp.csv, "
+                        "pp.json) with its relationship to the PC rows (relrec) in DIR")
+    _output_args(p, "write nca.csv, nca-intervals.csv, nca.json and plots to DIR")
 
 
 def _verify_parser(sub) -> None:

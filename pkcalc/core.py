@@ -27,6 +27,7 @@ __all__ = [
     "ERROR_MODELS",
     "NCA_AUC_METHODS",
     "NCA_BLQ_RULES",
+    "NCA_INTERVALS",
     "POPULATION_METHODS",
     "WEIGHTINGS",
     "DesignCase",
@@ -53,6 +54,7 @@ BLQ_METHODS = ("drop", "likelihood", "half_lloq")
 CI_METHODS = ("wald", "profile")
 NCA_AUC_METHODS = ("linear-up-log-down", "linear")
 NCA_BLQ_RULES = ("leading_zero", "zero", "drop")
+NCA_INTERVALS = ("each", "first", "last")
 
 
 def _check(ok: bool, name: str, rule: str, value: Any) -> None:
@@ -213,6 +215,9 @@ class SubjectData:
     initial_concentration : float, mg/L
         Drug on board at time 0 from earlier therapy (decays with the subject's k);
         from an ``initial_concentration [..]`` column of the subjects table.
+    reference_time : ndarray or None, h
+        The start of the dose each level refers to (SDTM PCRFTDTC; NaN where not
+        stated); None when no level states one.
     """
 
     subject: str
@@ -228,9 +233,13 @@ class SubjectData:
     notes: tuple[str, ...] = ()
     initial_concentration: float = 0.0
     clock_origin: str | None = None
+    reference_time: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         n = np.shape(self.time)[0] if np.ndim(self.time) else -1
+        _check(self.reference_time is None or np.shape(self.reference_time) == (n,),
+               "reference_time", f"must have one value per sample time ({n})",
+               np.shape(self.reference_time))
         for name in ("conc", "lloq", "blq", "rows"):
             _check(np.shape(getattr(self, name)) == (n,), name,
                    f"must have one value per sample time ({n})", np.shape(getattr(self, name)))
@@ -278,6 +287,7 @@ class Study:
     import_report: dict[str, Any] = field(default_factory=dict)
     import_lines: list[str] = field(default_factory=list)
     tables: dict[str, Any] = field(default_factory=dict)
+    level_trace: Any = None     # per level row: its source (SDTM: source, pcseq), or None
 
     def subject(self, name: str) -> SubjectData:
         for s in self.subjects:
@@ -552,6 +562,12 @@ class NcaOptions:
         Adjusted R2 within this of the best counts as a tie (more points win).
     extrapolation_limit : float, percent
         Flag an AUC extrapolated beyond this.
+    interval : str
+        The dosing intervals reported: ``each`` (default), ``first``, ``last`` or a
+        dose number (``"3"``).
+    interval_tolerance, duration_tolerance : (float, float)
+        (fraction, hours): repeated doses are regular when every gap (infusion time)
+        is within the larger of the two of the interval (typical infusion time).
     """
 
     auc_method: str = "linear-up-log-down"
@@ -559,6 +575,9 @@ class NcaOptions:
     terminal_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
     r2_tolerance: float = 1e-4
     extrapolation_limit: float = 20.0
+    interval: str = "each"
+    interval_tolerance: tuple[float, float] = (0.10, 1.0)
+    duration_tolerance: tuple[float, float] = (0.10, 0.25)
 
     def __post_init__(self) -> None:
         _check(self.auc_method in NCA_AUC_METHODS, "auc_method",
@@ -570,6 +589,14 @@ class NcaOptions:
         _check(_finite(self.extrapolation_limit) and 0 <= self.extrapolation_limit <= 100,
                "extrapolation_limit", "must be a percentage from 0 to 100",
                self.extrapolation_limit)
+        _check(isinstance(self.interval, str) and (self.interval in NCA_INTERVALS or (
+            self.interval.isdigit() and int(self.interval) >= 1)), "interval",
+               f"must be one of {', '.join(NCA_INTERVALS)} or a dose number", self.interval)
+        for name in ("interval_tolerance", "duration_tolerance"):
+            x = getattr(self, name)
+            _check(isinstance(x, tuple) and len(x) == 2 and all(_finite(v) for v in x)
+                   and 0 <= x[0] <= 1 and 0 <= x[1] <= 1e4, name,
+                   "must be (a fraction from 0 to 1, hours >= 0)", x)
         for sid, times in self.terminal_points.items():
             _check(len(times) >= 2 and all(_finite(t) for t in times),
                    f"terminal_points[{sid!r}]", "needs two or more finite times", times)

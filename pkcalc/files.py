@@ -198,6 +198,9 @@ def check_outputs(outputs: Sequence[Output], inputs: Sequence[str | Path] = ()) 
         if out.kind == "file" and out.path.resolve() in ins:
             problems.append(_problem(out, "is an input file: refusing to overwrite it",
                                      "an output path that is not one of the inputs"))
+        if out.kind == "folder" and out.path.resolve() in ins:
+            problems.append(_problem(out, "is an input folder: refusing to write into it",
+                                     "an output folder that is not one of the inputs"))
     for i, a in enumerate(outputs):
         for b in outputs[i + 1:]:
             ra, rb = a.path.resolve(), b.path.resolve()

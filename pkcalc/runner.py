@@ -372,8 +372,9 @@ def load_study_input(study: str | None = None, levels: str | None = None,
     return load_study(levels, doses, subjects, **import_options(given, "the command line"))
 
 
-def run_nca(study, options=None, *, colour: bool = False) -> Run:
-    """``pkcalc nca``: every subject of a study (:func:`pkcalc.api.nca_study`)."""
+def run_nca(study, options=None, *, colour: bool = False, pp: str | None = None) -> Run:
+    """``pkcalc nca``: every subject of a study (:func:`pkcalc.api.nca_study`); with ``pp``
+    the results also as a CDISC SDTM PP dataset in that folder."""
     from .api import nca_study
     from .report.html import nca_sections
 
@@ -383,6 +384,27 @@ def run_nca(study, options=None, *, colour: bool = False) -> Run:
                                or "no subjects to analyse")
     conv = report.UnitConverter(study.output or None)
     doc, text = _with_import(study, result.document(conv), result.summary(conv, colour=colour))
+    empty = [r for r in result.results if r.mode == "not computed"]
+    for r in empty:     # a subject without any result is a failed item (exit 1), named
+        doc.setdefault("failures", []).append({"item": f"subject '{r.subject}'", "problems": [
+            {"file": None, "item": f"subject '{r.subject}'", "field": None,
+             "message": "no non-compartmental result: " + "; ".join(
+                 n for n in r.notes if "at least" in n or "nothing" in n or "no " in n[:3])
+             or "no non-compartmental result", "expected": None}]})
+    if pp is not None:
+        from .report.pp import pp_datasets, pp_summary, write_pp
+
+        rep = study.import_report or {}
+        study_id = rep.get("study") or (Path(study.files[0]).stem if study.files else "STUDY")
+        records, relation, own = pp_datasets(
+            result.results, study_id=study_id, analyte=rep.get("analyte_name") or
+            rep.get("analyte") or "", specimen=rep.get("specimen") or "",
+            choice=result.options.interval, level_trace=study.level_trace,
+            level_file=study.files[1] if len(study.files) > 2 else
+            (study.files[0] if study.files else ""))
+        write_pp(pp, records, relation, own, study_id, study.level_trace is not None)
+        text += "\n" + pp_summary(records, own) + f"; written to {pp}"
+        doc["pp"] = {"folder": str(pp), "records": len(records), "own_terms": own}
 
     def figures() -> dict[str, Any]:
         from .plots import nca_figure
@@ -391,16 +413,19 @@ def run_nca(study, options=None, *, colour: bool = False) -> Run:
 
     def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
         slugs = unique_slugs([r.subject for r in result.results])
-        targets = [out / "nca.csv", out / "nca.json"] + [out / f"nca-{s}.png" for s in slugs]
+        targets = [out / "nca.csv", out / "nca-intervals.csv", out / "nca.json"] + [
+            out / f"nca-{s}.png" for s in slugs]
         check_not_input(targets, study.files)
         written = [report.write_atomic(out / f"nca-{s}.png", pngs[r.subject])
                    for r, s in zip(result.results, slugs, strict=True) if r.subject in pngs]
         written.append(report.write_atomic(out / "nca.csv",
                                            result.to_frame(conv).to_csv(index=False)))
+        written.append(report.write_atomic(out / "nca-intervals.csv",
+                                           result.intervals_frame(conv).to_csv(index=False)))
         written.append(report.write_atomic(out / "nca.json", report.dumps(doc)))
         return written + _export_tables(study, out)
 
-    return Run("nca", EXIT_PARTIAL if study.failures else EXIT_OK, doc, text,
+    return Run("nca", EXIT_PARTIAL if study.failures or empty else EXIT_OK, doc, text,
                list(study.files), study.title or "pkcalc nca", figures, files,
                lambda pngs: nca_sections(doc, pngs), warnings=result.warnings)
 

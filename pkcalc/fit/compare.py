@@ -57,7 +57,19 @@ class Comparison:
 def disagreement_causes(fit, nca, extrapolation_limit: float = 20.0) -> list[str]:
     """The assumptions that fail for this subject, in plain words (see the module)."""
     causes = []
-    if nca.mode == "steady state" and nca.interval:
+    if nca.mode == "total exposure":
+        causes.append(f"irregular doses ({nca.regimen}): NCA took the area from the first dose "
+                      "to infinity with the total amount, which relies on every interval being "
+                      "well sampled")
+    if nca.mode == "first dose":
+        causes.append("NCA's clearance is the first dose's dose/AUCinf (no steady-state "
+                      "interval area): it rests on the first interval's terminal slope and "
+                      "extrapolation")
+    if nca.mode == "steady state" and nca.steady_state is False:
+        why = next((n for n in nca.notes if "steady state" in n and ("reached" in n)), "")
+        causes.append("NCA's clearance dose/AUCtau assumes steady state" + (f": {why}" if why
+                                                                             else ""))
+    elif nca.mode == "steady state" and nca.interval:
         regular = float(np.ptp(fit.dose_start)) if fit.dose_start.size > 1 else 0.0
         half_life = max(fit.estimates["half_life"].value, nca.terminal_half_life or 0.0)
         if regular < STEADY_STATE_HALF_LIVES * half_life:
@@ -116,8 +128,10 @@ def compare_with_nca(fits, ncas, threshold: float = 20.0,
         checked = "steady state, extrapolated area, terminal points" + (
             ", adequacy of one compartment" if getattr(f, "adequacy", None) is not None
             else "; the adequacy check was off")
+        relied = "; ".join(getattr(n, "assumptions", ()) or ())
         because = ("; likely cause: " + "; ".join(causes)) if causes else (
-            f"; no failed assumption found ({checked}): check the records (doses, times, "
-            "units)")
+            f"; no failed assumption found ({checked})"
+            + (f"; NCA relied on: {relied}" if relied else "")
+            + ": check those, then the records (doses, times, units)")
         out.append(Comparison(f.subject, rows, [d + because for d in differ], causes))
     return out

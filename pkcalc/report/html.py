@@ -297,6 +297,21 @@ def nca_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
         lines_item("notes", [f"{k.replace('_', ' ')}: {v}" for k, v in doc["settings"].items()]),
         table_item(["quantity", "unit", *[f"subject {s['subject']}" for s in subjects]], rows,
                    "Non-compartmental results")]
+    interval_rows = [[s["subject"], d["number"], d.get("start_clock") or d["start"],
+                      d["length"], d["levels"], d["peak_concentration"], d["peak_time"],
+                      d["min_concentration"], d["trough_concentration"], d["auc_interval"],
+                      d["average_concentration"], d["fluctuation_percent"], d["clearance"],
+                      d["terminal_half_life"], "yes" if d["steady_state"] else "-",
+                      d["reason"] or ""]
+                     for s in subjects for d in s.get("intervals", [])]
+    if any(len(s.get("intervals", [])) > 1 for s in subjects):
+        t, c = u["time"], u["concentration"]
+        items.append(table_item(
+            ["subject", "dose #", f"start [{t}]", f"interval [{t}]", "levels",
+             f"Cmax [{c}]", f"Tmax [{t}]", f"Cmin [{c}]", f"trough [{c}]",
+             f"AUCtau [{u['auc']}]", f"Cavg [{c}]", "fluctuation [%]",
+             f"CL [{u['clearance']}]", f"t1/2 [{t}]", "steady state", "why not computed"],
+            interval_rows, "Per dosing interval (actual dosing times)"))
     notes = [f"subject {s['subject']} ({s['mode']}): {n}" for s in subjects for n in s["notes"]]
     items.append(lines_item("notes", notes))
     if doc.get("warnings"):

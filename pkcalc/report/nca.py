@@ -18,10 +18,59 @@ NCA_FIELDS: tuple[tuple[str, str | None], ...] = (
     ("volume_terminal", "volume"), ("volume_steady_state", "volume"),
     ("auc_interval", "auc"), ("average_concentration", "concentration"),
     ("fluctuation_percent", None), ("accumulation_ratio", None),
+    ("min_concentration", "concentration"), ("trough_concentration", "concentration"),
+)
+#: Fields of one dosing interval, with their kind of quantity.
+INTERVAL_FIELDS: tuple[tuple[str, str | None], ...] = (
+    ("peak_concentration", "concentration"), ("peak_time", "time"),
+    ("min_concentration", "concentration"), ("trough_concentration", "concentration"),
+    ("last_concentration", "concentration"), ("last_time", "time"),
+    ("auc_to_last", "auc"), ("auc_interval", "auc"),
+    ("average_concentration", "concentration"), ("fluctuation_percent", None),
+    ("auc_to_infinity", "auc"), ("auc_extrapolated_percent", None),
+    ("terminal_slope", "elimination_rate"), ("terminal_half_life", "time"),
+    ("adjusted_r2", None), ("clearance", "clearance"), ("volume_terminal", "volume"),
+    ("mean_residence_time", "time"), ("volume_steady_state", "volume"),
+    ("accumulation_ratio", None),
 )
 
 
-def nca_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
+def selected_intervals(result, choice: str = "each") -> list:
+    """The intervals a report shows: ``each``, ``first``, ``last`` or a dose number."""
+    rows = list(result.intervals)
+    if choice == "first":
+        return rows[:1]
+    if choice == "last":
+        return rows[-1:]
+    if choice.isdigit():
+        return [r for r in rows if r.number == int(choice)]
+    return rows
+
+
+def interval_dict(r, conv: UnitConverter, clock_origin: str | None = None) -> dict[str, Any]:
+    """One dosing interval's JSON object (display units)."""
+    out: dict[str, Any] = {"number": r.number, "kind": r.kind,
+                           "start": json_number(conv(r.start, "time")),
+                           "dose": json_number(conv(r.dose, "amount")),
+                           "infusion_time": json_number(conv(r.infusion_time, "time")),
+                           "length": json_number(conv(r.length, "time")),
+                           "levels": r.levels, "steady_state": bool(r.steady_state)}
+    if clock_origin:
+        from datetime import datetime, timedelta
+
+        origin = datetime.fromisoformat(clock_origin.replace("Z", "+00:00"))
+        out["start_clock"] = (origin + timedelta(hours=r.start)).isoformat(timespec="minutes")
+    for key, kind in INTERVAL_FIELDS:
+        value = getattr(r, key)
+        out[key] = json_number(value if kind is None else conv(value, kind))
+    out["trough_source"] = r.trough_source
+    out["points_used"] = [json_number(conv(x, "time")) for x in r.points_used]
+    out["reason"] = r.reason
+    out["notes"] = list(r.notes)
+    return out
+
+
+def nca_subject_dict(r, conv: UnitConverter, choice: str = "each") -> dict[str, Any]:
     """One subject's JSON object (docs/formats.md keys, display units)."""
     out: dict[str, Any] = {"subject": r.subject, "mode": r.mode,
                            "dose": json_number(conv(r.dose, "amount")),
@@ -32,15 +81,21 @@ def nca_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
         out[key] = json_number(value if kind is None else conv(value, kind))
     out["points_used"] = [json_number(conv(x, "time")) for x in r.points_used]
     out["notes"] = list(r.notes)
+    out["reference_dose"] = r.interval_number
+    out["steady_state"] = r.steady_state
+    out["regimen"] = r.regimen
+    out["assumptions"] = list(r.assumptions)
+    out["intervals"] = [interval_dict(x, conv, r.clock_origin)
+                        for x in selected_intervals(r, choice)]
     return out
 
 
 def nca_json(results, conv: UnitConverter, *, title: str | None = None, failures=(),
-             settings: dict[str, Any] | None = None) -> dict[str, Any]:
+             settings: dict[str, Any] | None = None, choice: str = "each") -> dict[str, Any]:
     """The ``pkcalc nca --json`` document."""
     doc = json_document("nca", conv, {
         "title": title, "settings": settings or {},
-        "subjects": [nca_subject_dict(r, conv) for r in results],
+        "subjects": [nca_subject_dict(r, conv, choice) for r in results],
         "failures": failures_json(failures),
     })
     doc["units"]["auc"] = conv.unit("auc")
@@ -63,9 +118,40 @@ _SHORT = {"peak_concentration": "Cmax", "peak_time": "Tmax", "auc_to_last": "AUC
           "accumulation_ratio": "accumulation"}
 
 
+_INTERVAL_COLUMNS = (("peak_concentration", "Cmax"), ("peak_time", "Tmax"),
+                     ("trough_concentration", "trough"), ("auc_interval", "AUCtau"),
+                     ("clearance", "CL"), ("terminal_half_life", "t1/2"))
+
+
+def interval_table(results, conv: UnitConverter, choice: str = "each") -> str:
+    """One row per dosing interval (actual times): the dose, its start, the interval,
+    the levels in it and the main values; the reasons below."""
+    unit = {k: conv.unit(kind) for k, kind in INTERVAL_FIELDS if kind}
+    headers = ["subject", "dose #", f"start [{conv.unit('time')}]",
+               f"interval [{conv.unit('time')}]", "levels",
+               *[f"{label} [{unit[k]}]" for k, label in _INTERVAL_COLUMNS], "steady state"]
+    rows, reasons = [], []
+    for r in results:
+        for x in selected_intervals(r, choice):
+            d = interval_dict(x, conv)
+            rows.append([r.subject, x.number, d["start"], d["length"], x.levels,
+                         *[d[k] for k, _ in _INTERVAL_COLUMNS],
+                         "yes" if x.steady_state else "-"])
+            if x.reason:
+                reasons.append(f"  subject {r.subject} dose {x.number}: {x.reason}")
+    if not rows:
+        return ""
+    text = ("Per dosing interval (actual dosing times; Tmax in hours after the dose; CL is "
+            "dose/AUCinf for a first dose, dose/AUCtau at steady state):\n"
+            + format_table(headers, rows))
+    return text + ("\n" + "\n".join(reasons) if reasons else "")
+
+
 def nca_text(results, conv: UnitConverter, *, title: str | None = None, failures=(),
-             warnings=(), settings: dict[str, Any] | None = None, colour: bool = False) -> str:
-    """Terminal output: caution, one row per subject, steady-state table, notes."""
+             warnings=(), settings: dict[str, Any] | None = None, colour: bool = False,
+             choice: str = "each") -> str:
+    """Terminal output: caution, one row per subject, steady-state table, intervals,
+    notes."""
     kinds = dict(NCA_FIELDS) | {"interval": "time"}
     unit_of = {k: ("%" if k.endswith("percent") else "" if kind is None else conv.unit(kind))
                for k, kind in kinds.items()}
@@ -87,6 +173,8 @@ def nca_text(results, conv: UnitConverter, *, title: str | None = None, failures
     steady = [d for d in dicts if d["mode"] == "steady state"]
     if steady:
         sections.append("Over one dosing interval at steady state:\n" + table(_STEADY, steady))
+    if any(len(r.intervals) > 1 for r in results):
+        sections.append(interval_table(results, conv, choice))
     note_lines = []
     for r, d in zip(results, dicts, strict=True):
         if d["points_used"]:
@@ -100,4 +188,5 @@ def nca_text(results, conv: UnitConverter, *, title: str | None = None, failures
                          failures=failures, colour=colour)
 
 
-__all__ = ["NCA_FIELDS", "nca_json", "nca_subject_dict", "nca_text"]
+__all__ = ["INTERVAL_FIELDS", "NCA_FIELDS", "interval_dict", "interval_table", "nca_json",
+           "nca_subject_dict", "nca_text", "selected_intervals"]

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..core import NCA_AUC_METHODS, NCA_BLQ_RULES, NcaOptions, Study, SubjectData
+from ..core import NCA_AUC_METHODS, NCA_BLQ_RULES, NCA_INTERVALS, NcaOptions, Study, SubjectData
 from ..errors import PkcalcInputError, Problem
 from ..units import KINDS, NUMERIC_RANGE, parse_header, parse_unit
 
@@ -149,7 +149,7 @@ def _require(cols: Columns, names: list[str], problems: list[Problem]) -> None:
 #: are kept in the analysis tables and never read as data.
 TRACE_COLUMNS = frozenset({"source", "usubjid", "pcseq", "exseq", "ecseq", "visit", "pctpt",
                            "time_basis", "reference_dose", "treatment", "administration",
-                           "specimen", "analyte"})
+                           "specimen", "analyte", "studyid"})
 
 
 def _warn_unknown(cols: Columns, known: set[str], warnings: list[str]) -> None:
@@ -260,7 +260,8 @@ def study_from_tables(lv: Columns, ds: Columns, sb: Columns | None,
     _require(ds, ["subject", "start"], problems)
     if problems:
         raise PkcalcInputError(problems)
-    _warn_unknown(lv, {"subject", "time", "concentration", "lloq", "blq"}, warnings)
+    _warn_unknown(lv, {"subject", "time", "concentration", "lloq", "blq", "reference_time"},
+                  warnings)
     _warn_unknown(ds, {"subject", "start", "amount", "rate", "duration"}, warnings)
     files = [lv.file, ds.file]
     covariates: dict[str, dict[str, float]] = {}
@@ -284,7 +285,8 @@ def study_from_tables(lv: Columns, ds: Columns, sb: Columns | None,
     level_frame = pd.DataFrame({"subject": lvl["subject"], "time": lvl["time"],
                                 "conc": lvl["conc"], "lloq": lvl["lloq"], "blq": blq,
                                 "marked": lvl["blq_mark"],
-                                "row": np.arange(len(lvl["time"]))})
+                                "row": np.arange(len(lvl["time"])),
+                                "reference": lvl.get("reference", np.nan)})
     dose_frame = pd.DataFrame({"subject": dos["subject"], "start": dos["start"],
                                "amount": amount, "duration": duration})
     _cross_checks(level_frame, dose_frame, covariates, fails, warnings, lv, ds)
@@ -325,6 +327,10 @@ def _clock_to_hours(lvl, dos, fails: Failures, lv: Columns, ds: Columns) -> dict
         base = pd.Series(sub).map(origin_sec).to_numpy(float)
         hours = (sec - base) / 3600.0
         table[column] = pd.Series(hours, index=table[column].index)
+    if "reference_clock" in lvl:
+        base = pd.Series(l_sub).map(origin_sec).to_numpy(float)
+        lvl["reference"] = pd.Series((lvl["reference_clock"].seconds - base) / 3600.0,
+                                     index=lvl["time"].index)
     return origins
 
 
@@ -433,6 +439,12 @@ def _read_levels(lv: Columns, problems: list[Problem]) -> dict[str, Any]:
                    else pd.Series(np.nan, index=index))
     out["blq_mark"] = (_bool_column(lv, "blq", problems) if lv.has("blq")
                        else pd.Series(False, index=index))
+    if lv.has("reference_time"):                # the start of the dose each level refers to
+        if _is_clock(lv, "reference_time"):
+            out["reference_clock"] = _clock_column(lv, "reference_time", problems)
+            out["reference"] = pd.Series(np.nan, index=index)
+        else:
+            out["reference"], _ = lv.numeric("reference_time", "time", problems)
     if out["subject"].eq("").any():
         i = int(np.flatnonzero(out["subject"].eq("").to_numpy())[0])
         problems.append(Problem(f"empty subject at {lv.where(i)}", file=lv.file,
@@ -589,6 +601,7 @@ def _subjects(level_frame, dose_frame, covariates, fails: Failures, lv: Columns,
     blq = level_frame["blq"].to_numpy(bool)
     marked = level_frame["marked"].to_numpy(bool)
     rows = level_frame["row"].to_numpy(int)
+    reference = level_frame["reference"].to_numpy(float)
     l_order = np.argsort(codes, kind="stable")               # by subject, file order within
     d_start = dose_frame["start"].to_numpy(float)
     d_order = np.lexsort((d_start, d_codes))
@@ -637,7 +650,8 @@ def _subjects(level_frame, dose_frame, covariates, fails: Failures, lv: Columns,
             dose_duration=d_duration[di],
             covariates={k: x for k, x in cov.items() if k != "initial_concentration"},
             notes=tuple(notes), initial_concentration=initial,
-            clock_origin=origins.get(sid)))
+            clock_origin=origins.get(sid),
+            reference_time=reference[idx] if np.isfinite(reference[idx]).any() else None))
     return good
 
 
@@ -671,19 +685,47 @@ def _resolve_doses(given: dict[str, pd.Series]) -> tuple[pd.Series, pd.Series, p
 
 
 # --------------------------------------------------------------------------- options
+def _tolerance(value: Any, field: str) -> tuple[float, float]:
+    """``"10%,1 h"`` (or ``["10%", "1 h"]``) -> (0.10, 1.0): a share and a time."""
+    from ..units import to_canonical
+
+    parts = value if isinstance(value, list) else str(value).split(",")
+    expected = "a percentage and a time, the larger applies, e.g. '10%,1 h'"
+    if len(parts) != 2:
+        raise PkcalcInputError(f"'{value}' is not a percentage and a time", field=field,
+                               expected=expected)
+    share = str(parts[0]).strip()
+    if not share.endswith("%"):
+        raise PkcalcInputError(f"'{share}' is not a percentage", field=field, expected=expected)
+    try:
+        fraction = float(share[:-1]) / 100
+    except ValueError:
+        raise PkcalcInputError(f"'{share}' is not a percentage", field=field,
+                               expected=expected) from None
+    hours = to_canonical(str(parts[1]).strip(), "time", field=field)
+    if not (0 <= fraction <= 1) or not (0 <= hours <= 1e4):
+        raise PkcalcInputError(f"'{value}' is outside 0-100 % or 0-10,000 h", field=field,
+                               expected=expected)
+    return fraction, hours
+
+
 def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOptions:
     """Validate the ``[nca]`` options (or the same keys from the command line).
 
     Keys: ``auc_method`` (``linear-up-log-down`` | ``linear``), ``blq``
     (``leading_zero`` | ``zero`` | ``drop``), ``terminal_points`` (subject ->
-    list of times with units), ``r2_tolerance``, ``extrapolation_limit`` (percent).
+    list of times with units), ``r2_tolerance``, ``extrapolation_limit`` (percent),
+    ``interval`` (``each`` | ``first`` | ``last`` | a dose number),
+    ``interval_tolerance`` and ``duration_tolerance`` (a percentage and a time, the
+    larger applies: ``"10%,1 h"`` or ``["10%", "1 h"]``).
     """
     from ..units import to_canonical
 
     raw = dict(raw or {})
     problems: list[Problem] = []
     out: dict[str, Any] = {}
-    allowed = {"auc_method", "blq", "terminal_points", "r2_tolerance", "extrapolation_limit"}
+    allowed = {"auc_method", "blq", "terminal_points", "r2_tolerance", "extrapolation_limit",
+               "interval", "interval_tolerance", "duration_tolerance"}
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"nca.{key}",
                                 expected=", ".join(sorted(allowed))))
@@ -706,6 +748,21 @@ def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOp
                                         field=f"nca.{key}"))
             else:
                 out[key] = float(value)
+    if "interval" in raw:
+        value = str(raw["interval"]).strip().lower()
+        if value in NCA_INTERVALS or (value.isdigit() and int(value) >= 1):
+            out["interval"] = value
+        else:
+            problems.append(Problem(f"unknown interval '{raw['interval']}'", file=file,
+                                    field="nca.interval",
+                                    expected="each, first, last or a dose number such as 3"))
+    for key in ("interval_tolerance", "duration_tolerance"):
+        if key in raw:
+            try:
+                out[key] = _tolerance(raw[key], f"nca.{key}")
+            except PkcalcInputError as exc:
+                problems += [Problem(p.message, file=file, field=p.field, expected=p.expected)
+                             for p in exc.problems]
     points = raw.get("terminal_points") or {}
     if not isinstance(points, dict):
         problems.append(Problem("must map subjects to lists of times", file=file,

@@ -25,7 +25,7 @@ from .terms import SYSTEMIC_SPECIMENS, iso_duration_hours
 
 __all__ = ["PC_VARIABLES", "choose_analyte", "map_levels"]
 
-PC_VARIABLES = {"USUBJID", "PCSEQ", "PCTESTCD", "PCTEST", "PCSPEC", "PCSTAT", "PCDTC",
+PC_VARIABLES = {"STUDYID", "USUBJID", "PCSEQ", "PCTESTCD", "PCTEST", "PCSPEC", "PCSTAT", "PCDTC",
                 "PCSTRESN", "PCSTRESC", "PCSTRESU", "PCLLOQ", "PCRFTDTC", "PCELTM",
                 "PCTPTREF", "PCTPT", "PCTPTNUM", "VISIT", "VISITNUM"}
 _BLQ_TEXT = re.compile(r"^\s*(?:<|BLQ|BQL|LLOQ|NQ|BELOW|NOT QUANTIFIABLE)", re.IGNORECASE)
@@ -59,6 +59,8 @@ def choose_analyte(pc: Dataset, analyte: str | None, log: ImportLog) -> str:
         chosen = match[0]
     log.analyte = chosen
     log.analyte_name = names.get(chosen, "")
+    studies = [s for s in pd.unique(pc.text("STUDYID")) if s]
+    log.study_id = studies[0] if studies else ""
     return chosen
 
 

@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ...clock import clock_text
+from ...clock import MINUTE, clock_text, parse_clock_array
 from ...core import Study
 from ...errors import PkcalcInputError, Problem
 from ..study import PRE_DOSE_RULES, Columns, Failures, study_from_tables
@@ -197,6 +197,7 @@ def _clock(levels, doses, fails: Failures, pc: Dataset, ex: Dataset, log: Import
     origins: dict[str, str] = {}
     if doses.empty:
         levels["hours"] = np.nan
+        levels["reference_hours"] = np.nan
         doses["hours"] = np.nan
         return origins
     first = doses.loc[doses.groupby("subject")["sec"].idxmin()]
@@ -210,7 +211,11 @@ def _clock(levels, doses, fails: Failures, pc: Dataset, ex: Dataset, log: Import
         origins[sid] = text
     doses["hours"] = (doses["sec"] - doses["subject"].map(origin)) / 3600.0
     at = np.where(np.isnan(levels["nominal_sec"]), levels["sec"], levels["nominal_sec"])
-    levels["hours"] = (at - levels["subject"].map(origin).to_numpy(float)) / 3600.0
+    base = levels["subject"].map(origin).to_numpy(float)
+    levels["hours"] = (at - base) / 3600.0
+    reference = parse_clock_array(levels["reference_dose"])
+    levels["reference_hours"] = np.where(reference.precision >= MINUTE,
+                                         (reference.seconds - base) / 3600.0, np.nan)
     trt = log.treatment or "the treatment"
     log.time_origin = (f"each subject's first administration of {trt} "
                        f"({ex.domain.upper()}STDTC); levels before it are pre-dose levels")
@@ -246,7 +251,8 @@ def _study(levels, doses, subjects, data, ex: Dataset, fails, origins, pre_dose,
     lv_frame = pd.DataFrame({
         "subject": levels["subject"], "time [h]": levels["hours"],
         "concentration [mg/L]": levels["conc"], "lloq [mg/L]": levels["lloq"],
-        "blq": levels["blq"].astype(bool), "source": levels["source"]})
+        "blq": levels["blq"].astype(bool), "source": levels["source"],
+        "pcseq": levels["pcseq"], "reference_time [h]": levels["reference_hours"]})
     p = ex.domain.upper()
     ds_frame = pd.DataFrame({"subject": doses["subject"], "start [h]": doses["hours"],
                              "amount [mg]": doses["amount"], "duration [h]": doses["duration"],
@@ -275,6 +281,7 @@ def _study(levels, doses, subjects, data, ex: Dataset, fails, origins, pre_dose,
     study = study_from_tables(lv, ds, sb, fails, pre_dose=pre_dose,
                               origins={s: o for s, o in origins.items()})
     study.files = [d.path or d.name for d in data.values()]
+    study.level_trace = lv.frame[["source", "pcseq"]]
     if sb is not None:  # the subjects table's own warnings (subjects in DM only) are noise
         study.warnings = [w for w in study.warnings if "subjects table" not in w]
     return study

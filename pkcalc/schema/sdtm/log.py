@@ -27,6 +27,7 @@ class ImportLog:
         self.skipped: dict[str, dict[str, dict[str, Any]]] = defaultdict(dict)
         self.analyte: str | None = None
         self.analyte_name = ""
+        self.study_id = ""
         self.specimen: str | None = None
         self.treatment: str | None = None
         self.specimens: dict[str, dict[str, Any]] = {}
@@ -71,7 +72,8 @@ class ImportLog:
                 if e["problem"]]
 
     def as_dict(self) -> dict[str, Any]:
-        return {"folder": self.folder, "datasets": dict(self.datasets), "analyte": self.analyte,
+        return {"folder": self.folder, "datasets": dict(self.datasets), "study": self.study_id,
+                "analyte": self.analyte, "analyte_name": self.analyte_name,
                 "specimen": self.specimen, "treatment": self.treatment,
                 "specimens": self.specimens, "treatments": self.treatments,
                 "time_origin": self.time_origin, "time_basis": dict(self.time_basis),
