@@ -499,6 +499,20 @@ def option_cases() -> list[Case]:
         ("population-reference-weight", "Q2", ("population", "study.toml",
                                                "--reference-weight", "70 L"), "dimension"),
         ("nca-terminal-bad", "F3", ("nca", "study.toml", "--terminal", "A"), "terminal"),
+        ("nca-interval-word", "N1", ("nca", "study.toml", "--interval", "middle"),
+         "unknown interval"),
+        ("nca-interval-zero", "N1", ("nca", "study.toml", "--interval", "0"), "unknown interval"),
+        ("nca-tolerance-no-percent", "N1", ("nca", "study.toml", "--interval-tolerance",
+                                            "10,1 h"), "not a percentage"),
+        ("nca-tolerance-one-part", "N1", ("nca", "study.toml", "--interval-tolerance", "10%"),
+         "a percentage and a time"),
+        ("nca-tolerance-wrong-unit", "N1", ("nca", "study.toml", "--duration-tolerance",
+                                            "10%,5 mg"), "dimension"),
+        ("nca-tolerance-huge", "N1", ("nca", "study.toml", "--interval-tolerance",
+                                      "150%,1 h"), "outside"),
+        ("nca-pp-is-a-file", "N2", ("nca", "study.toml", "--pp", "levels.csv"), "--pp"),
+        ("nca-pp-is-the-study-folder", "N2", ("nca", "--sdtm", ".", "--pp", "."),
+         "input folder"),
     ]
     out = [Case(i, r, a, study, 2, p) for i, r, a, p in rows]
     pop = [  # population options: M1-M3 (a single model refused before any estimate)

@@ -115,3 +115,23 @@ def test_references_assign_levels_to_their_dose():
                     reference=ref)
     assert r.intervals[0].levels == 4 and r.intervals[1].levels == 4
     assert any("pre-dose level drawn 0.25 h before dose 2" in n for n in r.intervals[1].notes)
+
+
+def test_interval_choice_and_outputs(run_cli, tmp_path):
+    import pandas as pd
+
+    from tests.conftest import SCENARIOS
+
+    r = run_cli("nca", SCENARIOS / "demo-sdtm.toml", "--interval", "last", "--json",
+                "--out", tmp_path / "o")
+    assert r.code == 0, r.err
+    v11 = next(s for s in r.json()["subjects"] if s["subject"] == "INVENTED-V11")
+    assert [d["number"] for d in v11["intervals"]] == [4]
+    assert v11["intervals"][0]["start_clock"].startswith("2026-")
+    frame = pd.read_csv(tmp_path / "o" / "nca-intervals.csv")
+    assert (frame.groupby("subject")["number"].count() == 1).all()
+    r = run_cli("nca", SCENARIOS / "demo-sdtm.toml", "--report", tmp_path / "r.html")
+    html = (tmp_path / "r.html").read_text(encoding="utf-8")
+    assert "Per dosing interval" in html and "why not computed" in html
+    text = run_cli("nca", SCENARIOS / "demo-sdtm.toml").out
+    assert "Per dosing interval" in text and "dose #" in text

@@ -109,7 +109,7 @@ def test_not_computed_intervals_are_not_done_records(written):
 def test_relrec_names_the_pc_rows_used(written, package):
     import pyreadstat
 
-    rel, meta = pyreadstat.read_xport(str(written / "relrec.xpt"))
+    rel, _ = pyreadstat.read_xport(str(written / "relrec.xpt"))
     assert list(rel.columns) == [v for v, _, _ in RELREC_VARIABLES]
     pp, _ = pyreadstat.read_xport(str(written / "pp.xpt"))
     pc_seq = {str(int(x)) for x in package.frames["pc"]["PCSEQ"]}
