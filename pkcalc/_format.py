@@ -114,3 +114,29 @@ def format_table(headers: Sequence[str], rows: Sequence[Sequence[object]],
     out = [line(headers, True), "  ".join("-" * w for w in widths)]
     out += [line(r) for r in cells]
     return "\n".join(out)
+
+
+def format_table_fit(headers: Sequence[str], rows: Sequence[Sequence[object]], *,
+                     width: int = 100, keep: int = 1, digits: int = 4) -> str:
+    """:func:`format_table`, split into several tables of at most ``width`` columns
+    when it is wider (the first ``keep`` columns repeated in each part)."""
+    whole = format_table(headers, rows, digits=digits)
+    if max(len(line) for line in whole.splitlines()) <= width or len(headers) <= keep + 1:
+        return whole
+    cells = [[fmt(c, digits) for c in row] for row in rows]
+    col_width = [max([len(h), *(len(r[j]) for r in cells)]) + 2 for j, h in enumerate(headers)]
+    base = sum(col_width[:keep])
+    parts, current, used = [], [], base
+    for j in range(keep, len(headers)):
+        if current and used + col_width[j] > width:
+            parts.append(current)
+            current, used = [], base
+        current.append(j)
+        used += col_width[j]
+    parts.append(current)
+    tables = []
+    for group in parts:
+        cols = list(range(keep)) + group
+        tables.append(format_table([headers[j] for j in cols],
+                                   [[row[j] for j in cols] for row in rows], digits=digits))
+    return "\n\n".join(tables)

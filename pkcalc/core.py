@@ -617,6 +617,7 @@ class DesignCase:
     volume: float | None
     options: dict[str, Any]
     weight: float | None = None
+    clock_origin: str | None = None
 
 
 

@@ -17,11 +17,13 @@ from .common import (
     DesignResult,
     Limits,
     Regimen,
+    check_levels,
     open_infusion_record,
     rate_for_target,
     records_events,
     round_to_step,
 )
+from .consistency import fit_misses, rising_while_eliminating, unreachable
 from .continuous import design_continuous
 from .intermittent import design_intermittent, first_dose_records
 from .levels import (
@@ -33,11 +35,56 @@ from .levels import (
 )
 from .projection import (
     PROJECTION_HORIZON,
+    TIME_STEP,
     CurrentState,
     current_state,
     default_start,
     history_events,
+    prescribed_interval,
 )
+
+#: Share of steady state from which the steady-state formulas apply (five half-lives,
+#: 1 - 2^-5; a fact of the trade).
+STEADY_SHARE = 1 - 2.0**-5
+#: A history longer than this many half-lives makes "one clearance throughout" a real
+#: assumption (common practice).
+LONG_HISTORY_HALF_LIVES = 3.0
+
+
+def steady_state_validity(events, t_level: float, k: float) -> str:
+    """Whether a level drawn at ``t_level`` after the recorded doses is at steady state,
+    in words: the share reached after the dosing so far (``1 - exp(-k T)``, one
+    exponential; calc)."""
+    start, _, duration = events
+    given = start[(duration >= 0) & (start <= t_level)]
+    if not given.size:
+        return "valid at steady state only"
+    span = t_level - float(given.min())
+    share = -np.expm1(-k * span)
+    if share >= STEADY_SHARE:
+        return (f"valid at steady state only: the level was drawn {short(span)} h after dosing "
+                f"began ({short(span * k / model.LN2)} half-lives), at steady state")
+    return (f"valid at steady state only -- NOT at steady state here: the level was drawn "
+            f"{short(span)} h after dosing began ({short(span * k / model.LN2)} half-lives, "
+            f"{share:.0%} of steady state); do not use it")
+
+
+def long_history_note(events, t_last: float, k: float) -> str | None:
+    """A note when the estimate assumes one clearance over a history of several
+    half-lives (a changing clearance would be averaged)."""
+    start, _, duration = events
+    given = start[(duration >= 0) & (start <= t_last)]
+    if given.size < 2:
+        return None
+    span = t_last - float(given.min())
+    half = model.LN2 / k
+    if span <= LONG_HISTORY_HALF_LIVES * half:
+        return None
+    return (f"one clearance is assumed over the whole recorded history ({short(span)} h, "
+            f"{short(span / half)} half-lives): if it changed (renal function), the estimates "
+            "average over the change; to individualise from the current dose only, give a "
+            "measured pre-dose level and a level after that dose without the earlier doses "
+            "(method sawchuk_zaske, steady_state = false)")
 
 
 # --------------------------------------------------------------------------- adjustments
@@ -58,6 +105,7 @@ def adjust_proportional(
     history: Sequence | None = None,
     start: float | None = None,
     initial_concentration: float | None = None,
+    time_step: float = TIME_STEP,
     name: str = "adjustment",
 ) -> DesignResult:
     """New rate (or dose) from one level, for linear kinetics.
@@ -93,11 +141,16 @@ def adjust_proportional(
     ratio = target / measured
     if history and volume is not None and measured_time is not None:
         events = history_events(history, salt_factor, initial_concentration)
+        impossible = unreachable(events, [(measured_time, measured)], volume)
+        if impossible:
+            raise ValueError(impossible[0])
         cl_ind = one_level_clearance(events, measured_time, measured, volume)
         if current_dose is not None:
+            check_levels_outside_infusions(events, {"measured": measured_time})
+            tau, how = prescribed_interval(history, interval)
             return _proportional_intermittent(events, cl_ind, volume, measured, measured_time,
-                                              target, current_dose, interval, salt_factor,
-                                              dose_step, start, name)
+                                              target, current_dose, tau, how, salt_factor,
+                                              dose_step, start, window, time_step, name)
         st, basis = (start, "as given") if start is not None else (
             measured_time, "the time of the level")
         state = current_state(events, cl_ind, volume, st, basis, [(measured_time, measured)])
@@ -114,30 +167,30 @@ def adjust_proportional(
     else:
         return _proportional_classical(measured, target, ratio, current_rate, current_dose,
                                        interval, clearance, volume, salt_factor, rate_step,
-                                       dose_step, name)
+                                       dose_step, window, name)
     result = design_continuous(cl_ind, volume, target, window=window, salt_factor=salt_factor,
                                rate_step=rate_step, dose_step=dose_step, state=state,
-                               name=name)
+                               time_step=time_step, name=name)
     result.method = "proportional"
     k = cl_ind / volume
-    result.estimates = {"ratio_target_to_measured": ratio, "clearance": cl_ind,
-                        "elimination_rate": k, "half_life": model.LN2 / k,
-                        "level_at_start": state.level}
+    result.estimates = {"clearance": cl_ind, "elimination_rate": k,
+                        "half_life": model.LN2 / k, "level_at_start": state.level}
     result.notes.insert(0, basis_note)
     holds = [r.exact["hold"] for r in result.regimens if "hold" in r.exact]
     if holds:
         result.estimates["pause_before_new_rate"] = holds[0]
     if current_rate is not None:
-        classical = current_rate * ratio
-        result.estimates["classical_new_rate"] = classical
-        result.notes.append(f"the steady-state ratio rule (old rate x target / level) gives "
-                            f"{short(classical)} mg/h")
+        validity = (steady_state_validity(events, measured_time, k) if history else
+                    "valid at steady state only (no dose history given: assumed)")
+        result.formulas.append({"name": "ratio rule: new rate = old rate x target / level",
+                                "key": "classical_new_rate", "value": current_rate * ratio,
+                                "kind": "rate", "validity": validity})
     result.notes.append("assumes linear one-compartment kinetics")
     return result
 
 
 def _proportional_classical(measured, target, ratio, current_rate, current_dose, interval,
-                            clearance, volume, salt_factor, rate_step, dose_step, name):
+                            clearance, volume, salt_factor, rate_step, dose_step, window, name):
     """The steady-state ratio rule alone (no volume or history to project a course)."""
     estimates: dict[str, float] = {"ratio_target_to_measured": ratio}
     notes, regimens, warnings = [], [], []
@@ -148,8 +201,9 @@ def _proportional_classical(measured, target, ratio, current_rate, current_dose,
         estimates["clearance"] = cl_ind
         predicted = {"plateau": salt_factor * rate / cl_ind, "peak": None, "trough": None,
                      "average": salt_factor * rate / cl_ind}
+        accept = window or Limits.around(target, 0.10)
         regimens.append(Regimen(f"new rate {short(rate)} mg/h", rate=rate, predicted=predicted,
-                                meets_target=abs(predicted["plateau"] / target - 1) <= 0.1,
+                                meets_target=accept.violation(predicted["plateau"], "x") is None,
                                 exact={"rate": exact},
                                 doses=(open_infusion_record(0.0, rate),)))
         warnings.append("no volume given: the course from the current level (and a hold before "
@@ -158,20 +212,23 @@ def _proportional_classical(measured, target, ratio, current_rate, current_dose,
         exact = current_dose * ratio
         dose = round_to_step(exact, dose_step)
         level = measured * dose / current_dose
+        accept = window or Limits.around(target, 0.10)
         regimens.append(Regimen(f"new dose {short(dose)} mg", dose=dose, interval=interval,
                                 predicted={"level": level},
-                                meets_target=abs(level / target - 1) <= 0.1,
+                                meets_target=accept.violation(level, "x") is None,
                                 exact={"dose": exact}))
         warnings.append("no dose history given: the new dose is judged at steady state only; "
                         "give doses = [...] and the level's time to project the course")
-    notes.append("assumes linear kinetics and a level drawn at steady state")
+    notes.append("the ratio rule is valid at steady state only; without a dose history "
+                 "pkcalc cannot check that the level was drawn at steady state (assumed)")
     return DesignResult(name, "proportional", clearance, volume, regimens,
                         target={"plateau": target}, estimates=estimates, notes=notes,
                         warnings=warnings, salt_factor=salt_factor)
 
 
 def _proportional_intermittent(events, cl, v, measured, t_level, target, current_dose,
-                               interval, salt_factor, dose_step, start, name) -> DesignResult:
+                               tau, how, salt_factor, dose_step, start, window, time_step,
+                               name) -> DesignResult:
     """Same interval, the dose whose steady-state level at the sampled point is the target,
     started from the current state and judged on the projected course."""
     st, _, du = events
@@ -179,50 +236,46 @@ def _proportional_intermittent(events, cl, v, measured, t_level, target, current
     last = float(given.max())
     t_inf = float(du[(du >= 0) & (st == last)].max())
     phase = t_level - last
-    tau = interval if interval is not None else _history_interval(st[du >= 0], last)
+    if tau is None:
+        raise ValueError("give current_interval: the history has a single dose")
     per_mg = float(model.steady_state_profile([phase % tau], [0.0], [salt_factor], [t_inf],
                                               tau, cl, v)[0])
     exact = target / per_mg
     dose = round_to_step(exact, dose_step)
     if start is None:
-        start, basis = default_start(events, t_level, True)
+        start, basis = default_start(events, t_level, True, tau)
     else:
         basis = "as given"
     state = current_state(events, cl, v, start, basis, [(t_level, measured)])
     _, trough_ss, _ = (float(x) for x in model.steady_state_intermittent(
         salt_factor * dose, t_inf, tau, cl, v))
-    window = Limits.around(target, 0.10)
+    window = window or Limits.around(target, 0.10)
     reg = _first_dose_regimen(state, dose, tau, t_inf, trough_ss, cl, v, salt_factor,
-                              dose_step, phase, window)
+                              dose_step, phase, window, time_step)
     k = cl / v
-    return DesignResult(
+    result = DesignResult(
         name, "proportional", cl, v, [reg], state=state,
         target={"plateau": None, "level": target, "window": [window.low, window.high]},
         estimates={"clearance": cl, "elimination_rate": k, "half_life": model.LN2 / k,
-                   "level_at_start": state.level, "classical_new_dose":
-                   current_dose * target / measured},
+                   "level_at_start": state.level},
         notes=[f"clearance solved from the level after the recorded doses; the new dose gives "
                f"{short(target)} mg/L at {short(phase)} h after each dose at steady state "
-               f"(every {short(tau)} h); the regimen starts at {short(state.start)} h "
-               f"({basis}) from {short(state.level)} mg/L",
-               f"the steady-state ratio rule (old dose x target / level) gives "
-               f"{short(current_dose * target / measured)} mg"],
+               f"(every {short(tau)} h: {how}); the regimen starts at {short(state.start)} h "
+               f"({basis}) from {short(state.level)} mg/L"],
         salt_factor=salt_factor)
-
-
-def _history_interval(starts: np.ndarray, last: float) -> float:
-    earlier = np.sort(starts[starts < last])
-    if earlier.size == 0:
-        raise ValueError("give current_interval: the history has a single dose")
-    return float(last - earlier[-1])
+    result.formulas.append({"name": "ratio rule: new dose = old dose x target / level",
+                            "key": "classical_new_dose",
+                            "value": current_dose * target / measured, "kind": "amount",
+                            "validity": steady_state_validity(events, t_level, k)})
+    return result
 
 
 def _first_dose_regimen(state, dose, tau, t_inf, trough_ss, cl, v, salt_factor, dose_step,
-                        phase, window: Limits) -> Regimen:
+                        phase, window: Limits, time_step: float = TIME_STEP) -> Regimen:
     """Dose every ``tau`` from the state (first dose joins steady state); flags when the
     projected level ``phase`` h after a dose (after the first) leaves ``window``."""
     records, first_dose, label, _ = first_dose_records(state, dose, tau, t_inf, trough_ss, cl,
-                                                       v, salt_factor, dose_step)
+                                                       v, salt_factor, dose_step, time_step)
     end = state.start + PROJECTION_HORIZON
     ev = records_events(records, salt_factor, end)
     starts = ev[0][ev[0] < end][1:]
@@ -249,7 +302,8 @@ def adjust_two_levels(
     target: float, *, salt_factor: float = 1.0, rate_step: float | None = DEFAULT_RATE_STEP,
     dose_step: float | None = DEFAULT_DOSE_STEP, window: Limits | None = None,
     history: Sequence | None = None, start: float | None = None,
-    initial_concentration: float | None = None, name: str = "adjustment",
+    initial_concentration: float | None = None, time_step: float = TIME_STEP,
+    name: str = "adjustment",
 ) -> DesignResult:
     """Chiou and exact two-level clearance, then a new rate from the level now.
 
@@ -261,9 +315,14 @@ def adjust_two_levels(
     an initial level at ``t1``), and Chiou's formula uses the average rate
     between the draws.  The new regimen starts at ``start`` (default ``t2``)
     from the level then present (see :func:`pkcalc.design.design_continuous`).
+    With a history both levels must be reachable from the recorded doses with the
+    stated volume (:func:`pkcalc.design.consistency.unreachable`); otherwise every
+    proposal is *check levels*.
     """
+    suspects: list[str] = []
     if history:
         events = history_events(history, salt_factor, initial_concentration)
+        suspects = unreachable(events, [(t1, c1), (t2, c2)], volume)
         _, after = model.split_events(*events, t1)
         inside = model.split_events(*after, t2)[0]
         infused = float(inside[1][inside[2] >= 0].sum())
@@ -281,7 +340,8 @@ def adjust_two_levels(
         basis = "as given"
     state = current_state(from_first, cl_exact, volume, start, basis, [(t1, c1), (t2, c2)])
     result = design_continuous(cl_exact, volume, target, window=window, salt_factor=salt_factor,
-                               rate_step=rate_step, dose_step=dose_step, state=state, name=name)
+                               rate_step=rate_step, dose_step=dose_step, state=state,
+                               time_step=time_step, name=name)
     result.method = "chiou"
     diff = cl_chiou / cl_exact - 1
     chiou_rate = round_to_step(rate_for_target(target, cl_chiou, salt_factor), rate_step)
@@ -299,11 +359,11 @@ def adjust_two_levels(
     if history:
         result.notes.append(f"input between the levels from the recorded doses: average "
                             f"{short(drug_rate)} mg/h of drug")
-    if abs(diff) > 0.05:
+    if abs(diff) > 0.05 and not suspects:
         result.warnings.append(f"Chiou's clearance differs from the exact solution by "
                                f"{diff:+.1%}: the levels are far apart for the trapezoid "
                                "approximation")
-    return result
+    return check_levels(result, suspects)
 
 
 def adjust_peak_trough(
@@ -317,7 +377,7 @@ def adjust_peak_trough(
     dose_step: float | None = DEFAULT_DOSE_STEP, salt_factor: float = 1.0,
     max_dose: float | None = None, history: Sequence | None = None,
     start: float | None = None, initial_concentration: float | None = None,
-    name: str = "adjustment",
+    time_step: float = TIME_STEP, name: str = "adjustment",
 ) -> DesignResult:
     """Sawchuk-Zaske individualisation, then a new dose and interval from the level now.
 
@@ -339,14 +399,16 @@ def adjust_peak_trough(
             raise ValueError("design.infusion_time: the new regimen needs an infusion time")
         cl, v = est["clearance"], est["volume"]
         last = max(peak_time, trough_time)
+        tau_rx, _how = prescribed_interval(history, interval)
         if start is None:
-            start, basis = default_start(events, last, True)
+            start, basis = default_start(events, last, True, tau_rx)
         else:
             basis = "as given"
         state = current_state(events, cl, v, start, basis, pair)
         note = ("individual k and V: the two levels solved exactly with every recorded dose "
                 "superposed (one compartment; the Sawchuk-Zaske idea without the steady-state "
                 "assumption)")
+        long_note = long_history_note(events, last, est["elimination_rate"])
     else:
         est = sawchuk_zaske(dose, infusion_time, interval, peak_level, peak_time, trough_level,
                             trough_time, pre_dose_level=pre_dose_level,
@@ -362,13 +424,26 @@ def adjust_peak_trough(
                                               (trough_time, trough_level)])
         note = ("individual k from the log-linear decline between the two levels; V from the "
                 "peak at the end of the infusion and the pre-dose level (Sawchuk & Zaske 1976)")
+        long_note = None
     result = design_intermittent(
         cl, v, t_new, peak=peak, trough=trough, peak_limits=peak_limits,
         trough_limits=trough_limits, auc_24=auc_24, intervals=intervals, dose_step=dose_step,
-        salt_factor=salt_factor, max_dose=max_dose, state=state, name=name)
+        salt_factor=salt_factor, max_dose=max_dose, state=state, time_step=time_step,
+        name=name)
     result.method = "sawchuk_zaske"
-    result.estimates = {**est, "level_at_start": state.level}
+    assumed_pre = not history and pre_dose_level is None
+    result.estimates = {k: x for k, x in est.items()
+                        if not (assumed_pre and k == "pre_dose_level")}
+    result.estimates["level_at_start"] = state.level
+    if assumed_pre:
+        how = ("the trough extrapolated back to the dose" if trough_time < 0 else
+               "the steady-state trough (steady state assumed)")
+        result.assumed["pre_dose_level"] = est["pre_dose_level"]
+        result.notes.insert(0, f"the pre-dose level is assumed, not measured: {how}; the "
+                               "classical method is valid at steady state only")
     result.notes.insert(0, note)
+    if long_note:
+        result.notes.append(long_note)
     return result
 
 
@@ -393,6 +468,7 @@ def design_from_case(case: DesignCase) -> DesignResult:
 
     if result.clearance and result.volume:
         result.warnings.extend(parameter_warnings(result.clearance, result.volume, case.weight))
+    result.clock_origin = case.clock_origin
     return result
 
 
@@ -401,7 +477,8 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
                trough_limits=None, intervals=DEFAULT_INTERVALS, weight=None,
                salt_factor: float = 1.0, start: float | None = None,
                initial_concentration: float | None = None, loading_time: float = 0.0,
-               name: str = "adjustment", **rounding) -> DesignResult:
+               name: str = "adjustment", interval: float | None = None,
+               time_step: float = TIME_STEP, **rounding) -> DesignResult:
     """Bayesian (MAP) individualisation from any levels, then a new regimen from now.
 
     The individual clearance and volume are the posterior mode given the levels
@@ -412,32 +489,44 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
     judged on its projected course (see :mod:`pkcalc.design.projection`): a
     continuous infusion to ``plateau`` / ``auc_24``, or repeated infusions of
     ``infusion_time`` to the peak/trough targets or limits and/or ``auc_24``.
+
+    ``levels`` are ``(time, level)`` or ``(time, level, blq, lloq)``: a level below
+    the LLOQ enters by the censored likelihood (Beal's M3).  Before the proposals
+    are trusted the levels are checked (:mod:`pkcalc.design.consistency`): a rise
+    with nothing given, a level the estimate misses by more than two residual SDs
+    or an estimate that did not converge make every proposal *check levels*.
     """
     from ..fit import fit_subjects
 
     t = np.array([x[0] for x in levels], float)
-    c = np.array([x[1] for x in levels], float)
+    c = np.array([np.nan if x[1] is None else x[1] for x in levels], float)
+    blq = np.array([bool(x[2]) if len(x) > 2 else False for x in levels])
+    lloq = np.array([x[3] if len(x) > 3 and x[3] is not None else np.nan for x in levels],
+                    float)
     order = np.argsort(t)
     events = history_events(doses, salt_factor, initial_concentration)
-    subject = SubjectData(name, t[order], c[order], np.full(t.size, np.nan),
-                          np.zeros(t.size, bool), np.arange(t.size), *events,
+    subject = SubjectData(name, t[order], np.where(blq, np.nan, c)[order], lloq[order],
+                          blq[order], np.arange(t.size), *events,
                           covariates={} if weight is None else {"weight": weight})
-    fits, failures = fit_subjects([subject], FitOptions(prior=prior, blq="drop"))
+    fits, failures = fit_subjects([subject], FitOptions(prior=prior, blq="likelihood"))
     if not fits:
         raise ValueError(f"the MAP estimate failed: {failures[0][1]}")
     fit = fits[0]
     cl, v = fit.clearance, fit.volume
     continuous = plateau is not None or (auc_24 is not None and infusion_time is None)
     if start is None:
-        start, basis = default_start(events, float(t.max()), not continuous)
+        tau_rx, _ = prescribed_interval(doses, interval)
+        start, basis = default_start(events, float(t.max()), not continuous, tau_rx)
     else:
         basis = "as given"
-    state = current_state(events, cl, v, start, basis, zip(t, c, strict=True))
+    measured = [(tt, cc) for tt, cc, b in zip(t, c, blq, strict=True) if not b]
+    state = current_state(events, cl, v, start, basis, measured)
     result = _design_from_state(state, cl, v, continuous, salt_factor, name, rounding,
                                 plateau=plateau, window=window, auc_24=auc_24,
                                 loading_time=loading_time, infusion_time=infusion_time,
                                 peak=peak, trough=trough, peak_limits=peak_limits,
-                                trough_limits=trough_limits, intervals=intervals)
+                                trough_limits=trough_limits, intervals=intervals,
+                                time_step=time_step)
     result.method = "map"
     result.estimates = {"clearance": cl, "volume": v,
                         "half_life": fit.estimates["half_life"].value,
@@ -447,8 +536,16 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
                            f"{fit.n_obs} level(s) and the prior ({prior.source or 'inline'})")
     result.notes += fit.notes
     result.warnings += fit.warnings
+    if blq.any():
+        result.notes.append(f"{int(blq.sum())} level(s) below the LLOQ enter as P(C < LLOQ) "
+                            "(censored likelihood, Beal's M3)")
     _adequacy_of_levels(subject, fit, prior, result)
-    return result
+    long_note = long_history_note(events, float(t.max()), cl / v)
+    if long_note:
+        result.notes.append(long_note)
+    suspects = rising_while_eliminating(events, measured)
+    suspects += fit_misses(fit, prior.additive, prior.proportional)
+    return check_levels(result, suspects)
 
 
 def _adequacy_of_levels(subject: SubjectData, fit, prior, result: DesignResult) -> None:
@@ -473,15 +570,15 @@ _INTERMITTENT_KEYS = ("dose_step", "max_dose", "max_loading_ratio")
 def _design_from_state(state, cl, v, continuous, salt_factor, name, rounding, *, plateau=None,
                        window=None, auc_24=None, loading_time=0.0, infusion_time=None,
                        peak=None, trough=None, peak_limits=None, trough_limits=None,
-                       intervals=DEFAULT_INTERVALS) -> DesignResult:
+                       intervals=DEFAULT_INTERVALS, time_step=TIME_STEP) -> DesignResult:
     """The new regimen from the patient's state, continuous or intermittent."""
     if continuous:
         return design_continuous(cl, v, plateau, window=window, auc_24=auc_24,
                                  loading_time=loading_time or 0.0, salt_factor=salt_factor,
-                                 state=state, name=name,
+                                 state=state, time_step=time_step, name=name,
                                  **{k: x for k, x in rounding.items() if k in _CONTINUOUS_KEYS})
     return design_intermittent(cl, v, infusion_time, peak=peak, trough=trough,
                                peak_limits=peak_limits, trough_limits=trough_limits,
                                auc_24=auc_24, intervals=intervals, salt_factor=salt_factor,
-                               state=state, name=name,
+                               state=state, time_step=time_step, name=name,
                                **{k: x for k, x in rounding.items() if k in _INTERMITTENT_KEYS})

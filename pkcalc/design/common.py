@@ -4,7 +4,7 @@ and the result types."""
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -236,6 +236,9 @@ class Regimen:
         When the regimen starts (history clock; 0 for a design without history).
     doses : tuple of DoseRecord
         The exact dose records proposed (product amounts), for re-simulation.
+    check_levels : bool
+        The levels the proposal rests on failed a consistency check
+        (:mod:`pkcalc.design.consistency`): never *meets target*.
     """
 
     label: str
@@ -251,6 +254,20 @@ class Regimen:
     exact: dict[str, float] = field(default_factory=dict)
     start: float = 0.0
     doses: tuple[DoseRecord, ...] = ()
+    check_levels: bool = False
+
+    @property
+    def status(self) -> str:
+        """``meets target``, ``FLAG`` (a limit missed) or ``check levels``."""
+        if self.check_levels:
+            return "check levels"
+        return "meets target" if self.meets_target else "FLAG"
+
+    @property
+    def first_dose_time(self) -> float | None:
+        """When the first new dose is given (h, history clock)."""
+        starts = [d.start for d in self.doses]
+        return min(starts) if starts else None
 
     def events(self, salt_factor: float = 1.0, horizon: float | None = None) -> list[DoseEvent]:
         """Dose events of the regimen in drug amounts (``S x`` product), for prediction.
@@ -279,6 +296,37 @@ class Regimen:
             out.append(DoseEvent(first, salt_factor * self.dose, self.infusion_time or 0.0,
                                  self.interval if n > 1 else None, n))
         return out
+
+
+def clock_after(origin: str | None, hours: float | None) -> str | None:
+    """The ISO 8601 date-time ``hours`` after ``origin`` (to the minute)."""
+    if origin is None or hours is None:
+        return None
+    from datetime import datetime, timedelta
+
+    t = datetime.fromisoformat(origin.replace("Z", "+00:00")) + timedelta(hours=hours)
+    return t.isoformat(timespec="minutes")
+
+
+def _record_text(d: DoseRecord) -> str:
+    """One dose record in words (product amounts, h on the history clock)."""
+    if d.duration is None:
+        return f"from {short(d.start)} h {short(d.rate)} mg/h, ongoing"
+    what = (f"{short(d.amount)} mg bolus" if d.duration == 0 else
+            f"{short(d.amount)} mg over {short(d.duration)} h")
+    rep = f" every {short(d.every)} h x {d.count}" if d.every and d.count > 1 else ""
+    return f"at {short(d.start)} h {what}{rep}"
+
+
+def check_levels(result: DesignResult, suspects: list[str]) -> DesignResult:
+    """Mark every proposal *check levels* when the levels failed a consistency check."""
+    if not suspects:
+        return result
+    result.suspects += suspects
+    result.regimens = [replace(r, meets_target=False, check_levels=True)
+                       for r in result.regimens]
+    result.warnings[:0] = [f"check levels before using any proposal: {s}" for s in suspects]
+    return result
 
 
 def _unit_of(key: str) -> str:
@@ -311,6 +359,17 @@ class DesignResult:
     salt_factor : float
     state : CurrentState or None
         Where the patient was when the proposals start (designs from levels).
+    suspects : list of str
+        Levels that failed a consistency check, with the reason (proposals are then
+        *check levels*).
+    formulas : list of dict
+        Textbook values for reference (``name``, ``value``, ``kind``, ``validity``):
+        they are not the proposals' basis.
+    assumed : dict of str to float
+        Values assumed rather than estimated (e.g. a pre-dose level taken at steady
+        state).
+    clock_origin : str or None
+        ISO 8601 date-time of time 0 when the history came in clock times.
     """
 
     name: str
@@ -324,6 +383,10 @@ class DesignResult:
     warnings: list[str] = field(default_factory=list)
     salt_factor: float = 1.0
     state: Any = None
+    suspects: list[str] = field(default_factory=list)
+    formulas: list[dict[str, Any]] = field(default_factory=list)
+    assumed: dict[str, float] = field(default_factory=dict)
+    clock_origin: str | None = None
 
     @property
     def best(self) -> Regimen | None:
@@ -347,7 +410,14 @@ class DesignResult:
                    "interval [h]": r.interval, "infusion_time [h]": r.infusion_time}
             row.update({f"predicted_{k} [{_unit_of(k)}]": v for k, v in r.predicted.items()})
             row["meets_target"] = r.meets_target
+            row["status"] = r.status
             row["flags"] = " | ".join(r.flags)
+            row["start [h]"] = r.start
+            row["first_dose_at [h]"] = r.first_dose_time
+            if self.clock_origin:
+                row["start_clock"] = clock_after(self.clock_origin, r.start)
+                row["first_dose_clock"] = clock_after(self.clock_origin, r.first_dose_time)
+            row["doses"] = "; ".join(_record_text(d) for d in r.doses)
             rows.append(row)
         return pd.DataFrame(rows)
 
@@ -357,8 +427,9 @@ class DesignResult:
         if self.estimates:
             lines.append(format_table(["estimate", "value"],
                                       [[k, v] for k, v in self.estimates.items()]))
+        lines += [f"CHECK LEVELS: {s}" for s in self.suspects]
         for r in self.regimens:
-            mark = "meets target" if r.meets_target else "FLAG"
+            mark = r.status
             parts = [f"{k}={short(getattr(r, k))}" for k in
                      ("rate", "loading_dose", "loading_time", "dose", "interval",
                       "infusion_time") if getattr(r, k) is not None]

@@ -29,7 +29,14 @@ from .common import (
     round_inside,
     round_to_step,
 )
-from .projection import PROJECTION_HORIZON, CurrentState, first_time_at_or_above, project
+from .projection import (
+    PROJECTION_HORIZON,
+    TIME_STEP,
+    CurrentState,
+    first_time_at_or_above,
+    project,
+    round_time,
+)
 
 
 # --------------------------------------------------------------------------- continuous
@@ -78,6 +85,7 @@ def design_continuous(
     max_loading_ratio: float | None = DEFAULT_MAX_LOADING_RATIO,
     within: float = 0.10,
     state: CurrentState | None = None,
+    time_step: float = TIME_STEP,
     name: str = "design",
 ) -> DesignResult:
     """Constant-rate infusion (with and without a loading dose) to a plateau.
@@ -149,7 +157,7 @@ def design_continuous(
         target["auc_24"] = [auc_24.low, auc_24.high]
     if state is not None:
         regimens, notes = _continuous_from_state(state, checks, exact_rate, loading_time,
-                                                 dose_step)
+                                                 dose_step, time_step)
     else:
         regimens, notes = _continuous_from_zero(checks, exact_rate, loading_time, dose_step,
                                                 k, within)
@@ -284,7 +292,7 @@ def _round_loading(exact: float, plateau: float, current: float, ck: _Continuous
 
 
 def _continuous_from_state(state: CurrentState, ck: _ContinuousChecks, exact_rate: float,
-                           loading_time: float, dose_step: float | None):
+                           loading_time: float, dose_step: float | None, time_step: float):
     """Proposals that start at ``state.start`` from the level then present."""
     cl, v, s0, c0 = ck.clearance, ck.volume, state.start, state.level
     regimens: list[Regimen] = []
@@ -306,14 +314,22 @@ def _continuous_from_state(state: CurrentState, ck: _ContinuousChecks, exact_rat
                      + ("(target - current) x V / S" if loading_time <= 0 else
                         f"by the end of a {short(loading_time)}-h infusion"))
     if c0 > ck.plateau * (1 + NEAR_TARGET):
-        hold = float(model.time_to_fall(c0, ck.plateau, cl, v))
-        records = (open_infusion_record(s0 + hold, ck.rate),)
-        regimens.append(_judge_continuous(
-            f"hold {short(hold)} h, then {short(ck.rate)} mg/h", state, ck, records,
-            settle=s0 + hold, ld=None, loading_time=None,
-            exact={"rate": exact_rate, "hold": hold}))
-        notes.append(f"the level {short(c0)} mg/L is above the target: holding the infusion for "
-                     f"ln(C/Ctarget)/k = {short(hold)} h lets it fall to the target first")
+        exact_hold = float(model.time_to_fall(c0, ck.plateau, cl, v))
+        hold = round_time(exact_hold, time_step)
+        if hold > 0:
+            records = (open_infusion_record(s0 + hold, ck.rate),)
+            regimens.append(_judge_continuous(
+                f"hold {short(hold)} h, then {short(ck.rate)} mg/h", state, ck, records,
+                settle=s0 + hold, ld=None, loading_time=None,
+                exact={"rate": exact_rate, "hold": exact_hold}))
+            notes.append(f"the level {short(c0)} mg/L is above the target: holding the infusion "
+                         f"for ln(C/Ctarget)/k = {short(exact_hold)} h (rounded to "
+                         f"{short(hold)} h, a {short(time_step * 60)}-min step) lets it fall to "
+                         "the target first")
+        else:
+            notes.append(f"the level {short(c0)} mg/L is above the target but falls to it in "
+                         f"{short(exact_hold * 60)} min, less than the {short(time_step * 60)}-"
+                         "min time step: no hold proposed")
     regimens.append(_judge_continuous(
         f"{short(ck.rate)} mg/h from {short(s0)} h (no loading dose)", state, ck,
         (open_infusion_record(s0, ck.rate),), settle=s0, ld=None, loading_time=None,
@@ -346,6 +362,13 @@ def _judge_continuous(label: str, state: CurrentState, ck: _ContinuousChecks, re
     if w.high is not None and state.level > w.high and settle <= state.start:
         flags.append(f"the level starts above the window ({short(state.level)} mg/L) and "
                      "stays above it for a while: consider holding the infusion first")
+    if ck.auc_24 is not None:
+        for a, b, area in proj.auc_windows:
+            f = ck.auc_24.violation(area, f"projected AUC over {short(a)}-{short(b)} h",
+                                    unit="mg*h/L")
+            if f:
+                flags.append(f)
+                break
     predicted = {**ck.steady(), "start_level": state.level, "highest": proj.highest,
                  "lowest_after_loading": low, "level_at_72h": proj.level_at_end,
                  "auc_first_24": proj.auc_first_24}

@@ -24,7 +24,7 @@ from .common import (
     round_inside,
     round_to_step,
 )
-from .projection import PROJECTION_HORIZON, CurrentState, project
+from .projection import PROJECTION_HORIZON, TIME_STEP, CurrentState, project, round_time
 
 
 # --------------------------------------------------------------------------- intermittent
@@ -70,6 +70,7 @@ def design_intermittent(
     max_loading_ratio: float | None = DEFAULT_MAX_LOADING_RATIO,
     options: int = 3,
     state: CurrentState | None = None,
+    time_step: float = TIME_STEP,
     name: str = "design",
 ) -> DesignResult:
     """Dose and interval of repeated short infusions to peak/trough limits and/or an AUC24.
@@ -79,12 +80,15 @@ def design_intermittent(
     :func:`pkcalc.model.steady_state_intermittent`), and so is the AUC over 24 h,
     ``AUC24 = 24 S dose / (CL tau)``, so for each practical interval the limits
     give a range of doses ``[L, U]``; the interval is feasible when ``L <= U``.
-    The unrounded design aims at the targets (or, without targets, at the
-    limits that allow the longest interval); each practical interval gets the
-    dose closest (in log scale) to the targets inside ``[L, U]``, rounded to
-    ``dose_step``, then re-predicted.  Proposals are ranked feasible first, then
-    by closeness to the unrounded interval (with an AUC target alone: to 12 h,
-    common practice for twice-daily dosing).
+    The aims are the targets, or the (geometric) middle of a window with both
+    ends; a one-sided limit is a limit, not an aim (without any aim, the limits
+    that allow the longest interval are).  Each practical interval gets the dose
+    that meets the aims inside ``[L, U]`` -- the compromise of two aims, or the
+    one aim reachable, never a side pushed to its limit for an aim the other side
+    cannot reach -- rounded to ``dose_step``, then re-predicted.  Proposals are
+    ranked feasible first, then by closeness to the unrounded interval (one aim
+    with a trough maximum only -- extended-interval dosing -- to 24 h; otherwise
+    to 12 h; common practice).
 
     With a ``state`` (a proposal from measured levels) the first dose is given at
     ``state.start``: when the level then is below the steady-state trough, the
@@ -128,14 +132,18 @@ def design_intermittent(
         tau_exact, dose_exact = exact_intermittent(clearance, volume, infusion_time, aim_peak,
                                                    aim_trough, salt_factor)
     limits = (peak_limits, trough_limits, auc_24)
+    # without an exact interval (one aim and limits): closeness to 24 h when only a trough
+    # maximum bounds it (extended-interval dosing), else to 12 h (common practice)
+    extended = trough_limits.high is not None and trough_limits.low is None and not by_levels
+    reference = tau_exact if tau_exact else (24.0 if extended else 12.0)
     candidates = []
     for tau in sorted(set(float(x) for x in intervals)):
         if tau < infusion_time:
             continue
         reg = _intermittent_candidate(clearance, volume, infusion_time, tau, limits,
                                       (aim_peak, aim_trough, aim_auc), dose_step, salt_factor,
-                                      max_dose, tau_exact, dose_exact, state)
-        rank = math.log(tau / (tau_exact if tau_exact else 12.0))
+                                      max_dose, tau_exact, dose_exact, state, time_step)
+        rank = math.log(tau / reference)
         candidates.append((not reg.meets_target, abs(rank), reg))
     if not candidates:
         raise ValueError("no practical interval is at least as long as the infusion time")
@@ -150,9 +158,21 @@ def design_intermittent(
     if by_levels:
         notes.append(f"unrounded design: {short(dose_exact)} mg every {short(tau_exact)} h gives "
                      f"peak {short(aim_peak)} and trough {short(aim_trough)} mg/L exactly")
+    elif aim_peak is not None or aim_trough is not None:
+        side = (f"peak {short(aim_peak)} mg/L" if aim_peak is not None else
+                f"trough {short(aim_trough)} mg/L")
+        notes.append(f"aim: the {side} (the other side is a limit, not an aim); intervals "
+                     f"ranked by closeness to {short(reference)} h"
+                     + (" (extended-interval dosing, common practice)" if extended else
+                        " (common practice)"))
     else:
         notes.append(f"AUC24 target: dose = AUC24 x CL x interval / (24 S); ranked by closeness "
                      f"of the interval to 12 h (common practice); aim {short(aim_auc)} mg*h/L")
+    below = regimens[0].predicted.get("time_below_trough_max")
+    if extended and below is not None:
+        notes.append(f"extended interval: about {short(below)} h of each "
+                     f"{short(regimens[0].interval)}-h interval below "
+                     f"{short(trough_limits.high)} mg/L at steady state (the drug-free time)")
     if salt_factor != 1.0:
         notes.append(f"doses are of the product; salt factor S = {salt_factor:g}")
     target = {"peak": aim_peak if peak is not None else None,
@@ -181,17 +201,30 @@ def _limits_and_aims(peak, trough, peak_limits, trough_limits, auc_24, notes: li
     trough_limits = trough_limits or Limits()
     aim_auc_value = auc_24.low if auc_24 is not None and auc_24.low == auc_24.high else None
     auc_24 = auc_range(auc_24, notes)
-    aim_peak = peak if peak is not None else aim_of(peak_limits, high_side=True)
-    aim_trough = trough if trough is not None else aim_of(trough_limits, high_side=False)
     aim_auc = aim_auc_value or (aim_of(auc_24, high_side=True) if auc_24 is not None else None)
+    # an aim is a target, or the (geometric) middle of a window with both ends; a one-sided
+    # limit is a limit, not an aim -- unless no side has an aim at all (then the limits
+    # that allow the longest interval are the design's aim, as before)
+    aim_peak = peak if peak is not None else _middle(peak_limits)
+    aim_trough = trough if trough is not None else _middle(trough_limits)
+    if aim_peak is None and aim_trough is None and aim_auc is None:
+        aim_peak = aim_of(peak_limits, high_side=True)
+        aim_trough = aim_of(trough_limits, high_side=False)
     by_levels = aim_peak is not None and aim_trough is not None
-    if not by_levels and aim_auc is None:
+    if aim_peak is None and aim_trough is None and aim_auc is None:
         raise ValueError("need a peak target or limit and a trough target or limit, or an "
                          "AUC24 target")
     if by_levels and aim_trough >= aim_peak:
         raise ValueError(f"the trough aim {aim_trough:g} mg/L must be below the peak aim "
                          f"{aim_peak:g} mg/L")
     return peak_limits, trough_limits, auc_24, (aim_peak, aim_trough, aim_auc)
+
+
+def _middle(limits: Limits) -> float | None:
+    """The geometric middle of a window with both ends, else None."""
+    if limits.low and limits.high:
+        return math.sqrt(limits.low * limits.high)
+    return None
 
 
 def _first_dose_notes(best: Regimen, clearance, volume, dose_step, max_loading_ratio, state,
@@ -217,7 +250,8 @@ def _first_dose_notes(best: Regimen, clearance, volume, dose_step, max_loading_r
 
 def _intermittent_candidate(clearance, volume, infusion_time, tau, limits, aims, dose_step,
                             salt_factor, max_dose, tau_exact, dose_exact,
-                            state: CurrentState | None) -> Regimen:
+                            state: CurrentState | None, time_step: float = TIME_STEP
+                            ) -> Regimen:
     """The rounded dose for one practical interval, re-predicted and flagged."""
     peak_limits, trough_limits, auc_24 = limits
     aim_peak, aim_trough, aim_auc = aims
@@ -228,11 +262,18 @@ def _intermittent_candidate(clearance, volume, infusion_time, tau, limits, aims,
     if auc_24 is not None:
         lo = max(lo, div_or(auc_24.low, per_auc))
         hi = min(hi, div_or(auc_24.high, per_auc, math.inf))
+    feasible = lo <= hi
     if aim_peak is not None and aim_trough is not None:
-        ideal = math.exp(0.5 * (math.log(aim_peak / a) + math.log(aim_trough / b)))
+        d_peak, d_trough = aim_peak / a, aim_trough / b
+        inside = [d for d in (d_peak, d_trough) if lo * (1 - 1e-12) <= d <= hi * (1 + 1e-12)]
+        ideal = (math.sqrt(d_peak * d_trough) if len(inside) != 1 or not feasible
+                 else inside[0])     # one aim out of reach: keep the other at its aim
+    elif aim_peak is not None:
+        ideal = aim_peak / a
+    elif aim_trough is not None:
+        ideal = aim_trough / b
     else:
         ideal = aim_auc / per_auc
-    feasible = lo <= hi
     if feasible:
         ideal = min(max(ideal, lo), hi)
     elif math.isfinite(hi) and lo > 0:
@@ -254,6 +295,10 @@ def _intermittent_candidate(clearance, volume, infusion_time, tau, limits, aims,
     accumulation = 1.0 / -math.expm1(-clearance / volume * tau)
     predicted = {"plateau": None, "peak": pk, "trough": tr, "average": av,
                  "auc_24": av * 24.0, "first_dose_peak": pk / accumulation}
+    if trough_limits.high is not None:
+        k = clearance / volume
+        falling = math.log(pk / trough_limits.high) / k if pk > trough_limits.high else 0.0
+        predicted["time_below_trough_max"] = max(tau - infusion_time - falling, 0.0)
     exact = {"interval": tau_exact, "dose": dose_exact} if tau_exact else {"dose": ideal}
     label = f"{short(dose)} mg over {short(infusion_time)} h every {short(tau)} h"
     if state is None:
@@ -264,19 +309,21 @@ def _intermittent_candidate(clearance, volume, infusion_time, tau, limits, aims,
                        exact=exact, doses=records)
     return _intermittent_from_state(state, label, dose, tau, infusion_time, tr, clearance,
                                     volume, salt_factor, dose_step, predicted, flags, exact,
-                                    (peak_limits, trough_limits), max_dose)
+                                    (peak_limits, trough_limits, auc_24), max_dose, time_step)
 
 
 def first_dose_records(state: CurrentState, dose: float, tau: float, infusion_time: float,
                        trough_ss: float, clearance: float, volume: float, salt_factor: float,
-                       dose_step: float | None):
+                       dose_step: float | None, time_step: float = TIME_STEP):
     """Dose records of a repeated regimen that joins its steady state from ``state``.
 
     Below the steady-state trough the first dose carries the extra amount that adds
     ``(Ctrough - C) exp(-k (t - start))`` after its infusion
     (:func:`pkcalc.model.amount_to_reach`), so from then on the course is the
     steady-state one; above it the first dose waits ``ln(C/Ctrough)/k``
-    (:func:`pkcalc.model.time_to_fall`).  Records cover the projection horizon.
+    (:func:`pkcalc.model.time_to_fall`), rounded to ``time_step`` (a wait shorter
+    than the step is dropped: the first dose is given at the start).  Records cover
+    the projection horizon.
 
     Returns
     -------
@@ -288,9 +335,13 @@ def first_dose_records(state: CurrentState, dose: float, tau: float, infusion_ti
     s0, c0 = state.start, state.level
     first_start, first_dose, exact_first = s0, dose, dose
     label = f"{short(dose)} mg over {short(infusion_time)} h every {short(tau)} h"
-    if c0 > trough_ss * (1 + 1e-9):
-        first_start = s0 + float(model.time_to_fall(c0, trough_ss, clearance, volume))
+    hold = float(model.time_to_fall(c0, trough_ss, clearance, volume)) \
+        if c0 > trough_ss * (1 + 1e-9) else 0.0
+    if hold >= time_step > 0 or (hold > 0 and time_step <= 0):
+        first_start = s0 + round_time(hold, time_step)
         label += f", first dose after a {short(first_start - s0)}-h hold"
+    elif hold > 0:
+        label += " (no hold: the level reaches the trough within the time step)"
     else:
         k = clearance / volume
         lift = (trough_ss - c0) * math.exp(-k * infusion_time)
@@ -309,16 +360,17 @@ def first_dose_records(state: CurrentState, dose: float, tau: float, infusion_ti
 
 def _intermittent_from_state(state, label, dose, tau, infusion_time, trough_ss, clearance,
                              volume, salt_factor, dose_step, predicted, flags, exact,
-                             level_limits, max_dose) -> Regimen:
+                             level_limits, max_dose, time_step) -> Regimen:
     """First dose from the current level, the rest of the regimen, and the projected checks."""
     records, first_dose, label, exact_first = first_dose_records(
-        state, dose, tau, infusion_time, trough_ss, clearance, volume, salt_factor, dose_step)
+        state, dose, tau, infusion_time, trough_ss, clearance, volume, salt_factor, dose_step,
+        time_step)
     if exact_first != dose:
         exact = {**exact, "first_dose": exact_first}
     end = state.start + PROJECTION_HORIZON
     proj = project(state, records_events(records, salt_factor, end), clearance, volume,
                    settle=records[0].start + infusion_time)
-    peak_limits, trough_limits = level_limits
+    peak_limits, trough_limits, auc_24 = level_limits
     flags = list(flags)
     for t, c in proj.peaks:
         f = peak_limits.violation(c, f"projected peak at {short(t)} h")
@@ -338,6 +390,13 @@ def _intermittent_from_state(state, label, dose, tau, infusion_time, trough_ss, 
     if max_dose is not None and first_dose > max_dose:
         flags.append(f"first dose {short(first_dose)} mg exceeds the stated maximum "
                      f"{short(max_dose)} mg")
+    if auc_24 is not None:
+        for a, b, area in proj.auc_windows:
+            f = auc_24.violation(area, f"projected AUC over {short(a)}-{short(b)} h",
+                                 unit="mg*h/L")
+            if f:
+                flags.append(f)
+                break
     predicted = {**predicted, "start_level": state.level,
                  "first_dose_peak": proj.peaks[0][1] if proj.peaks else None,
                  "highest": proj.highest, "level_at_72h": proj.level_at_end,

@@ -21,10 +21,23 @@ import numpy as np
 
 from .. import model
 
-__all__ = ["PROJECTION_HORIZON", "CurrentState", "Projection", "current_state", "project"]
+__all__ = ["PROJECTION_HORIZON", "TIME_STEP", "CurrentState", "Projection", "current_state",
+           "prescribed_interval", "project", "round_time"]
 
 #: How far ahead a proposal from levels is projected and judged, h.
 PROJECTION_HORIZON = 72.0
+#: Holds and starts are rounded to this step (15 min), a time a nurse can use
+#: (common practice).
+TIME_STEP = 0.25
+#: Practical dosing intervals a recorded history is read against, h.
+PRACTICAL_INTERVALS = (4.0, 6.0, 8.0, 12.0, 24.0, 36.0, 48.0, 72.0, 168.0)
+
+
+def round_time(hours: float, step: float = TIME_STEP) -> float:
+    """``hours`` to the nearest multiple of ``step`` (no rounding for ``step <= 0``)."""
+    if step <= 0:
+        return float(hours)
+    return float(round(hours / step) * step)
 
 
 @dataclass(frozen=True)
@@ -97,6 +110,8 @@ class Projection:
     level_at_end : float, mg/L
     auc_first_24 : float, mg h/L
         Area over the first 24 h of the proposal (mass balance).
+    auc_windows : list of (float, float, float)
+        ``(from, to, area)`` of every 24-h window of the horizon (mass balance).
     """
 
     start: float
@@ -109,6 +124,7 @@ class Projection:
     lowest_after_time: float | None = None
     level_at_end: float = 0.0
     auc_first_24: float = 0.0
+    auc_windows: list[tuple[float, float, float]] = field(default_factory=list)
 
 
 def project(state: CurrentState, new_events, clearance: float, volume: float, *,
@@ -156,7 +172,23 @@ def project(state: CurrentState, new_events, clearance: float, volume: float, *,
         - _bolus_level_at(new, t0, volume)
     out.auc_first_24 = float(model.area_by_mass_balance(infused, c_start, c_day,
                                                         clearance, volume))
+    a = t0
+    while a + 24.0 <= t1 + 1e-9:
+        out.auc_windows.append((a, a + 24.0, _window_area(events, a, a + 24.0, clearance,
+                                                          volume, t0, new)))
+        a += 24.0
     return out
+
+
+def _window_area(events, a: float, b: float, clearance: float, volume: float, t0: float,
+                 new) -> float:
+    """Area under the course over ``[a, b]`` by mass balance (boluses at ``a`` counted as
+    input and not as the starting level)."""
+    infused = _infused_between(events, a, b)
+    c_a = float(model.concentration([a], *events, clearance, volume)[0]) \
+        - _bolus_level_at(events if a > t0 else new, a, volume)
+    c_b = float(model.concentration([b], *events, clearance, volume)[0])
+    return float(model.area_by_mass_balance(infused, c_a, c_b, clearance, volume))
 
 
 def _infused_between(events, a: float, b: float) -> float:
@@ -205,22 +237,45 @@ def history_events(doses, salt_factor: float = 1.0, initial_concentration: float
     return st, am, du
 
 
-def default_start(events, last_level: float, intermittent: bool) -> tuple[float, str]:
+def prescribed_interval(doses, interval: float | None = None) -> tuple[float | None, str]:
+    """The interval of the regimen as prescribed, and how it was found: the stated
+    ``interval``; else the ``every`` of the (last) repeated dose record; else the
+    practical interval nearest (log scale) the median gap between recorded starts --
+    a late dose lengthens one gap, it does not change the prescription."""
+    if interval is not None:
+        return float(interval), "as stated"
+    doses = list(doses or [])
+    repeated = [d for d in doses if getattr(d, "every", None) and getattr(d, "count", 1) > 1]
+    if repeated:
+        return float(repeated[-1].every), "the 'every' of the dose record"
+    starts = np.unique([float(d.start) for d in doses])
+    if starts.size < 2:
+        return None, "a single dose"
+    gaps = np.diff(starts)
+    median = float(np.median(gaps))
+    nearest = min(PRACTICAL_INTERVALS, key=lambda x: abs(np.log(x / median)))
+    return nearest, (f"the practical interval nearest the median gap between recorded doses "
+                     f"({median:.4g} h); give interval to state it")
+
+
+def default_start(events, last_level: float, intermittent: bool,
+                  interval: float | None = None) -> tuple[float, str]:
     """When a proposal from levels starts, and why.
 
-    Intermittent regimens: the next recorded dose after the last level (the next
-    scheduled dose), else one interval (the last two recorded starts apart) after
-    the last dose when that is after the last level; continuous infusions, or
-    otherwise: the time of the last level.
+    Intermittent regimens: the next recorded dose after the last level, else the
+    next dose at the prescribed ``interval`` after the last recorded one (past the
+    last level); continuous infusions, or otherwise: the time of the last level.
     """
     if intermittent:
         start, _, duration = events
         given = np.unique(start[duration >= 0])
         later = given[given > last_level]
         if later.size:
-            return float(later.min()), "the next scheduled dose"
-        if given.size >= 2:
-            nxt = float(given[-1] + (given[-1] - given[-2]))
-            if nxt > last_level:
-                return nxt, "one dosing interval after the last recorded dose"
+            return float(later.min()), "the next scheduled dose (recorded)"
+        if given.size and interval:
+            nxt = float(given[-1] + interval)
+            while nxt <= last_level:
+                nxt += interval
+            return nxt, (f"the next scheduled dose: the last recorded dose + the prescribed "
+                         f"interval of {interval:.4g} h")
     return float(last_level), "the time of the last level"

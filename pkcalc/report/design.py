@@ -5,7 +5,8 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from .._format import fmt, format_table
+from .._format import fmt, format_table, format_table_fit
+from ..design.common import clock_after
 from ..units import KIND_OF
 from .base import (
     UnitConverter,
@@ -33,7 +34,8 @@ def _conv_any(conv: UnitConverter, key: str, value: Any,
     return json_number(conv(value, kind))
 
 
-def design_regimen_dict(r, conv: UnitConverter, scenario: str) -> dict[str, Any]:
+def design_regimen_dict(r, conv: UnitConverter, scenario: str,
+                        origin: str | None = None) -> dict[str, Any]:
     out: dict[str, Any] = {"scenario": scenario, "label": r.label}
     for key in _REGIMEN_KEYS:
         out[key] = json_number(conv(getattr(r, key), KIND_OF[key]))
@@ -41,9 +43,14 @@ def design_regimen_dict(r, conv: UnitConverter, scenario: str) -> dict[str, Any]
     predicted.update({k: _conv_any(conv, k, v) for k, v in r.predicted.items()})
     out["predicted"] = predicted
     out["meets_target"] = r.meets_target
+    out["status"] = r.status
     out["flags"] = list(r.flags)
     out["exact"] = {k: _conv_any(conv, k, v, None) for k, v in r.exact.items()}
     out["start"] = json_number(conv(r.start, "time"))
+    out["first_dose_time"] = json_number(conv(r.first_dose_time, "time"))
+    if origin:
+        out["start_clock"] = clock_after(origin, r.start)
+        out["first_dose_clock"] = clock_after(origin, r.first_dose_time)
     out["doses"] = [{k: _conv_any(conv, k, v, None) if k != "count" else v
                      for k, v in d.as_dict().items()} for d in r.doses]
     return out
@@ -66,7 +73,8 @@ def design_json(results, conv: UnitConverter, *, title: str | None = None,
     plus ``designs`` with each scenario's estimates, target and notes."""
     regimens, designs = [], []
     for res in results:
-        regs = [design_regimen_dict(r, conv, res.name) for r in res.regimens]
+        regs = [design_regimen_dict(r, conv, res.name, res.clock_origin)
+                for r in res.regimens]
         regimens += regs
         designs.append({
             "name": res.name, "method": res.method,
@@ -74,7 +82,12 @@ def design_json(results, conv: UnitConverter, *, title: str | None = None,
                            "volume": json_number(conv(res.volume, "volume"))},
             "estimates": {k: _conv_any(conv, k, v, None) for k, v in res.estimates.items()},
             "target": _target_dict(res.target, conv),
-            "salt_factor": res.salt_factor,
+            "salt_factor": res.salt_factor, "clock_origin": res.clock_origin,
+            "suspects": list(res.suspects),
+            "formulas": [{"name": f["name"], "key": f["key"],
+                          "value": _conv_any(conv, f["key"], f["value"], None),
+                          "validity": f["validity"]} for f in res.formulas],
+            "assumed": {k: _conv_any(conv, k, v, None) for k, v in res.assumed.items()},
             "regimens": regs, "notes": list(res.notes), "warnings": list(res.warnings),
         })
     return json_document("design", conv, {
@@ -85,7 +98,8 @@ def design_json(results, conv: UnitConverter, *, title: str | None = None,
 
 #: Columns of the regimen table: (header, unit kind, key); ``p:`` keys are predictions.
 _COLUMNS = (
-    ("#", None, None), ("regimen", None, None), ("from", "time", "start"),
+    ("#", None, None), ("regimen", None, None), ("check", None, None),
+    ("from", "time", "start"),
     ("rate", "rate", "rate"), ("loading", "amount", "loading_dose"),
     ("loading time", "time", "loading_time"), ("dose", "amount", "dose"),
     ("every", "time", "interval"), ("infusion", "time", "infusion_time"),
@@ -94,21 +108,46 @@ _COLUMNS = (
     ("plateau", "concentration", "p:plateau"), ("highest", "concentration", "p:highest"),
     ("lowest after loading", "concentration", "p:lowest_after_loading"),
     ("level", "concentration", "p:level"), ("level at 72 h", "concentration", "p:level_at_72h"),
-    ("check", None, None),
+    ("time below trough max", "time", "p:time_below_trough_max"),
 )
 
 
 def design_result_text(res, conv: UnitConverter) -> str:
     lines = [f"Design: {res.name}  (method: {res.method.replace('_', ' ')})"]
+    lines += [f"CHECK LEVELS: {s}" for s in res.suspects]
+    if res.clock_origin:
+        lines.append(f"time 0 h = {res.clock_origin} (the first recorded dose)")
     lines += _parameters_and_estimates(res, conv)
     target = _target_line(res, conv)
     if target:
         lines.append(target)
     lines += _regimen_table(res, conv)
     for i, r in enumerate(res.regimens, 1):
-        lines += [f"  #{i} FLAG: {f}" for f in r.flags]
+        lines += [f"  #{i} {'CHECK LEVELS' if r.check_levels else 'FLAG'}: {f}"
+                  for f in r.flags]
+        if r.check_levels and not r.flags:
+            lines.append(f"  #{i} CHECK LEVELS: the levels it rests on failed a check (above)")
+    lines += _times(res, conv)
+    lines += [f"warning: {w}" for w in res.warnings]
     lines += [f"note: {n}" for n in res.notes]
     return "\n".join(lines)
+
+
+def _times(res, conv: UnitConverter) -> list[str]:
+    """When each proposal starts and gives its first dose, as clock times too."""
+    if not res.clock_origin or not res.regimens:
+        return []
+    out = ["Times (clock):"]
+    for i, r in enumerate(res.regimens, 1):
+        first = r.first_dose_time
+        text = f"  #{i} starts {clock_after(res.clock_origin, r.start)}"
+        if first is not None and first > r.start + 1e-9:
+            text += (f"; hold until {clock_after(res.clock_origin, first)} "
+                     f"({fmt(conv(first - r.start, 'time'))} {conv.unit('time')})")
+        elif first is not None:
+            text += "; first dose then"
+        out.append(text)
+    return out
 
 
 def _parameters_and_estimates(res, conv: UnitConverter) -> list[str]:
@@ -125,6 +164,14 @@ def _parameters_and_estimates(res, conv: UnitConverter) -> list[str]:
                          u(kind) if kind else ("%" if k.endswith("percent") else "")])
         lines += ["Individual estimates from the measured levels:",
                   format_table(["estimate", "value", "unit"], rows)]
+    if res.assumed:
+        lines.append("Assumed, not measured: " + "; ".join(
+            f"{k.replace('_', ' ')} {fmt(conv(v, KIND_OF.get(k, 'concentration')))} "
+            f"{u(KIND_OF.get(k, 'concentration'))}" for k, v in res.assumed.items()))
+    for f in res.formulas:
+        kind = f["kind"]
+        lines.append(f"For reference only, not a proposal: {f['name']} = "
+                     f"{fmt(conv(f['value'], kind))} {u(kind)} -- {f['validity']}")
     return lines
 
 
@@ -143,14 +190,18 @@ def _regimen_table(res, conv: UnitConverter) -> list[str]:
     """The proposals as a table; empty columns left out (``from`` only from a state)."""
     from_state = any(r.start or "start_level" in r.predicted for r in res.regimens)
 
+    floor = _small_level(res)
+
     def cell(r, i, name, kind, key):
         if name == "#":
             return i
         if name == "regimen":
             return r.label
         if name == "check":
-            return "meets target" if r.meets_target else "FLAG"
+            return r.status
         value = r.predicted.get(key[2:]) if key.startswith("p:") else getattr(r, key)
+        if kind == "concentration" and value is not None and floor and 0 <= value < floor:
+            return f"< {fmt(conv(floor, kind), 2)}"     # below 1 % of the aim: not a number
         return conv(value, kind)
 
     table = [[cell(r, i, *c) for c in _COLUMNS] for i, r in enumerate(res.regimens, 1)]
@@ -162,12 +213,25 @@ def _regimen_table(res, conv: UnitConverter) -> list[str]:
     heading = ("Proposed regimens (rounded; peak/trough/average/plateau at steady state; highest, "
                "lowest and level at 72 h on the course projected from the start):"
                if from_state else "Proposed regimens (predicted at steady state, rounded):")
-    return [heading, format_table(headers, [[row[j] for j in keep] for row in table])]
+    return [heading, format_table_fit(headers, [[row[j] for j in keep] for row in table],
+                                      keep=1)]
+
+
+def _small_level(res) -> float | None:
+    """1 % of the design's main concentration aim (plateau or peak): levels below it are
+    shown as "< x" rather than as numbers nobody can measure."""
+    t = res.target
+    for key in ("plateau", "peak", "level"):
+        if isinstance(t.get(key), int | float) and t[key]:
+            return 0.01 * t[key]
+    limits = t.get("peak_limits")
+    if isinstance(limits, list | tuple) and any(x for x in limits if x):
+        return 0.01 * max(x for x in limits if x)
+    return None
 
 
 def design_text(results, conv: UnitConverter, *, title: str | None = None, failures=(),
                 colour: bool = False) -> str:
     """Terminal output of ``pkcalc design``: caution (with the not-an-order line) first."""
-    return assemble_text([design_result_text(r, conv) for r in results],
-                         [(r.name, r.warnings) for r in results], title=title,
+    return assemble_text([design_result_text(r, conv) for r in results], [], title=title,
                          failures=failures, colour=colour, extra_caution=DESIGN_CAUTION)

@@ -181,26 +181,45 @@ def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict
             f"method: {d['method'].replace('_', ' ')}; parameters used: clearance "
             f"{fmt(d['parameters']['clearance'])} {u['clearance']}, volume "
             f"{fmt(d['parameters']['volume'])} {u['volume']}"]))
+        if d.get("suspects"):
+            items.append(lines_item("warnings", [f"CHECK LEVELS: {s}" for s in d["suspects"]]))
         if d["estimates"]:
             items.append(table_item(["estimate", "value"], [[k.replace("_", " "), v] for k, v in
                                                              d["estimates"].items()],
                                     "Individual estimates from the measured levels"))
+        if d.get("formulas") or d.get("assumed"):
+            items.append(lines_item("notes", [
+                f"for reference only, not a proposal: {f['name']} = {fmt(f['value'])} -- "
+                f"{f['validity']}" for f in d.get("formulas", [])] + [
+                f"assumed, not measured: {k.replace('_', ' ')} {fmt(v)}"
+                for k, v in d.get("assumed", {}).items()]))
+        target = "; ".join(f"{k.replace('_', ' ')} {v}" for k, v in d["target"].items()
+                           if v not in (None, [None, None]))
+        if target:
+            items.append(lines_item("text", [f"target: {target}"]))
         rows = []
         for i, r in enumerate(d["regimens"], 1):
             pr = r["predicted"]
-            rows.append([i, r["label"], r["rate"], r["loading_dose"], r["dose"], r["interval"],
-                         r["infusion_time"], pr.get("peak"), pr.get("trough"),
+            rows.append([i, r["label"], r.get("start_clock") or r["start"], r["rate"],
+                         r["loading_dose"], r["dose"], r["interval"], r["infusion_time"],
+                         pr.get("peak"), pr.get("trough"),
                          pr.get("average") if pr.get("average") is not None else pr.get("level"),
-                         "meets target" if r["meets_target"] else "FLAG"])
+                         pr.get("auc_24"), pr.get("highest"), pr.get("level_at_72h"),
+                         r["status"]])
+        c = u["concentration"]
         items.append(table_item(
-            ["#", "regimen", f"rate [{u['rate']}]", f"loading [{u['amount']}]",
-             f"dose [{u['amount']}]", f"every [{u['time']}]", f"infusion [{u['time']}]",
-             f"peak [{u['concentration']}]", f"trough [{u['concentration']}]",
-             f"average or plateau [{u['concentration']}]", "check"], rows,
-            "Proposed regimens, rounded and re-predicted at steady state"))
+            ["#", "regimen", f"starts [{u['time']} or clock]", f"rate [{u['rate']}]",
+             f"loading [{u['amount']}]", f"dose [{u['amount']}]", f"every [{u['time']}]",
+             f"infusion [{u['time']}]", f"peak [{c}]", f"trough [{c}]",
+             f"average or plateau [{c}]", f"AUC24 [{u.get('auc', 'mg*h/L')}]",
+             f"highest projected [{c}]", f"level at 72 h [{c}]", "check"], rows,
+            "Proposed regimens, rounded and re-predicted (steady state; projected course "
+            "from the start)"))
         flags = [f"#{i} {f}" for i, r in enumerate(d["regimens"], 1) for f in r["flags"]]
         if flags:
             items.append(lines_item("flags", flags))
+        if d.get("warnings"):
+            items.append(lines_item("warnings", d["warnings"]))
         items += _closing_blocks(d, figures, f"Proposed regimens: {d['name']}")
         out.append({"heading": f"Design: {d['name']}", "blocks": items})
     return out

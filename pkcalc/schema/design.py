@@ -39,7 +39,7 @@ class DesignCaseSpec(WithParameters):
     def _to_canonical(self) -> DesignCaseSpec:
         col, weight, values = self.start_collecting()
         cl, v = (None, None) if col.problems else resolve_partial(values, col)
-        doses, design = _clock_history(self.doses, self.design, col)
+        doses, design, origin = _clock_history(self.doses, self.design, col)
         method, opts = resolve_design(design, cl, v, col, history=bool(doses))
         if method in LEVEL_METHODS:
             _history(doses, design, method, opts, col)
@@ -49,7 +49,7 @@ class DesignCaseSpec(WithParameters):
         col.raise_if_any()
         if method == "map":
             opts["weight"] = weight
-        self._resolved = DesignCase(self.name, method, cl, v, opts, weight)
+        self._resolved = DesignCase(self.name, method, cl, v, opts, weight, origin)
         return self
 
 
@@ -68,19 +68,25 @@ def _clock_history(doses, design: DesignSpec, col: Collector):
     samples += [(f"design.{k}.time", getattr(design, k)) for k in
                 ("peak_sample", "trough_sample", "measured")
                 if isinstance(getattr(design, k), SampleSpec)]
-    texts = [x.time for _, x in samples] + ([design.start] if design.start else [])
+    now = isinstance(design.start, str) and design.start.strip().lower() == "now"
+    texts = [x.time for _, x in samples] + ([design.start] if design.start and not now else [])
     texts += [d.get("start") for d in doses or [] if isinstance(d, dict)]
     if not doses or not any(is_clock(t) for t in texts):
-        return doses, design
+        if now:
+            col.add("start = 'now' needs the dose history in clock times (ISO 8601 "
+                    "date-times)", "design.start", "a start such as '30 h', or clock times")
+        return doses, design, None
+    if now:
+        design = design.model_copy(update={"start": _now(texts)})
     try:
         specs = [DoseSpec.model_validate(d) for d in doses]
     except ValidationError:
-        return doses, design  # reported by _history
+        return doses, design, None  # reported by _history
     extra = [(f, x.time) for f, x in samples] + (
         [("design.start", design.start)] if design.start else [])
-    specs, _, converted, _ = clock_to_hours(specs, None, col, extra)
+    specs, _, converted, origin = clock_to_hours(specs, None, col, extra)
     if not specs:
-        return [], design
+        return [], design, None
     new = dict(converted)
     update: dict[str, Any] = {}
     for key in ("levels", "samples"):
@@ -95,7 +101,20 @@ def _clock_history(doses, design: DesignSpec, col: Collector):
     if design.start:
         update["start"] = new["design.start"]
     return ([d.model_dump(by_alias=True, exclude_none=True) for d in specs],
-            design.model_copy(update=update))
+            design.model_copy(update=update), origin)
+
+
+def _now(texts) -> str:
+    """The time of this run as an ISO 8601 date-time, with an offset when the history
+    has them (so that the hours to it are exact)."""
+    from datetime import datetime
+
+    from ..clock import is_clock
+
+    offsets = any(is_clock(t) and ("+" in str(t)[10:] or str(t).endswith("Z") or
+                                   "-" in str(t)[10:]) for t in texts)
+    now = datetime.now().astimezone() if offsets else datetime.now()
+    return now.isoformat(timespec="seconds")
 
 
 def _history(doses, spec: DesignSpec, method: str, opts: dict[str, Any],

@@ -18,10 +18,13 @@ DESIGN_METHODS = ("continuous", "intermittent", "proportional", "chiou", "sawchu
 
 
 class SampleSpec(LenientModel):
-    """A measured level: ``{ time = "2 h", concentration = "4.1 mg/L" }``."""
+    """A measured level: ``{ time = "2 h", concentration = "4.1 mg/L" }``, or one below the
+    limit of quantification: ``{ time = "30 h", blq = true, lloq = "0.3 mg/L" }``."""
 
     time: QuantityText
-    concentration: QuantityText
+    concentration: QuantityText | None = None
+    blq: bool | None = None
+    lloq: QuantityText | None = None
 
 
 class DesignSpec(LenientModel):
@@ -72,6 +75,8 @@ class DesignSpec(LenientModel):
     initial_concentration: QuantityText | None = None
     # a steady-state AUC over 24 h: a value or [low, high]
     auc_24: QuantityText | list[QuantityText] | None = None
+    # holds and starts are rounded to this step (default 15 min)
+    time_step: QuantityText | None = None
 
     def infer_method(self) -> str:
         if self.method is not None:
@@ -152,11 +157,32 @@ def _window(col: Collector, spec: DesignSpec):
     return None if lo is None or hi is None else (lo, hi)
 
 
-def _sample(col: Collector, sample: SampleSpec | None, where: str):
+def _sample(col: Collector, sample: SampleSpec | None, where: str, *, blq_ok: bool = False):
+    """``(time, level)``; with ``blq_ok`` also ``(time, None, True, lloq)`` for a level
+    below the limit of quantification (method 'map' only: Beal's M3)."""
     if sample is None:
         return None
     sample.unknown_keys(col, f"{where}.")
     t = col.q(sample.time, "time", f"{where}.time")
+    if sample.blq:
+        if not blq_ok:
+            col.add("a level below the LLOQ is used by method 'map' only (censored "
+                    "likelihood); this method needs a measured level", f"{where}.blq",
+                    "a concentration, or method = 'map'")
+            return None
+        if sample.concentration is not None:
+            col.add("a level below the LLOQ has no concentration: give its lloq",
+                    f"{where}.concentration", "{ time, blq = true, lloq = '0.3 mg/L' }")
+            return None
+        lloq = col.q(sample.lloq, "concentration", f"{where}.lloq", positive=True)
+        if sample.lloq is None:
+            col.add("a level below the LLOQ needs its lloq", f"{where}.lloq",
+                    "lloq = '0.3 mg/L'")
+        return None if t is None or lloq is None else (t, None, True, lloq)
+    if sample.concentration is None:
+        col.add("a level needs its concentration (or blq = true with its lloq)",
+                f"{where}.concentration", "concentration = '4.1 mg/L'")
+        return None
     c = col.q(sample.concentration, "concentration", f"{where}.concentration", positive=True)
     return None if t is None or c is None else (t, c)
 
@@ -240,6 +266,12 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
     context = _DesignContext(spec, col, cl, v, history, plateau, peak, trough, peak_limits,
                              trough_limits, interval_opts, auc, window)
     _METHOD_OPTIONS[method](context, opts)
+    step = q(spec.time_step, "time", "design.time_step", nonnegative=True)
+    if step is not None:
+        if step > 24:
+            col.add(f"time_step {step:g} h is longer than a day", "design.time_step",
+                    "e.g. '15 min' (0 for no rounding)")
+        opts["time_step"] = step
     return method, opts
 
 
@@ -351,7 +383,7 @@ def _options_map(c: _DesignContext, opts: dict[str, Any]) -> None:
     peak_limits, interval_opts, auc, window = c.peak_limits, c.interval_opts, c.auc, c.window
     from .fitopts import load_prior, parse_prior
 
-    levels = [_sample(col, x, f"design.levels[{i}]")
+    levels = [_sample(col, x, f"design.levels[{i}]", blq_ok=True)
               for i, x in enumerate(spec.levels or [])]
     if not levels:
         col.add("method 'map' needs measured levels", "design.levels",
@@ -380,6 +412,9 @@ def _options_map(c: _DesignContext, opts: dict[str, Any]) -> None:
         opts["loading_time"] = lt
     if window is not None:
         opts["window"] = window
+    interval = q(spec.interval, "time", "design.interval", positive=True)
+    if interval is not None:
+        opts["interval"] = interval
 
 
 def _options_sawchuk_zaske(c: _DesignContext, opts: dict[str, Any]) -> None:
