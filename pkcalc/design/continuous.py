@@ -315,7 +315,7 @@ def _continuous_from_state(state: CurrentState, ck: _ContinuousChecks, exact_rat
                         f"by the end of a {short(loading_time)}-h infusion"))
     if c0 > ck.plateau * (1 + NEAR_TARGET):
         exact_hold = float(model.time_to_fall(c0, ck.plateau, cl, v))
-        hold = round_time(exact_hold, time_step)
+        hold = round_time(exact_hold, time_step) if exact_hold >= time_step else 0.0
         if hold > 0:
             records = (open_infusion_record(s0 + hold, ck.rate),)
             regimens.append(_judge_continuous(

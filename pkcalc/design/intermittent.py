@@ -338,7 +338,7 @@ def first_dose_records(state: CurrentState, dose: float, tau: float, infusion_ti
     hold = float(model.time_to_fall(c0, trough_ss, clearance, volume)) \
         if c0 > trough_ss * (1 + 1e-9) else 0.0
     if hold >= time_step > 0 or (hold > 0 and time_step <= 0):
-        first_start = s0 + round_time(hold, time_step)
+        first_start = s0 + max(round_time(hold, time_step), time_step)
         label += f", first dose after a {short(first_start - s0)}-h hold"
     elif hold > 0:
         label += " (no hold: the level reaches the trough within the time step)"
