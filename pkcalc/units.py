@@ -96,7 +96,7 @@ KIND_OF: dict[str, str] = {
     **dict.fromkeys(("dose", "loading_dose", "loading_dose_for_target", "amount", "first_dose",
                      "classical_new_dose"), "amount"),
     **dict.fromkeys(("auc_24", "auc_to_last", "auc_to_infinity", "auc_interval",
-                     "auc_first_24"), "auc"),
+                     "auc_first_24", "lowest_auc_24_window", "highest_auc_24_window"), "auc"),
     "weight": "weight",
 }
 

@@ -146,7 +146,8 @@ def adjust_proportional(
             raise ValueError(impossible[0])
         cl_ind = one_level_clearance(events, measured_time, measured, volume)
         if current_dose is not None:
-            check_levels_outside_infusions(events, {"measured": measured_time})
+            check_levels_outside_infusions(events, {"measured": measured_time},
+                                           "the proportional method on repeated doses")
             tau, how = prescribed_interval(history, interval)
             return _proportional_intermittent(events, cl_ind, volume, measured, measured_time,
                                               target, current_dose, tau, how, salt_factor,

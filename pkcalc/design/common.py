@@ -331,7 +331,7 @@ def check_levels(result: DesignResult, suspects: list[str]) -> DesignResult:
 
 def _unit_of(key: str) -> str:
     """Canonical unit of a predicted quantity, by its name."""
-    if key.startswith("auc"):
+    if key.startswith("auc") or "_auc_" in key:
         return "mg*h/L"
     if key.startswith("time_") or key in ("hold", "start"):
         return "h"

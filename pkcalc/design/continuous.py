@@ -372,6 +372,9 @@ def _judge_continuous(label: str, state: CurrentState, ck: _ContinuousChecks, re
     predicted = {**ck.steady(), "start_level": state.level, "highest": proj.highest,
                  "lowest_after_loading": low, "level_at_72h": proj.level_at_end,
                  "auc_first_24": proj.auc_first_24}
+    if ck.auc_24 is not None and proj.auc_windows:
+        areas = [w[2] for w in proj.auc_windows]
+        predicted.update(lowest_auc_24_window=min(areas), highest_auc_24_window=max(areas))
     return Regimen(label, rate=ck.rate, loading_dose=ld, loading_time=loading_time,
                    predicted=predicted, meets_target=not flags, flags=tuple(flags),
                    exact=exact, start=state.start, doses=tuple(records))

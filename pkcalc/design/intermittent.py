@@ -401,6 +401,9 @@ def _intermittent_from_state(state, label, dose, tau, infusion_time, trough_ss, 
                  "first_dose_peak": proj.peaks[0][1] if proj.peaks else None,
                  "highest": proj.highest, "level_at_72h": proj.level_at_end,
                  "auc_first_24": proj.auc_first_24}
+    if auc_24 is not None and proj.auc_windows:
+        areas = [w[2] for w in proj.auc_windows]
+        predicted.update(lowest_auc_24_window=min(areas), highest_auc_24_window=max(areas))
     return Regimen(label, dose=dose, interval=tau, infusion_time=infusion_time,
                    loading_dose=first_dose if first_dose != dose else None,
                    predicted=predicted, meets_target=not flags, flags=tuple(flags),

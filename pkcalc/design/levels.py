@@ -225,7 +225,8 @@ def one_level_clearance(events, time: float, level: float, volume: float) -> flo
     return math.exp(brentq(f, lo, hi, xtol=1e-14, rtol=1e-14, maxiter=500))
 
 
-def check_levels_outside_infusions(events, times: dict[str, float]) -> None:
+def check_levels_outside_infusions(events, times: dict[str, float],
+                                   method: str = "the peak-and-trough method") -> None:
     """Refuse a level drawn while an infusion runs (the method needs post-infusion levels)."""
     start, _, duration = events
     for name, t in times.items():
@@ -234,5 +235,6 @@ def check_levels_outside_infusions(events, times: dict[str, float]) -> None:
             j = int(np.flatnonzero(running)[0])
             raise ValueError(
                 f"design.{name}.time: the level at {t:g} h is drawn during an infusion "
-                f"(running {start[j]:g} to {start[j] + duration[j]:g} h); the peak-and-trough "
-                "method needs levels drawn after the end of an infusion")
+                f"(running {start[j]:g} to {start[j] + duration[j]:g} h); {method} "
+                "needs levels drawn after the end of an infusion (the MAP method takes "
+                "levels at any time)")
