@@ -186,8 +186,12 @@ def test_clock_times_and_csv_columns(write, run_cli, tmp_path):
     path = write("clock.toml", """
         [[scenarios]]
         name = "m"
-        doses = [ { start = "2026-05-04T08:00", amount = "800 mg", duration = "1 h",
-                    every = "12 h", count = 3 } ]
+        [[scenarios.doses]]
+        start = "2026-05-04T08:00"
+        amount = "800 mg"
+        duration = "1 h"
+        every = "12 h"
+        count = 3
         [scenarios.design]
         method = "map"
         levels = [ { time = "2026-05-05T09:30", concentration = "20 mg/L" },
