@@ -158,6 +158,31 @@ def test_a_long_history_with_one_clearance_gets_the_measured_pre_dose_route():
                and "steady_state = false" in n for n in res.notes)
 
 
+def test_proportional_on_repeated_doses_keeps_the_window_and_refuses_a_running_infusion():
+    # 1-h infusions every 12 h; a trough-side level 11.5 h after the fourth dose, window
+    # 10-15 mg/L: the acceptance is the window, not +-10 % of the target
+    doses = [DoseEvent(12.0 * j, 900.0, 1.0) for j in range(4)]
+    ev = history_events(doses)
+    cl, v = 5.0, 40.0
+    t_level = 36.0 + 11.5
+    (level,) = ode_course(ev, cl, v, [t_level])
+    # target 10.5 with a 500-mg step: 1500 mg gives about 12.2 mg/L -- outside +-10 % of
+    # 10.5 (9.45-11.55), inside the stated window 10-15
+    res = adjust_proportional(float(level), 10.5, current_dose=900.0, volume=v,
+                              measured_time=t_level, history=doses, window=Limits(10, 15),
+                              dose_step=500.0)
+    reg = res.regimens[0]
+    assert res.target["window"] == [10, 15]
+    assert reg.interval == 12.0
+    assert 11.55 < reg.predicted["level"] <= 15
+    assert reg.meets_target and reg.status == "meets target"
+    # a level drawn 0.5 h into the fifth infusion is refused, with the method named
+    during = [*doses, DoseEvent(48.0, 900.0, 1.0)]
+    with pytest.raises(ValueError, match="drawn during an infusion.*proportional"):
+        adjust_proportional(20.0, 12.25, current_dose=900.0, volume=v, measured_time=48.5,
+                            history=during, window=Limits(10, 15))
+
+
 # --------------------------------------------------------------------------- 4 interval
 def test_a_late_dose_does_not_change_the_prescribed_interval():
     doses = [DoseEvent(0.0, 800.0, 1.0), DoseEvent(12.0, 800.0, 1.0),
