@@ -22,14 +22,25 @@ CAUTION_SHORT = (
 )
 
 
-def result_html(summary: str, frame: Any = None) -> str:
-    """Notebook view of a result: the caution, the table (if any) and the summary text."""
+def result_html(summary: str, frame: Any = None, *, caution: bool = True) -> str:
+    """Notebook view of a result: the caution (unless ``summary`` starts with it), the
+    table (if any) and the summary text."""
     table = frame.to_html(index=False, na_rep="", float_format=lambda x: f"{x:.4g}") \
         if frame is not None else ""
-    return (f'<div class="pkcalc-result"><p><strong>{html.escape(CAUTION_SHORT)}</strong></p>'
-            f"{table}<pre>{html.escape(summary)}</pre></div>")
+    head = f"<p><strong>{html.escape(CAUTION_SHORT)}</strong></p>" if caution else ""
+    return f'<div class="pkcalc-result">{head}{table}<pre>{html.escape(summary)}</pre></div>'
 
-__all__ = ["fmt", "format_table", "short"]
+def with_caution(text: str, caution: bool = True) -> str:
+    """``text`` after the caution (every human-facing summary starts with it), or
+    ``text`` alone for reports that print the caution themselves."""
+    if not caution:
+        return text
+    import textwrap
+
+    return textwrap.fill(CAUTION, 78) + "\n\n" + text
+
+
+__all__ = ["fmt", "format_table", "short", "with_caution"]
 
 
 def fmt(value: object, digits: int = 4) -> str:

@@ -62,7 +62,7 @@ class _PerSubject:
         return next(r for r in self.results if r.subject == name)
 
     def _repr_html_(self) -> str:
-        return result_html(self.summary(), self.to_frame())
+        return result_html(self.summary(), self.to_frame(), caution=False)
 
 
 # --------------------------------------------------------------------------- NCA
@@ -474,7 +474,9 @@ class SamplingFile:
     units: dict[str, str] = field(default_factory=dict)
 
     def summary(self) -> str:
-        return "\n\n".join(r.summary() for r in self.results)
+        from ._format import with_caution
+
+        return with_caution("\n\n".join(r.summary(caution=False) for r in self.results))
 
     def to_frame(self):
         import pandas as pd
@@ -487,7 +489,7 @@ class SamplingFile:
         return pd.concat(frames, ignore_index=True)
 
     def _repr_html_(self) -> str:
-        return result_html(self.summary(), self.to_frame())
+        return result_html(self.summary(), self.to_frame(), caution=False)
 
 
 def sampling_file(path, *, simulate: int = 0, seed: int = 1, engine: Engine | None = None,

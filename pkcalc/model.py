@@ -36,6 +36,7 @@ __all__ = [
     "derived_parameters",
     "event_geometry",
     "expand_doses",
+    "fraction_of_plateau",
     "plateau_concentration",
     "rate_for_plateau",
     "resolve_clearance_volume",
@@ -477,6 +478,20 @@ def time_to_fraction(fraction, clearance, volume):
     """
     fraction = np.asarray(fraction, dtype=float)
     return -np.log1p(-fraction) * np.asarray(volume, float) / np.asarray(clearance, float) + 0.0
+
+
+def fraction_of_plateau(t, clearance, volume):
+    """Fraction of its plateau a constant-rate infusion started from zero reaches after
+    ``t``: ``1 - exp(-k t)`` (the inverse of :func:`time_to_fraction`; Gibaldi & Perrier,
+    ch. 2).
+
+    Examples
+    --------
+    >>> round(float(fraction_of_plateau(8.0, 1.0, 8.0 / LN2)), 6)
+    0.5
+    """
+    k = np.asarray(clearance, float) / np.asarray(volume, float)
+    return -np.expm1(-k * np.asarray(t, float)) + 0.0
 
 
 def steady_state_intermittent(dose, duration, interval, clearance, volume):

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import model
-from ._format import format_table, short
+from ._format import format_table, short, with_caution
 from .core import DoseEvent, ScenarioInput, Target, expand_events
 from .plausibility import parameter_warnings
 
@@ -25,6 +25,7 @@ __all__ = [
     "plot_grid",
     "predict_course",
     "predict_scenario",
+    "repeating_tail",
 ]
 
 #: Fractions of plateau reported by default.
@@ -107,7 +108,7 @@ class ScenarioPrediction:
         """Notebook view: the caution, the table and the summary."""
         from ._format import result_html
 
-        return result_html(self.summary(), self.to_frame())
+        return result_html(self.summary(caution=False), self.to_frame())
 
     def to_frame(self):
         """The profile as a DataFrame with columns ``time [h]``, ``concentration [mg/L]``."""
@@ -115,8 +116,9 @@ class ScenarioPrediction:
 
         return pd.DataFrame({"time [h]": self.time, "concentration [mg/L]": self.concentration})
 
-    def summary(self) -> str:
-        """A plain-text summary in canonical units (no caution; reports add it)."""
+    def summary(self, caution: bool = True) -> str:
+        """A plain-text summary in canonical units, after the caution (``caution=False``:
+        without, for reports that print it themselves)."""
         p = self.parameters
         rows = [
             ["clearance", p["clearance"], "L/h"],
@@ -132,10 +134,11 @@ class ScenarioPrediction:
             rows += [["steady-state peak", ss.peak, "mg/L"],
                      ["steady-state trough", ss.trough, "mg/L"],
                      ["steady-state average", ss.average, "mg/L"]]
-        text = [f"Scenario: {self.name}", format_table(["quantity", "value", "unit"], rows)]
+        text = [f"Scenario: {self.name}", format_table(["quantity", "value", "unit"], rows),
+                f"plateau basis: {self.plateau_basis}"]
         text += [f"FLAG: {f}" for f in self.flags]
         text += [f"warning: {w}" for w in self.warnings]
-        return "\n".join(text)
+        return with_caution("\n".join(text), caution)
 
 
 # --------------------------------------------------------------------------- helpers
@@ -211,21 +214,79 @@ def _rate_segments(doses: Sequence[DoseEvent]) -> tuple[np.ndarray, np.ndarray]:
     return uniq, np.clip(level[last_idx], 0.0, None)
 
 
-def _plateau(doses: Sequence[DoseEvent], clearance: float,
+#: A dose list ends in a repeating pattern when at least this many alike doses (the same
+#: amounts and durations starting together) follow each other at equal gaps.
+PATTERN_DOSES = 3
+#: Gaps that agree to this relative difference count as equal.
+PATTERN_RTOL = 1e-6
+
+
+def repeating_tail(doses: Sequence[DoseEvent]) -> list[DoseEvent] | None:
+    """The repeating pattern a dose list ends in, as repeated dose records (one per dose of
+    the repeated group, with ``every`` and ``count``), or None.
+
+    The doses are grouped by start time; walking back from the last group, groups that
+    repeat the last one (the same amounts and durations) at one gap form the pattern,
+    which needs :data:`PATTERN_DOSES` groups, every infusion no longer than the gap, and
+    no other dose still running when it begins.
+    """
+    start, amount, duration = expand_events(doses)
+    if start.size < PATTERN_DOSES:
+        return None
+    starts, inverse = np.unique(start, return_inverse=True)
+    groups = [sorted(zip(amount[inverse == g].tolist(), duration[inverse == g].tolist(),
+                         strict=True)) for g in range(starts.size)]
+    last = groups[-1]
+    n = 1
+    gap = None
+    while n < starts.size and groups[-1 - n] == last:
+        step = float(starts[-n] - starts[-1 - n])
+        if gap is None:
+            gap = step
+        elif abs(step - gap) > PATTERN_RTOL * gap:
+            break
+        n += 1
+    if gap is None or n < PATTERN_DOSES or max(d for _, d in last) > gap * (1 + PATTERN_RTOL):
+        return None
+    first = float(starts[-n])
+    before = inverse < starts.size - n
+    if np.any(start[before] + duration[before] > first + PATTERN_RTOL * gap):
+        return None
+    return [DoseEvent(first, a, d, gap, n) for a, d in last]
+
+
+def _plateau(doses: Sequence[DoseEvent], clearance: float, volume: float,
              trains: list[DoseEvent]) -> tuple[float | None, str]:
+    """The plateau and how it was found: the average steady-state level of repeated
+    doses; the level the final rate approaches when the doses end in a constant-rate
+    infusion; else none."""
     if trains:
         rate = sum(d.amount / d.every for d in trains)  # type: ignore[operator]
         return float(model.plateau_concentration(rate, clearance)), (
             f"average steady-state level of the repeated doses: mean input {rate:.4g} mg/h / CL"
         )
-    _, level = _rate_segments(doses)
-    positive = level[level > 1e-12 * (level.max() if level.size else 1.0)]
+    marks, level = _rate_segments(doses)
+    positive = np.flatnonzero(level > 1e-12 * (level.max() if level.size else 1.0))
     if positive.size == 0:
         return None, "no constant-rate infusion: no plateau"
-    rate = float(positive[-1])
-    return float(model.plateau_concentration(rate, clearance)), (
-        f"final infusion rate {rate:.4g} mg/h / CL"
-    )
+    j = int(positive[-1])
+    rate = float(level[j])
+    # a constant-rate infusion ends the doses when its last segment is at least as long as
+    # every gap between the dose starts before it (not one of several short infusions)
+    length = float(marks[j + 1] - marks[j]) if j + 1 < marks.size else np.inf
+    starts = np.unique(expand_events(doses)[0])
+    starts = starts[starts <= marks[j]]
+    longest_gap = float(np.diff(starts).max()) if starts.size > 1 else 0.0
+    if length < longest_gap:
+        return None, ("the doses end neither in a constant-rate infusion nor in a repeating "
+                      f"pattern ({PATTERN_DOSES} or more alike doses at equal gaps): no "
+                      "plateau is defined")
+    basis = f"final infusion rate {rate:.4g} mg/h / CL"
+    if np.isfinite(length):
+        reached = float(model.fraction_of_plateau(length, clearance, volume))
+        basis += (f" (the level it approaches if continued; {reached:.0%} of it is reached "
+                  f"when the infusion stops after {short(length)} h)")
+    return float(model.plateau_concentration(rate, clearance)), basis
 
 
 def _steady_state(trains: list[DoseEvent], clearance: float, volume: float,
@@ -303,9 +364,16 @@ def predict_scenario(scenario: ScenarioInput, fractions: Sequence[float] = FRACT
     conc = model.concentration(times, start, amount, duration, cl, v)
     trains = [d for d in doses if d.count > 1]
     warnings = parameter_warnings(cl, v, scenario.weight)
-    plateau, basis = _plateau(doses, cl, trains)
-    ss = _steady_state(trains, cl, v, warnings)
-    if trains and any(d.count == 1 for d in doses):
+    listed = None if trains else repeating_tail(doses)
+    plateau, basis = _plateau(doses, cl, v, trains or listed or [])
+    ss = _steady_state(trains or listed or [], cl, v, warnings)
+    if listed:
+        basis += (f" (the list ends in {listed[0].count} alike doses every "
+                  f"{short(listed[0].every)} h, continued)")
+        if len(expand_events(doses)[0]) > listed[0].count * len(listed):
+            warnings.append("steady state considers the repeating doses at the end of the "
+                            "list; the doses before them wash out")
+    elif trains and any(d.count == 1 for d in doses):
         warnings.append("steady state considers only the repeated doses; single doses wash out")
     highest, highest_time = _highest(times, doses, (start, amount, duration), cl, v)
     profile_max = highest

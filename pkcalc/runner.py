@@ -591,7 +591,7 @@ def run_batch_command(input_path: str, output_path: str, options, *, engine="loc
         "distribution": summary.distribution(),
         "warnings": summary.warnings,
     })
-    text = report.assemble_text([summary.summary()], [("batch", summary.warnings)],
+    text = report.assemble_text([summary.summary(caution=False)], [("batch", summary.warnings)],
                                 colour=colour)
 
     def figures() -> dict[str, Any]:

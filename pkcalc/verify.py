@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import model
-from ._format import format_table, short
+from ._format import format_table, short, with_caution
 from .core import ScenarioInput
 from .design import DesignResult, design_from_case, loading_dose_for_target, rate_for_target
 from .predict import predict_scenario
@@ -78,19 +78,20 @@ class VerifyResult:
     def n_failed(self) -> int:
         return sum(not c.passed for case in self.cases for c in case.checks)
 
-    def summary(self) -> str:
-        """Plain-text table case x quantity (reports add the caution)."""
+    def summary(self, caution: bool = True) -> str:
+        """Plain-text table case x quantity, after the caution (``caution=False``: without)."""
         rows = [[case.name, c.quantity, c.expected, c.computed, c.difference, c.unit,
                  c.tolerance, "PASS" if c.passed else "FAIL"]
                 for case in self.cases for c in case.checks]
-        return format_table(["case", "quantity", "expected", "computed", "difference", "unit",
-                             "tolerance", "result"], rows)
+        table = format_table(["case", "quantity", "expected", "computed", "difference", "unit",
+                              "tolerance", "result"], rows)
+        return with_caution(table, caution)
 
     def _repr_html_(self) -> str:
         """Notebook view: the caution, the table and the summary."""
         from ._format import result_html
 
-        return result_html(self.summary(), self.to_frame())
+        return result_html(self.summary(caution=False), self.to_frame())
 
     def to_frame(self):
         """One row per check."""

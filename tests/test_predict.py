@@ -6,6 +6,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from pkcalc import model
 from pkcalc.core import DoseEvent, Target
@@ -128,3 +130,77 @@ def test_default_grid_contains_every_dose_boundary():
     r = predict_course(clearance=3.0, volume=30.0, doses=[DoseEvent(0.0, 100.0, 0.37),
                                                    DoseEvent(5.13, 50.0, 0.0)])
     assert {0.37, 5.13} <= set(np.round(r.time, 12))
+
+
+# --------------------------------------------------------------------------- dose lists
+def _ode_peak_trough_average(doses, cl, v, tau, cycles):
+    """Independent check: scipy's ODE solver integrates dC/dt = (rate(t) - CL C)/V over
+    ``cycles`` intervals (long enough for steady state) and reads the last interval."""
+    from scipy.integrate import solve_ivp
+
+    def rate(t):
+        return sum(d.amount / d.duration for d in doses
+                   if d.start <= (t % tau) < d.start + d.duration)
+
+    t_end = cycles * tau
+    sol = solve_ivp(lambda t, c: [(rate(t) - cl * c[0]) / v], (0, t_end), [0.0],
+                    method="LSODA", rtol=1e-10, atol=1e-12, max_step=0.02, dense_output=True)
+    t = np.linspace(t_end - tau, t_end, 4001)
+    c = sol.sol(t)[0]
+    return c.max(), c.min(), np.trapezoid(c, t) / tau
+
+
+def test_a_list_of_alike_doses_has_the_steady_state_of_the_repeated_record():
+    # six 1-h infusions of 500 mg every 8 h written out one by one: the steady state is
+    # that of the same regimen written with every/count, checked by the ODE solver; the
+    # plateau is the steady-state average, never the infusion rate / CL (500/5 = 100)
+    listed = [DoseEvent(8.0 * j, 500.0, 1.0) for j in range(6)]
+    r = predict_course(clearance=5.0, volume=40.0, doses=listed)
+    ref = predict_course(clearance=5.0, volume=40.0, doses=[DoseEvent(0, 500, 1, 8, 6)])
+    assert r.steady_state == ref.steady_state
+    assert r.plateau_concentration == pytest.approx(500 / (5.0 * 8))
+    assert "6 alike doses every 8 h" in r.plateau_basis
+    peak, trough, avg = _ode_peak_trough_average([DoseEvent(0, 500, 1)], 5.0, 40.0, 8.0, 20)
+    ss = r.steady_state
+    assert (ss.peak, ss.trough, ss.average) == (pytest.approx(peak, rel=1e-4),
+                                                 pytest.approx(trough, rel=1e-4),
+                                                 pytest.approx(avg, rel=1e-4))
+
+
+def test_a_loading_dose_before_the_pattern_washes_out_with_a_warning():
+    doses = [DoseEvent(0, 1200, 0)] + [DoseEvent(8.0 + 8 * j, 500.0, 1.0) for j in range(4)]
+    r = predict_course(clearance=5.0, volume=40.0, doses=doses)
+    assert r.steady_state is not None and r.steady_state.interval == 8.0
+    assert any("wash out" in w for w in r.warnings)
+
+
+@pytest.mark.parametrize("doses", [
+    [DoseEvent(0, 500, 1), DoseEvent(8, 500, 1), DoseEvent(17, 500, 1)],   # one late dose
+    [DoseEvent(0, 500, 1), DoseEvent(8, 500, 1)],                          # two doses only
+    [DoseEvent(0, 500, 1), DoseEvent(8, 500, 1), DoseEvent(16, 400, 1)],   # last one different
+])
+def test_an_irregular_list_has_no_plateau_and_says_so(doses):
+    r = predict_course(clearance=5.0, volume=40.0, doses=doses)
+    assert r.plateau_concentration is None and r.steady_state is None
+    assert "no plateau is defined" in r.plateau_basis
+    assert "no plateau is defined" in r.summary()
+
+
+def test_a_final_constant_infusion_states_how_close_it_gets():
+    # 1 - exp(-k T): a 48-h infusion with t1/2 8 h reaches 1 - 2^-6 = 98 % (calc)
+    r = predict_course(clearance=3.0, volume=34.62, doses=[DoseEvent(0, 30 * 48, 48)])
+    assert "98%" in r.plateau_basis
+
+
+@settings(max_examples=40, deadline=None)
+@given(n=st.integers(3, 12), tau=st.floats(2.0, 48.0), frac=st.floats(0.05, 1.0),
+       amount=st.floats(10.0, 5000.0), t0=st.floats(0.0, 100.0))
+def test_any_regular_list_equals_its_repeated_record(n, tau, frac, amount, t0):
+    listed = [DoseEvent(t0 + tau * j, amount, tau * frac) for j in range(n)]
+    r = predict_course(clearance=4.0, volume=30.0, doses=listed)
+    ref = predict_course(clearance=4.0, volume=30.0,
+                         doses=[DoseEvent(t0, amount, tau * frac, tau, n)])
+    a, b = r.steady_state, ref.steady_state
+    assert [a.peak, a.trough, a.average, a.interval] == pytest.approx(
+        [b.peak, b.trough, b.average, b.interval], rel=1e-9)
+    assert r.plateau_concentration == pytest.approx(ref.plateau_concentration)

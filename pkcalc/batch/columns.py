@@ -140,9 +140,9 @@ class BatchSummary:
                 "time_to_90pct": pct(self.time_to_90),
                 "fraction_in_window_at_steady_state": pct(self.fraction_in_window)}
 
-    def summary(self) -> str:
+    def summary(self, caution: bool = True) -> str:
         """The run in words (counts, first problems, distributions; no caution)."""
-        from .._format import format_table
+        from .._format import format_table, with_caution
 
         lines = [f"Batch: {self.rows:,} rows from {self.input} -> {self.output} "
                  f"({self.engine} engine, {self.seconds:.2f} s)",
@@ -164,7 +164,7 @@ class BatchSummary:
         if rows:
             lines.append(format_table(["across the batch (first rows)", "5th", "median",
                                        "95th"], rows))
-        return "\n".join(lines)
+        return with_caution("\n".join(lines), caution)
 
     def to_frame(self, max_rows: int | None = None):
         """The output table (or its first ``max_rows`` rows); a partitioned output's
@@ -190,7 +190,7 @@ class BatchSummary:
     def _repr_html_(self) -> str:
         from .._format import result_html
 
-        return result_html(self.summary(), self.to_frame(max_rows=20))
+        return result_html(self.summary(caution=False), self.to_frame(max_rows=20))
 
 
 # --------------------------------------------------------------------------- columns

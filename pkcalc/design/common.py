@@ -10,7 +10,7 @@ from typing import Any
 import numpy as np
 
 from .. import model
-from .._format import format_table, short
+from .._format import format_table, short, with_caution
 from ..core import DoseEvent
 
 #: Practical dosing intervals, h (configurable per design).
@@ -397,7 +397,7 @@ class DesignResult:
         """Notebook view: the caution, the table and the summary."""
         from .._format import result_html
 
-        return result_html(self.summary(), self.to_frame())
+        return result_html(self.summary(caution=False), self.to_frame())
 
     def to_frame(self):
         """One row per proposed regimen (canonical units in the headers)."""
@@ -421,8 +421,9 @@ class DesignResult:
             rows.append(row)
         return pd.DataFrame(rows)
 
-    def summary(self) -> str:
-        """Plain-text summary in canonical units (reports add the caution)."""
+    def summary(self, caution: bool = True) -> str:
+        """Plain-text summary in canonical units, after the caution (``caution=False``:
+        without, for reports that print it themselves)."""
         lines = [f"Design: {self.name} ({self.method})"]
         if self.estimates:
             lines.append(format_table(["estimate", "value"],
@@ -438,5 +439,5 @@ class DesignResult:
             lines += [f"    flag: {f}" for f in r.flags]
         lines += [f"note: {n}" for n in self.notes]
         lines += [f"warning: {w}" for w in self.warnings]
-        return "\n".join(lines)
+        return with_caution("\n".join(lines), caution)
 

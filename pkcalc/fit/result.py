@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 
 from .. import model
-from .._format import format_table, short
+from .._format import format_table, short, with_caution
 
 
 @dataclass(frozen=True)
@@ -142,7 +142,7 @@ class FitResult:
         """Notebook view: the caution, the table and the summary."""
         from .._format import result_html
 
-        return result_html(self.summary(), self.to_frame())
+        return result_html(self.summary(caution=False), self.to_frame())
 
     def to_frame(self):
         """Per-level diagnostics: time, observed, predicted, residuals, BLQ flag."""
@@ -159,7 +159,7 @@ class FitResult:
                                            for h in self.time])
         return frame
 
-    def summary(self) -> str:
+    def summary(self, caution: bool = True) -> str:
         """Plain-text summary (canonical units)."""
         rows = [[k, e.value, e.se, e.rse_percent, e.ci_low, e.ci_high]
                 for k, e in self.estimates.items()]
@@ -177,4 +177,4 @@ class FitResult:
                          f"{self.adequacy.reason}")
         lines += [f"warning: {w}" for w in self.warnings]
         lines += [f"note: {n}" for n in self.notes]
-        return "\n".join(lines)
+        return with_caution("\n".join(lines), caution)

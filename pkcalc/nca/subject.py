@@ -26,7 +26,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from .._format import format_table, short
+from .._format import format_table, short, with_caution
 from ..core import NcaOptions, SubjectData
 from .intervals import MIN_LEVELS, IntervalResult, Levels, _Window, interval_result
 from .regimen import DURATION_TOLERANCE, INTERVAL_TOLERANCE, dosing_regimen
@@ -124,16 +124,16 @@ class NcaResult:
         """Notebook view: the caution, the table and the summary."""
         from .._format import result_html
 
-        return result_html(self.summary(), None)
+        return result_html(self.summary(caution=False), None)
 
-    def summary(self) -> str:
+    def summary(self, caution: bool = True) -> str:
         """Plain-text table (canonical units)."""
         rows = [[k.replace("_", " "), getattr(self, k)] for k in self.FIELDS
                 if getattr(self, k) is not None]
         text = [f"Subject {self.subject} ({self.mode}; dose {short(self.dose)} mg)",
                 format_table(["quantity", "value"], rows)]
         text += [f"note: {n}" for n in self.notes]
-        return "\n".join(text)
+        return with_caution("\n".join(text), caution)
 
 
 def _sorted(time, conc, blq, rows, reference, notes: list[str]) -> Levels:

@@ -6,7 +6,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .._format import format_table, short
+from .._format import format_table, short, with_caution
 from ..fit import FitResult
 
 
@@ -105,7 +105,7 @@ class PopulationResult:
     model_effects: list = field(default_factory=list)
     psi: np.ndarray | None = None
 
-    def summary(self) -> str:
+    def summary(self, caution: bool = True) -> str:
         """Plain-text summary (canonical units)."""
         rows = [[k, v, self.typical_se.get(k), self.variability_cv_percent.get(k),
                  self.shrinkage_percent.get(k)] for k, v in self.typical.items()]
@@ -128,13 +128,13 @@ class PopulationResult:
                  for p in self.parameters]))
         lines += [f"note: {n}" for n in self.notes]
         lines += [f"warning: {w}" for w in self.warnings]
-        return "\n".join(lines)
+        return with_caution("\n".join(lines), caution)
 
     def _repr_html_(self) -> str:
         """Notebook view: the caution, the table and the summary."""
-        from ._format import result_html
+        from .._format import result_html
 
-        return result_html(self.summary(), self.to_frame())
+        return result_html(self.summary(caution=False), self.to_frame())
 
     def to_frame(self):
         """One row per subject: individual estimates, ln deviations from typical, weight."""

@@ -74,7 +74,7 @@ def sampling_json(results, conv: UnitConverter, *, title: str | None = None,
 def sampling_text(results, *, title: str | None = None, failures=(),
                   colour: bool = False) -> str:
     """Terminal output: caution first, then each scenario's designs."""
-    return assemble_text([r.summary() for r in results], [(r.problem.name, r.warnings)
+    return assemble_text([r.summary(caution=False) for r in results], [(r.problem.name, r.warnings)
                                                           for r in results],
                          title=title, failures=failures, colour=colour,
                          extra_caution=SAMPLING_CAUTION)

@@ -119,9 +119,9 @@ class SamplingResult:
             frame = frame.drop(columns="clock_time")
         return frame
 
-    def summary(self) -> str:
+    def summary(self, caution: bool = True) -> str:
         """The designs in words (no caution)."""
-        from .._format import format_table, short
+        from .._format import format_table, short, with_caution
 
         p = self.problem
         groups = ", ".join(f"{g.name}: {g.subjects} x {g.levels} levels" for g in p.groups)
@@ -153,7 +153,7 @@ class SamplingResult:
                 lines.append(f"{d.label}: {s.replicates} simulated replicates re-estimated "
                              f"({s.method}, seed {s.seed}), {s.failed} failed")
         lines += self.notes
-        return "\n".join(lines)
+        return with_caution("\n".join(lines), caution)
 
     def _when(self, t: float) -> str:
         clock = self.clock_text(t)
@@ -162,7 +162,7 @@ class SamplingResult:
     def _repr_html_(self) -> str:
         from .._format import result_html
 
-        return result_html(self.summary(), self.to_frame())
+        return result_html(self.summary(caution=False), self.to_frame())
 
 
 def efficiency(log_det: float, log_det_opt: float, p: int) -> float | None:
