@@ -29,8 +29,10 @@ _EXPORTS = {
     "predict_scenario": "predict",
     "load_scenario_file": "schema", "load_study_file": "schema", "load_study": "schema",
     "example_file": "examples",
-    "fit_study": "api", "nca_study": "api", "population_study": "api",
-    "StudyFit": "api", "StudyNca": "api",
+    "fit_study": "api", "nca_study": "api", "population_study": "api", "plot": "api",
+    "StudyFit": "api", "StudyNca": "api", "StudyPopulation": "api",
+    "PopulationResult": "population", "FitResult": "fit", "NcaResult": "nca",
+    "DesignResult": "design", "load_sdtm": "schema",
     "SamplingProblem": "core", "SamplingGroup": "core", "design_sampling": "sampling",
     "sampling_file": "api", "SamplingFile": "api", "Engine": "engines",
 }
@@ -51,5 +53,11 @@ def __getattr__(name: str) -> Any:
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
+#: the parts a script uses directly (the others serve the command line)
+_PUBLIC_MODULES = {"core", "model", "predict", "design", "fit", "nca", "population", "batch",
+                   "sampling", "schema", "units", "errors", "report", "plots", "verify",
+                   "engines"}
+
+
 def __dir__() -> list[str]:
-    return sorted(set(globals()) | set(_EXPORTS))
+    return sorted(set(__all__) | _PUBLIC_MODULES)

@@ -26,11 +26,50 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from ._format import result_html
-from .core import FitOptions, NcaOptions, PopulationModel, PopulationOptions, Study
+from .core import FitOptions, NcaOptions, PopulationOptions, Study
 from .engines import Engine
 from .errors import PkcalcInputError
+from .population import PopulationResult
 
-__all__ = ["StudyFit", "StudyNca", "fit_study", "nca_study", "population_study"]
+__all__ = ["StudyFit", "StudyNca", "StudyPopulation", "fit_study", "nca_study", "plot",
+           "population_study"]
+
+_STUDY_EXPECTED = ("a Study (pkcalc.load_study, load_study_file or load_sdtm), a study "
+                   "file path, or levels= and doses= tables (paths, file-like objects or "
+                   "pandas DataFrames; subjects= optional)")
+
+
+def _as_study(study, levels=None, doses=None, subjects=None) -> Study:
+    """The study of an entry point: a Study, a study file, or tables in memory or on
+    disk (read by :func:`pkcalc.schema.load_study`, the rules of the CSV files)."""
+    from pathlib import Path
+
+    tables = (levels, doses, subjects)
+    if study is not None and any(t is not None for t in tables):
+        raise PkcalcInputError("give a study or levels=/doses= tables, not both",
+                               field="study", expected=_STUDY_EXPECTED)
+    if study is None:
+        if levels is None or doses is None:
+            raise PkcalcInputError("no study given", field="study", expected=_STUDY_EXPECTED)
+        from .schema import load_study
+
+        return load_study(levels, doses, subjects)
+    if isinstance(study, Study):
+        return study
+    if isinstance(study, str | Path):
+        from .schema import load_study_file
+
+        return load_study_file(study)
+    raise PkcalcInputError(f"got {type(study).__name__}", field="study",
+                           expected=_STUDY_EXPECTED)
+
+
+def _options(options, kind: type, name: str):
+    if options is not None and not isinstance(options, kind):
+        raise PkcalcInputError(f"got {type(options).__name__}", field="options",
+                               expected=f"a pkcalc.core.{kind.__name__} or None ({name} "
+                                        "options may also be given as keywords)")
+    return options
 
 
 def _converter(study: Study, units: dict[str, str] | None):
@@ -43,6 +82,20 @@ def _subject_failures(study: Study, extra=()) -> list[tuple[str, PkcalcInputErro
     return list(study.failures) + [
         (f"subject '{sid}'", PkcalcInputError(reason, item=f"subject '{sid}'"))
         for sid, reason in extra]
+
+
+def _find_subject(results, name: str, failures=()):
+    """The result of subject ``name``, or an error that lists the subjects."""
+    for r in results:
+        if r.subject == name:
+            return r
+    names = [r.subject for r in results]
+    shown = ", ".join(names[:20]) + (f" and {len(names) - 20} more" if len(names) > 20
+                                     else "")
+    left = any(label == f"subject '{name}'" for label, _ in failures)
+    why = " (it was left out: see failures)" if left else ""
+    raise PkcalcInputError(f"no result for subject '{name}'{why}", field="subject",
+                           expected=f"one of {shown}")
 
 
 class _PerSubject:
@@ -58,8 +111,23 @@ class _PerSubject:
         return len(self.results)
 
     def subject(self, name: str):
-        """The result of one subject."""
-        return next(r for r in self.results if r.subject == name)
+        """The result of one subject.
+
+        Raises
+        ------
+        PkcalcInputError
+            When no subject of the results has that name (the message lists them).
+        """
+        return _find_subject(self.results, name, getattr(self, "failures", []))
+
+    def _one(self, subject: str | None):
+        if subject is None:
+            if len(self.results) != 1:
+                raise PkcalcInputError("name the subject to draw", field="subject",
+                                       expected="one of " + ", ".join(
+                                           r.subject for r in self.results[:20]))
+            return self.results[0]
+        return self.subject(subject)
 
     def _repr_html_(self) -> str:
         return result_html(self.summary(), self.to_frame(), caution=False)
@@ -131,6 +199,14 @@ class StudyNca(_PerSubject):
             frame.insert(1, "first_dose_clock", [r.clock_origin for r in self.results])
         return frame
 
+    def plot(self, subject: str | None = None, conv=None):
+        """The figure ``pkcalc nca --out`` writes for ``subject`` (the only subject when
+        there is one): the levels, the terminal phase and its fit."""
+        from .plots import nca_figure
+        from .report import UnitConverter
+
+        return nca_figure(self._one(subject), conv or UnitConverter(self.units))
+
     def intervals_frame(self, conv=None):
         """One row per dosing interval (the table ``pkcalc nca --out`` writes as
         ``nca-intervals.csv``)."""
@@ -147,23 +223,46 @@ class StudyNca(_PerSubject):
 
 
 
-def nca_study(study: Study, options: NcaOptions | None = None, *,
-              units: dict[str, str] | None = None, **overrides: Any) -> StudyNca:
+def nca_study(study=None, options: NcaOptions | None = None, *, levels=None, doses=None,
+              subjects=None, units: dict[str, str] | None = None,
+              **overrides: Any) -> StudyNca:
     """NCA of every subject (see :func:`pkcalc.nca.nca_of_subject`).
 
     Parameters
     ----------
-    study : Study
+    study : Study or path, optional
+        A study (:func:`pkcalc.load_study`, :func:`pkcalc.load_study_file`,
+        :func:`pkcalc.schema.load_sdtm`) or a study file; or give the tables instead:
+    levels, doses, subjects : path, file-like or pandas.DataFrame, optional
+        The study tables with the column rules and unit headers of the CSV files
+        (docs/formats.md); messages name the frame and its row.
     options : NcaOptions, optional
-        Default: the study file's ``[nca]`` table with ``overrides`` (``auc_method``,
-        ``blq``, ``terminal_points``, ``r2_tolerance``, ``extrapolation_limit``).
+        Default: the study file's ``[nca]`` table with ``overrides``.
     units : dict, optional
-        Display units for ``summary()``/``to_frame()``.
+        Display units for ``summary()``/``to_frame()`` (kind -> unit, e.g.
+        ``{"concentration": "ng/mL"}``).
+    **overrides
+        The ``[nca]`` keys (docs/formats.md, "NCA options"):
+
+        - ``auc_method``: ``"linear-up-log-down"`` (default) or ``"linear"``;
+        - ``blq``: ``"leading_zero"`` (default), ``"zero"`` or ``"drop"``;
+        - ``terminal_points``: subject -> list of times (with units, ``"12 h"``);
+        - ``r2_tolerance``: adjusted R² within this of the best (default 1e-4);
+        - ``extrapolation_limit``: percent of AUC∞ extrapolated above which AUC∞ is
+          flagged (default 20);
+        - ``interval``: ``"each"`` (default), ``"first"``, ``"last"`` or a dose number;
+        - ``interval_tolerance``: ``"10%,1 h"`` (default; the larger applies);
+        - ``duration_tolerance``: ``"10%,15 min"`` (default).
+
+    Returns
+    -------
+    StudyNca
     """
     from .nca import nca_of_subject
     from .schema import study_nca_options
 
-    opts = options if options is not None else study_nca_options(study, overrides)
+    study = _as_study(study, levels, doses, subjects)
+    opts = _options(options, NcaOptions, "NCA") or study_nca_options(study, overrides)
     results = [nca_of_subject(s, opts) for s in study.subjects]
     warnings = list(study.warnings)
     unknown = sorted(set(opts.terminal_points) - {s.subject for s in study.subjects})
@@ -266,6 +365,17 @@ class StudyFit(_PerSubject):
             frame.insert(1, "first_dose_clock", [r.clock_origin for r in self.results])
         return frame
 
+    def plot(self, subject: str | None = None, conv=None):
+        """The figure ``pkcalc fit --out`` writes: the diagnostics of every subject
+        (``diagnostics.png``), or one subject's levels and fitted course."""
+        from .plots import diagnostics_figure, fit_figure
+        from .report import UnitConverter
+
+        conv = conv or UnitConverter(self.units)
+        if subject is None:
+            return diagnostics_figure(self.results, conv)
+        return fit_figure(self.subject(subject), conv)
+
     def levels_frame(self):
         """Every level with its prediction and residuals (``fit-levels.csv``)."""
         import pandas as pd
@@ -274,18 +384,43 @@ class StudyFit(_PerSubject):
 
 
 
-def fit_study(study: Study, options: FitOptions | None = None, *,
-              units: dict[str, str] | None = None, **overrides: Any) -> StudyFit:
+def fit_study(study=None, options: FitOptions | None = None, *, levels=None, doses=None,
+              subjects=None, units: dict[str, str] | None = None,
+              **overrides: Any) -> StudyFit:
     """Fit every subject of a study (see :func:`pkcalc.fit.fit_subjects`).
 
     Parameters
     ----------
-    study : Study
+    study : Study or path, optional
+        A study (:func:`pkcalc.load_study`, :func:`pkcalc.load_study_file`,
+        :func:`pkcalc.schema.load_sdtm`) or a study file; or give the tables instead:
+    levels, doses, subjects : path, file-like or pandas.DataFrame, optional
+        The study tables with the column rules and unit headers of the CSV files.
     options : FitOptions, optional
-        Default: the study file's ``[fit]`` table with ``overrides`` (``weighting``,
-        ``error_model``, ``blq``, ``ci``, ``prior``, ``starts``, ``with_nca``,
-        ``nca_threshold``).
+        Default: the study file's ``[fit]`` table with ``overrides``.
     units : dict, optional
+        Display units for ``summary()``/``to_frame()``.
+    **overrides
+        The ``[fit]`` keys (docs/formats.md):
+
+        - ``error_model``: ``"proportional"`` (default), ``"additive"`` or
+          ``"combined"`` -- maximum likelihood; or instead
+        - ``weighting``: ``"uniform"``, ``"inverse_observed"``,
+          ``"inverse_observed_squared"`` or ``"inverse_predicted_squared"`` -- least
+          squares;
+        - ``blq``: ``"likelihood"`` (Beal's M3; default with an error model),
+          ``"drop"`` (default with a weighting) or ``"half_lloq"``;
+        - ``ci``: ``"wald"`` (default) or ``"profile"``;
+        - ``prior``: a prior file path or a table (clearance, volume with units, CVs)
+          -- MAP estimation;
+        - ``starts``: starting points of the multi-start search (1-20, default 3);
+        - ``with_nca``: compare with NCA (default False);
+        - ``nca_threshold``: percent disagreement flagged (default 20);
+        - ``adequacy``: the one-compartment adequacy check (default True).
+
+    Returns
+    -------
+    StudyFit
 
     Raises
     ------
@@ -295,7 +430,8 @@ def fit_study(study: Study, options: FitOptions | None = None, *,
     from .fit import check_adequacy, compare_with_nca, fit_subjects
     from .schema import study_fit_options
 
-    opts = options if options is not None else study_fit_options(study, overrides)
+    study = _as_study(study, levels, doses, subjects)
+    opts = _options(options, FitOptions, "fit") or study_fit_options(study, overrides)
     results, unfit = fit_subjects(study.subjects, opts)
     failures = _subject_failures(study, unfit)
     if not results:
@@ -315,29 +451,150 @@ def fit_study(study: Study, options: FitOptions | None = None, *,
 
 
 # --------------------------------------------------------------------------- population
-def population_study(study: Study, options: PopulationOptions | None = None, *,
+@dataclass
+class StudyPopulation(PopulationResult):
+    """A population estimate of a study: every attribute and method of
+    :class:`~pkcalc.population.PopulationResult` (``params``, ``bse``, ``conf_int()``,
+    ``cov_params()``, ``pvalues``, ``predict()``, ``individual_parameters()``,
+    ``to_prior()``, ``comparison``) plus the study's context, so that ``summary()`` and
+    ``document()`` are what ``pkcalc population`` prints and writes.
+
+    Attributes
+    ----------
+    options : PopulationOptions
+    study_failures : list of (str, PkcalcInputError)
+        Subjects left out when the study was read.
+    study_warnings : list of str
+    title : str or None
+    display_units : dict or None
+        Display units of ``summary()`` and ``document()`` (canonical otherwise).
+    used_subjects : list of SubjectData
+        The subjects the estimate used (for ``plot()``).
+    """
+
+    options: PopulationOptions | None = None
+    study_failures: list = field(default_factory=list)
+    study_warnings: list[str] = field(default_factory=list)
+    title: str | None = None
+    display_units: dict[str, str] | None = None
+    used_subjects: list = field(default_factory=list)
+
+    @classmethod
+    def of(cls, result: PopulationResult, study: Study, options: PopulationOptions,
+           units: dict[str, str] | None = None) -> StudyPopulation:
+        from dataclasses import fields
+
+        base = {f.name: getattr(result, f.name) for f in fields(PopulationResult)}
+        fitted = {r.subject for r in result.subjects}
+        return cls(**base, options=options, study_failures=list(study.failures),
+                   study_warnings=list(study.warnings), title=study.title,
+                   display_units=units or study.output or None,
+                   used_subjects=[s for s in study.subjects if s.subject in fitted])
+
+    @property
+    def all_failures(self) -> list[tuple[str, PkcalcInputError]]:
+        """Subjects left out when reading and when estimating, with their problems."""
+        return list(self.study_failures) + [
+            (f"subject '{sid}'", PkcalcInputError(str(reason), item=f"subject '{sid}'"))
+            for sid, reason in self.failures]
+
+    @property
+    def settings(self) -> dict[str, Any]:
+        o = self.options or PopulationOptions()
+        out: dict[str, Any] = {"method": o.method, "error_model": o.error_model,
+                               "blq": o.blq, "covariate": o.covariate,
+                               "reference_weight": f"{o.reference_weight:g} kg",
+                               "adequacy_check": o.adequacy}
+        if o.method == "marginal":
+            out.update({"nodes": o.nodes, "between_subject": o.between_subject,
+                        "effects": "; ".join(e.label for e in o.effects) or "none"})
+        return out
+
+    def document(self, conv=None) -> dict[str, Any]:
+        """The ``pkcalc population --json`` document."""
+        from .report import UnitConverter
+        from .report.population import population_json
+
+        doc = population_json(self, conv or UnitConverter(self.display_units),
+                              title=self.title, failures=self.all_failures,
+                              settings=self.settings)
+        doc["warnings"] = list(self.study_warnings) + list(self.warnings)
+        return doc
+
+    def summary(self, conv=None, colour: bool = False, caution: bool = True) -> str:
+        """The text ``pkcalc population`` prints (caution first, display units)."""
+        from .report import UnitConverter
+        from .report.population import population_text
+
+        text = population_text(self, conv or UnitConverter(self.display_units),
+                               title=self.title, failures=self.all_failures,
+                               settings=self.settings, colour=colour)
+        return text if caution else text.split("\n\n", 1)[-1]
+
+    def _repr_html_(self) -> str:
+        return result_html(self.summary(), self.to_frame(), caution=False)
+
+    def plot(self, subject: str | None = None, conv=None):
+        """The diagnostics figure ``pkcalc population --out`` writes (observed against
+        population and individual predictions), or one subject's fit."""
+        from .plots import fit_figure, population_figure
+        from .report import UnitConverter
+
+        conv = conv or UnitConverter(self.display_units)
+        if subject is not None:
+            return fit_figure(_find_subject(self.subjects, subject, self.all_failures), conv)
+        return population_figure(self, self.used_subjects, conv)
+
+
+def population_study(study=None, options: PopulationOptions | None = None, *,
+                     levels=None, doses=None, subjects=None,
+                     units: dict[str, str] | None = None,
                      progress: Callable[[str], None] | None = None,
-                     engine: Engine | None = None, **overrides: Any):
+                     engine: Engine | None = None, **overrides: Any) -> StudyPopulation:
     """Population estimates of a study: maximum marginal likelihood (default; Laplace
     or adaptive quadrature, with a covariance step, covariate effects, model
     comparison and stepwise selection), or the standard / iterative two-stage
-    methods; bootstrap standard errors when ``options.bootstrap`` > 0.
+    methods; bootstrap standard errors when ``bootstrap`` > 0.
 
     Parameters
     ----------
-    study : Study
+    study : Study or path, optional
+        A study or a study file; or give the tables instead:
+    levels, doses, subjects : path, file-like or pandas.DataFrame, optional
+        The study tables (covariates in the subjects table, any column name).
     options : PopulationOptions, optional
         Default: the study file's ``[population]`` table with ``overrides``.
+    units : dict, optional
+        Display units of ``summary()`` and ``document()``.
     progress : callable, optional
         Receives a line of text per iteration or bootstrap replicate (the command
         line prints them on a terminal).
     engine : Engine, optional
         Where the bootstrap replicates run (:mod:`pkcalc.engines`; default this
         process).  The result does not depend on it.
+    **overrides
+        The ``[population]`` keys (docs/formats.md, "Population options"):
+
+        - ``method``: ``"marginal"`` (default), ``"iterative"`` or ``"two-stage"``;
+        - ``error_model``: ``"proportional"`` (default), ``"additive"``, ``"combined"``;
+        - ``blq``: ``"likelihood"`` (default, Beal's M3), ``"drop"``, ``"half_lloq"``;
+        - ``covariate``: body-weight model ``"none"`` (default), ``"allometric"``
+          (exponents 0.75 and 1), ``"estimated"`` or ``"per_kg"``;
+        - ``reference_weight``: ``"70 kg"`` (default; a weight with its unit);
+        - ``effects``: a list of effects in words, e.g. ``["weight on clearance",
+          "sex on volume", "age on clearance linear around 40"]``;
+        - ``models``: models to compare, ``{"base": [], "sex": ["sex on
+          clearance"]}`` (or a list of :class:`~pkcalc.core.PopulationModel`);
+        - ``stepwise``: ``{"candidates": [...], "p_in": 0.05, "p_out": 0.01}``;
+        - ``nodes``: Gauss-Hermite nodes per dimension, 1 (Laplace, default) to 31;
+        - ``between_subject``: ``"full"`` (default) or ``"diagonal"``;
+        - ``bootstrap``: replicates (default 0), ``seed`` (default 1);
+        - ``vpc_replicates``: simulated studies of the command line's VPC (200);
+        - ``adequacy``: the one-compartment adequacy check (default True).
 
     Returns
     -------
-    PopulationResult
+    StudyPopulation
         With ``failures`` naming subjects left out (reading and fitting) and, for a
         comparison, ``comparison`` (every model) -- the result is then the selected
         model (stepwise) or the one with the lowest AIC.
@@ -348,15 +605,20 @@ def population_study(study: Study, options: PopulationOptions | None = None, *,
         When too few subjects remain or the model cannot be estimated (the
         subjects left out are named first).
     """
+    from .population.covariates import CovariateError
+    from .population.run import population_bootstrap, population_estimate
     from .schema import study_population_options
 
-    o = options if options is not None else study_population_options(study, overrides)
+    study = _as_study(study, levels, doses, subjects)
+    o = _options(options, PopulationOptions, "population") or \
+        study_population_options(study, overrides)
     try:
-        result = _population_estimate(study, o, progress)
+        result = population_estimate(study.subjects, o, progress)
     except ValueError as exc:
+        where = (study.files[2] if len(study.files) > 2 else "the subjects table") \
+            if isinstance(exc, CovariateError) else (study.files[0] if study.files else None)
         raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
-                               + PkcalcInputError(str(exc), file=study.files[0] if study.files
-                                                  else None).problems) from None
+                               + PkcalcInputError(str(exc), file=where).problems) from None
     if o.adequacy:
         from .fit import check_adequacy
 
@@ -365,91 +627,12 @@ def population_study(study: Study, options: PopulationOptions | None = None, *,
         for r in result.subjects:
             r.adequacy = found.get(r.subject)
     if o.bootstrap:
-        _population_bootstrap(study, o, result, progress, engine)
+        population_bootstrap(study.subjects, o, result, progress, engine)
     elif result.method == "iterative":
         result.notes.append("standard errors of the typical values from the linearised "
                             "information, each subject's posterior covariance included (run "
                             "--bootstrap N for bootstrap intervals)")
-    return result
-
-
-def _population_estimate(study: Study, o: PopulationOptions, progress):
-    """The estimate of the chosen method (marginal falls back to the iterative two-stage
-    method, with a warning, when it does not converge and no effect needs it)."""
-    from .population import iterative_two_stage, two_stage
-    from .population.compare import compare_models, stepwise
-    from .population.estimate import individual_estimates, marginal_estimate, usable_subjects
-
-    if o.method == "two-stage":
-        return two_stage(study.subjects, FitOptions(error_model=o.error_model, blq=o.blq),
-                         covariate=o.covariate, reference_weight=o.reference_weight)
-    if o.method == "iterative":
-        return iterative_two_stage(study.subjects, error_model=o.error_model,
-                                   covariate=o.covariate, reference_weight=o.reference_weight,
-                                   blq=o.blq)
-    if o.models or o.stepwise:
-        comparison = (stepwise(study.subjects, o, o.stepwise, progress=progress) if o.stepwise
-                      else compare_models(study.subjects, o, o.models, progress=progress))
-        best = comparison.best()
-        if best is None:
-            raise ValueError("no model of the comparison could be estimated: " + "; ".join(
-                f"{r.name}: {r.error}" for r in comparison.rows if r.error))
-        result = best.result
-        individual_estimates(result, usable_subjects(study.subjects, o)[0], o)
-        result.comparison = comparison
-        result.notes.insert(0, f"reported model: '{best.name}' ("
-                            + ("selected stepwise" if o.stepwise else "lowest AIC") + ")")
-        result.failures += [(f"model '{r.name}'", r.error) for r in comparison.failed]
-        result.failures += [(f"model '{r.name}'", _model_trouble(r.result))
-                            for r in comparison.rows
-                            if r.result is not None and _model_trouble(r.result)]
-        return result
-    result = marginal_estimate(study.subjects, o, progress=progress)
-    if not result.converged and not o.effects:
-        fallback = iterative_two_stage(study.subjects, error_model=o.error_model,
-                                       covariate=o.covariate,
-                                       reference_weight=o.reference_weight, blq=o.blq)
-        fallback.warnings.append("the marginal-likelihood estimate did not converge ("
-                                 + "; ".join(result.warnings) + "): the iterative two-stage "
-                                 "estimate is reported instead")
-        return fallback
-    return result
-
-
-def _model_trouble(result) -> str:
-    """Why a compared model's numbers are not to be trusted ('' when they are)."""
-    if not result.converged:
-        return "did not converge: " + "; ".join(result.warnings)
-    if result.parameters and all(p["se"] is None for p in result.parameters):
-        return "no standard errors: " + "; ".join(result.warnings)
-    return ""
-
-
-def _population_bootstrap(study: Study, o: PopulationOptions, result, progress,
-                          engine: Engine | None) -> None:
-    """Bootstrap over subjects: SEs and percentile intervals of the typical values."""
-    from functools import partial
-
-    from .population import bootstrap
-    from .population.estimate import marginal_estimate
-
-    estimate = None
-    if result.method == "marginal":
-        model = PopulationModel(result.model_name, tuple(result.model_effects))
-        # a partial of a module-level function: worker processes can run it
-        estimate = partial(marginal_estimate, options=o, pmodel=model, start=result,
-                           final_fits=False, covariance=False)
-    result.bootstrap.update(bootstrap(
-        study.subjects, result, o.bootstrap, o.seed, progress=progress, estimate=estimate,
-        engine=engine, error_model=o.error_model, covariate=o.covariate,
-        reference_weight=o.reference_weight, blq=o.blq))
-    for k in ("clearance", "volume"):
-        b = result.bootstrap.get(k)
-        if isinstance(b, dict):
-            result.typical_se[k] = b["se"]
-            result.typical_ci[k] = (b["ci_low"], b["ci_high"])
-    result.notes.append(f"standard errors and 95 % intervals of the typical values from "
-                        f"{o.bootstrap} bootstrap replicates over subjects (seed {o.seed})")
+    return StudyPopulation.of(result, study, o, units)
 
 
 # --------------------------------------------------------------------------- sampling
@@ -490,6 +673,58 @@ class SamplingFile:
 
     def _repr_html_(self) -> str:
         return result_html(self.summary(), self.to_frame(), caution=False)
+
+    def plot(self, scenario: str | None = None, conv=None):
+        """The figure ``pkcalc sampling --out`` writes for ``scenario`` (the first
+        without)."""
+        from .plots import sampling_figure
+        from .report import UnitConverter
+
+        names = [r.problem.name for r in self.results]
+        if scenario is not None and scenario not in names:
+            raise PkcalcInputError(f"no design for scenario '{scenario}'", field="scenario",
+                                   expected="one of " + ", ".join(names))
+        one = self.results[names.index(scenario) if scenario is not None else 0]
+        return sampling_figure(one, conv or UnitConverter(self.units))
+
+
+def plot(result, conv=None):
+    """The figure the command line writes for any result: a prediction's profile, a
+    design's course, one subject's fit or NCA, a sampling design, or a study-level
+    result's own ``plot()``.
+
+    Parameters
+    ----------
+    result
+        A result object of pkcalc.
+    conv : UnitConverter, optional
+        Display units (canonical by default).
+
+    Returns
+    -------
+    matplotlib.figure.Figure or None
+        None when the result has nothing to draw (a design without a course).
+    """
+    from . import plots
+    from .design import DesignResult
+    from .fit import FitResult
+    from .nca import NcaResult
+    from .predict import ScenarioPrediction
+    from .report import UnitConverter
+    from .sampling import SamplingResult
+
+    if hasattr(result, "plot") and callable(result.plot):
+        return result.plot(conv=conv) if conv is not None else result.plot()
+    conv = conv or UnitConverter()
+    drawers = ((ScenarioPrediction, plots.profile_figure), (DesignResult, plots.design_figure),
+               (FitResult, plots.fit_figure), (NcaResult, plots.nca_figure),
+               (SamplingResult, plots.sampling_figure))
+    for kind, draw in drawers:
+        if isinstance(result, kind):
+            return draw(result, conv)
+    raise PkcalcInputError(f"got {type(result).__name__}", field="result",
+                           expected="a result object of pkcalc (a prediction, design, fit, "
+                                    "NCA, population or sampling result)")
 
 
 def sampling_file(path, *, simulate: int = 0, seed: int = 1, engine: Engine | None = None,

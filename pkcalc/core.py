@@ -22,6 +22,7 @@ from .errors import PkcalcInputError
 
 __all__ = [
     "BLQ_METHODS",
+    "CANONICAL_UNITS",
     "CI_METHODS",
     "EFFECT_FORMS",
     "ERROR_MODELS",
@@ -46,6 +47,20 @@ __all__ = [
     "Target",
     "expand_events",
 ]
+
+#: The canonical unit of every kind of quantity: every number inside pkcalc is in these.
+CANONICAL_UNITS: dict[str, str] = {
+    "time": "h",
+    "amount": "mg",
+    "volume": "L",
+    "concentration": "mg/L",
+    "clearance": "L/h",
+    "rate": "mg/h",
+    "elimination_rate": "1/h",
+    "weight": "kg",
+    "auc": "mg*h/L",
+    "aumc": "mg*h^2/L",
+}
 
 WEIGHTINGS = ("uniform", "inverse_observed", "inverse_observed_squared",
               "inverse_predicted_squared")

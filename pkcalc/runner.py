@@ -494,31 +494,16 @@ def run_population(study, options=None, *, colour: bool = False, progress=None,
     from .api import population_study
     from .population import simulate_design
     from .report.html import population_sections
-    from .report.population import population_json, population_text
     from .schema import study_population_options
 
     options = options if options is not None else study_population_options(study)
     result = population_study(study, options, progress=progress, engine=engine)
     conv = report.UnitConverter(study.output or None)
-    subjects = study.subjects
-    failures = list(study.failures) + [
-        (f"subject '{sid}'", PkcalcInputError(reason, item=f"subject '{sid}'"))
-        for sid, reason in result.failures]
-    settings = {"method": options.method, "error_model": options.error_model,
-                "blq": options.blq, "covariate": options.covariate,
-                "reference_weight": f"{options.reference_weight:g} kg",
-                "adequacy_check": options.adequacy}
-    if options.method == "marginal":
-        settings.update({"nodes": options.nodes, "between_subject": options.between_subject,
-                         "effects": "; ".join(e.label for e in options.effects) or "none"})
-    doc = population_json(result, conv, title=study.title, failures=failures,
-                          settings=settings)
-    doc["warnings"] = list(study.warnings) + list(result.warnings)
-    text = population_text(result, conv, title=study.title, failures=failures,
-                           settings=settings, colour=colour)
+    failures = result.all_failures
+    doc = result.document(conv)
+    text = result.summary(conv, colour=colour)
     doc, text = _with_import(study, doc, text)
-    fitted = {r.subject for r in result.subjects}
-    used = [s for s in subjects if s.subject in fitted]
+    used = result.used_subjects
     flagged = [r for r in result.subjects
                if r.adequacy is not None and r.adequacy.verdict == "distribution_phase"]
 

@@ -29,6 +29,7 @@ from functools import lru_cache
 
 import pint
 
+from .core import CANONICAL_UNITS
 from .errors import PkcalcInputError
 
 __all__ = [
@@ -49,18 +50,7 @@ ureg = pint.UnitRegistry()
 ureg.define("mcg = microgram")
 
 #: Canonical unit of each kind of quantity.
-CANONICAL: dict[str, str] = {
-    "time": "h",
-    "amount": "mg",
-    "volume": "L",
-    "concentration": "mg/L",
-    "clearance": "L/h",
-    "rate": "mg/h",
-    "elimination_rate": "1/h",
-    "weight": "kg",
-    "auc": "mg*h/L",
-    "aumc": "mg*h^2/L",
-}
+CANONICAL: dict[str, str] = CANONICAL_UNITS
 
 #: Examples of accepted units, used in error messages.
 KINDS: dict[str, str] = {

@@ -1,11 +1,13 @@
 """Several covariate models side by side, and stepwise covariate selection.
 
 Every model is estimated by maximum marginal likelihood on the same subjects.
-The table gives ``-2 ln L``, the number of parameters, AIC, BIC and the
-likelihood-ratio test against the base model: ``D = -2 ln L(base) - (-2 ln
-L(model))`` against a chi-square with as many degrees of freedom as the model
-has extra parameters, for models that contain every effect of the base
-(nested); otherwise no test (compare by AIC/BIC).  Stepwise selection
+The table gives ``-2 ln L``, the number of parameters, AIC, BIC and, for each
+model, the likelihood-ratio test against the largest other model nested in it (its
+effects a subset of the model's, fewer parameters; the base when nothing larger
+is): ``D = -2 ln L(smaller) - (-2 ln L(model))`` against a chi-square with as many
+degrees of freedom as the model has extra parameters (Wilks' theorem); models
+with no nested partner get no test (compare by AIC/BIC).  :meth:`ModelComparison.tests`
+lists every nested pair.  Stepwise selection
 (common practice: forward inclusion at p < 0.05, backward elimination at
 p > 0.01) adds the candidate effect with the smallest p-value while it is below
 ``p_in``, then removes the effect with the largest p-value while it is above
@@ -37,6 +39,7 @@ class ModelRow:
     lrt_df: int | None = None
     lrt_statistic: float | None = None
     lrt_p: float | None = None
+    compared_with: str | None = None
 
     def as_dict(self) -> dict:
         r = self.result
@@ -45,8 +48,8 @@ class ModelRow:
                 "n_parameters": None if r is None else r.n_parameters,
                 "aic": None if r is None else r.aic, "bic": None if r is None else r.bic,
                 "converged": None if r is None else r.converged,
-                "lrt_df": self.lrt_df, "lrt_statistic": self.lrt_statistic,
-                "lrt_p": self.lrt_p, "error": self.error}
+                "compared_with": self.compared_with, "lrt_df": self.lrt_df,
+                "lrt_statistic": self.lrt_statistic, "lrt_p": self.lrt_p, "error": self.error}
 
 
 @dataclass
@@ -69,6 +72,62 @@ class ModelComparison:
             return next((r for r in ok if r.name == self.selected), None)
         return min(ok, key=lambda r: r.result.aic, default=None)
 
+    def tests(self) -> list[dict]:
+        """Every nested pair of estimated models with its likelihood-ratio test."""
+        out = []
+        for big in self.rows:
+            for small in self.rows:
+                test = _test(small, big)
+                if test is not None:
+                    out.append({"model": big.name, "nested_model": small.name, "df": test[0],
+                                "statistic": test[1], "p": test[2]})
+        return out
+
+    def to_frame(self):
+        """One row per model: effects, -2 ln L, parameters, AIC, BIC, the model its
+        likelihood-ratio test is against, the test, convergence or the error."""
+        import pandas as pd
+
+        frame = pd.DataFrame([r.as_dict() for r in self.rows])
+        frame["effects"] = frame["effects"].map("; ".join)
+        frame["selected"] = [r is self.best() for r in self.rows]
+        return frame.rename(columns={"objective": "-2lnL"})
+
+    def summary(self, caution: bool = True) -> str:
+        """The comparison table, the stepwise path and every nested pair."""
+        from .._format import format_table, with_caution
+
+        best = self.best()
+        rows = [[r.name, "; ".join(e.label for e in r.effects) or "(none)",
+                 None if r.result is None else r.result.objective,
+                 None if r.result is None else r.result.n_parameters,
+                 None if r.result is None else r.result.aic,
+                 None if r.result is None else r.result.bic, r.compared_with, r.lrt_df,
+                 r.lrt_p, "FAILED: " + r.error if r.error else
+                 ("yes" if r.result.converged else "NO"), "<-" if r is best else ""]
+                for r in self.rows]
+        lines = [f"Models compared (base '{self.base}'; each tested against the largest "
+                 "model nested in it):",
+                 format_table(["model", "effects", "-2lnL", "parameters", "AIC", "BIC",
+                               "compared with", "LRT df", "LRT p", "converged", "reported"],
+                              rows)]
+        lines += [f"  {s['step']}: {s['effect']}: p = {s['p']:.3g} -> "
+                  + (("kept" if s["step"] == "forward" else "removed") if s["accepted"] else
+                     ("not added" if s["step"] == "forward" else "kept"))
+                  for s in self.steps]
+        pairs = self.tests()
+        if pairs:
+            lines.append("Every nested pair:")
+            lines.append(format_table(["model", "nested model", "df", "statistic", "p"],
+                                      [[t["model"], t["nested_model"], t["df"],
+                                        t["statistic"], t["p"]] for t in pairs]))
+        return with_caution("\n".join(lines), caution)
+
+    def _repr_html_(self) -> str:
+        from .._format import result_html
+
+        return result_html(self.summary(caution=False), self.to_frame())
+
 
 def _test(small: ModelRow, big: ModelRow) -> tuple[int, float, float] | None:
     """Likelihood-ratio test of ``small`` nested in ``big``: (df, statistic, p)."""
@@ -89,6 +148,13 @@ def _lrt(base: ModelRow, row: ModelRow) -> None:
     test = _test(base, row)
     if test is not None:
         row.lrt_df, row.lrt_statistic, row.lrt_p = test
+        row.compared_with = base.name
+
+
+def _nearest_nested(rows: list[ModelRow], row: ModelRow) -> ModelRow | None:
+    """The model with the most parameters nested in ``row`` (the earliest on ties)."""
+    nested = [r for r in rows if _test(r, row) is not None]
+    return max(nested, key=lambda r: r.result.n_parameters, default=None)
 
 
 def _estimate(subjects, options, pm: PopulationModel, progress, start) -> ModelRow:
@@ -118,7 +184,9 @@ def compare_models(subjects: list[SubjectData], options: PopulationOptions,
         if start is None and row.result is not None:
             start = row.result          # later models start from the base estimate
     for row in rows[1:]:
-        _lrt(rows[0], row)
+        partner = _nearest_nested(rows, row)
+        if partner is not None:
+            _lrt(partner, row)
     return ModelComparison(rows, models[0].name)
 
 
@@ -164,6 +232,8 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
             rows.append(row)
             test = _test(row, current_row)
             if test is not None:
+                row.lrt_df, row.lrt_statistic, row.lrt_p = test
+                row.compared_with = current_row.name
                 ok.append((e, row, test[2]))
         if not ok:
             break

@@ -90,6 +90,58 @@ class Design:
                 k += 1
         return mu
 
+    def without_data(self) -> Design:
+        """The same mean function without the study's covariate values (what a result
+        keeps to compute a new patient's typical values)."""
+        terms = [replace(t, values=np.empty(0)) for t in self.terms]
+        return Design(self.effects, list(self.names), terms, 0)
+
+    def means_for(self, beta: np.ndarray, covariates: dict) -> np.ndarray:
+        """Typical ``ln CL, ln V`` of a patient with ``covariates`` (column -> value;
+        names matched as in the study, case apart).
+
+        Raises
+        ------
+        CovariateError
+            A covariate the model needs is missing, a level the study did not have, a
+            non-positive value under a power effect, or a linear effect that makes a
+            typical value non-positive.
+        """
+        mu = np.array(beta[:2], float)
+        k = 2
+        for term in self.terms:
+            e = term.effect
+            column = match_column(covariates.keys(), e.column)
+            if column is None or covariates[column] is None:
+                raise CovariateError(f"the model needs '{e.column}' ({e.label}): give it")
+            value = covariates[column]
+            if e.form == "categorical":
+                level = _level_text(value)
+                m = len(term.names)
+                if level != str(e.reference) and level not in term.levels:
+                    raise CovariateError(
+                        f"'{e.column}' = {value!r} is not a level of the study (levels: "
+                        f"{', '.join([str(e.reference), *term.levels])})")
+                mu[term.row] += sum(beta[k + j] for j, lv in enumerate(term.levels)
+                                    if lv == level)
+                k += m
+                continue
+            x = _number(value, e.column)
+            if e.form == "linear":
+                arg = 1.0 + beta[k] * (x - e.reference)
+                if not arg > 0:
+                    raise CovariateError(f"'{e.column}' = {x:g} makes the typical "
+                                         f"{e.parameter} non-positive under the linear effect")
+                mu[term.row] += math.log(arg)
+                k += 1
+                continue
+            if not x > 0:
+                raise CovariateError(f"a power effect needs a positive '{e.column}', got {x:g}")
+            exponent = e.fixed if e.fixed is not None else beta[k]
+            mu[term.row] += exponent * math.log(x / e.reference)
+            k += 0 if e.fixed is not None else 1
+        return mu
+
     def start(self, ln_typical: np.ndarray) -> np.ndarray:
         """Fixed-effect starting values: the given typical values, no effect."""
         beta = np.zeros(self.n_beta)
@@ -115,6 +167,25 @@ class Design:
         return out
 
 
+def _level_text(value) -> str:
+    """A level as the study's subjects table gives it (numbers read as floats)."""
+    if isinstance(value, bool):
+        return str(value)
+    if isinstance(value, int | float | np.integer | np.floating):
+        return str(float(value))
+    return str(value).strip()
+
+
+def _number(value, column: str) -> float:
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        raise CovariateError(f"'{column}' must be a number, got {value!r}") from None
+    if not math.isfinite(x):
+        raise CovariateError(f"'{column}' must be a finite number, got {value!r}")
+    return x
+
+
 def weight_effects(covariate: str, reference_weight: float) -> tuple[Effect, ...]:
     """The body-weight models of the two-stage methods as effects."""
     if covariate == "none":
@@ -129,10 +200,36 @@ def weight_effects(covariate: str, reference_weight: float) -> tuple[Effect, ...
             Effect("weight", "volume", "power", reference_weight))
 
 
+def match_column(names, column: str) -> str | None:
+    """The column of ``names`` that ``column`` means: the same name, else the only one
+    that differs in case alone; None when there is none.
+
+    Raises
+    ------
+    CovariateError
+        When several columns differ from ``column`` in case alone.
+    """
+    names = set(names)
+    if column in names:
+        return column
+    same = sorted(n for n in names if n.casefold() == column.casefold())
+    if len(same) > 1:
+        raise CovariateError(f"column '{column}' could be any of {', '.join(same)} "
+                             "(they differ in case alone): name it exactly")
+    return same[0] if same else None
+
+
 def _values(subjects: list[SubjectData], column: str) -> list:
+    names = set().union(*(s.covariates.keys() for s in subjects)) if subjects else set()
+    found = match_column(names, column)
+    if found is None:
+        shown = ", ".join(sorted(names)) or "none"
+        raise CovariateError(f"no column '{column}' in the subjects table (its columns: "
+                             f"{shown})")
+    column = found
     missing = [s.subject for s in subjects if column not in s.covariates]
     if len(missing) == len(subjects):
-        raise CovariateError(f"no column '{column}' in the subjects table (or no value in it)")
+        raise CovariateError(f"column '{column}' of the subjects table has no value")
     if missing:
         shown = ", ".join(missing[:8]) + (f" and {len(missing) - 8} more" if len(missing) > 8
                                           else "")
@@ -152,8 +249,10 @@ def build_design(subjects: list[SubjectData], effects: tuple[Effect, ...]) -> De
     """
     names = ["ln typical clearance", "ln typical volume"]
     terms, resolved = [], []
+    columns = set().union(*(s.covariates.keys() for s in subjects)) if subjects else set()
     for e in effects:
         raw = _values(subjects, e.column)
+        e = replace(e, column=match_column(columns, e.column) or e.column)
         text = any(isinstance(x, str) for x in raw)
         if text and e.form == "linear":
             raise CovariateError(f"column '{e.column}' holds text: a linear effect needs "

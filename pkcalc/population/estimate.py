@@ -12,6 +12,7 @@ from .. import model
 from ..core import Effect, FitOptions, PopulationModel, PopulationOptions, SubjectData
 from ..fit import fit_subjects
 from ..fit.data import prepare_batch
+from ..fit.uncertainty import Z95
 from .covariates import Design, build_design, weight_effects
 from .marginal import MarginalFit, MarginalProblem
 from .result import PopulationResult
@@ -19,7 +20,6 @@ from .twostage import _as_prior, _cv, iterative_two_stage, two_stage
 
 __all__ = ["individual_estimates", "marginal_estimate", "model_effects", "usable_subjects"]
 
-Z95 = 1.959963984540054
 #: Starts whose optima differ by less than this (-2 ln L) agree.
 AGREE = 0.01
 
@@ -173,9 +173,11 @@ def _natural(problem: MarginalProblem, psi: np.ndarray) -> list[tuple[str, float
     return rows
 
 
-def _parameter_rows(problem: MarginalProblem, fit: MarginalFit) -> list[dict]:
+def _parameter_rows(problem: MarginalProblem, fit: MarginalFit
+                    ) -> tuple[list[dict], np.ndarray | None]:
     """Every parameter with its delta-method SE and 95 % interval (log scale for the
-    positive ones)."""
+    positive ones), and the delta-method covariance of them all (NaN where a parameter
+    rests on its floor)."""
     base = _natural(problem, fit.psi)
     values = np.array([r[1] for r in base])
     jac = np.empty((values.size, fit.psi.size))
@@ -185,8 +187,8 @@ def _parameter_rows(problem: MarginalProblem, fit: MarginalFit) -> list[dict]:
         up = np.array([r[1] for r in _natural(problem, fit.psi + step)])
         dn = np.array([r[1] for r in _natural(problem, fit.psi - step)])
         jac[:, j] = (up - dn) / 2e-6
-    var = None if fit.covariance is None else np.einsum("ij,jk,ik->i", jac, fit.covariance,
-                                                         jac)
+    full = None if fit.covariance is None else jac @ fit.covariance @ jac.T
+    var = None if full is None else np.diagonal(full)
     # a parameter at its floor has no meaningful SE (nor has anything derived from it)
     floor = fit.psi <= problem.lower_bounds() + 1e-6
     on_floor = (np.abs(jac[:, floor]) > 0).any(axis=1) if floor.any() else \
@@ -195,7 +197,8 @@ def _parameter_rows(problem: MarginalProblem, fit: MarginalFit) -> list[dict]:
     for i, (name, value, kind, positive) in enumerate(base):
         se = None if var is None or not var[i] >= 0 or on_floor[i] else math.sqrt(var[i])
         row = {"name": name, "value": value, "kind": kind, "se": se, "rse_percent": None,
-               "ci_low": None, "ci_high": None, "at_lower_bound": bool(on_floor[i])}
+               "ci_low": None, "ci_high": None, "at_lower_bound": bool(on_floor[i]),
+               "positive": positive}
         if se is not None:
             if positive and value > 0:
                 sl = se / value
@@ -207,13 +210,17 @@ def _parameter_rows(problem: MarginalProblem, fit: MarginalFit) -> list[dict]:
                 if name.startswith("correlation"):
                     row.update(ci_low=max(row["ci_low"], -1.0), ci_high=min(row["ci_high"], 1.0))
         rows.append(row)
-    return rows
+    if full is not None:
+        full = 0.5 * (full + full.T)
+        full[on_floor, :] = np.nan
+        full[:, on_floor] = np.nan
+    return rows, full
 
 
 def _assemble(problem: MarginalProblem, fit: MarginalFit, options: PopulationOptions,
               name: str, failures) -> PopulationResult:
     beta, omega, sa, sp = problem.unpack(fit.psi)
-    rows = _parameter_rows(problem, fit)
+    rows, full = _parameter_rows(problem, fit)
     by = {r["name"]: r for r in rows}
     typical = {"clearance": math.exp(beta[0]), "volume": math.exp(beta[1])}
     mu = problem.design.means(beta)
@@ -266,7 +273,10 @@ def _assemble(problem: MarginalProblem, fit: MarginalFit, options: PopulationOpt
         result.warnings.append(f"the marginal-likelihood estimate did not converge: "
                                f"{fit.message}")
     result.psi = fit.psi.copy()
+    result.psi_covariance = None if fit.covariance is None else np.array(fit.covariance)
+    result.parameter_covariance = full
     result.model_effects = list(problem.design.effects)
+    result.design = problem.design.without_data()
     return result
 
 
@@ -275,8 +285,11 @@ def _effect_rows(design: Design, rows: list[dict]) -> list[dict]:
     out = []
     for d in design.describe(np.zeros(design.n_beta)):
         r = by[d["name"].replace(": ln factor", ": factor")]
-        out.append({**d, "value": r["value"], "se": r["se"], "ci_low": r["ci_low"],
-                    "ci_high": r["ci_high"], "name": r["name"]})
+        row = {**d, "value": r["value"], "se": r["se"], "ci_low": r["ci_low"],
+               "ci_high": r["ci_high"], "name": r["name"]}
+        if d["kind"] == "factor":
+            row["log_value"] = math.log(r["value"])
+        out.append(row)
     for e in design.effects:
         if e.fixed is not None:
             out.append({"name": f"{e.column} on {e.parameter}: exponent (fixed)",

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -17,7 +18,7 @@ class PopulationResult:
     Attributes
     ----------
     method : str
-        ``two-stage`` or ``iterative``.
+        ``marginal`` (maximum marginal likelihood), ``two-stage`` or ``iterative``.
     typical : dict of str to float
         Typical clearance and volume (at the reference weight).
     typical_se : dict of str to float or None
@@ -59,6 +60,17 @@ class PopulationResult:
         The covariance step on the estimation scale.
     nodes : int
         Gauss-Hermite nodes per dimension (1: Laplace).
+    parameter_covariance : ndarray or None
+        Delta-method covariance of ``parameters`` (marginal likelihood).
+    psi_covariance : ndarray or None
+        Covariance of the estimation-scale parameters (``parameter_names``).
+    design : Design or None
+        The covariate model (mean function) without the study's data, for new patients.
+
+    The statistical surface follows statsmodels' results: :attr:`params`, :attr:`units`,
+    :attr:`bse`, :meth:`conf_int`, :meth:`cov_params`, :attr:`pvalues`
+    (:mod:`pkcalc.population.stats`); a new patient: :meth:`individual_parameters`,
+    :meth:`predict`, :meth:`to_prior` (:mod:`pkcalc.population.patient`).
     """
 
     method: str
@@ -104,12 +116,115 @@ class PopulationResult:
     comparison: object | None = None
     model_effects: list = field(default_factory=list)
     psi: np.ndarray | None = None
+    exponent_se: dict[str, float] | None = None
+    parameter_covariance: np.ndarray | None = None
+    psi_covariance: np.ndarray | None = None
+    design: Any = None
+
+    # ------------------------------------------------------------------ statistics
+    def _rows(self):
+        from .stats import stat_rows
+
+        return stat_rows(self)
+
+    @property
+    def params(self):
+        """Every reported parameter (pandas Series by name; canonical units in
+        :attr:`units`)."""
+        import pandas as pd
+
+        rows = self._rows()
+        return pd.Series([r.value for r in rows], index=[r.name for r in rows], name="value")
+
+    @property
+    def units(self):
+        """The unit of each of :attr:`params` ('' for numbers without a unit)."""
+        import pandas as pd
+
+        rows = self._rows()
+        return pd.Series([r.unit for r in rows], index=[r.name for r in rows], name="unit")
+
+    @property
+    def bse(self):
+        """Standard errors of :attr:`params` (NaN where there is none)."""
+        import pandas as pd
+
+        rows = self._rows()
+        return pd.Series([np.nan if r.se is None else r.se for r in rows],
+                         index=[r.name for r in rows], name="se")
+
+    def conf_int(self, alpha: float = 0.05):
+        """``1 - alpha`` intervals of :attr:`params`: a DataFrame with columns 0 (lower)
+        and 1 (upper) as statsmodels gives them; log scale for positive quantities."""
+        import pandas as pd
+        from scipy.stats import norm
+
+        from .stats import interval
+
+        if not 0 < alpha < 1:
+            raise ValueError(f"alpha must be between 0 and 1, got {alpha!r}")
+        z = float(norm.ppf(1 - alpha / 2))
+        rows = self._rows()
+        return pd.DataFrame([interval(r, z) for r in rows], index=[r.name for r in rows],
+                            columns=[0, 1])
+
+    def cov_params(self):
+        """Covariance of :attr:`params` (delta method from the covariance step; NaN where
+        unknown)."""
+        import pandas as pd
+
+        from .stats import covariance
+
+        rows = self._rows()
+        names = [r.name for r in rows]
+        return pd.DataFrame(covariance(self, rows), index=names, columns=names)
+
+    @property
+    def pvalues(self):
+        """Wald p-values of "no effect" for the covariate effects (NaN for the other
+        parameters)."""
+        import pandas as pd
+
+        from .stats import wald_p
+
+        rows = self._rows()
+        return pd.Series([wald_p(r) for r in rows], index=[r.name for r in rows],
+                         name="p")
+
+    # ------------------------------------------------------------------ a new patient
+    def individual_parameters(self, subject: dict | None = None, level: float = 0.95):
+        """Typical clearance and volume for a patient with the covariates ``subject``
+        (column -> value), with the interval of the typical values and the
+        between-subject range (:func:`pkcalc.population.patient.patient_parameters`)."""
+        from .patient import patient_parameters
+
+        return patient_parameters(self, subject, level)
+
+    def predict(self, subject: dict | None, doses, times, *, level: float = 0.90,
+                replicates: int = 2000, seed: int = 1):
+        """The course of a patient with covariates ``subject`` under ``doses`` (a list
+        of :class:`~pkcalc.core.DoseEvent`) at ``times`` (h): typical, median and the
+        ``level`` between-subject range
+        (:func:`pkcalc.population.patient.patient_prediction`)."""
+        from .patient import patient_prediction
+
+        return patient_prediction(self, subject, doses, times, level=level,
+                                  replicates=replicates, seed=seed)
+
+    def to_prior(self, subject: dict | None = None):
+        """The MAP prior (:class:`~pkcalc.core.Prior`) of a patient with covariates
+        ``subject`` -- for ``adjust_map`` and design files."""
+        from .patient import patient_prior
+
+        return patient_prior(self, subject)
 
     def summary(self, caution: bool = True) -> str:
-        """Plain-text summary (canonical units)."""
+        """Plain-text summary (canonical units), after the caution."""
         rows = [[k, v, self.typical_se.get(k), self.variability_cv_percent.get(k),
                  self.shrinkage_percent.get(k)] for k, v in self.typical.items()]
-        lines = [f"Population ({self.method}, covariate: {self.covariate}); "
+        effects = "; ".join(e.label for e in self.model_effects) if self.model_effects else (
+            f"weight model {self.covariate}" if self.covariate != "none" else "none")
+        lines = [f"Population ({self.method}, model '{self.model_name}', effects: {effects}); "
                  f"{len(self.subjects)} subjects, {self.iterations} iterations, "
                  f"{'converged' if self.converged else 'NOT converged'}",
                  format_table(["parameter", "typical", "SE", "CV %", "shrinkage %"], rows)]

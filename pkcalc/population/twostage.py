@@ -48,6 +48,7 @@ from ..fit.data import prepare_batch
 from ..fit.objective import Batch, evaluate
 from ..fit.solver import minimise
 from ..fit.starts import starting_values
+from ..fit.uncertainty import Z95
 from .result import PopulationResult
 
 __all__ = [
@@ -189,25 +190,23 @@ def _assemble(method, beta, beta_cov, omega, estimate, covariate, reference_weig
         typ = {"clearance": math.exp(beta[0]), "volume": math.exp(beta[2])}
         se_log = {"clearance": math.sqrt(beta_cov[0, 0]), "volume": math.sqrt(beta_cov[2, 2])}
         exps = {"clearance": float(beta[1]), "volume": float(beta[3])}
-        exp_ci = {"clearance": (beta[1] - 1.96 * math.sqrt(beta_cov[1, 1]),
-                                beta[1] + 1.96 * math.sqrt(beta_cov[1, 1])),
-                  "volume": (beta[3] - 1.96 * math.sqrt(beta_cov[3, 3]),
-                             beta[3] + 1.96 * math.sqrt(beta_cov[3, 3]))}
+        exp_se = {"clearance": math.sqrt(beta_cov[1, 1]), "volume": math.sqrt(beta_cov[3, 3])}
+        exp_ci = {k: (exps[k] - Z95 * exp_se[k], exps[k] + Z95 * exp_se[k]) for k in exps}
     else:
         typ = {"clearance": math.exp(beta[0]), "volume": math.exp(beta[1])}
         se_log = {"clearance": math.sqrt(beta_cov[0, 0]), "volume": math.sqrt(beta_cov[1, 1])}
         exps = dict(zip(("clearance", "volume"), FIXED_EXPONENTS[covariate], strict=True)) \
             if covariate in FIXED_EXPONENTS else {}
-        exp_ci = None
+        exp_ci = exp_se = None
     ref = 1.0 if covariate == "per_kg" else (reference_weight if covariate != "none" else None)
     return PopulationResult(
         method=method, typical=typ,
         variability_cv_percent={"clearance": _cv(omega[0, 0]), "volume": _cv(omega[1, 1])},
         omega=omega, residual_error={}, subjects=fits, failures=failures, covariate=covariate,
-        reference_weight=ref, exponents=exps, exponent_ci=exp_ci,
+        reference_weight=ref, exponents=exps, exponent_ci=exp_ci, exponent_se=exp_se,
         typical_se={k: typ[k] * se_log[k] for k in typ},
-        typical_ci={k: (typ[k] * math.exp(-1.96 * se_log[k]), typ[k] * math.exp(
-            1.96 * se_log[k])) for k in typ},
+        typical_ci={k: (typ[k] * math.exp(-Z95 * se_log[k]), typ[k] * math.exp(
+            Z95 * se_log[k])) for k in typ},
         correlation=float(omega[0, 1] / math.sqrt(omega[0, 0] * omega[1, 1]))
         if omega[0, 0] > 0 and omega[1, 1] > 0 else None,
     )

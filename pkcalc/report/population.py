@@ -98,6 +98,9 @@ def marginal_json(result, conv: UnitConverter, per_kg: bool) -> dict[str, Any]:
     comp = result.comparison
     if comp is not None:
         out["comparison"] = {"base": comp.base, "selected": comp.selected,
+                             "nested_pairs": [{k: (json_number(v) if isinstance(v, float)
+                                                   else v) for k, v in t.items()}
+                                              for t in comp.tests()],
                              "models": [{k: (json_number(v) if isinstance(v, float) else v)
                                          for k, v in r.as_dict().items()} for r in comp.rows],
                              "stepwise": [{k: (json_number(v) if isinstance(v, float) else v)
@@ -117,13 +120,13 @@ def comparison_text(doc: dict[str, Any]) -> str | None:
         return "; ".join(effects) or "(none)"
 
     rows = [[m["model"], own(m, i == 0), m["objective"], m["n_parameters"],
-             m["aic"], m["bic"], m["lrt_df"], m["lrt_p"],
+             m["aic"], m["bic"], m["compared_with"], m["lrt_df"], m["lrt_p"],
              "FAILED: " + m["error"] if m["error"] else ("yes" if m["converged"] else "NO")]
             for i, m in enumerate(comp["models"])]
-    lines = [f"Models compared (likelihood-ratio test against '{comp['base']}' for models "
-             "that contain its effects):",
+    lines = [f"Models compared (base '{comp['base']}'; each model's likelihood-ratio test is "
+             "against the largest model nested in it):",
              format_table(["model", "effects (beyond the first model's)", "-2lnL", "parameters",
-                           "AIC", "BIC", "LRT df",
+                           "AIC", "BIC", "compared with", "LRT df",
                            "LRT p", "converged"], rows)]
     for s in comp["stepwise"]:
         verdict = ("kept" if s["step"] == "forward" else "removed") if s["accepted"] else \

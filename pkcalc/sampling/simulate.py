@@ -20,6 +20,7 @@ import numpy as np
 from .. import model
 from ..core import FitOptions, PopulationOptions, Prior, SamplingProblem, SubjectData
 from ..engines import Engine, map_ordered
+from ..fit.uncertainty import Z95
 from .optimise import Evaluator
 from .result import DesignEvaluation, SimulationSummary
 
@@ -29,7 +30,6 @@ REFIT_METHODS = ("iterative", "marginal")
 #: Replicates per task: individual fits are batched, population studies are not.
 BLOCK_INDIVIDUAL = 250
 BLOCK_POPULATION = 5
-Z95 = 1.959963984540054  # standard normal 97.5 % quantile (scipy.stats.norm.ppf)
 
 
 def error_model(p: SamplingProblem) -> str:

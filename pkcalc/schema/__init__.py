@@ -53,6 +53,7 @@ __all__ = [
     "load_design_file",
     "load_items",
     "load_scenario_file",
+    "load_sdtm",
     "load_study",
     "load_study_file",
     "nca_options",
@@ -66,13 +67,17 @@ __all__ = [
 ]
 
 
-_LAZY = {"load_study", "load_study_file", "nca_options", "study_fit_options",
+_LAZY = {"load_sdtm", "load_study", "load_study_file", "nca_options", "study_fit_options",
          "study_nca_options", "study_population_options"}
 
 
 def __getattr__(name: str):
     """Study tables need pandas; load them on first use so that ``pkcalc predict``
     starts quickly."""
+    if name == "load_sdtm":
+        from .sdtm import load_sdtm
+
+        return load_sdtm
     if name in _LAZY:
         from . import options, study, studyfile
 

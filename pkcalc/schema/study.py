@@ -368,16 +368,18 @@ def _read_subjects(sb: Columns, warnings: list[str]) -> dict[str, dict[str, floa
         elif key == "initial_concentration":
             table[key], _ = sb.numeric(key, "concentration", problems)
         else:
+            # a covariate keeps the name its header gives it (case included)
+            name = parse_header(_col)[0].strip()
             column = sb.frame[sb.map[key][0]]
             if pd.api.types.is_numeric_dtype(column) and not pd.api.types.is_bool_dtype(column):
-                table[key] = column.astype(float)
+                table[name] = column.astype(float)
                 continue
             raw = sb.text(key)
             numeric = pd.to_numeric(raw.where(raw != ""), errors="coerce")
             if unit is not None or numeric.notna().sum() == (raw != "").sum():
-                table[key] = numeric
+                table[name] = numeric
             else:
-                table[key] = raw.where(raw.str.strip() != "").str.strip()
+                table[name] = raw.where(raw.str.strip() != "").str.strip()
     dup = ids[ids.duplicated()]
     if len(dup):
         problems.append(Problem(f"subject '{dup.iloc[0]}' appears twice", file=sb.file,
