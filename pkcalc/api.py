@@ -84,6 +84,12 @@ def _subject_failures(study: Study, extra=()) -> list[tuple[str, PkcalcInputErro
         for sid, reason in extra]
 
 
+def _with_units(fields, conv) -> dict[str, str]:
+    """Column headers with their display unit: ``clearance [L/h]`` (plain numbers and
+    percentages keep their name)."""
+    return {k: f"{k} [{conv.unit(kind)}]" for k, kind in fields if kind is not None}
+
+
 def _find_subject(results, name: str, failures=()):
     """The result of subject ``name``, or an error that lists the subjects."""
     for r in results:
@@ -191,13 +197,19 @@ class StudyNca(_PerSubject):
         """One row per subject: the table ``pkcalc nca --out`` writes (``nca.csv``)."""
         import pandas as pd
 
+        from .report import UnitConverter
+        from .report.nca import NCA_FIELDS
+
+        conv = conv or UnitConverter(self.units)
         frame = pd.DataFrame(self.document(conv)["subjects"]).drop(columns=["intervals"])
         frame["points_used"] = frame["points_used"].map(lambda xs: " ".join(f"{x:g}" for x in xs))
         for key in ("notes", "assumptions"):
             frame[key] = frame[key].map(" | ".join)
         if any(r.clock_origin for r in self.results):
             frame.insert(1, "first_dose_clock", [r.clock_origin for r in self.results])
-        return frame
+        fields = (*NCA_FIELDS, ("dose", "amount"), ("infusion_time", "time"),
+                  ("interval", "time"))
+        return frame.rename(columns=_with_units(fields, conv))
 
     def plot(self, subject: str | None = None, conv=None):
         """The figure ``pkcalc nca --out`` writes for ``subject`` (the only subject when
@@ -212,6 +224,10 @@ class StudyNca(_PerSubject):
         ``nca-intervals.csv``)."""
         import pandas as pd
 
+        from .report import UnitConverter
+        from .report.nca import INTERVAL_FIELDS
+
+        conv = conv or UnitConverter(self.units)
         rows = []
         for s in self.document(conv)["subjects"]:
             for d in s["intervals"]:
@@ -219,7 +235,9 @@ class StudyNca(_PerSubject):
                                                          if k not in ("points_used", "notes")},
                              "points_used": " ".join(f"{x:g}" for x in d["points_used"]),
                              "notes": " | ".join(d["notes"])})
-        return pd.DataFrame(rows)
+        fields = (*INTERVAL_FIELDS, ("start", "time"), ("dose", "amount"),
+                  ("infusion_time", "time"), ("length", "time"))
+        return pd.DataFrame(rows).rename(columns=_with_units(fields, conv))
 
 
 
@@ -502,7 +520,7 @@ class StudyPopulation(PopulationResult):
     def settings(self) -> dict[str, Any]:
         o = self.options or PopulationOptions()
         out: dict[str, Any] = {"method": o.method, "error_model": o.error_model,
-                               "blq": o.blq, "covariate": o.covariate,
+                               "blq": o.blq, "weight_model": o.covariate,
                                "reference_weight": f"{o.reference_weight:g} kg",
                                "adequacy_check": o.adequacy}
         if o.method == "marginal":

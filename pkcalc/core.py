@@ -196,8 +196,9 @@ class ScenarioInput:
             _check(_finite(x) and x > 0, name, "must be a positive finite number", x)
         _check(_finite(self.initial_concentration) and self.initial_concentration >= 0,
                "initial_concentration", "must be >= 0 mg/L", self.initial_concentration)
-        _check(all(isinstance(d, DoseEvent) for d in self.doses), "doses",
-               "must be DoseEvent objects", self.doses)
+        _check(isinstance(self.doses, list | tuple)
+               and all(isinstance(d, DoseEvent) for d in self.doses), "doses",
+               "must be a list of DoseEvent objects", self.doses)
 
 
 @dataclass(frozen=True)
@@ -305,10 +306,17 @@ class Study:
     level_trace: Any = None     # per level row: its source (SDTM: source, pcseq), or None
 
     def subject(self, name: str) -> SubjectData:
+        """One subject's data (a PkcalcInputError listing the subjects if none has
+        that name)."""
         for s in self.subjects:
             if s.subject == name:
                 return s
-        raise KeyError(name)
+        names = [s.subject for s in self.subjects]
+        left = any(label == f"subject '{name}'" for label, _ in self.failures)
+        raise PkcalcInputError(
+            f"no subject '{name}'" + (" (it was left out: see failures)" if left else ""),
+            field="subject", expected="one of " + ", ".join(names[:20])
+            + (f" and {len(names) - 20} more" if len(names) > 20 else ""))
 
 
 @dataclass(frozen=True)

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, replace
 
-__all__ = ["PkcalcInputError", "PkcalcWarning", "Problem"]
+__all__ = ["PkcalcInputError", "PkcalcWarning", "Problem", "check_path", "check_type"]
 
 
 @dataclass(frozen=True)
@@ -77,10 +77,12 @@ class PkcalcInputError(ValueError):
         field: str | None = None,
         expected: str | None = None,
     ) -> None:
-        if isinstance(problems, str):
-            problems = [Problem(problems, file=file, item=item, field=field, expected=expected)]
-        elif isinstance(problems, Problem):
+        if isinstance(problems, Problem):
             problems = [problems]
+        elif not isinstance(problems, list | tuple) or not all(
+                isinstance(p, Problem) for p in problems):
+            problems = [Problem(str(problems), file=file, item=item, field=field,
+                                expected=expected)]
         self.problems: list[Problem] = list(problems)
         super().__init__(str(self))
 
@@ -99,3 +101,40 @@ class PkcalcInputError(ValueError):
 
 class PkcalcWarning(UserWarning):
     """A plausibility or data-quality warning (the result is still produced)."""
+
+
+def check_type(value, kinds, field: str, expected: str) -> None:
+    """Refuse a value of the wrong type where a public function receives it (a
+    :class:`PkcalcInputError` naming the field, never a bare ``TypeError`` later)."""
+    kinds = kinds if isinstance(kinds, tuple) else (kinds,)
+    if not isinstance(value, kinds) or (isinstance(value, bool) and bool not in kinds):
+        raise PkcalcInputError(f"got {type(value).__name__} {_short_repr(value)}",
+                               field=field, expected=expected)
+
+
+def check_path(value, field: str = "path") -> None:
+    """Refuse anything but a path (``str`` or ``os.PathLike``)."""
+    import os
+
+    check_type(value, (str, os.PathLike), field, "a file path (str or pathlib.Path)")
+
+
+def _short_repr(value) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+
+def check_numbers(values: dict, optional: tuple[str, ...] = ()) -> None:
+    """Refuse arguments that are not real numbers (``optional`` ones may be None):
+    a :class:`PkcalcInputError` naming the first such field."""
+    import math
+    import numbers
+
+    for name, x in values.items():
+        if x is None and name in optional:
+            continue
+        if isinstance(x, bool) or not isinstance(x, numbers.Real) or not math.isfinite(x):
+            raise PkcalcInputError(f"got {type(x).__name__} {_short_repr(x)}", field=name,
+                                   expected="a finite number" + (" or None" if name in optional
+                                                                 else ""))

@@ -21,6 +21,9 @@ def example_file(name: str) -> Path:
     FileNotFoundError
         When no example has that name (the message lists the names).
     """
+    if not isinstance(name, str):
+        raise FileNotFoundError(f"no example named {name!r}; examples: "
+                                f"{', '.join(example_names())}")
     path = Path(str(files("pkcalc.scenarios") / name))
     if not path.is_file():
         raise FileNotFoundError(f"no example named {name!r}; examples: "

@@ -15,6 +15,7 @@ import numpy as np
 from . import model
 from ._format import format_table, short, with_caution
 from .core import DoseEvent, ScenarioInput, Target, expand_events
+from .errors import PkcalcInputError, check_type
 from .plausibility import parameter_warnings
 
 __all__ = [
@@ -355,6 +356,8 @@ def predict_scenario(scenario: ScenarioInput, fractions: Sequence[float] = FRACT
     -------
     ScenarioPrediction
     """
+    check_type(scenario, ScenarioInput, "scenario",
+               "a pkcalc.ScenarioInput (or use predict_course with plain numbers)")
     cl, v = scenario.clearance, scenario.volume
     params = model.derived_parameters(cl, v)
     doses = scenario.doses
@@ -427,9 +430,17 @@ def predict_course(*, clearance: float, volume: float, doses: Sequence[DoseEvent
     >>> round(r.plateau_concentration, 6)
     10.0
     """
-    if not (clearance > 0 and volume > 0):
-        raise ValueError("clearance and volume must be positive")
-    t = None if times is None else np.asarray(times, dtype=float)
+    for name, x in (("clearance", clearance), ("volume", volume)):
+        check_type(x, (int, float, np.integer, np.floating), name,
+                   f"a positive number ({'L/h' if name == 'clearance' else 'L'})")
+        if not (np.isfinite(x) and x > 0):
+            raise PkcalcInputError(f"must be positive, got {x!r}", field=name)
+    check_type(doses, (list, tuple), "doses", "a list of pkcalc.DoseEvent")
+    try:
+        t = None if times is None else np.asarray(times, dtype=float)
+    except (TypeError, ValueError):
+        raise PkcalcInputError(f"got {type(times).__name__}", field="times",
+                               expected="a sequence of times in h") from None
     scenario = ScenarioInput(name, float(clearance), float(volume), tuple(doses), t, weight,
                              target, initial_concentration=float(initial_concentration))
     return predict_scenario(scenario)

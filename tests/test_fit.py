@@ -414,3 +414,39 @@ def test_cli_time_zero_level_exits_0_with_a_warning(run_cli, write):
         """)
     r = run_cli("fit", "--levels", levels, "--doses", doses)
     assert r.code == 0 and "before any drug entered" in r.out + r.err
+
+
+def test_a_fit_is_a_statistical_result_in_the_statsmodels_layout():
+    # params/bse/conf_int/cov_params as statsmodels' results lay them out (statsmodels
+    # documentation, LikelihoodModelResults); the covariance is the delta method from
+    # the covariance of ln CL and ln V, whose diagonal must give the reported SEs
+    import pkcalc
+
+    from .conftest import SCENARIOS
+
+    study = pkcalc.load_study_file(SCENARIOS / "demo-study.toml")
+    r = pkcalc.fit_study(study, adequacy=False).subject("V01")
+    assert list(r.params.index[:4]) == ["clearance", "volume", "elimination_rate",
+                                        "half_life"]
+    assert r.params["clearance"] == r.clearance and r.units["volume"] == "L"
+    ci = r.conf_int()
+    e = r.estimates["volume"]
+    assert (ci.loc["volume", 0], ci.loc["volume", 1]) == (e.ci_low, e.ci_high)
+    cov = r.cov_params()
+    se = np.sqrt(np.diag(cov.to_numpy()))
+    ok = r.bse.notna().to_numpy()
+    assert np.allclose(se[ok], r.bse.to_numpy()[ok], rtol=1e-12)
+    # k = CL/V: var(ln k) = var(ln CL) + var(ln V) - 2 cov (calc)
+    s_cl, s_v = (r.estimates[k].rse_percent / 100 for k in ("clearance", "volume"))
+    var_lnk = s_cl**2 + s_v**2 - 2 * r.correlation * s_cl * s_v
+    k = r.estimates["elimination_rate"].value
+    assert cov.loc["elimination_rate", "elimination_rate"] == pytest.approx(k * k * var_lnk)
+    # a 90 % interval: exp(ln x +- t(0.95, n - p) SE_log) (scipy's Student's t)
+    from scipy.stats import t as student_t
+
+    q = student_t.ppf(0.95, r.n_obs - r.n_params)
+    lo, hi = r.conf_int(0.10).loc["clearance"]
+    assert lo == pytest.approx(r.clearance * math.exp(-q * s_cl))
+    assert hi == pytest.approx(r.clearance * math.exp(q * s_cl))
+    with pytest.raises(ValueError, match="conf_int"):
+        r.conf_int("volume")

@@ -10,7 +10,7 @@ from pathlib import Path
 import pandas as pd
 
 from ..engines import Engine
-from ..errors import PkcalcInputError
+from ..errors import PkcalcInputError, check_path, check_type
 from .columns import (
     DEFAULT_CHUNK_ROWS,
     POPULATION_BLOCK,
@@ -77,8 +77,12 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
     -------
     BatchSummary
     """
-    src, dst = Path(input_path), Path(output_path)
     from ..tables import check_input_file
+
+    check_path(input_path, "input_path")
+    check_path(output_path, "output_path")
+    check_type(options, BatchOptions, "options", "a pkcalc.batch.BatchOptions")
+    src, dst = Path(input_path), Path(output_path)
 
     if not isinstance(engine, Engine):
         try:

@@ -9,7 +9,8 @@ import numpy as np
 
 from .. import model
 from .._format import short
-from ..core import DesignCase, FitOptions, SubjectData
+from ..core import DesignCase, DoseEvent, FitOptions, Prior, SubjectData
+from ..errors import PkcalcInputError, check_numbers, check_type
 from .common import (
     DEFAULT_DOSE_STEP,
     DEFAULT_INTERVALS,
@@ -87,6 +88,16 @@ def long_history_note(events, t_last: float, k: float) -> str | None:
             "(method sawchuk_zaske, steady_state = false)")
 
 
+def _check_history(history, field: str = "history") -> None:
+    """A dose history is a list of :class:`~pkcalc.core.DoseEvent` (or None)."""
+    if history is None:
+        return
+    if not isinstance(history, list | tuple) or not all(isinstance(d, DoseEvent)
+                                                          for d in history):
+        raise PkcalcInputError(f"got {type(history).__name__}", field=field,
+                               expected="a list of pkcalc.DoseEvent")
+
+
 # --------------------------------------------------------------------------- adjustments
 def adjust_proportional(
     measured: float,
@@ -136,6 +147,11 @@ def adjust_proportional(
     start : float, optional, h
     initial_concentration : float, optional, mg/L
     """
+    check_numbers({"measured": measured, "target": target, "current_rate": current_rate,
+                   "current_dose": current_dose, "volume": volume,
+                   "measured_time": measured_time},
+                  optional=("current_rate", "current_dose", "volume", "measured_time"))
+    _check_history(history)
     if (current_rate is None) == (current_dose is None):
         raise ValueError("give either current_rate or current_dose")
     ratio = target / measured
@@ -320,6 +336,12 @@ def adjust_two_levels(
     stated volume (:func:`pkcalc.design.consistency.unreachable`); otherwise every
     proposal is *check levels*.
     """
+    check_numbers({"rate": rate, "t1": t1, "c1": c1, "t2": t2, "c2": c2, "volume": volume,
+                   "target": target}, optional=("rate",))
+    if not t2 > t1:
+        raise PkcalcInputError(f"the second level must be drawn after the first (t1 {t1:g} h, "
+                               f"t2 {t2:g} h)", field="t2")
+    _check_history(history)
     suspects: list[str] = []
     if history:
         events = history_events(history, salt_factor, initial_concentration)
@@ -389,6 +411,11 @@ def adjust_peak_trough(
     (:func:`two_level_parameters`) -- any dose, steady state or not -- and the
     new regimen starting at ``start`` (default: the next scheduled dose).
     """
+    check_numbers({"dose": dose, "infusion_time": infusion_time, "interval": interval,
+                   "peak_level": peak_level, "peak_time": peak_time,
+                   "trough_level": trough_level, "trough_time": trough_time},
+                  optional=("dose", "interval"))
+    _check_history(history)
     t_new = new_infusion_time if new_infusion_time is not None else infusion_time
     if history:
         events = history_events(history, salt_factor, initial_concentration)
@@ -499,6 +526,15 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
     """
     from ..fit import fit_subjects
 
+    _check_history(doses, "doses")
+    check_type(prior, Prior, "prior", "a pkcalc.Prior (e.g. a population result's "
+               "to_prior())")
+    if not isinstance(levels, list | tuple) or not levels or not all(
+            isinstance(x, list | tuple) and len(x) >= 2 for x in levels):
+        raise PkcalcInputError(f"got {type(levels).__name__}", field="levels",
+                               expected="a list of (time, level) pairs, or (time, None, True, "
+                                        "lloq) for a level below the LLOQ")
+    check_numbers({f"levels[{i}].time": x[0] for i, x in enumerate(levels)})
     t = np.array([x[0] for x in levels], float)
     c = np.array([np.nan if x[1] is None else x[1] for x in levels], float)
     blq = np.array([bool(x[2]) if len(x) > 2 else False for x in levels])

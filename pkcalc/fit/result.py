@@ -3,12 +3,33 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
 
 from .. import model
 from .._format import format_table, short, with_caution
+
+#: How the log-scale parameters of the estimates enter: ln x = a . (ln CL, ln V).
+_LOG_MAP = {"clearance": (1.0, 0.0), "volume": (0.0, 1.0), "elimination_rate": (1.0, -1.0),
+            "half_life": (-1.0, 1.0)}
+#: The standard normal 97.5 % quantile (scipy.stats.norm.ppf(0.975)).
+Z95 = 1.959963984540054
+
+
+@lru_cache(maxsize=256)
+def wald_quantile(n_obs: int, n_params: int, kind: str, probability: float = 0.975) -> float:
+    """Quantile (97.5 % by default) for Wald intervals: Student's t on ``n - p`` degrees
+    of freedom for least squares and likelihood fits (small-sample practice in
+    nonlinear regression, e.g. Bates & Watts 1988 -- from memory), normal for MAP
+    fits."""
+    from scipy.stats import norm
+    from scipy.stats import t as student_t
+
+    if kind == "map" or n_obs - n_params < 1:
+        return Z95 if probability == 0.975 else float(norm.ppf(probability))
+    return float(student_t.ppf(probability, n_obs - n_params))
 
 
 @dataclass(frozen=True)
@@ -110,10 +131,91 @@ class FitResult:
     def volume(self) -> float:
         return self.estimates["volume"].value
 
-    def conf_int(self, name: str) -> tuple[float | None, float | None]:
-        """95 % interval of a parameter."""
-        e = self.estimates[name]
-        return e.ci_low, e.ci_high
+    # ------------------------------------------------------------------ statistics
+    def _stat_items(self) -> list[tuple[str, Estimate, str]]:
+        units = {"clearance": "L/h", "volume": "L", "elimination_rate": "1/h",
+                 "half_life": "h"}
+        items = [(k, e, units.get(k, "")) for k, e in self.estimates.items()]
+        items += [(f"{k} residual SD", e, "mg/L" if k == "additive" else "")
+                  for k, e in self.residual_error.items()]
+        return items
+
+    @property
+    def params(self):
+        """The estimates (pandas Series by name; units in :attr:`units`), laid out as
+        statsmodels' results: clearance, volume, elimination rate, half-life, then the
+        residual error."""
+        import pandas as pd
+
+        items = self._stat_items()
+        return pd.Series([e.value for _, e, _ in items], index=[n for n, _, _ in items],
+                         name="value")
+
+    @property
+    def units(self):
+        import pandas as pd
+
+        items = self._stat_items()
+        return pd.Series([u for _, _, u in items], index=[n for n, _, _ in items], name="unit")
+
+    @property
+    def bse(self):
+        """Standard errors (delta method on the natural scale; NaN where none)."""
+        import pandas as pd
+
+        items = self._stat_items()
+        return pd.Series([np.nan if e.se is None else e.se for _, e, _ in items],
+                         index=[n for n, _, _ in items], name="se")
+
+    def conf_int(self, alpha: float = 0.05):
+        """``1 - alpha`` intervals: columns 0 (lower) and 1 (upper), as statsmodels gives
+        them.  At 0.05 the reported intervals (Wald on the log scale, or profile
+        likelihood); otherwise Wald on the log scale with the fit's quantile (Student's t
+        on n - p degrees of freedom, normal for MAP)."""
+        import pandas as pd
+
+        if isinstance(alpha, str):
+            raise ValueError(f"conf_int takes alpha (a number); for one parameter use "
+                             f"conf_int().loc[{alpha!r}]")
+        if not 0 < alpha < 1:
+            raise ValueError(f"alpha must be between 0 and 1, got {alpha!r}")
+        q = wald_quantile(self.n_obs, self.n_params, self.method, 1 - alpha / 2)
+        rows = []
+        for _, e, _ in self._stat_items():
+            if abs(alpha - 0.05) < 1e-12 and e.ci_low is not None:
+                rows.append((e.ci_low, e.ci_high))
+            elif e.se is None or e.rse_percent is None:
+                rows.append((np.nan, np.nan))
+            else:
+                s = e.rse_percent / 100
+                rows.append((e.value * np.exp(-q * s), e.value * np.exp(q * s)))
+        return pd.DataFrame(rows, index=[n for n, _, _ in self._stat_items()], columns=[0, 1])
+
+    def cov_params(self):
+        """Covariance of :attr:`params`: the structural parameters from the covariance of
+        ``ln CL, ln V`` (delta method, ``cov = x_i x_j a_i' S a_j``); the residual error
+        on the diagonal only (NaN where unknown)."""
+        import pandas as pd
+
+        items = self._stat_items()
+        n = len(items)
+        out = np.full((n, n), np.nan)
+        cl, v = self.estimates["clearance"], self.estimates["volume"]
+        if cl.rse_percent is not None and v.rse_percent is not None \
+                and self.correlation is not None:
+            s1, s2 = cl.rse_percent / 100, v.rse_percent / 100
+            sigma = np.array([[s1 * s1, self.correlation * s1 * s2],
+                              [self.correlation * s1 * s2, s2 * s2]])
+            for i, (ni, ei, _) in enumerate(items):
+                for j, (nj, ej, _) in enumerate(items):
+                    if ni in _LOG_MAP and nj in _LOG_MAP:
+                        a, b = np.array(_LOG_MAP[ni]), np.array(_LOG_MAP[nj])
+                        out[i, j] = ei.value * ej.value * float(a @ sigma @ b)
+        for i, (_, e, _) in enumerate(items):
+            if np.isnan(out[i, i]) and e.se is not None:
+                out[i, i] = e.se**2
+        names = [n for n, _, _ in items]
+        return pd.DataFrame(out, index=names, columns=names)
 
     def events(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Dose events for the model (an initial level, if any, as an initial-level

@@ -4,17 +4,15 @@ identifiability."""
 from __future__ import annotations
 
 import math
-from functools import lru_cache
 
 import numpy as np
 
 from .. import model
 from ..core import FitOptions
 from .objective import Batch, evaluate
-from .result import Estimate
+from .result import Z95, Estimate, wald_quantile
 from .solver import minimise
 
-Z95 = 1.959963984540054
 CHI2_95 = 3.841458820694124
 #: Identifiability: smallest eigenvalue of the information in correlation form.
 IDENTIFIABILITY_EIG = 1e-8
@@ -42,18 +40,6 @@ def log_estimate(lnvalue: float, var: float | None, quantile: float = Z95) -> Es
     se = math.sqrt(var)
     return Estimate(value, value * se, 100 * se, math.exp(lnvalue - quantile * se),
                     math.exp(lnvalue + quantile * se))
-
-
-@lru_cache(maxsize=256)
-def wald_quantile(n_obs: int, n_params: int, kind: str) -> float:
-    """97.5 % quantile for Wald intervals: Student's t on ``n - p`` degrees of freedom
-    for least squares and likelihood fits (small-sample practice in nonlinear
-    regression, e.g. Bates & Watts 1988 -- from memory), normal for MAP fits."""
-    from scipy.stats import t as student_t
-
-    if kind == "map" or n_obs - n_params < 1:
-        return Z95
-    return float(student_t.ppf(0.975, n_obs - n_params))
 
 
 def structural_estimates(batch: Batch, theta: np.ndarray, cov: np.ndarray, kind: str

@@ -9,7 +9,10 @@ with, for an effect of column ``c`` (value ``c_i``):
 
 - power:       ``e ln(c_i / ref)``          (``e`` estimated, or fixed);
 - linear:      ``ln(1 + s (c_i - ref))``    (``s`` estimated; the typical value is
-  ``typical (1 + s (c_i - ref))``, which must stay positive);
+  ``typical (1 + s (c_i - ref))``, which must stay positive).  The estimation works
+  with ``s x scale`` (``scale`` the largest ``|c_i - ref|``) so that a slope per year
+  and a slope per kilogram are numbers of the same size for the optimiser; the
+  reported slope is per unit;
 - categorical: ``g_l`` for subjects of level ``l`` (one per level other than the
   reference; the factor on the typical value is ``exp(g_l)``).
 
@@ -26,11 +29,12 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from ..core import Effect, SubjectData
+from ..errors import PkcalcInputError
 
 __all__ = ["CovariateError", "Design", "build_design", "weight_effects"]
 
 
-class CovariateError(ValueError):
+class CovariateError(PkcalcInputError):
     """A covariate model that cannot be estimated on these subjects (the message says
     which column and which subjects)."""
 
@@ -39,9 +43,10 @@ class CovariateError(ValueError):
 class _Term:
     effect: Effect
     row: int                     # 0 clearance, 1 volume
-    values: np.ndarray           # ln(c/ref), c - ref, or one-hot (N, L-1)
+    values: np.ndarray           # ln(c/ref), (c - ref)/scale, or one-hot (N, L-1)
     names: list[str]             # names of the estimated parameters (empty when fixed)
     levels: list[str]
+    scale: float = 1.0           # linear: the estimated parameter is slope x scale
 
 
 @dataclass
@@ -128,7 +133,7 @@ class Design:
                 continue
             x = _number(value, e.column)
             if e.form == "linear":
-                arg = 1.0 + beta[k] * (x - e.reference)
+                arg = 1.0 + beta[k] / term.scale * (x - e.reference)
                 if not arg > 0:
                     raise CovariateError(f"'{e.column}' = {x:g} makes the typical "
                                          f"{e.parameter} non-positive under the linear effect")
@@ -154,7 +159,7 @@ class Design:
         for term in self.terms:
             e = term.effect
             for j, name in enumerate(term.names):
-                value = float(beta[k + j])
+                value = float(beta[k + j]) / term.scale
                 if e.form == "categorical":
                     out.append({"name": name, "effect": e.label, "kind": "factor",
                                 "level": term.levels[j], "reference": e.reference,
@@ -302,8 +307,10 @@ def _numeric(e: Effect, values: np.ndarray, row: int, subjects: list[SubjectData
                                  "linear form)")
         x = np.log(values / ref)
         name = [] if e.fixed is not None else [f"{e.column} on {e.parameter}: exponent"]
+        scale = 1.0
     else:
-        x = values - ref
+        scale = float(np.max(np.abs(values - ref))) or 1.0
+        x = (values - ref) / scale
         name = [f"{e.column} on {e.parameter}: slope per unit"]
     e = replace(e, reference=ref)
-    return e, _Term(e, row, x, name, [])
+    return e, _Term(e, row, x, name, [], scale)

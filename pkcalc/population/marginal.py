@@ -51,6 +51,8 @@ LOG_2PI = math.log(2 * math.pi)
 #: Central-difference steps (log-parameters) for the gradient and the Hessian.
 GRAD_STEP = 1e-4
 HESS_STEP = 2e-3
+#: Largest gradient of -2 ln L at which the optimiser's "success" is not believed.
+GRADIENT_DISAGREES = 1.0
 #: Condition number of the information (correlation form) above which the covariance
 #: step warns that the estimates are nearly confounded (common practice: 1e3 is a
 #: warning sign, 1e6 a failure; we warn from 1e4).
@@ -371,8 +373,11 @@ class MarginalProblem:
         grad = self.gradient(psi)
         free = ~((psi <= lower + 1e-6) & (grad > 0))        # at a floor, pushed down
         gmax = float(np.max(np.abs(grad[free]))) if free.any() else 0.0
-        converged = bool(res.success) or gmax < 0.05 or bool(state.get("reached"))
-        message = "converged" if res.success else (
+        # the optimiser's own success counts only where the gradient agrees: a line search
+        # that cannot move (every trial step infinite) can end "successfully" far from it
+        success = bool(res.success) and gmax < GRADIENT_DISAGREES
+        converged = success or gmax < 0.05 or bool(state.get("reached"))
+        message = "converged" if success else (
             "reached the optimum of the first start" if state.get("reached") else
             f"stopped ({str(res.message).strip().rstrip('.')}); largest gradient {gmax:.2g}")
         warnings: list[str] = []

@@ -9,7 +9,7 @@ import numpy as np
 
 from ..core import SamplingProblem, expand_events
 from ..engines import Engine
-from ..errors import PkcalcInputError
+from ..errors import PkcalcInputError, check_type
 from .constraints import AllowedSet, allowed_set
 from .information import log_det, population_parameters, rse_percent
 from .optimise import Evaluator, optimise
@@ -103,6 +103,8 @@ def design_sampling(problem: SamplingProblem, *, simulate: int = 0, seed: int = 
         Constraints that leave too little room, a design that cannot estimate the
         parameters, too many replicates.
     """
+    check_type(problem, SamplingProblem, "problem",
+               "a pkcalc.core.SamplingProblem (or use pkcalc.sampling_file for a file)")
     t0 = time.perf_counter()
     p = problem
     where = f"scenario '{p.name}'"

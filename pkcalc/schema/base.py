@@ -25,7 +25,7 @@ from pydantic import (
 
 from .. import model
 from ..core import ScenarioInput
-from ..errors import PkcalcInputError, Problem
+from ..errors import PkcalcInputError, Problem, check_path
 from ..units import CANONICAL, display_factor, out_of_range, range_message, to_canonical
 
 #: The five one-compartment parameters and the kind of quantity of each.
@@ -343,6 +343,7 @@ class ScenarioFile:
 
 def read_toml(path: str | Path) -> dict[str, Any]:
     """Read a TOML file; unreadable, empty or non-TOML files raise PkcalcInputError."""
+    check_path(path)
     p = Path(path)
     if p.is_dir():
         raise PkcalcInputError("is a folder, not a file", file=str(path),

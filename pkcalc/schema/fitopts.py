@@ -170,13 +170,21 @@ def load_prior(path: str | Path) -> Prior:
     return parse_prior(data["prior"], file=str(path))
 
 
+#: The keys of a study's ``[fit]`` table (and of ``fit_study``'s keywords).
+FIT_KEYS = ("weighting", "error_model", "blq", "ci", "prior", "starts", "with_nca",
+            "nca_threshold", "adequacy")
+#: The keys of a study's ``[population]`` table (and of ``population_study``'s keywords).
+POPULATION_KEYS = ("method", "error_model", "blq", "covariate", "reference_weight",
+                   "bootstrap", "seed", "vpc_replicates", "adequacy", "nodes",
+                   "between_subject", "effects", "models", "stepwise")
+
+
 def fit_options(raw: dict[str, Any] | None = None, *, base: Path | None = None,
                 file: str | None = None) -> FitOptions:
     """Validate fit options (study ``[fit]`` table merged with command-line values)."""
     raw = {k: v for k, v in (raw or {}).items() if v is not None}
     problems: list[Problem] = []
-    allowed = {"weighting", "error_model", "blq", "ci", "prior", "starts", "with_nca",
-               "nca_threshold", "adequacy"}
+    allowed = set(FIT_KEYS)
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"fit.{key}",
                                 expected=", ".join(sorted(allowed))))
@@ -351,9 +359,7 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
 
     raw = {k: v for k, v in (raw or {}).items() if v is not None}
     problems: list[Problem] = []
-    allowed = {"method", "error_model", "blq", "covariate", "reference_weight", "bootstrap",
-               "seed", "vpc_replicates", "adequacy", "nodes", "between_subject", "effects",
-               "models", "stepwise"}
+    allowed = set(POPULATION_KEYS)
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"population.{key}",
                                 expected=", ".join(sorted(allowed))))

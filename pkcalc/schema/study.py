@@ -711,6 +711,11 @@ def _tolerance(value: Any, field: str) -> tuple[float, float]:
     return fraction, hours
 
 
+#: The keys of a study's ``[nca]`` table (and of ``nca_study``'s keywords).
+NCA_KEYS = ("auc_method", "blq", "terminal_points", "r2_tolerance", "extrapolation_limit",
+            "interval", "interval_tolerance", "duration_tolerance")
+
+
 def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOptions:
     """Validate the ``[nca]`` options (or the same keys from the command line).
 
@@ -726,8 +731,7 @@ def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOp
     raw = dict(raw or {})
     problems: list[Problem] = []
     out: dict[str, Any] = {}
-    allowed = {"auc_method", "blq", "terminal_points", "r2_tolerance", "extrapolation_limit",
-               "interval", "interval_tolerance", "duration_tolerance"}
+    allowed = set(NCA_KEYS)
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"nca.{key}",
                                 expected=", ".join(sorted(allowed))))

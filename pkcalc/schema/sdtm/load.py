@@ -29,7 +29,7 @@ import pandas as pd
 
 from ...clock import MINUTE, clock_text, parse_clock_array
 from ...core import Study
-from ...errors import PkcalcInputError, Problem
+from ...errors import PkcalcInputError, Problem, check_type
 from ..study import PRE_DOSE_RULES, Columns, Failures, study_from_tables
 from .concentrations import PC_VARIABLES, choose_analyte, map_levels
 from .datasets import Dataset, find_datasets, frame_dataset, read_dataset
@@ -58,6 +58,10 @@ def _datasets(source, log: ImportLog) -> dict[str, Dataset]:
             d = domain.lower()
             out[d] = frame_dataset(frame, d, _WANTED[d])
     else:
+        import os
+
+        check_type(source, (str, os.PathLike), "source",
+                   "a folder path, or a dict of DataFrames {'pc': ..., 'ex': ...}")
         folder = Path(source)
         if not folder.is_dir():
             raise PkcalcInputError("is not a folder", file=str(folder),
