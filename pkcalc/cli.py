@@ -439,6 +439,33 @@ _INPUT_ARGS = ("scenario", "study", "levels", "doses", "subjects", "cases", "inp
                "sdtm")
 
 
+def _inputs(args: argparse.Namespace) -> list:
+    """Every input of the command: the paths given, and the files a TOML input names
+    (a study's tables, for instance) -- none may be an output."""
+    from .schema.base import referenced_files
+
+    given = [getattr(args, k, None) for k in _INPUT_ARGS]
+    more = [f for g in given if g and str(g).lower().endswith(".toml")
+            for f in referenced_files(g)]
+    return [*given, *more]
+
+
+#: The files each command writes into its --out folder (patterns), checked against the
+#: inputs before any work.
+WRITES = {
+    "predict": ("summary.csv", "predict.json", "*/profile.csv", "*/profile.png"),
+    "design": ("design.json", "regimens.csv", "design-*.png"),
+    "sampling": ("sampling.json", "sampling-times.csv", "sampling-*.png"),
+    "verify": ("verify.json", "verify.csv"),
+    "nca": ("nca.json", "nca.csv", "nca-intervals.csv", "nca-*.png", "analysis-*.csv"),
+    "fit": ("fit.json", "fit.csv", "fit-levels.csv", "fit-*.png", "diagnostics.png",
+            "analysis-*.csv"),
+    "population": ("population.json", "population-subjects.csv",
+                   "population-iterations.csv", "diagnostics.png", "vpc.png",
+                   "adequacy-*.png", "analysis-*.csv"),
+}
+
+
 def _outputs(args: argparse.Namespace):
     """The output paths the command was given (see :func:`pkcalc.files.check_outputs`)."""
     from .files import Output
@@ -449,11 +476,12 @@ def _outputs(args: argparse.Namespace):
         out = "pkcalc-demo"
     if out is not None:
         kind = "file" if args.command == "batch" and not args.partitioned else "folder"
-        outs.append(Output(Path(out), kind, "--out", owns_names=args.command != "batch"))
+        outs.append(Output(Path(out), kind, "--out", owns_names=args.command != "batch",
+                           writes=WRITES.get(args.command, ())))
         if args.command == "batch":
             kind = "file"  # the table's format is its suffix, folder or not
         if kind == "file" and not Path(out).is_dir() and \
-                Path(out).suffix.lower() not in (".csv", ".txt", ".parquet", ".pq"):
+                Path(out).suffix.lower() not in (".csv", ".parquet", ".pq"):
             raise PkcalcInputError(f"unknown table format '{Path(out).suffix}'", file=str(out),
                                    field="--out", expected="a .csv or .parquet file name")
         if kind == "file" and Path(out).name in ("CAUTION.txt", "INCOMPLETE.txt") \
@@ -467,6 +495,22 @@ def _outputs(args: argparse.Namespace):
         if value is not None:
             outs.append(Output(Path(value), kind, "--" + option))
     return outs
+
+
+def _os_problem(exc: OSError) -> str:
+    """A system refusal in the user's words: the file and what the system said."""
+    import errno
+
+    name = exc.filename if exc.filename is not None else ""
+    name = str(name) if len(str(name)) <= 120 else str(name)[:60] + "..." + str(name)[-40:]
+    why = {errno.ENAMETOOLONG: "the path or a name in it is too long for the file system",
+           errno.ELOOP: "symbolic links that point at each other (a loop)",
+           errno.EACCES: "permission denied", errno.EPERM: "permission denied",
+           errno.ENOSPC: "no space left on the device (nothing was kept of this output)",
+           errno.EROFS: "the file system is read-only", errno.EISDIR: "is a folder",
+           errno.ENOTDIR: "a part of the path is a file, not a folder"}.get(
+               exc.errno, exc.strerror or str(exc))
+    return f"{name}: {why}" if name else why
 
 
 def _interrupted(signum, _frame):
@@ -493,7 +537,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             # results are checked for finite values where they are made; numerical
             # warnings from the libraries are not messages for the user
             warnings.simplefilter("ignore", RuntimeWarning)
-            check_outputs(_outputs(args), [getattr(args, k, None) for k in _INPUT_ARGS])
+            check_outputs(_outputs(args), _inputs(args))
             return args.func(args)
     except PkcalcInputError as exc:
         for problem in exc.problems:
@@ -505,6 +549,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         return EXIT_OK
+    except OSError as exc:  # the system refused a file: unreadable, too long, a loop, full
+        print(f"pkcalc {args.command}: error: {_os_problem(exc)}", file=sys.stderr)
+        return EXIT_INPUT
     finally:
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)

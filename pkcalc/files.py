@@ -18,6 +18,7 @@ Only the standard library and :mod:`pkcalc.errors` are used here.
 from __future__ import annotations
 
 import contextlib
+import fnmatch
 import os
 import re
 import secrets
@@ -27,8 +28,16 @@ from pathlib import Path
 
 from .errors import PkcalcInputError, Problem
 
-__all__ = ["INCOMPLETE_NAME", "Output", "check_outputs", "clean_stale", "temp_path",
-           "unfinished", "write_atomic"]
+__all__ = [
+    "INCOMPLETE_NAME",
+    "Output",
+    "check_outputs",
+    "clean_stale",
+    "resolved",
+    "temp_path",
+    "unfinished",
+    "write_atomic",
+]
 
 #: The file that marks an output folder whose writing has not finished.
 INCOMPLETE_NAME = "INCOMPLETE.txt"
@@ -134,6 +143,8 @@ class Output:
     option: str
     #: for folders: whether pkcalc writes its own files (CAUTION.txt, csv, json, png) there
     owns_names: bool = True
+    #: for folders: patterns of the files the command writes there
+    writes: tuple[str, ...] = ()
 
 
 def _nearest_existing(path: Path) -> Path:
@@ -182,6 +193,15 @@ def _check_one(out: Output) -> list[Problem]:
     return []
 
 
+def resolved(path) -> Path:
+    """The absolute path with links followed -- or as written where links loop (the
+    loader then reports the loop)."""
+    try:
+        return Path(path).resolve()
+    except (RuntimeError, OSError):
+        return Path(os.path.abspath(path))
+
+
 def check_outputs(outputs: Sequence[Output], inputs: Sequence[str | Path] = ()) -> None:
     """Check every output path before any work; raise one problem per clash.
 
@@ -192,24 +212,38 @@ def check_outputs(outputs: Sequence[Output], inputs: Sequence[str | Path] = ()) 
         output where an output folder receives pkcalc's own files of that name.
     """
     problems: list[Problem] = []
-    ins = {Path(p).resolve() for p in inputs if p}
+    ins = {resolved(p) for p in inputs if p}
     for out in outputs:
         problems += _check_one(out)
-        if out.kind == "file" and out.path.resolve() in ins:
+        if out.kind == "file" and resolved(out.path) in ins:
             problems.append(_problem(out, "is an input file: refusing to overwrite it",
                                      "an output path that is not one of the inputs"))
-        if out.kind == "folder" and out.path.resolve() in ins:
+        if out.kind == "folder" and resolved(out.path) in ins:
             problems.append(_problem(out, "is an input folder: refusing to write into it",
                                      "an output folder that is not one of the inputs"))
+        if out.kind == "file" and out.path.name in RESERVED_NAMES:
+            problems.append(_problem(out, f"'{out.path.name}' is a name pkcalc writes itself "
+                                          "(the caution beside its outputs, the unfinished "
+                                          "marker)", "another file name"))
+        if out.kind == "folder":
+            folder = resolved(out.path)
+            for p in sorted(ins):
+                rel = p.relative_to(folder).as_posix() if p.is_relative_to(folder) else None
+                if rel is not None and any(fnmatch.fnmatchcase(rel, w) for w in
+                                           (*out.writes, *RESERVED_NAMES)):
+                    problems.append(_problem(out, f"holds the input '{rel}', a name this "
+                                                  "command writes there: refusing to "
+                                                  "overwrite an input",
+                                             "another output folder"))
     for i, a in enumerate(outputs):
         for b in outputs[i + 1:]:
-            ra, rb = a.path.resolve(), b.path.resolve()
+            ra, rb = resolved(a.path), resolved(b.path)
             if ra == rb:
                 problems.append(_problem(b, f"is also given as {a.option}: one would replace "
                                             "the other", "a different path for each output"))
             for f, d in ((a, b), (b, a)):
                 if f.kind == "file" and d.kind == "folder" and d.owns_names \
-                        and f.path.resolve().parent == d.path.resolve() \
+                        and resolved(f.path).parent == resolved(d.path) \
                         and (f.path.name in RESERVED_NAMES
                              or f.path.suffix.lower() in RESERVED_SUFFIXES):
                     problems.append(_problem(

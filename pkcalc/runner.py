@@ -8,6 +8,7 @@ once, for ``--out`` and ``--report`` alike.
 
 from __future__ import annotations
 
+import contextlib
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -16,6 +17,7 @@ from typing import Any
 
 from . import report
 from .errors import PkcalcInputError
+from .files import resolved
 
 __all__ = ["Run", "check_not_input", "run_design", "run_predict", "run_verify",
            "unique_slugs", "write_outputs", "write_report"]
@@ -48,9 +50,9 @@ def unique_slugs(names: Sequence[str]) -> list[str]:
 
 def check_not_input(outputs: Sequence[Path], inputs: Sequence[str | Path]) -> None:
     """Refuse to write over an input file."""
-    ins = {Path(p).resolve() for p in inputs if p}
+    ins = {resolved(p) for p in inputs if p}
     for out in outputs:
-        if Path(out).resolve() in ins:
+        if resolved(out) in ins:
             raise PkcalcInputError("refusing to overwrite an input file", file=str(out),
                                    expected="an output path that is not one of the inputs")
 
@@ -102,15 +104,37 @@ class Run:
 
 
 def write_outputs(run: Run, out_dir: str | Path) -> list[Path]:
-    """``CAUTION.txt`` and the command's files, atomically; never over an input."""
-    from .files import unfinished
+    """``CAUTION.txt`` and the command's files, atomically; never over an input.
+
+    A refusal found while writing (a file of the run that is an input) leaves the
+    folder as it was: the marker and a new CAUTION.txt are removed, and a folder made
+    for the run too.  Files an earlier run listed in CAUTION.txt that this run does
+    not write again are removed, so the folder holds one run's files."""
+    from .files import INCOMPLETE_NAME, unfinished
 
     out = Path(out_dir)
     check_not_input([out / "CAUTION.txt"], run.inputs)
-    with unfinished(out):
-        written = [report.write_caution_file(out)]
-        if run.file_writer is not None:
-            written += run.file_writer(out, run.pngs)
+    existed, had_caution = out.is_dir(), (out / "CAUTION.txt").exists()
+    earlier = report.previous_files(out)
+    try:
+        with unfinished(out):
+            written = [report.write_caution_file(out)]
+            if run.file_writer is not None:
+                written += run.file_writer(out, run.pngs)
+            written[0] = report.write_caution_file(out, written)
+    except PkcalcInputError:
+        (out / INCOMPLETE_NAME).unlink(missing_ok=True)
+        if not had_caution:
+            (out / "CAUTION.txt").unlink(missing_ok=True)
+        if not existed:
+            with contextlib.suppress(OSError):
+                out.rmdir()
+        raise
+    now = {resolved(p) for p in written}
+    inputs = {resolved(p) for p in run.inputs}
+    for old in earlier:
+        if resolved(old) not in now and resolved(old) not in inputs and old.is_file():
+            old.unlink(missing_ok=True)
     return written
 
 
@@ -524,10 +548,9 @@ def run_population(study, options=None, *, colour: bool = False, progress=None,
         targets = [out / n for n in ("population.json", "population-subjects.csv",
                                      "population-iterations.csv", "diagnostics.png",
                                      "vpc.png")]
-        check_not_input(targets, study.files)
-        written = [report.write_atomic(out / "diagnostics.png", pngs["__diagnostics__"])]
         slugs = unique_slugs([r.subject for r in flagged])
-        check_not_input([out / f"adequacy-{s}.png" for s in slugs], study.files)
+        check_not_input(targets + [out / f"adequacy-{s}.png" for s in slugs], study.files)
+        written = [report.write_atomic(out / "diagnostics.png", pngs["__diagnostics__"])]
         written += [report.write_atomic(out / f"adequacy-{s}.png", pngs[r.subject])
                     for r, s in zip(flagged, slugs, strict=True)]
         if "__vpc__" in pngs:

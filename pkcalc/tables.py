@@ -30,6 +30,9 @@ def check_input_file(path: str | Path, what: str = "a CSV table with a header ro
     if p.is_dir():
         raise PkcalcInputError("is a folder, not a file", file=str(path), expected=what)
     if not p.is_file():
+        if p.is_symlink():
+            raise PkcalcInputError("a symbolic link that leads nowhere (a loop, or its target "
+                                   "is missing)", file=str(path), expected=what)
         raise PkcalcInputError("file not found", file=str(path), expected=what)
     if p.stat().st_size == 0:
         raise PkcalcInputError("the file is empty (0 bytes)", file=str(path), expected=what)
@@ -109,10 +112,13 @@ def read_csv_chunks(path: str | Path, chunksize: int, **kwargs) -> Iterator:
 
     header = read_header(path)
 
+    ragged = kwargs.get("on_bad_lines") == "warn"   # the caller records long rows
+
     def gen():
         try:
             with warnings.catch_warnings():
-                warnings.simplefilter("error", pd.errors.ParserWarning)
+                if not ragged:
+                    warnings.simplefilter("error", pd.errors.ParserWarning)
                 reader = pd.read_csv(path, encoding=ENCODING, index_col=False,
                                      chunksize=chunksize, **kwargs)
                 yield from reader

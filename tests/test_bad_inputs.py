@@ -220,7 +220,7 @@ def file_cases() -> list[Case]:
             Case(f"{name}-invalid-toml", "F3", (*prefix, "b.toml", *extra),
                  {"b.toml": "[[scenarios]\nname = \n"}, 2, "not valid TOML"),
             Case(f"{name}-latin1-toml", "F1", (*prefix, "l.toml", *extra),
-                 {"l.toml": 'title = "caf\xe9"\n'.encode("latin-1")}, 2, "not a text file"),
+                 {"l.toml": 'title = "caf\xe9"\n'.encode("latin-1")}, 2, "not UTF-8 text: byte 0xE9 on line 1"),
         ]
     out.append(Case("predict-bom-is-fine", "F1", ("predict", "bom.toml"),
                     {"bom.toml": b"\xef\xbb\xbf" + scenario().encode()}, 0, ""))
@@ -273,9 +273,9 @@ def study_cases() -> list[Case]:
 
 def batch_cases() -> list[Case]:
     rows = [
-        ("ragged", "S3", BATCH + "5,8,30,1\n", 2, "more cells"),
+        ("ragged", "S3", BATCH + "5,8,30,1\n", 1, "the row has 4 cells, the header 3 (line 4)"),
         ("ragged-first-row", "S3", BATCH.replace("\n3,8,30\n", "\n3,8,30,9\n"), 2,
-         "more cells"),
+         "the first row has more cells"),
         ("duplicate-header", "S2", "clearance [L/h],half_life [h],rate [mg/h],rate [mg/h]\n"
          "3,8,30,30\n", 2, "appears twice"),
         ("latin1", "F1", ("clearance [L/h],half_life [h],rate [mg/h],note\n3,8,30,caf\xe9\n"

@@ -169,17 +169,25 @@ def test_a_partitioned_output_replaces_only_an_earlier_one(tmp_path):
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no leftovers
 
 
-def test_a_malformed_csv_line_stops_the_run_and_leaves_nothing(tmp_path, clusters):
+def test_a_malformed_csv_line_is_a_row_error_on_every_engine(tmp_path, clusters):
+    # B4/B6: a line with more cells than the header is that row's error, in its place;
+    # the other rows are computed as by the local engine
     src = write_input(tmp_path, "csv")
     lines = src.read_text().splitlines()
     lines[2000] += ",1,2,3"                       # more cells than the header
     src.write_text("\n".join(lines) + "\n")
-    out = tmp_path / "out.csv"
-    with pytest.raises(PkcalcInputError, match="more cells than the header"):
-        run_batch(src, out, OPTIONS, engine="dask", scheduler=clusters[2], chunk_rows=300,
-                  partitioned=True)
-    assert not out.exists()
-    assert [p.name for p in tmp_path.iterdir()] == ["in.csv"]
+    out, local = tmp_path / "out.csv", tmp_path / "local.csv"
+    summary = run_batch(src, out, OPTIONS, engine="dask", scheduler=clusters[2],
+                        chunk_rows=300, partitioned=True)
+    run_batch(src, local, OPTIONS, chunk_rows=300)
+    a, b = read_output(out), pd.read_csv(local, keep_default_na=False, na_values=[""])
+    assert summary.failed >= 1 and len(a) == len(b) == len(lines) - 1
+    row = a.iloc[1999]
+    assert row["error"].startswith("the row has") and "header" in row["error"]
+    assert b.iloc[1999]["error"].endswith("(line 2001)")
+    ok = a["error"].fillna("") == ""
+    assert np.allclose(a.loc[ok, "plateau_concentration [mg/L]"],
+                       b.loc[ok, "plateau_concentration [mg/L]"], rtol=1e-12, equal_nan=True)
 
 
 def test_no_scheduler_is_an_input_error_within_the_timeout(tmp_path):

@@ -272,6 +272,11 @@ def out_of_range_mask(x: np.ndarray) -> np.ndarray:
                                                           (a > NUMERIC_RANGE[1]))))
 
 
+#: A hidden column of chunks read from CSV: why a row could not be read ("" when it
+#: could).  The kernel turns it into the row's error; it never reaches the output.
+ROW_PROBLEM = "__row_problem__"
+
+
 class RowErrors:
     """Per-row error text, built with whole-column masks."""
 

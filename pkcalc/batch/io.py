@@ -5,6 +5,7 @@ from __future__ import annotations
 import itertools
 import math
 import os
+import re
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -14,7 +15,15 @@ import pandas as pd
 from .. import model
 from ..errors import PkcalcInputError, Problem
 from ..units import KINDS, parse_header, parse_unit
-from .columns import FRACTIONS, INPUT_KINDS, BatchOptions, BatchSpec, BatchSummary, at_label
+from .columns import (
+    FRACTIONS,
+    INPUT_KINDS,
+    ROW_PROBLEM,
+    BatchOptions,
+    BatchSpec,
+    BatchSummary,
+    at_label,
+)
 
 
 # --------------------------------------------------------------------------- inputs
@@ -81,16 +90,72 @@ def detect_format(path: Path) -> str:
                            expected=".csv, .parquet or .toml")
 
 
+_SKIPPED = re.compile(r"Skipping line (\d+): expected (\d+) fields?, saw (\d+)")
+
+
+def ragged_rows(make_reader, first_line: int, where: str, file: str,
+                first: str = "the first row") -> Iterator[pd.DataFrame]:
+    """The chunks of a pandas CSV reader made with ``on_bad_lines="warn"`` and
+    ``skip_blank_lines=False``, with every line that has more cells than the header put
+    back in its place as an empty row whose :data:`ROW_PROBLEM` says so (a row error,
+    not a refusal of the file).  ``first_line``: the line number pandas gives the first
+    data row; ``where``: how the message names the line (``"line {n}"`` or "").
+
+    A first data row longer than the header refuses the file: pandas then reads every
+    row short (it cannot tell the row from a header that lacks a name)."""
+    import warnings
+
+    start = 0                                   # data rows read so far (bad ones too)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", pd.errors.ParserWarning)
+        reader = iter(make_reader())
+        while True:
+            del caught[:]
+            try:
+                chunk = next(reader)
+            except StopIteration:
+                break
+            if any("Length of header" in str(w.message) for w in caught):
+                raise PkcalcInputError(f"{first} has more cells than the header (a column "
+                                       "name missing?)", file=file,
+                                       expected="as many cells in the first row as column "
+                                                "names")
+            bad = [(int(m[1]), int(m[2]), int(m[3])) for w in caught
+                   if issubclass(w.category, pd.errors.ParserWarning)
+                   for m in _SKIPPED.finditer(str(w.message))]
+            chunk = chunk.reset_index(drop=True)
+            chunk[ROW_PROBLEM] = ""
+            if bad:
+                total = len(chunk) + len(bad)
+                at = sorted(line - first_line - start for line, _, _ in bad)
+                keep = np.setdiff1d(np.arange(total), at)
+                full = chunk.reindex(range(total))
+                full.iloc[keep] = chunk.to_numpy()
+                full.iloc[at] = np.nan
+                full.loc[at, ROW_PROBLEM] = [
+                    f"the row has {saw} cells, the header {want}"
+                    + (f" ({where.format(n=line)})" if where else "")
+                    for line, want, saw in sorted(bad)]
+                # integer and boolean columns cannot hold the empty cells: float / object
+                chunk = full.astype({c: (float if t.kind in "iu" else object if t.kind == "b"
+                                         else t) for c, t in chunk.dtypes.items()})
+            start += len(chunk)
+            yield chunk
+
+
 def csv_chunks(path: Path, chunk_rows: int) -> tuple[list[str], Iterator[pd.DataFrame]]:
     from ..tables import read_csv_chunks, read_header
 
     header = read_header(path)
     known = {h for h in header if parse_header(h)[0].strip().lower() in INPUT_KINDS}
     # unknown columns stay text exactly as written (IDs keep their leading zeros)
-    reader = read_csv_chunks(path, chunk_rows, skipinitialspace=True,
-                             dtype={h: str for h in header if h not in known},
-                             keep_default_na=False, na_values=[""])
-    return header, reader
+
+    def make():
+        return read_csv_chunks(path, chunk_rows, skipinitialspace=True,
+                               dtype={h: str for h in header if h not in known},
+                               keep_default_na=False, na_values=[""], on_bad_lines="warn",
+                               skip_blank_lines=False)
+    return header, ragged_rows(make, 2, "line {n}", str(path))
 
 
 def parquet_chunks(path: Path, chunk_rows: int) -> tuple[list[str], Iterator[pd.DataFrame]]:
@@ -263,9 +328,12 @@ def scenario_rows(path: Path, options: BatchOptions) -> tuple[pd.DataFrame, list
         row["flags"] = " | ".join(pred.flags)
         row["error"] = ""
         rows.append(row)
+    if not rows:  # no scenario could be read: the file is unusable, as for predict
+        raise PkcalcInputError([p for _, err in sfile.failures for p in err.problems])
+    columns = list(rows[0])
     for label, err in sfile.failures:
         rows.append({"scenario": label, "error": str(err)})
-    return pd.DataFrame(rows), sfile.failures
+    return pd.DataFrame(rows, columns=columns), sfile.failures
 
 
 def toml_chunks(path: Path, chunk_rows: int):

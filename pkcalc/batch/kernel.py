@@ -15,6 +15,7 @@ from .columns import (
     FRACTIONS,
     PARAMETERS,
     POPULATION_BLOCK,
+    ROW_PROBLEM,
     TARGET_BAND,
     BatchOptions,
     BatchSpec,
@@ -42,6 +43,10 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
         The input columns followed by the result columns and ``error``.
     """
     n = len(frame)
+    problems = None
+    if ROW_PROBLEM in frame.columns:        # lines the CSV reader could not split
+        problems = frame[ROW_PROBLEM].fillna("").to_numpy(object)
+        frame = frame.drop(columns=[ROW_PROBLEM])
     err = RowErrors(n)
     vals, parsed = _parse_inputs(frame, spec, err)
     cl, v = _parameters(vals, err)
@@ -56,6 +61,11 @@ def compute(frame: pd.DataFrame, spec: BatchSpec, options: BatchOptions) -> pd.D
         cl = np.where(bad, np.nan, cl)
         v = np.where(bad, np.nan, v)
         out, has_window = _results(cl, v, reg, mean_rate, vals, spec, options)
+    if problems is not None:                 # the reader's reason replaces the others
+        empty = frame.isna().all(axis=1).to_numpy() & (problems == "")
+        problems = np.where(empty, "the row is empty", problems)
+        mark = problems != ""
+        err.text[mark] = problems[mark]
     return _assemble(frame, parsed, out, err, has_window)
 
 

@@ -36,7 +36,7 @@ import pandas as pd
 
 from ..errors import PkcalcInputError
 from .columns import POPULATION_BLOCK, BatchOptions, BatchSpec, BatchSummary
-from .io import Writer, normalise_types
+from .io import Writer, normalise_types, ragged_rows
 from .kernel import compute
 
 __all__ = ["MANIFEST_NAME", "Part", "PartResult", "plan_partitions", "run_part"]
@@ -203,24 +203,26 @@ def _read_part(part: Part, block: int, layout: CsvLayout | None) -> Iterator[pd.
         for rb in pf.iter_batches(batch_size=block, row_groups=list(part.row_groups)):
             yield rb.to_pandas()
         return
-    import warnings
-
     from ..tables import _translate
 
     assert layout is not None
     data = _csv_bytes(part, layout)
     if not data.strip():
         return
+    def make():
+        return pd.read_csv(io.BytesIO(data), header=None, names=list(layout.names),
+                           encoding="utf-8", index_col=False, chunksize=block,
+                           skipinitialspace=True, keep_default_na=False, na_values=[""],
+                           dtype={h: str for h in layout.text_columns}, on_bad_lines="warn",
+                           skip_blank_lines=False)
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("error", pd.errors.ParserWarning)
-            yield from pd.read_csv(io.BytesIO(data), header=None, names=list(layout.names),
-                                   encoding="utf-8", index_col=False, chunksize=block,
-                                   skipinitialspace=True, keep_default_na=False,
-                                   na_values=[""],
-                                   dtype={h: str for h in layout.text_columns})
-    except (pd.errors.ParserError, pd.errors.ParserWarning, pd.errors.EmptyDataError,
-            UnicodeDecodeError, ValueError) as exc:
+        # lines with more cells than the header are row errors (no line number: a part
+        # is a byte range of the file)
+        yield from ragged_rows(make, 1, "", str(part.path),
+                               "the first row of a partition (run without --partitioned "
+                               "to find it)")
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError,
+            ValueError) as exc:
         raise _translate(part.path, exc, len(layout.names)) from None
 
 

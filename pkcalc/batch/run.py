@@ -11,6 +11,7 @@ import pandas as pd
 
 from ..engines import Engine
 from ..errors import PkcalcInputError, check_path, check_type
+from ..files import resolved
 from .columns import (
     DEFAULT_CHUNK_ROWS,
     POPULATION_BLOCK,
@@ -95,12 +96,14 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
                                field="--workers", expected="--engine dask for several "
                                                            "worker processes")
     check_input_file(src, "a .csv, .parquet or .toml table")
-    if dst.exists() and dst.resolve() == src.resolve():
+    if dst.exists() and resolved(dst) == resolved(src):
         raise PkcalcInputError("refusing to overwrite the input file", file=str(dst),
                                expected="an output path other than the input")
     fmt_in, fmt_out = detect_format(src), detect_format(dst)
-    if fmt_out == "toml":
-        raise PkcalcInputError("the output must be .csv or .parquet", file=str(dst))
+    if dst.suffix.lower() not in (".csv", ".parquet", ".pq"):
+        raise PkcalcInputError(f"the output table must be .csv or .parquet, not "
+                               f"'{dst.suffix or '(no suffix)'}'", file=str(dst),
+                               field="--out", expected="e.g. results.csv or results.parquet")
     summary = BatchSummary(output=str(dst), input=str(src), engine=engine.kind)
     started = time.perf_counter()
     if engine.kind == "dask" or partitioned:

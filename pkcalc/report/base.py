@@ -143,8 +143,29 @@ def write_atomic(path: str | Path, data: str | bytes) -> Path:
     return _write(path, data)
 
 
-def write_caution_file(out_dir: str | Path) -> Path:
-    """``CAUTION.txt`` beside files written with ``--out``."""
+#: The line of CAUTION.txt after which the files of the run are listed.
+FILES_HEADING = "Files written by this run:"
+
+
+def write_caution_file(out_dir: str | Path, files: Iterable[str | Path] = ()) -> Path:
+    """``CAUTION.txt`` beside files written with ``--out``, listing the run's files (the
+    next run into the folder removes those of them it does not write again)."""
+    names = sorted({Path(f).name for f in files} - {"CAUTION.txt"})
     text = CAUTION + "\n\npkcalc " + __version__ + "\n"
+    if names:
+        text += "\n" + FILES_HEADING + "\n" + "".join(f"  {n}\n" for n in names)
     return write_atomic(Path(out_dir) / "CAUTION.txt", text)
+
+
+def previous_files(out_dir: str | Path) -> list[Path]:
+    """The files an earlier pkcalc run listed in the folder's CAUTION.txt."""
+    path = Path(out_dir) / "CAUTION.txt"
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError):
+        return []
+    if not text.startswith(CAUTION) or FILES_HEADING not in text:
+        return []
+    names = [line.strip() for line in text.split(FILES_HEADING, 1)[1].splitlines()]
+    return [Path(out_dir) / n for n in names if n and "/" not in n and "\\" not in n]
 

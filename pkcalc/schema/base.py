@@ -343,17 +343,20 @@ class ScenarioFile:
 
 def read_toml(path: str | Path) -> dict[str, Any]:
     """Read a TOML file; unreadable, empty or non-TOML files raise PkcalcInputError."""
+    from ..tables import check_input_file
+
     check_path(path)
-    p = Path(path)
-    if p.is_dir():
-        raise PkcalcInputError("is a folder, not a file", file=str(path),
-                               expected="a TOML file")
-    if not p.is_file():
-        raise PkcalcInputError("file not found", file=str(path))
+    p = check_input_file(path, "a TOML file")
     try:
-        data = tomllib.loads(p.read_text(encoding="utf-8-sig"))  # a BOM is not an error
-    except UnicodeDecodeError:
-        raise PkcalcInputError("not a text file", file=str(path), expected="a TOML file") from None
+        raw = p.read_bytes()
+        data = tomllib.loads(raw.decode("utf-8-sig"))  # a BOM is not an error
+    except UnicodeDecodeError as exc:
+        line = raw[:exc.start].count(b"\n") + 1
+        what = ("a binary file, not text" if b"\x00" in raw[:4096] else
+                f"not UTF-8 text: byte 0x{raw[exc.start]:02X} on line {line} (saved in another "
+                "encoding, e.g. Latin-1 or Windows-1252?)")
+        raise PkcalcInputError(what, file=str(path),
+                               expected="a TOML file saved as UTF-8") from None
     except tomllib.TOMLDecodeError as exc:
         raise PkcalcInputError(f"not valid TOML: {exc}", file=str(path)) from None
     if not data:
@@ -430,4 +433,31 @@ def load_items(path: str | Path, spec: type[LenientModel], *, extra_keys: Iterab
             failures.append((label, exc.located(file=file, item=label)))
     title = data.get("title") if isinstance(data.get("title"), str) else None
     return ScenarioFile(file, title, output, good, failures, data)
+
+
+#: Keys of a study or scenario file that name other input files.
+_FILE_KEYS = ("levels", "doses", "subjects", "sdtm", "prior")
+
+
+def referenced_files(path: str | Path) -> list[Path]:
+    """The files a TOML input names (a study's tables, its SDTM folder and the files in
+    it, a prior), relative to the TOML file's folder -- inputs too, for the output
+    checks made before any work.  An unreadable file names none (its loader refuses
+    it later)."""
+    p = Path(path)
+    try:
+        data = tomllib.loads(p.read_text(encoding="utf-8-sig"))
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, ValueError):
+        return []
+    found: list[Path] = []
+    for table in (data, data.get("fit") if isinstance(data.get("fit"), dict) else {}):
+        for key in _FILE_KEYS:
+            value = table.get(key)
+            if isinstance(value, str) and value.strip():
+                ref = Path(value)
+                ref = ref if ref.is_absolute() else p.parent / ref
+                found.append(ref)
+                if ref.is_dir():
+                    found += [f for f in ref.iterdir() if f.is_file()]
+    return found
 
