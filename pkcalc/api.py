@@ -281,13 +281,41 @@ def nca_study(study=None, options: NcaOptions | None = None, *, levels=None, dos
 
     study = _as_study(study, levels, doses, subjects)
     opts = _options(options, NcaOptions, "NCA") or study_nca_options(study, overrides)
+    _check_terminal_points(study, opts)
     results = [nca_of_subject(s, opts) for s in study.subjects]
     warnings = list(study.warnings)
-    unknown = sorted(set(opts.terminal_points) - {s.subject for s in study.subjects})
-    if unknown:
-        warnings.append(f"terminal points given for unknown subjects: {', '.join(unknown)}")
     return StudyNca(results, list(study.failures), opts, warnings, study.title,
                     units or study.output or None)
+
+
+def _check_terminal_points(study: Study, opts: NcaOptions) -> None:
+    """Terminal points chosen by hand name a subject of the study and its level times
+    (hours after its first dose, to 1e-6 h); nothing chosen is ignored silently."""
+    import numpy as np
+
+    problems = []
+    by = {s.subject: s for s in study.subjects}
+    left = {label for label, _ in study.failures}
+    for sid, times in sorted(opts.terminal_points.items()):
+        s = by.get(sid)
+        if s is None:
+            why = "was left out (see its problems)" if f"subject '{sid}'" in left else \
+                "is not in the study"
+            problems.append(PkcalcInputError(
+                f"terminal points for subject '{sid}', which {why}",
+                field="--terminal (terminal_points)",
+                expected="one of " + ", ".join(list(by)[:20])).problems[0])
+            continue
+        missing = [t for t in times if not np.any(np.abs(s.time - t) <= 1e-6)]
+        if missing:
+            shown = ", ".join(f"{t:g}" for t in s.time[:30])
+            problems.append(PkcalcInputError(
+                f"subject '{sid}' has no level at {', '.join(f'{t:g}' for t in missing)} h",
+                field="--terminal (terminal_points)",
+                expected=f"times of its levels (hours after its first dose): {shown}"
+            ).problems[0])
+    if problems:
+        raise PkcalcInputError(problems)
 
 
 # --------------------------------------------------------------------------- fit

@@ -200,6 +200,7 @@ def _import_args(args: argparse.Namespace) -> dict:
 def cmd_fit(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_fit
     from .schema import study_fit_options
+    from .schema.options import CLI_NAMES
 
     study = load_study_input(args.study, args.levels, args.doses, args.subjects,
                              args.sdtm, args.analyte, **_import_args(args))
@@ -207,13 +208,14 @@ def cmd_fit(args: argparse.Namespace) -> int:
         "weighting": args.weighting, "error_model": args.error_model, "blq": args.blq,
         "ci": args.ci, "prior": args.prior, "starts": args.starts,
         "with_nca": True if args.with_nca else None, "nca_threshold": args.nca_threshold,
-        "adequacy": False if args.no_adequacy else None})
+        "adequacy": False if args.no_adequacy else None}, labels=CLI_NAMES)
     return _finish(run_fit(study, options, colour=_colour()), args)
 
 
 def cmd_population(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_population
     from .schema import study_population_options
+    from .schema.options import CLI_NAMES
 
     study = load_study_input(args.study, args.levels, args.doses, args.subjects,
                              args.sdtm, args.analyte, **_import_args(args))
@@ -224,7 +226,8 @@ def cmd_population(args: argparse.Namespace) -> int:
         "vpc_replicates": args.vpc_replicates,
         "adequacy": False if args.no_adequacy else None, "nodes": args.nodes,
         "between_subject": args.between_subject, "effects": args.effect,
-        "models": _models_arg(args.model), "stepwise": _stepwise_arg(args)})
+        "models": _models_arg(args.model), "stepwise": _stepwise_arg(args)},
+        labels=CLI_NAMES)
     progress = _progress_printer("population") if sys.stderr.isatty() and not args.quiet \
         else None
     engine = _engine(args)
@@ -250,6 +253,9 @@ def _models_arg(items: list[str] | None) -> dict | None:
             raise PkcalcInputError(f"'{item}' is not NAME: EFFECTS", field="--model",
                                    expected='e.g. --model "base:" --model "weight: weight on '
                                             'clearance; sex on volume"')
+        if name.strip() in out:
+            raise PkcalcInputError(f"the model name '{name.strip()}' is given twice",
+                                   field="--model", expected="a different name for each model")
         out[name.strip()] = [e.strip() for e in effects.split(";") if e.strip()]
     return out
 
@@ -360,10 +366,11 @@ def cmd_batch(args: argparse.Namespace) -> int:
 def cmd_nca(args: argparse.Namespace) -> int:
     from .runner import load_study_input, run_nca
     from .schema import study_nca_options
+    from .schema.options import CLI_NAMES
 
     study = load_study_input(args.study, args.levels, args.doses, args.subjects,
                              args.sdtm, args.analyte, **_import_args(args))
-    options = study_nca_options(study, _nca_overrides(args))
+    options = study_nca_options(study, _nca_overrides(args), labels=CLI_NAMES)
     return _finish(run_nca(study, options, colour=_colour(), pp=args.pp), args)
 
 

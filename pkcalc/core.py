@@ -26,6 +26,7 @@ __all__ = [
     "CI_METHODS",
     "EFFECT_FORMS",
     "ERROR_MODELS",
+    "MIN_SALT_FACTOR",
     "NCA_AUC_METHODS",
     "NCA_BLQ_RULES",
     "NCA_INTERVALS",
@@ -47,6 +48,10 @@ __all__ = [
     "Target",
     "expand_events",
 ]
+
+#: The smallest salt factor accepted (the drug's share of the product; salts and esters
+#: in use lie well above it -- common practice).
+MIN_SALT_FACTOR = 0.05
 
 #: The canonical unit of every kind of quantity: every number inside pkcalc is in these.
 CANONICAL_UNITS: dict[str, str] = {
@@ -74,7 +79,19 @@ NCA_INTERVALS = ("each", "first", "last")
 
 def _check(ok: bool, name: str, rule: str, value: Any) -> None:
     if not ok:
-        raise ValueError(f"{name} {rule}, got {value!r}")
+        raise ValueError(f"{name} {rule}, got {_shown(value)}")
+
+
+def _shown(value: Any) -> str:
+    """A value for a message: short, and arrays by their size (never numpy's repr)."""
+    if isinstance(value, np.ndarray):
+        return f"an array of {value.size} values" if value.size > 3 else \
+            "[" + ", ".join(f"{x:g}" if isinstance(x, float | np.floating) else str(x)
+                            for x in value.tolist()) + "]"
+    if isinstance(value, np.generic):
+        value = value.item()
+    text = repr(value)
+    return text if len(text) <= 60 else text[:57] + "..."
 
 
 def _finite(x: Any) -> bool:
@@ -704,7 +721,10 @@ class SamplingProblem:
     daytime : (float, float) or None
         Allowed hours of the day (clock scenarios).
     clock_hour : float or None
-        Hour of the day at time 0 (clock scenarios).
+        Hour of the day at time 0 (one fixed UTC offset throughout).
+    excluded : tuple of (float, float), h
+        Periods outside the allowed hours of the day, computed in a time zone (its
+        daylight-saving changes included); used instead of ``daytime`` arithmetic.
     clock_origin : str or None
         ISO 8601 date-time of time 0 (clock scenarios, for reports).
     min_spacing : float, h
@@ -731,6 +751,7 @@ class SamplingProblem:
     avoid_infusion: bool = False
     daytime: tuple[float, float] | None = None
     clock_hour: float | None = None
+    excluded: tuple[tuple[float, float], ...] = ()
     clock_origin: str | None = None
     min_spacing: float = 0.0
     candidates: tuple[float, ...] | None = None
@@ -768,6 +789,6 @@ class SamplingProblem:
                "must be >= 0 h", self.min_spacing)
         _check(isinstance(self.starts, int) and 1 <= self.starts <= 1000, "starts",
                "must be a whole number from 1 to 1000", self.starts)
-        if self.daytime is not None:
+        if self.daytime is not None and not self.excluded:
             _check(self.clock_hour is not None, "daytime",
                    "needs a scenario on the clock (dose starts as date-times)", self.daytime)

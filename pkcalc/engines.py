@@ -34,8 +34,26 @@ __all__ = ["ENGINES", "Engine", "dask_client", "map_ordered"]
 
 #: The engines a job can run on.
 ENGINES = ("local", "dask")
-#: Most worker processes pkcalc starts on this machine.
+#: Most worker processes pkcalc starts, whatever the machine.
 MAX_WORKERS = 256
+#: Memory a worker process may take (a bound for how many start; measured ~75 MB idle).
+WORKER_MEMORY_MB = 250
+#: Longest wait for a scheduler or its first worker, s.
+MAX_TIMEOUT = 3600.0
+
+
+def worker_limit() -> int:
+    """How many worker processes this machine can run: two per core, and no more than
+    its available memory holds at :data:`WORKER_MEMORY_MB` each (Linux), at most
+    :data:`MAX_WORKERS`."""
+    cores = os.cpu_count() or 1
+    limit = min(MAX_WORKERS, 2 * cores)
+    try:
+        free_mb = os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE") / 2**20
+        limit = min(limit, max(1, int(free_mb // WORKER_MEMORY_MB)))
+    except (ValueError, OSError, AttributeError):
+        pass
+    return max(1, limit)
 
 
 @dataclass(frozen=True)
@@ -51,7 +69,8 @@ class Engine:
     scheduler : str or None
         Address of a running Dask scheduler (``tcp://HOST:PORT``); Dask only.
     timeout : float
-        Seconds allowed to reach the scheduler and to see its first worker.
+        Seconds allowed to reach the scheduler and to see its first worker (at most
+        :data:`MAX_TIMEOUT`).
     """
 
     kind: str = "local"
@@ -62,13 +81,21 @@ class Engine:
     def __post_init__(self) -> None:
         if self.kind not in ENGINES:
             raise ValueError(f"kind: '{self.kind}' is not one of {', '.join(ENGINES)}")
+        limit = worker_limit()
         if self.workers is not None and not (isinstance(self.workers, int)
-                                             and 1 <= self.workers <= MAX_WORKERS):
-            raise ValueError(f"workers: must be a whole number from 1 to {MAX_WORKERS}")
+                                             and not isinstance(self.workers, bool)
+                                             and 1 <= self.workers <= limit):
+            raise ValueError(f"workers: must be a whole number from 1 to {limit} on this "
+                             f"machine (two per core, as memory allows)")
         if self.scheduler is not None and self.kind != "dask":
             raise ValueError("scheduler: only the dask engine connects to a scheduler")
-        if not self.timeout > 0:
-            raise ValueError("timeout: must be > 0 seconds")
+        if not (isinstance(self.timeout, int | float) and 0 < self.timeout <= MAX_TIMEOUT):
+            raise ValueError(f"timeout: must be a number of seconds from above 0 to "
+                             f"{MAX_TIMEOUT:g}")
+        if self.scheduler is not None and not (isinstance(self.scheduler, str)
+                                               and self.scheduler.strip()):
+            raise ValueError("scheduler: an empty address (leave it out to start a local "
+                             "cluster)")
 
     @property
     def label(self) -> str:
@@ -79,6 +106,32 @@ class Engine:
         if self.scheduler:
             return f"dask (scheduler {self.scheduler})"
         return f"dask (local cluster, {self.workers or os.cpu_count() or 1} processes)"
+
+
+def _connect(distributed, engine: Engine):
+    """A client of the scheduler, within ``engine.timeout`` whatever the other end does
+    (refuses, answers with other bytes, or accepts and never replies): the attempt runs
+    in a daemon thread that is abandoned when the time is up."""
+    import threading
+
+    box: dict[str, Any] = {}
+
+    def attempt() -> None:
+        try:
+            box["client"] = distributed.Client(engine.scheduler, timeout=f"{engine.timeout}s")
+        except BaseException as exc:   # a garbled reply can raise anything (MemoryError)
+            box["error"] = exc
+
+    thread = threading.Thread(target=attempt, name="pkcalc-connect", daemon=True)
+    thread.start()
+    thread.join(engine.timeout + 2.0)
+    if "client" in box:
+        return box["client"]
+    why = "no answer" if thread.is_alive() else box["error"].__class__.__name__
+    raise PkcalcInputError(
+        f"cannot reach the Dask scheduler at {engine.scheduler} within {engine.timeout:g} s "
+        f"({why}; is it a Dask scheduler?)", field="--scheduler",
+        expected="tcp://HOST:PORT of a running scheduler")
 
 
 def _need_distributed():
@@ -101,13 +154,7 @@ def dask_client(engine: Engine) -> Iterator[Any]:
     client = None
     try:
         if engine.scheduler:
-            try:
-                client = distributed.Client(engine.scheduler, timeout=f"{engine.timeout}s")
-            except (OSError, TimeoutError, ValueError) as exc:
-                raise PkcalcInputError(
-                    f"cannot reach the Dask scheduler at {engine.scheduler} within "
-                    f"{engine.timeout:g} s ({exc.__class__.__name__})", field="--scheduler",
-                    expected="tcp://HOST:PORT of a running scheduler") from None
+            client = _connect(distributed, engine)
             try:
                 client.wait_for_workers(1, timeout=engine.timeout)
             except (TimeoutError, OSError):
@@ -140,6 +187,61 @@ def dask_client(engine: Engine) -> Iterator[Any]:
                 cluster.close()
 
 
+def watch_parent(parent: int) -> None:
+    """In a worker process: end when the process that started it is gone (killed with
+    SIGKILL, say), so that no worker outlives its run.  Linux asks the kernel to send
+    SIGKILL on the parent's death; elsewhere a thread looks every second."""
+    import signal
+    import threading
+
+    with contextlib.suppress(Exception):
+        import ctypes
+
+        libc = ctypes.CDLL("libc.so.6", use_errno=True)
+        libc.prctl(1, int(signal.SIGKILL))          # PR_SET_PDEATHSIG
+    if os.getppid() != parent:                       # gone before the request took effect
+        os._exit(1)
+
+    def look() -> None:
+        while True:
+            time.sleep(1.0)
+            if os.getppid() != parent:
+                os._exit(1)
+
+    threading.Thread(target=look, name="pkcalc-parent-watch", daemon=True).start()
+    # a worker ignores Ctrl-C: the parent decides and stops it
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def _map_processes(fn, items: list, workers: int, progress, started: float) -> list:
+    """The local process pool: results in order; Ctrl-C, SIGTERM or an error stop it at
+    once (queued pieces cancelled, the workers terminated), never after every piece."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor, as_completed
+
+    total = len(items)
+    pool = ProcessPoolExecutor(max_workers=min(workers, max(total, 1)),
+                               mp_context=multiprocessing.get_context("spawn"),
+                               initializer=watch_parent, initargs=(os.getpid(),))
+    try:
+        futures = [pool.submit(fn, x) for x in items]
+        for done, _ in enumerate(as_completed(futures), 1):
+            _report(progress, done, total, started)
+        out = [f.result() for f in futures]
+    except BaseException:
+        processes = list((getattr(pool, "_processes", None) or {}).values())
+        pool.shutdown(wait=False, cancel_futures=True)
+        for p in processes:
+            with contextlib.suppress(Exception):
+                p.terminate()
+        for p in processes:
+            with contextlib.suppress(Exception):
+                p.join(5)
+        raise
+    pool.shutdown(wait=True)
+    return out
+
+
 def _report(progress: Callable[[int, int, float], None] | None, done: int, total: int,
             started: float) -> None:
     if progress is not None:
@@ -167,15 +269,7 @@ def map_ordered(fn: Callable[[Any], Any], items: Sequence[Any], engine: Engine |
             _report(progress, i + 1, total, started)
         return out
     if engine.kind == "local":
-        import multiprocessing
-        from concurrent.futures import ProcessPoolExecutor, as_completed
-
-        with ProcessPoolExecutor(max_workers=min(engine.workers, max(total, 1)),
-                                 mp_context=multiprocessing.get_context("spawn")) as pool:
-            futures = [pool.submit(fn, x) for x in items]
-            for done, _ in enumerate(as_completed(futures), 1):
-                _report(progress, done, total, started)
-            return [f.result() for f in futures]
+        return _map_processes(fn, items, engine.workers, progress, started)
     distributed = _need_distributed()
     with dask_client(engine) as client:
         futures = client.map(fn, items, pure=False)

@@ -220,7 +220,8 @@ def file_cases() -> list[Case]:
             Case(f"{name}-invalid-toml", "F3", (*prefix, "b.toml", *extra),
                  {"b.toml": "[[scenarios]\nname = \n"}, 2, "not valid TOML"),
             Case(f"{name}-latin1-toml", "F1", (*prefix, "l.toml", *extra),
-                 {"l.toml": 'title = "caf\xe9"\n'.encode("latin-1")}, 2, "not UTF-8 text: byte 0xE9 on line 1"),
+                 {"l.toml": 'title = "caf\xe9"\n'.encode("latin-1")}, 2,
+                 "not UTF-8 text: byte 0xE9 on line 1"),
         ]
     out.append(Case("predict-bom-is-fine", "F1", ("predict", "bom.toml"),
                     {"bom.toml": b"\xef\xbb\xbf" + scenario().encode()}, 0, ""))

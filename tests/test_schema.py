@@ -195,7 +195,7 @@ def test_missing_and_binary_files(tmp_path):
         load_scenario_file(tmp_path / "nope.toml")
     p = tmp_path / "bin.toml"
     p.write_bytes(b"\xff\xfe\x00\x01binary")
-    with pytest.raises(PkcalcInputError, match="not a text file|not valid TOML"):
+    with pytest.raises(PkcalcInputError, match="binary file, not text|not valid TOML"):
         load_scenario_file(p)
 
 

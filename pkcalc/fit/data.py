@@ -29,10 +29,20 @@ def prepare_batch(subjects: list[SubjectData], opts: FitOptions):
     t, y, lloq, blq, valid, start, amount, duration = _padded(subjects)
     notes: list[list] = [[] for _ in subjects]
     y, obs, cens = _blq_method(y, lloq, blq, valid, opts.blq, notes)
-    none_yet = valid & (model.concentration(t, start, amount, duration, 1.0, 1.0) <= 0)
+    dose = amount > 0
+    infusion = dose & (duration > 0)
+    instant = dose & ((duration == 0) | (duration == model.INITIAL_LEVEL))
+    first_infusion = np.where(infusion, start, np.inf).min(axis=1, initial=np.inf)[:, None]
+    first_instant = np.where(instant, start, np.inf).min(axis=1, initial=np.inf)[:, None]
+    none_yet = valid & (t <= first_infusion) & (t < first_instant)
     _before_any_drug(subjects, t, y, obs, none_yet, notes)
-    obs &= ~none_yet
-    cens &= ~none_yet
+    # a level years after the last dose is a time or unit gone wrong (common practice)
+    ends = np.where(dose & (duration >= 0), start + np.maximum(duration, 0.0), -np.inf)
+    gone = valid & ~none_yet & (t - ends.max(axis=1, initial=-np.inf)[:, None]
+                                > FAR_AFTER_LAST_DOSE)
+    _far_after(subjects, t, gone, notes)
+    obs &= ~(none_yet | gone)
+    cens &= ~(none_yet | gone)
     obs, w = _weights(y, obs, opts.weighting, notes)
     batch = Batch(t=t, y=y, w=w, obs=obs, cens=cens, start=start, amount=amount,
                   duration=duration, kind=opts.method, error=opts.error_model or "additive")
@@ -97,6 +107,21 @@ def _before_any_drug(subjects, t, y, obs, none_yet, notes) -> None:
                                 "initial_concentration"))
         else:
             notes[i].append(text)
+
+
+#: A level drawn more than this after the end of the last dose (about 14 months) is
+#: taken as a wrong time or unit and left out with a warning (common practice).
+FAR_AFTER_LAST_DOSE = 10_000.0
+
+
+def _far_after(subjects, t, gone, notes) -> None:
+    """Levels drawn more than :data:`FAR_AFTER_LAST_DOSE` after the last dose."""
+    for i in np.flatnonzero(gone.any(axis=1)):
+        k = subjects[i].time.size
+        times = ", ".join(f"{x:g} h" for x in t[i, :k][gone[i, :k]])
+        notes[i].insert(0, ("warning", f"level(s) at {times}: more than "
+                            f"{FAR_AFTER_LAST_DOSE:g} h after the last dose, left out of the "
+                            "fit (a time or its unit wrong?)"))
 
 
 def _weights(y, obs, weighting: str | None, notes):

@@ -60,6 +60,8 @@ class ModelComparison:
     base: str
     steps: list[dict] = field(default_factory=list)
     selected: str | None = None
+    #: effects every model holds (the weight model and the declared effects)
+    common: tuple[str, ...] = ()
 
     @property
     def failed(self) -> list[ModelRow]:
@@ -107,10 +109,12 @@ class ModelComparison:
                  ("yes" if r.result.converged else "NO"), "<-" if r is best else ""]
                 for r in self.rows]
         lines = [f"Models compared (base '{self.base}'; each tested against the largest "
-                 "model nested in it):",
-                 format_table(["model", "effects", "-2lnL", "parameters", "AIC", "BIC",
-                               "compared with", "LRT df", "LRT p", "converged", "reported"],
-                              rows)]
+                 "model nested in it):"]
+        if self.common:
+            lines.append("every model also holds: " + "; ".join(self.common))
+        lines += [format_table(["model", "effects", "-2lnL", "parameters", "AIC", "BIC",
+                                "compared with", "LRT df", "LRT p", "converged", "reported"],
+                               rows)]
         lines += [f"  {s['step']}: {s['effect']}: p = {s['p']:.3g} -> "
                   + (("kept" if s["step"] == "forward" else "removed") if s["accepted"] else
                      ("not added" if s["step"] == "forward" else "kept"))
@@ -151,6 +155,25 @@ def _lrt(base: ModelRow, row: ModelRow) -> None:
         row.compared_with = base.name
 
 
+#: A larger model whose -2 ln L is above its nested model's by more than this did not
+#: reach its optimum (it can always fit at least as well).
+NESTED_SLACK = 1e-3
+
+
+def _check_nested(small: ModelRow, big: ModelRow) -> None:
+    """A larger model worse than the model nested in it is not at its optimum: say so
+    where the estimate is reported (never a silent LRT of zero)."""
+    if small.result is None or big.result is None:
+        return
+    gap = big.result.objective - small.result.objective
+    if gap > NESTED_SLACK:
+        big.result.converged = False
+        big.result.warnings.append(
+            f"-2 ln L {big.result.objective:.4f} is above that of the model nested in it, "
+            f"'{small.name}' ({small.result.objective:.4f}): the estimate stopped short of "
+            "its optimum (a larger model fits at least as well); do not use it")
+
+
 def _nearest_nested(rows: list[ModelRow], row: ModelRow) -> ModelRow | None:
     """The model with the most parameters nested in ``row`` (the earliest on ties)."""
     nested = [r for r in rows if _test(r, row) is not None]
@@ -187,7 +210,8 @@ def compare_models(subjects: list[SubjectData], options: PopulationOptions,
         partner = _nearest_nested(rows, row)
         if partner is not None:
             _lrt(partner, row)
-    return ModelComparison(rows, models[0].name)
+            _check_nested(partner, row)
+    return ModelComparison(rows, models[0].name, common=tuple(e.label for e in common))
 
 
 def stepwise(subjects: list[SubjectData], options: PopulationOptions,
@@ -210,6 +234,7 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
                                  (*current.effects, c))
             row = _estimate(subjects, options, pm, progress, current_row.result)
             _lrt(current_row, row)
+            _check_nested(current_row, row)
             rows.append(row)
             trials.append((c, row))
         ok = [(c, r) for c, r in trials if r.lrt_p is not None]
@@ -231,6 +256,7 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
             row = _estimate(subjects, options, pm, progress, current_row.result)
             rows.append(row)
             test = _test(row, current_row)
+            _check_nested(row, current_row)
             if test is not None:
                 row.lrt_df, row.lrt_statistic, row.lrt_p = test
                 row.compared_with = current_row.name
@@ -243,4 +269,5 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
         if p <= options.p_out:
             break
         current, current_row = PopulationModel(row.name, row.effects), row
-    return ModelComparison(rows, "base", steps, current.name)
+    return ModelComparison(rows, "base", steps, current.name,
+                           common=tuple(e.label for e in base_effects))

@@ -273,8 +273,17 @@ def build_design(subjects: list[SubjectData], effects: tuple[Effect, ...]) -> De
     return Design(tuple(resolved), names, terms, len(subjects))
 
 
+#: Most levels of a categorical effect (each adds a parameter to every likelihood
+#: evaluation; a column with more levels is rarely a factor).
+MAX_LEVELS = 20
+
+
 def _categorical(e: Effect, raw: list[str], row: int):
     counts = Counter(raw)
+    if len(counts) > MAX_LEVELS:
+        raise CovariateError(f"column '{e.column}' has {len(counts)} levels; a categorical "
+                             f"effect takes at most {MAX_LEVELS} (an identifier or a number "
+                             "read as text? group levels, or use a numeric column)")
     if len(counts) < 2:
         raise CovariateError(f"column '{e.column}' has the same level for every subject: its "
                              "effect cannot be estimated")

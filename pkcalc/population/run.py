@@ -71,7 +71,10 @@ def population_bootstrap(subjects: list[SubjectData], o: PopulationOptions,
                          engine: Engine | None = None) -> None:
     """Bootstrap over subjects: SEs and percentile intervals of the typical values."""
     estimate = None
-    if result.method == "marginal":
+    if result.method == "two-stage":       # each replicate by the same method
+        estimate = partial(two_stage, options=FitOptions(error_model=o.error_model, blq=o.blq),
+                           covariate=o.covariate, reference_weight=o.reference_weight)
+    elif result.method == "marginal":
         model = PopulationModel(result.model_name, tuple(result.model_effects))
         # a partial of a module-level function: worker processes can run it
         estimate = partial(marginal_estimate, options=o, pmodel=model, start=result,

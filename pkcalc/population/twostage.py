@@ -395,9 +395,8 @@ def _bootstrap_replicate(pick: np.ndarray, fitted: list[SubjectData], estimate,
         if estimate is not None:
             r = estimate(sample)
         else:
-            start = dict(start_state, theta=np.array([theta_by.get(fitted[i].subject,
-                                                                    start_state["theta"][0])
-                                                       for i in pick]))
+            start = None if start_state is None else dict(start_state, theta=np.array(
+                [theta_by.get(fitted[i].subject, start_state["theta"][0]) for i in pick]))
             r = iterative_two_stage(sample, start=start, final_fits=False,
                                     max_iterations=60, **kwargs)
     except (ValueError, ArithmeticError, np.linalg.LinAlgError):

@@ -98,6 +98,7 @@ def marginal_json(result, conv: UnitConverter, per_kg: bool) -> dict[str, Any]:
     comp = result.comparison
     if comp is not None:
         out["comparison"] = {"base": comp.base, "selected": comp.selected,
+                             "common_effects": list(comp.common),
                              "nested_pairs": [{k: (json_number(v) if isinstance(v, float)
                                                    else v) for k, v in t.items()}
                                               for t in comp.tests()],
@@ -124,8 +125,11 @@ def comparison_text(doc: dict[str, Any]) -> str | None:
              "FAILED: " + m["error"] if m["error"] else ("yes" if m["converged"] else "NO")]
             for i, m in enumerate(comp["models"])]
     lines = [f"Models compared (base '{comp['base']}'; each model's likelihood-ratio test is "
-             "against the largest model nested in it):",
-             format_table(["model", "effects (beyond the first model's)", "-2lnL", "parameters",
+             "against the largest model nested in it):"]
+    if comp.get("common_effects"):
+        lines.append("every model also holds: " + "; ".join(comp["common_effects"])
+                     + " (the weight model and the effects given with --effect)")
+    lines += [format_table(["model", "effects (beyond the first model's)", "-2lnL", "parameters",
                            "AIC", "BIC", "compared with", "LRT df",
                            "LRT p", "converged"], rows)]
     for s in comp["stepwise"]:

@@ -27,6 +27,8 @@ def problem_allowed_set(p: SamplingProblem) -> AllowedSet:
     start, _, duration = expand_events(p.doses)
     infusions = [(s, s + d) for s, d in zip(start, duration, strict=True) if d > 0] \
         if p.avoid_infusion else []
+    if p.excluded:      # hours of the day counted in a time zone, by the boundary
+        return allowed_set(p.window, infusions=[*infusions, *p.excluded])
     return allowed_set(p.window, infusions=infusions, daytime=p.daytime,
                        clock_hour=p.clock_hour)
 

@@ -341,15 +341,28 @@ class ScenarioFile:
     raw: dict[str, Any]
 
 
+#: The largest TOML file read: scenario, study and case files are small (a 5,000-dose
+#: history is about 0.3 MB).
+MAX_TOML_BYTES = 16 * 2**20
+
+
 def read_toml(path: str | Path) -> dict[str, Any]:
     """Read a TOML file; unreadable, empty or non-TOML files raise PkcalcInputError."""
     from ..tables import check_input_file
 
     check_path(path)
     p = check_input_file(path, "a TOML file")
+    if p.stat().st_size > MAX_TOML_BYTES:
+        raise PkcalcInputError(f"is {p.stat().st_size / 2**20:.0f} MB; pkcalc reads TOML files "
+                               f"of at most {MAX_TOML_BYTES // 2**20} MB", file=str(path),
+                               expected="long dose histories and tables as CSV files (study "
+                                        "tables, batch inputs)")
     try:
         raw = p.read_bytes()
         data = tomllib.loads(raw.decode("utf-8-sig"))  # a BOM is not an error
+    except RecursionError:
+        raise PkcalcInputError("is nested too deeply to read", file=str(path),
+                               expected="a TOML file") from None
     except UnicodeDecodeError as exc:
         line = raw[:exc.start].count(b"\n") + 1
         what = ("a binary file, not text" if b"\x00" in raw[:4096] else
@@ -446,8 +459,10 @@ def referenced_files(path: str | Path) -> list[Path]:
     it later)."""
     p = Path(path)
     try:
+        if not p.is_file() or p.stat().st_size > MAX_TOML_BYTES:
+            return []
         data = tomllib.loads(p.read_text(encoding="utf-8-sig"))
-    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, ValueError):
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, ValueError, RecursionError):
         return []
     found: list[Path] = []
     for table in (data, data.get("fit") if isinstance(data.get("fit"), dict) else {}):

@@ -9,7 +9,7 @@ from typing import Any
 
 from pydantic import Field, model_validator
 
-from ..core import DesignCase, DoseEvent
+from ..core import MIN_SALT_FACTOR, DesignCase, DoseEvent
 from ..errors import PkcalcInputError
 from ..units import KIND_OF, parse_number_and_unit, parse_unit
 from .base import (
@@ -155,8 +155,9 @@ class ExpectSpec(LenientModel):
             if current is not None:
                 args["current"] = current
         if self.salt_factor is not None:
-            if not 0 < self.salt_factor <= 1:
-                col.add(f"salt_factor must be in (0, 1], got {self.salt_factor}",
+            if not MIN_SALT_FACTOR <= self.salt_factor <= 1:
+                col.add(f"salt_factor must be from 0.05 to 1 (the drug's share of the product), "
+                    f"got {self.salt_factor}",
                         f"{where}.salt_factor")
             args["salt_factor"] = self.salt_factor
         if self.regimen is not None:

@@ -121,8 +121,13 @@ def _history(doses, spec: DesignSpec, method: str, opts: dict[str, Any],
              col: Collector) -> None:
     """The recorded doses, the start and the initial level of an adjustment from levels,
     checked against the level times (all on the history clock)."""
-    from .scenario import DoseSpec
+    from .scenario import MAX_DOSE_EVENTS, DoseSpec
 
+    if doses is not None and len(doses) > MAX_DOSE_EVENTS:
+        col.add(f"{len(doses)} dose records, more than the {MAX_DOSE_EVENTS} pkcalc "
+                "evaluates per scenario", "doses", f"at most {MAX_DOSE_EVENTS} doses in all "
+                "(the earlier ones as an initial_concentration)")
+        return
     events = []
     for i, raw in enumerate(doses or []):
         try:
@@ -132,6 +137,11 @@ def _history(doses, spec: DesignSpec, method: str, opts: dict[str, Any],
             continue
         if ev is not None:
             events.append(ev)
+    if sum(e.count for e in events) > MAX_DOSE_EVENTS:
+        col.add(f"the doses expand to {sum(e.count for e in events)} single doses, more than "
+                f"the {MAX_DOSE_EVENTS} pkcalc evaluates per scenario", "doses",
+                f"at most {MAX_DOSE_EVENTS} doses in all")
+        return
     d = spec
     start = col.q(d.start, "time", "design.start", nonnegative=True)
     initial = col.q(d.initial_concentration, "concentration", "design.initial_concentration",

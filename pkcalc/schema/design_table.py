@@ -8,6 +8,7 @@ from typing import Any
 
 from pydantic import Field
 
+from ..core import MIN_SALT_FACTOR
 from ..errors import PkcalcInputError
 from .base import Collector, LenientModel, QuantityText
 
@@ -227,8 +228,9 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
     q = col.q
     opts: dict[str, Any] = {}
     if spec.salt_factor is not None:
-        if not 0 < spec.salt_factor <= 1:
-            col.add(f"salt_factor must be in (0, 1], got {spec.salt_factor}",
+        if not MIN_SALT_FACTOR <= spec.salt_factor <= 1:
+            col.add(f"salt_factor must be from 0.05 to 1 (the drug's share of the product), "
+                    f"got {spec.salt_factor}",
                     "design.salt_factor")
         opts["salt_factor"] = spec.salt_factor
     steps = {"rate_step": ("rate", spec.rate_step), "dose_step": ("amount", spec.dose_step)}

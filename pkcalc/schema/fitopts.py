@@ -43,20 +43,49 @@ __all__ = [
 
 
 
+#: The largest CV or proportional SD accepted, as a fraction (1000 %; batch B3 too).
+MAX_FRACTION = 10.0
+#: Most candidate effects of a stepwise selection, and most models of a comparison.
+MAX_CANDIDATE_EFFECTS = 12
+MAX_MODELS = 12
+#: The largest fixed exponent of a power effect accepted (in absolute value).
+MAX_EXPONENT = 10.0
+#: The largest SD of a log-parameter accepted.
+MAX_SD_LOG = 5.0
+
+
 def _percent_or_number(text: Any, field: str, problems: list[Problem], file: str | None,
                        *, allow_percent: bool = True) -> float | None:
+    """A CV or proportional SD ('30%' or the fraction 0.3), or with ``allow_percent``
+    False an SD of a log-parameter; a plain number above 1 for a fraction is refused
+    (30 would be 3000 %), and so are values beyond :data:`MAX_FRACTION` /
+    :data:`MAX_SD_LOG`."""
     try:
         value, unit = parse_number_and_unit(text, field=field)
     except PkcalcInputError as exc:
         problems.extend(Problem(p.message, file=file, field=field) for p in exc.problems)
         return None
-    if unit == "%" and allow_percent:
-        return value / 100.0
-    if unit:
+    if unit and not (unit == "%" and allow_percent):
         problems.append(Problem(f"'{text}' should be a percentage or a plain number",
                                 file=file, field=field))
         return None
-    return value
+    if not allow_percent:
+        if not value <= MAX_SD_LOG:
+            problems.append(Problem(f"{value:g} is beyond the largest SD of a logarithm "
+                                    f"accepted ({MAX_SD_LOG:g})", file=file, field=field))
+            return None
+        return value
+    if unit != "%" and value > 1:
+        problems.append(Problem(f"the plain number {text!r} is a fraction: it would mean "
+                                f"{value * 100:g} %", file=file, field=field,
+                                expected=f"'{value:g}%' (a percentage), or {value / 100:g}"))
+        return None
+    fraction = value / 100.0 if unit == "%" else value
+    if not fraction <= MAX_FRACTION:
+        problems.append(Problem(f"'{text}' is beyond {MAX_FRACTION * 100:g} %", file=file,
+                                field=field, expected="a percentage from 0 % to 1000 %"))
+        return None
+    return fraction
 
 
 def parse_prior(raw: dict[str, Any], *, file: str | None = None) -> Prior:
@@ -285,6 +314,8 @@ def parse_effects(text: Any, field: str, file: str | None = None) -> tuple[Effec
                 fixed = float(rest[i + 1])
             except ValueError:
                 fail(f"'fixed' takes a number, not '{rest[i + 1]}'")
+            if not abs(fixed) <= MAX_EXPONENT:
+                fail(f"a fixed exponent of {rest[i + 1]} is beyond +-{MAX_EXPONENT:g}")
             i += 1
         elif w == "around" and i + 1 < len(rest):
             value = " ".join(rest[i + 1:])
@@ -337,6 +368,10 @@ def _models(value: Any, file: str | None, problems: list[Problem]
     PopulationModel objects)."""
     if isinstance(value, list | tuple) and all(isinstance(m, PopulationModel) for m in value):
         value = {m.name: list(m.effects) for m in value}
+    if isinstance(value, dict) and len(value) > MAX_MODELS:
+        problems.append(Problem(f"{len(value)} models; at most {MAX_MODELS}", file=file,
+                                field="population.models"))
+        return ()
     if not isinstance(value, dict) or len(value) < 2:
         problems.append(Problem("give at least two models to compare, each a list of effects",
                                 file=file, field="population.models",
@@ -406,6 +441,11 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
         else:
             candidates = _effect_list(step["candidates"], "population.stepwise.candidates",
                                       file, problems)
+            if len(candidates) > MAX_CANDIDATE_EFFECTS:
+                problems.append(Problem(f"{len(candidates)} candidate effects; at most "
+                                        f"{MAX_CANDIDATE_EFFECTS} (each step estimates every "
+                                        "remaining one)", file=file,
+                                        field="population.stepwise.candidates"))
             p_in, p_out = step.get("p_in", 0.05), step.get("p_out", 0.01)
             for key, x in (("p_in", p_in), ("p_out", p_out)):
                 if not isinstance(x, int | float) or isinstance(x, bool) or not 0 < x < 1:

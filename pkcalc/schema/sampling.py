@@ -48,9 +48,13 @@ __all__ = ["KEYS", "load_sampling_file", "sampling_problem"]
 
 KEYS = ("levels", "window", "error", "cv_clearance", "cv_volume", "sd_log_clearance",
         "sd_log_volume", "correlation", "design", "subjects", "groups", "avoid_infusion",
-        "daytime", "min_spacing", "candidates", "compare", "criterion")
+        "daytime", "timezone", "min_spacing", "candidates", "compare", "criterion")
 #: A design's levels are searched over at most this many candidate times.
 MAX_CANDIDATES = 2000
+#: Most groups of a population design, and most sampling times to choose in all (the
+#: design searches over every time of every group: bounded work).
+MAX_GROUPS = 20
+MAX_TOTAL_LEVELS = 96
 #: Beyond the last dose, the horizon in half-lives (the level is then < 0.1 % of
 #: what it was: 2^-10).
 HORIZON_HALF_LIVES = 10.0
@@ -101,6 +105,70 @@ def _times(col, raw, field, origin) -> tuple[float, ...] | None:
     return None if any(t is None for t in out) else tuple(sorted(out))
 
 
+def _hours_in_zone(col, raw: dict, origin: datetime | None, win, daytime
+                   ) -> tuple[tuple[float, float], ...]:
+    """The periods outside ``daytime`` on the scenario's clock, counted in the time zone
+    ``timezone`` (IANA name) with its daylight-saving changes.  Without a zone the hours
+    of the day follow the first dose's UTC offset throughout -- refused when the
+    window's date-times carry another offset (a change of summer time in between)."""
+    from datetime import time as clock_time
+    from datetime import timedelta
+
+    zone_name = raw.get("timezone")
+    if zone_name is None:
+        if daytime is not None and origin is not None and origin.tzinfo is not None \
+                and win is not None:
+            ends = [origin + timedelta(hours=t) for t in win]
+            offsets = {origin.utcoffset()} | {e.utcoffset() for e in ends}
+            texts = [w for w in raw.get("window", []) if isinstance(w, str)]
+            stated = set()
+            for text in texts:
+                try:
+                    stated.add(datetime.fromisoformat(text).utcoffset())
+                except ValueError:
+                    pass
+            if len(offsets | stated) > 1:
+                col.add("the date-times carry different UTC offsets (a change of summer "
+                        "time?): the hours of the day need the time zone", "sampling.daytime",
+                        "timezone = 'Europe/Paris' (an IANA time-zone name)")
+        return ()
+    if daytime is None:
+        col.add("a time zone is used only with daytime", "sampling.timezone",
+                "daytime = ['06:00', '22:00']")
+        return ()
+    try:
+        from zoneinfo import ZoneInfo
+
+        zone = ZoneInfo(str(zone_name))
+    except (KeyError, ValueError, OSError, ImportError):
+        col.add(f"'{zone_name}' is not a time-zone name", "sampling.timezone",
+                "an IANA name such as 'Europe/Paris' or 'America/New_York'")
+        return ()
+    if origin is None or origin.tzinfo is None:
+        col.add("a time zone needs date-times with their UTC offset", "sampling.timezone",
+                "doses with start = '2026-03-28T08:00+01:00'")
+        return ()
+    if win is None:
+        return ()
+    a, b = daytime
+
+    def wall(day, hour: float) -> datetime:
+        day = day + timedelta(days=int(hour // 24))
+        h = hour % 24
+        return datetime.combine(day, clock_time(int(h), round(h % 1 * 60) % 60),
+                                tzinfo=zone)
+
+    first = (origin + timedelta(hours=win[0])).astimezone(zone).date() - timedelta(days=1)
+    last = (origin + timedelta(hours=win[1])).astimezone(zone).date() + timedelta(days=1)
+    out = []
+    day = first
+    while day <= last:
+        lo, hi = (wall(day, b), wall(day, a + 24)) if a < b else (wall(day, b), wall(day, a))
+        out.append(((lo - origin).total_seconds() / 3600, (hi - origin).total_seconds() / 3600))
+        day += timedelta(days=1)
+    return tuple(out)
+
+
 def _hour_of_day(col, text, field) -> float | None:
     if not isinstance(text, str) or text.count(":") != 1:
         col.add(f"'{text}' is not an hour of the day", field, "HH:MM, e.g. '06:00'")
@@ -130,8 +198,8 @@ def _variability(raw: dict, col: Collector) -> np.ndarray | None:
                 else:
                     sds[name] = math.sqrt(math.log1p(value**2))
         elif sd is not None:
-            if not isinstance(sd, int | float) or isinstance(sd, bool) or not sd >= 0:
-                col.add("must be a number >= 0", f"sampling.sd_log_{name}")
+            if not isinstance(sd, int | float) or isinstance(sd, bool) or not 0 <= sd <= 5:
+                col.add("must be a number from 0 to 5", f"sampling.sd_log_{name}")
             else:
                 sds[name] = float(sd)
     corr = raw.get("correlation", 0.0)
@@ -179,6 +247,10 @@ def _groups(raw: dict, col: Collector, design: str, levels, origin) -> list[Samp
         col.add("must be a list of tables", "sampling.groups",
                 "[{ name = 'A', subjects = 50, levels = 2 }, ...]")
         return []
+    if len(groups) > MAX_GROUPS:
+        col.add(f"{len(groups)} groups; at most {MAX_GROUPS}", "sampling.groups",
+                "fewer groups (subjects of one schedule form one group)")
+        return []
     out = []
     for i, g in enumerate(groups):
         where = f"sampling.groups[{i}]"
@@ -198,6 +270,11 @@ def _groups(raw: dict, col: Collector, design: str, levels, origin) -> list[Samp
             col.add(f"gives {len(times)} times for {lv} levels", f"{where}.times")
             continue
         out.append(SamplingGroup(str(g.get("name", f"group {i + 1}")), n, lv, times))
+    total = sum(g.levels for g in out)
+    if total > MAX_TOTAL_LEVELS:
+        col.add(f"{total} sampling times to choose in all; at most {MAX_TOTAL_LEVELS}",
+                "sampling.groups", "fewer groups or fewer levels per group")
+        return []
     return out
 
 
@@ -308,6 +385,7 @@ def sampling_problem(s: ScenarioInput, *, starts: int = 12) -> SamplingProblem:
     if criterion not in SAMPLING_CRITERIA:
         col.add(f"'{criterion}' is not a criterion", "sampling.criterion", "D or A")
         criterion = "D"
+    excluded = _hours_in_zone(col, raw, origin, win, daytime)
     col.raise_if_any()
     _check_times(s, win, groups, cands, compare, design)
     clock_hour = None
@@ -317,7 +395,8 @@ def sampling_problem(s: ScenarioInput, *, starts: int = 12) -> SamplingProblem:
         name=s.name, design=design, clearance=s.clearance, volume=s.volume, doses=s.doses,
         additive=add, proportional=prop, groups=tuple(groups), window=win, omega=omega,
         initial_concentration=s.initial_concentration, avoid_infusion=avoid,
-        daytime=daytime, clock_hour=clock_hour, clock_origin=s.extra.get("clock_origin"),
+        daytime=daytime, clock_hour=clock_hour, excluded=excluded,
+        clock_origin=s.extra.get("clock_origin"),
         min_spacing=spacing, candidates=cands, compare=tuple(compare), criterion=criterion,
         starts=starts)
 

@@ -532,6 +532,7 @@ def _cross_checks(level_frame, dose_frame, covariates, fails: Failures, warnings
     for sid, rows in level_frame[dup].groupby("subject")["row"]:
         fails(sid, f"duplicate sample times ({', '.join(lv.where(int(i)) for i in rows)})",
               lv.file, lv.field("time"))
+    _dose_record_checks(dose_frame, warnings, ds)
     level_ids = set(level_frame["subject"].unique())
     dose_ids = set(dose_frame["subject"].unique())
     for sid in sorted(level_ids - dose_ids):
@@ -548,6 +549,31 @@ def _cross_checks(level_frame, dose_frame, covariates, fails: Failures, warnings
         if no_cov:
             warnings.append(f"subjects without a row in the subjects table: "
                             f"{_listed(no_cov)}")
+
+
+def _dose_record_checks(dose_frame: pd.DataFrame, warnings: list[str], ds: Columns) -> None:
+    """Identical dose records, and infusions of a subject that overlap: legal (the doses
+    add up) but often a copied row -- warned, naming the rows."""
+    frame = dose_frame.assign(row=np.arange(len(dose_frame)))
+    frame = frame[frame["amount"].notna() & frame["start"].notna()]
+    same = frame.duplicated(["subject", "start", "amount", "duration"], keep=False)
+    for sid, rows in frame[same].groupby("subject")["row"]:
+        warnings.append(f"subject '{sid}': identical dose records "
+                        f"({', '.join(ds.where(int(i)) for i in rows)}): both are given (the "
+                        "doses add up); remove one if it is a copy")
+    inf = frame[frame["duration"] > 0].drop_duplicates(
+        ["subject", "start", "amount", "duration"]).sort_values(["subject", "start"],
+                                                                kind="stable")
+    sub = inf["subject"].to_numpy(object)
+    start = inf["start"].to_numpy(float)
+    end = start + inf["duration"].to_numpy(float)
+    same_subject = sub[1:] == sub[:-1]
+    overlap = np.flatnonzero(same_subject & (start[1:] < end[:-1] - 1e-9)) + 1
+    for i in overlap[:10]:
+        warnings.append(f"subject '{sub[i]}': the infusion of "
+                        f"{ds.where(int(inf['row'].iloc[i]))} starts before the one of "
+                        f"{ds.where(int(inf['row'].iloc[i - 1]))} ends: overlapping infusions "
+                        "add up")
 
 
 def _listed(names: list[str], most: int = 10) -> str:

@@ -258,6 +258,36 @@ def _normalise(frame: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(out, index=pd.RangeIndex(len(frame)))
 
 
+_OBS_HEADER = b"HEADER RECORD*******OBS     HEADER RECORD!!!!!!!"
+
+
+def _check_whole_rows(path: Path, size: int, meta) -> None:
+    """A transport file cut at an 80-byte boundary inside its data: after the one
+    observation header the data are whole rows padded with blanks to 80 bytes, so
+    anything else left after the last whole row is a cut row (a cut exactly at a
+    row and record boundary cannot be seen: the format holds no row count)."""
+    widths = getattr(meta, "variable_storage_width", None) or {}
+    width = sum(widths.values())
+    if not width:
+        return
+    with path.open("rb") as f:
+        head = f.read(min(size, 1 << 20))
+        at = head.find(_OBS_HEADER)
+        if at < 0 or head.find(_OBS_HEADER, at + 1) >= 0:
+            return                              # not found early, or several members
+        start = at + 80
+        rest = (size - start) % width
+        if rest == 0:
+            return
+        f.seek(size - rest)
+        tail = f.read(rest)
+    if rest >= 80 or tail.strip(b" "):
+        rows = (size - start) // width
+        raise PkcalcInputError(f"is truncated: its last row is cut ({rows} whole rows, then "
+                               f"{rest} bytes of a {width}-byte row)", file=str(path),
+                               expected="the whole file as delivered")
+
+
 def _read_xpt(path: Path, wanted: set[str]) -> tuple[pd.DataFrame, list[str]]:
     import pyreadstat
 
@@ -271,6 +301,7 @@ def _read_xpt(path: Path, wanted: set[str]) -> tuple[pd.DataFrame, list[str]]:
     except Exception as exc:  # the reader raises several kinds for a damaged file
         raise PkcalcInputError(f"is not a readable SAS transport file "
                                f"({exc.__class__.__name__})", file=str(path)) from None
+    _check_whole_rows(path, size, meta)
     use = [c for c in meta.column_names if c.strip().upper() in wanted]
     notes: list[str] = []
     options = {"usecols": use, "output_format": "dict", "disable_datetime_conversion": True}
