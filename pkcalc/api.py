@@ -661,7 +661,7 @@ def population_study(study=None, options: PopulationOptions | None = None, *,
     try:
         result = population_estimate(study.subjects, o, progress)
     except ValueError as exc:
-        where = (study.files[2] if len(study.files) > 2 else "the subjects table") \
+        where = (study.subjects_file or "the subjects table") \
             if isinstance(exc, CovariateError) else (study.files[0] if study.files else None)
         raise PkcalcInputError([p for _, err in study.failures for p in err.problems]
                                + PkcalcInputError(str(exc), file=where).problems) from None

@@ -308,6 +308,8 @@ class Study:
     options : dict
         Raw option tables of a study TOML (``fit``, ``nca``, ``population``).
     title : str or None
+    subjects_file : str or None
+        The file the covariates came from (named by covariate problems).
     """
 
     subjects: list[SubjectData]
@@ -316,6 +318,7 @@ class Study:
     files: list[str] = field(default_factory=list)
     options: dict[str, Any] = field(default_factory=dict)
     title: str | None = None
+    subjects_file: str | None = None
     output: dict[str, str] = field(default_factory=dict)
     import_report: dict[str, Any] = field(default_factory=dict)
     import_lines: list[str] = field(default_factory=list)

@@ -135,6 +135,13 @@ def write_outputs(run: Run, out_dir: str | Path) -> list[Path]:
     for old in earlier:
         if resolved(old) not in now and resolved(old) not in inputs and old.is_file():
             old.unlink(missing_ok=True)
+            folder = old.parent
+            while folder != out and out in folder.parents:  # a scenario's folder, if empty
+                try:
+                    folder.rmdir()
+                except OSError:
+                    break
+                folder = folder.parent
     return written
 
 

@@ -680,10 +680,100 @@ def sampling_cases() -> list[Case]:
                     {"s.toml": scenario_lines()}, 2, "no scenario has a [scenarios.sampling]"))
     return out
 
+def round3_cases() -> list[Case]:
+    """The newer surfaces tried as a hostile user would (clock times, engines, effects,
+    design histories, sampling zones, outputs)."""
+    study = study_files()
+    one = LEVELS.replace("A,2,7.2\nA,4,5.6\nA,8,3.4\nA,12,2.1\n", "")
+    zero = LEVELS.replace("A,1,8.1\nA,2,7.2\nA,4,5.6\nA,8,3.4\nA,12,2.1\n",
+                          "A,1,0\nA,2,0\nA,4,0\nA,8,0\nA,12,0\n")
+    sub = "subject,weight [kg],site\nA,70,x\nB,80,y\nC,65,x\nD,90,y\n"
+    many = "subject,ward\n" + "".join(f"S{i},w{i // 2}\n" for i in range(44))
+    many_levels = "subject,time [h],concentration [mg/L]\n" + "".join(
+        f"S{i},{t},{8 * 0.9 ** t:.3f}\n" for i in range(44) for t in (1, 4, 8))
+    many_doses = "subject,start [h],amount [mg]\n" + "".join(f"S{i},0,500\n" for i in range(44))
+    toml_fails = scenario(clearance='"3 mg"')
+    history = "doses = [\n" + "".join(
+        f'  {{ start = "{i * 12} h", amount = "100 mg", duration = "1 h" }},\n'
+        for i in range(5001)) + "]\n"
+    sampling = scenario_lines(SAMPLING_TABLE + "groups = [" + ", ".join(
+        "{ subjects = 2 }" for _ in range(21)) + "]\ndesign = 'population'\n"
+        "cv_clearance = '30%'\ncv_volume = '20%'\n")
+    dst = ('\n[scenarios.sampling]\nlevels = 2\nwindow = ["2026-03-28T22:00+01:00", '
+           '"2026-03-29T20:00+02:00"]\nerror = { proportional = "10%" }\n'
+           'daytime = ["06:00", "22:00"]\n')
+    dst_doses = ('doses = [ { start = "2026-03-28T20:00+01:00", amount = "300 mg", '
+                 'duration = "1 h" } ]')
+    rows = [
+        ("batch-toml-every-scenario-fails", "Q2", ("batch", "s.toml", "--out", "o.csv"),
+         {"s.toml": toml_fails}, 2, "dimension"),
+        ("batch-out-txt", "B1", ("batch", "b.csv", "--out", "o.txt"), {"b.csv": BATCH}, 2,
+         ".csv or .parquet"),
+        ("batch-empty-line", "B4", ("batch", "b.csv", "--out", "o.csv"),
+         {"b.csv": BATCH.replace("\n4,6,40", "\n\n4,6,40")}, 1, "empty"),
+        ("batch-report-caution", "W8", ("batch", "b.csv", "--out", "o.csv", "--report",
+                                        "CAUTION.txt"), {"b.csv": BATCH}, 2, "CAUTION.txt"),
+        ("batch-timeout-inf", "B5", ("batch", "b.csv", "--out", "o.csv", "--engine", "dask",
+                                     "--timeout", "inf"), {"b.csv": BATCH}, 2, "--timeout"),
+        ("batch-timeout-huge", "B5", ("batch", "b.csv", "--out", "o.csv", "--engine", "dask",
+                                      "--timeout", "1e308"), {"b.csv": BATCH}, 2, "3600"),
+        ("batch-scheduler-empty", "B5", ("batch", "b.csv", "--out", "o.csv", "--engine",
+                                         "dask", "--scheduler", ""), {"b.csv": BATCH}, 2,
+         "--scheduler"),
+        ("batch-workers-256", "W10", ("batch", "b.csv", "--out", "o.csv", "--engine", "dask",
+                                      "--workers", "256"), {"b.csv": BATCH}, 2, "--workers"),
+        ("nca-one-sample", "N3", ("nca", "study.toml"), study_files(levels=one), 1, "'A'"),
+        ("nca-all-zero", "N3", ("nca", "study.toml"), study_files(levels=zero), 1, "'A'"),
+        ("nca-terminal-unknown-subject", "N4", ("nca", "study.toml", "--terminal",
+                                                "Z=4 h,8 h,12 h"), study, 2, "'Z'"),
+        ("nca-terminal-unsampled", "N4", ("nca", "study.toml", "--terminal",
+                                          "A=4 h,9 h,12 h"), study, 2, "no level at 9"),
+        ("fit-report-is-levels", "W3", ("fit", "study.toml", "--report", "levels.csv"),
+         study, 2, "input"),
+        ("fit-out-holds-input", "W3", ("fit", "study.toml", "--out", "."),
+         {**study, "fit.csv": LEVELS,
+          "study.toml": 'levels = "fit.csv"\ndoses = "doses.csv"\n'}, 2, "fit.csv"),
+        ("population-two-stage-bootstrap", "M2", ("population", "study.toml", "--method",
+                                                  "two-stage", "--bootstrap", "3",
+                                                  "--vpc-replicates", "0"), study, 0, ""),
+        ("population-effect-fixed-huge", "M1", ("population", "study.toml", "--effect",
+                                                "weight on clearance fixed 1e300"),
+         {**study, "subjects.csv": sub}, 2, "10"),
+        ("population-effect-word", "M1", ("population", "study.toml", "--effect",
+                                          "weight on clearance --effect"),
+         {**study, "subjects.csv": sub}, 2, "--effect"),
+        ("population-model-duplicate", "M2", ("population", "study.toml", "--model",
+                                              "a: weight on clearance", "--model",
+                                              "a: weight on volume"),
+         {**study, "subjects.csv": sub}, 2, "'a'"),
+        ("population-categorical-21", "M4", ("population", "study.toml", "--effect",
+                                             "ward on clearance"),
+         {"levels.csv": many_levels, "doses.csv": many_doses, "subjects.csv": many,
+          "study.toml": STUDY_TOML}, 2, "at most 20"),
+        ("fit-prior-cv-30", "Q7", ("fit", "study.toml", "--prior", "p.toml"),
+         {**study, "p.toml": '[prior]\nclearance = "3 L/h"\nvolume = "40 L"\ncv_clearance = 30\n'
+                             'cv_volume = "20%"\n'}, 2, "3000"),
+        ("fit-prior-cv-1e300", "Q7", ("fit", "study.toml", "--prior", "p.toml"),
+         {**study, "p.toml": '[prior]\nclearance = "3 L/h"\nvolume = "40 L"\ncv_clearance = '
+                             '"1e300%"\ncv_volume = "20%"\n'}, 2, "1000"),
+        ("design-salt-tiny", "G6", ("design", "d.toml"),
+         {"d.toml": DESIGN + "salt_factor = 1e-300\n"}, 2, "salt_factor"),
+        ("design-history-5001", "D4", ("design", "d.toml"),
+         {"d.toml": map_file().replace(map_file().split("doses = ")[1].split("[scenarios")[0],
+                                       history.split("doses = ")[1])}, 2, "5000"),
+        ("sampling-21-groups", "P7", ("sampling", "s.toml"), {"s.toml": sampling}, 2, "20"),
+        ("sampling-dst-without-zone", "P3", ("sampling", "s.toml"),
+         {"s.toml": scenario_lines(dst, doses=dst_doses)}, 2, "timezone"),
+        ("sampling-unknown-zone", "P7", ("sampling", "s.toml"),
+         {"s.toml": scenario_lines(dst + "timezone = 'Mars/Olympus'\n", doses=dst_doses)},
+         2, "Mars/Olympus"),
+    ]
+    return [Case(i, r, a, f, c, p) for i, r, a, f, c, p in rows]
+
 
 CORPUS = (quantity_cases() + dose_and_time_cases() + parameter_cases() + file_cases()
           + study_cases() + batch_cases() + output_cases() + design_cases() + verify_cases()
-          + option_cases() + clock_and_sdtm_cases() + sampling_cases())
+          + option_cases() + clock_and_sdtm_cases() + sampling_cases() + round3_cases())
 
 
 def test_the_corpus_is_large_and_cites_its_rules():

@@ -124,3 +124,72 @@ def test_stale_temporary_files_of_live_processes_are_kept(tmp_path):
     removed = clean_stale(target)
     assert removed == [dead] and mine.exists() and not dead.exists()
     assert os.getpid() > 0
+
+
+# --------------------------------------------------------------------------- local workers (W10)
+def _children(pid: int) -> set[int]:
+    """The process ids started by ``pid`` (Linux /proc; every thread's children)."""
+    found: set[int] = set()
+    for task in Path(f"/proc/{pid}/task").glob("*"):
+        try:
+            found |= {int(x) for x in (task / "children").read_text().split()}
+        except OSError:
+            continue
+    return found
+
+
+def _alive(pids: set[int]) -> set[int]:
+    alive = set()
+    for p in pids:
+        try:
+            state = Path(f"/proc/{p}/stat").read_text().split(")")[-1].split()[0]
+        except OSError:
+            continue
+        if state != "Z":
+            alive.add(p)
+    return alive
+
+
+def _population_with_workers(tmp_path):
+    from .conftest import SCENARIOS
+
+    proc = _start(["population", SCENARIOS / "demo-study.toml", "--method", "iterative",
+                   "--bootstrap", "400", "--workers", "2", "--no-adequacy",
+                   "--vpc-replicates", "0", "--out", tmp_path / "o"], tmp_path)
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < 120:
+        kids = _alive(_children(proc.pid))
+        if len(kids) >= 2:
+            time.sleep(1.0)  # the workers are busy with replicates
+            return proc, _alive(_children(proc.pid))
+        if proc.poll() is not None:
+            pytest.fail(f"the run ended first: {proc.stderr.read().decode()}")
+        time.sleep(0.1)
+    proc.kill()
+    pytest.fail("no worker processes appeared")
+
+
+def test_sigterm_stops_a_run_with_local_workers_within_seconds(tmp_path):
+    proc, workers = _population_with_workers(tmp_path)
+    t0 = time.monotonic()
+    proc.send_signal(signal.SIGTERM)
+    err = proc.communicate(timeout=60)[1].decode()
+    took = time.monotonic() - t0
+    assert took < 10, f"took {took:.1f} s to stop"
+    assert proc.returncode == 130 and "Traceback" not in err, err
+    deadline = time.monotonic() + 10
+    while _alive(workers) and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert not _alive(workers), "worker processes outlived the run"
+    assert not (tmp_path / "o" / "population.json").exists()
+
+
+def test_workers_end_with_a_run_killed_by_sigkill(tmp_path):
+    proc, workers = _population_with_workers(tmp_path)
+    assert workers
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(timeout=30)
+    deadline = time.monotonic() + 10
+    while _alive(workers) and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert not _alive(workers), "worker processes outlived the killed run"

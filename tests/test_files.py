@@ -91,3 +91,60 @@ def test_out_folder_of_a_command_ends_without_the_marker(tmp_path, run_cli):
     assert r.code == 0
     names = {p.name for p in Path(tmp_path / "o").iterdir()}
     assert "CAUTION.txt" in names and INCOMPLETE_NAME not in names
+
+
+def test_system_refusals_end_with_one_message_and_exit_2(tmp_path, run_cli, monkeypatch):
+    # W9: a link loop, a name longer than the system allows, a full disk
+    from .conftest import SCENARIOS
+
+    scenario = SCENARIOS / "demo.toml"
+    loop = tmp_path / "loop"
+    os.symlink(loop, loop)
+    r = run_cli("predict", loop)
+    assert r.code == 2 and "Traceback" not in r.err and "loop" in r.err
+    r = run_cli("predict", scenario, "--report", tmp_path / ("x" * 300 + ".html"))
+    assert r.code == 2 and "Traceback" not in r.err and "too long" in r.err.lower()
+    real = os.replace
+
+    def full(src, dst):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(os, "replace", full)
+    r = run_cli("predict", scenario, "--report", tmp_path / "r.html")
+    monkeypatch.setattr(os, "replace", real)
+    assert r.code == 2 and "Traceback" not in r.err and "space" in r.err.lower()
+    assert not list(tmp_path.glob(".r.html.*")) and not (tmp_path / "r.html").exists()
+
+
+def test_a_folder_reused_holds_one_runs_files(tmp_path, run_cli):
+    # W7: the second run into a folder removes what the first wrote and it does not
+    # write again (here the first run's scenario folders), never other files
+    from .conftest import SCENARIOS
+
+    out = tmp_path / "o"
+    out.mkdir()
+    (out / "mine.txt").write_text("keep me")
+    assert run_cli("predict", SCENARIOS / "demo.toml", "--out", out).code == 0
+    first = {p.name for p in out.iterdir()}
+    listed = (out / "CAUTION.txt").read_text()
+    assert "summary.csv" in listed and "mine.txt" not in listed
+    assert run_cli("predict", SCENARIOS / "infusion-example.toml", "--out", out).code == 0
+    second = {p.name for p in out.iterdir()}
+    assert len(first - second) >= 3          # the demo's scenario folders are gone
+    assert "mine.txt" in second and (out / "mine.txt").read_text() == "keep me"
+    assert second == {"CAUTION.txt", "predict.json", "summary.csv", "mine.txt",
+                      *(p.name for p in out.iterdir() if p.is_dir())}
+    assert len([p for p in out.iterdir() if p.is_dir()]) == 1
+
+
+def test_the_files_an_earlier_run_listed_never_reach_outside_the_folder(tmp_path):
+    from pkcalc.report import CAUTION, previous_files
+    from pkcalc.report.base import FILES_HEADING
+
+    out, elsewhere = tmp_path / "o", tmp_path / "elsewhere"
+    out.mkdir()
+    elsewhere.mkdir()
+    (out / "link").symlink_to(elsewhere)
+    (out / "CAUTION.txt").write_text(f"{CAUTION}\n\n{FILES_HEADING}\n  a.csv\n  sub/b.png\n"
+                                      f"  ../x.csv\n  /etc/passwd\n  link/c.csv\n")
+    assert previous_files(out) == [out / "a.csv", out / "sub" / "b.png"]

@@ -129,3 +129,29 @@ def test_inconsistent_dose_triple(tables):
     study = load_study(lv, ds, sb)
     assert [s.subject for s in study.subjects] == ["B"]
     assert "differs from rate x duration" in str(study.failures[0][1])
+
+
+def test_identical_and_overlapping_dose_records_are_warned_with_their_rows(tables):
+    # both are legal (the doses add up) but usually a copied row: warned, never silent
+    lv, ds, sb = tables(doses=DOSES + "A,0,5,30\nB,0.5,5,60\nB,1,5,60\n")
+    study = load_study(lv, ds, sb)
+    text = " ".join(study.warnings)
+    assert "subject 'A': identical dose records" in text
+    assert "subject 'B'" in text and "overlapping infusions add up" in text
+    a = next(s for s in study.subjects if s.subject == "A")
+    assert a.dose_amount.sum() == pytest.approx(2 * 5 * 70)  # both given: 2 x 5 mg/kg x 70 kg
+
+
+def test_a_level_years_after_the_last_dose_is_left_out_of_a_fit_with_a_warning(tables):
+    from pkcalc.core import FitOptions
+    from pkcalc.fit import fit_subjects
+
+    # 2 years after the dose (a year typed for a day?): not "pre-dose", not fitted
+    far = 2 * 365 * 24 * 60
+    lv, ds, sb = tables(levels=LEVELS + f"A,{far},4000,100,false\n")
+    study = load_study(lv, ds, sb)
+    a = next(s for s in study.subjects if s.subject == "A")
+    assert a.time.max() == pytest.approx(far / 60)
+    fitted = fit_subjects([a], FitOptions())[0][0]
+    assert any("after the last dose, left out" in str(n) for n in fitted.warnings)
+    assert fitted.n_obs == 3 and fitted.n_blq == 1  # the 3 before it (one BLQ), not 4

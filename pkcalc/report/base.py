@@ -150,7 +150,8 @@ FILES_HEADING = "Files written by this run:"
 def write_caution_file(out_dir: str | Path, files: Iterable[str | Path] = ()) -> Path:
     """``CAUTION.txt`` beside files written with ``--out``, listing the run's files (the
     next run into the folder removes those of them it does not write again)."""
-    names = sorted({Path(f).name for f in files} - {"CAUTION.txt"})
+    out = Path(out_dir)
+    names = sorted({_inside(out, Path(f)) for f in files} - {"CAUTION.txt", None})
     text = CAUTION + "\n\npkcalc " + __version__ + "\n"
     if names:
         text += "\n" + FILES_HEADING + "\n" + "".join(f"  {n}\n" for n in names)
@@ -167,5 +168,20 @@ def previous_files(out_dir: str | Path) -> list[Path]:
     if not text.startswith(CAUTION) or FILES_HEADING not in text:
         return []
     names = [line.strip() for line in text.split(FILES_HEADING, 1)[1].splitlines()]
-    return [Path(out_dir) / n for n in names if n and "/" not in n and "\\" not in n]
+    out = Path(out_dir)
+    found = []
+    for n in names:
+        rel = Path(n)
+        if n and "\\" not in n and not rel.is_absolute() and ".." not in rel.parts \
+                and _inside(out, out / rel) is not None:  # never through a link outside
+            found.append(out / rel)
+    return found
+
+
+def _inside(out: Path, path: Path) -> str | None:
+    """``path`` relative to the folder ``out`` (POSIX separators), None when outside."""
+    try:
+        return path.resolve().relative_to(out.resolve()).as_posix()
+    except (ValueError, OSError):
+        return None
 

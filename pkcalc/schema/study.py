@@ -292,7 +292,8 @@ def study_from_tables(lv: Columns, ds: Columns, sb: Columns | None,
     _cross_checks(level_frame, dose_frame, covariates, fails, warnings, lv, ds)
     good = _subjects(level_frame, dose_frame, covariates, fails, lv, origins or {}, pre_dose,
                      warnings)
-    return Study(good, fails.as_list(), warnings, files)
+    return Study(good, fails.as_list(), warnings, files,
+                 subjects_file=sb.file if sb is not None else None)
 
 
 def _clock_to_hours(lvl, dos, fails: Failures, lv: Columns, ds: Columns) -> dict[str, str]:
