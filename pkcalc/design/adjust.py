@@ -3,6 +3,7 @@ the dispatcher that runs a validated design request."""
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 
 import numpy as np
@@ -11,6 +12,7 @@ from .. import model
 from .._format import short
 from ..core import DesignCase, DoseEvent, FitOptions, Prior, SubjectData
 from ..errors import PkcalcInputError, check_numbers, check_type
+from .attainment import ATTAINMENT_LEVEL, with_attainment
 from .common import (
     DEFAULT_DOSE_STEP,
     DEFAULT_INTERVALS,
@@ -506,7 +508,8 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
                salt_factor: float = 1.0, start: float | None = None,
                initial_concentration: float | None = None, loading_time: float = 0.0,
                name: str = "adjustment", interval: float | None = None,
-               time_step: float = TIME_STEP, **rounding) -> DesignResult:
+               time_step: float = TIME_STEP, attainment_level: float = ATTAINMENT_LEVEL,
+               rank: str = "target", **rounding) -> DesignResult:
     """Bayesian (MAP) individualisation from any levels, then a new regimen from now.
 
     The individual clearance and volume are the posterior mode given the levels
@@ -523,6 +526,12 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
     are trusted the levels are checked (:mod:`pkcalc.design.consistency`): a rise
     with nothing given, a level the estimate misses by more than two residual SDs
     or an estimate that did not converge make every proposal *check levels*.
+
+    Every proposal, and the current regimen continued, gets the posterior probability
+    that each target holds over its projected course (:mod:`pkcalc.design.attainment`);
+    a proposal *meets target* only when the probability that all of them hold is at
+    least ``attainment_level``.  ``rank = "attainment"`` orders the proposals by that
+    probability.
     """
     from ..fit import fit_subjects
 
@@ -582,6 +591,9 @@ def adjust_map(doses, levels, prior, *, plateau=None, window=None, auc_24=None,
         result.notes.append(long_note)
     suspects = rising_while_eliminating(events, measured)
     suspects += fit_misses(fit, prior.additive, prior.proportional)
+    tau_rx, _ = prescribed_interval(doses, interval)
+    with_attainment(result, subject, prior, (math.log(cl), math.log(v)), events, tau_rx,
+                    attainment_level, rank)
     return check_levels(result, suspects)
 
 

@@ -239,6 +239,11 @@ class Regimen:
     check_levels : bool
         The levels the proposal rests on failed a consistency check
         (:mod:`pkcalc.design.consistency`): never *meets target*.
+    settle : float or None, h
+        From when a continuous proposal's window applies (the end of loading or hold).
+    attainment : Attainment or None
+        Posterior probabilities of meeting each target (MAP designs;
+        :mod:`pkcalc.design.attainment`).
     """
 
     label: str
@@ -255,6 +260,8 @@ class Regimen:
     start: float = 0.0
     doses: tuple[DoseRecord, ...] = ()
     check_levels: bool = False
+    settle: float | None = None
+    attainment: Any = None
 
     @property
     def status(self) -> str:
@@ -370,6 +377,10 @@ class DesignResult:
         state).
     clock_origin : str or None
         ISO 8601 date-time of time 0 when the history came in clock times.
+    current : CurrentRegimen or None
+        The recorded regimen continued, with its attainment (MAP designs).
+    attainment_level : float or None
+        The probability that every target holds that *meets target* needs.
     """
 
     name: str
@@ -387,6 +398,8 @@ class DesignResult:
     formulas: list[dict[str, Any]] = field(default_factory=list)
     assumed: dict[str, float] = field(default_factory=dict)
     clock_origin: str | None = None
+    current: Any = None
+    attainment_level: float | None = None
 
     @property
     def best(self) -> Regimen | None:

@@ -377,4 +377,4 @@ def _judge_continuous(label: str, state: CurrentState, ck: _ContinuousChecks, re
         predicted.update(lowest_auc_24_window=min(areas), highest_auc_24_window=max(areas))
     return Regimen(label, rate=ck.rate, loading_dose=ld, loading_time=loading_time,
                    predicted=predicted, meets_target=not flags, flags=tuple(flags),
-                   exact=exact, start=state.start, doses=tuple(records))
+                   exact=exact, start=state.start, doses=tuple(records), settle=settle)

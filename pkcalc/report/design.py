@@ -53,6 +53,19 @@ def design_regimen_dict(r, conv: UnitConverter, scenario: str,
         out["first_dose_clock"] = clock_after(origin, r.first_dose_time)
     out["doses"] = [{k: _conv_any(conv, k, v, None) if k != "count" else v
                      for k, v in d.as_dict().items()} for d in r.doses]
+    if r.attainment is not None:
+        out["attainment"] = attainment_dict(r.attainment, conv)
+    return out
+
+
+def attainment_dict(a, conv: UnitConverter) -> dict[str, Any]:
+    """``attainment`` of a regimen: probabilities (0-1), the method, and the course band
+    (display units) where it was computed."""
+    out = {k: json_number(v) if isinstance(v, float) else v for k, v in a.as_dict().items()}
+    if a.band:
+        out["band"] = {"time": [json_number(conv(t, "time")) for t in a.band["time"]],
+                       **{q: [json_number(conv(c, "concentration")) for c in a.band[q]]
+                          for q in ("q05", "q50", "q95")}}
     return out
 
 
@@ -89,6 +102,10 @@ def design_json(results, conv: UnitConverter, *, title: str | None = None,
                           "validity": f["validity"]} for f in res.formulas],
             "assumed": {k: _conv_any(conv, k, v, None) for k, v in res.assumed.items()},
             "regimens": regs, "notes": list(res.notes), "warnings": list(res.warnings),
+            "attainment_level": res.attainment_level,
+            "current": None if res.current is None else {
+                "label": res.current.label,
+                "attainment": attainment_dict(res.current.attainment, conv)},
         })
     return json_document("design", conv, {
         "design_caution": DESIGN_CAUTION, "title": title, "regimens": regimens,
@@ -127,10 +144,45 @@ def design_result_text(res, conv: UnitConverter) -> str:
                   for f in r.flags]
         if r.check_levels and not r.flags:
             lines.append(f"  #{i} CHECK LEVELS: the levels it rests on failed a check (above)")
+    lines += _attainment_lines(res)
     lines += _times(res, conv)
     lines += [f"warning: {w}" for w in res.warnings]
     lines += [f"note: {n}" for n in res.notes]
     return "\n".join(lines)
+
+
+def _percent(p: float | None) -> str:
+    if p is None:
+        return "-"
+    if 0 < p < 0.005:
+        return "< 1 %"
+    if 0.995 < p < 1:
+        return "> 99 %"
+    return f"{100 * p:.0f} %"
+
+
+def _attainment_lines(res) -> list[str]:
+    """How likely each proposal (and the current regimen) meets each target."""
+    rows = [(f"#{i}", r.attainment) for i, r in enumerate(res.regimens, 1)
+            if r.attainment is not None]
+    if not rows:
+        return []
+    if res.current is not None:
+        rows.append(("current", res.current.attainment))
+    keys = [k for k in ("peak", "trough", "level", "auc_24")
+            if any(getattr(a, k) is not None for _, a in rows)]
+    names = {"peak": "peak in window", "trough": "trough in window",
+             "level": "level in window", "auc_24": "AUC24 in range"}
+    table = [[name, *(_percent(getattr(a, k)) for k in keys), _percent(a.joint)]
+             for name, a in rows]
+    out = [f"Chance of meeting the targets over the next 72 h (from the levels and the prior; "
+           f"'meets target' needs all at once >= {_percent(res.attainment_level)}):",
+           format_table(["#", *(names[k] for k in keys), "all at once"], table)]
+    if res.current is not None:
+        out.append(f"  current = {res.current.label}")
+    out.append("  A probability from a model is not a guarantee: local protocols and a "
+               "licensed pharmacist decide.")
+    return out
 
 
 def _times(res, conv: UnitConverter) -> list[str]:

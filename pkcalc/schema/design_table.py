@@ -78,6 +78,9 @@ class DesignSpec(LenientModel):
     auc_24: QuantityText | list[QuantityText] | None = None
     # holds and starts are rounded to this step (default 15 min)
     time_step: QuantityText | None = None
+    # MAP: the probability every target holds that 'meets target' needs, and the ranking
+    attainment_level: float | str | None = None
+    rank: str | None = None
 
     def infer_method(self) -> str:
         if self.method is not None:
@@ -268,6 +271,10 @@ def resolve_design(spec: DesignSpec, cl: float | None, v: float | None,
     context = _DesignContext(spec, col, cl, v, history, plateau, peak, trough, peak_limits,
                              trough_limits, interval_opts, auc, window)
     _METHOD_OPTIONS[method](context, opts)
+    if method != "map" and (spec.attainment_level is not None or spec.rank is not None):
+        col.add(f"attainment_level and rank need the posterior of method 'map' (levels and "
+                f"a prior), not method '{method}'", "design.attainment_level",
+                "method = 'map' with levels and a prior")
     step = q(spec.time_step, "time", "design.time_step", nonnegative=True)
     if step is not None:
         if step > 24:
@@ -417,6 +424,33 @@ def _options_map(c: _DesignContext, opts: dict[str, Any]) -> None:
     interval = q(spec.interval, "time", "design.interval", positive=True)
     if interval is not None:
         opts["interval"] = interval
+    level = _attainment_level(col, spec.attainment_level)
+    if level is not None:
+        opts["attainment_level"] = level
+    if spec.rank is not None:
+        if spec.rank not in RANKS:
+            col.add(f"unknown ranking '{spec.rank}'", "design.rank", " or ".join(RANKS))
+        opts["rank"] = spec.rank
+
+
+#: How MAP proposals are ordered: the method's own order, or by the joint probability.
+RANKS = ("target", "attainment")
+
+
+def _attainment_level(col: Collector, raw) -> float | None:
+    """``attainment_level``: a fraction in (0, 1] or a percentage ("70%")."""
+    if raw is None:
+        return None
+    text = str(raw).strip()
+    try:
+        value = float(text[:-1]) / 100 if text.endswith("%") else float(text)
+    except ValueError:
+        value = float("nan")
+    if isinstance(raw, bool) or not 0 < value <= 1 or (not text.endswith("%") and value > 1):
+        col.add(f"attainment_level must be a probability above 0 and at most 1, got {raw!r}",
+                "design.attainment_level", "e.g. 0.7 or '70%'")
+        return None
+    return value
 
 
 def _options_sawchuk_zaske(c: _DesignContext, opts: dict[str, Any]) -> None:
