@@ -135,6 +135,13 @@ def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
         c = model.concentration(t, *allev, cl, v)
         ax.plot(conv(t, "time"), conv(c, "concentration"), color=greys[i], ls=styles[i],
                 lw=1.6 if i == 0 else 1.1, label=f"#{i + 1} {reg.label}")
+    band = getattr(shown[0], "attainment", None)
+    if band is not None and band.band:   # where the first proposal's course may really go
+        b = band.band
+        ax.fill_between(conv(np.asarray(b["time"]), "time"),
+                        conv(np.asarray(b["q05"]), "concentration"),
+                        conv(np.asarray(b["q95"]), "concentration"), color="0.8", alpha=0.6,
+                        lw=0, zorder=1, label="#1: 5-95 % of the posterior")
     tgt = result.target
     window = tgt.get("window")
     if window and window[0] is not None and window[1] is not None:

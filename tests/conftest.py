@@ -75,3 +75,18 @@ error = {{ proportional = "10%", additive = "0.2 mg/L" }}
 
 def map_scenario(d0="0 h", d1="0.5 h", t1="6 h", t2="22 h", extra='plateau = "8 mg/L"'):
     return MAP_SCENARIO.format(d0=d0, d1=d1, t1=t1, t2=t2, extra=extra)
+
+
+@pytest.fixture(scope="session")
+def demo_run(tmp_path_factory):
+    """``pkcalc demo --out DIR`` run once for the whole session (it takes half a minute):
+    the folder, the exit code and what it printed."""
+    import contextlib
+    import io
+    from types import SimpleNamespace
+
+    out = tmp_path_factory.mktemp("demo") / "demo"
+    text = io.StringIO()
+    with contextlib.redirect_stdout(text):
+        code = main(["demo", "--out", str(out)])
+    return SimpleNamespace(folder=out, code=code, out=text.getvalue())

@@ -452,6 +452,15 @@ def design_cases() -> list[Case]:
                                          'plateau = "8 mg/L"', params='volume = "48 L"\n'),
          "current_rate"),
         ("no-design-table", "F3", scenario(), "no scenario has a [scenarios.design]"),
+        ("attainment-level-above-1", "G9", map_file(extra="attainment_level = 1.5"),
+         "attainment_level"),
+        ("attainment-level-percent", "G9", map_file(extra='attainment_level = "150%"'),
+         "attainment_level"),
+        ("attainment-level-zero", "G9", map_file(extra="attainment_level = 0"),
+         "attainment_level"),
+        ("rank-unknown", "G9", map_file(extra='rank = "best"'), "unknown ranking"),
+        ("attainment-without-map", "G9", d('plateau = "8 mg/L"\nattainment_level = 0.8'),
+         "method 'map'"),
     ]
     out = [Case(f"design-{i}", r, ("design", "d.toml"), {"d.toml": x}, 2, p)
            for i, r, x, p in rows]

@@ -126,10 +126,10 @@ def test_console_script_no_traceback(tmp_path):
     assert "field 'clearance'" in proc.stderr
 
 
-def test_demo_writes_outputs(run_cli, tmp_path):
-    r = run_cli("demo", "--out", tmp_path / "demo")
-    assert r.code == 0, r.err
-    assert r.out.startswith("!!!")  # the caution block comes first
-    assert (tmp_path / "demo" / "predict" / "predict.json").exists()
-    assert (tmp_path / "demo" / "design" / "design.json").exists()
-    assert (tmp_path / "demo" / "sampling" / "sampling.json").exists()
+def test_demo_writes_outputs(demo_run):
+    assert demo_run.code == 0
+    assert demo_run.out.startswith("!!!")  # the caution block comes first
+    folder = demo_run.folder
+    assert (folder / "predict" / "predict.json").exists()
+    assert (folder / "design" / "design.json").exists()
+    assert (folder / "sampling" / "sampling.json").exists()

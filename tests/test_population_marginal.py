@@ -74,6 +74,7 @@ def test_laplace_and_quadrature_are_exact_for_a_gaussian_integrand(nodes):
     assert log_integral(h[None], chol[None], nodes)[0] == pytest.approx(exact, abs=1e-10)
 
 
+@pytest.mark.slow  # a long statistical check (python -m pytest -m slow)
 def test_quadrature_with_many_nodes_equals_brute_force_integration():
     # Invented subjects, proportional error, 3 levels (the second's last level censored
     # at an LLOQ: Beal's M3 inside the integral): the likelihood integrated over
@@ -189,6 +190,7 @@ def test_comparison_table_and_likelihood_ratio_test():
     assert rows["sex"].lrt_statistic == pytest.approx(d)
 
 
+@pytest.mark.slow  # a long statistical check (python -m pytest -m slow)
 def test_stepwise_adds_the_real_effect_only():
     subs = invented_study(120, seed=7, male_factor=0.6, exp_cl=0.0)
     comp = stepwise(subs, PopulationOptions(p_in=0.01, p_out=0.001),
@@ -375,6 +377,7 @@ def test_progress_lines_on_a_terminal(run_cli, write, monkeypatch):
     assert r.code == 0 and "iteration" not in r.err
 
 
+@pytest.mark.slow  # a long statistical check (python -m pytest -m slow)
 def test_bootstrap_of_the_marginal_estimate_is_seeded(run_cli, write):
     path = write_study(write, invented_study(15, seed=14))
     args = ("population", path, "--json", "--bootstrap", "3", "--seed", "5",

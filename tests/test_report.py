@@ -70,12 +70,9 @@ def no_remote_resources(c: Collector) -> None:
 
 
 @pytest.fixture(scope="module")
-def demo_report(tmp_path_factory):
-    from pkcalc.cli import main
-
-    out = tmp_path_factory.mktemp("demo")
-    assert main(["demo", "--out", str(out)]) == 0
-    return out
+def demo_report(demo_run):
+    assert demo_run.code == 0
+    return demo_run.folder
 
 
 def test_demo_report_is_self_contained_and_caution_first(demo_report):

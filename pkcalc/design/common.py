@@ -431,6 +431,9 @@ class DesignResult:
                 row["start_clock"] = clock_after(self.clock_origin, r.start)
                 row["first_dose_clock"] = clock_after(self.clock_origin, r.first_dose_time)
             row["doses"] = "; ".join(_record_text(d) for d in r.doses)
+            if r.attainment is not None:
+                row.update({f"attainment_{k}": getattr(r.attainment, k)
+                            for k in ("peak", "trough", "level", "auc_24", "joint")})
             rows.append(row)
         return pd.DataFrame(rows)
 

@@ -84,8 +84,10 @@ def map_objective(subject: SubjectData, options: FitOptions, theta: np.ndarray) 
     for i in range(0, theta.shape[0], BLOCK):
         part = theta[i:i + BLOCK]
         rows = batch.rows(np.zeros(part.shape[0], dtype=int))
-        out[i:i + BLOCK] = evaluate(rows, part)[0]
-    return out
+        with np.errstate(all="ignore"):   # far nodes: predictions that underflow
+            out[i:i + BLOCK] = evaluate(rows, part)[0]
+    # a node whose objective is not a number has no posterior weight
+    return np.where(np.isnan(out), np.inf, out)
 
 
 def _laplace_covariance(subject, options, mode) -> np.ndarray:

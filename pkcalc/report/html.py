@@ -218,11 +218,39 @@ def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict
         flags = [f"#{i} {f}" for i, r in enumerate(d["regimens"], 1) for f in r["flags"]]
         if flags:
             items.append(lines_item("flags", flags))
+        items += _attainment_blocks(d)
         if d.get("warnings"):
             items.append(lines_item("warnings", d["warnings"]))
         items += _closing_blocks(d, figures, f"Proposed regimens: {d['name']}")
         out.append({"heading": f"Design: {d['name']}", "blocks": items})
     return out
+
+
+def _attainment_blocks(d: dict[str, Any]) -> list[dict[str, Any]]:
+    """The chance of meeting each target, per proposal and for the current regimen."""
+    rows = [(f"#{i}", r["attainment"]) for i, r in enumerate(d["regimens"], 1)
+            if r.get("attainment")]
+    if not rows:
+        return []
+    if d.get("current"):
+        rows.append(("current: " + d["current"]["label"], d["current"]["attainment"]))
+    keys = [k for k in ("peak", "trough", "level", "auc_24")
+            if any(a.get(k) is not None for _, a in rows)]
+    names = {"peak": "peak in window", "trough": "trough in window",
+             "level": "level in window", "auc_24": "AUC24 in range"}
+
+    def pct(p):
+        return "-" if p is None else f"{100 * p:.1f} %"
+
+    level = d.get("attainment_level")
+    return [table_item(["#", *(names[k] for k in keys), "all at once"],
+                       [[n, *(pct(a.get(k)) for k in keys), pct(a.get("joint"))]
+                        for n, a in rows],
+                       "Chance of meeting the targets over the next 72 h (posterior, from the "
+                       f"levels and the prior); 'meets target' needs all at once >= {pct(level)}"),
+            lines_item("notes", [rows[0][1].get("method", "") + "; a probability from a model "
+                                 "is not a guarantee: local protocols and a licensed "
+                                 "pharmacist decide"])]
 
 
 def sampling_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
