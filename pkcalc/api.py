@@ -807,3 +807,149 @@ def sampling_file(path, *, simulate: int = 0, seed: int = 1, engine: Engine | No
     if not results:
         raise PkcalcInputError([p for _, err in failures for p in err.problems])
     return SamplingFile(results, failures, sfile.title, sfile.output.units())
+
+
+# --------------------------------------------------------------------------- attainment
+def _bands(values, column: str, edges: list[float]):
+    """Band index of each value and the band names (``crcl < 30``, ``crcl 30-60`` ...)."""
+    import itertools
+
+    import numpy as np
+
+    values = np.asarray(values)
+    if values.dtype == object or not np.all(np.isfinite(values.astype(float))):
+        raise PkcalcInputError(f"column '{column}' needs a number in every row for bands",
+                               field="bands", expected="numbers in the column's own unit")
+    from ._format import short
+
+    names = [f"{column} < {short(edges[0])}"]
+    names += [f"{column} {short(a)}-{short(b)}" for a, b in itertools.pairwise(edges)]
+    names.append(f"{column} >= {short(edges[-1])}")
+    return np.digitize(values.astype(float), edges), tuple(names)
+
+
+def population_attainment(source=None, *, subjects=None, doses=(), intervals=(),
+                          infusion_time: float = 0.0, rates=(), peak=None, trough=None,
+                          auc_24=None, window=None, attainment_level: float = 0.9,
+                          bands: tuple[str, list[float]] | None = None,
+                          patients: int = 100_000, seed: int = 1,
+                          engine: Engine | None = None, progress=None):
+    """The share of a population reaching each target on each regimen of a grid.
+
+    Parameters
+    ----------
+    source : PopulationResult, StudyPopulation or Prior, optional
+        Where the patients' typical values and between-subject variability come from
+        (a population result with its covariate model, or a prior).  None: the
+        ``subjects`` table gives each patient's own ``clearance`` and ``volume``.
+    subjects : path, file-like or DataFrame, optional
+        Real or virtual patients: covariates (resampled for virtual patients; a weight
+        for a per-kg prior), or ``clearance [..]`` and ``volume [..]`` columns.
+    doses, intervals : sequences of float, mg and h
+        The grid of repeated infusions of ``infusion_time`` h (every dose at every
+        interval); or ``rates`` (mg/h) for continuous infusions.  Amounts of drug.
+    peak, trough, auc_24, window : (low, high), optional
+        Targets at steady state (mg/L; AUC24 in mg h/L; ``window`` the plateau of a
+        continuous infusion); either end may be None.
+    attainment_level : float
+        The share the lowest dose of each interval must reach (reported per band).
+    bands : (column, edges), optional
+        Covariate bands of a ``subjects`` column (edges in the column's unit).
+    patients, seed : int
+        Virtual patients drawn (seeded; the same patients meet every regimen).
+    engine : Engine, optional
+        Where the pieces of 100,000 patients run (local, processes, Dask); the numbers
+        do not depend on it.
+
+    Returns
+    -------
+    PopulationAttainment
+        ``fraction`` by band and regimen, ``monte_carlo_se()``, ``lowest()``,
+        ``to_frame()``, ``summary()`` and ``plot()`` through :func:`pkcalc.plot`.
+    """
+    import math
+
+    import numpy as np
+
+    from .core import Prior
+    from .population.attainment import (
+        AttainmentRegimen,
+        AttainmentTargets,
+        PatientSource,
+    )
+    from .population.attainment import population_attainment as compute
+    from .schema.attainment import patient_table
+
+    table = patient_table(subjects) if subjects is not None else None
+    n_rows = table["n"] if table is not None else 1
+    columns = {k: v for k, v in (table or {}).items() if k not in ("n", "file")}
+    if source is None:
+        if table is None or "clearance" not in table or "volume" not in table:
+            raise PkcalcInputError("without a population or a prior the subjects table must "
+                                   "give each patient's clearance and volume",
+                                   field="subjects",
+                                   expected="columns 'clearance [L/h]' and 'volume [L]'")
+        ln_mean = np.log(np.column_stack([table["clearance"], table["volume"]]))
+        omega, what = None, f"{n_rows:,} patients with their own clearance and volume"
+    elif isinstance(source, Prior):
+        weights = table.get("weight") if table is not None else None
+        if (source.clearance_per_kg or source.volume_per_kg) and weights is None:
+            raise PkcalcInputError("the prior is per kg: the subjects table needs a weight "
+                                   "column", field="subjects", expected="weight [kg]")
+        if weights is None:
+            ln_mean = np.log([[source.clearance, source.volume]] * n_rows)
+        else:
+            ln_mean = np.log([source.typical(float(w)) for w in weights])
+        oc, ov, r = source.omega_clearance, source.omega_volume, source.correlation
+        omega = np.array([[oc**2, r * oc * ov], [r * oc * ov, ov**2]])
+        what = f"virtual patients from the prior ({source.source or 'inline'})"
+    elif isinstance(source, PopulationResult):
+        from .population.patient import _mean_function
+
+        design, beta, _ = _mean_function(source)
+        names = list(columns)
+        cache: dict[tuple, Any] = {}
+        rows = []
+        for i in range(n_rows):
+            cov = {k: (columns[k][i] if not isinstance(columns[k][i], float)
+                       or math.isfinite(columns[k][i]) else None) for k in names}
+            key = tuple(cov.values())
+            if key not in cache:
+                try:
+                    cache[key] = source.individual_parameters(cov).ln_mean \
+                        if source.method != "marginal" else design.means_for(beta, cov)
+                except ValueError as exc:
+                    raise PkcalcInputError(f"row {i + 1}: {exc}",
+                                           file=table["file"] if table else None) from None
+            rows.append(cache[key])
+        ln_mean = np.asarray(rows, float)
+        omega = np.asarray(source.omega, float)
+        what = (f"virtual patients from the population estimate ({source.method}"
+                + (f"; covariates resampled from {n_rows:,} rows" if table else "") + ")")
+    else:
+        raise PkcalcInputError(f"got {type(source).__name__}", field="source",
+                               expected="a population result, a Prior, or None with "
+                                        "patients' own clearance and volume")
+    if not np.all(np.isfinite(ln_mean)):
+        raise PkcalcInputError("a patient's typical clearance or volume is not a positive "
+                               "number under the covariate model", field="subjects")
+    band = np.zeros(n_rows, dtype=int)
+    band_names: tuple[str, ...] = ("all",)
+    if bands is not None:
+        column, edges = bands
+        from .population.covariates import match_column
+
+        found = match_column(columns.keys(), column)
+        if found is None:
+            raise PkcalcInputError(f"no column '{column}' in the subjects table",
+                                   field="bands", expected=", ".join(columns) or "a column")
+        band, band_names = _bands(columns[found], found, list(edges))
+    regimens = [AttainmentRegimen(d, tau, infusion_time) for tau in intervals for d in doses]
+    regimens += [AttainmentRegimen(rate=r) for r in rates]
+    targets = AttainmentTargets(peak=peak, trough=trough, auc_24=auc_24, level=window)
+    try:
+        return compute(PatientSource(ln_mean, omega, band, band_names, what), regimens,
+                       targets, patients=patients, seed=seed, level=attainment_level,
+                       engine=engine, progress=progress)
+    except ValueError as exc:
+        raise PkcalcInputError(str(exc), field="attainment") from None

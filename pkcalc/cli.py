@@ -161,6 +161,23 @@ def cmd_sampling(args: argparse.Namespace) -> int:
     return _finish(run, args)
 
 
+# --------------------------------------------------------------------------- attainment
+def cmd_attainment(args: argparse.Namespace) -> int:
+    from .runner import run_attainment
+
+    if args.seed is not None and not 0 <= args.seed < 2**32:
+        raise PkcalcInputError("must be a whole number from 0 to 4294967295", field="--seed")
+    if args.patients is not None and not 1 <= args.patients <= 10_000_000:
+        raise PkcalcInputError("must be 1 to 10,000,000", field="--patients")
+    progress = _progress_printer("attainment") if sys.stderr.isatty() and not args.quiet \
+        else None
+    run = run_attainment(args.scenario, patients=args.patients, seed=args.seed,
+                         engine=_engine(args), progress=progress, colour=_colour())
+    if progress is not None:
+        print("\r\033[K", end="", file=sys.stderr, flush=True)
+    return _finish(run, args)
+
+
 # --------------------------------------------------------------------------- verify
 def cmd_verify(args: argparse.Namespace) -> int:
     from . import report
@@ -437,7 +454,7 @@ def _demo(out: Path, args: argparse.Namespace) -> int:
 
 COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {
     "predict": cmd_predict, "design": cmd_design, "fit": cmd_fit,
-    "sampling": cmd_sampling,
+    "sampling": cmd_sampling, "attainment": cmd_attainment,
     "population": cmd_population, "batch": cmd_batch, "nca": cmd_nca,
     "verify": cmd_verify, "demo": cmd_demo,
 }
@@ -463,6 +480,7 @@ WRITES = {
     "predict": ("summary.csv", "predict.json", "*/profile.csv", "*/profile.png"),
     "design": ("design.json", "regimens.csv", "design-*.png"),
     "sampling": ("sampling.json", "sampling-times.csv", "sampling-*.png"),
+    "attainment": ("attainment.json", "attainment.csv", "attainment.png"),
     "verify": ("verify.json", "verify.csv"),
     "nca": ("nca.json", "nca.csv", "nca-intervals.csv", "nca-*.png", "analysis-*.csv"),
     "fit": ("fit.json", "fit.csv", "fit-levels.csv", "fit-*.png", "diagnostics.png",

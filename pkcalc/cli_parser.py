@@ -76,6 +76,14 @@ residual error and, for a study, the between-subject variability and subjects
 (docs/formats.md).  Times maximise the expected information about ln CL and ln V
 (D-optimal); the expected relative SEs are printed for the optimum and for the
 schedules under 'compare', and --simulate N checks them by re-estimation.""",
+    "attainment": """examples:
+  pkcalc attainment scenarios/demo-attainment.toml
+  pkcalc attainment scenarios/demo-attainment.toml --patients 1000000 --workers 2 --out att/
+
+The [attainment] table names where the patients come from (a study whose population
+is estimated, a prior, or a table of patients), the grid of doses and intervals (or
+rates) and the targets at steady state; bands split the patients by a covariate.
+Every regimen meets the same virtual patients (seeded).""",
     "batch": """examples:
   pkcalc batch scenarios/demo-grid.toml --out grid-results.csv --at 24h,48h
   pkcalc batch scenarios/demo-batch.csv --out results.parquet
@@ -164,6 +172,7 @@ def build_parser() -> argparse.ArgumentParser:
     _population_parser(sub)
     _batch_parser(sub)
     _sampling_parser(sub)
+    _attainment_parser(sub)
     _nca_parser(sub)
     _verify_parser(sub)
     _demo_parser(sub)
@@ -306,6 +315,21 @@ def _sampling_parser(sub) -> None:
                     "N local processes) or Dask workers")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     _output_args(p, "write sampling.json, sampling-times.csv and a plot per scenario to DIR")
+
+
+def _attainment_parser(sub) -> None:
+    p = _add(sub, "attainment",
+             "Share of a population reaching the targets on a grid of doses and intervals, "
+             "overall and by covariate bands.")
+    p.add_argument("scenario", metavar="ATTAINMENT.toml",
+                   help="a file with an [attainment] table (docs/formats.md)")
+    p.add_argument("--patients", type=int, metavar="N",
+                   help="virtual patients (default: the file's, else 100000)")
+    p.add_argument("--seed", type=int, metavar="S", help="seed of the draws (default 1)")
+    _engine_args(p, "where pieces of 100,000 patients run: this process (default; "
+                    "--workers N for N local processes) or Dask workers")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    _output_args(p, "write attainment.json, attainment.csv and attainment.png to DIR")
 
 
 def _batch_parser(sub) -> None:

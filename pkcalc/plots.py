@@ -484,3 +484,36 @@ def sampling_figure(result, conv: UnitConverter | None = None) -> Figure:
     ax2.grid(True, color="0.88", linewidth=0.6)
     ax.grid(True, color="0.88", linewidth=0.6)
     return fig
+
+
+def attainment_figure(result, conv: UnitConverter | None = None) -> Figure | None:
+    """Share of patients meeting every target against the dose (or rate): one panel per
+    interval, one line per band."""
+    groups: dict[object, list[int]] = {}
+    for j, r in enumerate(result.regimens):
+        groups.setdefault("continuous" if r.rate is not None else r.interval, []).append(j)
+    fig = Figure(figsize=(3.6 * len(groups) + 1.5, 4.4), layout="constrained")
+    axes = fig.subplots(1, len(groups), squeeze=False, sharey=True)
+    fig.text(0.01, 0.005, CAUTION_SHORT, fontsize=6.5, color="0.25", ha="left", va="bottom")
+    fig.get_layout_engine().set(rect=(0, 0.035, 1, 0.965))
+    styles = ["-", "--", ":", "-.", (0, (3, 1, 1, 1)), (0, (5, 2))]
+    greys = ["black", "0.3", "0.45", "0.6", "0.7", "0.2"]
+    for ax, (key, idx) in zip(axes[0], groups.items(), strict=True):
+        x = [result.regimens[j].rate if key == "continuous" else result.regimens[j].dose
+             for j in idx]
+        order = np.argsort(x)
+        for b, band in enumerate(result.band_names):
+            y = 100 * result.fraction[b, idx, -1]
+            ax.plot(np.asarray(x)[order], y[order], marker="o", ms=3, ls=styles[b % 6],
+                    color=greys[b % 6], lw=1.6 if b == 0 else 1.1, label=band)
+        ax.axhline(100 * result.level, color="0.5", lw=0.8, ls=(0, (1, 2)))
+        ax.set_title("continuous infusion" if key == "continuous" else f"every {key:g} h",
+                     fontsize=9)
+        ax.set_xlabel("rate [mg/h]" if key == "continuous" else "dose [mg]")
+        ax.set_ylim(0, 100)
+        ax.grid(True, color="0.88", linewidth=0.6)
+    axes[0][0].set_ylabel("patients meeting every target [%]")
+    axes[0][-1].legend(fontsize=7, frameon=False, loc="best")
+    fig.suptitle("target attainment of virtual patients (a model, not a guarantee)",
+                 fontsize=9)
+    return fig

@@ -623,3 +623,52 @@ def run_batch_command(input_path: str, output_path: str, options, *, engine="loc
                [str(input_path)], f"pkcalc batch: {Path(input_path).name}", figures, files,
                lambda pngs: batch_sections(doc, pngs), seed=options.seed if options.population
                else None, warnings=summary.warnings)
+
+
+# --------------------------------------------------------------------------- attainment
+def run_attainment(path: str | Path, *, patients: int | None = None, seed: int | None = None,
+                   engine=None, progress=None, colour: bool = False) -> Run:
+    """``pkcalc attainment``: the share of a population on target for a regimen grid."""
+    from .api import population_attainment, population_study
+    from .report.attainment import attainment_json, attainment_text
+    from .report.html import attainment_sections
+    from .schema.attainment import load_attainment_file
+
+    req = load_attainment_file(path, patients=patients, seed=seed)
+    inputs = [str(path)] + [str(p) for p in (req.study, req.subjects) if p is not None]
+    source = req.prior
+    if req.study is not None:
+        from .schema import load_study_file
+
+        source = population_study(load_study_file(req.study), adequacy=False,
+                                  vpc_replicates=0)
+    t = req.targets
+    doses = sorted({r[0] for r in req.regimens if r[0] is not None})
+    intervals = sorted({r[1] for r in req.regimens if r[1] is not None})
+    result = population_attainment(
+        source, subjects=req.subjects, doses=doses, intervals=intervals,
+        infusion_time=req.regimens[0][2], rates=[r[3] for r in req.regimens if r[3]],
+        peak=t["peak"], trough=t["trough"], auc_24=t["auc_24"], window=t["level"],
+        attainment_level=req.level,
+        bands=(req.band_column, req.band_edges) if req.band_column else None,
+        patients=req.patients, seed=req.seed, engine=engine, progress=progress)
+    doc = attainment_json(result, title=req.title)
+    text = attainment_text(result, title=req.title, colour=colour)
+
+    def figures() -> dict[str, Any]:
+        from .plots import attainment_figure
+
+        return {"attainment": attainment_figure(result)}
+
+    def files(out: Path, pngs: dict[str, bytes]) -> list[Path]:
+        targets = [out / "attainment.json", out / "attainment.csv", out / "attainment.png"]
+        check_not_input(targets, inputs)
+        written = [report.write_atomic(out / "attainment.csv",
+                                       result.to_frame().to_csv(index=False))]
+        if "attainment" in pngs:
+            written.append(report.write_atomic(out / "attainment.png", pngs["attainment"]))
+        written.append(report.write_atomic(out / "attainment.json", report.dumps(doc)))
+        return written
+
+    return Run("attainment", EXIT_OK, doc, text, inputs, req.title or "pkcalc attainment",
+               figures, files, lambda pngs: attainment_sections(doc, pngs), seed=req.seed)

@@ -526,3 +526,36 @@ def batch_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[
     if "__batch__" in figures:
         items.append(figure_item(figures["__batch__"], "Distributions across the batch"))
     return [{"heading": "Scenario batch", "blocks": items}]
+
+
+def attainment_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
+    """The report section of an attainment JSON document."""
+    items: list[dict[str, Any]] = [lines_item("warnings", [doc["attainment_caution"]])]
+    def ends(v):
+        return " to ".join("-" if x is None else fmt(x) for x in v)
+
+    targets = "; ".join(f"{k.replace('_', ' ')} {ends(v)}" for k, v in doc["targets"].items()
+                        if v is not None)
+    items.append(lines_item("text", [f"patients: {doc['source']}; {doc['patients']:,} in all; "
+                                     f"seed {doc['seed']}", f"targets (steady state): {targets}"]))
+    bands = doc["bands"]
+    regimens = list(dict.fromkeys(row["regimen"] for row in doc["table"]))
+    share = {(row["band"], row["regimen"]): row for row in doc["table"]}
+    rows = [[reg, *(f"{100 * share[(b, reg)]['fraction']:.1f} % "
+                    f"(± {100 * share[(b, reg)]['monte_carlo_se']:.2f})"
+                    if share[(b, reg)]["fraction"] is not None else "-" for b in bands)]
+            for reg in regimens]
+    items.append(table_item(["regimen", *bands], rows,
+                            "Share of patients meeting every target (Monte Carlo SE in "
+                            "percentage points)"))
+    items.append(table_item(
+        ["band", "interval [h]", "lowest regimen", "share"],
+        [[x["band"], "-" if x["interval"] is None else fmt(x["interval"]),
+          x["regimen"] or "none on the grid",
+          "-" if x["fraction"] is None else f"{100 * x['fraction']:.1f} %"]
+         for x in doc["lowest"]],
+        f"Lowest dose of the grid reaching {100 * doc['attainment_level']:.0f} %"))
+    items.append(lines_item("notes", doc["notes"]))
+    if "attainment" in figures:
+        items.append(figure_item(figures["attainment"], "Target attainment against the dose"))
+    return [{"heading": "Target attainment", "blocks": items}]

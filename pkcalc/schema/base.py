@@ -449,7 +449,7 @@ def load_items(path: str | Path, spec: type[LenientModel], *, extra_keys: Iterab
 
 
 #: Keys of a study or scenario file that name other input files.
-_FILE_KEYS = ("levels", "doses", "subjects", "sdtm", "prior")
+_FILE_KEYS = ("levels", "doses", "subjects", "sdtm", "prior", "study")
 
 
 def referenced_files(path: str | Path) -> list[Path]:
@@ -465,7 +465,8 @@ def referenced_files(path: str | Path) -> list[Path]:
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, ValueError, RecursionError):
         return []
     found: list[Path] = []
-    for table in (data, data.get("fit") if isinstance(data.get("fit"), dict) else {}):
+    tables = [data] + [data[k] for k in ("fit", "attainment") if isinstance(data.get(k), dict)]
+    for table in tables:
         for key in _FILE_KEYS:
             value = table.get(key)
             if isinstance(value, str) and value.strip():
