@@ -779,10 +779,63 @@ def round3_cases() -> list[Case]:
     ]
     return [Case(i, r, a, f, c, p) for i, r, a, f, c, p in rows]
 
+ATTAINMENT = """[attainment]
+doses = ["500 mg", "1 g"]
+intervals = ["12 h"]
+infusion_time = "1 h"
+auc_24 = ["300 mg*h/L", "600 mg*h/L"]
+{extra}
+[attainment.prior]
+clearance = "4 L/h"
+volume = "45 L"
+cv_clearance = "30%"
+cv_volume = "20%"
+error = {{ proportional = "10%" }}
+"""
+
+
+def attainment_cases() -> list[Case]:
+    def a(extra: str = "", drop: str = "") -> str:
+        text = ATTAINMENT.format(extra=extra)
+        return text.replace(drop, "") if drop else text
+
+    patients = "crcl [mL/min],weight [kg]\n40,60\n80,70\n"
+    rows = [
+        ("no-source", "A1", a().split("[attainment.prior]")[0],
+         "say where the patients come from"),
+        ("study-and-prior", "A1", a('study = "s.toml"'), "not both"),
+        ("doses-without-intervals", "A2", a(drop='intervals = ["12 h"]\n'),
+         "doses and intervals"),
+        ("rates-and-doses", "A2", a('rates = ["20 mg/h"]'), "not both"),
+        ("infusion-longer", "A2", a().replace('"1 h"', '"13 h"', 1), "longer than an interval"),
+        ("no-target", "A3", a(drop='auc_24 = ["300 mg*h/L", "600 mg*h/L"]\n'),
+         "at least one target"),
+        ("peak-reversed", "A3", a('peak = ["40 mg/L", "20 mg/L"]'), "above high"),
+        ("level-above-1", "A3", a("attainment_level = 2"), "attainment_level"),
+        ("patients-0", "A3", a("patients = 0"), "patients"),
+        ("unknown-key", "A3", a("patience = 3"), "unknown key"),
+        ("bands-no-subjects", "A4", a('bands = { column = "crcl", edges = [60] }'),
+         "subjects table"),
+        ("bands-decreasing", "A4", a('subjects = "p.csv"\nbands = { column = "crcl", '
+                                     'edges = [60, 30] }'), "increase"),
+    ]
+    out = [Case(f"attainment-{i}", r, ("attainment", "a.toml"), {"a.toml": x, "p.csv": patients},
+                2, p) for i, r, x, p in rows]
+    out.append(Case("attainment-band-column-missing", "A4", ("attainment", "a.toml"),
+                    {"a.toml": a('subjects = "p.csv"\nbands = { column = "age", edges = [60] }'),
+                     "p.csv": patients}, 2, "no column 'age'"))
+    out.append(Case("attainment-patients-option", "A3", ("attainment", "a.toml", "--patients",
+                                                         "0"), {"a.toml": a()}, 2, "--patients"))
+    out.append(Case("attainment-out-is-input", "W3", ("attainment", "a.toml", "--out", "o"),
+                    {"a.toml": a('subjects = "o/attainment.csv"'),
+                     "o/attainment.csv": patients}, 2, "attainment.csv"))
+    return out
+
 
 CORPUS = (quantity_cases() + dose_and_time_cases() + parameter_cases() + file_cases()
           + study_cases() + batch_cases() + output_cases() + design_cases() + verify_cases()
-          + option_cases() + clock_and_sdtm_cases() + sampling_cases() + round3_cases())
+          + option_cases() + clock_and_sdtm_cases() + sampling_cases() + round3_cases()
+          + attainment_cases())
 
 
 def test_the_corpus_is_large_and_cites_its_rules():
@@ -793,7 +846,7 @@ def test_the_corpus_is_large_and_cites_its_rules():
         assert f"**{c.rule}**" in rules, f"{c.id}: rule {c.rule} is not in docs/formats.md"
     commands = {c.args[0] for c in CORPUS}
     assert commands >= {"predict", "design", "fit", "nca", "population", "batch", "verify",
-                        "demo", "sampling"}
+                        "demo", "sampling", "attainment"}
 
 
 def _digest(folder: Path) -> dict[str, str]:

@@ -153,7 +153,8 @@ def load_attainment_file(path: str | Path, *, patients: int | None = None,
     if spec.study is None and spec.prior is None and spec.subjects is None:
         col.add("say where the patients come from: a study, a prior, or a subjects table "
                 "with each patient's clearance and volume", "attainment.study")
-    n = patients if patients is not None else (spec.patients or 100_000)
+    n = patients if patients is not None else (
+        spec.patients if spec.patients is not None else 100_000)
     if not 1 <= n <= 10_000_000:
         col.add(f"patients must be 1 to 10,000,000, got {n}", "attainment.patients")
     s = seed if seed is not None else (spec.seed if spec.seed is not None else 1)
