@@ -95,6 +95,9 @@ def test_results_do_not_depend_on_the_engine_or_the_workers():
     local = population_attainment(PRIOR, **kw)
     pooled = population_attainment(PRIOR, engine=Engine("local", workers=2), **kw)
     assert np.array_equal(local.fraction, pooled.fraction, equal_nan=True)
+    pytest.importorskip("distributed")
+    on_dask = population_attainment(PRIOR, engine=Engine("dask", workers=1, timeout=60), **kw)
+    assert np.array_equal(local.fraction, on_dask.fraction, equal_nan=True)
     # common random numbers: a regimen's share does not depend on the others on the grid
     alone = population_attainment(PRIOR, **{**kw, "doses": [500.0]})
     assert np.array_equal(alone.fraction[0, :, -1], local.fraction[0, [1, 4], -1])

@@ -45,7 +45,7 @@ def test_times_follow_the_output_time_unit(run_cli, write):
 
 def test_outputs_report_and_simulation(run_cli, tmp_path):
     out = tmp_path / "o"
-    r = run_cli("sampling", DEMO, "--simulate", "10", "--seed", "3", "--out", out,
+    r = run_cli("sampling", DEMO, "--simulate", "3", "--seed", "3", "--out", out,
                 "--report", tmp_path / "r.html")
     assert r.code == 0, r.err
     names = sorted(p.name for p in out.iterdir())
@@ -53,7 +53,7 @@ def test_outputs_report_and_simulation(run_cli, tmp_path):
     assert sum(n.endswith(".png") for n in names) == 3
     doc = json.loads((out / "sampling.json").read_text())
     sim = doc["scenarios"][0]["designs"][0]["simulation"]
-    assert sim["replicates"] == 10 and sim["seed"] == 3
+    assert sim["replicates"] == 3 and sim["seed"] == 3
     html = (tmp_path / "r.html").read_text()
     assert html.index("CAUTION") < html.index("Sampling times")
     csv = (out / "sampling-times.csv").read_text().splitlines()

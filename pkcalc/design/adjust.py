@@ -494,6 +494,10 @@ def design_from_case(case: DesignCase) -> DesignResult:
         "sawchuk_zaske": adjust_peak_trough,
     }
     result = functions[case.method](**opts, name=case.name)
+    if case.method in ("proportional", "chiou", "sawchuk_zaske"):
+        result.notes.append("chance of meeting the targets: not computed -- this method "
+                            "takes the levels as exact and has no prior; method 'map' (the "
+                            "same levels and doses with a prior) gives it")
     from ..plausibility import parameter_warnings
 
     if result.clearance and result.volume:
