@@ -63,7 +63,17 @@ def _finish(run, args: argparse.Namespace) -> int:
         write_report([run], report_path, options=" ".join(args.argv))
         if not getattr(args, "json", False):
             _emit(f"wrote the report to {report_path}")
+        if getattr(args, "pdf", False):
+            _print_pdf(Path(report_path), args)
     return run.code
+
+
+def _print_pdf(html: Path, args: argparse.Namespace) -> None:
+    from .report.pdf import print_pdf
+
+    pdf = print_pdf(html, html.with_suffix(".pdf"))
+    if not getattr(args, "json", False):
+        _emit(f"printed the report to {pdf}")
 
 
 # --------------------------------------------------------------------------- predict
@@ -449,6 +459,8 @@ def _demo(out: Path, args: argparse.Namespace) -> int:
     path = write_report(runs, out / "report.html", title="pkcalc demo (invented data)",
                         options=" ".join(args.argv))
     _emit(f"wrote the demo outputs to {out}/ and the report to {path}")
+    if getattr(args, "pdf", False):
+        _print_pdf(Path(path), args)
     return max(run.code for run in runs)
 
 
@@ -519,6 +531,16 @@ def _outputs(args: argparse.Namespace):
         value = getattr(args, option, None)
         if value is not None:
             outs.append(Output(Path(value), kind, "--" + option))
+    if getattr(args, "pdf", False):
+        from .report.pdf import need_browser
+
+        report = getattr(args, "report", None)
+        if report is None and args.command != "demo":
+            raise PkcalcInputError("--pdf prints the HTML report: give --report FILE.html",
+                                   field="--pdf")
+        need_browser()          # refused before any work when there is none
+        if report is not None:
+            outs.append(Output(Path(report).with_suffix(".pdf"), "file", "--pdf"))
     return outs
 
 

@@ -153,6 +153,9 @@ def _output_args(p: argparse.ArgumentParser, out_help: str) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.add_argument("--out", metavar="DIR", help=out_help)
     p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+    p.add_argument("--pdf", action="store_true",
+                   help="also print the report to FILE.pdf beside it, with a headless "
+                        "Chromium-based browser installed on this machine")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -357,6 +360,9 @@ def _batch_parser(sub) -> None:
     p.add_argument("--plots", metavar="DIR", help="write distribution plots and CAUTION.txt")
     p.add_argument("--json", action="store_true", help="print the run summary as JSON")
     p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+    p.add_argument("--pdf", action="store_true",
+                   help="also print the report to FILE.pdf beside it, with a headless "
+                        "Chromium-based browser installed on this machine")
 
 
 def _nca_parser(sub) -> None:
@@ -393,9 +399,15 @@ def _verify_parser(sub) -> None:
     p.add_argument("--junit", metavar="FILE.xml", help="also write JUnit XML for CI systems")
     p.add_argument("--out", metavar="DIR", help="write verify.csv, verify.json to DIR")
     p.add_argument("--report", metavar="FILE.html", help="write a self-contained HTML report")
+    p.add_argument("--pdf", action="store_true",
+                   help="also print the report to FILE.pdf beside it, with a headless "
+                        "Chromium-based browser installed on this machine")
 
 
 def _demo_parser(sub) -> None:
     p = _add(sub, "demo",
              "Run the invented demo scenario end to end.")
     p.add_argument("--out", metavar="DIR", help="output folder (default: pkcalc-demo)")
+    p.add_argument("--pdf", action="store_true",
+                   help="also print report.html to report.pdf with a headless "
+                        "Chromium-based browser installed on this machine")

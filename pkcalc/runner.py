@@ -148,18 +148,34 @@ def write_outputs(run: Run, out_dir: str | Path) -> list[Path]:
 def write_report(runs: Sequence[Run], path: str | Path, *, title: str | None = None,
                  options: str = "") -> Path:
     """One self-contained HTML report of one or more runs."""
-    from .report.html import HtmlReport, input_items, render_html
+    from .report.html import HtmlReport, input_items, lines_item, render_html, run_verdict
 
     inputs = [p for r in runs for p in r.inputs]
     check_not_input([Path(path)], inputs)
     items, files = input_items(inputs)
+    sections, overview = [], []
+    for r in runs:
+        built = r.section_builder(r.pngs)
+        for i, s in enumerate(built):
+            s["id"] = f"section-{len(sections) + 1}"
+            s["run_start"] = i == 0 and bool(sections)   # a page break before each command
+            sections.append(s)
+        if built and r.warnings:   # the run's warnings beside its results, too
+            shown = {w for s in built for b in s["blocks"] if b.get("kind") == "warnings"
+                     for w in b["lines"]}
+            rest = [w for w in r.warnings if w not in shown]
+            if rest:
+                built[0]["blocks"].insert(1, lines_item("warnings", rest))
+        overview.append({"command": r.command, "anchor": built[0]["id"] if built else None,
+                         "heading": built[0]["heading"] if built else r.command,
+                         "verdict": run_verdict(r.command, r.doc),
+                         "warnings": len(r.warnings)})
     rep = HtmlReport(
         title=title or runs[0].title, command=" + ".join(r.command for r in runs),
-        sections=[s for r in runs for s in r.section_builder(r.pngs)], inputs=items,
-        files=files, options=options,
+        sections=sections, inputs=items, files=files, options=options,
         seed=next((r.seed for r in runs if r.seed is not None), None),
         documents={r.command: r.doc for r in runs},
-        warnings=[w for r in runs for w in r.warnings],
+        warnings=[w for r in runs for w in r.warnings], overview=overview,
     )
     return report.write_atomic(path, render_html(rep))
 

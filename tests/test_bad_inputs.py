@@ -386,6 +386,8 @@ def output_cases() -> list[Case]:
              "is a file, not a folder"),
         Case("predict-out-unwritable", "W2", ("predict", "s.toml", "--out", "/proc/pkcalc"),
              {"s.toml": scenario()}, 2, "cannot be written"),
+        Case("predict-pdf-without-report", "W11", ("predict", "s.toml", "--pdf"),
+             {"s.toml": scenario()}, 2, "--report"),
     ]
     return out
 

@@ -169,3 +169,114 @@ def test_every_command_report_is_self_contained(run_cli, tmp_path, args):
 def test_every_command_help_has_examples(run_cli, command):
     r = run_cli(command, "--help")
     assert r.code == 0 and "examples:" in r.out
+
+
+# --------------------------------------------------------------------------- finding one's way
+VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source",
+        "track", "wbr"}
+#: elements whose end tag HTML lets one leave out (none is left out by the template)
+OPTIONAL_END = {"p", "li", "td", "th", "tr", "thead", "tbody", "option"}
+
+
+class Structure(HTMLParser):
+    """Checks that every element is closed in order (the HTML parser of the standard
+    library), and records ids, links and the order of headings."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.stack: list[str] = []
+        self.errors: list[str] = []
+        self.ids: list[str] = []
+        self.links: list[str] = []
+        self.h2: list[str] = []
+        self._h2 = False
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if "id" in a:
+            self.ids.append(a["id"])
+        if tag == "a" and (a.get("href") or "").startswith("#"):
+            self.links.append(a["href"][1:])
+        if tag == "h2":
+            self._h2, self._text = True, []
+        if tag not in VOID:
+            self.stack.append(tag)
+
+    def handle_endtag(self, tag):
+        if tag == "h2":
+            self._h2 = False
+            self.h2.append("".join(self._text).strip())
+        if tag in VOID:
+            return
+        if not self.stack or self.stack[-1] != tag:
+            self.errors.append(f"</{tag}> closes <{self.stack[-1] if self.stack else None}>")
+            return
+        self.stack.pop()
+
+    def handle_data(self, data):
+        if self._h2:
+            self._text.append(data)
+
+
+def test_the_demo_report_opens_with_the_overview_and_contents(demo_report):
+    html = (demo_report / "report.html").read_text(encoding="utf-8")
+    s = Structure()
+    s.feed(html)
+    assert not s.errors and s.stack == [], s.errors[:5]
+    assert s.h2[:2] == ["Overview", "Contents"]
+    assert s.h2[-4:] == ["All warnings", "Inputs", "Results as data", "Reproducibility"]
+    assert len(s.ids) == len(set(s.ids))
+    assert set(s.links) <= set(s.ids) and len(s.links) >= 20     # every link lands
+    # the overview: a verdict line per command, linked to its section
+    assert html.index("Overview") < html.index("Prediction:")
+    for found in ("scenario(s) predicted", "proposal(s):", "subject fits converged",
+                  "estimate from 60 subjects", "check(s) passed", "row(s)"):
+        assert found in html
+    # inputs once each, collapsed, at the end (after every result)
+    inputs = html[html.index('<section id="inputs">'):html.index('<section id="data">')]
+    captions = re.findall(r"<summary>([^<]+) \(as given", inputs)
+    assert len(captions) == len(set(captions)) >= 5
+    assert " open>" not in inputs
+    assert html.index('<section id="inputs">') > html.rindex('class="result')
+
+
+def test_warnings_stand_beside_their_section_and_again_in_one_list(run_cli, write, tmp_path):
+    from .test_design_attainment import MAP_FILE
+
+    rep = tmp_path / "w.html"
+    path = write("m.toml", MAP_FILE.replace('levels = [ { time = "35.5 h", concentration = '
+                                            '"9 mg/L" } ]',
+                                            'levels = [ { time = "35.5 h", concentration = '
+                                            '"40 mg/L" } ]'))
+    assert run_cli("design", path, "--report", rep).code == 0
+    html = rep.read_text(encoding="utf-8")
+    section = html[html.index('id="section-1"'):html.index('id="assumptions"')]
+    everything = html[html.index('id="all-warnings"'):]
+    shown = re.findall(r'<p class="warning">([^<]+)</p>', section)
+    assert shown and all(w in everything or "not an order" in w for w in shown)
+
+
+def test_the_html_design_table_has_the_terminals_columns(run_cli, tmp_path):
+    rep = tmp_path / "d.html"
+    r = run_cli("design", SCENARIOS / "demo-design.toml", "--report", rep)
+    assert r.code == 0
+    html = rep.read_text(encoding="utf-8")
+    for header in ("peak [mg/L]", "trough [mg/L]", "AUC24 [mg*h/L]", "check",
+                   "highest projected [mg/L]"):
+        assert header in html
+    assert "target: peak limits - to 30.00 mg/L; trough limits 8.000 to - mg/L" in html
+    assert "[None" not in html
+
+
+def test_print_styles_and_the_pdf_option(run_cli, tmp_path, monkeypatch):
+    rep = tmp_path / "p.html"
+    assert run_cli("predict", SCENARIOS / "demo.toml", "--report", rep).code == 0
+    html = rep.read_text(encoding="utf-8")
+    assert "@media print" in html and "@bottom-left" in html and "break-before: page" in html
+    # --pdf without a browser: refused before any work, saying how to get one
+    monkeypatch.setenv("PKCALC_BROWSER", str(tmp_path / "no-such-browser"))
+    r = run_cli("predict", SCENARIOS / "demo.toml", "--report", tmp_path / "q.html", "--pdf")
+    assert r.code == 2 and "apt install chromium" in r.err
+    assert not (tmp_path / "q.html").exists()
+    r = run_cli("predict", SCENARIOS / "demo.toml", "--pdf")
+    assert r.code == 2 and "--report" in r.err

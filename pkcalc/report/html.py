@@ -67,6 +67,7 @@ class HtmlReport:
     seed: int | None = None
     subtitle: str | None = None
     documents: dict[str, Any] = field(default_factory=dict)
+    overview: list[dict[str, Any]] = field(default_factory=list)
 
 
 # --------------------------------------------------------------------------- items
@@ -102,16 +103,22 @@ def _import_section(doc: dict[str, Any]) -> list[dict[str, Any]]:
 
 
 def input_items(paths: list[str | Path]) -> tuple[list[dict[str, Any]], list[dict[str, str]]]:
-    """The input files as text blocks, and their names with SHA-256."""
+    """The input files as text blocks (collapsed; each file once), and their names with
+    SHA-256."""
     items, files = [], []
+    seen: set[Path] = set()
     for p in paths:
+        key = Path(p).resolve()
+        if key in seen:
+            continue
+        seen.add(key)
         data = Path(p).read_bytes()
         files.append({"name": str(p), "sha256": hashlib.sha256(data).hexdigest()})
         text = data.decode("utf-8", errors="replace")
         if len(text) > 200_000:
             text = text[:200_000] + "\n... (truncated)"
         items.append({"kind": "pre", "caption": f"{Path(p).name} (as given, with its units)",
-                      "text": text, "open": len(text) < 1500})
+                      "text": text, "open": False})
     return items, files
 
 
@@ -193,8 +200,7 @@ def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict
                 f"{f['validity']}" for f in d.get("formulas", [])] + [
                 f"assumed, not measured: {k.replace('_', ' ')} {fmt(v)}"
                 for k, v in d.get("assumed", {}).items()]))
-        target = "; ".join(f"{k.replace('_', ' ')} {v}" for k, v in d["target"].items()
-                           if v not in (None, [None, None]))
+        target = _target_text(d["target"], u)
         if target:
             items.append(lines_item("text", [f"target: {target}"]))
         rows = []
@@ -224,6 +230,20 @@ def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict
         items += _closing_blocks(d, figures, f"Proposed regimens: {d['name']}")
         out.append({"heading": f"Design: {d['name']}", "blocks": items})
     return out
+
+
+def _target_text(target: dict[str, Any], u: dict[str, str]) -> str:
+    """The target as the terminal shows it: ``peak limits - to 30 mg/L; ...``."""
+    parts = []
+    for k, v in target.items():
+        if v is None or v == [None, None]:
+            continue
+        unit = {"infusion_time": u["time"], "auc_24": u.get("auc", "mg*h/L")}.get(
+            k, u["concentration"])
+        text = " to ".join("-" if x is None else fmt(x) for x in v) \
+            if isinstance(v, list | tuple) else fmt(v)
+        parts.append(f"{k.replace('_', ' ')} {text} {unit}")
+    return "; ".join(parts)
 
 
 def _attainment_blocks(d: dict[str, Any]) -> list[dict[str, Any]]:
@@ -322,7 +342,7 @@ def render_html(report: HtmlReport) -> str:
         caution_short=CAUTION_SHORT, sections=report.sections, inputs=report.inputs,
         files=report.files, warnings=report.warnings, assumptions=ASSUMPTIONS,
         json_text=json_text, version=__version__, command=report.command,
-        options=report.options, seed=report.seed,
+        options=report.options, seed=report.seed, overview=report.overview,
         generated=datetime.now(UTC).strftime("%Y-%m-%d %H:%M:%S"),
     )
 
@@ -559,3 +579,50 @@ def attainment_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[
     if "attainment" in figures:
         items.append(figure_item(figures["attainment"], "Target attainment against the dose"))
     return [{"heading": "Target attainment", "blocks": items}]
+
+
+# --------------------------------------------------------------------------- overview
+def _count(items, test) -> int:
+    return sum(1 for x in items if test(x))
+
+
+def run_verdict(command: str, doc: dict[str, Any]) -> str:
+    """One line saying what a run found, for the report's overview (from its JSON)."""
+    failures = len(doc.get("failures") or [])
+    failed = f"; {failures} item(s) failed" if failures else ""
+    if command == "predict":
+        sc = doc["scenarios"]
+        return (f"{len(sc)} scenario(s) predicted; "
+                f"{_count(sc, lambda s: s['flags'])} with a target flag{failed}")
+    if command == "design":
+        regs = doc["regimens"]
+        return (f"{len(doc['designs'])} design(s), {len(regs)} proposal(s): "
+                f"{_count(regs, lambda r: r['status'] == 'meets target')} meet target, "
+                f"{_count(regs, lambda r: r['status'] == 'FLAG')} flagged, "
+                f"{_count(regs, lambda r: r['status'] == 'check levels')} check levels"
+                f"{failed}")
+    if command == "fit":
+        subs = doc["subjects"]
+        ad = doc.get("adequacy_summary") or {}
+        extra = f"; adequacy: {ad['text']}" if ad.get("text") else ""
+        return (f"{_count(subs, lambda s: s['converged'])} of {len(subs)} subject fits "
+                f"converged{extra}{failed}")
+    if command == "population":
+        ok = "converged" if doc.get("converged") else "NOT converged"
+        return (f"{doc.get('method', '')} estimate from {len(doc['subjects'])} subjects: "
+                f"{ok}{failed}")
+    if command == "nca":
+        return f"{len(doc['subjects'])} subject(s) analysed{failed}"
+    if command == "verify":
+        return (f"{doc['passed']} check(s) passed, {doc['failed']} failed, "
+                f"{len(doc.get('errors') or [])} case(s) unusable")
+    if command == "sampling":
+        return f"{len(doc['scenarios'])} sampling design(s){failed}"
+    if command == "batch":
+        return f"{doc['rows']} row(s), {doc['failed']} with problems"
+    if command == "attainment":
+        reached = _count(doc["lowest"], lambda x: x["regimen"] is not None)
+        return (f"{len(doc['table'])} band x regimen shares of {doc['patients']:,} patients; "
+                f"a lowest dose reaching {100 * doc['attainment_level']:.0f} % in "
+                f"{reached} of {len(doc['lowest'])} band x interval(s)")
+    return "see the section"
