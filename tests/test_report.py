@@ -262,7 +262,7 @@ def test_the_html_design_table_has_the_terminals_columns(run_cli, tmp_path):
     assert r.code == 0
     html = rep.read_text(encoding="utf-8")
     for header in ("peak [mg/L]", "trough [mg/L]", "AUC24 [mg*h/L]", "check",
-                   "highest projected [mg/L]"):
+                   "highest [mg/L]", "lowest after loading [mg/L]", "every [h]"):
         assert header in html
     assert "target: peak limits - to 30.00 mg/L; trough limits 8.000 to - mg/L" in html
     assert "[None" not in html

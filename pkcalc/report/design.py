@@ -269,6 +269,42 @@ def _regimen_table(res, conv: UnitConverter) -> list[str]:
                                       keep=1)]
 
 
+def regimen_table_from_doc(d: dict[str, Any], units: dict[str, str]):
+    """The regimen table of one design of the JSON document, with the terminal's columns
+    (:data:`_COLUMNS`; the values already in display units), empty columns left out; the
+    start as a clock time where there is one."""
+    regs = d["regimens"]
+
+    def cell(i, r, name, key):
+        if name == "#":
+            return i
+        if name == "regimen":
+            return r["label"]
+        if name == "check":
+            return r["status"]
+        if key == "start":
+            return r.get("start_clock") or r["start"]
+        return r["predicted"].get(key[2:]) if key.startswith("p:") else r.get(key)
+
+    table = [[cell(i, r, name, key) for name, _, key in _COLUMNS]
+             for i, r in enumerate(regs, 1)]
+    from_state = any(r["start"] or r["predicted"].get("start_level") is not None for r in regs)
+    keep = [j for j, (_, _, key) in enumerate(_COLUMNS)
+            if (key is None or any(row[j] is not None for row in table))
+            and (key != "start" or from_state)]
+    auc = units.get("auc", "mg*h/L")
+    headers = []
+    for j in keep:
+        name, kind, key = _COLUMNS[j]
+        if kind is None:
+            headers.append(name)
+        elif key == "start":
+            headers.append(f"{name} [{units['time']} or clock]")
+        else:
+            headers.append(f"{name} [{auc if kind == 'auc' else units[kind]}]")
+    return headers, [[row[j] for j in keep] for row in table]
+
+
 def _small_level(res) -> float | None:
     """1 % of the design's main concentration aim (plateau or peak): levels below it are
     shown as "< x" rather than as numbers nobody can measure."""

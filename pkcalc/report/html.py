@@ -203,24 +203,13 @@ def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict
         target = _target_text(d["target"], u)
         if target:
             items.append(lines_item("text", [f"target: {target}"]))
-        rows = []
-        for i, r in enumerate(d["regimens"], 1):
-            pr = r["predicted"]
-            rows.append([i, r["label"], r.get("start_clock") or r["start"], r["rate"],
-                         r["loading_dose"], r["dose"], r["interval"], r["infusion_time"],
-                         pr.get("peak"), pr.get("trough"),
-                         pr.get("average") if pr.get("average") is not None else pr.get("level"),
-                         pr.get("auc_24"), pr.get("highest"), pr.get("level_at_72h"),
-                         r["status"]])
-        c = u["concentration"]
-        items.append(table_item(
-            ["#", "regimen", f"starts [{u['time']} or clock]", f"rate [{u['rate']}]",
-             f"loading [{u['amount']}]", f"dose [{u['amount']}]", f"every [{u['time']}]",
-             f"infusion [{u['time']}]", f"peak [{c}]", f"trough [{c}]",
-             f"average or plateau [{c}]", f"AUC24 [{u.get('auc', 'mg*h/L')}]",
-             f"highest projected [{c}]", f"level at 72 h [{c}]", "check"], rows,
-            "Proposed regimens, rounded and re-predicted (steady state; projected course "
-            "from the start)"))
+        from .design import regimen_table_from_doc
+
+        headers, rows = regimen_table_from_doc(d, u)
+        items.append(table_item(headers, rows,
+                                "Proposed regimens, rounded and re-predicted (the terminal's "
+                                "columns: steady state; highest, lowest and level at 72 h on "
+                                "the course projected from the start)"))
         flags = [f"#{i} {f}" for i, r in enumerate(d["regimens"], 1) for f in r["flags"]]
         if flags:
             items.append(lines_item("flags", flags))
