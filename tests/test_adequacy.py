@@ -257,7 +257,7 @@ def test_population_output_carries_the_check(run_cli, tmp_path):
                                             "not_enough_data") for d in doc["subjects"])
     assert list((tmp_path / "pop").glob("adequacy-*.png"))
     r = run_cli("population", SCENARIOS / "demo-sparse.toml", "--json", "--vpc-replicates",
-                "0")
+                "0", "--method", "iterative")
     counts = r.json()["adequacy_summary"]
     assert counts["not_enough_data"] == counts["subjects"]
 

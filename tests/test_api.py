@@ -374,3 +374,22 @@ def test_results_draw_the_figures_the_command_writes(pop):
         assert isinstance(fig, Figure)
     with pytest.raises(PkcalcInputError):
         pkcalc.plot("not a result")
+
+
+def test_population_attainment_takes_the_marginal_covariate_model(pop, frames):
+    # virtual patients with the study's covariates: the typical values are the model's
+    # mean function at each row (weight, sex, age), the variability the estimate's
+    from pkcalc.api import population_attainment
+
+    _, _, subjects = frames
+    one = subjects.iloc[[0]]
+    r = population_attainment(pop, subjects=one, doses=[1000.0], intervals=[12.0],
+                              infusion_time=1.0, auc_24=(300.0, None), patients=200_000)
+    p = pop.individual_parameters({"weight": float(one["weight [kg]"].iloc[0]),
+                                   "Sex": one["Sex"].iloc[0], "Age": float(one["Age"].iloc[0])})
+    sd = math.sqrt(p.ln_covariance[0, 0])
+    # AUC24 >= 300  <=>  CL <= 24 x 1000 / (12 x 300)
+    from scipy.stats import norm
+
+    exact = norm.cdf((math.log(24 * 1000 / (12 * 300)) - p.ln_mean[0]) / sd)
+    assert r.fraction[0, 0, -1] == pytest.approx(exact, abs=4 * r.monte_carlo_se()[0, 0, -1])

@@ -116,8 +116,10 @@ def test_lowest_dose_reaching_the_share():
 
 @pytest.fixture(scope="module")
 def sparse_population():
+    # iterative two-stage: the allometric weight model of the study file, in a second
+    # (the marginal estimate's own covariate model is checked in tests/test_api.py)
     return pkcalc.population_study(pkcalc.example_file("demo-sparse.toml"), adequacy=False,
-                                   vpc_replicates=0)
+                                   vpc_replicates=0, method="iterative")
 
 
 def test_a_population_estimate_with_its_weight_model(sparse_population):

@@ -147,7 +147,8 @@ def test_report_never_overwrites_input(run_cli, write):
     [
         ["nca", SCENARIOS / "demo-study.toml"],
         ["fit", SCENARIOS / "demo-study.toml", "--with-nca"],
-        ["population", SCENARIOS / "demo-sparse.toml", "--vpc-replicates", "10"],
+        ["population", SCENARIOS / "demo-sparse.toml", "--vpc-replicates", "10", "--method",
+         "iterative"],
         ["batch", SCENARIOS / "demo-grid.toml", "--out", "{tmp}/g.csv"],
         ["verify", SCENARIOS / "reference-cases.toml"],
     ],

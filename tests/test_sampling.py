@@ -291,9 +291,9 @@ def cluster():
 def test_simulation_does_not_depend_on_the_engine_or_the_workers(cluster):
     p = problem(design="population", omega=np.diag([0.09, 0.04]), additive=0.0,
                 proportional=0.15, groups=(SamplingGroup("a", 20, 3),), starts=3)
-    ref = design_sampling(p, simulate=12, seed=7)
+    ref = design_sampling(p, simulate=6, seed=7)
     for engine in (Engine("local", workers=2), Engine("dask", scheduler=cluster)):
-        other = design_sampling(p, simulate=12, seed=7, engine=engine)
+        other = design_sampling(p, simulate=6, seed=7, engine=engine)
         assert other.optimal.simulation == ref.optimal.simulation
 
 
