@@ -194,6 +194,7 @@ def test_cli_population_too_few_subjects(run_cli, write):
 
 
 # --------------------------------------------------------------------------- stopping, SEs
+@pytest.mark.slow  # a long statistical check (python -m pytest -m slow)
 def test_iterative_stops_on_the_residual_error_and_its_ses_include_posterior_covariance():
     # The invented demo sparse study (combined error, allometric weight).  The stopping
     # rule watches the residual error too: the additive component, which these data do

@@ -149,6 +149,7 @@ def test_phenobarb_laplace_close_to_pinheiro_bates(tmp_path):
 
 
 # --------------------------------------------------------------------------- covariates
+@pytest.mark.slow  # a long statistical check (python -m pytest -m slow)
 def test_continuous_and_categorical_effects_are_recovered():
     # Invented study, 200 subjects x 3 levels: weight exponent 0.75 on CL, CL of men
     # 0.7 x that of women.
@@ -176,6 +177,7 @@ def test_continuous_and_categorical_effects_are_recovered():
     assert r.typical["clearance"] == pytest.approx(expected, rel=0.1)
 
 
+@pytest.mark.slow  # a long statistical check (python -m pytest -m slow)
 def test_comparison_table_and_likelihood_ratio_test():
     subs = invented_study(120, seed=6, male_factor=0.6)
     models = (PopulationModel("base"),
