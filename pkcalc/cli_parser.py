@@ -54,17 +54,17 @@ censored likelihood (Beal's M3), Wald intervals on the log scale, 3 starts.""",
   pkcalc population scenarios/demo-sparse.toml
   pkcalc population scenarios/demo-sparse.toml --covariate estimated --bootstrap 200
   pkcalc population scenarios/demo-sparse.toml --effect "weight on clearance and volume"
-  pkcalc population scenarios/demo-sparse.toml --model "base:" \
+  pkcalc population scenarios/demo-sparse.toml --model "base:" \\
                     --model "weight: weight on clearance and volume"
-  pkcalc population scenarios/demo-sparse.toml --stepwise "weight on clearance" \
+  pkcalc population scenarios/demo-sparse.toml --stepwise "weight on clearance" \\
                     --stepwise "weight on volume" --p-in 0.05 --p-out 0.01
   pkcalc population --levels L.csv --doses D.csv --subjects S.csv --method two-stage
   pkcalc population scenarios/demo-sparse.toml --covariate per_kg --out pop-results/
 
-Iterative two-stage by default (Prevost 1977; Steimer et al. 1984): MAP
-estimates of every subject under the current population prior, then an update
-of the typical values, the between-subject covariance and the residual error,
-until they settle.""",
+Maximum marginal likelihood by default (--method marginal: the subjects' parameters
+integrated out by the Laplace approximation, or adaptive Gauss-Hermite quadrature
+with --nodes N); --method iterative gives the iterative two-stage estimate (Prevost
+1977; Steimer et al. 1984) and --method two-stage the standard two-stage one.""",
     "sampling": """examples:
   pkcalc sampling scenarios/demo-sampling.toml
   pkcalc sampling scenarios/demo-sampling.toml --simulate 500 --workers 2 --out sampling/

@@ -133,3 +133,11 @@ def test_demo_writes_outputs(demo_run):
     assert (folder / "predict" / "predict.json").exists()
     assert (folder / "design" / "design.json").exists()
     assert (folder / "sampling" / "sampling.json").exists()
+
+
+def test_population_help_states_the_default_and_keeps_examples_apart(run_cli):
+    r = run_cli("population", "--help")
+    assert "Maximum marginal likelihood by default" in r.out
+    assert "Iterative two-stage by default" not in r.out
+    # a continued example keeps its backslash and its own line
+    assert '--model "base:" \\\n' in r.out
