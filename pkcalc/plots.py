@@ -75,7 +75,7 @@ def profile_figure(pred, conv: UnitConverter | None = None) -> Figure:
                    ls="--", label="plateau")
         infusions = [d.start for d in pred.doses if d.duration > 0]
         t0 = min(infusions) if infusions else 0.0
-        for f, style in ((0.5, ":"), (0.9, (0, (1, 3)))):
+        for f, style in ((0.5, ":"), (0.9, "-.")):   # two styles a reader tells apart
             tf = t0 + pred.time_to_fraction.get(f, model.time_to_fraction(f, p["clearance"],
                                                                            p["volume"]))
             if tf <= grid[-1]:

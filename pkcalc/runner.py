@@ -25,12 +25,19 @@ __all__ = ["Run", "check_not_input", "run_design", "run_predict", "run_verify",
 EXIT_OK, EXIT_PARTIAL, EXIT_INPUT = 0, 1, 2
 
 
+#: Longest file-name part made from a name.
+SLUG_LENGTH = 60
+
+
 def slug(name: str) -> str:
     """A file-name-safe version of a scenario or subject name."""
     import re
 
     s = re.sub(r"[^A-Za-z0-9._-]+", "-", name).strip("-._")
-    return s[:60] or "item"
+    if len(s) > SLUG_LENGTH:   # whole words only: cut at the last '-' that fits
+        cut = s[:SLUG_LENGTH + 1].rfind("-")
+        s = s[:cut if cut >= SLUG_LENGTH // 2 else SLUG_LENGTH].strip("-._")
+    return s or "item"
 
 
 def unique_slugs(names: Sequence[str]) -> list[str]:

@@ -148,3 +148,14 @@ def test_the_files_an_earlier_run_listed_never_reach_outside_the_folder(tmp_path
     (out / "CAUTION.txt").write_text(f"{CAUTION}\n\n{FILES_HEADING}\n  a.csv\n  sub/b.png\n"
                                       f"  ../x.csv\n  /etc/passwd\n  link/c.csv\n")
     assert previous_files(out) == [out / "a.csv", out / "sub" / "b.png"]
+
+
+def test_file_names_from_long_names_end_on_a_whole_word():
+    from pkcalc.runner import SLUG_LENGTH, slug, unique_slugs
+
+    name = "orvimycin: levels around the second dose, from the dose history (AUC24 target)"
+    s = slug(name)
+    assert len(s) <= SLUG_LENGTH and s.endswith("from-the-dose") and "--" not in s
+    assert slug("x" * 80) == "x" * SLUG_LENGTH          # one long word: cut where it must
+    assert slug("***") == "item"
+    assert unique_slugs(["a b", "a-b"]) == ["a-b", "a-b-2"]

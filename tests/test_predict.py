@@ -204,3 +204,17 @@ def test_any_regular_list_equals_its_repeated_record(n, tau, frac, amount, t0):
     assert [a.peak, a.trough, a.average, a.interval] == pytest.approx(
         [b.peak, b.trough, b.average, b.interval], rel=1e-9)
     assert r.plateau_concentration == pytest.approx(ref.plateau_concentration)
+
+
+def test_the_50_and_90_percent_lines_have_their_own_styles():
+    from pkcalc.plots import profile_figure
+    from pkcalc.predict import predict_scenario
+    from pkcalc.schema import load_scenario_file
+
+    from .conftest import SCENARIOS
+
+    sc = load_scenario_file(SCENARIOS / "demo.toml").scenarios[0]
+    fig = profile_figure(predict_scenario(sc))
+    styles = {line.get_label().split(" ")[0]: line.get_linestyle()
+              for line in fig.axes[0].get_lines() if "of plateau" in line.get_label()}
+    assert styles == {"50%": ":", "90%": "-."}   # dotted and dash-dot, not two dotted ones

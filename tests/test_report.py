@@ -281,3 +281,13 @@ def test_print_styles_and_the_pdf_option(run_cli, tmp_path, monkeypatch):
     assert not (tmp_path / "q.html").exists()
     r = run_cli("predict", SCENARIOS / "demo.toml", "--pdf")
     assert r.code == 2 and "--report" in r.err
+
+
+def test_settings_read_as_words_not_python(demo_report):
+    html = (demo_report / "report.html").read_text(encoding="utf-8")
+    body = html[html.index('<section id="section-1"'):html.index('<section id="assumptions"')]
+    notes = re.findall(r'<p class="note">([^<]+)</p>', body)
+    settings = [n for n in notes if re.match(r"^[a-z ]+: ", n)]
+    assert settings
+    for line in settings:
+        assert not re.search(r"\b(None|True|False)\b|\['|\{'", line), line

@@ -94,6 +94,27 @@ def lines_item(kind: str, lines: list[str]) -> dict[str, Any]:
     return {"kind": kind, "lines": list(lines)}
 
 
+def _plain(value: Any) -> str:
+    """A setting in words: yes/no, "not set", lists and tables without Python syntax."""
+    if value is None:
+        return "not set"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, list | tuple):
+        return ", ".join(_plain(v) for v in value) or "none"
+    if isinstance(value, dict):
+        return "; ".join(f"{k.replace('_', ' ')} {_plain(v)}" for k, v in value.items()) \
+            or "none"
+    if isinstance(value, float):
+        return fmt(value)
+    return str(value).replace("_", " ")
+
+
+def settings_lines(settings: dict[str, Any]) -> list[str]:
+    """The settings of a run as plain lines (``weighting: not set``, ``adequacy: yes``)."""
+    return [f"{k.replace('_', ' ')}: {_plain(v)}" for k, v in settings.items()]
+
+
 def _import_section(doc: dict[str, Any]) -> list[dict[str, Any]]:
     """The import report of a study read from SDTM (what was read, used and skipped)."""
     lines = doc.get("import_lines")
@@ -350,7 +371,7 @@ def nca_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
     rows.append(["points used for the slope", u["time"],
                  *[", ".join(f"{x:g}" for x in s["points_used"]) or "-" for s in subjects]])
     items: list[dict[str, Any]] = [
-        lines_item("notes", [f"{k.replace('_', ' ')}: {v}" for k, v in doc["settings"].items()]),
+        lines_item("notes", settings_lines(doc["settings"])),
         table_item(["quantity", "unit", *[f"subject {s['subject']}" for s in subjects]], rows,
                    "Non-compartmental results")]
     interval_rows = [[s["subject"], d["number"], d.get("start_clock") or d["start"],
@@ -391,7 +412,7 @@ def fit_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
                      e["half_life"]["ci_high"], d["objective"], d["aic"], d["n_obs"],
                      d["n_blq"], "yes" if d["converged"] else "NO"])
     items: list[dict[str, Any]] = [
-        lines_item("notes", [f"{k}: {v}" for k, v in doc["settings"].items()]),
+        lines_item("notes", settings_lines(doc["settings"])),
         table_item(["subject", f"CL [{u['clearance']}]", "low", "high", f"V [{u['volume']}]",
                     "low", "high", f"t½ [{u['time']}]", "low", "high", "-2lnL", "AIC",
                     "levels", "BLQ", "converged"], rows,
@@ -462,7 +483,7 @@ def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[
                      ci[0], ci[1], doc["variability_cv_percent"][k],
                      doc["shrinkage_percent"].get(k)])
     items: list[dict[str, Any]] = [
-        lines_item("notes", [f"{k}: {v}" for k, v in doc["settings"].items()]),
+        lines_item("notes", settings_lines(doc["settings"])),
         table_item(["parameter", "typical", "unit", "SE", "CI low", "CI high", "CV %",
                     "shrinkage %"], rows, f"Population estimates ({doc['method']})")]
     cov = doc["covariate"]
