@@ -33,6 +33,18 @@ def new_figure(width: float = 7.5, height: float = 4.6) -> tuple[Figure, plt.Axe
     return fig, ax
 
 
+def plain_log_ticks(ax) -> None:
+    """Tick labels of a log axis as plain numbers (2, 5, 10, 0.5), not "6x10^0"."""
+    from matplotlib.ticker import FuncFormatter, LogLocator
+
+    def label(value, _pos):
+        return f"{value:g}"
+
+    ax.yaxis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+    ax.yaxis.set_major_formatter(FuncFormatter(label))
+    ax.yaxis.set_minor_formatter(FuncFormatter(lambda _v, _p: ""))
+
+
 def figure_bytes(fig: Figure, fmt: str = "png") -> bytes:
     """The figure rendered to bytes (PNG or SVG)."""
     buf = io.BytesIO()
@@ -214,6 +226,7 @@ def nca_figure(result, conv: UnitConverter | None = None) -> Figure | None:
                         label=f"terminal slope (t½ {result.terminal_half_life:.3g} h)")
     ax.set_xlabel(f"time [{conv.unit('time')}]")
     ax.set_ylabel(f"concentration [{conv.unit('concentration')}] (log scale)")
+    plain_log_ticks(ax)
     ax.set_title(f"subject {result.subject}: non-compartmental analysis ({result.mode})",
                  fontsize=9)
     ax.legend(fontsize=7, frameon=False)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 
 import numpy as np
 import pytest
@@ -256,3 +257,13 @@ def test_terminal_phase_excludes_points_during_a_later_infusion():
     assert r.mode == "total exposure"
     assert min(r.points_used) >= 14.0
     assert r.terminal_slope == pytest.approx(cl / v, rel=1e-9)
+
+
+def test_the_log_axis_reads_as_plain_numbers():
+    import pkcalc
+
+    study = pkcalc.load_study_file(pkcalc.example_file("demo-study.toml"))
+    fig = pkcalc.plot(pkcalc.nca_study(study).results[0])
+    fig.canvas.draw()
+    labels = [t.get_text() for t in fig.axes[0].get_yticklabels() if t.get_text()]
+    assert labels and all(re.fullmatch(r"[0-9.]+", x) for x in labels), labels
