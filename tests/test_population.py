@@ -16,7 +16,6 @@ from pkcalc.population import bootstrap, iterative_two_stage, simulate_design, t
 from pkcalc.schema import load_study
 from pkcalc.schema.fitopts import FitOptions, population_options
 
-from .conftest import SCENARIOS
 from .fixtures import phenobarb
 
 TRUE = {"clearance": 5.0, "volume": 50.0, "cv_clearance": 0.35, "cv_volume": 0.25,
@@ -160,18 +159,20 @@ def test_bad_population_options(raw, match):
         population_options(raw)
 
 
-def test_cli_population_demo(run_cli, tmp_path):
-    r = run_cli("population", SCENARIOS / "demo-sparse.toml", "--json", "--out",
-                tmp_path / "p", "--vpc-replicates", "20")
-    assert r.code == 0, r.err
-    doc = r.json()
+def test_cli_population_demo(demo_run):
+    # the demo's `population demo-sparse.toml --out` (run once per session)
+    import json
+
+    assert demo_run.code == 0
+    folder = demo_run.folder / "population"
+    doc = json.loads((folder / "population.json").read_text())
     assert {"units", "caution", "typical", "variability_cv_percent", "residual_error",
             "subjects", "iterations"} <= set(doc)
     assert set(doc["typical"]) == {"clearance", "volume"}
     assert len(doc["subjects"]) == 60
     for name in ("population.json", "population-subjects.csv", "diagnostics.png", "vpc.png",
                  "CAUTION.txt"):
-        assert (tmp_path / "p" / name).exists(), name
+        assert (folder / name).exists(), name
 
 
 def test_cli_population_text_and_failures(run_cli, write):
