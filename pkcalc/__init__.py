@@ -35,6 +35,7 @@ _EXPORTS = {
     "DesignResult": "design", "load_sdtm": "schema",
     "SamplingProblem": "core", "SamplingGroup": "core", "design_sampling": "sampling",
     "sampling_file": "api", "SamplingFile": "api", "Engine": "engines",
+    "population_attainment": "api", "PopulationAttainment": "population.attainment",
 }
 
 __all__ = ["__version__", *sorted(_EXPORTS)]

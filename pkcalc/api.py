@@ -755,6 +755,7 @@ def plot(result, conv=None):
     from .design import DesignResult
     from .fit import FitResult
     from .nca import NcaResult
+    from .population.attainment import PopulationAttainment
     from .predict import ScenarioPrediction
     from .report import UnitConverter
     from .sampling import SamplingResult
@@ -764,7 +765,8 @@ def plot(result, conv=None):
     conv = conv or UnitConverter()
     drawers = ((ScenarioPrediction, plots.profile_figure), (DesignResult, plots.design_figure),
                (FitResult, plots.fit_figure), (NcaResult, plots.nca_figure),
-               (SamplingResult, plots.sampling_figure))
+               (SamplingResult, plots.sampling_figure),
+               (PopulationAttainment, plots.attainment_figure))
     for kind, draw in drawers:
         if isinstance(result, kind):
             return draw(result, conv)

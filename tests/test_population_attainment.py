@@ -184,3 +184,13 @@ def test_command_line_outputs(run_cli, write, tmp_path):
     assert "Target attainment" in html and "not a promise" in html
     text = run_cli("attainment", path, "--patients", "1000").out
     assert text.lstrip("! \n").startswith("CAUTION") and "n=1000" in text
+
+
+def test_a_notebook_user_gets_the_views_and_the_figure():
+    r = pkcalc.population_attainment(PRIOR, doses=[500.0, 1000.0], intervals=[12.0],
+                                     infusion_time=1.0, auc_24=(300.0, None), patients=20_000)
+    assert isinstance(r, pkcalc.PopulationAttainment)
+    assert "pkcalc-result" in r._repr_html_() and "licensed clinicians" in r._repr_html_()
+    assert len(r.to_frame()) == 2
+    fig = pkcalc.plot(r)
+    assert fig.axes[0].get_ylabel().startswith("patients meeting every target")
