@@ -262,7 +262,7 @@ def nca_study(study=None, options: NcaOptions | None = None, *, levels=None, dos
     **overrides
         The ``[nca]`` keys (docs/formats.md, "NCA options"):
 
-        - ``auc_method``: ``"linear-up-log-down"`` (default) or ``"linear"``;
+        - ``auc_method``: ``"linear_up_log_down"`` (default) or ``"linear"``;
         - ``blq``: ``"leading_zero"`` (default), ``"zero"`` or ``"drop"``;
         - ``terminal_points``: subject -> list of times (with units, ``"12 h"``);
         - ``r2_tolerance``: adjusted R² within this of the best (default 1e-4);
@@ -394,14 +394,15 @@ class StudyFit(_PerSubject):
                 for key in ("value", "se", "rse_percent", "ci_low", "ci_high"):
                     suffix = "" if key == "value" else f"_{key}"
                     row[f"{name}{suffix} [{'%' if key == 'rse_percent' else unit}]"] = e[key]
-            row.update({k: d[k] for k in ("objective", "aic", "bic", "n_obs", "n_blq",
+            row.update({k: d[k] for k in ("objective", "aic", "bic", "n_levels", "n_blq",
                                           "starts", "starts_agreed")})
             a = d["adequacy"]
             if a is not None:
                 row.update({"one_compartment": a["verdict"], "adequacy_delta_aic":
-                            a["delta_aic"], "adequacy_lrt_p": a["likelihood_ratio_p"],
-                            "adequacy_runs_p": a["runs_test_p"],
-                            "adequacy_trend_p": a["trend_test_p"],
+                            a["delta_aic"],
+                            "adequacy_likelihood_ratio_p": a["likelihood_ratio_p"],
+                            "adequacy_runs_test_p": a["runs_test_p"],
+                            "adequacy_trend_test_p": a["trend_test_p"],
                             f"earliest_sampling_after_infusion [{doc['units']['time']}]":
                             a["earliest_sampling_after_infusion"]})
             row["warnings"] = " | ".join(d["warnings"])
@@ -598,7 +599,7 @@ def population_study(study=None, options: PopulationOptions | None = None, *,
                      progress: Callable[[str], None] | None = None,
                      engine: Engine | None = None, **overrides: Any) -> StudyPopulation:
     """Population estimates of a study: maximum marginal likelihood (default; Laplace
-    or adaptive quadrature, with a covariance step, covariate effects, model
+    or adaptive quadrature, with standard errors, covariate effects, model
     comparison and stepwise selection), or the standard / iterative two-stage
     methods; bootstrap standard errors when ``bootstrap`` > 0.
 
@@ -621,7 +622,7 @@ def population_study(study=None, options: PopulationOptions | None = None, *,
     **overrides
         The ``[population]`` keys (docs/formats.md, "Population options"):
 
-        - ``method``: ``"marginal"`` (default), ``"iterative"`` or ``"two-stage"``;
+        - ``method``: ``"marginal"`` (default), ``"iterative"`` or ``"two_stage"``;
         - ``error_model``: ``"proportional"`` (default), ``"additive"``, ``"combined"``;
         - ``blq``: ``"likelihood"`` (default, Beal's M3), ``"drop"``, ``"half_lloq"``;
         - ``covariate``: body-weight model ``"none"`` (default), ``"allometric"``
@@ -631,7 +632,8 @@ def population_study(study=None, options: PopulationOptions | None = None, *,
           "sex on volume", "age on clearance linear around 40"]``;
         - ``models``: models to compare, ``{"base": [], "sex": ["sex on
           clearance"]}`` (or a list of :class:`~pkcalc.core.PopulationModel`);
-        - ``stepwise``: ``{"candidates": [...], "p_in": 0.05, "p_out": 0.01}``;
+        - ``stepwise``: ``{"candidates": [...], "add_if_p_below": 0.05,
+          "remove_if_p_above": 0.01}``;
         - ``nodes``: Gauss-Hermite nodes per dimension, 1 (Laplace, default) to 31;
         - ``between_subject``: ``"full"`` (default) or ``"diagonal"``;
         - ``bootstrap``: replicates (default 0), ``seed`` (default 1);

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
@@ -211,7 +212,7 @@ def _nca_overrides(args: argparse.Namespace) -> dict:
             raise PkcalcInputError(f"'{item}' is not SUBJECT=TIME,TIME,...", field="--terminal",
                                    expected='e.g. --terminal "3=8 h,12 h,24 h"')
         points[sid.strip()] = [t.strip() for t in times.split(",")]
-    return {"auc_method": args.auc_method, "blq": args.blq_rule,
+    return {"auc_method": args.auc_method, "blq": args.blq,
             "terminal_points": points or None, "interval": args.interval,
             "interval_tolerance": args.interval_tolerance,
             "duration_tolerance": args.duration_tolerance}
@@ -289,15 +290,15 @@ def _models_arg(items: list[str] | None) -> dict | None:
 
 def _stepwise_arg(args: argparse.Namespace) -> dict | None:
     if not args.stepwise:
-        if args.p_in is not None or args.p_out is not None:
-            raise PkcalcInputError("--p-in and --p-out need --stepwise candidates",
-                                   field="--stepwise")
+        if args.add_if_p_below is not None or args.remove_if_p_above is not None:
+            raise PkcalcInputError("--add-if-p-below and --remove-if-p-above need "
+                                   "--stepwise candidates", field="--stepwise")
         return None
     step: dict = {"candidates": list(args.stepwise)}
-    if args.p_in is not None:
-        step["p_in"] = args.p_in
-    if args.p_out is not None:
-        step["p_out"] = args.p_out
+    if args.add_if_p_below is not None:
+        step["add_if_p_below"] = args.add_if_p_below
+    if args.remove_if_p_above is not None:
+        step["remove_if_p_above"] = args.remove_if_p_above
     return step
 
 
@@ -565,15 +566,28 @@ def _interrupted(signum, _frame):
     raise KeyboardInterrupt
 
 
+def _former_note(message, category, filename, lineno, file=None, line=None) -> None:
+    """A former name given as input: one note on stderr (other warnings as usual)."""
+    from . import glossary
+
+    if issubclass(category, glossary.FormerName):
+        print(f"pkcalc: note: {message}", file=sys.stderr)
+    else:
+        sys.stderr.write(warnings.formatwarning(message, category, filename, lineno, line))
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``pkcalc`` console script."""
     import signal
-    import warnings
 
+    from . import glossary
     from .files import check_outputs
 
     parser = build_parser()
-    args = parser.parse_args(argv)
+    with warnings.catch_warnings():
+        warnings.simplefilter("always", glossary.FormerName)
+        warnings.showwarning = _former_note
+        args = parser.parse_args(argv)
     args.func = COMMANDS[args.command]
     args.argv = list(sys.argv[1:] if argv is None else argv)
     previous = None
@@ -584,6 +598,8 @@ def main(argv: Sequence[str] | None = None) -> int:
             # results are checked for finite values where they are made; numerical
             # warnings from the libraries are not messages for the user
             warnings.simplefilter("ignore", RuntimeWarning)
+            warnings.simplefilter("always", glossary.FormerName)
+            warnings.showwarning = _former_note
             check_outputs(_outputs(args), _inputs(args))
             return args.func(args)
     except PkcalcInputError as exc:

@@ -7,6 +7,8 @@ from __future__ import annotations
 
 import argparse
 
+from . import glossary
+
 __all__ = ["DESIGN_OPTIONS", "EXAMPLES", "PARAM_OPTIONS", "build_parser"]
 
 DESIGN_OPTIONS = ("plateau", "loading_time", "peak", "trough", "peak_min", "peak_max",
@@ -111,6 +113,26 @@ single dose, or the last of regular repeated doses).""",
   pkcalc demo --out demo-output""",
 }
 
+
+
+class _FormerOption(argparse.Action):
+    """A former option name: stores into the new option and notes the new name."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        glossary.former(option_string, "--" + self.dest.replace("_", "-"), "option")
+        setattr(namespace, self.dest, values)
+
+
+def _former_option(p, old: str, dest: str, **kwargs) -> None:
+    """Accept ``old`` (hidden from --help) for one release as the option stored in ``dest``."""
+    p.add_argument(old, dest=dest, action=_FormerOption, help=argparse.SUPPRESS, **kwargs)
+
+
+def _value(option: str):
+    """argparse type of an option whose values had another spelling in the last release."""
+    def convert(text: str) -> str:
+        return glossary.canonical_value(text, option)
+    return convert
 
 def _study_args(p: argparse.ArgumentParser) -> None:
     p.add_argument("study", nargs="?", metavar="STUDY.toml", help="study file naming the tables")
@@ -249,7 +271,8 @@ def _population_parser(sub) -> None:
     p = _add(sub, "population",
              "Typical values, between-subject variability and residual error from a study.")
     _study_args(p)
-    p.add_argument("--method", choices=["marginal", "iterative", "two-stage"],
+    p.add_argument("--method", choices=["marginal", "iterative", "two_stage"],
+                   type=_value("--method"),
                    help="maximum marginal likelihood (default), iterative two-stage, or "
                         "standard two-stage (rich data)")
     p.add_argument("--nodes", type=int, metavar="N",
@@ -265,10 +288,14 @@ def _population_parser(sub) -> None:
                         'sex on volume" (repeatable; the first is the base)')
     p.add_argument("--stepwise", action="append", metavar="TEXT",
                    help="a candidate effect for stepwise selection (repeatable)")
-    p.add_argument("--p-in", type=float, metavar="P",
-                   help="forward inclusion level (default 0.05)")
-    p.add_argument("--p-out", type=float, metavar="P",
-                   help="backward elimination level (default 0.01)")
+    p.add_argument("--add-if-p-below", type=float, metavar="P",
+                   help="forward steps add the best candidate while its likelihood-ratio "
+                        "p is below P (default 0.05)")
+    p.add_argument("--remove-if-p-above", type=float, metavar="P",
+                   help="backward steps remove the weakest added effect while its "
+                        "likelihood-ratio p is above P (default 0.01)")
+    _former_option(p, "--p-in", "add_if_p_below", type=float)
+    _former_option(p, "--p-out", "remove_if_p_above", type=float)
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.add_argument("--error-model", choices=["additive", "proportional", "combined"],
                    help="residual error (default proportional)")
@@ -369,11 +396,13 @@ def _nca_parser(sub) -> None:
     p = _add(sub, "nca",
              "Non-compartmental analysis per subject (AUC, terminal slope, CL, volumes, MRT).")
     _study_args(p)
-    p.add_argument("--auc-method", choices=["linear-up-log-down", "linear"],
-                   help="trapezoid rule (default linear-up-log-down)")
-    p.add_argument("--blq-rule", choices=["leading_zero", "zero", "drop"],
+    p.add_argument("--auc-method", choices=["linear_up_log_down", "linear"],
+                   type=_value("--auc-method"),
+                   help="trapezoid rule (default linear_up_log_down)")
+    p.add_argument("--blq", choices=["leading_zero", "zero", "drop"],
                    help="BLQ levels: leading_zero (default: before the first measurable level "
                         "as 0, later ones left out), zero, drop")
+    _former_option(p, "--blq-rule", "blq", choices=["leading_zero", "zero", "drop"])
     p.add_argument("--terminal", action="append", metavar="SUBJECT=T1,T2,...",
                    help="choose a subject's terminal points by hand (repeatable)")
     p.add_argument("--interval", metavar="first|last|each|N",

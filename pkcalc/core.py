@@ -72,7 +72,7 @@ WEIGHTINGS = ("uniform", "inverse_observed", "inverse_observed_squared",
 ERROR_MODELS = ("additive", "proportional", "combined")
 BLQ_METHODS = ("drop", "likelihood", "half_lloq")
 CI_METHODS = ("wald", "profile")
-NCA_AUC_METHODS = ("linear-up-log-down", "linear")
+NCA_AUC_METHODS = ("linear_up_log_down", "linear")
 NCA_BLQ_RULES = ("leading_zero", "zero", "drop")
 NCA_INTERVALS = ("each", "first", "last")
 
@@ -445,7 +445,7 @@ class FitOptions:
 
 
 EFFECT_FORMS = ("power", "linear", "categorical")
-POPULATION_METHODS = ("marginal", "iterative", "two-stage")
+POPULATION_METHODS = ("marginal", "iterative", "two_stage")
 
 
 @dataclass(frozen=True)
@@ -535,7 +535,7 @@ class PopulationOptions:
     ``between_subject`` is ``full`` (a correlation of clearance and volume) or
     ``diagonal``.  ``effects`` are the covariate effects of the model; ``models``
     several models to compare; ``stepwise`` candidate effects for forward
-    inclusion (``p_in``) and backward elimination (``p_out``).
+    inclusion (``add_if_p_below``) and backward elimination (``remove_if_p_above``).
     """
 
     method: str = "marginal"
@@ -552,8 +552,8 @@ class PopulationOptions:
     effects: tuple[Effect, ...] = ()
     models: tuple[PopulationModel, ...] = ()
     stepwise: tuple[Effect, ...] = ()
-    p_in: float = 0.05
-    p_out: float = 0.01
+    add_if_p_below: float = 0.05
+    remove_if_p_above: float = 0.01
 
     def __post_init__(self) -> None:
         _check(isinstance(self.adequacy, bool), "adequacy", "must be true or false",
@@ -569,7 +569,7 @@ class PopulationOptions:
                "must be Effect objects", self.effects)
         _check(all(isinstance(m, PopulationModel) for m in self.models), "models",
                "must be PopulationModel objects", self.models)
-        for name in ("p_in", "p_out"):
+        for name in ("add_if_p_below", "remove_if_p_above"):
             x = getattr(self, name)
             _check(_finite(x) and 0 < x < 1, name, "must be a probability between 0 and 1", x)
         _check(self.method == "marginal" or not (self.effects or self.models or self.stepwise),
@@ -596,7 +596,7 @@ class NcaOptions:
     Attributes
     ----------
     auc_method : str
-        ``linear-up-log-down`` (default) or ``linear``.
+        ``linear_up_log_down`` (default) or ``linear``.
     blq_rule : str
         ``leading_zero`` (default), ``zero`` or ``drop``.
     terminal_points : dict of str to tuple of float, h
@@ -613,7 +613,7 @@ class NcaOptions:
         is within the larger of the two of the interval (typical infusion time).
     """
 
-    auc_method: str = "linear-up-log-down"
+    auc_method: str = "linear_up_log_down"
     blq_rule: str = "leading_zero"
     terminal_points: dict[str, tuple[float, ...]] = field(default_factory=dict)
     r2_tolerance: float = 1e-4

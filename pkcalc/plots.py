@@ -223,7 +223,7 @@ def nca_figure(result, conv: UnitConverter | None = None) -> Figure | None:
             line_c = np.exp(result.terminal_intercept - result.terminal_slope * line_t)
             ax.semilogy(conv(line_t + ref, "time"), conv(line_c, "concentration"), "--",
                         color="0.4", lw=1.0,
-                        label=f"terminal slope (t½ {result.terminal_half_life:.3g} h)")
+                        label=f"terminal slope (half-life {result.terminal_half_life:.3g} h)")
     ax.set_xlabel(f"time [{conv.unit('time')}]")
     ax.set_ylabel(f"concentration [{conv.unit('concentration')}] (log scale)")
     plain_log_ticks(ax)

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import model
+from . import glossary, model
 from ._format import format_table, short, with_caution
 from .core import DoseEvent, ScenarioInput, Target, expand_events
 from .errors import PkcalcInputError, check_type
@@ -124,12 +124,12 @@ class ScenarioPrediction:
         rows = [
             ["clearance", p["clearance"], "L/h"],
             ["volume", p["volume"], "L"],
-            ["elimination rate", p["elimination_rate"], "1/h"],
-            ["half-life", p["half_life"], "h"],
-            ["time constant", p["time_constant"], "h"],
-            ["plateau", self.plateau_concentration, "mg/L"],
+            [glossary.label("elimination_rate"), p["elimination_rate"], "1/h"],
+            [glossary.label("half_life"), p["half_life"], "h"],
+            [glossary.label("time_constant"), p["time_constant"], "h"],
+            [glossary.label("plateau"), self.plateau_concentration, "mg/L"],
         ]
-        rows += [[f"time to {f:.0%} of plateau", t, "h"] for f, t in self.time_to_fraction.items()]
+        rows += [[glossary.time_to_label(f), t, "h"] for f, t in self.time_to_fraction.items()]
         if self.steady_state is not None:
             ss = self.steady_state
             rows += [["steady-state peak", ss.peak, "mg/L"],

@@ -15,7 +15,7 @@ from functools import cached_property
 from pathlib import Path
 from typing import Any
 
-from . import report
+from . import glossary, report
 from .errors import PkcalcInputError
 from .files import resolved
 
@@ -100,6 +100,12 @@ class Run:
     section_builder: Callable[[dict[str, bytes]], list[dict[str, Any]]] = lambda _p: []
     seed: int | None = None
     warnings: list[str] = field(default_factory=list)
+
+    def __post_init__(self) -> None:
+        # every abbreviation the text uses, spelled out once at its end (the glossary's)
+        line = glossary.explain(self.text)
+        if line:
+            self.text = self.text.rstrip("\n") + "\n\n" + line + "\n"
 
     @cached_property
     def pngs(self) -> dict[str, bytes]:
@@ -254,8 +260,9 @@ def _write_predict_files(out: Path, preds, conv, doc, pngs, inputs) -> list[Path
         row = {"scenario": pred.name, "folder": s}
         row.update({f"{k} [{conv.unit(_PARAM_KIND[k])}]": v for k, v in d["parameters"].items()})
         row[f"plateau_concentration [{cu}]"] = d["plateau_concentration"]
-        for f, t in d["time_to_fraction"].items():
-            row[f"time_to_{float(f) * 100:g}pct [{tu}]"] = t
+        for f in pred.time_to_fraction:
+            key = glossary.time_to_key(f)
+            row[glossary.header(key, tu)] = d[key]
         ss = d["steady_state"] or {}
         for key in ("peak", "trough", "average"):
             row[f"steady_state_{key} [{cu}]"] = ss.get(key)
@@ -587,8 +594,10 @@ def run_population(study, options=None, *, colour: bool = False, progress=None,
             written.append(report.write_atomic(out / "vpc.png", pngs["__vpc__"]))
         written.append(report.write_atomic(out / "population-subjects.csv",
                                            result.to_frame().to_csv(index=False)))
+        # -2 ln L after each outer iteration (the iterative method's is approximate)
+        name = "approximate_minus_2_ln_l" if result.method == "iterative" else "objective"
         iters = pd.DataFrame({"iteration": range(1, len(result.objective_per_iteration) + 1),
-                              "approximate_minus_2_ln_l": result.objective_per_iteration})
+                              name: result.objective_per_iteration})
         written.append(report.write_atomic(out / "population-iterations.csv",
                                            iters.to_csv(index=False)))
         written.append(report.write_atomic(out / "population.json", report.dumps(doc)))

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import model
+from . import glossary, model
 from ._format import format_table, short, with_caution
 from .core import ScenarioInput
 from .design import DesignResult, design_from_case, loading_dose_for_target, rate_for_target
@@ -120,7 +120,19 @@ def _label(e: Expectation) -> str:
         parts.append(f"S {short(e.args['salt_factor'])}")
     if "regimen" in e.args:
         parts.append(f"regimen #{e.args['regimen']}")
-    return e.quantity + (f" ({', '.join(parts)})" if parts else "")
+    # the quantity by its glossary key, what it is of in parentheses
+    name = e.quantity
+    if name == "time_to_fraction" and "fraction" in e.args:  # one key per fraction
+        name = glossary.time_to_key(float(e.args["fraction"]))
+        parts = [p for p in parts if not p.startswith("fraction ")]
+    elif name.startswith("design."):
+        _, part, name = name.split(".")
+        parts.insert(0, {"estimate": "design estimate", "exact": "design, unrounded",
+                         "predicted": "design, predicted",
+                         "regimen": "design, rounded"}.get(part, "design"))
+    elif name in ("peak", "trough", "average"):
+        name = f"steady_state_{name}"
+    return name + (f" ({', '.join(parts)})" if parts else "")
 
 
 def _design_value(result: DesignResult, quantity: str, number: int = 1) -> float:

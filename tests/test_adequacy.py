@@ -141,12 +141,12 @@ def test_sampling_advice_matches_the_closed_form_fast_phase():
     assert abs(ours - expected) <= step + 1e-9
 
 
-def test_sparse_subjects_get_not_enough_data_never_a_failure():
+def test_sparse_subjects_get_too_few_levels_never_a_failure():
     t = np.array([2.0, 12.0])
     subs = [subject(i, t, model.concentration(t, [0.0], [500.0], [1.0], 4.0, 40.0))
             for i in range(3)]
     found = verdicts(subs)
-    assert {a.verdict for a in found.values()} == {"not_enough_data"}
+    assert {a.verdict for a in found.values()} == {"too_few_levels"}
     assert all("at least" in a.reason for a in found.values())
 
 
@@ -155,7 +155,7 @@ def test_levels_during_the_infusion_do_not_count_as_after_it():
     t = np.array([1, 2, 4, 6, 8, 12, 16, 20, 26, 30.0])
     c = model.concentration(t, [0.0], [2400.0], [24.0], 4.0, 40.0)
     found = verdicts([subject("L", t, c, amounts=(2400.0,), durations=(24.0,))])
-    assert found["L"].verdict == "not_enough_data"
+    assert found["L"].verdict == "too_few_levels"
     assert found["L"].levels_after_infusion == 2
 
 
@@ -189,7 +189,7 @@ def test_cli_json_csv_and_report_carry_the_check(run_cli, tmp_path):
     doc = r.json()
     for d in doc["subjects"]:
         a = d["adequacy"]
-        assert a["verdict"] in ("adequate", "distribution_phase", "not_enough_data")
+        assert a["verdict"] in ("adequate", "distribution_phase", "too_few_levels")
         assert {"delta_aic", "likelihood_ratio_p", "runs_test_p", "trend_test_p",
                 "two_exponential_sensitivity_check", "earliest_sampling_after_infusion"} <= set(a)
     summary = doc["adequacy_summary"]
@@ -197,7 +197,7 @@ def test_cli_json_csv_and_report_carry_the_check(run_cli, tmp_path):
     assert f"{summary['distribution_phase']} of 8 subjects show a distribution phase" in \
         summary["text"]
     frame = pd.read_csv(out / "fit.csv")
-    assert "one_compartment" in frame and "adequacy_lrt_p" in frame
+    assert "one_compartment" in frame and "adequacy_likelihood_ratio_p" in frame
     r = run_cli("fit", SCENARIOS / "demo-biphasic.toml", "--report", tmp_path / "r.html")
     assert r.code == 0, r.err
     assert "Is one compartment adequate" in r.out
@@ -254,12 +254,12 @@ def test_population_output_carries_the_check(run_cli, tmp_path):
     doc = r.json()
     assert doc["adequacy_summary"]["distribution_phase"] >= 6
     assert all(d["adequacy"]["verdict"] in ("adequate", "distribution_phase",
-                                            "not_enough_data") for d in doc["subjects"])
+                                            "too_few_levels") for d in doc["subjects"])
     assert list((tmp_path / "pop").glob("adequacy-*.png"))
     r = run_cli("population", SCENARIOS / "demo-sparse.toml", "--json", "--vpc-replicates",
                 "0", "--method", "iterative")
     counts = r.json()["adequacy_summary"]
-    assert counts["not_enough_data"] == counts["subjects"]
+    assert counts["too_few_levels"] == counts["subjects"]
 
 
 # --------------------------------------------------------------------------- design from levels

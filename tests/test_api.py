@@ -354,7 +354,8 @@ def test_frames_carry_units_in_their_headers(pop):
                 "accumulation_ratio", "auc_extrapolated_percent", "fluctuation_percent",
                 "number", "kind", "levels", "trough_source", "reason", "first_dose_clock",
                 "ln_clearance_deviation", "ln_volume_deviation", "one_compartment",
-                "adequacy_delta_aic", "adequacy_lrt_p", "adequacy_runs_p", "adequacy_trend_p"}
+                "adequacy_delta_aic", "adequacy_likelihood_ratio_p", "adequacy_runs_test_p",
+                "adequacy_trend_test_p"}
     for frame in (nca.to_frame(), nca.intervals_frame(), fit.to_frame(), pop.to_frame()):
         numeric = frame.select_dtypes("number").columns
         bare = [c for c in numeric if "[" not in c and c not in unitless]

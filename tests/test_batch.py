@@ -57,7 +57,7 @@ def test_every_row_equals_the_single_scenario_path():
                                                                  rel=1e-9)
         assert r["concentration_at_100h [mg/L]"] == pytest.approx(pred.concentration[1],
                                                                   rel=1e-9)
-        assert r["time_to_90pct [h]"] == pytest.approx(pred.time_to_fraction[0.9], rel=1e-12)
+        assert r["time_to_90_percent [h]"] == pytest.approx(pred.time_to_fraction[0.9], rel=1e-12)
         if pred.steady_state is not None:
             assert r["steady_state_peak [mg/L]"] == pytest.approx(pred.steady_state.peak,
                                                                   rel=1e-9)

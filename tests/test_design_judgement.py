@@ -135,8 +135,8 @@ def test_the_ratio_rule_is_labelled_when_not_at_steady_state():
     history = [DoseEvent(0.0, 50.0 * 48, 48.0)]
     res = adjust_proportional(3.0, 8.0, current_rate=50.0, volume=40.0, measured_time=4.0,
                               history=history)
-    assert "classical_new_rate" not in res.estimates
-    formula = next(f for f in res.formulas if f["key"] == "classical_new_rate")
+    assert "ratio_rule_rate" not in res.estimates
+    formula = next(f for f in res.formulas if f["key"] == "ratio_rule_rate")
     assert "NOT at steady state" in formula["validity"]
 
 

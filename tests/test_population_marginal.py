@@ -195,9 +195,9 @@ def test_comparison_table_and_likelihood_ratio_test():
 @pytest.mark.slow  # a long statistical check (python -m pytest -m slow)
 def test_stepwise_adds_the_real_effect_only():
     subs = invented_study(120, seed=7, male_factor=0.6, exp_cl=0.0)
-    comp = stepwise(subs, PopulationOptions(p_in=0.01, p_out=0.001),
+    comp = stepwise(subs, PopulationOptions(add_if_p_below=0.01, remove_if_p_above=0.001),
                     (Effect("sex", "clearance"), Effect("weight", "clearance", reference=70.0)))
-    added = [s["effect"] for s in comp.steps if s["step"] == "forward" and s["accepted"]]
+    added = [s["effect"] for s in comp.steps if s["step"] == "forward" and s["decision"] == "added"]
     print(f"\n[marginal] stepwise: {comp.steps}")
     assert any(a.startswith("sex on clearance") for a in added)
     assert comp.selected is not None and "sex" in comp.selected
@@ -271,7 +271,7 @@ def test_cli_marginal_json_keys_and_no_progress_off_a_terminal(run_cli, write):
     assert r.code == 0, r.err
     doc = r.json()
     assert doc["method"] == "marginal" and doc["nodes"] == 1
-    assert {"objective", "aic", "bic", "n_parameters", "parameters", "covariance_step",
+    assert {"objective", "aic", "bic", "n_parameters", "parameters", "standard_errors",
             "effects"} <= set(doc)
     names = [p["name"] for p in doc["parameters"]]
     assert "weight on clearance: exponent" in names and "typical clearance" in names
@@ -291,7 +291,7 @@ def test_cli_comparison_writes_the_other_models_when_one_fails(run_cli, write, t
     doc = r.json()
     models = {m["model"]: m for m in doc["comparison"]["models"]}
     assert models["height"]["error"] and "no column 'height'" in models["height"]["error"]
-    assert models["sex"]["aic"] is not None and models["sex"]["lrt_df"] == 1
+    assert models["sex"]["aic"] is not None and models["sex"]["likelihood_ratio_df"] == 1
     assert "model 'height'" in r.err
     assert (tmp_path / "out" / "population.json").exists()
 

@@ -57,7 +57,7 @@ def test_outputs_report_and_simulation(run_cli, tmp_path):
     html = (tmp_path / "r.html").read_text()
     assert html.index("CAUTION") < html.index("Sampling times")
     csv = (out / "sampling-times.csv").read_text().splitlines()
-    assert csv[0].startswith("scenario,design,group,subjects,level,time [h]")
+    assert csv[0].startswith("scenario,design,group,subjects,sample,time [h]")
 
 
 def test_a_scenario_with_a_problem_is_named_and_the_rest_computed(run_cli, write):

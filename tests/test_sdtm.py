@@ -176,7 +176,7 @@ def test_end_before_start_and_damaged_transport_file(tmp_path, run_cli):
 def test_a_study_file_can_name_an_sdtm_folder(tmp_path, run_cli):
     folder = _study(tmp_path, "csv", noise=0.05)
     (tmp_path / "study.toml").write_text(f'sdtm = "{folder.name}"\nanalyte = "INVDRG"\n')
-    r = run_cli("population", tmp_path / "study.toml", "--method", "two-stage")
+    r = run_cli("population", tmp_path / "study.toml", "--method", "two_stage")
     assert r.code == 0, r.err
     assert "Imported from SDTM" in r.out
 

@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from .. import glossary
 from ..errors import PkcalcInputError, Problem
 from ..units import KINDS, NUMERIC_RANGE, parse_header, parse_unit
 
@@ -137,7 +138,7 @@ class BatchSummary:
             return {k: float(np.percentile(a, q)) for k, q in (("p05", 5), ("p50", 50),
                                                                  ("p95", 95))}
         return {"plateau_concentration": pct(self.plateau),
-                "time_to_90pct": pct(self.time_to_90),
+                "time_to_90_percent": pct(self.time_to_90),
                 "fraction_in_window_at_steady_state": pct(self.fraction_in_window)}
 
     def summary(self, caution: bool = True) -> str:
@@ -159,11 +160,11 @@ class BatchSummary:
             if self.worker_peak_rss_mb:
                 mem += f", largest worker {max(self.worker_peak_rss_mb.values()):,.0f} MB"
             lines.append(mem)
-        rows = [[name.replace("_", " "), d["p05"], d["p50"], d["p95"]]
-                for name, d in self.distribution().items() if d is not None]
+        rows = [[glossary.label(name), glossary.unit_of(name) or "0-1", d["p05"], d["p50"],
+                 d["p95"]] for name, d in self.distribution().items() if d is not None]
         if rows:
-            lines.append(format_table(["across the batch (first rows)", "5th", "median",
-                                       "95th"], rows))
+            lines.append(format_table(["across the batch (first rows)", "unit", "5th",
+                                       "median", "95th"], rows))
         return with_caution("\n".join(lines), caution)
 
     def to_frame(self, max_rows: int | None = None):

@@ -294,7 +294,7 @@ def tally(summary: BatchSummary, result: pd.DataFrame, collect: int) -> None:
     if room > 0:
         ok = ~failed[:room]
         summary.plateau += result["plateau_concentration [mg/L]"].to_numpy()[:room][ok].tolist()
-        summary.time_to_90 += result["time_to_90pct [h]"].to_numpy()[:room][ok].tolist()
+        summary.time_to_90 += result["time_to_90_percent [h]"].to_numpy()[:room][ok].tolist()
         if "fraction_in_window_at_steady_state" in result:
             summary.fraction_in_window += result["fraction_in_window_at_steady_state"] \
                 .to_numpy()[:room][ok].tolist()
@@ -316,7 +316,7 @@ def scenario_rows(path: Path, options: BatchOptions) -> tuple[pd.DataFrame, list
                "plateau_concentration [mg/L]": pred.plateau_concentration
                if pred.plateau_concentration is not None else np.nan}
         for f in FRACTIONS:
-            row[f"time_to_{f * 100:g}pct [h]"] = pred.time_to_fraction.get(
+            row[f"time_to_{f * 100:g}_percent [h]"] = pred.time_to_fraction.get(
                 f, float(model.time_to_fraction(f, p["clearance"], p["volume"])))
         ss = pred.steady_state
         row["steady_state_peak [mg/L]"] = ss.peak if ss else np.nan

@@ -186,7 +186,7 @@ def _results(cl, v, reg: _Regimen, mean_rate, vals, spec: BatchSpec, options: Ba
     out["elimination_rate [1/h]"] = p["elimination_rate"]
     out["plateau_concentration [mg/L]"] = model.plateau_concentration(mean_rate, cl)
     for f in FRACTIONS:
-        out[f"time_to_{f * 100:g}pct [h]"] = model.time_to_fraction(f, cl, v)
+        out[f"time_to_{f * 100:g}_percent [h]"] = model.time_to_fraction(f, cl, v)
     if spec.intermittent:  # columns depend on the header only (stable across chunks)
         peak, trough, avg = model.steady_state_intermittent(reg.amount, reg.duration,
                                                             reg.interval, cl, v)
@@ -318,7 +318,7 @@ def _variability(cl, v, reg: _Regimen, mean_rate, loading, lo, hi,
                        load, None if lo is None else (lo[sl, None], hi[sl, None]), options,
                        any_int)
     if rows == 0:  # keep the columns of an empty chunk (schema of the output)
-        names = ["plateau_concentration", "time_to_90pct",
+        names = ["plateau_concentration", "time_to_90_percent",
                  *(("steady_state_peak", "steady_state_trough") if any_int else ()),
                  *(f"concentration_at_{t:g}h" for t in options.at)]
         for name in names:
@@ -348,7 +348,7 @@ def _block_metrics(metrics, c_i, v_i, rg: _Regimen, mean_rate, loading, window,
 
     plateau = model.plateau_concentration(mean_rate[:, None], c_i)
     add("plateau_concentration", plateau)
-    add("time_to_90pct", model.time_to_fraction(0.9, c_i, v_i))
+    add("time_to_90_percent", model.time_to_fraction(0.9, c_i, v_i))
     if any_int:
         peak, trough, _ = model.steady_state_intermittent(rg.amount, rg.duration,
                                                           rg.interval, c_i, v_i)
@@ -374,8 +374,8 @@ def _block_metrics(metrics, c_i, v_i, rg: _Regimen, mean_rate, loading, window,
 def _percentile_columns(metrics: dict[str, list[np.ndarray]]) -> dict[str, np.ndarray]:
     """5th, 50th and 95th percentiles over the virtual subjects, per row."""
     out = {}
-    units = {"plateau_concentration": "mg/L", "time_to_90pct": "h", "steady_state_peak": "mg/L",
-             "steady_state_trough": "mg/L"}
+    units = {"plateau_concentration": "mg/L", "time_to_90_percent": "h",
+             "steady_state_peak": "mg/L", "steady_state_trough": "mg/L"}
     for name, parts in metrics.items():
         arr = np.concatenate(parts, axis=0)
         if name.startswith("fraction_in_window"):

@@ -281,7 +281,7 @@ def _tally_part(result: PartResult, frame: pd.DataFrame, limit: int) -> None:
         result.plateau = np.concatenate(
             [result.plateau, frame["plateau_concentration [mg/L]"].to_numpy(float)[:room]])
         result.time_to_90 = np.concatenate(
-            [result.time_to_90, frame["time_to_90pct [h]"].to_numpy(float)[:room]])
+            [result.time_to_90, frame["time_to_90_percent [h]"].to_numpy(float)[:room]])
         if "fraction_in_window_at_steady_state" in frame:
             result.fraction = np.concatenate([
                 result.fraction if result.fraction is not None else np.empty(0),

@@ -202,7 +202,7 @@ def adjust_proportional(
         validity = (steady_state_validity(events, measured_time, k) if history else
                     "valid at steady state only (no dose history given: assumed)")
         result.formulas.append({"name": "ratio rule: new rate = old rate x target / level",
-                                "key": "classical_new_rate", "value": current_rate * ratio,
+                                "key": "ratio_rule_rate", "value": current_rate * ratio,
                                 "kind": "rate", "validity": validity})
     result.notes.append("assumes linear one-compartment kinetics")
     return result
@@ -283,7 +283,7 @@ def _proportional_intermittent(events, cl, v, measured, t_level, target, current
                f"({basis}) from {short(state.level)} mg/L"],
         salt_factor=salt_factor)
     result.formulas.append({"name": "ratio rule: new dose = old dose x target / level",
-                            "key": "classical_new_dose",
+                            "key": "ratio_rule_dose",
                             "value": current_dose * target / measured, "kind": "amount",
                             "validity": steady_state_validity(events, t_level, k)})
     return result

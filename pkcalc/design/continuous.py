@@ -240,10 +240,10 @@ def _continuous_from_zero(ck: _ContinuousChecks, exact_rate: float, loading_time
         if ld:
             near = np.abs(c / plateau - 1.0) <= NEAR_TARGET
             idx = np.flatnonzero(after & ~near)
-            predicted["time_to_within_5pct"] = 0.0 if idx.size == 0 else float(
+            predicted["time_to_within_5_percent"] = 0.0 if idx.size == 0 else float(
                 t[min(idx[-1] + 1, t.size - 1)])
         else:
-            predicted["time_to_within_5pct"] = float(-math.log(NEAR_TARGET) / k)
+            predicted["time_to_within_5_percent"] = float(-math.log(NEAR_TARGET) / k)
         if ld and window.high is not None and predicted["highest"] > window.high:
             flags.append(f"the course reaches {short(predicted['highest'])} mg/L, above "
                          f"{short(window.high)} mg/L")

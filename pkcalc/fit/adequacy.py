@@ -14,7 +14,7 @@ one-compartment answer):
   since the last dose (:mod:`pkcalc.fit.residuals`) -- reported as evidence.
 
 Verdict: ``distribution_phase`` when the likelihood-ratio test rejects one
-compartment at ``ALPHA``; ``adequate`` otherwise; ``not_enough_data`` when the
+compartment at ``ALPHA``; ``adequate`` otherwise; ``too_few_levels`` when the
 subject has too few levels (fewer than ``MIN_AFTER_INFUSION`` after the end of
 an infusion, or too few in all for five or six parameters).  The nesting is
 at the boundary (``Q -> 0``) and samples are small, where the chi-square
@@ -63,7 +63,7 @@ SETTLE = (5, 1e-3)
 #: Iterations of that last run (a flagged fit still unfinished says so).
 REFINE_ITER = 60
 
-VERDICTS = ("adequate", "distribution_phase", "not_enough_data")
+VERDICTS = ("adequate", "distribution_phase", "too_few_levels")
 
 
 @dataclass(frozen=True)
@@ -73,7 +73,7 @@ class Adequacy:
     Attributes
     ----------
     verdict : str
-        ``adequate``, ``distribution_phase`` or ``not_enough_data``.
+        ``adequate``, ``distribution_phase`` or ``too_few_levels``.
     reason : str
         The verdict in plain words.
     levels_after_infusion : int
@@ -141,7 +141,7 @@ def counts_sentence(counts: dict[str, int]) -> str:
     n = sum(counts.values())
     return (f"{counts['distribution_phase']} of {n} subjects show a distribution phase "
             f"(one compartment not adequate); {counts['adequate']} adequate; "
-            f"{counts['not_enough_data']} with too few levels to tell")
+            f"{counts['too_few_levels']} with too few levels to tell")
 
 
 # --------------------------------------------------------------------------- timing
@@ -211,11 +211,11 @@ def check_adequacy(subjects: list[SubjectData], fits: list, options: FitOptions
                   "runs_p": runs_p[i], "trend_p": trend_p[i]}
         if after[i] < MIN_AFTER_INFUSION:
             out[s.subject] = Adequacy(
-                "not_enough_data", f"{after[i]} level(s) after the end of an infusion: the "
+                "too_few_levels", f"{after[i]} level(s) after the end of an infusion: the "
                 f"check needs at least {MIN_AFTER_INFUSION}", **common)
         elif n_used[i] < need:
             out[s.subject] = Adequacy(
-                "not_enough_data", f"{n_used[i]} levels: the two-exponential check needs at "
+                "too_few_levels", f"{n_used[i]} levels: the two-exponential check needs at "
                 f"least {need}", **common)
         else:
             eligible.append((i, common))

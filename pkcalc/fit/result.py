@@ -270,7 +270,7 @@ class FitResult:
         lines = [f"Subject {self.subject}: {self.method.replace('_', ' ')}"
                  f" ({self.error_model or self.weighting}), "
                  f"{'converged' if self.converged else 'NOT converged'}, "
-                 f"-2lnL {short(self.objective, 6)}, AIC {short(self.aic, 6)}, "
+                 f"-2 ln L {short(self.objective, 6)}, AIC {short(self.aic, 6)}, "
                  f"{self.n_obs} levels ({self.n_blq} BLQ), {self.starts_agreed}/{self.starts} "
                  "starts agreed",
                  format_table(["parameter", "value", "SE", "RSE %", "CI low", "CI high"], rows)]

@@ -26,14 +26,14 @@ R2_TOLERANCE = 1e-4
 AUC_METHODS = NCA_AUC_METHODS
 
 
-def auc_segments(t, c, method: str = "linear-up-log-down"):
+def auc_segments(t, c, method: str = "linear_up_log_down"):
     """Area and first-moment area of each segment between consecutive samples.
 
     Parameters
     ----------
     t, c : array_like, shape (n,)
         Times (h, increasing) and levels (mg/L).
-    method : {"linear-up-log-down", "linear"}
+    method : {"linear_up_log_down", "linear"}
         The log rule is used for falling segments with both levels > 0
         (Yeh & Kwan 1978); it is exact for a single exponential.
 
@@ -149,7 +149,7 @@ def terminal_phase(t, c, *, min_points: int = 3, tolerance: float = R2_TOLERANCE
         f"(adjusted R2 {adj:.4f}; ties within {tolerance:g} resolved to more points)")
 
 
-def level_at(t, c, at: float, method: str = "linear-up-log-down") -> float:
+def level_at(t, c, at: float, method: str = "linear_up_log_down") -> float:
     """The level at time ``at`` between two samples (``t[0] <= at <= t[-1]``):
     log-linear between falling positive levels (log-down), linear otherwise -- the
     same rule as the areas, so that an area cut at ``at`` adds up."""

@@ -149,7 +149,7 @@ def _sorted(time, conc, blq, rows, reference, notes: list[str]) -> Levels:
 
 
 def nca_subject(subject: str, time, conc, blq, dose_start, dose_amount, dose_duration, *,
-                auc_method: str = "linear-up-log-down", blq_rule: str = "leading_zero",
+                auc_method: str = "linear_up_log_down", blq_rule: str = "leading_zero",
                 terminal_times=None, r2_tolerance: float = 1e-4,
                 extrapolation_limit: float = EXTRAPOLATION_LIMIT,
                 interval_tolerance: tuple[float, float] = INTERVAL_TOLERANCE,
@@ -164,7 +164,7 @@ def nca_subject(subject: str, time, conc, blq, dose_start, dose_amount, dose_dur
         Sample times (study clock) and levels (NaN allowed where BLQ).
     blq : array_like of bool
     dose_start, dose_amount, dose_duration : array_like, h, mg, h
-    auc_method : {"linear-up-log-down", "linear"}
+    auc_method : {"linear_up_log_down", "linear"}
     blq_rule : {"leading_zero", "zero", "drop"}
     terminal_times : sequence of float, optional, h (study clock)
         Manual choice of the terminal points (used in the interval holding them).

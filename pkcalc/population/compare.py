@@ -10,8 +10,8 @@ with no nested partner get no test (compare by AIC/BIC).  :meth:`ModelComparison
 lists every nested pair.  Stepwise selection
 (common practice: forward inclusion at p < 0.05, backward elimination at
 p > 0.01) adds the candidate effect with the smallest p-value while it is below
-``p_in``, then removes the effect with the largest p-value while it is above
-``p_out``.
+``add_if_p_below``, then removes the effect with the largest p-value while it is above
+``remove_if_p_above``.
 """
 
 from __future__ import annotations
@@ -26,6 +26,24 @@ from .estimate import marginal_estimate, model_effects
 from .result import PopulationResult
 
 __all__ = ["ModelComparison", "compare_models", "stepwise"]
+
+
+#: Caption of the table of compared models (terminal text and HTML).
+COMPARED_CAPTION = ("Models compared (first model '{base}'; each likelihood-ratio test is "
+                    "against the model in the column 'compared with': the largest model "
+                    "nested in it, or in a stepwise search the model of the step before):")
+
+
+def stepwise_lines(steps: list[dict]) -> list[str]:
+    """The stepwise path in words: each step's test is against the model of the step before."""
+    if not steps:
+        return []
+    out = ["Stepwise path (each step's likelihood-ratio test is against the model of the step "
+           "before; forward steps add while p < the add threshold, backward steps remove while "
+           "p > the remove threshold):"]
+    out += [f"  {s['step']}: {s['effect']} (against '{s['compared_with']}'): p = {s['p']:.3g},"
+            f" threshold {s['threshold']:g} -> {s['decision']}" for s in steps]
+    return out
 
 
 @dataclass
@@ -48,8 +66,9 @@ class ModelRow:
                 "n_parameters": None if r is None else r.n_parameters,
                 "aic": None if r is None else r.aic, "bic": None if r is None else r.bic,
                 "converged": None if r is None else r.converged,
-                "compared_with": self.compared_with, "lrt_df": self.lrt_df,
-                "lrt_statistic": self.lrt_statistic, "lrt_p": self.lrt_p, "error": self.error}
+                "compared_with": self.compared_with, "likelihood_ratio_df": self.lrt_df,
+                "likelihood_ratio_statistic": self.lrt_statistic,
+                "likelihood_ratio_p": self.lrt_p, "error": self.error}
 
 
 @dataclass
@@ -93,7 +112,7 @@ class ModelComparison:
         frame = pd.DataFrame([r.as_dict() for r in self.rows])
         frame["effects"] = frame["effects"].map("; ".join)
         frame["selected"] = [r is self.best() for r in self.rows]
-        return frame.rename(columns={"objective": "-2lnL"})
+        return frame
 
     def summary(self, caution: bool = True) -> str:
         """The comparison table, the stepwise path and every nested pair."""
@@ -108,17 +127,13 @@ class ModelComparison:
                  r.lrt_p, "FAILED: " + r.error if r.error else
                  ("yes" if r.result.converged else "NO"), "<-" if r is best else ""]
                 for r in self.rows]
-        lines = [f"Models compared (base '{self.base}'; each tested against the largest "
-                 "model nested in it):"]
+        lines = [COMPARED_CAPTION.format(base=self.base)]
         if self.common:
             lines.append("every model also holds: " + "; ".join(self.common))
-        lines += [format_table(["model", "effects", "-2lnL", "parameters", "AIC", "BIC",
-                                "compared with", "LRT df", "LRT p", "converged", "reported"],
-                               rows)]
-        lines += [f"  {s['step']}: {s['effect']}: p = {s['p']:.3g} -> "
-                  + (("kept" if s["step"] == "forward" else "removed") if s["accepted"] else
-                     ("not added" if s["step"] == "forward" else "kept"))
-                  for s in self.steps]
+        lines += [format_table(["model", "effects", "-2 ln L", "parameters", "AIC", "BIC",
+                                "compared with", "likelihood-ratio df", "likelihood-ratio p",
+                                "converged", "reported"], rows)]
+        lines += stepwise_lines(self.steps)
         pairs = self.tests()
         if pairs:
             lines.append("Every nested pair:")
@@ -217,8 +232,8 @@ def compare_models(subjects: list[SubjectData], options: PopulationOptions,
 def stepwise(subjects: list[SubjectData], options: PopulationOptions,
              candidates: tuple[Effect, ...], *,
              progress: Callable[[str], None] | None = None) -> ModelComparison:
-    """Forward inclusion at ``options.p_in``, then backward elimination at
-    ``options.p_out``, from the model of ``options`` (its effects always stay)."""
+    """Forward inclusion at ``options.add_if_p_below``, then backward elimination at
+    ``options.remove_if_p_above``, from the model of ``options`` (its effects always stay)."""
     base_effects = model_effects(options)
     current = PopulationModel("base", base_effects)
     current_row = _estimate(subjects, options, current, progress, None)
@@ -241,9 +256,11 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
         if not ok:
             break
         c, r = min(ok, key=lambda x: x[1].lrt_p)
+        added = r.lrt_p < options.add_if_p_below
         steps.append({"step": "forward", "effect": c.label, "p": r.lrt_p,
-                      "accepted": r.lrt_p < options.p_in})
-        if r.lrt_p >= options.p_in:
+                      "threshold": options.add_if_p_below, "compared_with": current_row.name,
+                      "decision": "added" if added else "not added"})
+        if r.lrt_p >= options.add_if_p_below:
             break
         current, current_row = PopulationModel(r.name, r.effects), r
         pool.remove(c)
@@ -264,9 +281,11 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
         if not ok:
             break
         e, row, p = max(ok, key=lambda x: x[2])
+        removed = p > options.remove_if_p_above
         steps.append({"step": "backward", "effect": e.label, "p": p,
-                      "accepted": p > options.p_out})
-        if p <= options.p_out:
+                      "threshold": options.remove_if_p_above, "compared_with": current_row.name,
+                      "decision": "removed" if removed else "kept"})
+        if p <= options.remove_if_p_above:
             break
         current, current_row = PopulationModel(row.name, row.effects), row
     return ModelComparison(rows, "base", steps, current.name,

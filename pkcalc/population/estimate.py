@@ -66,7 +66,7 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
     final_fits : bool
         Individual estimates (conditional modes with their SEs) under the result.
     covariance : bool
-        The covariance step (standard errors); off for bootstrap replicates.
+        Standard errors from the observed information; off for bootstrap replicates.
 
     Raises
     ------
@@ -240,6 +240,7 @@ def _assemble(problem: MarginalProblem, fit: MarginalFit, options: PopulationOpt
         correlation=None if problem.diagonal else float(
             omega[0, 1] / math.sqrt(omega[0, 0] * omega[1, 1])),
         iterations=fit.iterations, converged=fit.converged, model_name=name,
+        objective_per_iteration=list(fit.history),
         parameters=rows, objective=fit.objective, n_parameters=n_p,
         n_levels=problem.n_levels, aic=fit.objective + 2 * n_p,
         bic=fit.objective + n_p * math.log(max(problem.n_levels, 1)),
@@ -264,10 +265,10 @@ def _assemble(problem: MarginalProblem, fit: MarginalFit, options: PopulationOpt
                         f"{fit.iterations} iterations, {fit.evaluations} likelihood "
                         f"evaluations, {fit.seconds:.1f} s")
     result.notes.append("standard errors and 95 % intervals from the observed information "
-                        "(covariance step); intervals of positive quantities on the log scale")
+                        "(the inverse of the curvature of -2 ln L at the estimates); intervals "
+                        "of positive quantities on the log scale")
     result.notes.append("BIC uses the number of levels; shrinkage = 1 - SD(ln deviations "
-                        "from typical) / between-subject SD (Savic & Karlsson 2009, from "
-                        "memory)")
+                        "from typical) / between-subject SD (Savic & Karlsson 2009)")
     result.warnings += fit.warnings
     if not fit.converged:
         result.warnings.append(f"the marginal-likelihood estimate did not converge: "

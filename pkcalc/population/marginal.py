@@ -34,7 +34,7 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -118,6 +118,7 @@ class MarginalFit:
     theta: np.ndarray              # conditional modes (N, 2): ln CL_i, ln V_i
     posterior: np.ndarray          # (N, 2, 2)
     seconds: float
+    history: list[float] = field(default_factory=list)   # -2 ln L after each iteration
 
 
 class MarginalProblem:
@@ -160,8 +161,10 @@ class MarginalProblem:
 
     def names(self) -> list[str]:
         omega = ["ln SD of ln clearance", "ln SD of ln volume"]
-        if not self.diagonal:
-            omega.append("clearance-volume Cholesky term")
+        if not self.diagonal:  # the factor L of Omega = L L': say what each number is
+            omega = ["ln SD of ln clearance",
+                     "ln SD of ln volume not explained by ln clearance",
+                     "covariance of ln CL and ln V / SD of ln CL"]
         err = {"additive": ["ln additive SD"], "proportional": ["ln proportional SD"],
                "combined": ["ln additive SD", "ln proportional SD"]}[self.error]
         return self.design.names + omega + err
@@ -343,6 +346,7 @@ class MarginalProblem:
         t0 = time.perf_counter()
         self.theta = None
         state = {"it": 0}
+        history: list[float] = []
 
         def fun(psi):
             return self.objective(psi, update=False)
@@ -353,6 +357,7 @@ class MarginalProblem:
         def callback(psi):
             state["it"] += 1
             value = self.objective(psi, update=True)     # move the warm start along
+            history.append(float(value))
             if progress is not None:
                 progress(f"iteration {state['it']}: -2 ln L {value:.4f}")
             if reference is not None and abs(value - reference[1]) < 1e-3 and \
@@ -391,7 +396,7 @@ class MarginalProblem:
             warnings += warn
         return MarginalFit(psi, value, converged and math.isfinite(value), message,
                            int(res.nit), self.evaluations, cov, corr, cond, warnings, theta,
-                           post, time.perf_counter() - t0)
+                           post, time.perf_counter() - t0, history)
 
     def _covariance(self, psi: np.ndarray):
         """Covariance of the outer parameters from the observed information."""

@@ -52,12 +52,13 @@ class PopulationResult:
         Each subject's typical ``ln CL, ln V`` (with its covariates).
     model_name, effects, parameters : str, list of dict
         Marginal likelihood: the model, each covariate effect and every estimated
-        parameter with its SE and 95 % interval (the covariance step).
+        parameter with its SE and 95 % interval (from the observed information).
     objective, n_parameters, n_levels, aic, bic : float, int
         ``-2 ln L`` of the marginal likelihood, parameters, levels; AIC ``= -2 ln L
         + 2 p``, BIC ``= -2 ln L + p ln(levels)``.
     parameter_names, parameter_correlation, condition_number
-        The covariance step on the estimation scale.
+        Covariance of the estimates (inverse observed information) on the estimation
+        scale.
     nodes : int
         Gauss-Hermite nodes per dimension (1: Laplace).
     parameter_covariance : ndarray or None

@@ -21,7 +21,7 @@ def population_estimate(subjects: list[SubjectData], o: PopulationOptions, progr
     """The estimate of the chosen method (marginal falls back to the iterative two-stage
     method, with a warning, when it does not converge and no effect needs it)."""
 
-    if o.method == "two-stage":
+    if o.method == "two_stage":
         return two_stage(subjects, FitOptions(error_model=o.error_model, blq=o.blq),
                          covariate=o.covariate, reference_weight=o.reference_weight)
     if o.method == "iterative":
@@ -71,7 +71,7 @@ def population_bootstrap(subjects: list[SubjectData], o: PopulationOptions,
                          engine: Engine | None = None) -> None:
     """Bootstrap over subjects: SEs and percentile intervals of the typical values."""
     estimate = None
-    if result.method == "two-stage":       # each replicate by the same method
+    if result.method == "two_stage":       # each replicate by the same method
         estimate = partial(two_stage, options=FitOptions(error_model=o.error_model, blq=o.blq),
                            covariate=o.covariate, reference_weight=o.reference_weight)
     elif result.method == "marginal":

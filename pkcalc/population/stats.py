@@ -7,7 +7,7 @@ between-subject variances and CVs, the correlation and the residual SDs
 (marginal likelihood), or the typical values, weight exponents, CVs and residual
 SDs (two-stage methods).  Canonical units; per kg where the weight model says so.
 
-- Standard errors: the covariance step (delta method from the observed
+- Standard errors: the inverse observed information (delta method from the observed
   information, :mod:`pkcalc.population.estimate`), or the bootstrap / linearised
   information of the two-stage methods; ``None`` where there is none.
 - Intervals: on the log scale for positive quantities (``value exp(+-z SE/value)``),

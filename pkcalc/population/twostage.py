@@ -164,7 +164,7 @@ def two_stage(subjects: list[SubjectData], options: FitOptions | None = None, *,
     omega0 = np.cov(theta.T) if len(usable) > 2 else np.eye(2)
     beta, beta_cov, resid = _gls(theta, x, offset, omega0, estimate)
     omega = np.cov(resid.T, ddof=0 if estimate else 1) if len(usable) > 1 else np.eye(2)
-    result = _assemble("two-stage", beta, beta_cov, omega, estimate, covariate,
+    result = _assemble("two_stage", beta, beta_cov, omega, estimate, covariate,
                        reference_weight, fits, failures)
     result.residual_error = {"median_proportional":
                              float(np.median([r.residual_error["proportional"].value
@@ -348,7 +348,7 @@ def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "prop
         f"{SIGMA_TOL:g} (relative); {'reached' if converged else 'NOT'} after {it} "
         "iterations")
     result.notes.append("shrinkage = 1 - SD(ln deviations from typical) / between-subject SD "
-                        "(Savic & Karlsson 2009, from memory); "
+                        "(Savic & Karlsson 2009); "
                         "high values (> 30 %) make individual estimates lean on the prior")
     if not converged:
         result.warnings.append(f"did not converge in {max_iterations} iterations: the "

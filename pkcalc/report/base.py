@@ -10,8 +10,8 @@ from typing import Any
 
 import numpy as np
 
-from .. import __version__
-from .._format import CAUTION, CAUTION_SHORT  # noqa: F401  (one text, used everywhere)
+from .. import __version__, glossary
+from .._format import CAUTION, CAUTION_SHORT, fmt  # noqa: F401  (one text, used everywhere)
 from ..units import CANONICAL, display_factor
 
 #: Profiles with at most this many points are printed in full on the terminal.
@@ -54,9 +54,10 @@ class UnitConverter:
                       "elimination_rate")
         }
         self._factor = {k: display_factor(u, k) for k, u in self.units.items()}
-        self.units["auc"] = f"{self.units['concentration']}*{self.units['time']}"
+        self.units["auc"] = glossary.area_unit(self.units["concentration"], self.units["time"])
         self._factor["auc"] = self._factor["concentration"] * self._factor["time"]
-        self.units["aumc"] = f"{self.units['auc']}*{self.units['time']}"
+        self.units["aumc"] = glossary.area_unit(self.units["concentration"], self.units["time"],
+                                                2)
         self._factor["aumc"] = self._factor["auc"] * self._factor["time"]
 
     def __call__(self, value: Any, kind: str) -> Any:
@@ -70,6 +71,32 @@ class UnitConverter:
 
     def unit(self, kind: str) -> str:
         return self.units[kind]
+
+
+def plain_value(value: Any) -> str:
+    """A setting in words: yes/no, "not set", lists and tables without Python syntax."""
+    if value is None:
+        return "not set"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, list | tuple):
+        return ", ".join(plain_value(v) for v in value) or "none"
+    if isinstance(value, dict):
+        return "; ".join(f"{k.replace('_', ' ')} {plain_value(v)}" for k, v in value.items()) \
+            or "none"
+    if isinstance(value, float):
+        return fmt(value)
+    return str(value).replace("_", " ")
+
+
+def settings_lines(settings: dict[str, Any]) -> list[str]:
+    """The settings of a run as plain lines (``weighting: not set``, ``adequacy: yes``)."""
+    return [f"{k.replace('_', ' ')}: {plain_value(v)}" for k, v in settings.items()]
+
+
+def settings_line(settings: dict[str, Any]) -> str:
+    """The settings of a run on one line of terminal text, in the same words as the HTML."""
+    return "Settings: " + "; ".join(settings_lines(settings))
 
 
 def json_number(x: Any) -> Any:

@@ -5,6 +5,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
+from .. import glossary
 from .._format import fmt, format_table, format_table_fit
 from ..design.common import clock_after
 from ..units import KIND_OF
@@ -130,7 +131,7 @@ _COLUMNS = (
 
 
 def design_result_text(res, conv: UnitConverter) -> str:
-    lines = [f"Design: {res.name}  (method: {res.method.replace('_', ' ')})"]
+    lines = [f"Design: {res.name}  (method: {glossary.method_name(res.method)})"]
     lines += [f"CHECK LEVELS: {s}" for s in res.suspects]
     if res.clock_origin:
         lines.append(f"time 0 h = {res.clock_origin} (the first recorded dose)")
@@ -212,13 +213,13 @@ def _parameters_and_estimates(res, conv: UnitConverter) -> list[str]:
         rows = []
         for k, v in res.estimates.items():
             kind = KIND_OF.get(k)
-            rows.append([k.replace("_", " "), conv(v, kind) if kind else v,
+            rows.append([glossary.words(k), conv(v, kind) if kind else v,
                          u(kind) if kind else ("%" if k.endswith("percent") else "")])
         lines += ["Individual estimates from the measured levels:",
                   format_table(["estimate", "value", "unit"], rows)]
     if res.assumed:
         lines.append("Assumed, not measured: " + "; ".join(
-            f"{k.replace('_', ' ')} {fmt(conv(v, KIND_OF.get(k, 'concentration')))} "
+            f"{glossary.words(k)} {fmt(conv(v, KIND_OF.get(k, 'concentration')))} "
             f"{u(KIND_OF.get(k, 'concentration'))}" for k, v in res.assumed.items()))
     for f in res.formulas:
         kind = f["kind"]
@@ -227,15 +228,29 @@ def _parameters_and_estimates(res, conv: UnitConverter) -> list[str]:
     return lines
 
 
-def _target_line(res, conv: UnitConverter) -> str | None:
+def target_text(target: Mapping[str, Any], units: Mapping[str, str]) -> str:
+    """A target in words (terminal and HTML): ``peak at most 30 mg/L; trough at least 8
+    mg/L; AUC over 24 h 400 to 600 mg*h/L``; ``units`` maps kind -> display unit."""
     parts = []
-    for k, v in _target_dict(res.target, conv).items():
-        if v is None or v == [None, None]:
+    for k, v in target.items():
+        if v is None or (isinstance(v, list | tuple) and all(x is None for x in v)):
             continue
-        text = " to ".join(fmt(x) for x in v) if isinstance(v, list) else fmt(v)
-        unit = conv.unit({"infusion_time": "time", "auc_24": "auc"}.get(k, "concentration"))
-        parts.append(f"{k.replace('_', ' ')} {text} {unit}")
-    return "Target: " + "; ".join(parts) if parts else None
+        kind = {"infusion_time": "time", "auc_24": "auc"}.get(k, "concentration")
+        unit = units.get(kind, glossary.UNITS[kind])
+        name = glossary.words(k.removesuffix("_limits"))
+        if isinstance(v, list | tuple) and v[0] is None:
+            text = f"at most {fmt(v[1])}"
+        elif isinstance(v, list | tuple) and v[1] is None:
+            text = f"at least {fmt(v[0])}"
+        else:
+            text = " to ".join(fmt(x) for x in v) if isinstance(v, list | tuple) else fmt(v)
+        parts.append(f"{name} {text} {unit}")
+    return "; ".join(parts)
+
+
+def _target_line(res, conv: UnitConverter) -> str | None:
+    text = target_text(_target_dict(res.target, conv), conv.units)
+    return "Target: " + text if text else None
 
 
 def _regimen_table(res, conv: UnitConverter) -> list[str]:

@@ -4,8 +4,16 @@ from __future__ import annotations
 
 from typing import Any
 
+from .. import glossary
 from .._format import format_table
-from .base import UnitConverter, assemble_text, failures_json, json_document, json_number
+from .base import (
+    UnitConverter,
+    assemble_text,
+    failures_json,
+    json_document,
+    json_number,
+    settings_line,
+)
 
 _KIND = {"clearance": "clearance", "volume": "volume", "half_life": "time",
          "elimination_rate": "elimination_rate"}
@@ -69,7 +77,7 @@ def fit_subject_dict(r, conv: UnitConverter) -> dict[str, Any]:
         "residual_error": {k: _estimate_dict(e, _RESIDUAL_KIND.get(k), conv)
                            for k, e in r.residual_error.items()},
         "objective": json_number(r.objective), "aic": json_number(r.aic), "bic": json_number(r.bic),
-        "n_obs": r.n_obs, "n_blq": r.n_blq, "n_params": r.n_params,
+        "n_levels": r.n_obs, "n_blq": r.n_blq, "n_parameters": r.n_params,
         "starts": r.starts, "starts_agreed": r.starts_agreed, "iterations": r.iterations,
         "prior": {k: json_number(v) for k, v in r.prior.items()} or None,
         "warnings": list(r.warnings), "notes": list(r.notes),
@@ -119,22 +127,21 @@ def fit_text(results, conv: UnitConverter, *, title: str | None = None, failures
     dicts = [fit_subject_dict(r, conv) for r in results]
     sections = []
     if settings:
-        sections.append("Settings: " + "; ".join(
-            f"{k.replace('_', ' ')}: {'-' if v is None else str(v).replace('_', ' ')}"
-            for k, v in settings.items()))
+        sections.append(settings_line(settings))
     rows = []
     for d in dicts:
         e = d["estimates"]
         rows.append([d["subject"], e["clearance"]["value"], _ci(e["clearance"]),
                      e["volume"]["value"], _ci(e["volume"]), e["half_life"]["value"],
                      _ci(e["half_life"]), d["correlation_clearance_volume"], d["objective"],
-                     d["aic"], f"{d['n_obs']}/{d['n_blq']}",
+                     d["aic"], f"{d['n_levels']}/{d['n_blq']}",
                      f"{d['starts_agreed']}/{d['starts']}",
                      "yes" if d["converged"] else "NO"])
     sections.append("Estimates (95 % intervals built on the log scale):\n" + format_table(
         ["subject", f"CL [{u('clearance')}]", "CL 95% CI", f"V [{u('volume')}]", "V 95% CI",
-         f"t1/2 [{u('time')}]", "t1/2 95% CI", "corr(CL,V)", "-2lnL", "AIC", "levels/BLQ",
-         "starts agreed", "converged"], rows))
+         f"{glossary.label('half_life')} [{u('time')}]", f"{glossary.label('half_life')} 95% CI",
+         "corr(CL,V)", glossary.label("objective"), "AIC", "levels/BLQ", "starts agreed",
+         "converged"], rows))
     res_rows = []
     for d in dicts:
         for k, e in d["residual_error"].items():
@@ -168,7 +175,7 @@ def fit_text(results, conv: UnitConverter, *, title: str | None = None, failures
 
 
 _VERDICT_WORDS = {"adequate": "adequate", "distribution_phase": "DISTRIBUTION PHASE",
-                  "not_enough_data": "too few levels"}
+                  "too_few_levels": "too few levels"}
 
 
 def adequacy_text(dicts, results, conv: UnitConverter, max_rows: int | None = None
@@ -191,7 +198,8 @@ def adequacy_text(dicts, results, conv: UnitConverter, max_rows: int | None = No
     rows = rows if max_rows is None else rows[:max_rows]
     lines = [f"Is one compartment adequate? {summary['text']}.",
              format_table(["subject", "one compartment", "levels after infusion",
-                           "dAIC (2-exp)", "LRT p", "runs p", "trend p",
+                           "ΔAIC (two exponentials)", "likelihood-ratio p", "runs test p",
+                           "trend test p",
                            f"draw from [{u('time')} after infusion]"], rows)
              + (f"\n... and {more} more subjects (all in --json / --out)" if more else "")]
     for d in dicts:

@@ -16,9 +16,10 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from .. import __version__
+from .. import __version__, glossary
 from .._format import fmt
-from .base import CAUTION, CAUTION_SHORT, dumps
+from ..population.compare import COMPARED_CAPTION, stepwise_lines
+from .base import CAUTION, CAUTION_SHORT, dumps, settings_lines
 
 __all__ = [
     "ASSUMPTIONS",
@@ -94,27 +95,6 @@ def lines_item(kind: str, lines: list[str]) -> dict[str, Any]:
     return {"kind": kind, "lines": list(lines)}
 
 
-def _plain(value: Any) -> str:
-    """A setting in words: yes/no, "not set", lists and tables without Python syntax."""
-    if value is None:
-        return "not set"
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    if isinstance(value, list | tuple):
-        return ", ".join(_plain(v) for v in value) or "none"
-    if isinstance(value, dict):
-        return "; ".join(f"{k.replace('_', ' ')} {_plain(v)}" for k, v in value.items()) \
-            or "none"
-    if isinstance(value, float):
-        return fmt(value)
-    return str(value).replace("_", " ")
-
-
-def settings_lines(settings: dict[str, Any]) -> list[str]:
-    """The settings of a run as plain lines (``weighting: not set``, ``adequacy: yes``)."""
-    return [f"{k.replace('_', ' ')}: {_plain(v)}" for k, v in settings.items()]
-
-
 def _import_section(doc: dict[str, Any]) -> list[dict[str, Any]]:
     """The import report of a study read from SDTM (what was read, used and skipped)."""
     lines = doc.get("import_lines")
@@ -153,13 +133,13 @@ def predict_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dic
         rows = [
             ["clearance", p["clearance"], u["clearance"]],
             ["volume", p["volume"], u["volume"]],
-            ["elimination rate constant", p["elimination_rate"], u["elimination_rate"]],
-            ["half-life", p["half_life"], u["time"]],
-            ["time constant (V/CL)", p["time_constant"], u["time"]],
-            ["plateau", sc["plateau_concentration"], u["concentration"]],
+            [glossary.label("elimination_rate"), p["elimination_rate"], u["elimination_rate"]],
+            [glossary.label("half_life"), p["half_life"], u["time"]],
+            [glossary.label("time_constant") + " (V/CL)", p["time_constant"], u["time"]],
+            [glossary.label("plateau"), sc["plateau_concentration"], u["concentration"]],
         ]
-        rows += [[f"time to {float(f):.0%} of plateau", t, u["time"]]
-                 for f, t in sc["time_to_fraction"].items()]
+        rows += [[glossary.time_to_label(f), sc[key], u["time"]]
+                 for f, key in glossary.time_to_keys(sc)]
         ss = sc["steady_state"]
         if ss:
             rows += [["steady-state peak", ss["peak"], u["concentration"]],
@@ -206,20 +186,20 @@ def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict
     for d in doc["designs"]:
         items: list[dict[str, Any]] = [lines_item("warnings", [doc["design_caution"]])]
         items.append(lines_item("text", [
-            f"method: {d['method'].replace('_', ' ')}; parameters used: clearance "
+            f"method: {glossary.method_name(d['method'])}; parameters used: clearance "
             f"{fmt(d['parameters']['clearance'])} {u['clearance']}, volume "
             f"{fmt(d['parameters']['volume'])} {u['volume']}"]))
         if d.get("suspects"):
             items.append(lines_item("warnings", [f"CHECK LEVELS: {s}" for s in d["suspects"]]))
         if d["estimates"]:
-            items.append(table_item(["estimate", "value"], [[k.replace("_", " "), v] for k, v in
+            items.append(table_item(["estimate", "value"], [[glossary.words(k), v] for k, v in
                                                              d["estimates"].items()],
                                     "Individual estimates from the measured levels"))
         if d.get("formulas") or d.get("assumed"):
             items.append(lines_item("notes", [
                 f"for reference only, not a proposal: {f['name']} = {fmt(f['value'])} -- "
                 f"{f['validity']}" for f in d.get("formulas", [])] + [
-                f"assumed, not measured: {k.replace('_', ' ')} {fmt(v)}"
+                f"assumed, not measured: {glossary.words(k)} {fmt(v)}"
                 for k, v in d.get("assumed", {}).items()]))
         target = _target_text(d["target"], u)
         if target:
@@ -243,17 +223,10 @@ def design_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict
 
 
 def _target_text(target: dict[str, Any], u: dict[str, str]) -> str:
-    """The target as the terminal shows it: ``peak limits - to 30 mg/L; ...``."""
-    parts = []
-    for k, v in target.items():
-        if v is None or v == [None, None]:
-            continue
-        unit = {"infusion_time": u["time"], "auc_24": u.get("auc", "mg*h/L")}.get(
-            k, u["concentration"])
-        text = " to ".join("-" if x is None else fmt(x) for x in v) \
-            if isinstance(v, list | tuple) else fmt(v)
-        parts.append(f"{k.replace('_', ' ')} {text} {unit}")
-    return "; ".join(parts)
+    """The target in the terminal's words."""
+    from .design import target_text
+
+    return target_text(target, u)
 
 
 def _attainment_blocks(d: dict[str, Any]) -> list[dict[str, Any]]:
@@ -347,14 +320,25 @@ def render_html(report: HtmlReport) -> str:
         caution_lines.append(report.documents["design"]["design_caution"])
     json_text = dumps(report.documents if len(report.documents) != 1
                       else next(iter(report.documents.values())))
-    return template.render(
+    values = dict(
         title=report.title, subtitle=report.subtitle, caution=caution_lines,
         caution_short=CAUTION_SHORT, sections=report.sections, inputs=report.inputs,
         files=report.files, warnings=report.warnings, assumptions=ASSUMPTIONS,
         json_text=json_text, version=__version__, command=report.command,
         options=report.options, seed=report.seed, overview=report.overview,
-        generated=datetime.now(UTC).strftime("%Y-%m-%d %H:%M:%S"),
+        generated=datetime.now(UTC).strftime("%Y-%m-%d %H:%M:%S"), terms=[],
     )
+    # the abbreviations the page uses, spelled out in its terms section (second pass)
+    first = visible_text(template.render(**values))
+    values["terms"] = [(a, glossary.ABBREVIATIONS[a]) for a in glossary.abbreviations_used(first)]
+    return template.render(**values)
+
+
+def visible_text(html: str) -> str:
+    """The words of a page: no embedded images, no tags."""
+    import re
+
+    return re.sub(r"<[^>]+>", " ", re.sub(r"data:[^\"']+", "", html))
 
 
 def nca_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[str, Any]]:
@@ -367,7 +351,7 @@ def nca_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
     for key, kind in NCA_FIELDS:
         values = [s[key] for s in subjects]
         if any(v is not None for v in values):
-            rows.append([key.replace("_", " "), u.get(kind, "") if kind else "", *values])
+            rows.append([glossary.words(key), u.get(kind, "") if kind else "", *values])
     rows.append(["points used for the slope", u["time"],
                  *[", ".join(f"{x:g}" for x in s["points_used"]) or "-" for s in subjects]])
     items: list[dict[str, Any]] = [
@@ -387,7 +371,7 @@ def nca_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
             ["subject", "dose #", f"start [{t}]", f"interval [{t}]", "levels",
              f"Cmax [{c}]", f"Tmax [{t}]", f"Cmin [{c}]", f"trough [{c}]",
              f"AUCtau [{u['auc']}]", f"Cavg [{c}]", "fluctuation [%]",
-             f"CL [{u['clearance']}]", f"t1/2 [{t}]", "steady state", "why not computed"],
+             f"CL [{u['clearance']}]", f"half-life [{t}]", "steady state", "why not computed"],
             interval_rows, "Per dosing interval (actual dosing times)"))
     notes = [f"subject {s['subject']} ({s['mode']}): {n}" for s in subjects for n in s["notes"]]
     items.append(lines_item("notes", notes))
@@ -409,12 +393,12 @@ def fit_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[st
         rows.append([d["subject"], e["clearance"]["value"], e["clearance"]["ci_low"],
                      e["clearance"]["ci_high"], e["volume"]["value"], e["volume"]["ci_low"],
                      e["volume"]["ci_high"], e["half_life"]["value"], e["half_life"]["ci_low"],
-                     e["half_life"]["ci_high"], d["objective"], d["aic"], d["n_obs"],
+                     e["half_life"]["ci_high"], d["objective"], d["aic"], d["n_levels"],
                      d["n_blq"], "yes" if d["converged"] else "NO"])
     items: list[dict[str, Any]] = [
         lines_item("notes", settings_lines(doc["settings"])),
         table_item(["subject", f"CL [{u['clearance']}]", "low", "high", f"V [{u['volume']}]",
-                    "low", "high", f"t½ [{u['time']}]", "low", "high", "-2lnL", "AIC",
+                    "low", "high", f"half-life [{u['time']}]", "low", "high", "-2 ln L", "AIC",
                     "levels", "BLQ", "converged"], rows,
                    "Estimates with 95 % intervals (built on the log scale)")]
     res = [[d["subject"], k, e["value"], e["rse_percent"]] for d in doc["subjects"]
@@ -457,7 +441,7 @@ def _adequacy_items(doc: dict[str, Any]) -> list[dict[str, Any]]:
         a = d.get("adequacy")
         if a is None:
             continue
-        rows.append([d["subject"], a["verdict"].replace("_", " "), a["levels_after_infusion"],
+        rows.append([d["subject"], glossary.words(a["verdict"]), a["levels_after_infusion"],
                      a["delta_aic"], a["likelihood_ratio_p"], a["runs_test_p"],
                      a["trend_test_p"], a["earliest_sampling_after_infusion"]])
         if a["verdict"] == "distribution_phase":
@@ -465,7 +449,8 @@ def _adequacy_items(doc: dict[str, Any]) -> list[dict[str, Any]]:
                       *[f"subject {d['subject']}: {n}" for n in a["notes"]]]
     u = doc["units"]
     items = [table_item(["subject", "one compartment", "levels after infusion",
-                         "ΔAIC (two-exp.)", "LRT p", "runs p", "trend p",
+                         "ΔAIC (two exponentials)", "likelihood-ratio p", "runs test p",
+                         "trend test p",
                          f"draw from [{u['time']} after infusion]"], rows,
                         "Is one compartment adequate? " + doc["adequacy_summary"]["text"]
                         + " (two-exponential numbers are a sensitivity check)")]
@@ -494,34 +479,36 @@ def population_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[
     if doc["residual_error"]:
         text.append("residual error: " + ", ".join(f"{k} {v:.4g}" for k, v in
                                                     doc["residual_error"].items()))
-    text.append(f"iterations: {doc['iterations']}; converged: {doc['converged']}")
+    text.append(f"iterations: {doc['iterations']}; converged: "
+                f"{'yes' if doc['converged'] else 'NO'}")
     items.append(lines_item("text", text))
     if doc.get("parameters"):
         items.append(table_item(
             ["parameter", "value", "unit", "SE", "RSE %", "CI low", "CI high"],
             [[p["name"], p["value"], p["unit"], p["se"], p["rse_percent"], p["ci_low"],
               p["ci_high"]] for p in doc["parameters"]],
-            f"Every parameter (covariance step): -2 ln L {doc['objective']:.4f}, "
+            "Every parameter (standard errors from the observed information): -2 ln L "
+            f"{doc['objective']:.4f}, "
             f"{doc['n_parameters']} parameters, AIC {doc['aic']:.4f}, BIC {doc['bic']:.4f}"))
     if doc.get("comparison"):
         comp = doc["comparison"]
         items.append(table_item(
-            ["model", "effects", "-2 ln L", "parameters", "AIC", "BIC", "LRT df", "LRT p",
-             "note"],
+            ["model", "effects", "-2 ln L", "parameters", "AIC", "BIC", "compared with",
+             "likelihood-ratio df", "likelihood-ratio p", "note"],
             [[m["model"], "; ".join(m["effects"]) or "(none)", m["objective"],
-              m["n_parameters"], m["aic"], m["bic"], m["lrt_df"], m["lrt_p"],
-              m["error"] or ""] for m in comp["models"]],
-            f"Models compared (likelihood-ratio test against '{comp['base']}')"))
+              m["n_parameters"], m["aic"], m["bic"], m["compared_with"] or "-",
+              m["likelihood_ratio_df"], m["likelihood_ratio_p"], m["error"] or ""]
+             for m in comp["models"]],
+            COMPARED_CAPTION.format(base=comp["base"]).rstrip(":")))
         if comp["stepwise"]:
-            items.append(lines_item("text", [
-                f"{s['step']}: {s['effect']}: p = {s['p']:.3g}" for s in comp["stepwise"]]))
+            items.append(lines_item("text", stepwise_lines(comp["stepwise"])))
     srows = [[d["subject"], d["estimates"]["clearance"]["value"],
               d["estimates"]["volume"]["value"], d["estimates"]["half_life"]["value"],
               (d.get("prior") or {}).get("ln_clearance_deviation"),
-              (d.get("prior") or {}).get("ln_volume_deviation"), d["n_obs"]]
+              (d.get("prior") or {}).get("ln_volume_deviation"), d["n_levels"]]
              for d in doc["subjects"]]
     items.append(table_item(["subject", f"CL [{doc['units']['clearance']}]",
-                             f"V [{doc['units']['volume']}]", f"t½ [{doc['units']['time']}]",
+                             f"V [{doc['units']['volume']}]", f"half-life [{doc['units']['time']}]",
                              "ln CL deviation from typical", "ln V deviation from typical",
                              "levels"], srows,
                             "Individual estimates under the population prior"))
@@ -546,11 +533,11 @@ def batch_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[
     items: list[dict[str, Any]] = [lines_item("text", [
         f"{doc['rows']} rows from {doc['input']} written to {doc['output']} "
         f"({doc['engine']} engine); {doc['failed']} rows with problems."])]
-    rows = [[k.replace("_", " "), d["p05"], d["p50"], d["p95"]]
+    rows = [[glossary.words(k), glossary.unit_of(k) or "0-1", d["p05"], d["p50"], d["p95"]]
             for k, d in doc["distribution"].items() if d]
     if rows:
-        items.append(table_item(["quantity", "5th", "median", "95th"], rows,
-                                "Across the batch (canonical units)"))
+        items.append(table_item(["quantity", "unit", "5th", "median", "95th"], rows,
+                                "Across the batch"))
     if doc["first_errors"]:
         items.append(lines_item("warnings", doc["first_errors"]))
     if "__batch__" in figures:
@@ -564,7 +551,7 @@ def attainment_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[
     def ends(v):
         return " to ".join("-" if x is None else fmt(x) for x in v)
 
-    targets = "; ".join(f"{k.replace('_', ' ')} {ends(v)}" for k, v in doc["targets"].items()
+    targets = "; ".join(f"{glossary.words(k)} {ends(v)}" for k, v in doc["targets"].items()
                         if v is not None)
     items.append(lines_item("text", [f"patients: {doc['source']}; {doc['patients']:,} in all; "
                                      f"seed {doc['seed']}", f"targets (steady state): {targets}"]))

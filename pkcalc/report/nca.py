@@ -4,8 +4,16 @@ from __future__ import annotations
 
 from typing import Any
 
+from .. import glossary
 from .._format import format_table
-from .base import UnitConverter, assemble_text, failures_json, json_document, json_number
+from .base import (
+    UnitConverter,
+    assemble_text,
+    failures_json,
+    json_document,
+    json_number,
+    settings_line,
+)
 
 #: Result fields in display order, with their kind of quantity (None: a plain number).
 NCA_FIELDS: tuple[tuple[str, str | None], ...] = (
@@ -109,18 +117,15 @@ _MAIN = ("peak_concentration", "peak_time", "auc_to_last", "auc_to_infinity",
          "volume_terminal", "mean_residence_time", "volume_steady_state")
 _STEADY = ("interval", "auc_interval", "average_concentration", "fluctuation_percent",
            "accumulation_ratio")
-_SHORT = {"peak_concentration": "Cmax", "peak_time": "Tmax", "auc_to_last": "AUC0–last",
-          "auc_to_infinity": "AUC0–∞", "auc_extrapolated_percent": "AUC extrap",
-          "terminal_slope": "λz", "terminal_half_life": "t1/2 terminal",
-          "clearance": "CL", "volume_terminal": "Vz", "mean_residence_time": "MRT",
-          "volume_steady_state": "Vss", "interval": "tau", "auc_interval": "AUCtau",
-          "average_concentration": "Cavg", "fluctuation_percent": "fluctuation",
-          "accumulation_ratio": "accumulation"}
+#: Column heads: the glossary's symbol where the trade has one, else its label.
+_SHORT = {k: (glossary.term(k).symbol if glossary.term(k).symbol in glossary.ABBREVIATIONS
+              else glossary.label(k)) for k in (*_MAIN, *_STEADY)}
 
 
-_INTERVAL_COLUMNS = (("peak_concentration", "Cmax"), ("peak_time", "Tmax"),
-                     ("trough_concentration", "trough"), ("auc_interval", "AUCtau"),
-                     ("clearance", "CL"), ("terminal_half_life", "t1/2"))
+_INTERVAL_COLUMNS = tuple((k, glossary.term(k).symbol if glossary.term(k).symbol in
+                           glossary.ABBREVIATIONS else glossary.label(k))
+                          for k in ("peak_concentration", "peak_time", "trough_concentration",
+                                    "auc_interval", "clearance", "terminal_half_life"))
 
 
 def interval_table(results, conv: UnitConverter, choice: str = "each") -> str:
@@ -166,9 +171,7 @@ def nca_text(results, conv: UnitConverter, *, title: str | None = None, failures
 
     sections = []
     if settings:
-        sections.append("Settings: " + "; ".join(
-            f"{k.replace('_', ' ')}: {'-' if v is None else str(v).replace('_', ' ')}"
-            for k, v in settings.items()))
+        sections.append(settings_line(settings))
     sections.append(table(_MAIN, dicts))
     steady = [d for d in dicts if d["mode"] == "steady state"]
     if steady:

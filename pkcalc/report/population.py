@@ -4,8 +4,17 @@ from __future__ import annotations
 
 from typing import Any
 
+from .. import glossary
 from .._format import format_table
-from .base import UnitConverter, assemble_text, failures_json, json_document, json_number
+from ..population.compare import COMPARED_CAPTION, stepwise_lines
+from .base import (
+    UnitConverter,
+    assemble_text,
+    failures_json,
+    json_document,
+    json_number,
+    settings_line,
+)
 from .fit import adequacy_summary, adequacy_text, fit_subject_dict
 
 _MAX_ROWS = 25
@@ -66,7 +75,7 @@ def _row_units(row: dict, conv: UnitConverter, per_kg: bool) -> tuple[Any, str]:
 
 
 def parameter_dicts(rows: list[dict], conv: UnitConverter, per_kg: bool) -> list[dict]:
-    """The covariance step's table in display units."""
+    """The table of every parameter with its standard error, in display units."""
     out = []
     for r in rows:
         c, unit = _row_units(r, conv, per_kg)
@@ -77,7 +86,7 @@ def parameter_dicts(rows: list[dict], conv: UnitConverter, per_kg: bool) -> list
 
 
 def marginal_json(result, conv: UnitConverter, per_kg: bool) -> dict[str, Any]:
-    """The marginal-likelihood keys: objective, parameters, covariance step, comparison."""
+    """The marginal-likelihood keys: objective, parameters, standard errors, comparison."""
     if result.method != "marginal":
         return {}
     corr = result.parameter_correlation
@@ -89,7 +98,7 @@ def marginal_json(result, conv: UnitConverter, per_kg: bool) -> dict[str, Any]:
         "parameters": parameter_dicts(result.parameters, conv, per_kg),
         "effects": [{k: (json_number(v) if isinstance(v, float) else v) for k, v in e.items()}
                     for e in result.effects],
-        "covariance_step": {
+        "standard_errors": {
             "names": list(result.parameter_names),
             "correlation": None if corr is None else [[json_number(x) for x in row]
                                                       for row in corr],
@@ -121,21 +130,18 @@ def comparison_text(doc: dict[str, Any]) -> str | None:
         return "; ".join(effects) or "(none)"
 
     rows = [[m["model"], own(m, i == 0), m["objective"], m["n_parameters"],
-             m["aic"], m["bic"], m["compared_with"], m["lrt_df"], m["lrt_p"],
+             m["aic"], m["bic"], m["compared_with"], m["likelihood_ratio_df"],
+             m["likelihood_ratio_p"],
              "FAILED: " + m["error"] if m["error"] else ("yes" if m["converged"] else "NO")]
             for i, m in enumerate(comp["models"])]
-    lines = [f"Models compared (base '{comp['base']}'; each model's likelihood-ratio test is "
-             "against the largest model nested in it):"]
+    lines = [COMPARED_CAPTION.format(base=comp["base"])]
     if comp.get("common_effects"):
         lines.append("every model also holds: " + "; ".join(comp["common_effects"])
                      + " (the weight model and the effects given with --effect)")
-    lines += [format_table(["model", "effects (beyond the first model's)", "-2lnL", "parameters",
-                           "AIC", "BIC", "compared with", "LRT df",
-                           "LRT p", "converged"], rows)]
-    for s in comp["stepwise"]:
-        verdict = ("kept" if s["step"] == "forward" else "removed") if s["accepted"] else \
-            ("not added" if s["step"] == "forward" else "kept")
-        lines.append(f"  {s['step']}: {s['effect']}: p = {s['p']:.3g} -> {verdict}")
+    lines += [format_table(["model", "effects (beyond the first model's)", "-2 ln L",
+                           "parameters", "AIC", "BIC", "compared with", "likelihood-ratio df",
+                           "likelihood-ratio p", "converged"], rows)]
+    lines += stepwise_lines(comp["stepwise"])
     return "\n".join(lines)
 
 
@@ -149,9 +155,7 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
     doc = population_json(result, conv, title=title, failures=failures, settings=settings)
     sections = []
     if settings:
-        sections.append("Settings: " + "; ".join(
-            f"{k.replace('_', ' ')}: {'-' if v is None else str(v).replace('_', ' ')}"
-            for k, v in settings.items()))
+        sections.append(settings_line(settings))
     rows = []
     for k in ("clearance", "volume"):
         ci = doc["typical_ci"].get(k)
@@ -165,9 +169,10 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
         prow = [[p["name"], p["value"], p["unit"], p["se"], p["rse_percent"],
                  "-" if p["ci_low"] is None else f"{p['ci_low']:.4g}-{p['ci_high']:.4g}"]
                 for p in doc["parameters"]]
-        head = (f"Every parameter (covariance step; -2lnL {doc['objective']:.4f}, "
+        head = (f"Every parameter (standard errors from the observed information; -2 ln L "
+                f"{doc['objective']:.4f}, "
                 f"{doc['n_parameters']} parameters, AIC {doc['aic']:.4f}, BIC {doc['bic']:.4f};"
-                f" condition number {_num(doc['covariance_step']['condition_number'])}):\n")
+                f" condition number {_num(doc['standard_errors']['condition_number'])}):\n")
         sections.append(head + format_table(["parameter", "value", "unit", "SE", "RSE %",
                                              "95% CI"], prow))
     comparison = comparison_text(doc)
@@ -193,7 +198,7 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
         obj = result.objective_per_iteration
         extra.append(f"iterations: {result.iterations} "
                      f"({'converged' if result.converged else 'NOT converged'}); approximate "
-                     f"-2lnL {obj[0]:.6g} -> {obj[-1]:.6g}" if obj else "")
+                     f"-2 ln L {obj[0]:.6g} -> {obj[-1]:.6g}" if obj else "")
     if doc["bootstrap"]:
         b = doc["bootstrap"]
         extra.append(f"bootstrap: {b['replicates']} replicates (seed {b['seed']}, "
@@ -205,11 +210,11 @@ def population_text(result, conv: UnitConverter, *, title: str | None = None, fa
         pr = d.get("prior") or {}
         srows.append([d["subject"], e["clearance"]["value"], e["volume"]["value"],
                       e["half_life"]["value"], pr.get("ln_clearance_deviation"),
-                      pr.get("ln_volume_deviation"), d["n_obs"]])
+                      pr.get("ln_volume_deviation"), d["n_levels"]])
     more = len(doc["subjects"]) - _MAX_ROWS
     sections.append("Individual estimates under the population prior (MAP):\n" + format_table(
         ["subject", f"CL [{conv.unit('clearance')}]", f"V [{conv.unit('volume')}]",
-         f"t1/2 [{conv.unit('time')}]", "ln CL deviation from typical",
+         f"{glossary.label('half_life')} [{conv.unit('time')}]", "ln CL deviation from typical",
          "ln V deviation from typical", "levels"], srows)
         + (f"\n... and {more} more subjects (all in --json / --out)" if more > 0 else ""))
     adequacy = adequacy_text(doc["subjects"], result.subjects, conv, max_rows=_MAX_ROWS)

@@ -6,6 +6,7 @@ from typing import Any
 
 import numpy as np
 
+from .. import glossary
 from .._format import fmt, format_table
 from .base import (
     PROFILE_ROWS,
@@ -35,12 +36,10 @@ def predict_scenario_dict(pred, conv: UnitConverter) -> dict[str, Any]:
         },
         "plateau_concentration": json_number(conv(pred.plateau_concentration, "concentration")),
         "plateau_basis": pred.plateau_basis,
-        "time_to_fraction": {
-            f"{f:g}": json_number(conv(t, "time")) for f, t in pred.time_to_fraction.items()
-        },
-        "time_to_fraction_half_lives": {
-            f"{f:g}": json_number(t / p["half_life"]) for f, t in pred.time_to_fraction.items()
-        },
+        **{glossary.time_to_key(f): json_number(conv(t, "time"))
+           for f, t in pred.time_to_fraction.items()},
+        **{glossary.time_to_key(f).replace("time_to_", "half_lives_to_"):
+           json_number(t / p["half_life"]) for f, t in pred.time_to_fraction.items()},
         "profile": {
             "time": json_list(conv(pred.time, "time")),
             "concentration": json_list(conv(pred.concentration, "concentration")),
@@ -78,16 +77,18 @@ def predict_scenario_text(pred, conv: UnitConverter) -> str:
     u = conv.unit
     p = pred.parameters
     rows: list[list[Any]] = [
-        ["clearance", conv(p["clearance"], "clearance"), u("clearance")],
-        ["volume", conv(p["volume"], "volume"), u("volume")],
-        ["elimination rate constant", conv(p["elimination_rate"], "elimination_rate"),
+        [glossary.label("clearance"), conv(p["clearance"], "clearance"), u("clearance")],
+        [glossary.label("volume"), conv(p["volume"], "volume"), u("volume")],
+        [glossary.label("elimination_rate"), conv(p["elimination_rate"], "elimination_rate"),
          u("elimination_rate")],
-        ["half-life", conv(p["half_life"], "time"), u("time")],
-        ["time constant (V/CL)", conv(p["time_constant"], "time"), u("time")],
-        ["plateau", conv(pred.plateau_concentration, "concentration"), u("concentration")],
+        [glossary.label("half_life"), conv(p["half_life"], "time"), u("time")],
+        [glossary.label("time_constant") + " (V/CL)", conv(p["time_constant"], "time"),
+         u("time")],
+        [glossary.label("plateau"), conv(pred.plateau_concentration, "concentration"),
+         u("concentration")],
     ]
     for f, t in pred.time_to_fraction.items():
-        rows.append([f"time to {f:.0%} of plateau ({t / p['half_life']:.2f} half-lives)",
+        rows.append([f"{glossary.time_to_label(f)} ({t / p['half_life']:.2f} half-lives)",
                      conv(t, "time"), u("time")])
     ss = pred.steady_state
     if ss is not None:

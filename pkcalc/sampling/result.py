@@ -105,7 +105,7 @@ class SamplingResult:
             for g, times in zip(self.problem.groups, d.times, strict=True):
                 for j, t in enumerate(times):
                     row = {"design": d.label, "group": g.name, "subjects": g.subjects,
-                           "level": j + 1, "time [h]": t, "clock_time": self.clock_text(t),
+                           "sample": j + 1, "time [h]": t, "clock_time": self.clock_text(t),
                            "expected_rse_clearance [%]": d.expected_rse_percent["clearance"],
                            "expected_rse_volume [%]": d.expected_rse_percent["volume"],
                            "efficiency": d.efficiency}

@@ -12,6 +12,7 @@ import math
 from pathlib import Path
 from typing import Any
 
+from .. import glossary
 from ..core import (
     BLQ_METHODS,
     CI_METHODS,
@@ -431,13 +432,14 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
     models = _models(raw["models"], file, problems) if "models" in raw else ()
     step = raw.get("stepwise")
     candidates: tuple[Effect, ...] = ()
-    p_in, p_out = 0.05, 0.01
+    p_add, p_remove = 0.05, 0.01
     if step is not None:
         if not isinstance(step, dict) or not step.get("candidates"):
             problems.append(Problem("stepwise selection needs candidate effects", file=file,
                                     field="population.stepwise",
-                                    expected='candidates = ["sex on clearance"], p_in = 0.05, '
-                                             'p_out = 0.01'))
+                                    expected='candidates = ["sex on clearance"], '
+                                             'add_if_p_below = 0.05, '
+                                             'remove_if_p_above = 0.01'))
         else:
             candidates = _effect_list(step["candidates"], "population.stepwise.candidates",
                                       file, problems)
@@ -446,17 +448,25 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
                                         f"{MAX_CANDIDATE_EFFECTS} (each step estimates every "
                                         "remaining one)", file=file,
                                         field="population.stepwise.candidates"))
-            p_in, p_out = step.get("p_in", 0.05), step.get("p_out", 0.01)
-            for key, x in (("p_in", p_in), ("p_out", p_out)):
+            step = dict(step)
+            for old, new in (("p_in", "add_if_p_below"), ("p_out", "remove_if_p_above")):
+                if old in step and new not in step:
+                    glossary.former(old, new, f"{file}: population.stepwise")
+                    step[new] = step.pop(old)
+            p_add = step.get("add_if_p_below", 0.05)
+            p_remove = step.get("remove_if_p_above", 0.01)
+            for key, x in (("add_if_p_below", p_add), ("remove_if_p_above", p_remove)):
                 if not isinstance(x, int | float) or isinstance(x, bool) or not 0 < x < 1:
                     problems.append(Problem("must be a probability between 0 and 1",
                                             file=file, field=f"population.stepwise.{key}"))
-            for key in sorted(set(step) - {"candidates", "p_in", "p_out"}):
+            for key in sorted(set(step) - {"candidates", "add_if_p_below",
+                                           "remove_if_p_above"}):
                 problems.append(Problem("unknown key", file=file,
                                         field=f"population.stepwise.{key}",
-                                        expected="candidates, p_in, p_out"))
-    method = raw.get("method", "marginal")
-    if method in ("iterative", "two-stage") and (effects or models or candidates):
+                                        expected="candidates, add_if_p_below, "
+                                                 "remove_if_p_above"))
+    method = glossary.canonical_value(raw.get("method", "marginal"), "population.method")
+    if method in ("iterative", "two_stage") and (effects or models or candidates):
         problems.append(Problem("covariate effects, model comparison and stepwise selection "
                                 "need the marginal method", file=file,
                                 field="population.method", expected="method = \"marginal\""))
@@ -475,4 +485,5 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
         reference_weight=ref, bootstrap=raw.get("bootstrap", 0), seed=raw.get("seed", 1),
         vpc_replicates=raw.get("vpc_replicates", 200), adequacy=raw.get("adequacy", True),
         nodes=nodes, between_subject=raw.get("between_subject", "full"), effects=effects,
-        models=models, stepwise=candidates, p_in=float(p_in), p_out=float(p_out))
+        models=models, stepwise=candidates, add_if_p_below=float(p_add),
+        remove_if_p_above=float(p_remove))

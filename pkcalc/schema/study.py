@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from .. import glossary
 from ..core import NCA_AUC_METHODS, NCA_BLQ_RULES, NCA_INTERVALS, NcaOptions, Study, SubjectData
 from ..errors import PkcalcInputError, Problem
 from ..units import KINDS, NUMERIC_RANGE, parse_header, parse_unit
@@ -746,7 +747,7 @@ NCA_KEYS = ("auc_method", "blq", "terminal_points", "r2_tolerance", "extrapolati
 def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOptions:
     """Validate the ``[nca]`` options (or the same keys from the command line).
 
-    Keys: ``auc_method`` (``linear-up-log-down`` | ``linear``), ``blq``
+    Keys: ``auc_method`` (``linear_up_log_down`` | ``linear``), ``blq``
     (``leading_zero`` | ``zero`` | ``drop``), ``terminal_points`` (subject ->
     list of times with units), ``r2_tolerance``, ``extrapolation_limit`` (percent),
     ``interval`` (``each`` | ``first`` | ``last`` | a dose number),
@@ -762,7 +763,8 @@ def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOp
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"nca.{key}",
                                 expected=", ".join(sorted(allowed))))
-    method = raw.get("auc_method", "linear-up-log-down")
+    method = glossary.canonical_value(raw.get("auc_method", "linear_up_log_down"),
+                                      f"{file}: nca.auc_method")
     if method not in NCA_AUC_METHODS:
         problems.append(Problem(f"unknown AUC method '{method}'", file=file,
                                 field="nca.auc_method", expected=", ".join(NCA_AUC_METHODS)))

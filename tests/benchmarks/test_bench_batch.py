@@ -55,7 +55,7 @@ def bare(src: Path, dst: Path) -> None:
     out["elimination_rate [1/h]"] = k
     out["plateau_concentration [mg/L]"] = dose / tau / cl
     for f in (0.5, 0.9, 0.95, 0.99):
-        out[f"time_to_{f * 100:g}pct [h]"] = -np.log1p(-f) / k
+        out[f"time_to_{f * 100:g}_percent [h]"] = -np.log1p(-f) / k
     peak = dose / v * -np.expm1(-k * tinf) / (k * tinf) / -np.expm1(-k * tau)
     out["steady_state_peak [mg/L]"] = peak
     out["steady_state_trough [mg/L]"] = peak * np.exp(-k * (tau - tinf))
