@@ -265,7 +265,9 @@ def nca_study(study=None, options: NcaOptions | None = None, *, levels=None, dos
         - ``auc_method``: ``"linear_up_log_down"`` (default) or ``"linear"``;
         - ``blq``: ``"leading_zero"`` (default), ``"zero"`` or ``"drop"``;
         - ``terminal_points``: subject -> list of times (with units, ``"12 h"``);
-        - ``r2_tolerance``: adjusted R² within this of the best (default 1e-4);
+        - ``slope_tolerance``: the terminal slope takes the longest tail whose adjusted R²
+          is at most this below the best tail's (default 1e-4; ``r2_tolerance`` is the
+          former name);
         - ``extrapolation_limit``: percent of AUC∞ extrapolated above which AUC∞ is
           flagged (default 20);
         - ``interval``: ``"each"`` (default), ``"first"``, ``"last"`` or a dose number;
@@ -548,13 +550,18 @@ class StudyPopulation(PopulationResult):
     @property
     def settings(self) -> dict[str, Any]:
         o = self.options or PopulationOptions()
+        # what the model held: the weight model's reference only when there is one, and
+        # the effects as estimated (with the reference values taken from the data)
+        ref = f"{o.reference_weight:g} kg" if o.covariate != "none" else \
+            "not used (no weight model)"
         out: dict[str, Any] = {"method": o.method, "error_model": o.error_model,
                                "blq": o.blq, "weight_model": o.covariate,
-                               "reference_weight": f"{o.reference_weight:g} kg",
-                               "adequacy_check": o.adequacy}
+                               "reference_weight": ref, "adequacy_check": o.adequacy}
         if o.method == "marginal":
+            held = [e["effect"] for e in self.effects if e.get("effect")] if self.effects \
+                else [e.label for e in o.effects]
             out.update({"nodes": o.nodes, "between_subject": o.between_subject,
-                        "effects": "; ".join(e.label for e in o.effects) or "none"})
+                        "effects": "; ".join(dict.fromkeys(held)) or "none"})
         return out
 
     def document(self, conv=None) -> dict[str, Any]:

@@ -214,6 +214,7 @@ def _nca_overrides(args: argparse.Namespace) -> dict:
         points[sid.strip()] = [t.strip() for t in times.split(",")]
     return {"auc_method": args.auc_method, "blq": args.blq,
             "terminal_points": points or None, "interval": args.interval,
+            "slope_tolerance": args.slope_tolerance,
             "interval_tolerance": args.interval_tolerance,
             "duration_tolerance": args.duration_tolerance}
 

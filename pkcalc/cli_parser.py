@@ -59,14 +59,15 @@ censored likelihood (Beal's M3), Wald intervals on the log scale, 3 starts.""",
   pkcalc population scenarios/demo-sparse.toml --model "base:" \\
                     --model "weight: weight on clearance and volume"
   pkcalc population scenarios/demo-sparse.toml --stepwise "weight on clearance" \\
-                    --stepwise "weight on volume" --p-in 0.05 --p-out 0.01
-  pkcalc population --levels L.csv --doses D.csv --subjects S.csv --method two-stage
+                    --stepwise "weight on volume" --add-if-p-below 0.05 \\
+                    --remove-if-p-above 0.01
+  pkcalc population --levels L.csv --doses D.csv --subjects S.csv --method two_stage
   pkcalc population scenarios/demo-sparse.toml --covariate per_kg --out pop-results/
 
 Maximum marginal likelihood by default (--method marginal: the subjects' parameters
 integrated out by the Laplace approximation, or adaptive Gauss-Hermite quadrature
 with --nodes N); --method iterative gives the iterative two-stage estimate (Prevost
-1977; Steimer et al. 1984) and --method two-stage the standard two-stage one.""",
+1977; Steimer et al. 1984) and --method two_stage the standard two-stage one.""",
     "sampling": """examples:
   pkcalc sampling scenarios/demo-sampling.toml
   pkcalc sampling scenarios/demo-sampling.toml --simulate 500 --workers 2 --out sampling/
@@ -336,9 +337,10 @@ def _sampling_parser(sub) -> None:
     p.add_argument("--simulate", type=int, metavar="N",
                    help="simulate and re-estimate N replicates of every design (default 0)")
     p.add_argument("--seed", type=int, metavar="S", help="seed of the simulations (default 1)")
-    p.add_argument("--refit", choices=["iterative", "marginal"],
-                   help="population re-estimates: iterative two-stage (default) or the "
-                        "marginal likelihood")
+    p.add_argument("--refit", choices=["marginal", "iterative"],
+                   help="population re-estimates: the marginal likelihood (default, as in "
+                        "pkcalc population) or iterative two-stage (faster; no standard "
+                        "errors, so no interval coverage)")
     p.add_argument("--starts", type=int, metavar="N",
                    help="optimiser starts per design (default 12)")
     _engine_args(p, "where simulated replicates run: this process (default; --workers N for "
@@ -403,6 +405,9 @@ def _nca_parser(sub) -> None:
                    help="BLQ levels: leading_zero (default: before the first measurable level "
                         "as 0, later ones left out), zero, drop")
     _former_option(p, "--blq-rule", "blq", choices=["leading_zero", "zero", "drop"])
+    p.add_argument("--slope-tolerance", type=float, metavar="X",
+                   help="terminal slope: take the longest tail of levels whose adjusted R² is "
+                        "at most X below the best tail's (default 0.0001)")
     p.add_argument("--terminal", action="append", metavar="SUBJECT=T1,T2,...",
                    help="choose a subject's terminal points by hand (repeatable)")
     p.add_argument("--interval", metavar="first|last|each|N",

@@ -393,6 +393,7 @@ FIELDS: dict[str, str] = {
     "nca": "the NCA value",
     "nested_pairs": "likelihood-ratio tests of nested models",
     "not_computed": "why a value is missing",
+    "no_coverage_reason": "why the interval coverage of a simulation is missing",
     "notes": "notes",
     "number": "a sequence number",
     "one_compartment": "adequacy verdict of a subject",
@@ -496,7 +497,7 @@ PATTERNS: dict[str, tuple[str, str]] = {
 ABBREVIATIONS: dict[str, str] = {
     "AIC": "Akaike information criterion",
     "AUC": "area under the concentration-time curve",
-    "AUC24": "AUC over 24 hours",
+    "AUC24": "area under the concentration-time curve over 24 hours",
     "AUMC": "area under the first-moment curve",
     "BIC": "Bayesian information criterion",
     "BLQ": "below the lower limit of quantification",
@@ -646,9 +647,9 @@ def header(key: str, unit: str | None = None) -> str:
 
 
 def axis(key: str, unit: str | None = None) -> str:
-    """Axis or column label of a key: ``label (unit)``."""
+    """Axis or column label of a key: ``label [unit]`` (as in the terminal's tables)."""
     u = unit_of(key) if unit is None else unit
-    return f"{label(key)} ({u})" if u else label(key)
+    return f"{label(key)} [{u}]" if u else label(key)
 
 
 def time_to_key(fraction: float) -> str:
@@ -742,8 +743,9 @@ def markdown() -> str:
            "headers, HTML reports and plots — takes its names from this table (generated "
            "from `pkcalc/glossary.py`; regenerate with `python -m pkcalc.glossary > "
            "docs/glossary.md`). CSV headers are `key [unit]`; JSON documents state their "
-           "units under `units`; plots label axes `label (unit)`. Units below are the "
-           "canonical ones; display units follow `[output]` of a scenario.", "",
+           "units under `units`; terminal tables and plots label columns and axes "
+           "`label [unit]`. Units below are the canonical ones; display units follow "
+           "`[output]` of a scenario.", "",
            "## Quantities", "",
            "| key (JSON, CSV) | text label | symbol | unit | meaning |",
            "|---|---|---|---|---|"]

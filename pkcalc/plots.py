@@ -16,7 +16,7 @@ import matplotlib.pyplot as plt
 import numpy as np
 from matplotlib.figure import Figure
 
-from . import model
+from . import glossary, model
 from .core import expand_events
 from .report import CAUTION_SHORT, UnitConverter, write_atomic
 
@@ -96,8 +96,8 @@ def profile_figure(pred, conv: UnitConverter | None = None) -> Figure:
                                  f"{conv.unit('time')}, plain infusion)")
     ax.plot(conv(start, "time"), np.zeros_like(start), "|", color="0.2", ms=10,
             label="dose starts")
-    ax.set_xlabel(f"time [{conv.unit('time')}]")
-    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_xlabel(glossary.axis("time", conv.unit("time")))
+    ax.set_ylabel(glossary.axis("concentration", conv.unit("concentration")))
     ax.set_title(f"{pred.name}: one-compartment prediction", fontsize=10)
     ax.set_ylim(bottom=0)
     ax.legend(fontsize=7, loc="best", frameon=False)
@@ -117,9 +117,11 @@ def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
     cl, v = result.clearance, result.volume
     if not cl or not v or not result.regimens:
         return None
-    fig, ax = new_figure()
-    styles = ["-", "--", ":", "-."]
-    greys = ["black", "0.35", "0.55", "0.7"]
+    fig, ax = new_figure(height=5.4)
+    # proposals: solid lines told apart by grey and marker; dashed and dotted lines are
+    # kept for the limits, so no proposal can be mistaken for one
+    greys = ["black", "0.3", "0.45", "0.6"]
+    marks = [None, "o", "s", "^"]
     shown = result.regimens[:4]
     state = getattr(result, "state", None)
     if state is not None:
@@ -145,8 +147,9 @@ def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
         allev = [np.concatenate([b, n]) for b, n in zip(before, (start, amount, duration),
                                                          strict=True)]
         c = model.concentration(t, *allev, cl, v)
-        ax.plot(conv(t, "time"), conv(c, "concentration"), color=greys[i], ls=styles[i],
-                lw=1.6 if i == 0 else 1.1, label=f"#{i + 1} {reg.label}")
+        ax.plot(conv(t, "time"), conv(c, "concentration"), color=greys[i], ls="-",
+                lw=1.6 if i == 0 else 1.1, marker=marks[i], markevery=max(t.size // 12, 1),
+                ms=4, fillstyle="none", label=f"#{i + 1} {reg.label}")
     band = getattr(shown[0], "attainment", None)
     if band is not None and band.band:   # where the first proposal's course may really go
         b = band.band
@@ -171,10 +174,12 @@ def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
                    label="target plateau")
     ax.set_xlim(conv(t_lo, "time"), conv(tmax, "time") if tmax else None)
     ax.set_ylim(bottom=0)
-    ax.set_xlabel(f"time [{conv.unit('time')}]")
-    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_xlabel(glossary.axis("time", conv.unit("time")))
+    ax.set_ylabel(glossary.axis("concentration", conv.unit("concentration")))
     ax.set_title(f"{result.name}\nproposed regimens: a calculation, not an order", fontsize=9)
-    ax.legend(fontsize=7, loc="best", frameon=False)
+    # below the axes: the legend never covers a course
+    fig.legend(*ax.get_legend_handles_labels(), fontsize=7, loc="outside lower center",
+               ncol=2, frameon=False)
     return fig
 
 
@@ -224,7 +229,7 @@ def nca_figure(result, conv: UnitConverter | None = None) -> Figure | None:
             ax.semilogy(conv(line_t + ref, "time"), conv(line_c, "concentration"), "--",
                         color="0.4", lw=1.0,
                         label=f"terminal slope (half-life {result.terminal_half_life:.3g} h)")
-    ax.set_xlabel(f"time [{conv.unit('time')}]")
+    ax.set_xlabel(glossary.axis("time", conv.unit("time")))
     ax.set_ylabel(f"concentration [{conv.unit('concentration')}] (log scale)")
     plain_log_ticks(ax)
     ax.set_title(f"subject {result.subject}: non-compartmental analysis ({result.mode})",
@@ -268,7 +273,7 @@ def fit_figure(result, conv: UnitConverter | None = None) -> Figure:
     ax.set_title(f"subject {result.subject}: CL {cl:.3g} L/h, V {v:.3g} L "
                  f"({result.method.replace('_', ' ')})", fontsize=9)
     ax.set_xlabel(f"time [{conv.unit('time')}] (doses marked at the bottom)")
-    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_ylabel(glossary.axis("concentration", conv.unit("concentration")))
     ax.set_ylim(bottom=0)
     ax.legend(fontsize=7, frameon=False)
     return fig
@@ -296,7 +301,7 @@ def diagnostics_figure(results, conv: UnitConverter | None = None) -> Figure:
     ax.set_xlabel(f"predicted [{conv.unit('concentration')}]")
     ax.set_ylabel(f"observed [{conv.unit('concentration')}]")
     ax.set_title("observed vs predicted", fontsize=9)
-    for ax, x, label in ((axes[1], conv(time, "time"), f"time [{conv.unit('time')}]"),
+    for ax, x, label in ((axes[1], conv(time, "time"), glossary.axis("time", conv.unit("time"))),
                          (axes[2], conv(pred, "concentration"),
                           f"predicted [{conv.unit('concentration')}]")):
         okw = np.isfinite(wres) & np.isfinite(x)
@@ -352,7 +357,7 @@ def population_figure(result, subjects, conv: UnitConverter | None = None) -> Fi
     ax.axhline(0, color="0.4", lw=1)
     for y in (-2, 2):
         ax.axhline(y, color="0.6", lw=0.8, ls=":")
-    ax.set_xlabel(f"time [{conv.unit('time')}]")
+    ax.set_xlabel(glossary.axis("time", conv.unit("time")))
     ax.set_ylabel("individual weighted residual")
     ax.set_title("weighted residuals (individual fits) vs time", fontsize=9)
     ax = axes[1, 1]
@@ -410,8 +415,8 @@ def vpc_figure(subjects, simulated: np.ndarray, conv: UnitConverter | None = Non
                     label=f"observed {q}th percentile")
     ax.plot(conv(time, "time"), conv(obs, "concentration"), ".", color="0.3", ms=3,
             label="observed levels")
-    ax.set_xlabel(f"time [{conv.unit('time')}]")
-    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_xlabel(glossary.axis("time", conv.unit("time")))
+    ax.set_ylabel(glossary.axis("concentration", conv.unit("concentration")))
     ax.set_title(f"visual predictive check ({simulated.shape[0]} simulated replicates of the "
                  "design)", fontsize=9)
     ax.legend(fontsize=6.5, frameon=False, ncol=2)
@@ -429,9 +434,9 @@ def batch_figure(summary, conv: UnitConverter | None = None) -> Figure:
     fig.get_layout_engine().set(rect=(0, 0.05, 1, 0.95))
     axes = fig.subplots(1, panels)
     data = [(np.asarray(summary.plateau, float), "concentration",
-             f"plateau [{conv.unit('concentration')}]"),
+             glossary.axis("plateau", conv.unit("concentration"))),
             (np.asarray(summary.time_to_90, float), "time",
-             f"time to 90 % of plateau [{conv.unit('time')}]")]
+             glossary.axis("time_to_90_percent", conv.unit("time")))]
     for ax, (values, kind, label) in zip(axes, data, strict=False):
         values = values[np.isfinite(values)]
         ax.hist(conv(values, kind), bins=40, color="0.6", edgecolor="black", linewidth=0.3)
@@ -443,7 +448,7 @@ def batch_figure(summary, conv: UnitConverter | None = None) -> Figure:
         ax.plot(np.arange(1, f.size + 1), 100 * f, "o", ms=3, color="black")
         ax.set_ylim(-2, 102)
         ax.set_xlabel("scenario (row)")
-        ax.set_ylabel("virtual subjects inside the window at steady state [%]")
+        ax.set_ylabel("virtual subjects in the window\nat steady state [%]")
     for ax in np.atleast_1d(axes):
         ax.grid(True, color="0.88", linewidth=0.6)
     return fig
@@ -483,7 +488,7 @@ def sampling_figure(result, conv: UnitConverter | None = None) -> Figure:
         for x in times:
             ax2.axvline(conv(x, "time"), color="0.6" if i else "black", lw=0.8,
                         ls="-" if i == 0 else ":")
-    ax.set_ylabel(f"concentration [{conv.unit('concentration')}]")
+    ax.set_ylabel(glossary.axis("concentration", conv.unit("concentration")))
     ax.set_title(f"{p.name}: sampling times (allowed periods shaded)", fontsize=10)
     ax.legend(fontsize=8, loc="best")
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -492,7 +497,7 @@ def sampling_figure(result, conv: UnitConverter | None = None) -> Figure:
     ax2.plot(tt, rel[1], color="0.45", lw=1.3, ls="--", label="d ln C / d ln V")
     ax2.axhline(0.0, color="0.7", lw=0.6)
     ax2.set_ylabel("relative sensitivity")
-    ax2.set_xlabel(f"time [{conv.unit('time')}]")
+    ax2.set_xlabel(glossary.axis("time", conv.unit("time")))
     ax2.legend(fontsize=8, loc="best")
     ax2.grid(True, color="0.88", linewidth=0.6)
     ax.grid(True, color="0.88", linewidth=0.6)

@@ -171,8 +171,8 @@ def _study_with_options(tmp_path: Path, extra: str) -> Path:
 
 
 def test_nca_options_are_the_same_beside_a_fit(tmp_path, run_cli):
-    # a study's [nca] r2_tolerance applies to `pkcalc nca` and to `fit --with-nca` alike
-    path = _study_with_options(tmp_path, "[nca]\nr2_tolerance = 0.1\n")
+    # a study's [nca] slope_tolerance applies to `pkcalc nca` and to `fit --with-nca` alike
+    path = _study_with_options(tmp_path, "[nca]\nslope_tolerance = 0.1\n")
     nca = run_cli("nca", path, "--json").json()
     fit = run_cli("fit", path, "--with-nca", "--json").json()
     by_nca = {s["subject"]: s["terminal_half_life"] for s in nca["subjects"]}

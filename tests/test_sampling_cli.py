@@ -23,7 +23,7 @@ def test_json_contract_times_and_expected_rse(run_cli):
     best = one["designs"][0]
     assert best["label"] == "optimal" and len(best["times"]) == 2
     assert set(best["expected_rse_percent"]) == {"clearance", "volume"}
-    assert one["designs"][1]["label"] == "yours" and 0 < one["designs"][1]["efficiency"] < 1
+    assert one["designs"][1]["label"] == "compare" and 0 < one["designs"][1]["efficiency"] < 1
     clock = doc["scenarios"][1]
     assert clock["design"] == "map" and clock["designs"][0]["groups"][0]["clock_times"][0] \
         .startswith("2026-03-03T")
@@ -46,7 +46,7 @@ def test_times_follow_the_output_time_unit(run_cli, write):
 def test_outputs_report_and_simulation(run_cli, tmp_path):
     out = tmp_path / "o"
     r = run_cli("sampling", DEMO, "--simulate", "3", "--seed", "3", "--out", out,
-                "--report", tmp_path / "r.html")
+                "--report", tmp_path / "r.html", "--refit", "iterative")
     assert r.code == 0, r.err
     names = sorted(p.name for p in out.iterdir())
     assert "sampling.json" in names and "sampling-times.csv" in names and "CAUTION.txt" in names
@@ -54,7 +54,13 @@ def test_outputs_report_and_simulation(run_cli, tmp_path):
     doc = json.loads((out / "sampling.json").read_text())
     sim = doc["scenarios"][0]["designs"][0]["simulation"]
     assert sim["replicates"] == 3 and sim["seed"] == 3
+    # the iterative re-estimate of the population design gives no intervals: said why
+    pop = doc["scenarios"][2]["designs"][0]["simulation"]
+    assert pop["parameters"]["clearance"]["coverage_percent"] is None
+    assert "no standard errors" in pop["no_coverage_reason"]
+    assert "95% coverage '-': the iterative two-stage" in r.out
     html = (tmp_path / "r.html").read_text()
+    assert "95% coverage '-': the iterative two-stage" in html
     assert html.index("CAUTION") < html.index("Sampling times")
     csv = (out / "sampling-times.csv").read_text().splitlines()
     assert csv[0].startswith("scenario,design,group,subjects,sample,time [h]")

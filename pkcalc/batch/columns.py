@@ -160,8 +160,16 @@ class BatchSummary:
             if self.worker_peak_rss_mb:
                 mem += f", largest worker {max(self.worker_peak_rss_mb.values()):,.0f} MB"
             lines.append(mem)
-        rows = [[glossary.label(name), glossary.unit_of(name) or "0-1", d["p05"], d["p50"],
-                 d["p95"]] for name, d in self.distribution().items() if d is not None]
+        rows = []
+        for name, d in self.distribution().items():
+            if d is None:
+                continue
+            if name.startswith("fraction_in_window"):   # a percentage, as in the plot
+                rows.append([glossary.label(name), "%", *(100 * d[k] for k in
+                                                        ("p05", "p50", "p95"))])
+            else:
+                rows.append([glossary.label(name), glossary.unit_of(name), d["p05"],
+                             d["p50"], d["p95"]])
         if rows:
             lines.append(format_table(["across the batch (first rows)", "unit", "5th",
                                        "median", "95th"], rows))

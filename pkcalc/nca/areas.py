@@ -5,8 +5,9 @@
   ``dt (t1 C1 - t2 C2)/L + dt^2 (C1 - C2)/L^2`` with ``L = ln(C1/C2)``
   (Yeh & Kwan, J Pharmacokinet Biopharm 1978;6:79);
 - terminal slope: least squares of ``ln C`` on ``t`` over the last ``n >= 3``
-  points; adjusted ``R2 = 1 - (1 - R2)(n - 1)/(n - 2)``; the best adjusted R2,
-  preferring more points within :data:`R2_TOLERANCE` of the best (common practice).
+  points; adjusted ``R2 = 1 - (1 - R2)(n - 1)/(n - 2)``; pkcalc's rule: the longest
+  tail whose adjusted R2 is at most :data:`R2_TOLERANCE` (the slope tolerance, an
+  option) below the best tail's.
 """
 
 from __future__ import annotations
@@ -145,8 +146,9 @@ def terminal_phase(t, c, *, min_points: int = 3, tolerance: float = R2_TOLERANCE
     best = max(ties, key=lambda f: f[0])
     n, b, a, r2, adj = best
     return TerminalPhase(-b, a, r2, adj, t[-n:]), (
-        f"terminal points chosen automatically: last {n} of {t.size} after the peak "
-        f"(adjusted R2 {adj:.4f}; ties within {tolerance:g} resolved to more points)")
+        f"terminal slope over the last {n} of {t.size} levels after the peak: the longest "
+        f"tail whose adjusted R² ({adj:.4f}) is at most {tolerance:g} below the best tail's "
+        "(slope tolerance)")
 
 
 def level_at(t, c, at: float, method: str = "linear_up_log_down") -> float:

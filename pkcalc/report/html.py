@@ -288,6 +288,10 @@ def sampling_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[di
                                      "RMSE %", "95% coverage %", "replicates", "failed"],
                                     srows, f"Simulation and re-estimation ({sims[0][1]['method']}"
                                            f", seed {sims[0][1]['seed']})"))
+            why = [f"{label}: 95% coverage '-': {s['no_coverage_reason']}" for label, s in sims
+                   if s.get("no_coverage_reason")]
+            if why:
+                items.append(lines_item("notes", why))
         items += _closing_blocks(sc, figures, f"Sampling times: {sc['name']}")
         out.append({"heading": f"Sampling: {sc['name']}", "blocks": items})
     return out
@@ -533,7 +537,9 @@ def batch_sections(doc: dict[str, Any], figures: dict[str, bytes]) -> list[dict[
     items: list[dict[str, Any]] = [lines_item("text", [
         f"{doc['rows']} rows from {doc['input']} written to {doc['output']} "
         f"({doc['engine']} engine); {doc['failed']} rows with problems."])]
-    rows = [[glossary.words(k), glossary.unit_of(k) or "0-1", d["p05"], d["p50"], d["p95"]]
+    rows = [[glossary.words(k), "%", *(100 * d[q] for q in ("p05", "p50", "p95"))]
+            if k.startswith("fraction_in_window") else
+            [glossary.words(k), glossary.unit_of(k), d["p05"], d["p50"], d["p95"]]
             for k, d in doc["distribution"].items() if d]
     if rows:
         items.append(table_item(["quantity", "unit", "5th", "median", "95th"], rows,

@@ -31,7 +31,7 @@ def _design_dict(r, d, conv: UnitConverter) -> dict[str, Any]:
         s = d.simulation
         out["simulation"] = {
             "replicates": s.replicates, "failed": s.failed, "method": s.method,
-            "seed": s.seed,
+            "seed": s.seed, "no_coverage_reason": s.no_coverage_reason(),
             "parameters": {k: {m: json_number(v) if isinstance(v, float) else v
                                for m, v in vals.items()} for k, vals in s.parameters.items()},
         }

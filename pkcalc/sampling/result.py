@@ -27,6 +27,17 @@ class SimulationSummary:
     seed: int
     parameters: dict[str, dict[str, float | int | None]] = field(default_factory=dict)
 
+    def no_coverage_reason(self) -> str | None:
+        """Why the interval coverage is missing ("" -> None when it is there)."""
+        if all(p.get("coverage_percent") is not None for p in self.parameters.values()):
+            return None
+        if self.failed == self.replicates:
+            return "every re-estimate failed"
+        if "iterative" in self.method:
+            return ("the iterative two-stage re-estimates give no standard errors, hence no "
+                    "intervals (--refit marginal gives them)")
+        return "no re-estimate gave a 95 % interval (standard errors not available)"
+
 
 @dataclass
 class DesignEvaluation:
@@ -35,7 +46,8 @@ class DesignEvaluation:
     Attributes
     ----------
     label : str
-        ``"optimal"`` or ``"yours 1"``, ``"yours 2"``...
+        ``"optimal"``, ``"compare"`` (``"compare 1"``, ``"compare 2"``... with several
+        schedules under ``compare``) or ``"group times"`` (the groups' own times).
     times : list of list of float, h
         Per group, sorted.
     expected_rse_percent : dict
@@ -152,6 +164,9 @@ class SamplingResult:
                 s = d.simulation
                 lines.append(f"{d.label}: {s.replicates} simulated replicates re-estimated "
                              f"({s.method}, seed {s.seed}), {s.failed} failed")
+                why = s.no_coverage_reason()
+                if why:
+                    lines.append(f"  95% coverage '-': {why}")
         lines += self.notes
         return with_caution("\n".join(lines), caution)
 

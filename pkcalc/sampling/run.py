@@ -90,8 +90,9 @@ def design_sampling(problem: SamplingProblem, *, simulate: int = 0, seed: int = 
     engine : Engine, optional
         Where the replicates run (:mod:`pkcalc.engines`).
     refit : {"iterative", "marginal"}, optional
-        Population re-estimates: iterative two-stage (default; fast) or the
-        marginal likelihood (Laplace).
+        Population re-estimates: the marginal likelihood (Laplace; default, as in
+        ``pkcalc population``; gives the intervals whose coverage is reported) or the
+        iterative two-stage method (faster; no standard errors, so no coverage).
     progress : callable, optional
         Receives a line per finished block of replicates.
 
@@ -144,16 +145,17 @@ def design_sampling(problem: SamplingProblem, *, simulate: int = 0, seed: int = 
     else:
         names, values = ["clearance", "volume"], np.ones(2)
     designs = [_evaluate(ev, "optimal", best, names, values)]
-    yours = [[np.array(t, float)] for t in p.compare]
+    # the schedules to compare: named after the key that gave them (compare, groups.times)
+    given = [("compare" if len(p.compare) == 1 else f"compare {i + 1}", [np.array(t, float)])
+             for i, t in enumerate(p.compare)]
     if any(g.times is not None for g in p.groups):
         if not all(g.times is not None for g in p.groups):
             raise PkcalcInputError("give every group's times, or none", item=where,
                                    field="sampling.groups")
-        yours.append([np.array(g.times, float) for g in p.groups])
+        given.append(("group times", [np.array(g.times, float) for g in p.groups]))
     notes, warnings = [], []
-    for i, sched in enumerate(yours):
-        d = _evaluate(ev, f"yours {i + 1}" if len(yours) > 1 else "yours", sched, names,
-                      values)
+    for label, sched in given:
+        d = _evaluate(ev, label, sched, names, values)
         d.efficiency = efficiency(d.log_det, designs[0].log_det, len(names))
         bad = [float(t) for s in sched for t in s if not allowed.contains(t)[0]]
         if bad:

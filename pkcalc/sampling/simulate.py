@@ -181,7 +181,7 @@ def summarise(rows: np.ndarray, method: str, seed: int) -> SimulationSummary:
 def simulate_designs(p: SamplingProblem, ev: Evaluator, designs: list[DesignEvaluation],
                      n: int, seed: int, engine: Engine, refit: str | None, progress) -> None:
     """Simulate and re-estimate ``n`` replicates of every design (in place)."""
-    refit = refit or "iterative"
+    refit = refit or "marginal"      # the default of `pkcalc population` too
     if refit not in REFIT_METHODS:
         raise ValueError(f"refit: '{refit}' is not one of {', '.join(REFIT_METHODS)}")
     size = BLOCK_INDIVIDUAL if p.design != "population" else BLOCK_POPULATION

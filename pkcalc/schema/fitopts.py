@@ -394,6 +394,8 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
     from ..units import to_canonical
 
     raw = {k: v for k, v in (raw or {}).items() if v is not None}
+    if "method" in raw:   # the former spelling of a value, accepted for one release
+        raw["method"] = glossary.canonical_value(raw["method"], f"{file}: population.method")
     problems: list[Problem] = []
     allowed = set(POPULATION_KEYS)
     for key in sorted(set(raw) - allowed):
@@ -465,7 +467,7 @@ def population_options(raw: dict[str, Any] | None = None, *, file: str | None = 
                                         field=f"population.stepwise.{key}",
                                         expected="candidates, add_if_p_below, "
                                                  "remove_if_p_above"))
-    method = glossary.canonical_value(raw.get("method", "marginal"), "population.method")
+    method = raw.get("method", "marginal")
     if method in ("iterative", "two_stage") and (effects or models or candidates):
         problems.append(Problem("covariate effects, model comparison and stepwise selection "
                                 "need the marginal method", file=file,

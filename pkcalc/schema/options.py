@@ -22,7 +22,8 @@ __all__ = ["study_fit_options", "study_nca_options", "study_population_options"]
 
 #: The command-line option of each key (for messages about values given there).
 CLI_NAMES = {"effects": "--effect", "models": "--model", "stepwise": "--stepwise",
-             "terminal_points": "--terminal", "blq": "--blq", "prior": "--prior"}
+             "terminal_points": "--terminal", "blq": "--blq", "prior": "--prior",
+             "slope_tolerance": "--slope-tolerance"}
 
 
 def _given_here(table: str, overrides: dict[str, Any], labels: dict[str, str] | None):

@@ -740,7 +740,7 @@ def _tolerance(value: Any, field: str) -> tuple[float, float]:
 
 
 #: The keys of a study's ``[nca]`` table (and of ``nca_study``'s keywords).
-NCA_KEYS = ("auc_method", "blq", "terminal_points", "r2_tolerance", "extrapolation_limit",
+NCA_KEYS = ("auc_method", "blq", "terminal_points", "slope_tolerance", "extrapolation_limit",
             "interval", "interval_tolerance", "duration_tolerance")
 
 
@@ -760,6 +760,10 @@ def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOp
     problems: list[Problem] = []
     out: dict[str, Any] = {}
     allowed = set(NCA_KEYS)
+    if "r2_tolerance" in raw and "slope_tolerance" not in raw:
+        raw = dict(raw)
+        glossary.former("r2_tolerance", "slope_tolerance", f"{file}: nca")
+        raw["slope_tolerance"] = raw.pop("r2_tolerance")
     for key in sorted(set(raw) - allowed):
         problems.append(Problem("unknown key", file=file, field=f"nca.{key}",
                                 expected=", ".join(sorted(allowed))))
@@ -774,7 +778,7 @@ def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOp
         problems.append(Problem(f"unknown BLQ rule '{rule}'", file=file, field="nca.blq",
                                 expected=", ".join(NCA_BLQ_RULES)))
     out["blq_rule"] = rule
-    for key, lo, hi in (("r2_tolerance", 0.0, 0.1), ("extrapolation_limit", 0.0, 100.0)):
+    for key, lo, hi in (("slope_tolerance", 0.0, 0.1), ("extrapolation_limit", 0.0, 100.0)):
         if key in raw:
             value = raw[key]
             if not isinstance(value, int | float) or isinstance(value, bool) \
@@ -782,7 +786,7 @@ def nca_options(raw: dict[str, Any] | None, *, file: str | None = None) -> NcaOp
                 problems.append(Problem(f"must be a number from {lo:g} to {hi:g}", file=file,
                                         field=f"nca.{key}"))
             else:
-                out[key] = float(value)
+                out["r2_tolerance" if key == "slope_tolerance" else key] = float(value)
     if "interval" in raw:
         value = str(raw["interval"]).strip().lower()
         if value in NCA_INTERVALS or (value.isdigit() and int(value) >= 1):
