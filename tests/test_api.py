@@ -348,7 +348,7 @@ def test_frames_carry_units_in_their_headers(pop):
     study = pkcalc.load_study_file(SCENARIOS / "demo-study.toml")
     nca = pkcalc.nca_study(study)
     fit = pkcalc.fit_study(study, adequacy=False)
-    unitless = {"subject", "mode", "converged", "objective", "aic", "bic", "n_obs", "n_blq",
+    unitless = {"subject", "mode", "converged", "objective", "aic", "bic", "n_levels", "n_blq",
                 "starts", "starts_agreed", "warnings", "notes", "points_used", "regimen",
                 "assumptions", "reference_dose", "steady_state", "adjusted_r2",
                 "accumulation_ratio", "auc_extrapolated_percent", "fluctuation_percent",

@@ -14,7 +14,8 @@ from .conftest import SCENARIOS
 
 DEMO = SCENARIOS / "demo.toml"
 
-PREDICT_SCENARIO_KEYS = {"name", "parameters", "plateau_concentration", "time_to_fraction",
+PREDICT_SCENARIO_KEYS = {"name", "parameters", "plateau_concentration", "time_to_50_percent",
+                         "time_to_90_percent", "time_to_95_percent", "time_to_99_percent",
                          "profile", "steady_state", "warnings"}
 PARAMETER_KEYS = {"clearance", "volume", "elimination_rate", "half_life", "time_constant"}
 UNIT_KEYS = {"time", "amount", "volume", "concentration", "clearance", "rate",
@@ -40,7 +41,8 @@ def test_predict_json_contract(run_cli):
     for sc in doc["scenarios"]:
         assert PREDICT_SCENARIO_KEYS <= set(sc)
         assert set(sc["parameters"]) == PARAMETER_KEYS
-        assert set(sc["time_to_fraction"]) == {"0.5", "0.9", "0.95", "0.99"}
+        assert {k for k in sc if k.startswith("half_lives_to_")} == {
+            f"half_lives_to_{p}_percent" for p in (50, 90, 95, 99)}
         assert len(sc["profile"]["time"]) == len(sc["profile"]["concentration"])
     ss = doc["scenarios"][1]["steady_state"]
     assert set(ss) >= {"peak", "trough", "average"}
@@ -55,7 +57,7 @@ def test_output_units_are_applied(run_cli, write):
     assert doc["units"]["time"] == "min"
     sc = doc["scenarios"][0]
     assert sc["parameters"]["half_life"] == pytest.approx(480.0)
-    assert sc["time_to_fraction"]["0.5"] == pytest.approx(480.0)
+    assert sc["time_to_50_percent"] == pytest.approx(480.0)
     assert sc["profile"]["time"][1] == pytest.approx(30.0)
 
 

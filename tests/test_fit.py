@@ -281,7 +281,7 @@ def test_cli_fit_demo_json_contract(run_cli):
     assert doc["caution"]
     for s in doc["subjects"]:
         assert {"subject", "converged", "estimates", "error_model", "objective", "aic",
-                "n_obs", "n_blq", "warnings"} <= set(s)
+                "n_levels", "n_parameters", "n_blq", "warnings"} <= set(s)
         for name in ("clearance", "volume", "half_life", "elimination_rate"):
             assert {"value", "se", "ci_low", "ci_high"} <= set(s["estimates"][name])
     assert len(doc["comparison_with_nca"]) == 12

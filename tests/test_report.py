@@ -265,7 +265,7 @@ def test_the_html_design_table_has_the_terminals_columns(run_cli, tmp_path):
     for header in ("peak [mg/L]", "trough [mg/L]", "AUC24 [mg*h/L]", "check",
                    "highest [mg/L]", "lowest after loading [mg/L]", "every [h]"):
         assert header in html
-    assert "target: peak limits - to 30.00 mg/L; trough limits 8.000 to - mg/L" in html
+    assert "target: peak at most 30.00 mg/L; trough at least 8.000 mg/L" in html
     assert "[None" not in html
 
 

@@ -24,7 +24,8 @@ def test_expected_rse_agrees_with_500_simulated_replicates(design):
         groups=(SamplingGroup("all", 60 if pop else 1, 4),), window=(0.0, 48.0),
         omega=None if design == "individual" else np.diag([0.3**2, 0.25**2]),
         avoid_infusion=True, min_spacing=1.0)
-    r = design_sampling(p, simulate=500, seed=11, engine=Engine("local", workers=2))
+    r = design_sampling(p, simulate=500, seed=11, engine=Engine("local", workers=2),
+                        refit="iterative")
     s = r.optimal.simulation
     print(f"\n[{design}] times {r.optimal.times}; failed {s.failed}")
     for k in ("clearance", "volume"):

@@ -51,12 +51,17 @@ LOG_2PI = math.log(2 * math.pi)
 #: Central-difference steps (log-parameters) for the gradient and the Hessian.
 GRAD_STEP = 1e-4
 HESS_STEP = 2e-3
+#: Step of psi for the derivative of the analytic inner gradient at fixed modes.
+DPSI_STEP = 1e-5
 #: Largest gradient of -2 ln L at which the optimiser's "success" is not believed.
 GRADIENT_DISAGREES = 1.0
 #: Condition number of the information (correlation form) above which the covariance
 #: step warns that the estimates are nearly confounded (common practice: 1e3 is a
 #: warning sign, 1e6 a failure; we warn from 1e4).
 CONDITION_WARN = 1e4
+#: Largest number of rows (subjects x outer parameter vectors x quadrature nodes) solved
+#: in one vectorised call: bounds the memory of a gradient or a covariance step.
+ROW_BLOCK = 60_000
 
 
 def gauss_hermite(nodes: int, q: int = 2) -> tuple[np.ndarray, np.ndarray]:
@@ -230,12 +235,15 @@ class MarginalProblem:
                        sa=np.full(self.n, sa), sp=np.full(self.n, sp),
                        geometry=self.batch.geometry)
 
-    def _modes(self, b: Batch, mu: np.ndarray, both: bool):
+    def _modes(self, b: Batch, mu: np.ndarray, both: bool, warm: np.ndarray | None = None):
         """Conditional modes: from the warm start (and the typical values when ``both``
-        or there is no warm start), the better end point kept."""
-        n = self.n
-        warm = self.theta if self.theta is not None else mu
-        starts = [warm, mu] if (both or self.theta is None) else [warm]
+        or there is no warm start), the better end point kept.  ``b`` may hold every
+        subject several times (one row per subject and outer parameter vector): ``mu``
+        and ``warm`` are then per row."""
+        n = b.t.shape[0]
+        warm = warm if warm is not None else self.theta
+        starts = [warm, mu] if (both or warm is None) else [warm]
+        starts = [mu if s is None else s for s in starts]
         m = len(starts)
         bm = b if m == 1 else b.repeat(m)
 
@@ -274,7 +282,25 @@ class MarginalProblem:
         if not np.all(np.isfinite(mu)) or (self.error != "proportional" and sa <= 0):
             return np.full(self.n, np.inf), None, None
         b = self._map_batch(mu, omega, sa, sp)
-        theta = self._modes(b, mu, both)
+        logdet_omega = np.full(self.n, float(np.linalg.slogdet(omega)[1]))
+        m2ll, theta, post = self._terms(b, mu, logdet_omega, both, self.theta)
+        self._last = (np.array(psi, float), theta)
+        if update:
+            self.theta = theta
+        return m2ll, theta, post
+
+    def _terms(self, b: Batch, mu: np.ndarray, logdet_omega: np.ndarray, both: bool,
+               warm: np.ndarray | None):
+        """``-2 ln L`` of every row of ``b`` (a subject under one outer parameter vector),
+        with its conditional mode and posterior covariance."""
+        theta = self._modes(b, mu, both, warm)
+        m2ll, post = self._at_modes(b, theta, logdet_omega)
+        return m2ll, theta, post
+
+    def _at_modes(self, b: Batch, theta: np.ndarray, logdet_omega: np.ndarray):
+        """The Laplace or quadrature ``-2 ln L`` of every row of ``b`` centred at
+        ``theta`` (the conditional modes; no solve here), and the posterior covariance."""
+        rows = theta.shape[0]
         g, _, info, _ = evaluate(b, theta)
         hess = observed_hessian(b, theta)
         half = 0.5 * hess
@@ -283,7 +309,6 @@ class MarginalProblem:
         if bad.any():                       # not positive definite: the scoring matrix
             half[bad] = 0.5 * info[bad]
         post = np.linalg.inv(half)
-        logdet_omega = float(np.linalg.slogdet(omega)[1])
         if self.nodes == 1:
             m2ll = laplace(g + logdet_omega + 2 * LOG_2PI, half)
         else:
@@ -292,11 +317,62 @@ class MarginalProblem:
                                                                    self._grid)
             k = pts.shape[1]
             g_nodes, _, _, _ = evaluate(b.repeat(k), pts.reshape(-1, 2))
-            h_nodes = g_nodes.reshape(self.n, k) + logdet_omega + 2 * LOG_2PI
+            h_nodes = g_nodes.reshape(rows, k) + logdet_omega[:, None] + 2 * LOG_2PI
             m2ll = log_integral(h_nodes, chol, self.nodes)
-        if update:
-            self.theta = theta
-        return m2ll, theta, post
+        return m2ll, post
+
+    def objectives(self, psis: np.ndarray) -> np.ndarray:
+        """The summed ``-2 ln L`` at several outer parameter vectors, from the current
+        modes (not updated): every subject under every vector is one row of a single
+        vectorised inner solve (the rows stay independent problems), in blocks of at
+        most :data:`ROW_BLOCK` rows x quadrature nodes."""
+        psis = np.atleast_2d(np.asarray(psis, float))
+        if self.theta is None:
+            return np.array([self.objective(p) for p in psis])
+        per = max(1, ROW_BLOCK // (self.n * (1 if self._grid is None else len(self._grid))))
+        return np.concatenate([self._objectives(psis[i:i + per])
+                               for i in range(0, len(psis), per)])
+
+    def _objectives(self, psis: np.ndarray) -> np.ndarray:
+        n, p_count = self.n, len(psis)
+        self.evaluations += p_count
+        b, mu, logdet, usable = self._rows(psis)
+        warm = np.repeat(self.theta, p_count, axis=0)
+        m2ll, _, _ = self._terms(b, mu, logdet, False, warm)
+        total = m2ll.reshape(n, p_count).sum(axis=0)
+        return np.where(usable & np.isfinite(total), total, np.inf)
+
+    def _rows(self, psis: np.ndarray):
+        """Every subject under every outer parameter vector (row ``i P + j``): the batch,
+        the typical values and ``ln|Omega|`` per row, and which vectors are usable."""
+        n, p_count = self.n, len(psis)
+        mu = np.zeros((n, p_count, 2))
+        oinv = np.tile(np.eye(2), (p_count, 1, 1))
+        sa, sp, logdet = np.zeros(p_count), np.zeros(p_count), np.zeros(p_count)
+        usable = np.ones(p_count, bool)
+        for j, psi in enumerate(psis):
+            beta, omega, sa[j], sp[j] = self.unpack(psi)
+            m = self.design.means(beta)
+            if not np.all(np.isfinite(m)) or (self.error != "proportional" and sa[j] <= 0):
+                usable[j] = False
+                sa[j] = sp[j] = 1.0
+                continue
+            mu[:, j] = m
+            oinv[j] = np.linalg.inv(omega)
+            logdet[j] = np.linalg.slogdet(omega)[1]
+        base = self._repeated(p_count)
+        b = replace(base, kind="map", mu=mu.reshape(n * p_count, 2),
+                    omega_inv=np.broadcast_to(oinv[None], (n, p_count, 2, 2)).reshape(-1, 2, 2),
+                    sa=np.tile(sa, n), sp=np.tile(sp, n))
+        return b, mu.reshape(-1, 2), np.tile(logdet, n), usable
+
+    def _repeated(self, count: int) -> Batch:
+        """The subjects' batch with every row repeated ``count`` times (kept for reuse)."""
+        cache = self.__dict__.setdefault("_repeat_cache", {})
+        if count not in cache:
+            cache.clear()
+            cache[count] = self.batch.repeat(count)
+        return cache[count]
 
     def objective(self, psi: np.ndarray, *, update: bool = False) -> float:
         m2ll, _, _ = self.subject_terms(psi, update=update)
@@ -304,31 +380,85 @@ class MarginalProblem:
         return total if math.isfinite(total) else math.inf
 
     def gradient(self, psi: np.ndarray) -> np.ndarray:
-        """Central differences from the current modes (not updated)."""
-        g = np.empty(psi.size)
-        for j in range(psi.size):
-            step = np.zeros(psi.size)
-            step[j] = GRAD_STEP
-            up, dn = self.objective(psi + step), self.objective(psi - step)
-            g[j] = (up - dn) / (2 * GRAD_STEP) if math.isfinite(up) and math.isfinite(dn) \
-                else 0.0
-        return g
+        """Gradient of the summed ``-2 ln L`` by the implicit function theorem.
+
+        Each subject's term is ``Q(theta^(psi), psi)``: the Laplace (or quadrature)
+        formula centred at the conditional mode.  The mode moves with ``psi`` along
+        ``d theta^/d psi_j = -H^-1 d G / d psi_j`` (``G`` the analytic gradient of ``h``
+        in ``theta``, ``H`` its Jacobian); the total derivative is the central
+        difference of ``Q`` along that tangent, ``(theta^ +- e s_j, psi +- e e_j)``.
+        No mode is solved again: every subject under every shifted vector is one
+        row of one vectorised evaluation.  (:meth:`gradient_by_differences` is the
+        plain finite-difference check.)"""
+        psi = np.asarray(psi, float)
+        theta = self._modes_at(psi)
+        if theta is None:
+            return self.gradient_by_differences(psi)
+        n, p = self.n, psi.size
+        e = np.eye(p)
+        # d G / d psi_j at the fixed modes, and H at psi
+        b0, _, _, _ = self._rows(psi[None])
+        hess = observed_hessian(b0, theta)
+        shifted = np.concatenate([psi + DPSI_STEP * e, psi - DPSI_STEP * e])
+        bs, _, _, ok_s = self._rows(shifted)
+        _, grad_s, _, _ = evaluate(bs, np.repeat(theta, 2 * p, axis=0))
+        grad_s = grad_s.reshape(n, 2 * p, 2)
+        d_g = (grad_s[:, :p] - grad_s[:, p:]) / (2 * DPSI_STEP)          # (n, p, 2)
+        det = hess[:, 0, 0] * hess[:, 1, 1] - hess[:, 0, 1] ** 2
+        pd = (hess[:, 0, 0] > 0) & (det > 0)
+        tangent = np.zeros_like(d_g)
+        if pd.any():
+            tangent[pd] = -np.linalg.solve(hess[pd][:, None], d_g[pd][..., None])[..., 0]
+        # Q along the tangent, both directions, every subject and component at once
+        along = np.concatenate([psi + GRAD_STEP * e, psi - GRAD_STEP * e])
+        b, _, logdet, ok = self._rows(along)
+        centres = theta[:, None, :] + GRAD_STEP * np.concatenate([tangent, -tangent], axis=1)
+        m2ll, _ = self._at_modes(b, centres.reshape(-1, 2), logdet)
+        total = m2ll.reshape(n, 2 * p).sum(axis=0)
+        self.evaluations += 2 * p
+        up, dn = total[:p], total[p:]
+        good = ok[:p] & ok[p:] & ok_s[:p] & ok_s[p:] & np.isfinite(up) & np.isfinite(dn)
+        return np.where(good, (up - dn) / (2 * GRAD_STEP), 0.0)
+
+    def gradient_by_differences(self, psi: np.ndarray) -> np.ndarray:
+        """Central differences of the objective, every mode solved again (from the
+        current warm start): the reference the implicit-function gradient is checked
+        against; the ``2 p`` shifted objectives are solved together."""
+        p = psi.size
+        e = np.eye(p) * GRAD_STEP
+        f = self.objectives(np.concatenate([psi + e, psi - e]))
+        up, dn = f[:p], f[p:]
+        ok = np.isfinite(up) & np.isfinite(dn)
+        return np.where(ok, (up - dn) / (2 * GRAD_STEP), 0.0)
+
+    def _modes_at(self, psi: np.ndarray) -> np.ndarray | None:
+        """The conditional modes at ``psi``: those of the last evaluation when it was at
+        ``psi`` (the optimiser asks for the value, then the gradient), else solved."""
+        last = self.__dict__.get("_last")
+        if last is not None and np.array_equal(last[0], psi):
+            return last[1]
+        _, theta, _ = self.subject_terms(psi, update=False)
+        return theta
 
     def hessian(self, psi: np.ndarray) -> np.ndarray:
-        """Hessian of the summed ``-2 ln L`` by second central differences."""
+        """Hessian of the summed ``-2 ln L`` by second central differences (every shifted
+        point solved together, :meth:`objectives`)."""
         p = psi.size
         h = HESS_STEP
-        f0 = self.objective(psi)
-        hess = np.empty((p, p))
         e = np.eye(p) * h
-        fp = [self.objective(psi + e[j]) for j in range(p)]
-        fm = [self.objective(psi - e[j]) for j in range(p)]
+        pairs = [(j, k) for j in range(p) for k in range(j)]
+        points = [psi, *(psi + e[j] for j in range(p)), *(psi - e[j] for j in range(p))]
+        for j, k in pairs:
+            points += [psi + e[j] + e[k], psi + e[j] - e[k], psi - e[j] + e[k],
+                       psi - e[j] - e[k]]
+        f = self.objectives(np.array(points))
+        f0, fp, fm = f[0], f[1:p + 1], f[p + 1:2 * p + 1]
+        hess = np.empty((p, p))
         for j in range(p):
             hess[j, j] = (fp[j] - 2 * f0 + fm[j]) / h**2
-            for k in range(j):
-                v = (self.objective(psi + e[j] + e[k]) - self.objective(psi + e[j] - e[k])
-                     - self.objective(psi - e[j] + e[k]) + self.objective(psi - e[j] - e[k]))
-                hess[j, k] = hess[k, j] = v / (4 * h * h)
+        for i, (j, k) in enumerate(pairs):
+            a, b, c, d = f[2 * p + 1 + 4 * i: 2 * p + 5 + 4 * i]
+            hess[j, k] = hess[k, j] = (a - b - c + d) / (4 * h * h)
         return hess
 
     # ------------------------------------------------------------------ the optimum
