@@ -339,8 +339,7 @@ def _sampling_parser(sub) -> None:
     p.add_argument("--seed", type=int, metavar="S", help="seed of the simulations (default 1)")
     p.add_argument("--refit", choices=["marginal", "iterative"],
                    help="population re-estimates: the marginal likelihood (default, as in "
-                        "pkcalc population) or iterative two-stage (faster; no standard "
-                        "errors, so no interval coverage)")
+                        "pkcalc population) or iterative two-stage (faster)")
     p.add_argument("--starts", type=int, metavar="N",
                    help="optimiser starts per design (default 12)")
     _engine_args(p, "where simulated replicates run: this process (default; --workers N for "

@@ -70,7 +70,7 @@ def test_terminal_slope_equals_linregress():
     assert phase.r2 == pytest.approx(ref.rvalue**2, rel=1e-12)
     n = phase.times.size
     assert phase.adjusted_r2 == pytest.approx(1 - (1 - ref.rvalue**2) * (n - 1) / (n - 2))
-    assert "automatically" in note
+    assert "longest tail" in note
 
 
 def test_terminal_selection_prefers_more_points_on_ties():

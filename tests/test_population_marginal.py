@@ -135,12 +135,12 @@ def test_objectives_at_many_points_equal_the_one_at_a_time_objective(nodes):
     # and in blocks (a tiny row budget forces one point per block)
     from pkcalc.population import marginal
 
-    old = marginal.ROW_BLOCK
+    old = marginal.CELL_BLOCK
     try:
-        marginal.ROW_BLOCK = 1
+        marginal.CELL_BLOCK = 1
         assert prob.objectives(points) == pytest.approx(one, rel=1e-10)
     finally:
-        marginal.ROW_BLOCK = old
+        marginal.CELL_BLOCK = old
     h = marginal.GRAD_STEP
     fd = [(prob.objective(psi + h * e) - prob.objective(psi - h * e)) / (2 * h)
           for e in np.eye(psi.size)]

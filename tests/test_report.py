@@ -225,7 +225,8 @@ def test_the_demo_report_opens_with_the_overview_and_contents(demo_report):
     s.feed(html)
     assert not s.errors and s.stack == [], s.errors[:5]
     assert s.h2[:2] == ["Overview", "Contents"]
-    assert s.h2[-4:] == ["All warnings", "Inputs", "Results as data", "Reproducibility"]
+    assert s.h2[-5:] == ["All warnings", "Inputs", "Terms and abbreviations", "Results as data",
+                         "Reproducibility"]
     assert len(s.ids) == len(set(s.ids))
     assert set(s.links) <= set(s.ids) and len(s.links) >= 20     # every link lands
     # the overview: a verdict line per command, linked to its section

@@ -207,6 +207,14 @@ def test_designs_respect_every_constraint(lo, width, levels, spacing, avoid):
             assert not np.any((t > 6 * s + 1e-9) & (t < 6 * s + 1.0 - 1e-9))
 
 
+def test_a_window_that_leaves_one_schedule_finds_it():
+    # 4 levels 2 h apart in 1-7 h: 1, 3, 5, 7 h is the only schedule (found by hypothesis)
+    p = problem(doses=(DoseEvent(0.0, 500.0, 1.0, 6.0, 10),), window=(1.0, 7.0),
+                groups=(SamplingGroup("patient", 1, 4),), min_spacing=2.0,
+                avoid_infusion=False, additive=0.2, proportional=0.1, starts=4)
+    assert design_sampling(p).optimal.times[0] == pytest.approx([1.0, 3.0, 5.0, 7.0])
+
+
 def test_candidates_exchange_search_finds_the_brute_force_optimum():
     cands = tuple(float(x) for x in (0.5, 1, 2, 3, 5, 8, 12, 16, 24, 36))
     p = problem(design="population", omega=np.diag([0.09, 0.04]), additive=0.0,

@@ -59,9 +59,25 @@ GRADIENT_DISAGREES = 1.0
 #: step warns that the estimates are nearly confounded (common practice: 1e3 is a
 #: warning sign, 1e6 a failure; we warn from 1e4).
 CONDITION_WARN = 1e4
-#: Largest number of rows (subjects x outer parameter vectors x quadrature nodes) solved
-#: in one vectorised call: bounds the memory of a gradient or a covariance step.
-ROW_BLOCK = 60_000
+#: Largest number of level x dose cells of one vectorised evaluation (0.8 MB per
+#: temporary array: larger ones are mapped and unmapped by the allocator on every call).
+CELL_BLOCK = 100_000
+
+
+def _at_nodes(b: Batch, pts: np.ndarray) -> np.ndarray:
+    """The inner objective of row ``r`` of ``b`` at each of its node points ``pts[r]``
+    (shape (R, K, q)), evaluated in blocks of at most :data:`CELL_BLOCK` cells so the
+    temporaries stay small (large ones are mapped and unmapped by the allocator on
+    every call: system time, not arithmetic)."""
+    r, k = pts.shape[:2]
+    flat = pts.reshape(r * k, -1)
+    cells = b.t.shape[1] * max(b.start.shape[1], 1)
+    per = max(1, CELL_BLOCK // cells)
+    out = np.empty(r * k)
+    for a in range(0, r * k, per):
+        idx = np.arange(a, min(a + per, r * k))
+        out[idx] = evaluate(b.rows(idx // k), flat[idx])[0]
+    return out.reshape(r, k)
 
 
 def gauss_hermite(nodes: int, q: int = 2) -> tuple[np.ndarray, np.ndarray]:
@@ -300,7 +316,6 @@ class MarginalProblem:
     def _at_modes(self, b: Batch, theta: np.ndarray, logdet_omega: np.ndarray):
         """The Laplace or quadrature ``-2 ln L`` of every row of ``b`` centred at
         ``theta`` (the conditional modes; no solve here), and the posterior covariance."""
-        rows = theta.shape[0]
         g, _, info, _ = evaluate(b, theta)
         hess = observed_hessian(b, theta)
         half = 0.5 * hess
@@ -315,23 +330,27 @@ class MarginalProblem:
             chol = np.linalg.cholesky(post)
             pts = theta[:, None, :] + math.sqrt(2.0) * np.einsum("bij,kj->bki", chol,
                                                                    self._grid)
-            k = pts.shape[1]
-            g_nodes, _, _, _ = evaluate(b.repeat(k), pts.reshape(-1, 2))
-            h_nodes = g_nodes.reshape(rows, k) + logdet_omega[:, None] + 2 * LOG_2PI
+            h_nodes = _at_nodes(b, pts) + logdet_omega[:, None] + 2 * LOG_2PI
             m2ll = log_integral(h_nodes, chol, self.nodes)
         return m2ll, post
 
     def objectives(self, psis: np.ndarray) -> np.ndarray:
         """The summed ``-2 ln L`` at several outer parameter vectors, from the current
         modes (not updated): every subject under every vector is one row of a single
-        vectorised inner solve (the rows stay independent problems), in blocks of at
-        most :data:`ROW_BLOCK` rows x quadrature nodes."""
+        vectorised inner solve (the rows stay independent problems), in blocks of
+        vectors that keep each evaluation within :data:`CELL_BLOCK` cells."""
         psis = np.atleast_2d(np.asarray(psis, float))
         if self.theta is None:
             return np.array([self.objective(p) for p in psis])
-        per = max(1, ROW_BLOCK // (self.n * (1 if self._grid is None else len(self._grid))))
+        per = self._vectors_per_block()
         return np.concatenate([self._objectives(psis[i:i + per])
                                for i in range(0, len(psis), per)])
+
+    def _vectors_per_block(self) -> int:
+        """Outer parameter vectors whose rows (every subject, x 2 for the Hessian's
+        shifted points) fit in :data:`CELL_BLOCK` cells; at least one."""
+        cells = self.batch.t.shape[1] * max(self.batch.start.shape[1], 1)
+        return max(1, CELL_BLOCK // (2 * self.n * cells))
 
     def _objectives(self, psis: np.ndarray) -> np.ndarray:
         n, p_count = self.n, len(psis)
@@ -394,30 +413,39 @@ class MarginalProblem:
         theta = self._modes_at(psi)
         if theta is None:
             return self.gradient_by_differences(psi)
-        n, p = self.n, psi.size
-        e = np.eye(p)
-        # d G / d psi_j at the fixed modes, and H at psi
+        p = psi.size
         b0, _, _, _ = self._rows(psi[None])
         hess = observed_hessian(b0, theta)
-        shifted = np.concatenate([psi + DPSI_STEP * e, psi - DPSI_STEP * e])
-        bs, _, _, ok_s = self._rows(shifted)
-        _, grad_s, _, _ = evaluate(bs, np.repeat(theta, 2 * p, axis=0))
-        grad_s = grad_s.reshape(n, 2 * p, 2)
-        d_g = (grad_s[:, :p] - grad_s[:, p:]) / (2 * DPSI_STEP)          # (n, p, 2)
         det = hess[:, 0, 0] * hess[:, 1, 1] - hess[:, 0, 1] ** 2
         pd = (hess[:, 0, 0] > 0) & (det > 0)
+        out = np.zeros(p)
+        per = self._vectors_per_block()
+        for j0 in range(0, p, per):                 # components in blocks (bounded memory)
+            js = np.arange(j0, min(j0 + per, p))
+            out[js] = self._gradient_part(psi, theta, hess, pd, js)
+        self.evaluations += 2 * p
+        return out
+
+    def _gradient_part(self, psi, theta, hess, pd, js: np.ndarray) -> np.ndarray:
+        """Components ``js`` of :meth:`gradient`."""
+        n, m = self.n, js.size
+        e = np.eye(psi.size)[js]
+        # d G / d psi_j at the fixed modes
+        bs, _, _, ok_s = self._rows(np.concatenate([psi + DPSI_STEP * e, psi - DPSI_STEP * e]))
+        _, grad_s, _, _ = evaluate(bs, np.repeat(theta, 2 * m, axis=0))
+        grad_s = grad_s.reshape(n, 2 * m, 2)
+        d_g = (grad_s[:, :m] - grad_s[:, m:]) / (2 * DPSI_STEP)          # (n, m, 2)
         tangent = np.zeros_like(d_g)
         if pd.any():
             tangent[pd] = -np.linalg.solve(hess[pd][:, None], d_g[pd][..., None])[..., 0]
         # Q along the tangent, both directions, every subject and component at once
-        along = np.concatenate([psi + GRAD_STEP * e, psi - GRAD_STEP * e])
-        b, _, logdet, ok = self._rows(along)
+        b, _, logdet, ok = self._rows(np.concatenate([psi + GRAD_STEP * e,
+                                                      psi - GRAD_STEP * e]))
         centres = theta[:, None, :] + GRAD_STEP * np.concatenate([tangent, -tangent], axis=1)
         m2ll, _ = self._at_modes(b, centres.reshape(-1, 2), logdet)
-        total = m2ll.reshape(n, 2 * p).sum(axis=0)
-        self.evaluations += 2 * p
-        up, dn = total[:p], total[p:]
-        good = ok[:p] & ok[p:] & ok_s[:p] & ok_s[p:] & np.isfinite(up) & np.isfinite(dn)
+        total = m2ll.reshape(n, 2 * m).sum(axis=0)
+        up, dn = total[:m], total[m:]
+        good = ok[:m] & ok[m:] & ok_s[:m] & ok_s[m:] & np.isfinite(up) & np.isfinite(dn)
         return np.where(good, (up - dn) / (2 * GRAD_STEP), 0.0)
 
     def gradient_by_differences(self, psi: np.ndarray) -> np.ndarray:

@@ -352,11 +352,21 @@ def _discrete(ev: Evaluator, cands: np.ndarray, rng: np.random.Generator
 
 def _random_subset(cands: np.ndarray, n: int, spacing: float, rng: np.random.Generator,
                    spread: bool) -> np.ndarray | None:
-    """Indices of n candidates that keep the spacing (evenly spread or random)."""
+    """Indices of n candidates that keep the spacing (evenly spread or random).  An
+    evenly spread start that cannot keep the spacing falls back to the earliest chain
+    (each time the first one far enough after the last): when the constraints leave a
+    single schedule, that is it."""
     order = rng.permutation(cands.size)
     if spread:
         order = np.concatenate([np.round(np.linspace(0, cands.size - 1, n)).astype(int),
                                 np.arange(cands.size)])
+    picked = _pick(cands, order, n, spacing)
+    if picked is None and spread:
+        picked = _pick(cands, np.argsort(cands, kind="stable"), n, spacing)
+    return picked
+
+
+def _pick(cands: np.ndarray, order: np.ndarray, n: int, spacing: float) -> np.ndarray | None:
     picked: list[int] = []
     for c in order:
         if c in picked:

@@ -33,10 +33,8 @@ class SimulationSummary:
             return None
         if self.failed == self.replicates:
             return "every re-estimate failed"
-        if "iterative" in self.method:
-            return ("the iterative two-stage re-estimates give no standard errors, hence no "
-                    "intervals (--refit marginal gives them)")
-        return "no re-estimate gave a 95 % interval (standard errors not available)"
+        return ("no re-estimate gave a 95 % interval: their standard errors could not be "
+                "computed (for example as many levels as estimated parameters)")
 
 
 @dataclass

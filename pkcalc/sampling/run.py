@@ -91,8 +91,7 @@ def design_sampling(problem: SamplingProblem, *, simulate: int = 0, seed: int = 
         Where the replicates run (:mod:`pkcalc.engines`).
     refit : {"iterative", "marginal"}, optional
         Population re-estimates: the marginal likelihood (Laplace; default, as in
-        ``pkcalc population``; gives the intervals whose coverage is reported) or the
-        iterative two-stage method (faster; no standard errors, so no coverage).
+        ``pkcalc population``) or the iterative two-stage method (faster).
     progress : callable, optional
         Receives a line per finished block of replicates.
 
