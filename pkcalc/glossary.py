@@ -766,7 +766,7 @@ def markdown() -> str:
     out += [f"| {a} | {m} |" for a, m in ABBREVIATIONS.items()]
     out += ["", "## Former names", "",
             "Earlier releases wrote these names. Outputs use the new ones; as input (option "
-            "names, option values, batch column choices) the former names are accepted in "
+            "names, option values, keys of study files) the former names are accepted in "
             "this release with a deprecation note, and will be refused in the next.", "",
             "| former | now |", "|---|---|"]
     out += [f"| `{a}` | `{b}` |" for a, b in {**FORMER, **FORMER_OPTIONS,

@@ -299,12 +299,14 @@ def _steady_state(trains: list[DoseEvent], clearance: float, volume: float,
     if any(not np.isclose(d.every, tau, rtol=1e-9) for d in trains):  # type: ignore[arg-type]
         warnings.append("repeated doses have different intervals: no common steady state reported")
         return None
-    if any(d.duration > tau for d in trains):
+    # an infusion as long as its interval (back to back) is allowed: the gaps of a listed
+    # course are differences of start times, a rounding below the infusion time
+    if any(d.duration > tau * (1 + 1e-9) for d in trains):
         warnings.append("an infusion lasts longer than its interval: steady state not reported")
         return None
     peak, trough, avg = model.steady_state_periodic(
-        [d.start for d in trains], [d.amount for d in trains], [d.duration for d in trains],
-        tau, clearance, volume,
+        [d.start for d in trains], [d.amount for d in trains],
+        [min(d.duration, tau) for d in trains], tau, clearance, volume,
     )
     return SteadyState(peak, trough, avg, float(tau))
 

@@ -6,7 +6,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from pkcalc import model
@@ -195,6 +195,7 @@ def test_a_final_constant_infusion_states_how_close_it_gets():
 @settings(max_examples=40, deadline=None)
 @given(n=st.integers(3, 12), tau=st.floats(2.0, 48.0), frac=st.floats(0.05, 1.0),
        amount=st.floats(10.0, 5000.0), t0=st.floats(0.0, 100.0))
+@example(n=5, tau=5.728248681838162, frac=1.0, amount=10.0, t0=0.0)  # back-to-back infusions
 def test_any_regular_list_equals_its_repeated_record(n, tau, frac, amount, t0):
     listed = [DoseEvent(t0 + tau * j, amount, tau * frac) for j in range(n)]
     r = predict_course(clearance=4.0, volume=30.0, doses=listed)
