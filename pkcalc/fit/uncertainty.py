@@ -63,10 +63,11 @@ def structural_estimates(batch: Batch, theta: np.ndarray, cov: np.ndarray, kind:
         ok = np.isfinite(var) & (var >= 0) & (var <= 25.0)
         se_log = np.sqrt(np.where(ok, var, 0.0))
         lo, hi = np.exp(ln - q * se_log), np.exp(ln + q * se_log)
-        for i in range(theta.shape[0]):
-            out[i][name] = (Estimate(float(value[i]), float(value[i] * se_log[i]),
-                                     float(100 * se_log[i]), float(lo[i]), float(hi[i]))
-                            if ok[i] else Estimate(float(value[i])))
+        # plain Python floats once per column (not a numpy scalar per element)
+        rows = zip(ok.tolist(), value.tolist(), (value * se_log).tolist(),
+                   (100 * se_log).tolist(), lo.tolist(), hi.tolist(), strict=True)
+        for d, (good, v, se, rse, a, b) in zip(out, rows, strict=True):
+            d[name] = Estimate(v, se, rse, a, b) if good else Estimate(v)
     return out
 
 
