@@ -85,9 +85,11 @@ def _subject_failures(study: Study, extra=()) -> list[tuple[str, PkcalcInputErro
 
 
 def _with_units(fields, conv) -> dict[str, str]:
-    """Column headers with their display unit: ``clearance [L/h]`` (plain numbers and
-    percentages keep their name)."""
-    return {k: f"{k} [{conv.unit(kind)}]" for k, kind in fields if kind is not None}
+    """Column headers with their display unit: ``clearance [L/h]``, percentages
+    ``auc_extrapolated_percent [%]`` (as in fit.csv); plain numbers keep their name."""
+    out = {k: f"{k} [{conv.unit(kind)}]" for k, kind in fields if kind is not None}
+    out.update({k: f"{k} [%]" for k, kind in fields if kind is None and k.endswith("_percent")})
+    return out
 
 
 def _find_subject(results, name: str, failures=()):

@@ -23,9 +23,10 @@ there (observed: differences of the analytic gradient):
 
 The outer parameters -- ``beta``, the Cholesky factor of ``Omega`` (log
 diagonal, off-diagonal) and the log residual SDs -- maximise the summed
-likelihood by BFGS on central-difference gradients; the inner modes are found
-by the damped-scoring solver of :mod:`pkcalc.fit`, warm-started.  The
-covariance step inverts the observed information, ``2 x`` the inverse of the
+likelihood by L-BFGS-B on gradients by the implicit function theorem (each mode
+moved along ``-H^-1 dG/dpsi``, :meth:`MarginalProblem.gradient`); the inner modes
+are found by the damped-scoring solver of :mod:`pkcalc.fit`, warm-started.  The
+standard errors invert the observed information, ``2 x`` the inverse of the
 Hessian of ``-2 ln L`` by central differences.
 """
 
