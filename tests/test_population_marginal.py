@@ -176,11 +176,14 @@ def test_implicit_function_gradient_equals_central_differences(nodes, error, dia
         np.array([[0.09, 0.012], [0.012, 0.04]])
     for _ in range(3):
         psi = prob.pack(beta, omega, 0.05, 0.12) + rng.normal(0, 0.1, prob.n_params)
-        prob.subject_terms(psi, update=True, both=True)
+        _, theta, _ = prob.subject_terms(psi, update=True, both=True)
         ift = prob.gradient(psi)
         fd = prob.gradient_by_differences(psi)
         scale = max(1.0, float(np.max(np.abs(fd))))
         assert np.max(np.abs(ift - fd)) / scale < 1e-6, (ift, fd)
+        if nodes == 1:   # the Laplace path (derivatives at the mode) was the one taken
+            direct = prob._laplace_gradient(psi, theta)
+            assert direct is not None and np.array_equal(direct, ift)
 
 
 # --------------------------------------------------------------------------- open data

@@ -239,7 +239,8 @@ def structural(batch: Batch, theta: np.ndarray):
         geometry=batch.geometry)
 
 
-def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None = None):
+def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None = None,
+             predictions: tuple[np.ndarray, np.ndarray] | None = None):
     """Objective, gradient and scoring matrix for each row.
 
     Parameters
@@ -252,6 +253,9 @@ def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None 
         ``ln CL, ln V``; the SD takes its closed-form optimum (not below
         ``exp(sigma_floor)``), the gradient is the partial one (envelope theorem)
         and the scoring matrix the Schur complement for the structural block.
+    predictions : (ndarray (B, N), ndarray (q, B, N)), optional
+        :func:`structural` of these rows, computed once and reused (the model does not
+        depend on the error or prior parameters that differ between rows).
 
     Returns
     -------
@@ -262,7 +266,7 @@ def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None 
     f : ndarray, shape (B, N)
         Predictions.
     """
-    f, jac = structural(batch, theta)
+    f, jac = structural(batch, theta) if predictions is None else predictions
     if batch.kind == "least_squares":
         r = np.where(batch.obs, batch.y - f, 0.0)
         wr = batch.w * r

@@ -41,7 +41,7 @@ import numpy as np
 
 from ..core import FitOptions, SubjectData
 from ..fit.data import prepare_batch
-from ..fit.objective import Batch, evaluate
+from ..fit.objective import Batch, evaluate, structural
 from ..fit.solver import minimise
 from ..fit.uncertainty import observed_hessian
 from .covariates import Design
@@ -54,15 +54,20 @@ GRAD_STEP = 1e-4
 HESS_STEP = 2e-3
 #: Step of psi for the derivative of the analytic inner gradient at fixed modes.
 DPSI_STEP = 1e-5
+#: Laplace gradient (:meth:`MarginalProblem._laplace_gradient`): steps of the Hessian
+#: stencil in theta, of its derivative in theta, and of the derivatives in psi.
+HESS_INNER_STEP = 1e-5
+THIRD_STEP = 3e-4
+DPSI_H_STEP = 1e-4
 #: Largest gradient of -2 ln L at which the optimiser's "success" is not believed.
 GRADIENT_DISAGREES = 1.0
 #: Condition number of the information (correlation form) above which the covariance
 #: step warns that the estimates are nearly confounded (common practice: 1e3 is a
 #: warning sign, 1e6 a failure; we warn from 1e4).
 CONDITION_WARN = 1e4
-#: Largest number of level x dose cells of one vectorised evaluation (0.8 MB per
+#: Largest number of level x dose cells of one vectorised evaluation (0.4 MB per
 #: temporary array: larger ones are mapped and unmapped by the allocator on every call).
-CELL_BLOCK = 100_000
+CELL_BLOCK = 50_000
 
 
 def _at_nodes(b: Batch, pts: np.ndarray) -> np.ndarray:
@@ -415,6 +420,11 @@ class MarginalProblem:
         if theta is None:
             return self.gradient_by_differences(psi)
         p = psi.size
+        if self.nodes == 1:
+            out = self._laplace_gradient(psi, theta)
+            if out is not None:
+                self.evaluations += 2 * p
+                return out
         b0, _, _, _ = self._rows(psi[None])
         hess = observed_hessian(b0, theta)
         det = hess[:, 0, 0] * hess[:, 1, 1] - hess[:, 0, 1] ** 2
@@ -448,6 +458,74 @@ class MarginalProblem:
         up, dn = total[:m], total[m:]
         good = ok[:m] & ok[m:] & ok_s[:m] & ok_s[m:] & np.isfinite(up) & np.isfinite(dn)
         return np.where(good, (up - dn) / (2 * GRAD_STEP), 0.0)
+
+    def _laplace_gradient(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray | None:
+        """The Laplace gradient from derivatives at the modes (None where it does not
+        apply: a Hessian that is not positive definite, an unusable shifted vector).
+
+        ``-2 ln L_i = h(theta^) + ln|H| + const``; ``dh/dpsi`` is the partial derivative
+        at the mode (envelope theorem) and ``d ln|H| / dpsi_j = tr(H^-1 (dH/dpsi_j +
+        sum_m dH/dtheta_m s_jm))`` with ``s_j = -H^-1 dG/dpsi_j``.  ``G`` is analytic;
+        ``H``, its derivative in ``theta`` and the derivatives in ``psi`` are central
+        differences at the mode.  The model is evaluated once per subject and point
+        (25 points: the mode, its Hessian stencil, and those of four neighbours); every
+        shifted ``psi`` reuses those predictions (the model does not depend on
+        ``psi``)."""
+        n, p = self.n, psi.size
+        hh, dd, dp = HESS_INNER_STEP, THIRD_STEP, DPSI_H_STEP
+        e2 = np.eye(2)
+        centres = np.stack([np.zeros(2), dd * e2[0], -dd * e2[0], dd * e2[1], -dd * e2[1]])
+        stencil = np.stack([np.zeros(2), hh * e2[0], -hh * e2[0], hh * e2[1], -hh * e2[1]])
+        offsets = (centres[:, None, :] + stencil[None, :, :]).reshape(-1, 2)     # (25, 2)
+        k = offsets.shape[0]
+        vectors = np.concatenate([psi[None], psi + dp * np.eye(p), psi - dp * np.eye(p)])
+        v = vectors.shape[0]
+        b_all, _, logdet, usable = self._rows(vectors)            # rows i v + j
+        if not usable.all():
+            return None
+        # the predictions are given: the rows need no event geometry (the big arrays)
+        b_all = replace(b_all, geometry=())
+        cells = self.batch.t.shape[1] * max(self.batch.start.shape[1], 1)
+        per = max(1, CELL_BLOCK // (k * max(v * self.batch.t.shape[1], cells)))
+        obj = np.empty((n, k, v))
+        grad = np.empty((n, k, v, 2))
+        for a in range(0, n, per):                                 # subjects in blocks
+            subs = np.arange(a, min(a + per, n))
+            pts = (theta[subs][:, None, :] + offsets[None]).reshape(-1, 2)     # (s k, 2)
+            model_rows = self.batch.rows(np.repeat(subs, k))
+            f, jac = structural(model_rows, pts)
+            rep = np.repeat(np.arange(subs.size * k), v)            # each point x v vectors
+            vec = np.tile(np.arange(v), subs.size * k)
+            rows = b_all.rows(np.repeat(subs, k * v) * v + vec)
+            o, g, _, _ = evaluate(rows, pts[rep], predictions=(f[rep], jac[:, rep]))
+            obj[subs] = o.reshape(subs.size, k, v)
+            grad[subs] = g.reshape(subs.size, k, v, 2)
+        grad = grad.reshape(n, 5, 5, v, 2)          # centre, stencil point, vector, G
+
+        def hessian_at(c):                          # (n, v, 2, 2) at centre c
+            cols = [(grad[:, c, 1 + 2 * j] - grad[:, c, 2 + 2 * j]) / (2 * hh)
+                    for j in range(2)]
+            h = np.stack(cols, axis=-1)
+            return 0.5 * (h + np.swapaxes(h, -1, -2))
+
+        h0 = hessian_at(0)                          # H at the mode, every vector
+        h_base = h0[:, 0]
+        det = h_base[:, 0, 0] * h_base[:, 1, 1] - h_base[:, 0, 1] ** 2
+        if not np.all((h_base[:, 0, 0] > 0) & (det > 0)):
+            return None
+        inv = np.linalg.inv(h_base)                                         # (n, 2, 2)
+        d_h_psi = (h0[:, 1:p + 1] - h0[:, p + 1:]) / (2 * dp)               # (n, p, 2, 2)
+        d_g_psi = (grad[:, 0, 0, 1:p + 1] - grad[:, 0, 0, p + 1:]) / (2 * dp)  # (n, p, 2)
+        tangent = -np.einsum("nab,npb->npa", inv, d_g_psi)                   # (n, p, 2)
+        d_h_theta = np.stack([(hessian_at(1)[:, 0] - hessian_at(2)[:, 0]) / (2 * dd),
+                              (hessian_at(3)[:, 0] - hessian_at(4)[:, 0]) / (2 * dd)],
+                             axis=1)                                         # (n, 2, 2, 2)
+        total_dh = d_h_psi + np.einsum("nmab,npm->npab", d_h_theta, tangent)
+        d_logdet = np.einsum("nab,npba->np", inv, total_dh)
+        h_mode = obj[:, 0, :] + logdet.reshape(n, v)       # h at the mode (+ const)
+        d_env = (h_mode[:, 1:p + 1] - h_mode[:, p + 1:]) / (2 * dp)         # (n, p)
+        out = (d_env + d_logdet).sum(axis=0)
+        return out if np.all(np.isfinite(out)) else None
 
     def gradient_by_differences(self, psi: np.ndarray) -> np.ndarray:
         """Central differences of the objective, every mode solved again (from the
