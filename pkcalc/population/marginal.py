@@ -41,91 +41,25 @@ import numpy as np
 
 from ..core import FitOptions, SubjectData
 from ..fit.data import prepare_batch
-from ..fit.objective import Batch, evaluate, structural
+from ..fit.objective import Batch, evaluate
 from ..fit.solver import minimise
 from ..fit.uncertainty import observed_hessian
+from . import quadrature
 from .covariates import Design
+from .gradient import GRAD_STEP, outer_gradient
+from .quadrature import LOG_2PI, at_nodes, gauss_hermite, laplace, log_integral
 
-__all__ = ["MarginalFit", "MarginalProblem", "gauss_hermite", "laplace", "log_integral"]
+__all__ = ["GRAD_STEP", "MarginalFit", "MarginalProblem", "gauss_hermite", "laplace",
+           "log_integral"]
 
-LOG_2PI = math.log(2 * math.pi)
-#: Central-difference steps (log-parameters) for the gradient and the Hessian.
-GRAD_STEP = 1e-4
+#: Central-difference step (log-parameters) for the Hessian of the standard errors.
 HESS_STEP = 2e-3
-#: Step of psi for the derivative of the analytic inner gradient at fixed modes.
-DPSI_STEP = 1e-5
-#: Laplace gradient (:meth:`MarginalProblem._laplace_gradient`): steps of the Hessian
-#: stencil in theta, of its derivative in theta, and of the derivatives in psi.
-HESS_INNER_STEP = 1e-5
-THIRD_STEP = 3e-4
-DPSI_H_STEP = 1e-4
 #: Largest gradient of -2 ln L at which the optimiser's "success" is not believed.
 GRADIENT_DISAGREES = 1.0
 #: Condition number of the information (correlation form) above which the covariance
 #: step warns that the estimates are nearly confounded (common practice: 1e3 is a
 #: warning sign, 1e6 a failure; we warn from 1e4).
 CONDITION_WARN = 1e4
-#: Largest number of level x dose cells of one vectorised evaluation (0.4 MB per
-#: temporary array: larger ones are mapped and unmapped by the allocator on every call).
-CELL_BLOCK = 50_000
-
-
-def _at_nodes(b: Batch, pts: np.ndarray) -> np.ndarray:
-    """The inner objective of row ``r`` of ``b`` at each of its node points ``pts[r]``
-    (shape (R, K, q)), evaluated in blocks of at most :data:`CELL_BLOCK` cells so the
-    temporaries stay small (large ones are mapped and unmapped by the allocator on
-    every call: system time, not arithmetic)."""
-    r, k = pts.shape[:2]
-    flat = pts.reshape(r * k, -1)
-    cells = b.t.shape[1] * max(b.start.shape[1], 1)
-    per = max(1, CELL_BLOCK // cells)
-    out = np.empty(r * k)
-    for a in range(0, r * k, per):
-        idx = np.arange(a, min(a + per, r * k))
-        out[idx] = evaluate(b.rows(idx // k), flat[idx])[0]
-    return out.reshape(r, k)
-
-
-def gauss_hermite(nodes: int, q: int = 2) -> tuple[np.ndarray, np.ndarray]:
-    """Product Gauss-Hermite nodes ``(K, q)`` and log weights ``(K,)`` (weight
-    ``e^(-x'x)``), ``K = nodes^q``."""
-    x, w = np.polynomial.hermite.hermgauss(nodes)
-    grid = np.stack(np.meshgrid(*([x] * q), indexing="ij"), -1).reshape(-1, q)
-    lw = np.sum(np.stack(np.meshgrid(*([np.log(w)] * q), indexing="ij"), -1).reshape(-1, q),
-                axis=1)
-    return grid, lw
-
-
-def laplace(h_mode: np.ndarray, half_hessian: np.ndarray) -> np.ndarray:
-    """``-2 ln`` of ``integral exp(-h/2)`` by the Laplace approximation:
-    ``h(eta^) - q ln(2 pi) + ln|H/2|`` (``half_hessian`` is ``H/2``, shape (B, q, q))."""
-    q = half_hessian.shape[-1]
-    return h_mode - q * LOG_2PI + np.linalg.slogdet(half_hessian)[1]
-
-
-def log_integral(h_nodes: np.ndarray, chol: np.ndarray, nodes: int) -> np.ndarray:
-    """``-2 ln`` of ``integral exp(-h/2)`` by adaptive Gauss-Hermite quadrature.
-
-    Parameters
-    ----------
-    h_nodes : ndarray, shape (B, K)
-        ``h`` at the nodes ``eta^ + sqrt(2) B x_k`` (``K = nodes^q``, order of
-        :func:`gauss_hermite`).
-    chol : ndarray, shape (B, q, q)
-        ``B``: Cholesky factor of the inverse of ``H / 2``.
-    nodes : int
-
-    Returns
-    -------
-    ndarray, shape (B,)
-    """
-    q = chol.shape[-1]
-    grid, lw = gauss_hermite(nodes, q)
-    terms = lw[None, :] + (grid**2).sum(axis=1)[None, :] - 0.5 * h_nodes
-    top = terms.max(axis=1)
-    lse = top + np.log(np.exp(terms - top[:, None]).sum(axis=1))
-    logdet_b = np.log(np.abs(np.diagonal(chol, axis1=1, axis2=2))).sum(axis=1)
-    return -2.0 * (0.5 * q * math.log(2.0) + logdet_b + lse)
 
 
 @dataclass
@@ -336,7 +270,7 @@ class MarginalProblem:
             chol = np.linalg.cholesky(post)
             pts = theta[:, None, :] + math.sqrt(2.0) * np.einsum("bij,kj->bki", chol,
                                                                    self._grid)
-            h_nodes = _at_nodes(b, pts) + logdet_omega[:, None] + 2 * LOG_2PI
+            h_nodes = at_nodes(b, pts) + logdet_omega[:, None] + 2 * LOG_2PI
             m2ll = log_integral(h_nodes, chol, self.nodes)
         return m2ll, post
 
@@ -344,7 +278,7 @@ class MarginalProblem:
         """The summed ``-2 ln L`` at several outer parameter vectors, from the current
         modes (not updated): every subject under every vector is one row of a single
         vectorised inner solve (the rows stay independent problems), in blocks of
-        vectors that keep each evaluation within :data:`CELL_BLOCK` cells."""
+        vectors that keep each evaluation within ``quadrature.CELL_BLOCK`` cells."""
         psis = np.atleast_2d(np.asarray(psis, float))
         if self.theta is None:
             return np.array([self.objective(p) for p in psis])
@@ -354,9 +288,9 @@ class MarginalProblem:
 
     def _vectors_per_block(self) -> int:
         """Outer parameter vectors whose rows (every subject, x 2 for the Hessian's
-        shifted points) fit in :data:`CELL_BLOCK` cells; at least one."""
+        shifted points) fit in ``quadrature.CELL_BLOCK`` cells; at least one."""
         cells = self.batch.t.shape[1] * max(self.batch.start.shape[1], 1)
-        return max(1, CELL_BLOCK // (2 * self.n * cells))
+        return max(1, quadrature.CELL_BLOCK // (2 * self.n * cells))
 
     def _objectives(self, psis: np.ndarray) -> np.ndarray:
         n, p_count = self.n, len(psis)
@@ -405,127 +339,9 @@ class MarginalProblem:
         return total if math.isfinite(total) else math.inf
 
     def gradient(self, psi: np.ndarray) -> np.ndarray:
-        """Gradient of the summed ``-2 ln L`` by the implicit function theorem.
-
-        Each subject's term is ``Q(theta^(psi), psi)``: the Laplace (or quadrature)
-        formula centred at the conditional mode.  The mode moves with ``psi`` along
-        ``d theta^/d psi_j = -H^-1 d G / d psi_j`` (``G`` the analytic gradient of ``h``
-        in ``theta``, ``H`` its Jacobian); the total derivative is the central
-        difference of ``Q`` along that tangent, ``(theta^ +- e s_j, psi +- e e_j)``.
-        No mode is solved again: every subject under every shifted vector is one
-        row of one vectorised evaluation.  (:meth:`gradient_by_differences` is the
-        plain finite-difference check.)"""
-        psi = np.asarray(psi, float)
-        theta = self._modes_at(psi)
-        if theta is None:
-            return self.gradient_by_differences(psi)
-        p = psi.size
-        if self.nodes == 1:
-            out = self._laplace_gradient(psi, theta)
-            if out is not None:
-                self.evaluations += 2 * p
-                return out
-        b0, _, _, _ = self._rows(psi[None])
-        hess = observed_hessian(b0, theta)
-        det = hess[:, 0, 0] * hess[:, 1, 1] - hess[:, 0, 1] ** 2
-        pd = (hess[:, 0, 0] > 0) & (det > 0)
-        out = np.zeros(p)
-        per = self._vectors_per_block()
-        for j0 in range(0, p, per):                 # components in blocks (bounded memory)
-            js = np.arange(j0, min(j0 + per, p))
-            out[js] = self._gradient_part(psi, theta, hess, pd, js)
-        self.evaluations += 2 * p
-        return out
-
-    def _gradient_part(self, psi, theta, hess, pd, js: np.ndarray) -> np.ndarray:
-        """Components ``js`` of :meth:`gradient`."""
-        n, m = self.n, js.size
-        e = np.eye(psi.size)[js]
-        # d G / d psi_j at the fixed modes
-        bs, _, _, ok_s = self._rows(np.concatenate([psi + DPSI_STEP * e, psi - DPSI_STEP * e]))
-        _, grad_s, _, _ = evaluate(bs, np.repeat(theta, 2 * m, axis=0))
-        grad_s = grad_s.reshape(n, 2 * m, 2)
-        d_g = (grad_s[:, :m] - grad_s[:, m:]) / (2 * DPSI_STEP)          # (n, m, 2)
-        tangent = np.zeros_like(d_g)
-        if pd.any():
-            tangent[pd] = -np.linalg.solve(hess[pd][:, None], d_g[pd][..., None])[..., 0]
-        # Q along the tangent, both directions, every subject and component at once
-        b, _, logdet, ok = self._rows(np.concatenate([psi + GRAD_STEP * e,
-                                                      psi - GRAD_STEP * e]))
-        centres = theta[:, None, :] + GRAD_STEP * np.concatenate([tangent, -tangent], axis=1)
-        m2ll, _ = self._at_modes(b, centres.reshape(-1, 2), logdet)
-        total = m2ll.reshape(n, 2 * m).sum(axis=0)
-        up, dn = total[:m], total[m:]
-        good = ok[:m] & ok[m:] & ok_s[:m] & ok_s[m:] & np.isfinite(up) & np.isfinite(dn)
-        return np.where(good, (up - dn) / (2 * GRAD_STEP), 0.0)
-
-    def _laplace_gradient(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray | None:
-        """The Laplace gradient from derivatives at the modes (None where it does not
-        apply: a Hessian that is not positive definite, an unusable shifted vector).
-
-        ``-2 ln L_i = h(theta^) + ln|H| + const``; ``dh/dpsi`` is the partial derivative
-        at the mode (envelope theorem) and ``d ln|H| / dpsi_j = tr(H^-1 (dH/dpsi_j +
-        sum_m dH/dtheta_m s_jm))`` with ``s_j = -H^-1 dG/dpsi_j``.  ``G`` is analytic;
-        ``H``, its derivative in ``theta`` and the derivatives in ``psi`` are central
-        differences at the mode.  The model is evaluated once per subject and point
-        (25 points: the mode, its Hessian stencil, and those of four neighbours); every
-        shifted ``psi`` reuses those predictions (the model does not depend on
-        ``psi``)."""
-        n, p = self.n, psi.size
-        hh, dd, dp = HESS_INNER_STEP, THIRD_STEP, DPSI_H_STEP
-        e2 = np.eye(2)
-        centres = np.stack([np.zeros(2), dd * e2[0], -dd * e2[0], dd * e2[1], -dd * e2[1]])
-        stencil = np.stack([np.zeros(2), hh * e2[0], -hh * e2[0], hh * e2[1], -hh * e2[1]])
-        offsets = (centres[:, None, :] + stencil[None, :, :]).reshape(-1, 2)     # (25, 2)
-        k = offsets.shape[0]
-        vectors = np.concatenate([psi[None], psi + dp * np.eye(p), psi - dp * np.eye(p)])
-        v = vectors.shape[0]
-        b_all, _, logdet, usable = self._rows(vectors)            # rows i v + j
-        if not usable.all():
-            return None
-        # the predictions are given: the rows need no event geometry (the big arrays)
-        b_all = replace(b_all, geometry=())
-        cells = self.batch.t.shape[1] * max(self.batch.start.shape[1], 1)
-        per = max(1, CELL_BLOCK // (k * max(v * self.batch.t.shape[1], cells)))
-        obj = np.empty((n, k, v))
-        grad = np.empty((n, k, v, 2))
-        for a in range(0, n, per):                                 # subjects in blocks
-            subs = np.arange(a, min(a + per, n))
-            pts = (theta[subs][:, None, :] + offsets[None]).reshape(-1, 2)     # (s k, 2)
-            model_rows = self.batch.rows(np.repeat(subs, k))
-            f, jac = structural(model_rows, pts)
-            rep = np.repeat(np.arange(subs.size * k), v)            # each point x v vectors
-            vec = np.tile(np.arange(v), subs.size * k)
-            rows = b_all.rows(np.repeat(subs, k * v) * v + vec)
-            o, g, _, _ = evaluate(rows, pts[rep], predictions=(f[rep], jac[:, rep]))
-            obj[subs] = o.reshape(subs.size, k, v)
-            grad[subs] = g.reshape(subs.size, k, v, 2)
-        grad = grad.reshape(n, 5, 5, v, 2)          # centre, stencil point, vector, G
-
-        def hessian_at(c):                          # (n, v, 2, 2) at centre c
-            cols = [(grad[:, c, 1 + 2 * j] - grad[:, c, 2 + 2 * j]) / (2 * hh)
-                    for j in range(2)]
-            h = np.stack(cols, axis=-1)
-            return 0.5 * (h + np.swapaxes(h, -1, -2))
-
-        h0 = hessian_at(0)                          # H at the mode, every vector
-        h_base = h0[:, 0]
-        det = h_base[:, 0, 0] * h_base[:, 1, 1] - h_base[:, 0, 1] ** 2
-        if not np.all((h_base[:, 0, 0] > 0) & (det > 0)):
-            return None
-        inv = np.linalg.inv(h_base)                                         # (n, 2, 2)
-        d_h_psi = (h0[:, 1:p + 1] - h0[:, p + 1:]) / (2 * dp)               # (n, p, 2, 2)
-        d_g_psi = (grad[:, 0, 0, 1:p + 1] - grad[:, 0, 0, p + 1:]) / (2 * dp)  # (n, p, 2)
-        tangent = -np.einsum("nab,npb->npa", inv, d_g_psi)                   # (n, p, 2)
-        d_h_theta = np.stack([(hessian_at(1)[:, 0] - hessian_at(2)[:, 0]) / (2 * dd),
-                              (hessian_at(3)[:, 0] - hessian_at(4)[:, 0]) / (2 * dd)],
-                             axis=1)                                         # (n, 2, 2, 2)
-        total_dh = d_h_psi + np.einsum("nmab,npm->npab", d_h_theta, tangent)
-        d_logdet = np.einsum("nab,npba->np", inv, total_dh)
-        h_mode = obj[:, 0, :] + logdet.reshape(n, v)       # h at the mode (+ const)
-        d_env = (h_mode[:, 1:p + 1] - h_mode[:, p + 1:]) / (2 * dp)         # (n, p)
-        out = (d_env + d_logdet).sum(axis=0)
-        return out if np.all(np.isfinite(out)) else None
+        """Gradient of the summed ``-2 ln L`` by the implicit function theorem
+        (:func:`pkcalc.population.gradient.outer_gradient`)."""
+        return outer_gradient(self, psi)
 
     def gradient_by_differences(self, psi: np.ndarray) -> np.ndarray:
         """Central differences of the objective, every mode solved again (from the

@@ -1,0 +1,206 @@
+"""The outer gradient of the marginal likelihood by the implicit function theorem.
+
+Each subject's ``-2 ln L_i`` is the Laplace or quadrature formula centred at its
+conditional mode ``theta^(psi)``; the mode moves with the outer parameters along
+``d theta^/d psi_j = -H^-1 dG/dpsi_j`` (``G`` the analytic gradient of the inner
+objective ``h`` in ``theta``, ``H`` its Jacobian).  :func:`gradient_at_modes` takes the
+derivative at the modes (envelope theorem for ``h``, the trace formula for ``ln|H|``,
+the derivative of the Cholesky factor for the quadrature nodes), evaluating the model
+once per subject and point and reusing the predictions for every shifted ``psi``;
+where a Hessian is not positive definite, :func:`outer_gradient` falls back to central
+differences along the tangent.  Both are checked against central differences of the
+objective with every mode solved again (``tests/test_population_marginal.py``).
+The functions take a :class:`~pkcalc.population.marginal.MarginalProblem`.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import replace
+
+import numpy as np
+
+from ..fit.objective import Batch, evaluate, structural
+from ..fit.uncertainty import observed_hessian
+from . import quadrature
+
+__all__ = ["GRAD_STEP", "gradient_at_modes", "outer_gradient"]
+
+#: Central-difference step (log-parameters) of the outer gradient.
+GRAD_STEP = 1e-4
+#: Step of psi for the derivative of the analytic inner gradient at fixed modes.
+DPSI_STEP = 1e-5
+#: Gradient at the modes: steps of the Hessian stencil in theta, of its derivative in
+#: theta, and of the derivatives in psi.
+HESS_INNER_STEP = 1e-5
+THIRD_STEP = 3e-4
+DPSI_H_STEP = 1e-4
+
+
+def outer_gradient(self, psi: np.ndarray) -> np.ndarray:
+    """Gradient of the summed ``-2 ln L`` by the implicit function theorem.
+
+    Each subject's term is ``Q(theta^(psi), psi)``: the Laplace (or quadrature)
+    formula centred at the conditional mode.  The mode moves with ``psi`` along
+    ``d theta^/d psi_j = -H^-1 d G / d psi_j`` (``G`` the analytic gradient of ``h``
+    in ``theta``, ``H`` its Jacobian); the total derivative is the central
+    difference of ``Q`` along that tangent, ``(theta^ +- e s_j, psi +- e e_j)``.
+    No mode is solved again: every subject under every shifted vector is one
+    row of one vectorised evaluation.  (:meth:`MarginalProblem.gradient_by_differences` is the
+    plain finite-difference check.)"""
+    psi = np.asarray(psi, float)
+    theta = self._modes_at(psi)
+    if theta is None:
+        return self.gradient_by_differences(psi)
+    p = psi.size
+    out = gradient_at_modes(self, psi, theta)
+    if out is not None:
+        self.evaluations += 2 * p
+        return out
+    # a Hessian that is not positive definite somewhere: the tangent differences
+    b0, _, _, _ = self._rows(psi[None])
+    hess = observed_hessian(b0, theta)
+    det = hess[:, 0, 0] * hess[:, 1, 1] - hess[:, 0, 1] ** 2
+    pd = (hess[:, 0, 0] > 0) & (det > 0)
+    out = np.zeros(p)
+    per = self._vectors_per_block()
+    for j0 in range(0, p, per):                 # components in blocks (bounded memory)
+        js = np.arange(j0, min(j0 + per, p))
+        out[js] = _tangent_part(self, psi, theta, hess, pd, js)
+    self.evaluations += 2 * p
+    return out
+
+def _tangent_part(self, psi, theta, hess, pd, js: np.ndarray) -> np.ndarray:
+    """Components ``js`` of :meth:`gradient`."""
+    n, m = self.n, js.size
+    e = np.eye(psi.size)[js]
+    # d G / d psi_j at the fixed modes
+    bs, _, _, ok_s = self._rows(np.concatenate([psi + DPSI_STEP * e, psi - DPSI_STEP * e]))
+    _, grad_s, _, _ = evaluate(bs, np.repeat(theta, 2 * m, axis=0))
+    grad_s = grad_s.reshape(n, 2 * m, 2)
+    d_g = (grad_s[:, :m] - grad_s[:, m:]) / (2 * DPSI_STEP)          # (n, m, 2)
+    tangent = np.zeros_like(d_g)
+    if pd.any():
+        tangent[pd] = -np.linalg.solve(hess[pd][:, None], d_g[pd][..., None])[..., 0]
+    # Q along the tangent, both directions, every subject and component at once
+    b, _, logdet, ok = self._rows(np.concatenate([psi + GRAD_STEP * e,
+                                                  psi - GRAD_STEP * e]))
+    centres = theta[:, None, :] + GRAD_STEP * np.concatenate([tangent, -tangent], axis=1)
+    m2ll, _ = self._at_modes(b, centres.reshape(-1, 2), logdet)
+    total = m2ll.reshape(n, 2 * m).sum(axis=0)
+    up, dn = total[:m], total[m:]
+    good = ok[:m] & ok[m:] & ok_s[:m] & ok_s[m:] & np.isfinite(up) & np.isfinite(dn)
+    return np.where(good, (up - dn) / (2 * GRAD_STEP), 0.0)
+
+def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray | None:
+    """The gradient from derivatives at the modes (None where it does not apply: a
+    Hessian that is not positive definite, an unusable shifted vector); Laplace here,
+    quadrature in :func:`_quadrature_part`.
+
+    ``-2 ln L_i = h(theta^) + ln|H| + const``; ``dh/dpsi`` is the partial derivative
+    at the mode (envelope theorem) and ``d ln|H| / dpsi_j = tr(H^-1 (dH/dpsi_j +
+    sum_m dH/dtheta_m s_jm))`` with ``s_j = -H^-1 dG/dpsi_j``.  ``G`` is analytic;
+    ``H``, its derivative in ``theta`` and the derivatives in ``psi`` are central
+    differences at the mode.  The model is evaluated once per subject and point
+    (25 points: the mode, its Hessian stencil, and those of four neighbours); every
+    shifted ``psi`` reuses those predictions (the model does not depend on
+    ``psi``)."""
+    n, p = self.n, psi.size
+    hh, dd, dp = HESS_INNER_STEP, THIRD_STEP, DPSI_H_STEP
+    e2 = np.eye(2)
+    centres = np.stack([np.zeros(2), dd * e2[0], -dd * e2[0], dd * e2[1], -dd * e2[1]])
+    stencil = np.stack([np.zeros(2), hh * e2[0], -hh * e2[0], hh * e2[1], -hh * e2[1]])
+    offsets = (centres[:, None, :] + stencil[None, :, :]).reshape(-1, 2)     # (25, 2)
+    vectors = np.concatenate([psi[None], psi + dp * np.eye(p), psi - dp * np.eye(p)])
+    v = vectors.shape[0]
+    b_all, _, logdet, usable = self._rows(vectors)            # rows i v + j
+    if not usable.all():
+        return None
+    # the predictions are given: the rows need no event geometry (the big arrays)
+    b_all = replace(b_all, geometry=())
+    pts = theta[:, None, :] + offsets[None]                                # (n, 25, 2)
+    obj, grad = _reused(self, b_all, pts, v)
+    grad = grad.reshape(n, 5, 5, v, 2)          # centre, stencil point, vector, G
+
+    def hessian_at(c):                          # (n, v, 2, 2) at centre c
+        cols = [(grad[:, c, 1 + 2 * j] - grad[:, c, 2 + 2 * j]) / (2 * hh)
+                for j in range(2)]
+        h = np.stack(cols, axis=-1)
+        return 0.5 * (h + np.swapaxes(h, -1, -2))
+
+    h0 = hessian_at(0)                          # H at the mode, every vector
+    h_base = h0[:, 0]
+    det = h_base[:, 0, 0] * h_base[:, 1, 1] - h_base[:, 0, 1] ** 2
+    if not np.all((h_base[:, 0, 0] > 0) & (det > 0)):
+        return None
+    inv = np.linalg.inv(h_base)                                         # (n, 2, 2)
+    d_h_psi = (h0[:, 1:p + 1] - h0[:, p + 1:]) / (2 * dp)               # (n, p, 2, 2)
+    d_g_psi = (grad[:, 0, 0, 1:p + 1] - grad[:, 0, 0, p + 1:]) / (2 * dp)  # (n, p, 2)
+    tangent = -np.einsum("nab,npb->npa", inv, d_g_psi)                   # (n, p, 2)
+    d_h_theta = np.stack([(hessian_at(1)[:, 0] - hessian_at(2)[:, 0]) / (2 * dd),
+                          (hessian_at(3)[:, 0] - hessian_at(4)[:, 0]) / (2 * dd)],
+                         axis=1)                                         # (n, 2, 2, 2)
+    total_dh = d_h_psi + np.einsum("nmab,npm->npab", d_h_theta, tangent)
+    d_logdet = np.einsum("nab,npba->np", inv, total_dh)
+    logdet = logdet.reshape(n, v)
+    if self.nodes == 1:
+        h_mode = obj[:, 0, :] + logdet                 # h at the mode (+ const)
+        d_env = (h_mode[:, 1:p + 1] - h_mode[:, p + 1:]) / (2 * dp)     # (n, p)
+        out = (d_env + d_logdet).sum(axis=0)
+    else:
+        out = _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet,
+                                        logdet, v, p)
+    return out if np.all(np.isfinite(out)) else None
+
+def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logdet,
+                         v: int, p: int) -> np.ndarray:
+    """The quadrature formula's gradient at the modes.  ``-2 ln L_i = -2 ln|B| -
+    2 lse_k(t_k)`` with nodes ``eta_k = theta^ + sqrt(2) B x_k``, ``B B' = 2 H^-1``
+    and ``t_k = ln w_k + x_k'x_k - h(eta_k)/2``: its derivative is
+    ``tr(H^-1 dH_j) + sum_k pi_k dh(eta_k)/dpsi_j`` (``pi`` the normalised node
+    weights), with ``dh(eta_k)/dpsi_j = dh/dpsi_j + G(eta_k)' (s_j + sqrt(2) dB_j
+    x_k)`` and ``dB = B Phi(B^-1 dP B^-T)``, ``dP = -2 H^-1 dH H^-1`` (the derivative
+    of the Cholesky factor, ``Phi`` the lower triangle with half the diagonal)."""
+    dp = DPSI_H_STEP
+    chol = np.linalg.cholesky(2.0 * inv)                                  # (n, 2, 2)
+    grid, lw = quadrature.gauss_hermite(self.nodes, 2)
+    nodes = theta[:, None, :] + math.sqrt(2.0) * np.einsum("nij,kj->nki", chol, grid)
+    obj, grad = _reused(self, b_all, nodes, v)          # (n, K, v), (n, K, v, 2)
+    h = obj + logdet[:, None, :]
+    terms = lw[None, :] + (grid**2).sum(axis=1)[None, :] - 0.5 * h[:, :, 0]
+    weights = np.exp(terms - terms.max(axis=1, keepdims=True))
+    weights /= weights.sum(axis=1, keepdims=True)                         # (n, K)
+    d_h_psi = (h[:, :, 1:p + 1] - h[:, :, p + 1:]) / (2 * dp)              # (n, K, p)
+    d_p = -2.0 * np.einsum("nab,npbc,ncd->npad", inv, total_dh, inv)       # (n, p, 2, 2)
+    b_inv = np.linalg.inv(chol)
+    inner = np.einsum("nab,npbc,ndc->npad", b_inv, d_p, b_inv)
+    phi = np.tril(inner)
+    phi[..., 0, 0] *= 0.5
+    phi[..., 1, 1] *= 0.5
+    d_b = np.einsum("nab,npbc->npac", chol, phi)                          # (n, p, 2, 2)
+    move = tangent[:, None, :, :] + math.sqrt(2.0) * np.einsum(
+        "npab,kb->nkpa", d_b, grid)                                       # (n, K, p, 2)
+    d_h = d_h_psi + np.einsum("nka,nkpa->nkp", grad[:, :, 0], move)
+    return (d_logdet + np.einsum("nk,nkp->np", weights, d_h)).sum(axis=0)
+
+def _reused(self, b_all: Batch, pts: np.ndarray, v: int):
+    """The inner objective and its gradient at points ``pts`` (n, K, 2) of every
+    subject under each of the ``v`` outer vectors of ``b_all`` (rows ``i v + j``):
+    the model is evaluated once per subject and point and its predictions reused
+    for every vector; in blocks of subjects of at most :data:`quadrature.CELL_BLOCK` cells."""
+    n, k = pts.shape[:2]
+    cells = self.batch.t.shape[1] * max(self.batch.start.shape[1], 1)
+    per = max(1, quadrature.CELL_BLOCK // (k * max(v * self.batch.t.shape[1], cells)))
+    obj = np.empty((n, k, v))
+    grad = np.empty((n, k, v, 2))
+    for a in range(0, n, per):                                 # subjects in blocks
+        subs = np.arange(a, min(a + per, n))
+        flat = pts[subs].reshape(-1, 2)                                     # (s k, 2)
+        f, jac = structural(self.batch.rows(np.repeat(subs, k)), flat)
+        rep = np.repeat(np.arange(subs.size * k), v)            # each point x v vectors
+        vec = np.tile(np.arange(v), subs.size * k)
+        rows = b_all.rows(np.repeat(subs, k * v) * v + vec)
+        o, g, _, _ = evaluate(rows, flat[rep], predictions=(f[rep], jac[:, rep]))
+        obj[subs] = o.reshape(subs.size, k, v)
+        grad[subs] = g.reshape(subs.size, k, v, 2)
+    return obj, grad
