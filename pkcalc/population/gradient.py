@@ -102,15 +102,14 @@ def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray | 
     sum_m dH/dtheta_m s_jm))`` with ``s_j = -H^-1 dG/dpsi_j``.  ``G`` is analytic;
     ``H``, its derivative in ``theta`` and the derivatives in ``psi`` are central
     differences at the mode.  The model is evaluated once per subject and point
-    (25 points: the mode, its Hessian stencil, and those of four neighbours); every
-    shifted ``psi`` reuses those predictions (the model does not depend on
-    ``psi``)."""
+    (25 points: the mode, its Hessian stencil, and those of four neighbours); the
+    shifted ``psi`` reuse the predictions at the mode's stencil (the model does not
+    depend on ``psi``); the neighbours need the unshifted ``psi`` only."""
     n, p = self.n, psi.size
     hh, dd, dp = HESS_INNER_STEP, THIRD_STEP, DPSI_H_STEP
     e2 = np.eye(2)
-    centres = np.stack([np.zeros(2), dd * e2[0], -dd * e2[0], dd * e2[1], -dd * e2[1]])
+    centres = np.stack([dd * e2[0], -dd * e2[0], dd * e2[1], -dd * e2[1]])
     stencil = np.stack([np.zeros(2), hh * e2[0], -hh * e2[0], hh * e2[1], -hh * e2[1]])
-    offsets = (centres[:, None, :] + stencil[None, :, :]).reshape(-1, 2)     # (25, 2)
     vectors = np.concatenate([psi[None], psi + dp * np.eye(p), psi - dp * np.eye(p)])
     v = vectors.shape[0]
     b_all, _, logdet, usable = self._rows(vectors)            # rows i v + j
@@ -118,27 +117,32 @@ def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray | 
         return None
     # the predictions are given: the rows need no event geometry (the big arrays)
     b_all = replace(b_all, geometry=())
-    pts = theta[:, None, :] + offsets[None]                                # (n, 25, 2)
-    obj, grad = _reused(self, b_all, pts, v)
-    grad = grad.reshape(n, 5, 5, v, 2)          # centre, stencil point, vector, G
+    b_one = replace(self._rows(psi[None])[0], geometry=())
+    # the mode's stencil under every vector; the neighbours' stencils under psi only
+    obj, grad0 = _reused(self, b_all, theta[:, None, :] + stencil[None], v)   # (n, 5, v)
+    near = (centres[:, None, :] + stencil[None, :, :]).reshape(-1, 2)        # (20, 2)
+    _, grad1 = _reused(self, b_one, theta[:, None, :] + near[None], 1)
 
-    def hessian_at(c):                          # (n, v, 2, 2) at centre c
-        cols = [(grad[:, c, 1 + 2 * j] - grad[:, c, 2 + 2 * j]) / (2 * hh)
+    def hessian(g):                             # H from a stencil's gradients (..., 5, v, 2)
+        cols = [(g[..., 1 + 2 * j, :, :] - g[..., 2 + 2 * j, :, :]) / (2 * hh)
                 for j in range(2)]
         h = np.stack(cols, axis=-1)
         return 0.5 * (h + np.swapaxes(h, -1, -2))
 
-    h0 = hessian_at(0)                          # H at the mode, every vector
+    def hessian_at(c):                          # (n, 1, 2, 2) at neighbour c (0-3)
+        return hessian(grad1.reshape(n, 4, 5, 1, 2)[:, c])
+
+    h0 = hessian(grad0)                         # H at the mode, every vector (n, v, 2, 2)
     h_base = h0[:, 0]
     det = h_base[:, 0, 0] * h_base[:, 1, 1] - h_base[:, 0, 1] ** 2
     if not np.all((h_base[:, 0, 0] > 0) & (det > 0)):
         return None
     inv = np.linalg.inv(h_base)                                         # (n, 2, 2)
     d_h_psi = (h0[:, 1:p + 1] - h0[:, p + 1:]) / (2 * dp)               # (n, p, 2, 2)
-    d_g_psi = (grad[:, 0, 0, 1:p + 1] - grad[:, 0, 0, p + 1:]) / (2 * dp)  # (n, p, 2)
+    d_g_psi = (grad0[:, 0, 1:p + 1] - grad0[:, 0, p + 1:]) / (2 * dp)   # (n, p, 2)
     tangent = -np.einsum("nab,npb->npa", inv, d_g_psi)                   # (n, p, 2)
-    d_h_theta = np.stack([(hessian_at(1)[:, 0] - hessian_at(2)[:, 0]) / (2 * dd),
-                          (hessian_at(3)[:, 0] - hessian_at(4)[:, 0]) / (2 * dd)],
+    d_h_theta = np.stack([(hessian_at(0)[:, 0] - hessian_at(1)[:, 0]) / (2 * dd),
+                          (hessian_at(2)[:, 0] - hessian_at(3)[:, 0]) / (2 * dd)],
                          axis=1)                                         # (n, 2, 2, 2)
     total_dh = d_h_psi + np.einsum("nmab,npm->npab", d_h_theta, tangent)
     d_logdet = np.einsum("nab,npba->np", inv, total_dh)
