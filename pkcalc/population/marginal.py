@@ -46,13 +46,15 @@ from ..fit.solver import minimise
 from ..fit.uncertainty import observed_hessian
 from . import quadrature
 from .covariates import Design
-from .gradient import GRAD_STEP, outer_gradient
+from .gradient import GRAD_STEP, gradient_at_modes, outer_gradient
 from .quadrature import LOG_2PI, at_nodes, gauss_hermite, laplace, log_integral
 
 __all__ = ["GRAD_STEP", "MarginalFit", "MarginalProblem", "gauss_hermite", "laplace",
            "log_integral"]
 
-#: Central-difference step (log-parameters) for the Hessian of the standard errors.
+#: Central-difference steps (log-parameters) for the Hessian of the standard errors:
+#: of the gradient at the modes, and (where that does not apply) of the objective.
+HESS_GRAD_STEP = 1e-3
 HESS_STEP = 2e-3
 #: Largest gradient of -2 ln L at which the optimiser's "success" is not believed.
 GRADIENT_DISAGREES = 1.0
@@ -364,6 +366,34 @@ class MarginalProblem:
         return theta
 
     def hessian(self, psi: np.ndarray) -> np.ndarray:
+        """Hessian of the summed ``-2 ln L``: central differences of the gradient at the
+        modes (:func:`~pkcalc.population.gradient.gradient_at_modes`; the modes of the
+        ``2 p`` shifted points solved together), or, where that gradient does not apply,
+        second central differences of the objective (:meth:`hessian_by_differences`)."""
+        psi = np.asarray(psi, float)
+        p = psi.size
+        if self.theta is not None:
+            h = HESS_GRAD_STEP
+            points = np.concatenate([psi + h * np.eye(p), psi - h * np.eye(p)])
+            modes = self._modes_many(points)
+            grads = [None if m is None else gradient_at_modes(self, x, m)
+                     for x, m in zip(points, modes, strict=True)]
+            if all(g is not None for g in grads):
+                g = np.array(grads)
+                hess = (g[:p] - g[p:]).T / (2 * h)
+                return 0.5 * (hess + hess.T)
+        return self.hessian_by_differences(psi)
+
+    def _modes_many(self, psis: np.ndarray) -> list[np.ndarray | None]:
+        """The conditional modes at several outer vectors (one vectorised solve from the
+        current modes); None for a vector that cannot be used."""
+        n, count = self.n, len(psis)
+        b, mu, _, usable = self._rows(psis)
+        theta = self._modes(b, mu, False, np.repeat(self.theta, count, axis=0))
+        theta = theta.reshape(n, count, 2)
+        return [theta[:, j] if usable[j] else None for j in range(count)]
+
+    def hessian_by_differences(self, psi: np.ndarray) -> np.ndarray:
         """Hessian of the summed ``-2 ln L`` by second central differences (every shifted
         point solved together, :meth:`objectives`)."""
         p = psi.size

@@ -153,7 +153,8 @@ def two_stage(subjects: list[SubjectData], options: FitOptions | None = None, *,
     """
     fits, failures = fit_subjects(subjects, options or FitOptions())
     usable = [r for r in fits if r.converged and r.estimates["clearance"].se is not None]
-    dropped = [r.subject for r in fits if r not in usable]
+    kept = {id(r) for r in usable}          # identity: comparing results field by field
+    dropped = [r.subject for r in fits if id(r) not in kept]   # is quadratic and slow
     if len(usable) < 2:
         raise ValueError("fewer than two subjects could be fitted individually: the "
                          "two-stage method needs rich data (use the iterative method)")
