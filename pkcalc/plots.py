@@ -117,7 +117,7 @@ def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
     cl, v = result.clearance, result.volume
     if not cl or not v or not result.regimens:
         return None
-    fig, ax = new_figure(height=5.4)
+    fig, ax = new_figure(height=5.6)
     # proposals: solid lines told apart by grey and marker; dashed and dotted lines are
     # kept for the limits, so no proposal can be mistaken for one
     greys = ["black", "0.3", "0.45", "0.6"]
@@ -177,9 +177,9 @@ def design_figure(result, conv: UnitConverter | None = None) -> Figure | None:
     ax.set_xlabel(glossary.axis("time", conv.unit("time")))
     ax.set_ylabel(glossary.axis("concentration", conv.unit("concentration")))
     ax.set_title(f"{result.name}\nproposed regimens: a calculation, not an order", fontsize=9)
-    # below the axes: the legend never covers a course
-    fig.legend(*ax.get_legend_handles_labels(), fontsize=7, loc="outside lower center",
-               ncol=2, frameon=False)
+    # below the axes (and above the caution footer): the legend never covers a course
+    ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.11), ncol=2,
+              frameon=False)
     return fig
 
 

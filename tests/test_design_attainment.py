@@ -301,4 +301,4 @@ def test_the_design_plot_draws_the_band():
     res = adjust_map(case.pop("doses"), case.pop("levels"), PRIOR, **case)
     fig = design_figure(res)
     assert any(isinstance(c, PolyCollection) for c in fig.axes[0].collections)
-    assert any("5-95 %" in t.get_text() for t in fig.legends[0].get_texts())
+    assert any("5-95 %" in t.get_text() for t in fig.axes[0].get_legend().get_texts())

@@ -278,11 +278,14 @@ def test_design_legends_do_not_cover_the_curves_and_labels_fit(design_figures):
     for name, fig in design_figures.items():
         fig = _draw(fig)
         ax = fig.axes[0]
-        assert ax.get_legend() is None, name            # no legend inside the axes
-        legend = fig.legends[0]
+        legend = ax.get_legend()
         box = legend.get_window_extent(fig.canvas.get_renderer())
         assert not box.overlaps(ax.get_window_extent()), name
         assert _inside(fig, legend), name
+        footer = [t for t in fig.texts if "Model estimates" in t.get_text()]
+        assert footer, name                      # the caution footer is there
+        assert not box.overlaps(footer[0].get_window_extent(fig.canvas.get_renderer())), \
+            name                                 # and the legend does not cover it
         for label in (ax.xaxis.label, ax.yaxis.label, ax.title):
             assert _inside(fig, label), (name, label.get_text())
 
