@@ -29,6 +29,7 @@ from functools import lru_cache
 
 import pint
 
+from . import glossary
 from .core import CANONICAL_UNITS
 from .errors import PkcalcInputError
 
@@ -66,28 +67,13 @@ KINDS: dict[str, str] = {
     "aumc": "a moment area such as 'mg*h^2/L'",
 }
 
-#: The kind of quantity of every named result pkcalc reports (one vocabulary).
+#: The kind of quantity of every named result pkcalc reports: read from the glossary
+#: (the one vocabulary), plus two names that occur only as input (a verification case's
+#: ``time_to_fraction`` and a design's ``target``).
 KIND_OF: dict[str, str] = {
-    **dict.fromkeys(
-        ("plateau_concentration", "concentration", "peak", "trough", "average", "plateau",
-         "level", "highest", "lowest_after_loading", "first_dose_peak",
-         "peak_at_end_of_infusion", "trough_at_end_of_interval", "pre_dose_level",
-         "peak_concentration", "last_concentration", "target", "start_level", "level_at_start",
-         "level_at_72h"), "concentration"),
-    **dict.fromkeys(
-        ("time_to_fraction", "half_life", "time_constant", "interval", "infusion_time",
-         "loading_time", "pause_before_new_rate", "time_to_within_5_percent", "peak_time",
-         "last_time", "terminal_half_life", "mean_residence_time", "time", "start", "hold",
-         "duration", "every"), "time"),
-    **dict.fromkeys(("clearance", "clearance_exact", "clearance_chiou"), "clearance"),
-    **dict.fromkeys(("volume", "volume_terminal", "volume_steady_state"), "volume"),
-    **dict.fromkeys(("elimination_rate", "terminal_slope"), "elimination_rate"),
-    **dict.fromkeys(("rate", "rate_for_target", "ratio_rule_rate"), "rate"),
-    **dict.fromkeys(("dose", "loading_dose", "loading_dose_for_target", "amount", "first_dose",
-                     "ratio_rule_dose"), "amount"),
-    **dict.fromkeys(("auc_24", "auc_to_last", "auc_to_infinity", "auc_interval",
-                     "auc_first_24", "lowest_auc_24_window", "highest_auc_24_window"), "auc"),
-    "weight": "weight",
+    **{t.key: t.kind for t in glossary.TERMS if t.kind in KINDS},
+    "target": "concentration",
+    "time_to_fraction": "time",
 }
 
 #: Kinds that may be given per kilogram of body weight.
