@@ -32,6 +32,7 @@ __all__ = [
     "bolus_concentration",
     "concentration",
     "concentration_and_gradient",
+    "concentration_derivatives",
     "concentration_repeated",
     "derived_parameters",
     "event_geometry",
@@ -361,6 +362,53 @@ def concentration_and_gradient(t, start, amount, duration, clearance, volume, *,
     grad = np.stack([_sum_events(d_term - infusion * term),
                      _sum_events(-bolus * term - d_term)])
     return conc, grad
+
+
+def concentration_derivatives(t, start, amount, duration, clearance, volume, *,
+                              geometry=None):
+    """Concentration with its first and second derivatives in ``ln CL`` and ``ln V``.
+
+    With ``x = ln CL``, ``y = ln V``, ``k = CL/V`` and each event term
+    ``C_e = coef g(k)`` as in :func:`concentration_and_gradient`, write
+    ``a_x = d ln coef / dx`` (-1 for an infusion, 0 otherwise), ``a_y = d ln coef / dy``
+    (-1 for a bolus, 0 otherwise), ``D = coef k g'(k)`` and ``D2 = coef k^2 g''(k)``.
+    Since ``dk/dx = k = -dk/dy``::
+
+        dC/dx = a_x C + D                 dC/dy = a_y C - D
+        d2C/dx2 = a_x^2 C + (2 a_x + 1) D + D2
+        d2C/dxdy = (a_y - a_x - 1) D - D2          (a_x a_y = 0)
+        d2C/dy2 = a_y^2 C + (1 - 2 a_y) D + D2
+
+    with ``k^2 g''(k) = k^2 exp(-k w) [-u (u + 2 w) exp(-k u) - w^2 expm1(-k u)]`` for
+    an infusion (``g = exp(-k w) - exp(-k (u + w))``) and ``k^2 w^2 exp(-k w)`` for a
+    bolus or an initial level (``u = 0``).  Used where a Newton step needs the exact
+    Hessian of an objective (the conditional modes of the population estimates).
+
+    Parameters
+    ----------
+    As :func:`concentration_and_gradient`.
+
+    Returns
+    -------
+    conc : ndarray, shape (..., T), mg/L
+    grad : ndarray, shape (2, ..., T)
+        ``dC/d ln CL``, ``dC/d ln V``.
+    hess : ndarray, shape (3, ..., T)
+        ``d2C/d ln CL2``, ``d2C/d ln CL d ln V``, ``d2C/d ln V2``.
+    """
+    u, w, active = geometry if geometry is not None else event_geometry(t, start, duration)
+    term, (coef, k, e_w, em1, bolus, infusion, point) = _event_terms(
+        u, w, active, amount, duration, clearance, volume)
+    ck = coef * k * e_w
+    d_term = ck * (u * (1.0 + em1) + w * em1 - point * w)
+    d2_term = ck * k * (point * w * w - u * (u + 2.0 * w) * (1.0 + em1) - w * w * em1)
+    a_x, a_y = -infusion, -bolus
+    conc = _sum_events(term)
+    grad = np.stack([_sum_events(a_x * term + d_term), _sum_events(a_y * term - d_term)])
+    hess = np.stack([_sum_events(infusion * term + (1.0 + 2.0 * a_x) * d_term + d2_term),
+                     _sum_events((a_y - a_x - 1.0) * d_term - d2_term),
+                     _sum_events(bolus * term + (1.0 - 2.0 * a_y) * d_term + d2_term)])
+    return conc, grad, hess
 
 
 def concentration_repeated(t, dose, duration, interval, clearance, volume, count=None):

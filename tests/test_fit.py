@@ -138,6 +138,43 @@ def test_analytic_gradient_matches_finite_differences(kind, error, q, cens):
         assert grad[0, j] == pytest.approx(num[0], rel=1e-5, abs=1e-8)
 
 
+@pytest.mark.parametrize("error", ["additive", "proportional", "combined"])
+@pytest.mark.parametrize("cens", [False, True])
+def test_exact_hessian_of_the_map_objective_matches_second_differences(error, cens):
+    # the Newton matrix of the conditional modes: the exact Hessian in ln CL, ln V of
+    # the MAP objective (levels, Beal's M3 BLQ term, prior), against second central
+    # differences of the objective itself (no analytic derivative in the reference),
+    # at the fit's start, near its mode and far from it
+    from dataclasses import replace
+
+    from pkcalc.fit.objective import exact_hessian
+
+    b = _batch_for("likelihood", error, cens)
+    sa = 0.3 if error != "proportional" else 0.0
+    sp = 0.1 if error != "additive" else 0.0
+    b = replace(b, kind="map", sa=np.array([sa]), sp=np.array([sp]),
+                mu=np.array([[math.log(4.0), math.log(35.0)]]),
+                omega_inv=np.linalg.inv(np.array([[[0.09, 0.02], [0.02, 0.05]]])))
+    for cl, v in ((3.0, 40.0), (1.0, 80.0), (9.0, 15.0)):
+        theta = np.array([[math.log(cl), math.log(v)]])
+        obj, grad, hess, info = exact_hessian(b, theta)
+        o_ref, g_ref, i_ref, _ = evaluate(b, theta)
+        assert obj == pytest.approx(o_ref, rel=1e-14)
+        np.testing.assert_allclose(grad, g_ref, rtol=1e-14)
+        np.testing.assert_allclose(info, i_ref, rtol=1e-14)
+        h = 1e-4
+
+        def f(dx, dy, theta=theta):
+            return float(evaluate(b, theta + np.array([[dx, dy]]))[0][0])
+
+        ref = np.empty((2, 2))
+        ref[0, 0] = (f(h, 0) - 2 * f(0, 0) + f(-h, 0)) / h**2
+        ref[1, 1] = (f(0, h) - 2 * f(0, 0) + f(0, -h)) / h**2
+        ref[0, 1] = ref[1, 0] = (f(h, h) - f(h, -h) - f(-h, h) + f(-h, -h)) / (4 * h * h)
+        np.testing.assert_allclose(hess[0], ref, rtol=2e-5,
+                                   atol=2e-5 * float(np.abs(ref).max()))
+
+
 def test_censored_likelihood_matches_numerical_integration():
     # Beal's M3: a BLQ level contributes P(C < LLOQ); compare with the normal
     # density integrated numerically below LLOQ (scipy.integrate.quad, scipy.stats).

@@ -400,6 +400,55 @@ def test_analytic_gradient_matches_sympy_and_differences():
         assert grad[1, i] == pytest.approx(d_v, rel=1e-10)
 
 
+def test_second_derivatives_match_sympy():
+    # d2C/dlnCL2, d2C/dlnCL dlnV, d2C/dlnV2 of the closed form (an infusion, a bolus and
+    # an initial level at once), against sympy's symbolic derivatives of the same
+    # expressions; the first derivatives equal concentration_and_gradient's.
+    cl_s, v_s, t_s = sp.symbols("CL V t", positive=True)
+    k = cl_s / v_s
+    rate, dur, dose, c0, s_bolus = 100.0, 2.0, 300.0, 4.0, 1.0
+    during = rate / cl_s * (1 - sp.exp(-k * t_s))
+    after = rate / cl_s * (1 - sp.exp(-k * dur)) * sp.exp(-k * (t_s - dur))
+    bolus = dose / v_s * sp.exp(-k * (t_s - s_bolus))
+    initial = c0 * sp.exp(-k * t_s)
+    cl, v = 3.0, 40.0
+    times = np.array([0.5, 1.5, 2.0, 5.0, 20.0, 300.0])
+    args = (times, [0.0, s_bolus, 0.0], [rate * dur, dose, c0],
+            [dur, 0.0, model.INITIAL_LEVEL], cl, v)
+    conc, grad, hess = model.concentration_derivatives(*args)
+    c1, g1 = model.concentration_and_gradient(*args)
+    np.testing.assert_allclose(conc, c1, rtol=1e-14)
+    np.testing.assert_allclose(grad, g1, rtol=1e-12, atol=1e-300)
+    x, y = sp.symbols("x y")
+    for i, tt in enumerate(times):
+        expr = (during if tt <= dur else after) + (bolus if tt >= s_bolus else 0) + initial
+        in_logs = expr.subs({cl_s: sp.exp(x), v_s: sp.exp(y)}, simultaneous=True)
+        point = {x: math.log(cl), y: math.log(v), t_s: tt}
+        for row, (a, b) in enumerate(((x, x), (x, y), (y, y))):
+            ref = float(sp.diff(in_logs, a, b).subs(point).evalf(30))
+            assert hess[row, i] == pytest.approx(ref, rel=1e-9, abs=1e-13), (tt, row)
+
+
+@settings(max_examples=40, deadline=None)
+@given(cl=st.floats(0.05, 50.0), v=st.floats(1.0, 500.0), t=st.floats(0.0, 200.0),
+       d=st.floats(0.0, 24.0))
+def test_second_derivatives_are_differences_of_the_gradient(cl, v, t, d):
+    # central differences of the analytic gradient (first-order formulas, tested above
+    # against sympy) equal the analytic second derivatives, anywhere in the range
+    args = ([t], [0.0], [500.0], [d])
+    _, _, hess = model.concentration_derivatives(*args, cl, v)
+    h = 1e-5
+    cols = []
+    for dx, dy in ((h, 0.0), (0.0, h)):
+        _, up = model.concentration_and_gradient(*args, cl * math.exp(dx), v * math.exp(dy))
+        _, dn = model.concentration_and_gradient(*args, cl * math.exp(-dx), v * math.exp(-dy))
+        cols.append((up - dn)[:, 0] / (2 * h))
+    scale = max(abs(float(hess[:, 0].max())), abs(float(hess[:, 0].min())), 1e-12)
+    np.testing.assert_allclose(hess[:, 0], [cols[0][0], cols[0][1], cols[1][1]],
+                               rtol=1e-5, atol=1e-6 * scale)
+    assert cols[0][1] == pytest.approx(cols[1][0], rel=1e-5, abs=1e-6 * scale)
+
+
 # --------------------------------------------------------------------------- initial level, split
 def test_initial_level_event_decays_with_k_and_its_gradient_matches_finite_differences():
     # C0 exp(-k t) for an initial-level event (no 1/V); derivatives wrt ln CL, ln V by

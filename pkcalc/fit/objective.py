@@ -29,7 +29,8 @@ from scipy.special import log_ndtr
 
 from .. import model
 
-__all__ = ["Batch", "build_batch", "evaluate", "n_error_params", "profiled_sigma", "structural"]
+__all__ = ["Batch", "build_batch", "evaluate", "exact_hessian", "n_error_params",
+           "profiled_sigma", "structural"]
 
 LOG_2PI = math.log(2 * math.pi)
 
@@ -227,9 +228,16 @@ def profiled_sigma(batch: Batch, f: np.ndarray, floor: np.ndarray) -> np.ndarray
     return np.maximum(0.5 * np.log(np.maximum(s2, 1e-300)), floor)
 
 
-def structural(batch: Batch, theta: np.ndarray):
+def structural(batch: Batch, theta: np.ndarray, *, second: bool = False):
     """Predictions and their derivatives with respect to the structural log-parameters
-    (the first ``batch.n_structural`` columns of ``theta``)."""
+    (the first ``batch.n_structural`` columns of ``theta``); with ``second`` (one
+    compartment) also the second derivatives, shape (3, B, N): ``xx, xy, yy``."""
+    if second:
+        if batch.compartments != 1:
+            raise ValueError("second derivatives are those of the one-compartment model")
+        return model.concentration_derivatives(
+            batch.t, batch.start, batch.amount, batch.duration, np.exp(theta[:, 0]),
+            np.exp(theta[:, 1]), geometry=batch.geometry)
     if batch.compartments == 1:
         return model.concentration_and_gradient(
             batch.t, batch.start, batch.amount, batch.duration, np.exp(theta[:, 0]),
@@ -319,3 +327,68 @@ def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None 
         grad[:, :2] += 2 * od
         info[:, :2, :2] += 2 * batch.omega_inv
     return obj, grad, info, f
+
+
+def exact_hessian(batch: Batch, theta: np.ndarray, *,
+                  predictions: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None):
+    """The ``map`` objective with its exact Hessian in ``ln CL, ln V`` (one compartment).
+
+    Per level, with ``r = y - f``, ``v = sa^2 + sp^2 f^2``, ``v' = 2 sp^2 f`` and
+    ``v'' = 2 sp^2``, the level's term ``l = ln(2 pi v) + r^2 / v`` has
+    ``l' = (1/v - r^2/v^2) v' - 2 r / v`` and
+    ``l'' = 2/v + v'^2 (2 r^2/v^3 - 1/v^2) + 4 r v'/v^2 + (1/v - r^2/v^2) v''``;
+    a BLQ level (Beal's M3, ``l = -2 ln Phi(z)``, ``z = (LLOQ - f)/sqrt(v)``) has
+    ``l' = -2 lambda z'`` and ``l'' = 2 lambda (z + lambda) z'^2 - 2 lambda z''`` with
+    ``lambda = phi(z)/Phi(z)``, ``z' = -1/sqrt(v) - z v'/(2 v)`` and
+    ``z'' = v'/(v sqrt(v)) + 3 z v'^2/(4 v^2) - z v''/(2 v)``.  The Hessian is
+    ``sum l'' J J' + sum l' d2f`` (``J``, ``d2f`` the model's first and second
+    derivatives, :func:`pkcalc.model.concentration_derivatives`) plus ``2 Omega^-1``.
+
+    Parameters
+    ----------
+    batch : Batch
+        Of kind ``map``.
+    theta : ndarray, shape (B, 2)
+    predictions : (f, J, d2f), optional
+        :func:`structural` with ``second=True`` of these rows, computed once and reused.
+
+    Returns
+    -------
+    obj : ndarray, shape (B,)
+    grad : ndarray, shape (B, 2)
+    hess : ndarray, shape (B, 2, 2)
+        The exact Hessian (not necessarily positive definite away from a mode).
+    info : ndarray, shape (B, 2, 2)
+        The scoring matrix of :func:`evaluate` (positive semi-definite).
+    """
+    if batch.kind != "map":
+        raise ValueError("the exact Hessian is that of the map objective")
+    f, jac, jac2 = structural(batch, theta, second=True) if predictions is None \
+        else predictions
+    obj, grad, info, _ = evaluate(batch, theta, predictions=(f, jac))
+    sa2, sp2 = batch.sa[:, None] ** 2, batch.sp[:, None] ** 2
+    o, c = batch.obs, batch.cens
+    var = np.where(o | c, np.maximum(sa2 + sp2 * f * f, 1e-300), 1.0)
+    inv = 1.0 / var
+    dv, d2v = 2 * sp2 * f, 2 * sp2
+    r = batch.y - f
+    a = inv - r * r * inv * inv
+    first = np.where(o, a * dv - 2 * r * inv, 0.0)
+    second = np.where(o, 2 * inv + dv * dv * (2 * r * r * inv - 1.0) * inv * inv
+                      + 4 * r * dv * inv * inv + a * d2v, 0.0)
+    if c.any():
+        sd = np.sqrt(var)
+        z = r / sd
+        lam = np.exp(-0.5 * z * z - 0.5 * LOG_2PI - log_ndtr(z))
+        z1 = -1.0 / sd - z * dv * inv / 2
+        z2 = dv * inv / sd + 0.75 * z * dv * dv * inv * inv - z * d2v * inv / 2
+        first = first + np.where(c, -2 * lam * z1, 0.0)
+        second = second + np.where(c, 2 * lam * (z + lam) * z1 * z1 - 2 * lam * z2, 0.0)
+    hess = _gram(second, jac)
+    hess[:, 0, 0] += _dot(first, jac2[0])
+    cross = _dot(first, jac2[1])
+    hess[:, 0, 1] += cross
+    hess[:, 1, 0] += cross
+    hess[:, 1, 1] += _dot(first, jac2[2])
+    hess += 2 * batch.omega_inv
+    return obj, grad, hess, info

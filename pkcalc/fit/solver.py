@@ -5,7 +5,8 @@ A step solves ``(I + lambda diag(I)) d = -g`` with ``I`` the scoring matrix of
 :func:`pkcalc.fit.objective.evaluate`; it is accepted when the objective falls
 (``lambda`` shrinks), otherwise ``lambda`` grows.  Rows stop when the
 objective changes by less than ``tol (1 + |obj|)`` on an accepted step whose
-largest component is below ``xtol``.  Marquardt, SIAM J Appl Math 1963;11:431;
+largest component is below ``xtol``, or when a step below ``xtol`` raises it by no
+more than rounding (``ROUNDING (1 + |obj|)``).  Marquardt, SIAM J Appl Math 1963;11:431;
 Fisher scoring for the likelihood objectives (Jennrich & Sampson, Technometrics
 1976;18:11 -- from memory).
 """
@@ -20,6 +21,9 @@ import numpy as np
 __all__ = ["Solution", "minimise"]
 
 MAX_STEP = 2.0  # largest change of a log-parameter in one step (a factor of e^2)
+#: Relative rise of the objective that is rounding, not a worse point (a few hundred
+#: units in the last place of a sum of many terms).
+ROUNDING = 1e-13
 
 
 @dataclass
@@ -44,6 +48,7 @@ class Solution:
     converged: np.ndarray
     iterations: np.ndarray
     message: list[str]
+    extra: np.ndarray | None = None
 
 
 def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray, *,
@@ -57,7 +62,9 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
     Parameters
     ----------
     fun : callable
-        ``fun(theta_rows, row_index) -> (obj, grad, info)`` for the given rows.
+        ``fun(theta_rows, row_index) -> (obj, grad, info)`` for the given rows; a
+        fourth item (an array with one entry per row) is carried along with the
+        accepted points and returned as ``Solution.extra``.
     theta0 : ndarray, shape (B, q)
         Starting values (log-parameters).
     max_iter : int
@@ -85,8 +92,9 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
     upper = np.broadcast_to(np.asarray(upper, float), (b, q))
     theta = np.clip(theta, lower, upper)
     all_rows = np.arange(b)
-    obj, grad, info = fun(theta, all_rows)
-    obj, grad, info = np.array(obj), np.array(grad), np.array(info)
+    first = fun(theta, all_rows)
+    obj, grad, info = np.array(first[0]), np.array(first[1]), np.array(first[2])
+    extra = np.array(first[3]) if len(first) > 3 else None
     lam = np.full(b, 1e-3)
     converged = np.zeros(b, bool)
     active = np.isfinite(obj)
@@ -116,15 +124,25 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
             step = -g / diag
         step = np.clip(step, -MAX_STEP, MAX_STEP)
         trial = np.clip(theta[idx] + step, lower[idx], upper[idx])
-        o_t, g_t, i_t = fun(trial, idx)
+        out = fun(trial, idx)
+        o_t, g_t, i_t = out[0], out[1], out[2]
         ok = np.isfinite(o_t) & (o_t <= obj[idx])
         acc = idx[ok]
+        if extra is not None:
+            extra[acc] = np.asarray(out[3])[ok]
         gain = obj[acc] - o_t[ok]
         moved = np.abs(trial[ok] - theta[acc]).max(axis=1)
         theta[acc], obj[acc], grad[acc], info[acc] = trial[ok], o_t[ok], g_t[ok], i_t[ok]
         lam[acc] = np.maximum(lam[acc] / 10.0, 1e-12)
         rej = idx[~ok]
         lam[rej] *= 10.0
+        # a tiny step that raises the objective by no more than its rounding: the
+        # objective cannot tell the points apart -- converged (not a stall to damp out)
+        rounding = np.isfinite(o_t[~ok]) & \
+            (o_t[~ok] - obj[rej] <= ROUNDING * (1.0 + np.abs(obj[rej]))) & \
+            (np.abs(trial[~ok] - theta[rej]).max(axis=1) <= xtol)
+        converged[rej[rounding]] = True
+        active[rej[rounding]] = False
         done = (gain <= tol * (1.0 + np.abs(obj[acc]))) & (moved <= xtol)
         # tiny gains with larger steps also count once the gradient is negligible
         at_bound = (theta[acc] <= lower[acc] + 1e-9) | (theta[acc] >= upper[acc] - 1e-9)
@@ -157,4 +175,4 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
         active[stuck] = False
     for r in np.flatnonzero(active):
         message[r] = f"not converged in {max_iter} iterations"
-    return Solution(theta, obj, grad, info, converged, iterations, message)
+    return Solution(theta, obj, grad, info, converged, iterations, message, extra)

@@ -74,24 +74,30 @@ class Design:
     def means(self, beta: np.ndarray) -> np.ndarray:
         """Typical ``ln CL, ln V`` of every subject, shape (N, 2); ``inf`` where a linear
         effect makes a typical value non-positive."""
-        mu = np.tile(np.asarray(beta[:2], float), (self.n_subjects, 1))
+        return self.means_many(np.asarray(beta, float)[None])[:, 0]
+
+    def means_many(self, betas: np.ndarray) -> np.ndarray:
+        """:meth:`means` under several parameter vectors ``betas`` (V, n_beta) at once,
+        shape (N, V, 2)."""
+        betas = np.asarray(betas, float)
+        mu = np.broadcast_to(betas[None, :, :2], (self.n_subjects, betas.shape[0], 2)).copy()
         k = 2
         for term in self.terms:
             e = term.effect
             if e.form == "categorical":
                 m = len(term.names)
-                mu[:, term.row] += term.values @ beta[k:k + m]
+                mu[:, :, term.row] += term.values @ betas[:, k:k + m].T
                 k += m
             elif e.form == "linear":
-                arg = 1.0 + beta[k] * term.values
+                arg = 1.0 + betas[None, :, k] * term.values[:, None]
                 with np.errstate(invalid="ignore", divide="ignore"):
-                    mu[:, term.row] += np.where(arg > 0, np.log(np.where(arg > 0, arg, 1.0)),
-                                                np.inf)
+                    mu[:, :, term.row] += np.where(
+                        arg > 0, np.log(np.where(arg > 0, arg, 1.0)), np.inf)
                 k += 1
             elif e.fixed is not None:
-                mu[:, term.row] += e.fixed * term.values
+                mu[:, :, term.row] += e.fixed * term.values[:, None]
             else:
-                mu[:, term.row] += beta[k] * term.values
+                mu[:, :, term.row] += betas[None, :, k] * term.values[:, None]
                 k += 1
         return mu
 

@@ -20,9 +20,9 @@ from dataclasses import replace
 
 import numpy as np
 
-from ..fit.objective import Batch, evaluate, structural
-from ..fit.uncertainty import observed_hessian
+from ..fit.objective import Batch, evaluate, exact_hessian, structural
 from . import quadrature
+from .quadrature import positive_definite
 
 __all__ = ["GRAD_STEP", "gradient_at_modes", "outer_gradient"]
 
@@ -30,10 +30,9 @@ __all__ = ["GRAD_STEP", "gradient_at_modes", "outer_gradient"]
 GRAD_STEP = 1e-4
 #: Step of psi for the derivative of the analytic inner gradient at fixed modes.
 DPSI_STEP = 1e-5
-#: Gradient at the modes: steps of the Hessian stencil in theta, of its derivative in
-#: theta, and of the derivatives in psi.
-HESS_INNER_STEP = 1e-5
-THIRD_STEP = 3e-4
+#: Gradient at the modes: steps of the derivative of the (exact) Hessian in theta and
+#: of the derivatives in psi.
+THIRD_STEP = 1e-4
 DPSI_H_STEP = 1e-4
 
 
@@ -59,9 +58,8 @@ def outer_gradient(self, psi: np.ndarray) -> np.ndarray:
         return out
     # a Hessian that is not positive definite somewhere: the tangent differences
     b0, _, _, _ = self._rows(psi[None])
-    hess = observed_hessian(b0, theta)
-    det = hess[:, 0, 0] * hess[:, 1, 1] - hess[:, 0, 1] ** 2
-    pd = (hess[:, 0, 0] > 0) & (det > 0)
+    _, _, hess, _ = exact_hessian(b0, theta)
+    pd = positive_definite(hess)
     out = np.zeros(p)
     per = self._vectors_per_block()
     for j0 in range(0, p, per):                 # components in blocks (bounded memory)
@@ -99,17 +97,16 @@ def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray | 
 
     ``-2 ln L_i = h(theta^) + ln|H| + const``; ``dh/dpsi`` is the partial derivative
     at the mode (envelope theorem) and ``d ln|H| / dpsi_j = tr(H^-1 (dH/dpsi_j +
-    sum_m dH/dtheta_m s_jm))`` with ``s_j = -H^-1 dG/dpsi_j``.  ``G`` is analytic;
-    ``H``, its derivative in ``theta`` and the derivatives in ``psi`` are central
-    differences at the mode.  The model is evaluated once per subject and point
-    (25 points: the mode, its Hessian stencil, and those of four neighbours); the
-    shifted ``psi`` reuse the predictions at the mode's stencil (the model does not
-    depend on ``psi``); the neighbours need the unshifted ``psi`` only."""
+    sum_m dH/dtheta_m s_jm))`` with ``s_j = -H^-1 dG/dpsi_j``.  ``G`` and ``H`` are
+    analytic (:func:`pkcalc.fit.objective.exact_hessian`); the derivatives of ``H``
+    in ``theta`` and of ``G``, ``H`` in ``psi`` are central differences at the mode.
+    The model is evaluated once per subject and point (the mode and four neighbours);
+    the shifted ``psi`` reuse the predictions at the mode (the model does not depend
+    on ``psi``); the neighbours need the unshifted ``psi`` only."""
     n, p = self.n, psi.size
-    hh, dd, dp = HESS_INNER_STEP, THIRD_STEP, DPSI_H_STEP
+    dd, dp = THIRD_STEP, DPSI_H_STEP
     e2 = np.eye(2)
     centres = np.stack([dd * e2[0], -dd * e2[0], dd * e2[1], -dd * e2[1]])
-    stencil = np.stack([np.zeros(2), hh * e2[0], -hh * e2[0], hh * e2[1], -hh * e2[1]])
     vectors = np.concatenate([psi[None], psi + dp * np.eye(p), psi - dp * np.eye(p)])
     v = vectors.shape[0]
     b_all, _, logdet, usable = self._rows(vectors)            # rows i v + j
@@ -118,43 +115,31 @@ def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray | 
     # the predictions are given: the rows need no event geometry (the big arrays)
     b_all = replace(b_all, geometry=())
     b_one = replace(self._rows(psi[None])[0], geometry=())
-    # the mode's stencil under every vector; the neighbours' stencils under psi only
-    obj, grad0 = _reused(self, b_all, theta[:, None, :] + stencil[None], v)   # (n, 5, v)
-    near = (centres[:, None, :] + stencil[None, :, :]).reshape(-1, 2)        # (20, 2)
-    _, grad1 = _reused(self, b_one, theta[:, None, :] + near[None], 1)
-
-    def hessian(g):                             # H from a stencil's gradients (..., 5, v, 2)
-        cols = [(g[..., 1 + 2 * j, :, :] - g[..., 2 + 2 * j, :, :]) / (2 * hh)
-                for j in range(2)]
-        h = np.stack(cols, axis=-1)
-        return 0.5 * (h + np.swapaxes(h, -1, -2))
-
-    def hessian_at(c):                          # (n, 1, 2, 2) at neighbour c (0-3)
-        return hessian(grad1.reshape(n, 4, 5, 1, 2)[:, c])
-
-    h0 = hessian(grad0)                         # H at the mode, every vector (n, v, 2, 2)
+    obj, grad0, h0 = _reused(self, b_all, theta[:, None, :], v, hessian=True)
+    obj, grad0, h0 = obj[:, 0], grad0[:, 0], h0[:, 0]       # (n, v), (n, v, 2), (n, v, 2, 2)
+    _, _, h1 = _reused(self, b_one, theta[:, None, :] + centres[None], 1, hessian=True)
+    h1 = h1[:, :, 0]                                        # (n, 4, 2, 2) at the neighbours
     h_base = h0[:, 0]
-    det = h_base[:, 0, 0] * h_base[:, 1, 1] - h_base[:, 0, 1] ** 2
-    if not np.all((h_base[:, 0, 0] > 0) & (det > 0)):
+    if not np.all(positive_definite(h_base)):
         return None
     inv = np.linalg.inv(h_base)                                         # (n, 2, 2)
     d_h_psi = (h0[:, 1:p + 1] - h0[:, p + 1:]) / (2 * dp)               # (n, p, 2, 2)
-    d_g_psi = (grad0[:, 0, 1:p + 1] - grad0[:, 0, p + 1:]) / (2 * dp)   # (n, p, 2)
+    d_g_psi = (grad0[:, 1:p + 1] - grad0[:, p + 1:]) / (2 * dp)         # (n, p, 2)
     tangent = -np.einsum("nab,npb->npa", inv, d_g_psi)                   # (n, p, 2)
-    d_h_theta = np.stack([(hessian_at(0)[:, 0] - hessian_at(1)[:, 0]) / (2 * dd),
-                          (hessian_at(2)[:, 0] - hessian_at(3)[:, 0]) / (2 * dd)],
-                         axis=1)                                         # (n, 2, 2, 2)
+    d_h_theta = np.stack([(h1[:, 0] - h1[:, 1]) / (2 * dd),
+                          (h1[:, 2] - h1[:, 3]) / (2 * dd)], axis=1)     # (n, 2, 2, 2)
     total_dh = d_h_psi + np.einsum("nmab,npm->npab", d_h_theta, tangent)
     d_logdet = np.einsum("nab,npba->np", inv, total_dh)
     logdet = logdet.reshape(n, v)
     if self.nodes == 1:
-        h_mode = obj[:, 0, :] + logdet                 # h at the mode (+ const)
+        h_mode = obj + logdet                          # h at the mode (+ const)
         d_env = (h_mode[:, 1:p + 1] - h_mode[:, p + 1:]) / (2 * dp)     # (n, p)
         out = (d_env + d_logdet).sum(axis=0)
     else:
         out = _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet,
-                                        logdet, v, p)
+                               logdet, v, p)
     return out if np.all(np.isfinite(out)) else None
+
 
 def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logdet,
                          v: int, p: int) -> np.ndarray:
@@ -169,7 +154,7 @@ def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logde
     chol = np.linalg.cholesky(2.0 * inv)                                  # (n, 2, 2)
     grid, lw = quadrature.gauss_hermite(self.nodes, 2)
     nodes = theta[:, None, :] + math.sqrt(2.0) * np.einsum("nij,kj->nki", chol, grid)
-    obj, grad = _reused(self, b_all, nodes, v)          # (n, K, v), (n, K, v, 2)
+    obj, grad, _ = _reused(self, b_all, nodes, v)       # (n, K, v), (n, K, v, 2)
     h = obj + logdet[:, None, :]
     terms = lw[None, :] + (grid**2).sum(axis=1)[None, :] - 0.5 * h[:, :, 0]
     weights = np.exp(terms - terms.max(axis=1, keepdims=True))
@@ -187,24 +172,50 @@ def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logde
     d_h = d_h_psi + np.einsum("nka,nkpa->nkp", grad[:, :, 0], move)
     return (d_logdet + np.einsum("nk,nkp->np", weights, d_h)).sum(axis=0)
 
-def _reused(self, b_all: Batch, pts: np.ndarray, v: int):
-    """The inner objective and its gradient at points ``pts`` (n, K, 2) of every
-    subject under each of the ``v`` outer vectors of ``b_all`` (rows ``i v + j``):
-    the model is evaluated once per subject and point and its predictions reused
-    for every vector; in blocks of subjects of at most :data:`quadrature.CELL_BLOCK` cells."""
+def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = False):
+    """The inner objective and its gradient (and, with ``hessian``, its exact Hessian)
+    at points ``pts`` (n, K, 2) of every subject under each of the ``v`` outer vectors
+    of ``b_all`` (rows ``i v + j``).
+
+    ``h = (levels' part: f(eta), sa, sp) + (eta - mu)' Omega^-1 (eta - mu)``: the model
+    is evaluated once per subject and point, the levels' part once per distinct
+    residual error among the vectors (most shifted vectors move a typical value or
+    ``Omega`` only), and the prior part, which needs no model, per vector; in blocks
+    of subjects of at most :data:`quadrature.CELL_BLOCK` cells."""
     n, k = pts.shape[:2]
+    errors = np.stack([b_all.sa[:v], b_all.sp[:v]], axis=1)
+    distinct, which = np.unique(errors, axis=0, return_inverse=True)
+    which = which.reshape(-1)
+    u = len(distinct)
+    levels = self.__dict__.get("_levels_only")
+    if levels is None:                      # the levels without the event geometry
+        levels = self._levels_only = replace(self.batch, kind="map", geometry=())
+    mu_all = b_all.mu.reshape(n, v, 2)
+    oinv = b_all.omega_inv.reshape(n, v, 2, 2)[0]                  # (v, 2, 2)
     cells = self.batch.t.shape[1] * max(self.batch.start.shape[1], 1)
-    per = max(1, quadrature.CELL_BLOCK // (k * max(v * self.batch.t.shape[1], cells)))
+    per = max(1, quadrature.CELL_BLOCK // (k * max(u * self.batch.t.shape[1], cells)))
     obj = np.empty((n, k, v))
     grad = np.empty((n, k, v, 2))
+    hess = np.empty((n, k, v, 2, 2)) if hessian else None
+    zero_prior = np.zeros((1, 2, 2))
     for a in range(0, n, per):                                 # subjects in blocks
         subs = np.arange(a, min(a + per, n))
+        s = subs.size
         flat = pts[subs].reshape(-1, 2)                                     # (s k, 2)
-        f, jac = structural(self.batch.rows(np.repeat(subs, k)), flat)
-        rep = np.repeat(np.arange(subs.size * k), v)            # each point x v vectors
-        vec = np.tile(np.arange(v), subs.size * k)
-        rows = b_all.rows(np.repeat(subs, k * v) * v + vec)
-        o, g, _, _ = evaluate(rows, flat[rep], predictions=(f[rep], jac[:, rep]))
-        obj[subs] = o.reshape(subs.size, k, v)
-        grad[subs] = g.reshape(subs.size, k, v, 2)
-    return obj, grad
+        pred = structural(self.batch.rows(np.repeat(subs, k)), flat, second=hessian)
+        rep = np.repeat(np.arange(s * k), u)                    # each point x u errors
+        rows = replace(levels.rows(np.repeat(subs, k * u)),
+                       sa=np.tile(distinct[:, 0], s * k), sp=np.tile(distinct[:, 1], s * k),
+                       mu=np.zeros((s * k * u, 2)),
+                       omega_inv=np.broadcast_to(zero_prior, (s * k * u, 2, 2)))
+        given = (pred[0][rep], *(d[:, rep] for d in pred[1:]))
+        if hessian:
+            o, g, h, _ = exact_hessian(rows, flat[rep], predictions=given)
+            hess[subs] = h.reshape(s, k, u, 2, 2)[:, :, which] + 2 * oinv
+        else:
+            o, g, _, _ = evaluate(rows, flat[rep], predictions=given)
+        d = pts[subs][:, :, None, :] - mu_all[subs][:, None, :, :]           # (s, k, v, 2)
+        od = np.einsum("vab,skvb->skva", oinv, d)
+        obj[subs] = o.reshape(s, k, u)[:, :, which] + np.einsum("skva,skva->skv", d, od)
+        grad[subs] = g.reshape(s, k, u, 2)[:, :, which] + 2 * od
+    return obj, grad, hess

@@ -41,13 +41,12 @@ import numpy as np
 
 from ..core import FitOptions, SubjectData
 from ..fit.data import prepare_batch
-from ..fit.objective import Batch, evaluate
+from ..fit.objective import Batch, exact_hessian
 from ..fit.solver import minimise
-from ..fit.uncertainty import observed_hessian
 from . import quadrature
 from .covariates import Design
 from .gradient import GRAD_STEP, gradient_at_modes, outer_gradient
-from .quadrature import LOG_2PI, at_nodes, gauss_hermite, laplace, log_integral
+from .quadrature import LOG_2PI, at_nodes, gauss_hermite, laplace, log_integral, positive_definite
 
 __all__ = ["GRAD_STEP", "MarginalFit", "MarginalProblem", "gauss_hermite", "laplace",
            "log_integral"]
@@ -207,30 +206,29 @@ class MarginalProblem:
 
         def fun(th, idx):
             rows = bm if idx.size == bm.t.shape[0] else bm.rows(idx)
-            obj, grad, info, _ = evaluate(rows, th)
-            return obj, grad, info
+            obj, grad, hess, info = exact_hessian(rows, th)
+            exact = positive_definite(hess)
+            return obj, grad, np.where(exact[:, None, None], hess, info), exact
 
         theta0 = np.stack(starts, axis=1).reshape(n * m, 2)
         sol = minimise(fun, theta0, tol=1e-10, xtol=1e-5)
         obj = np.where(np.isfinite(sol.obj), sol.obj, np.inf).reshape(n, m)
         pick = np.arange(n) * m + np.argmin(obj, axis=1)
-        return self._polish(b, sol.theta[pick])
+        return self._polish(sol.theta[pick], sol.grad[pick], sol.info[pick],
+                            sol.extra[pick])
 
     @staticmethod
-    def _polish(b: Batch, theta: np.ndarray) -> np.ndarray:
-        """One Newton step on the observed Hessian: the scoring solver converges only
-        linearly, and the likelihood needs the modes to many digits (so that it is
-        smooth in the outer parameters)."""
-        _, grad, _, _ = evaluate(b, theta)
-        hess = observed_hessian(b, theta)
-        det = hess[:, 0, 0] * hess[:, 1, 1] - hess[:, 0, 1] ** 2
-        ok = (hess[:, 0, 0] > 0) & (det > 0)
-        if not ok.any():
+    def _polish(theta: np.ndarray, grad: np.ndarray, hess: np.ndarray,
+                exact: np.ndarray) -> np.ndarray:
+        """One more Newton step on the exact Hessian at the solver's end point (where it
+        is positive definite and the step small): the likelihood needs the modes to many
+        digits, so that it is smooth in the outer parameters."""
+        if not exact.any():
             return theta
         step = np.zeros_like(theta)
-        step[ok] = np.linalg.solve(hess[ok], grad[ok][..., None])[..., 0]
+        step[exact] = np.linalg.solve(hess[exact], grad[exact][..., None])[..., 0]
         small = np.abs(step).max(axis=1) < 0.1          # only a polish near the mode
-        return np.where((ok & small)[:, None], theta - step, theta)
+        return np.where((exact & small)[:, None], theta - step, theta)
 
     def subject_terms(self, psi: np.ndarray, *, update: bool = True, both: bool = False):
         """Every subject's ``-2 ln L_i``, conditional modes and posterior covariances."""
@@ -258,13 +256,9 @@ class MarginalProblem:
     def _at_modes(self, b: Batch, theta: np.ndarray, logdet_omega: np.ndarray):
         """The Laplace or quadrature ``-2 ln L`` of every row of ``b`` centred at
         ``theta`` (the conditional modes; no solve here), and the posterior covariance."""
-        g, _, info, _ = evaluate(b, theta)
-        hess = observed_hessian(b, theta)
-        half = 0.5 * hess
-        det = half[:, 0, 0] * half[:, 1, 1] - half[:, 0, 1] ** 2
-        bad = ~((half[:, 0, 0] > 0) & (det > 0))
-        if bad.any():                       # not positive definite: the scoring matrix
-            half[bad] = 0.5 * info[bad]
+        g, _, hess, info = exact_hessian(b, theta)
+        # where the Hessian is not positive definite: the scoring matrix
+        half = 0.5 * np.where(positive_definite(hess)[:, None, None], hess, info)
         post = np.linalg.inv(half)
         if self.nodes == 1:
             m2ll = laplace(g + logdet_omega + 2 * LOG_2PI, half)
@@ -307,32 +301,46 @@ class MarginalProblem:
         """Every subject under every outer parameter vector (row ``i P + j``): the batch,
         the typical values and ``ln|Omega|`` per row, and which vectors are usable."""
         n, p_count = self.n, len(psis)
-        mu = np.zeros((n, p_count, 2))
-        oinv = np.tile(np.eye(2), (p_count, 1, 1))
-        sa, sp, logdet = np.zeros(p_count), np.zeros(p_count), np.zeros(p_count)
-        usable = np.ones(p_count, bool)
-        for j, psi in enumerate(psis):
-            beta, omega, sa[j], sp[j] = self.unpack(psi)
-            m = self.design.means(beta)
-            if not np.all(np.isfinite(m)) or (self.error != "proportional" and sa[j] <= 0):
-                usable[j] = False
-                sa[j] = sp[j] = 1.0
-                continue
-            mu[:, j] = m
-            oinv[j] = np.linalg.inv(omega)
-            logdet[j] = np.linalg.slogdet(omega)[1]
+        mu, oinv, logdet, sa, sp = self.unpack_many(psis)
+        usable = np.isfinite(mu).all(axis=(0, 2))
+        if self.error != "proportional":
+            usable &= sa > 0
+        mu[:, ~usable] = 0.0
+        sa, sp = np.where(usable, sa, 1.0), np.where(usable, sp, 1.0)
         base = self._repeated(p_count)
         b = replace(base, kind="map", mu=mu.reshape(n * p_count, 2),
                     omega_inv=np.broadcast_to(oinv[None], (n, p_count, 2, 2)).reshape(-1, 2, 2),
                     sa=np.tile(sa, n), sp=np.tile(sp, n))
         return b, mu.reshape(-1, 2), np.tile(logdet, n), usable
 
+    def unpack_many(self, psis: np.ndarray):
+        """The typical values (N, V, 2), ``Omega^-1`` (V, 2, 2), ``ln|Omega|``, ``sa`` and
+        ``sp`` (V,) of several outer parameter vectors (V, p) at once; ``Omega = L L'``
+        with ``L = [[e^a, 0], [c, e^b]]``, so ``ln|Omega| = 2 (a + b)``."""
+        psis = np.atleast_2d(np.asarray(psis, float))
+        k = self.design.n_beta
+        mu = self.design.means_many(psis[:, :k])
+        l11, l22 = np.exp(psis[:, k]), np.exp(psis[:, k + 1])
+        l21 = np.zeros(len(psis)) if self.diagonal else psis[:, k + 2]
+        w11, w12, w22 = l11 * l11, l11 * l21, l21 * l21 + l22 * l22
+        det = (l11 * l22) ** 2
+        oinv = np.stack([np.stack([w22, -w12], -1), np.stack([-w12, w11], -1)], -2) \
+            / det[:, None, None]
+        logdet = 2.0 * (psis[:, k] + psis[:, k + 1])
+        e = psis[:, k + self.n_omega:]
+        zero = np.zeros(len(psis))
+        sa = np.exp(e[:, 0]) if self.error in ("additive", "combined") else zero
+        sp = np.exp(e[:, -1]) if self.error in ("proportional", "combined") else zero
+        return mu, oinv, logdet, sa, sp
+
     def _repeated(self, count: int) -> Batch:
-        """The subjects' batch with every row repeated ``count`` times (kept for reuse)."""
+        """The subjects' batch with every row repeated ``count`` times (the last few
+        kept for reuse)."""
         cache = self.__dict__.setdefault("_repeat_cache", {})
         if count not in cache:
-            cache.clear()
-            cache[count] = self.batch.repeat(count)
+            if len(cache) >= 4:
+                cache.pop(next(iter(cache)))
+            cache[count] = self.batch.repeat(count) if count > 1 else self.batch
         return cache[count]
 
     def objective(self, psi: np.ndarray, *, update: bool = False) -> float:
