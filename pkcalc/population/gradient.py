@@ -153,8 +153,13 @@ def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logde
     dp = DPSI_H_STEP
     chol = np.linalg.cholesky(2.0 * inv)                                  # (n, 2, 2)
     grid, lw = quadrature.gauss_hermite(self.nodes, 2)
-    nodes = theta[:, None, :] + math.sqrt(2.0) * np.einsum("nij,kj->nki", chol, grid)
-    obj, grad, _ = _reused(self, b_all, nodes, v)       # (n, K, v), (n, K, v, 2)
+    kept = self.__dict__.get("_nodes_kept")
+    if kept is not None and kept[0] is theta:   # the objective's nodes at this point
+        nodes, given = kept[1], kept[2]
+    else:
+        nodes, given = theta[:, None, :] + math.sqrt(2.0) * np.einsum(
+            "nij,kj->nki", chol, grid), None
+    obj, grad, _ = _reused(self, b_all, nodes, v, given=given)   # (n, K, v), (n, K, v, 2)
     h = obj + logdet[:, None, :]
     terms = lw[None, :] + (grid**2).sum(axis=1)[None, :] - 0.5 * h[:, :, 0]
     weights = np.exp(terms - terms.max(axis=1, keepdims=True))
@@ -172,7 +177,8 @@ def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logde
     d_h = d_h_psi + np.einsum("nka,nkpa->nkp", grad[:, :, 0], move)
     return (d_logdet + np.einsum("nk,nkp->np", weights, d_h)).sum(axis=0)
 
-def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = False):
+def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = False,
+            given: tuple[np.ndarray, np.ndarray] | None = None):
     """The inner objective and its gradient (and, with ``hessian``, its exact Hessian)
     at points ``pts`` (n, K, 2) of every subject under each of the ``v`` outer vectors
     of ``b_all`` (rows ``i v + j``).
@@ -181,7 +187,8 @@ def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = Fals
     is evaluated once per subject and point, the levels' part once per distinct
     residual error among the vectors (most shifted vectors move a typical value or
     ``Omega`` only), and the prior part, which needs no model, per vector; in blocks
-    of subjects of at most :data:`quadrature.CELL_BLOCK` cells."""
+    of subjects of at most :data:`quadrature.CELL_BLOCK` cells.  ``given``: the model's
+    predictions at ``pts`` (rows ``i K + k``), when the objective kept them."""
     n, k = pts.shape[:2]
     errors = np.stack([b_all.sa[:v], b_all.sp[:v]], axis=1)
     distinct, which = np.unique(errors, axis=0, return_inverse=True)
@@ -202,20 +209,25 @@ def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = Fals
         subs = np.arange(a, min(a + per, n))
         s = subs.size
         flat = pts[subs].reshape(-1, 2)                                     # (s k, 2)
-        pred = structural(self.batch.rows(np.repeat(subs, k)), flat, second=hessian)
+        if given is None:
+            pred = structural(self.batch.rows(np.repeat(subs, k)), flat, second=hessian)
+        else:
+            span = slice(a * k, (a + s) * k)
+            pred = (given[0][span], given[1][:, span])
         rep = np.repeat(np.arange(s * k), u)                    # each point x u errors
         rows = replace(levels.rows(np.repeat(subs, k * u)),
                        sa=np.tile(distinct[:, 0], s * k), sp=np.tile(distinct[:, 1], s * k),
                        mu=np.zeros((s * k * u, 2)),
                        omega_inv=np.broadcast_to(zero_prior, (s * k * u, 2, 2)))
-        given = (pred[0][rep], *(d[:, rep] for d in pred[1:]))
+        at_rows = (pred[0][rep], *(d[:, rep] for d in pred[1:]))
         if hessian:
-            o, g, h, _ = exact_hessian(rows, flat[rep], predictions=given)
+            o, g, h, _ = exact_hessian(rows, flat[rep], predictions=at_rows)
             hess[subs] = h.reshape(s, k, u, 2, 2)[:, :, which] + 2 * oinv
         else:
-            o, g, _, _ = evaluate(rows, flat[rep], predictions=given)
+            o, g, _, _ = evaluate(rows, flat[rep], predictions=at_rows)
         d = pts[subs][:, :, None, :] - mu_all[subs][:, None, :, :]           # (s, k, v, 2)
-        od = np.einsum("vab,skvb->skva", oinv, d)
+        od = np.stack([oinv[:, 0, 0] * d[..., 0] + oinv[:, 0, 1] * d[..., 1],
+                       oinv[:, 1, 0] * d[..., 0] + oinv[:, 1, 1] * d[..., 1]], axis=-1)
         obj[subs] = o.reshape(s, k, u)[:, :, which] + np.einsum("skva,skva->skv", d, od)
         grad[subs] = g.reshape(s, k, u, 2)[:, :, which] + 2 * od
     return obj, grad, hess

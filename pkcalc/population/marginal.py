@@ -239,23 +239,26 @@ class MarginalProblem:
             return np.full(self.n, np.inf), None, None
         b = self._map_batch(mu, omega, sa, sp)
         logdet_omega = np.full(self.n, float(np.linalg.slogdet(omega)[1]))
-        m2ll, theta, post = self._terms(b, mu, logdet_omega, both, self.theta)
+        m2ll, theta, post = self._terms(b, mu, logdet_omega, both, self.theta, keep=True)
         self._last = (np.array(psi, float), theta, m2ll)
         if update:
             self.theta = theta
         return m2ll, theta, post
 
     def _terms(self, b: Batch, mu: np.ndarray, logdet_omega: np.ndarray, both: bool,
-               warm: np.ndarray | None):
+               warm: np.ndarray | None, *, keep: bool = False):
         """``-2 ln L`` of every row of ``b`` (a subject under one outer parameter vector),
         with its conditional mode and posterior covariance."""
         theta = self._modes(b, mu, both, warm)
-        m2ll, post = self._at_modes(b, theta, logdet_omega)
+        m2ll, post = self._at_modes(b, theta, logdet_omega, keep=keep)
         return m2ll, theta, post
 
-    def _at_modes(self, b: Batch, theta: np.ndarray, logdet_omega: np.ndarray):
+    def _at_modes(self, b: Batch, theta: np.ndarray, logdet_omega: np.ndarray, *,
+                  keep: bool = False):
         """The Laplace or quadrature ``-2 ln L`` of every row of ``b`` centred at
-        ``theta`` (the conditional modes; no solve here), and the posterior covariance."""
+        ``theta`` (the conditional modes; no solve here), and the posterior covariance.
+        With ``keep`` (the rows are the subjects under one vector) the quadrature nodes
+        and the model's predictions there are kept for the gradient at that point."""
         g, _, hess, info = exact_hessian(b, theta)
         # where the Hessian is not positive definite: the scoring matrix
         half = 0.5 * np.where(positive_definite(hess)[:, None, None], hess, info)
@@ -266,7 +269,10 @@ class MarginalProblem:
             chol = np.linalg.cholesky(post)
             pts = theta[:, None, :] + math.sqrt(2.0) * np.einsum("bij,kj->bki", chol,
                                                                    self._grid)
-            h_nodes = at_nodes(b, pts) + logdet_omega[:, None] + 2 * LOG_2PI
+            h_nodes, kept = at_nodes(b, pts, keep=True) if keep else (at_nodes(b, pts), None)
+            h_nodes = h_nodes + logdet_omega[:, None] + 2 * LOG_2PI
+            if keep:
+                self._nodes_kept = None if kept is None else (theta, pts, kept)
             m2ll = log_integral(h_nodes, chol, self.nodes)
         return m2ll, post
 

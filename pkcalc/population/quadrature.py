@@ -17,7 +17,7 @@ import math
 
 import numpy as np
 
-from ..fit.objective import Batch, evaluate
+from ..fit.objective import Batch, evaluate, structural
 
 __all__ = ["CELL_BLOCK", "LOG_2PI", "at_nodes", "gauss_hermite", "laplace", "log_integral",
            "positive_definite"]
@@ -26,6 +26,9 @@ LOG_2PI = math.log(2 * math.pi)
 #: Largest number of level x dose cells of one vectorised evaluation (0.4 MB per
 #: temporary array: larger ones are mapped and unmapped by the allocator on every call).
 CELL_BLOCK = 50_000
+#: Largest number of predictions kept from the objective's nodes for the gradient at
+#: the same point (32 MB); beyond it the gradient evaluates the model again.
+KEEP_CELLS = 4_000_000
 
 
 def positive_definite(m: np.ndarray) -> np.ndarray:
@@ -34,20 +37,32 @@ def positive_definite(m: np.ndarray) -> np.ndarray:
     return (m[..., 0, 0] > 0) & (det > 0)
 
 
-def at_nodes(b: Batch, pts: np.ndarray) -> np.ndarray:
+def at_nodes(b: Batch, pts: np.ndarray, *, keep: bool = False):
     """The inner objective of row ``r`` of ``b`` at each of its node points ``pts[r]``
     (shape (R, K, q)), evaluated in blocks of at most :data:`CELL_BLOCK` cells so the
     temporaries stay small (large ones are mapped and unmapped by the allocator on
-    every call: system time, not arithmetic)."""
+    every call: system time, not arithmetic).
+
+    With ``keep``, also the model's predictions at the nodes, ``(f (R K, N), J (2, R K,
+    N))`` -- for the outer gradient at the same point -- when they take at most
+    :data:`KEEP_CELLS` numbers (else None)."""
     r, k = pts.shape[:2]
     flat = pts.reshape(r * k, -1)
     cells = b.t.shape[1] * max(b.start.shape[1], 1)
     per = max(1, CELL_BLOCK // cells)
     out = np.empty(r * k)
+    kept = None
+    if keep and 3 * r * k * b.t.shape[1] <= KEEP_CELLS:
+        kept = (np.empty((r * k, b.t.shape[1])), np.empty((2, r * k, b.t.shape[1])))
     for a in range(0, r * k, per):
         idx = np.arange(a, min(a + per, r * k))
-        out[idx] = evaluate(b.rows(idx // k), flat[idx])[0]
-    return out.reshape(r, k)
+        rows = b.rows(idx // k)
+        pred = structural(rows, flat[idx])
+        out[idx] = evaluate(rows, flat[idx], predictions=pred)[0]
+        if kept is not None:
+            kept[0][idx], kept[1][:, idx] = pred
+    out = out.reshape(r, k)
+    return (out, kept) if keep else out
 
 
 def gauss_hermite(nodes: int, q: int = 2) -> tuple[np.ndarray, np.ndarray]:
