@@ -275,6 +275,15 @@ def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None 
         Predictions.
     """
     f, jac = structural(batch, theta) if predictions is None else predictions
+    # a level predicted at about 0 under proportional error makes the variance tiny and
+    # the objective infinite: such a trial point is rejected by the solvers, so the
+    # overflow on the way there is not a warning for the user
+    with np.errstate(over="ignore", invalid="ignore"):
+        return _evaluate(batch, theta, f, jac, sigma_floor)
+
+
+def _evaluate(batch: Batch, theta: np.ndarray, f: np.ndarray, jac: np.ndarray,
+              sigma_floor: np.ndarray | None):
     if batch.kind == "least_squares":
         r = np.where(batch.obs, batch.y - f, 0.0)
         wr = batch.w * r
@@ -366,6 +375,12 @@ def exact_hessian(batch: Batch, theta: np.ndarray, *,
     f, jac, jac2 = structural(batch, theta, second=True) if predictions is None \
         else predictions
     obj, grad, info, _ = evaluate(batch, theta, predictions=(f, jac))
+    with np.errstate(over="ignore", invalid="ignore"):   # see evaluate
+        hess = _exact_hessian(batch, f, jac, jac2)
+    return obj, grad, hess, info
+
+
+def _exact_hessian(batch: Batch, f, jac, jac2) -> np.ndarray:
     sa2, sp2 = batch.sa[:, None] ** 2, batch.sp[:, None] ** 2
     o, c = batch.obs, batch.cens
     var = np.where(o | c, np.maximum(sa2 + sp2 * f * f, 1e-300), 1.0)
@@ -391,4 +406,4 @@ def exact_hessian(batch: Batch, theta: np.ndarray, *,
     hess[:, 1, 0] += cross
     hess[:, 1, 1] += _dot(first, jac2[2])
     hess += 2 * batch.omega_inv
-    return obj, grad, hess, info
+    return hess

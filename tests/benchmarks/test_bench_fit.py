@@ -77,11 +77,13 @@ def test_bench_fits_per_second_and_curve_fit_ratio():
     ratio = t_cf / t_ours
     err = np.median(np.abs(np.array([r.clearance for r in res]) / truth[:, 0] - 1))
     print(f"\n[bench] pkcalc fit: {len(subs)} subjects in {t_ours:.3f} s (best of 3) = "
-          f"{rate:.0f} fits/s (target >= 200); converged {ours_ok}/{len(subs)}; "
+          f"{rate:.0f} fits/s (target >= 30,000: {'met' if rate >= 30_000 else 'NOT met'}); "
+          f"converged {ours_ok}/{len(subs)}; "
           f"median |CL error| {err:.2%}")
     print(f"[bench] scipy curve_fit (FD Jacobian, fixed start): {t_cf:.3f} s (best of 2), "
           f"converged "
-          f"{cf_ok}/{len(subs)}; ratio curve_fit / pkcalc = {ratio:.1f} (target >= 5)")
-    assert rate >= 200
+          f"{cf_ok}/{len(subs)}; ratio curve_fit / pkcalc = {ratio:.1f} (target >= 10: "
+          f"{'met' if ratio >= 10 else 'NOT met'})")
+    assert rate >= 200          # floors of the first release; the targets above are printed
     assert ratio >= 5
     assert ours_ok >= cf_ok
