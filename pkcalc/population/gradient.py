@@ -7,7 +7,7 @@ objective ``h`` in ``theta``, ``H`` its Jacobian).  :func:`gradient_at_modes` ta
 derivative at the modes (envelope theorem for ``h``, the trace formula for ``ln|H|``,
 the derivative of the Cholesky factor for the quadrature nodes), evaluating the model
 once per subject and point and reusing the predictions for every shifted ``psi``;
-where a Hessian is not positive definite, :func:`outer_gradient` falls back to central
+where a Hessian is not positive definite, :func:`tangent_gradient` gives central
 differences along the tangent.  Both are checked against central differences of the
 objective with every mode solved again (``tests/test_population_marginal.py``).
 The functions take a :class:`~pkcalc.population.marginal.MarginalProblem`.
@@ -24,7 +24,7 @@ from ..fit.objective import Batch, evaluate, exact_hessian, structural
 from . import quadrature
 from .quadrature import positive_definite
 
-__all__ = ["GRAD_STEP", "gradient_at_modes", "outer_gradient"]
+__all__ = ["GRAD_STEP", "gradient_at_modes", "tangent_gradient"]
 
 #: Central-difference step (log-parameters) of the outer gradient.
 GRAD_STEP = 1e-4
@@ -36,40 +36,35 @@ THIRD_STEP = 1e-4
 DPSI_H_STEP = 1e-4
 
 
-def outer_gradient(self, psi: np.ndarray) -> np.ndarray:
-    """Gradient of the summed ``-2 ln L`` by the implicit function theorem.
+def tangent_gradient(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray:
+    """Every subject's gradient row (N, p) of ``-2 ln L`` by central differences along
+    the tangent of its mode, for where :func:`gradient_at_modes` does not apply (a
+    Hessian that is not positive definite).
 
     Each subject's term is ``Q(theta^(psi), psi)``: the Laplace (or quadrature)
     formula centred at the conditional mode.  The mode moves with ``psi`` along
     ``d theta^/d psi_j = -H^-1 d G / d psi_j`` (``G`` the analytic gradient of ``h``
-    in ``theta``, ``H`` its Jacobian); the total derivative is the central
-    difference of ``Q`` along that tangent, ``(theta^ +- e s_j, psi +- e e_j)``.
-    No mode is solved again: every subject under every shifted vector is one
-    row of one vectorised evaluation.  (:meth:`MarginalProblem.gradient_by_differences` is the
+    in ``theta``, ``H`` its Jacobian; no move where ``H`` is not positive definite);
+    the derivative is the central difference of ``Q`` along that tangent,
+    ``(theta^ +- e s_j, psi +- e e_j)``.  No mode is solved again: every subject under
+    every shifted vector is one row of one vectorised evaluation, the components in
+    blocks (bounded memory).  (:meth:`MarginalProblem.gradient_by_differences` is the
     plain finite-difference check.)"""
     psi = np.asarray(psi, float)
-    theta = self._modes_at(psi)
-    if theta is None:
-        return self.gradient_by_differences(psi)
     p = psi.size
-    out = gradient_at_modes(self, psi, theta)
-    if out is not None:
-        self.evaluations += 2 * p
-        return out
-    # a Hessian that is not positive definite somewhere: the tangent differences
     b0, _, _, _ = self._rows(psi[None])
     _, _, hess, _ = exact_hessian(b0, theta)
     pd = positive_definite(hess)
-    out = np.zeros(p)
+    out = np.zeros((self.n, p))
     per = self._vectors_per_block()
-    for j0 in range(0, p, per):                 # components in blocks (bounded memory)
+    for j0 in range(0, p, per):
         js = np.arange(j0, min(j0 + per, p))
-        out[js] = _tangent_part(self, psi, theta, hess, pd, js)
-    self.evaluations += 2 * p
+        out[:, js] = _tangent_part(self, psi, theta, hess, pd, js)
     return out
 
+
 def _tangent_part(self, psi, theta, hess, pd, js: np.ndarray) -> np.ndarray:
-    """Components ``js`` of :meth:`gradient`."""
+    """Components ``js`` of :func:`tangent_gradient`, every subject (N, len(js))."""
     n, m = self.n, js.size
     e = np.eye(psi.size)[js]
     # d G / d psi_j at the fixed modes
@@ -85,12 +80,15 @@ def _tangent_part(self, psi, theta, hess, pd, js: np.ndarray) -> np.ndarray:
                                                   psi - GRAD_STEP * e]))
     centres = theta[:, None, :] + GRAD_STEP * np.concatenate([tangent, -tangent], axis=1)
     m2ll, _ = self._at_modes(b, centres.reshape(-1, 2), logdet)
-    total = m2ll.reshape(n, 2 * m).sum(axis=0)
-    up, dn = total[:m], total[m:]
-    good = ok[:m] & ok[m:] & ok_s[:m] & ok_s[m:] & np.isfinite(up) & np.isfinite(dn)
+    m2ll = m2ll.reshape(n, 2 * m)
+    up, dn = m2ll[:, :m], m2ll[:, m:]
+    good = (ok[:m] & ok[m:] & ok_s[:m] & ok_s[m:])[None, :] & np.isfinite(up) & \
+        np.isfinite(dn)
     return np.where(good, (up - dn) / (2 * GRAD_STEP), 0.0)
 
-def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray | None:
+
+def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray, *,
+                      per_subject: bool = False) -> np.ndarray | None:
     """The gradient from derivatives at the modes (None where it does not apply: a
     Hessian that is not positive definite, an unusable shifted vector); Laplace here,
     quadrature in :func:`_quadrature_part`.
@@ -134,11 +132,13 @@ def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray | 
     if self.nodes == 1:
         h_mode = obj + logdet                          # h at the mode (+ const)
         d_env = (h_mode[:, 1:p + 1] - h_mode[:, p + 1:]) / (2 * dp)     # (n, p)
-        out = (d_env + d_logdet).sum(axis=0)
+        out = d_env + d_logdet
     else:
         out = _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet,
                                logdet, v, p)
-    return out if np.all(np.isfinite(out)) else None
+    if not np.all(np.isfinite(out)):
+        return None
+    return out if per_subject else out.sum(axis=0)
 
 
 def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logdet,
@@ -175,7 +175,7 @@ def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logde
     move = tangent[:, None, :, :] + math.sqrt(2.0) * np.einsum(
         "npab,kb->nkpa", d_b, grid)                                       # (n, K, p, 2)
     d_h = d_h_psi + np.einsum("nka,nkpa->nkp", grad[:, :, 0], move)
-    return (d_logdet + np.einsum("nk,nkp->np", weights, d_h)).sum(axis=0)
+    return d_logdet + np.einsum("nk,nkp->np", weights, d_h)
 
 def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = False,
             given: tuple[np.ndarray, np.ndarray] | None = None):

@@ -45,7 +45,7 @@ from ..fit.objective import Batch, exact_hessian
 from ..fit.solver import minimise
 from . import quadrature
 from .covariates import Design
-from .gradient import GRAD_STEP, gradient_at_modes, outer_gradient
+from .gradient import GRAD_STEP, gradient_at_modes, tangent_gradient
 from .quadrature import LOG_2PI, at_nodes, gauss_hermite, laplace, log_integral, positive_definite
 
 __all__ = ["GRAD_STEP", "MarginalFit", "MarginalProblem", "gauss_hermite", "laplace",
@@ -99,9 +99,12 @@ class MarginalProblem:
     """
 
     def __init__(self, subjects: list[SubjectData], design: Design, *, error_model: str,
-                 blq: str, nodes: int = 1, diagonal: bool = False) -> None:
-        batch, _, n_used = prepare_batch(subjects, FitOptions(error_model=error_model,
-                                                              blq=blq))
+                 blq: str, nodes: int = 1, diagonal: bool = False,
+                 batch: Batch | None = None) -> None:
+        if batch is None:
+            batch, _, _ = prepare_batch(subjects, FitOptions(error_model=error_model,
+                                                             blq=blq))
+        n_used = batch.n_obs
         self.batch = batch
         self.subjects = subjects
         self.design = design
@@ -278,15 +281,22 @@ class MarginalProblem:
 
     def objectives(self, psis: np.ndarray) -> np.ndarray:
         """The summed ``-2 ln L`` at several outer parameter vectors, from the current
-        modes (not updated): every subject under every vector is one row of a single
-        vectorised inner solve (the rows stay independent problems), in blocks of
+        modes (not updated); ``inf`` where a vector cannot be used."""
+        parts = self.objective_parts(psis)
+        total = parts.sum(axis=0)
+        return np.where(np.isfinite(total), total, np.inf)
+
+    def objective_parts(self, psis: np.ndarray) -> np.ndarray:
+        """Every subject's ``-2 ln L`` (N, P) at several outer parameter vectors, from the
+        current modes (not updated): every subject under every vector is one row of a
+        single vectorised inner solve (the rows stay independent problems), in blocks of
         vectors that keep each evaluation within ``quadrature.CELL_BLOCK`` cells."""
         psis = np.atleast_2d(np.asarray(psis, float))
         if self.theta is None:
-            return np.array([self.objective(p) for p in psis])
+            return np.stack([self.subject_terms(p, update=False)[0] for p in psis], axis=1)
         per = self._vectors_per_block()
-        return np.concatenate([self._objectives(psis[i:i + per])
-                               for i in range(0, len(psis), per)])
+        return np.concatenate([self._objective_parts(psis[i:i + per])
+                               for i in range(0, len(psis), per)], axis=1)
 
     def _vectors_per_block(self) -> int:
         """Outer parameter vectors whose rows (every subject, x 2 for the Hessian's
@@ -294,14 +304,14 @@ class MarginalProblem:
         cells = self.batch.t.shape[1] * max(self.batch.start.shape[1], 1)
         return max(1, quadrature.CELL_BLOCK // (2 * self.n * cells))
 
-    def _objectives(self, psis: np.ndarray) -> np.ndarray:
+    def _objective_parts(self, psis: np.ndarray) -> np.ndarray:
         n, p_count = self.n, len(psis)
         self.evaluations += p_count
         b, mu, logdet, usable = self._rows(psis)
         warm = np.repeat(self.theta, p_count, axis=0)
         m2ll, _, _ = self._terms(b, mu, logdet, False, warm)
-        total = m2ll.reshape(n, p_count).sum(axis=0)
-        return np.where(usable & np.isfinite(total), total, np.inf)
+        parts = m2ll.reshape(n, p_count)
+        return np.where(usable[None, :], parts, np.inf)
 
     def _rows(self, psis: np.ndarray):
         """Every subject under every outer parameter vector (row ``i P + j``): the batch,
@@ -355,9 +365,17 @@ class MarginalProblem:
         return total if math.isfinite(total) else math.inf
 
     def gradient(self, psi: np.ndarray) -> np.ndarray:
-        """Gradient of the summed ``-2 ln L`` by the implicit function theorem
-        (:func:`pkcalc.population.gradient.outer_gradient`)."""
-        return outer_gradient(self, psi)
+        """Gradient of the summed ``-2 ln L`` by the implicit function theorem: the sum of
+        :meth:`gradient_parts` (or, where a subject's Hessian is not positive definite,
+        of :meth:`tangent_parts`) over the subjects in their order."""
+        psi = np.asarray(psi, float)
+        parts = self.gradient_parts(psi)
+        if parts is None:
+            if self._modes_at(psi) is None:            # no modes: the objective is infinite
+                return self.gradient_by_differences(psi)
+            parts = self.tangent_parts(psi)
+        self.evaluations += 2 * psi.size
+        return parts.sum(axis=0)
 
     def gradient_by_differences(self, psi: np.ndarray) -> np.ndarray:
         """Central differences of the objective, every mode solved again (from the
@@ -370,6 +388,71 @@ class MarginalProblem:
         ok = np.isfinite(up) & np.isfinite(dn)
         return np.where(ok, (up - dn) / (2 * GRAD_STEP), 0.0)
 
+    def value_and_gradient(self, psi: np.ndarray) -> tuple[float, np.ndarray]:
+        """The summed ``-2 ln L`` and its gradient at ``psi`` (the modes solved once)."""
+        psi = np.asarray(psi, float)
+        m2ll, parts = self.value_and_gradient_parts(psi)
+        total = float(np.sum(m2ll))
+        if not math.isfinite(total):
+            return math.inf, np.zeros(psi.size)
+        if parts is None:
+            parts = self.tangent_parts(psi)
+        self.evaluations += 2 * psi.size
+        return total, parts.sum(axis=0)
+
+    # -- what a shard of the subjects answers (pkcalc.population.shards) --------------
+    def value_and_gradient_parts(self, psi: np.ndarray):
+        """Every subject's ``-2 ln L`` and gradient row at ``psi`` (the gradient None where
+        :meth:`gradient_parts` does not apply); the modes are kept for :meth:`accept`."""
+        m2ll, _, _ = self.subject_terms(psi, update=False)
+        if not np.all(np.isfinite(m2ll)):
+            return m2ll, np.zeros((self.n, psi.size))
+        return m2ll, self.gradient_parts(psi)
+
+    def gradient_parts(self, psi: np.ndarray) -> np.ndarray | None:
+        """Every subject's gradient row (N, p) from derivatives at its mode
+        (:func:`~pkcalc.population.gradient.gradient_at_modes`); None where a Hessian is
+        not positive definite or a shifted vector cannot be used."""
+        theta = self._modes_at(psi)
+        if theta is None:
+            return None
+        return gradient_at_modes(self, psi, theta, per_subject=True)
+
+    def tangent_parts(self, psi: np.ndarray) -> np.ndarray:
+        """Every subject's gradient row by central differences along the tangent of its
+        mode (:func:`~pkcalc.population.gradient.tangent_gradient`)."""
+        theta = self._modes_at(psi)
+        if theta is None:                  # the objective is infinite at psi: no direction
+            return np.zeros((self.n, psi.size))
+        return tangent_gradient(self, psi, theta)
+
+    def accept(self, psi: np.ndarray) -> bool:
+        """Move the warm start to the modes of the last evaluation when it was at ``psi``
+        (the optimiser's accepted point); False when there is none."""
+        last = self.__dict__.get("_last")
+        if last is not None and np.array_equal(last[0], psi) and last[1] is not None:
+            self.theta = last[1]
+            return True
+        return False
+
+    def hessian_gradient_parts(self, psi: np.ndarray) -> np.ndarray | None:
+        """Every subject's gradient rows at ``psi +- HESS_GRAD_STEP e_j`` (2p, N, p), the
+        modes of the shifted points solved together from the current modes; None where
+        the gradient at the modes does not apply."""
+        if self.theta is None:
+            return None
+        p = psi.size
+        h = HESS_GRAD_STEP
+        points = np.concatenate([psi + h * np.eye(p), psi - h * np.eye(p)])
+        out = []
+        for x, m in zip(points, self._modes_many(points), strict=True):
+            g = None if m is None else gradient_at_modes(self, x, m, per_subject=True)
+            if g is None:
+                return None
+            out.append(g)
+        return np.array(out)
+
+    # ------------------------------------------------------------------------------------
     def _modes_at(self, psi: np.ndarray) -> np.ndarray | None:
         """The conditional modes at ``psi``: those of the last evaluation when it was at
         ``psi`` (the optimiser asks for the value, then the gradient), else solved."""
@@ -381,21 +464,16 @@ class MarginalProblem:
 
     def hessian(self, psi: np.ndarray) -> np.ndarray:
         """Hessian of the summed ``-2 ln L``: central differences of the gradient at the
-        modes (:func:`~pkcalc.population.gradient.gradient_at_modes`; the modes of the
-        ``2 p`` shifted points solved together), or, where that gradient does not apply,
-        second central differences of the objective (:meth:`hessian_by_differences`)."""
+        modes (:meth:`hessian_gradient_parts`, summed over the subjects in their order),
+        or, where that gradient does not apply, second central differences of the
+        objective (:meth:`hessian_by_differences`)."""
         psi = np.asarray(psi, float)
         p = psi.size
-        if self.theta is not None:
-            h = HESS_GRAD_STEP
-            points = np.concatenate([psi + h * np.eye(p), psi - h * np.eye(p)])
-            modes = self._modes_many(points)
-            grads = [None if m is None else gradient_at_modes(self, x, m)
-                     for x, m in zip(points, modes, strict=True)]
-            if all(g is not None for g in grads):
-                g = np.array(grads)
-                hess = (g[:p] - g[p:]).T / (2 * h)
-                return 0.5 * (hess + hess.T)
+        parts = self.hessian_gradient_parts(psi)
+        if parts is not None:
+            g = parts.sum(axis=1)
+            hess = (g[:p] - g[p:]).T / (2 * HESS_GRAD_STEP)
+            return 0.5 * (hess + hess.T)
         return self.hessian_by_differences(psi)
 
     def _modes_many(self, psis: np.ndarray) -> list[np.ndarray | None]:
@@ -445,19 +523,18 @@ class MarginalProblem:
         state = {"it": 0}
         history: list[float] = []
 
-        def fun(psi):
-            return self.objective(psi, update=False)
+        seen: dict[str, tuple[np.ndarray, float]] = {}
 
-        def jac(psi):
-            return self.gradient(psi)
+        def fun(psi):
+            value, grad = self.value_and_gradient(psi)
+            seen["last"] = (np.array(psi, float), value)
+            return value, grad
 
         def callback(psi):
             state["it"] += 1
-            last = self.__dict__.get("_last")
-            if last is not None and np.array_equal(last[0], psi) and last[1] is not None:
-                self.theta = last[1]                     # move the warm start along
-                total = float(np.sum(last[2]))
-                value = total if math.isfinite(total) else math.inf
+            last = seen.get("last")
+            if last is not None and np.array_equal(last[0], psi) and self.accept(psi):
+                value = last[1]                         # the warm start moved along
             else:
                 value = self.objective(psi, update=True)
             history.append(float(value))
@@ -471,7 +548,7 @@ class MarginalProblem:
         lower, upper = self.lower_bounds(), self.upper_bounds()
         psi0 = np.clip(psi0, lower + 1e-3, upper - 1e-3)
         self.subject_terms(psi0, update=True, both=True)
-        res = minimize(fun, psi0, jac=jac, method="L-BFGS-B", callback=callback,
+        res = minimize(fun, psi0, jac=True, method="L-BFGS-B", callback=callback,
                        bounds=[(lo, None if not math.isfinite(hi) else hi)
                                for lo, hi in zip(lower, upper, strict=True)],
                        options={"gtol": 5e-3, "ftol": 1e-12, "maxiter": max_iter})
