@@ -626,8 +626,10 @@ def population_study(study=None, options: PopulationOptions | None = None, *,
         Receives a line of text per iteration or bootstrap replicate (the command
         line prints them on a terminal).
     engine : Engine, optional
-        Where the bootstrap replicates run (:mod:`pkcalc.engines`; default this
-        process).  The result does not depend on it.
+        Where the work runs (:mod:`pkcalc.engines`; default this process): with the
+        marginal method and a Dask engine, each worker holds a share of the subjects
+        for every estimate; bootstrap replicates run on the engine (local worker
+        processes or Dask).  The result does not depend on it.
     **overrides
         The ``[population]`` keys (docs/formats.md, "Population options"):
 
@@ -670,7 +672,7 @@ def population_study(study=None, options: PopulationOptions | None = None, *,
     o = _options(options, PopulationOptions, "population") or \
         study_population_options(study, overrides)
     try:
-        result = population_estimate(study.subjects, o, progress)
+        result = population_estimate(study.subjects, o, progress, engine)
     except ValueError as exc:
         where = (study.subjects_file or "the subjects table") \
             if isinstance(exc, CovariateError) else (study.files[0] if study.files else None)

@@ -30,7 +30,7 @@ from scipy.special import log_ndtr
 from .. import model
 
 __all__ = ["Batch", "build_batch", "evaluate", "exact_hessian", "n_error_params",
-           "profiled_sigma", "structural"]
+           "positive_definite", "profiled_sigma", "structural"]
 
 LOG_2PI = math.log(2 * math.pi)
 
@@ -336,6 +336,14 @@ def _evaluate(batch: Batch, theta: np.ndarray, f: np.ndarray, jac: np.ndarray,
         grad[:, :2] += 2 * od
         info[:, :2, :2] += 2 * batch.omega_inv
     return obj, grad, info, f
+
+
+def positive_definite(m: np.ndarray) -> np.ndarray:
+    """Which of the 2 x 2 matrices ``m`` (..., 2, 2) are positive definite (False for a
+    matrix with a non-finite entry)."""
+    with np.errstate(invalid="ignore", over="ignore"):
+        det = m[..., 0, 0] * m[..., 1, 1] - m[..., 0, 1] * m[..., 1, 0]
+        return (m[..., 0, 0] > 0) & (det > 0)
 
 
 def exact_hessian(batch: Batch, theta: np.ndarray, *,

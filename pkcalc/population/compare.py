@@ -24,6 +24,7 @@ import numpy as np
 from ..core import Effect, PopulationModel, PopulationOptions, SubjectData
 from .estimate import marginal_estimate, model_effects
 from .result import PopulationResult
+from .shards import WorkerPool
 
 __all__ = ["ModelComparison", "compare_models", "stepwise"]
 
@@ -195,11 +196,12 @@ def _nearest_nested(rows: list[ModelRow], row: ModelRow) -> ModelRow | None:
     return max(nested, key=lambda r: r.result.n_parameters, default=None)
 
 
-def _estimate(subjects, options, pm: PopulationModel, progress, start) -> ModelRow:
+def _estimate(subjects, options, pm: PopulationModel, progress, start, pool=None
+              ) -> ModelRow:
     row = ModelRow(pm.name, pm.effects)
     try:
         row.result = marginal_estimate(subjects, options, pm, progress=progress, start=start,
-                                       final_fits=False)
+                                       final_fits=False, pool=pool)
     except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
         row.error = str(exc)
     return row
@@ -207,9 +209,11 @@ def _estimate(subjects, options, pm: PopulationModel, progress, start) -> ModelR
 
 def compare_models(subjects: list[SubjectData], options: PopulationOptions,
                    models: tuple[PopulationModel, ...], *,
-                   progress: Callable[[str], None] | None = None) -> ModelComparison:
+                   progress: Callable[[str], None] | None = None,
+                   pool: WorkerPool | None = None) -> ModelComparison:
     """Estimate every model; likelihood-ratio tests against the first (the base).  Every
-    model also carries the effects of ``options`` (its body-weight model and effects)."""
+    model also carries the effects of ``options`` (its body-weight model and effects).
+    ``pool``: Dask workers holding the subjects (:mod:`pkcalc.population.shards`)."""
     common = model_effects(options)
     keys = {(e.column, e.parameter) for e in common}
     models = tuple(PopulationModel(pm.name, common + tuple(
@@ -217,7 +221,7 @@ def compare_models(subjects: list[SubjectData], options: PopulationOptions,
     rows: list[ModelRow] = []
     start = None
     for pm in models:
-        row = _estimate(subjects, options, pm, progress, start)
+        row = _estimate(subjects, options, pm, progress, start, pool)
         rows.append(row)
         if start is None and row.result is not None:
             start = row.result          # later models start from the base estimate
@@ -231,12 +235,14 @@ def compare_models(subjects: list[SubjectData], options: PopulationOptions,
 
 def stepwise(subjects: list[SubjectData], options: PopulationOptions,
              candidates: tuple[Effect, ...], *,
-             progress: Callable[[str], None] | None = None) -> ModelComparison:
+             progress: Callable[[str], None] | None = None,
+             pool: WorkerPool | None = None) -> ModelComparison:
     """Forward inclusion at ``options.add_if_p_below``, then backward elimination at
-    ``options.remove_if_p_above``, from the model of ``options`` (its effects always stay)."""
+    ``options.remove_if_p_above``, from the model of ``options`` (its effects always stay).
+    ``pool``: Dask workers holding the subjects (:mod:`pkcalc.population.shards`)."""
     base_effects = model_effects(options)
     current = PopulationModel("base", base_effects)
-    current_row = _estimate(subjects, options, current, progress, None)
+    current_row = _estimate(subjects, options, current, progress, None, pool)
     rows, steps = [current_row], []
     if current_row.result is None:
         return ModelComparison(rows, "base", steps, None)
@@ -247,7 +253,7 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
         for c in pool:
             pm = PopulationModel(f"{current.name} + {c.column} on {c.parameter}",
                                  (*current.effects, c))
-            row = _estimate(subjects, options, pm, progress, current_row.result)
+            row = _estimate(subjects, options, pm, progress, current_row.result, pool)
             _lrt(current_row, row)
             _check_nested(current_row, row)
             rows.append(row)
@@ -270,7 +276,7 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
         for e in removable:
             pm = PopulationModel(f"{current.name} - {e.column} on {e.parameter}",
                                  tuple(x for x in current.effects if x != e))
-            row = _estimate(subjects, options, pm, progress, current_row.result)
+            row = _estimate(subjects, options, pm, progress, current_row.result, pool)
             rows.append(row)
             test = _test(row, current_row)
             _check_nested(row, current_row)

@@ -101,6 +101,11 @@ class Design:
                 k += 1
         return mu
 
+    def rows(self, idx: np.ndarray) -> Design:
+        """The same mean function on the subjects ``idx`` (a shard of the study)."""
+        terms = [replace(t, values=t.values[idx]) for t in self.terms]
+        return Design(self.effects, list(self.names), terms, len(idx))
+
     def without_data(self) -> Design:
         """The same mean function without the study's covariate values (what a result
         keeps to compute a new patient's typical values)."""

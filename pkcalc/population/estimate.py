@@ -16,6 +16,7 @@ from ..fit.uncertainty import Z95
 from .covariates import Design, build_design, weight_effects
 from .marginal import MarginalFit, MarginalProblem
 from .result import PopulationResult
+from .shards import ShardedProblem, WorkerPool
 from .twostage import _as_prior, _cv, iterative_two_stage, two_stage
 
 __all__ = ["individual_estimates", "marginal_estimate", "model_effects", "usable_subjects"]
@@ -49,7 +50,8 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
                       pmodel: PopulationModel | None = None, *,
                       progress: Callable[[str], None] | None = None,
                       start: PopulationResult | None = None,
-                      final_fits: bool = True, covariance: bool = True) -> PopulationResult:
+                      final_fits: bool = True, covariance: bool = True,
+                      pool: WorkerPool | None = None) -> PopulationResult:
     """Marginal-likelihood estimate of one model.
 
     Parameters
@@ -67,6 +69,9 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
         Individual estimates (conditional modes with their SEs) under the result.
     covariance : bool
         Standard errors from the observed information; off for bootstrap replicates.
+    pool : WorkerPool, optional
+        Dask workers that hold the subjects (:mod:`pkcalc.population.shards`); the
+        estimate does not depend on it.
 
     Raises
     ------
@@ -80,9 +85,10 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
     if len(subjects) < 3:
         raise ValueError("the population step needs at least three subjects with levels")
     design = build_design(subjects, effects)
-    problem = MarginalProblem(subjects, design, error_model=options.error_model,
-                              blq=options.blq, nodes=options.nodes,
-                              diagonal=options.between_subject == "diagonal")
+    settings = {"error_model": options.error_model, "blq": options.blq,
+                "nodes": options.nodes, "diagonal": options.between_subject == "diagonal"}
+    problem = MarginalProblem(subjects, design, **settings) if pool is None else \
+        ShardedProblem(subjects, design, pool=pool, **settings)
     starts = _starts(problem, subjects, options, start)
     best: MarginalFit | None = None
     ends = []

@@ -20,9 +20,8 @@ from dataclasses import replace
 
 import numpy as np
 
-from ..fit.objective import Batch, evaluate, exact_hessian, structural
+from ..fit.objective import Batch, evaluate, exact_hessian, positive_definite, structural
 from . import quadrature
-from .quadrature import positive_definite
 
 __all__ = ["GRAD_STEP", "gradient_at_modes", "tangent_gradient"]
 

@@ -41,12 +41,12 @@ import numpy as np
 
 from ..core import FitOptions, SubjectData
 from ..fit.data import prepare_batch
-from ..fit.objective import Batch, exact_hessian
+from ..fit.objective import Batch, exact_hessian, positive_definite
 from ..fit.solver import minimise
 from . import quadrature
 from .covariates import Design
 from .gradient import GRAD_STEP, gradient_at_modes, tangent_gradient
-from .quadrature import LOG_2PI, at_nodes, gauss_hermite, laplace, log_integral, positive_definite
+from .quadrature import LOG_2PI, at_nodes, gauss_hermite, laplace, log_integral
 
 __all__ = ["GRAD_STEP", "MarginalFit", "MarginalProblem", "gauss_hermite", "laplace",
            "log_integral"]
@@ -111,7 +111,7 @@ class MarginalProblem:
         self.error = error_model
         self.nodes = nodes
         self.diagonal = diagonal
-        self.n = len(subjects)
+        self.n = batch.t.shape[0]
         self.n_levels = int(n_used.sum())
         self.n_omega = 2 if diagonal else 3
         self.n_error = 2 if error_model == "combined" else 1
@@ -451,6 +451,14 @@ class MarginalProblem:
                 return None
             out.append(g)
         return np.array(out)
+
+    def set_modes(self, theta: np.ndarray | None) -> None:
+        """Set the warm-start modes (a shard's slice, from the client)."""
+        self.theta = theta
+
+    def subject_terms_plain(self, psi: np.ndarray, update: bool = True, both: bool = False):
+        """:meth:`subject_terms` with positional options (what a shard is asked)."""
+        return self.subject_terms(psi, update=update, both=both)
 
     # ------------------------------------------------------------------------------------
     def _modes_at(self, psi: np.ndarray) -> np.ndarray | None:

@@ -19,8 +19,7 @@ import numpy as np
 
 from ..fit.objective import Batch, evaluate, structural
 
-__all__ = ["CELL_BLOCK", "LOG_2PI", "at_nodes", "gauss_hermite", "laplace", "log_integral",
-           "positive_definite"]
+__all__ = ["CELL_BLOCK", "LOG_2PI", "at_nodes", "gauss_hermite", "laplace", "log_integral"]
 
 LOG_2PI = math.log(2 * math.pi)
 #: Largest number of level x dose cells of one vectorised evaluation (0.4 MB per
@@ -29,12 +28,6 @@ CELL_BLOCK = 50_000
 #: Largest number of predictions kept from the objective's nodes for the gradient at
 #: the same point (32 MB); beyond it the gradient evaluates the model again.
 KEEP_CELLS = 4_000_000
-
-
-def positive_definite(m: np.ndarray) -> np.ndarray:
-    """Which of the 2 x 2 matrices ``m`` (..., 2, 2) are positive definite."""
-    det = m[..., 0, 0] * m[..., 1, 1] - m[..., 0, 1] * m[..., 1, 0]
-    return (m[..., 0, 0] > 0) & (det > 0)
 
 
 def at_nodes(b: Batch, pts: np.ndarray, *, keep: bool = False):

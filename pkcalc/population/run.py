@@ -11,16 +11,26 @@ from ..engines import Engine
 from .compare import compare_models, stepwise
 from .estimate import individual_estimates, marginal_estimate, usable_subjects
 from .result import PopulationResult
+from .shards import WorkerPool, worker_pool
 from .twostage import bootstrap, iterative_two_stage, two_stage
 
 __all__ = ["model_trouble", "population_bootstrap", "population_estimate"]
 
 
-def population_estimate(subjects: list[SubjectData], o: PopulationOptions, progress=None
-                        ) -> PopulationResult:
+def population_estimate(subjects: list[SubjectData], o: PopulationOptions, progress=None,
+                        engine: Engine | None = None) -> PopulationResult:
     """The estimate of the chosen method (marginal falls back to the iterative two-stage
-    method, with a warning, when it does not converge and no effect needs it)."""
+    method, with a warning, when it does not converge and no effect needs it).  With a
+    Dask ``engine`` the marginal estimates hold the subjects on its workers
+    (:mod:`pkcalc.population.shards`; the same estimate as in this process)."""
+    if o.method == "marginal" and engine is not None and engine.kind == "dask":
+        with worker_pool(engine) as pool:
+            return _estimate(subjects, o, progress, pool)
+    return _estimate(subjects, o, progress, None)
 
+
+def _estimate(subjects: list[SubjectData], o: PopulationOptions, progress,
+              pool: WorkerPool | None) -> PopulationResult:
     if o.method == "two_stage":
         return two_stage(subjects, FitOptions(error_model=o.error_model, blq=o.blq),
                          covariate=o.covariate, reference_weight=o.reference_weight)
@@ -29,8 +39,9 @@ def population_estimate(subjects: list[SubjectData], o: PopulationOptions, progr
                                    covariate=o.covariate, reference_weight=o.reference_weight,
                                    blq=o.blq)
     if o.models or o.stepwise:
-        comparison = (stepwise(subjects, o, o.stepwise, progress=progress) if o.stepwise
-                      else compare_models(subjects, o, o.models, progress=progress))
+        comparison = (stepwise(subjects, o, o.stepwise, progress=progress, pool=pool)
+                      if o.stepwise
+                      else compare_models(subjects, o, o.models, progress=progress, pool=pool))
         best = comparison.best()
         if best is None:
             raise ValueError("no model of the comparison could be estimated: " + "; ".join(
@@ -45,7 +56,7 @@ def population_estimate(subjects: list[SubjectData], o: PopulationOptions, progr
                             for r in comparison.rows
                             if r.result is not None and model_trouble(r.result)]
         return result
-    result = marginal_estimate(subjects, o, progress=progress)
+    result = marginal_estimate(subjects, o, progress=progress, pool=pool)
     if not result.converged and not o.effects:
         fallback = iterative_two_stage(subjects, error_model=o.error_model,
                                        covariate=o.covariate,

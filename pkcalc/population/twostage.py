@@ -45,7 +45,7 @@ from ..core import FitOptions, Prior, SubjectData
 from ..engines import Engine
 from ..fit import fit_subjects
 from ..fit.data import prepare_batch
-from ..fit.objective import Batch, evaluate
+from ..fit.objective import Batch, evaluate, exact_hessian, positive_definite
 from ..fit.solver import minimise
 from ..fit.starts import starting_values
 from ..fit.uncertainty import Z95
@@ -227,10 +227,10 @@ def _map_all(batch: Batch, theta0: np.ndarray, mu: np.ndarray, omega: np.ndarray
                 sa=np.full(n, sa), sp=np.full(n, sp), geometry=batch.geometry)
     b2 = b.repeat(2)
 
-    def fun(th, idx):
-        rows = b2 if idx.size == 2 * n else b2.rows(idx)
-        obj, grad, info, _ = evaluate(rows, th)
-        return obj, grad, info
+    def fun(th, idx):          # Newton steps on the exact Hessian where it is positive
+        rows = b2 if idx.size == 2 * n else b2.rows(idx)       # definite, else scoring
+        obj, grad, hess, info = exact_hessian(rows, th)
+        return obj, grad, np.where(positive_definite(hess)[:, None, None], hess, info)
 
     starts = np.stack([theta0, mu], axis=1).reshape(2 * n, 2)
     sol = minimise(fun, starts)
