@@ -260,11 +260,17 @@ def cmd_population(args: argparse.Namespace) -> int:
     progress = _progress_printer("population") if sys.stderr.isatty() and not args.quiet \
         else None
     engine = _engine(args)
-    if engine.kind == "dask" or (engine.workers or 1) > 1:
-        if not options.bootstrap:
-            raise PkcalcInputError("the engine runs bootstrap replicates",
-                                   field="--engine" if engine.kind == "dask" else "--workers",
-                                   expected="--bootstrap N with it")
+    # a Dask engine holds the subjects of a marginal estimate on its workers; local worker
+    # processes run bootstrap replicates only
+    needs_bootstrap = (engine.kind == "dask" and options.method != "marginal") or \
+        (engine.kind == "local" and (engine.workers or 1) > 1)
+    if needs_bootstrap and not options.bootstrap:
+        raise PkcalcInputError(
+            "the engine runs bootstrap replicates" + (
+                " (and the subjects of the marginal method)" if engine.kind == "dask" else ""),
+            field="--engine" if engine.kind == "dask" else "--workers",
+            expected="--bootstrap N with it" + (
+                ", or the marginal method" if engine.kind == "dask" else ""))
     run = run_population(study, options, colour=_colour(), progress=progress, engine=engine)
     if progress is not None:
         print("\r\033[K", end="", file=sys.stderr, flush=True)

@@ -308,8 +308,9 @@ def _population_parser(sub) -> None:
     p.add_argument("--bootstrap", type=int, metavar="N",
                    help="bootstrap replicates over subjects for SEs (default 0)")
     p.add_argument("--seed", type=int, metavar="S", help="seed for bootstrap and VPC (default 1)")
-    _engine_args(p, "where bootstrap replicates run: this process (default; --workers N for "
-                    "N local processes) or Dask workers")
+    _engine_args(p, "where the work runs: this process (default; --workers N runs bootstrap "
+                    "replicates in N local processes) or Dask workers (they hold the subjects "
+                    "of the marginal estimates, and run bootstrap replicates)")
     p.add_argument("--vpc-replicates", type=int, metavar="N",
                    help="simulated replicates for the visual predictive check (default 200)")
     _adequacy_arg(p)

@@ -69,12 +69,15 @@ class ShardedProblem(MarginalProblem):
                          diagonal=diagonal)
         parts = [p for p in np.array_split(np.arange(self.n), len(pool.workers)) if p.size]
         self._parts = parts
-        futures = [pool.client.submit(
-            MarginalProblem, [subjects[i] for i in part], design.rows(part),
-            error_model=error_model, blq=blq, nodes=nodes, diagonal=diagonal,
-            batch=self.batch.rows(part), actor=True, workers=[address], pure=False)
-            for part, address in zip(parts, pool.workers, strict=False)]
-        self._actors = [f.result() for f in futures]
+        # the handles bind to the current client when they are made: this pool's (another
+        # client of this process may be the default one)
+        with pool.client.as_current():
+            futures = [pool.client.submit(
+                MarginalProblem, [subjects[i] for i in part], design.rows(part),
+                error_model=error_model, blq=blq, nodes=nodes, diagonal=diagonal,
+                batch=self.batch.rows(part), actor=True, workers=[address], pure=False)
+                for part, address in zip(parts, pool.workers, strict=False)]
+            self._actors = [f.result() for f in futures]
 
     # the warm-start modes live on the shards; the client only knows whether there are any
     @property
