@@ -89,7 +89,7 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
                 "nodes": options.nodes, "diagonal": options.between_subject == "diagonal"}
     problem = MarginalProblem(subjects, design, **settings) if pool is None else \
         ShardedProblem(subjects, design, pool=pool, **settings)
-    starts = _starts(problem, subjects, options, start, pool)
+    starts = _starts(problem, subjects, options, start)
     best: MarginalFit | None = None
     ends = []
     for k, psi0 in enumerate(starts):
@@ -116,37 +116,20 @@ def marginal_estimate(subjects: list[SubjectData], options: PopulationOptions,
 
 
 def _starts(problem: MarginalProblem, subjects, options: PopulationOptions,
-            start: PopulationResult | None, pool: WorkerPool | None = None
-            ) -> list[np.ndarray]:
+            start: PopulationResult | None) -> list[np.ndarray]:
     """The iterative two-stage answer, and the standard two-stage answer when the data
-    allow one (otherwise the first start with doubled variances); with a ``pool`` the
-    two are computed at the same time on its workers."""
+    allow one (otherwise the first start with doubled variances)."""
     if start is not None:
         return [_from_result(problem, start)]
-    fit_options = FitOptions(error_model=options.error_model, blq=options.blq)
-    if pool is None:
-        it = iterative_two_stage(subjects, error_model=options.error_model, blq=options.blq,
-                                 final_fits=False)
-        try:
-            ts: PopulationResult | None = two_stage(subjects, fit_options)
-        except (ValueError, np.linalg.LinAlgError):
-            ts = None
-    else:
-        client = pool.client
-        [data] = client.scatter([list(subjects)], broadcast=True)   # one copy per worker
-        f_it = client.submit(iterative_two_stage, data, error_model=options.error_model,
-                             blq=options.blq, final_fits=False, pure=False)
-        f_ts = client.submit(two_stage, data, fit_options, pure=False)
-        it = f_it.result()
-        try:
-            ts = f_ts.result()
-        except (ValueError, np.linalg.LinAlgError):
-            ts = None
-    out = [_from_result(problem, it)]
-    if ts is not None:
+    out = []
+    it = iterative_two_stage(subjects, error_model=options.error_model, blq=options.blq,
+                             final_fits=False)
+    out.append(_from_result(problem, it))
+    try:
+        ts = two_stage(subjects, FitOptions(error_model=options.error_model, blq=options.blq))
         ts.residual_error = dict(it.residual_error)
         out.append(_from_result(problem, ts))
-    else:
+    except (ValueError, np.linalg.LinAlgError):
         it.omega = it.omega * 2.0
         out.append(_from_result(problem, it))
     return out

@@ -73,7 +73,7 @@ class ShardedProblem(MarginalProblem):
         # client of this process may be the default one)
         with pool.client.as_current():
             futures = [pool.client.submit(
-                MarginalProblem, [subjects[i] for i in part], design.rows(part),
+                MarginalProblem, [], design.rows(part),            # the batch is the data
                 error_model=error_model, blq=blq, nodes=nodes, diagonal=diagonal,
                 batch=self.batch.rows(part), actor=True, workers=[address], pure=False)
                 for part, address in zip(parts, pool.workers, strict=False)]
