@@ -337,7 +337,10 @@ def batch_cases() -> list[Case]:
                                                    "--partitioned"),
              {"b.csv": BATCH, "o.csv": "a file"}, 2, "is a file, not a folder"),
         Case("population-engine-no-bootstrap", "B5", ("population", "study.toml", "--engine",
-                                                      "dask"), study_files(), 2, "--bootstrap"),
+                                                      "dask", "--method", "iterative"),
+             study_files(), 2, "--bootstrap"),
+        Case("population-workers-no-bootstrap", "B5", ("population", "study.toml", "--workers",
+                                                       "2"), study_files(), 2, "--bootstrap"),
     ]
     return out
 
