@@ -19,7 +19,7 @@ import pytest
 
 from pkcalc.core import Effect, PopulationModel, PopulationOptions
 from pkcalc.engines import Engine
-from pkcalc.population.compare import compare_models
+from pkcalc.population.compare import compare_models, stepwise
 from pkcalc.population.estimate import marginal_estimate
 from pkcalc.population.run import population_estimate
 
@@ -126,3 +126,20 @@ def test_cli_population_on_dask_workers(run_cli, write):
     # the two-stage methods use the engine for bootstrap replicates only
     r = run_cli(*args, "--method", "iterative", "--engine", "dask")
     assert r.code == 2 and "--bootstrap N" in r.err
+
+
+def test_a_stepwise_search_on_the_workers_takes_the_same_steps(pools):
+    subs = ragged_study(40, seed=25)
+    opts = PopulationOptions(error_model="proportional", add_if_p_below=0.5,
+                             remove_if_p_above=0.1)
+    candidates = (Effect("weight", "clearance", reference=70.0), Effect("sex", "volume"))
+    here = stepwise(subs, opts, candidates)
+    there = stepwise(subs, opts, candidates, pool=pools[2])
+    assert [r.name for r in here.rows] == [r.name for r in there.rows]
+    assert here.selected == there.selected and len(here.steps) == len(there.steps) > 0
+    for a, b in zip(here.steps, there.steps, strict=True):
+        assert {k: v for k, v in a.items() if k != "p"} == \
+            {k: v for k, v in b.items() if k != "p"}
+        assert a["p"] == pytest.approx(b["p"], rel=1e-9)
+    for a, b in zip(here.rows, there.rows, strict=True):
+        _same(a.result, b.result)

@@ -246,11 +246,11 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
     rows, steps = [current_row], []
     if current_row.result is None:
         return ModelComparison(rows, "base", steps, None)
-    pool = [c for c in candidates
+    remaining = [c for c in candidates
             if (c.column, c.parameter) not in {(e.column, e.parameter) for e in base_effects}]
-    while pool:
+    while remaining:
         trials = []
-        for c in pool:
+        for c in remaining:
             pm = PopulationModel(f"{current.name} + {c.column} on {c.parameter}",
                                  (*current.effects, c))
             row = _estimate(subjects, options, pm, progress, current_row.result, pool)
@@ -269,7 +269,7 @@ def stepwise(subjects: list[SubjectData], options: PopulationOptions,
         if r.lrt_p >= options.add_if_p_below:
             break
         current, current_row = PopulationModel(r.name, r.effects), r
-        pool.remove(c)
+        remaining.remove(c)
     while True:
         removable = [e for e in current.effects if e not in base_effects]
         ok = []
