@@ -61,6 +61,10 @@ LN2 = float(np.log(2.0))
 #: handed to :func:`concentration` and :func:`concentration_and_gradient` carry it.
 INITIAL_LEVEL = -1.0
 
+#: Shortest duration (h) evaluated as an infusion; a shorter one is a bolus (3.6
+#: microseconds: the two forms agree to about k x duration relative).
+SHORTEST_INFUSION = 1e-9
+
 #: Times x events evaluated at once by :func:`concentration` for one long history
 #: (larger problems are done in blocks of times, so memory stays bounded).
 CHUNK_CELLS = 1_000_000
@@ -285,8 +289,10 @@ def _event_terms(u, w, active, amount, duration, clearance, volume):
     clearance = np.asarray(clearance, dtype=float)[..., None, None]
     volume = np.asarray(volume, dtype=float)[..., None, None]
     k = clearance / volume
-    infusion = (duration > 0).astype(float)
-    bolus = (duration == 0).astype(float)
+    # an "infusion" shorter than SHORTEST_INFUSION is a bolus (the two forms differ by
+    # about k d relative; A/(V k d) itself would overflow for a vanishing d)
+    infusion = (duration > SHORTEST_INFUSION).astype(float)
+    bolus = ((duration >= 0) & (duration <= SHORTEST_INFUSION)).astype(float)
     point = 1.0 - infusion  # bolus or initial level: no infusion phase
     # A/(V k d) for infusions, A/V for boluses, C0 for an initial level; zero before the start
     denom = infusion * volume * k * duration + bolus * volume + (point - bolus)

@@ -17,7 +17,7 @@ import mpmath
 import numpy as np
 import pytest
 import sympy as sp
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from scipy import signal
 from scipy.integrate import quad, solve_ivp
@@ -432,6 +432,8 @@ def test_second_derivatives_match_sympy():
 @settings(max_examples=40, deadline=None)
 @given(cl=st.floats(0.05, 50.0), v=st.floats(1.0, 500.0), t=st.floats(0.0, 200.0),
        d=st.floats(0.0, 24.0))
+@example(cl=1.0, v=1.0, t=3.0, d=2.225073858507203e-309)   # found by hypothesis: A/(V k d)
+@example(cl=1.0, v=1.0, t=0.0, d=2.225073858507203e-309)   # overflowed for a vanishing d
 def test_second_derivatives_are_differences_of_the_gradient(cl, v, t, d):
     # central differences of the analytic gradient (first-order formulas, tested above
     # against sympy) equal the analytic second derivatives, anywhere in the range
@@ -604,3 +606,15 @@ def test_two_compartments_without_exchange_are_one_compartment():
     np.testing.assert_allclose(
         model.two_compartment_concentration(t, start, amount, duration, 3.0, 20.0, 1e-9, 50.0),
         model.concentration(t, start, amount, duration, 3.0, 20.0), rtol=1e-7, atol=1e-12)
+
+
+@pytest.mark.parametrize("d", [1e-12, 5e-324, 2.2e-309])
+def test_a_vanishing_infusion_is_a_bolus(d):
+    # an infusion shorter than SHORTEST_INFUSION gives the bolus course (finite, no NaN),
+    # not A/(V k d) overflowing; the exact infusion differs from the bolus by ~ k d
+    t = np.array([0.0, 1.0, 10.0])
+    c = model.concentration(t, [0.0], [100.0], [d], 2.0, 20.0)
+    bolus = 100.0 / 20.0 * np.exp(-0.1 * t)
+    np.testing.assert_allclose(c, bolus, rtol=1e-12)
+    _, g, h = model.concentration_derivatives(t, [0.0], [100.0], [d], 2.0, 20.0)
+    assert np.all(np.isfinite(g)) and np.all(np.isfinite(h))
