@@ -232,6 +232,14 @@ def structural(batch: Batch, theta: np.ndarray, *, second: bool = False):
     """Predictions and their derivatives with respect to the structural log-parameters
     (the first ``batch.n_structural`` columns of ``theta``); with ``second`` (one
     compartment) also the second derivatives, shape (3, B, N): ``xx, xy, yy``."""
+    # a trial point far out (a volume that underflows, a rate that overflows) gives
+    # non-finite predictions and so an infinite objective: the solvers reject it, and
+    # the arithmetic on the way is not a warning for the user
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+        return _structural(batch, theta, second)
+
+
+def _structural(batch: Batch, theta: np.ndarray, second: bool):
     if second:
         if batch.compartments != 1:
             raise ValueError("second derivatives are those of the one-compartment model")
