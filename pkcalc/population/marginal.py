@@ -11,7 +11,7 @@ integrated out::
 
 With ``h(eta) = -2 ln[p(y_i | eta) p(eta)]``, its minimum ``eta^`` (the
 conditional mode: the MAP estimate of :mod:`pkcalc.fit`) and ``H`` its Hessian
-there (observed: differences of the analytic gradient):
+there (exact: :func:`pkcalc.fit.objective.exact_hessian`):
 
 - **Laplace**: ``-2 ln L_i = h(eta^) - q ln(2 pi) + ln|H / 2|``
   (Tierney & Kadane, JASA 1986;81:82 -- from memory);
@@ -25,7 +25,8 @@ The outer parameters -- ``beta``, the Cholesky factor of ``Omega`` (log
 diagonal, off-diagonal) and the log residual SDs -- maximise the summed
 likelihood by L-BFGS-B on gradients by the implicit function theorem (each mode
 moved along ``-H^-1 dG/dpsi``, :meth:`MarginalProblem.gradient`); the inner modes
-are found by the damped-scoring solver of :mod:`pkcalc.fit`, warm-started.  The
+are found by Newton steps on the exact Hessian (the damped solver of
+:mod:`pkcalc.fit`), warm-started.  The
 standard errors invert the observed information, ``2 x`` the inverse of the
 Hessian of ``-2 ln L`` by central differences.
 """

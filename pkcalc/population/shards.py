@@ -138,9 +138,3 @@ class ShardedProblem(MarginalProblem):
         psis = np.atleast_2d(np.asarray(psis, float))
         self.evaluations += len(psis)
         return np.concatenate(self._all("objective_parts", same=(psis,)), axis=0)
-
-    def _modes_at(self, psi: np.ndarray) -> np.ndarray | None:
-        last = self.__dict__.get("_last")
-        if last is not None and np.array_equal(last[0], psi):
-            return last[1]
-        return self.subject_terms(psi, update=False)[1]
