@@ -14,7 +14,7 @@ import numpy as np
 
 from .model import LN2
 
-__all__ = ["LIMITS", "parameter_warnings"]
+__all__ = ["LIMITS", "implausible", "parameter_warnings"]
 
 #: (lower, upper) limits in canonical units, per 70 kg where it applies.
 LIMITS = {
@@ -72,3 +72,19 @@ def parameter_warnings(clearance: float, volume: float, weight: float | None = N
             "output: check the units"
         )
     return out
+
+
+def implausible(clearance: np.ndarray, volume: np.ndarray, weight: np.ndarray) -> np.ndarray:
+    """Which rows :func:`parameter_warnings` would warn about (vectorised; ``weight``
+    NaN where unknown) -- so that many fits build the warnings only where there are
+    any."""
+    clearance, volume = np.asarray(clearance, float), np.asarray(volume, float)
+    weight = np.asarray(weight, float)
+    scale = np.where(np.isnan(weight), 1.0, weight / 70.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        half_life = LN2 * volume / clearance
+    checked = np.isfinite(clearance) & np.isfinite(volume) & (clearance > 0) & (volume > 0)
+    out = (half_life < LIMITS["half_life"][0]) | (half_life > LIMITS["half_life"][1])
+    out |= (volume > LIMITS["volume"][1] * scale) | (volume < LIMITS["volume"][0] * scale)
+    out |= clearance > LIMITS["clearance"][1] * scale
+    return checked & out

@@ -10,6 +10,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 from scipy import integrate, optimize, stats
 
 from pkcalc import model
@@ -487,3 +489,21 @@ def test_a_fit_is_a_statistical_result_in_the_statsmodels_layout():
     assert hi == pytest.approx(r.clearance * math.exp(q * s_cl))
     with pytest.raises(ValueError, match="conf_int"):
         r.conf_int("volume")
+
+
+@given(st.lists(st.floats(-100, 100), min_size=6, max_size=6), st.floats(1e-2, 1e3))
+def test_the_closed_form_2x2_step_equals_lapack(entries, ridge):
+    """The solver's Cramer's-rule step for 2 x 2 systems against numpy's LAPACK solve
+    (an independent solver; condition number below about 1e7 here); a singular matrix
+    falls back to the scaled gradient."""
+    from pkcalc.fit.solver import _solve
+
+    m = np.array(entries[:4]).reshape(2, 2)
+    a = (m @ m.T + ridge * np.eye(2))[None]          # symmetric positive definite
+    g = np.array(entries[4:])[None]
+    diag = np.diagonal(a, axis1=1, axis2=2)
+    expected = np.linalg.solve(a, g[..., None])[..., 0]
+    assert np.allclose(_solve(a, g, diag), expected, rtol=1e-7,
+                       atol=1e-9 * np.abs(expected).max(initial=1.0))
+    singular = np.zeros((1, 2, 2))
+    assert np.array_equal(_solve(singular, g, np.ones((1, 2))), g)

@@ -21,19 +21,19 @@ import numpy as np
 
 from .. import model
 from ..core import FitOptions, SubjectData
-from ..plausibility import parameter_warnings
+from ..plausibility import implausible, parameter_warnings
 from .data import prepare_batch, subject_events, with_prior
 from .objective import Batch, evaluate, n_error_params, residual_variance
 from .result import Estimate, FitResult
 from .starts import AGREE_TOL, bounds, error_starts, solve_starts, starting_values
 from .uncertainty import (
     covariances,
-    log_estimate,
+    log_estimates,
     observed_hessian,
     profile_interval,
     structural_estimates,
     undetermined,
-    wald_quantile,
+    wald_quantiles,
 )
 
 __all__ = ["Estimate", "FitResult", "fit_subjects", "starting_values", "subject_events"]
@@ -73,17 +73,19 @@ def fit_subjects(subjects: list[SubjectData], options: FitOptions | None = None,
     sol, theta, sel, agreed = _best_of_starts(batch, starts, n_starts, opts)
     final = _reweighted(batch, theta, opts)
     stats = _statistics(final, theta, opts.method)
+    weight = np.array([np.nan if s.weight is None else s.weight for s in keep])
+    flagged = implausible(np.exp(theta[:, 0]), np.exp(theta[:, 1]), weight)
     results = []
     for i, s in enumerate(keep):
         k = s.time.size
         results.append(_result(
             s, opts, final, i, theta[i], stats["obj"][i], float(stats["m2ll"][i]),
             int(stats["n_used"][i]), stats["cov"][i], bool(stats["identifiable"][i]),
-            float(stats["scale"][i]), stats["lower"][i], stats["f"][i, :k],
+            float(stats["scale"][i]), stats["f"][i, :k],
             stats["observed"][i, :k], stats["resid"][i, :k], stats["wres"][i, :k],
-            stats["tables"][i], bool(sol.converged[sel[i]]), sol.message[sel[i]],
-            int(sol.iterations[sel[i]]), n_starts, int(agreed[i]), notes[i],
-            {key: v[i] for key, v in prior_info.items()}))
+            stats["tables"][i], stats["residual"][i], bool(sol.converged[sel[i]]),
+            sol.message[sel[i]], int(sol.iterations[sel[i]]), n_starts, int(agreed[i]),
+            notes[i], {key: v[i] for key, v in prior_info.items()}, bool(flagged[i])))
     return results, failures
 
 
@@ -191,18 +193,19 @@ def _statistics(final: Batch, theta, kind: str) -> dict:
         m2ll = f_obj
     resid = np.where(final.obs, final.y - f, np.nan)
     return {"obj": f_obj, "f": f, "cov": cov, "identifiable": identifiable, "scale": scale,
-            "lower": bounds(final, theta.shape[1]),
             "tables": structural_estimates(final, theta, cov, kind), "n_used": n_used,
+            "residual": _residual_estimates(final, theta, cov, scale),
             "m2ll": m2ll, "observed": np.where(final.obs | final.cens, final.y, np.nan),
             "resid": resid, "wres": resid / sd_all}
 
 
 def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.ndarray,
             obj: float, m2ll: float, n_used: int, cov: np.ndarray, identifiable: bool,
-            s2: float, lower: np.ndarray, pred: np.ndarray, observed: np.ndarray,
-            resid: np.ndarray, wres: np.ndarray, table: dict[str, Estimate], converged: bool,
-            message: str, iterations: int, n_starts: int, agreed: int, notes: list[str],
-            prior: dict) -> FitResult:
+            s2: float, pred: np.ndarray, observed: np.ndarray, resid: np.ndarray,
+            wres: np.ndarray, table: dict[str, Estimate],
+            residual: tuple[dict[str, Estimate], list[str]], converged: bool, message: str,
+            iterations: int, n_starts: int, agreed: int, notes: list[str], prior: dict,
+            flagged: bool) -> FitResult:
     kind = batch.kind
     warnings: list[str] = [x[1] for x in notes if isinstance(x, tuple)]
     notes = [x for x in notes if not isinstance(x, tuple)]
@@ -220,14 +223,13 @@ def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.nd
         warnings.append(f"not identifiable: {which}; standard errors and intervals are not "
                         "reported")
     cov = cov if identifiable and math.isfinite(s2) else None
-    var = [None] * q if cov is None else [float(cov[j, j]) for j in range(q)]
-    qt = wald_quantile(n_used, p, kind)
     ests = dict(table)
     corr = None if cov is None else float(cov[0, 1] / math.sqrt(cov[0, 0] * cov[1, 1]))
     if opts.ci == "profile" and cov is not None:
-        _profile_intervals(ests, batch.rows(np.array([i])), theta, obj, var, opts, n_used,
-                           notes)
-    residual = _residual_estimates(batch, i, theta, lower, cov, var, qt, s2, notes)
+        _profile_intervals(ests, batch.rows(np.array([i])), theta, obj,
+                           [float(cov[j, j]) for j in range(q)], opts, n_used, notes)
+    residual, residual_notes = residual
+    notes += residual_notes
     if not converged:
         warnings.append(f"did not converge: {message}")
     if agreed < n_starts:
@@ -237,7 +239,8 @@ def _result(s: SubjectData, opts: FitOptions, batch: Batch, i: int, theta: np.nd
         if e.rse_percent is not None and e.rse_percent > POOR_RSE and name in ("clearance",
                                                                                 "volume"):
             warnings.append(f"{name} is poorly determined (RSE {e.rse_percent:.0f} %)")
-    warnings += parameter_warnings(ests["clearance"].value, ests["volume"].value, s.weight)
+    if flagged:
+        warnings += parameter_warnings(ests["clearance"].value, ests["volume"].value, s.weight)
     prior_out = _prior_summary(prior, theta, cov, notes) if kind == "map" else {}
     return FitResult(
         subject=s.subject, converged=converged, method=kind,
@@ -266,29 +269,35 @@ def _profile_intervals(ests, row: Batch, theta, obj, var, opts: FitOptions, n_us
                  "ones (k, half-life) by the Wald method on the log scale")
 
 
-def _residual_estimates(batch: Batch, i: int, theta, lower, cov, var, qt: float, s2: float,
-                        notes: list[str]) -> dict[str, Estimate]:
-    """The residual error: estimated (likelihood), fixed (MAP) or the LS scale."""
-    residual: dict[str, Estimate] = {}
+def _residual_estimates(batch: Batch, theta: np.ndarray, cov: np.ndarray, scale: np.ndarray
+                        ) -> list[tuple[dict[str, Estimate], list[str]]]:
+    """The residual error of every row -- estimated (likelihood), fixed (MAP) or the LS
+    scale -- with its notes."""
+    b = theta.shape[0]
     if batch.kind == "likelihood":
         names = {"additive": ["additive"], "proportional": ["proportional"],
                  "combined": ["additive", "proportional"]}[batch.error]
+        lower = bounds(batch, theta.shape[1])
+        q = wald_quantiles(batch.n_obs, 2 + len(names), batch.kind)
+        out: list[tuple[dict[str, Estimate], list[str]]] = [({}, []) for _ in range(b)]
         for j, name in enumerate(names):
-            at_floor = theta[2 + j] <= lower[2 + j] + 1e-6
-            residual[name] = log_estimate(float(theta[2 + j]), None if at_floor or cov is None
-                                          else var[2 + j], qt)
-            if at_floor:
-                notes.append(f"the {name} error component is at its lower bound: the levels "
-                             f"support the other component alone")
-    elif batch.kind == "map":
-        if batch.sa[i] > 0:
-            residual["additive"] = Estimate(float(batch.sa[i]))
-        if batch.sp[i] > 0:
-            residual["proportional"] = Estimate(float(batch.sp[i]))
-        notes.append("MAP estimate: residual error fixed at the prior's values")
-    else:
-        residual["scale"] = Estimate(math.sqrt(max(s2, 0.0)) if np.isfinite(s2) else math.nan)
-    return residual
+            at_floor = theta[:, 2 + j] <= lower[:, 2 + j] + 1e-6
+            var = np.where(at_floor, np.nan, cov[:, 2 + j, 2 + j])
+            note = (f"the {name} error component is at its lower bound: the levels support "
+                    "the other component alone")
+            for (d, n), e, floor in zip(out, log_estimates(theta[:, 2 + j], var, q),
+                                        at_floor.tolist(), strict=True):
+                d[name] = e
+                if floor:
+                    n.append(note)
+        return out
+    if batch.kind == "map":
+        note = "MAP estimate: residual error fixed at the prior's values"
+        return [({**({"additive": Estimate(sa)} if sa > 0 else {}),
+                  **({"proportional": Estimate(sp)} if sp > 0 else {})}, [note])
+                for sa, sp in zip(batch.sa.tolist(), batch.sp.tolist(), strict=True)]
+    return [({"scale": Estimate(math.sqrt(max(s2, 0.0)) if np.isfinite(s2) else math.nan)}, [])
+            for s2 in scale.tolist()]
 
 
 def _prior_summary(prior: dict, theta, cov, notes: list[str]) -> dict[str, float]:

@@ -109,21 +109,17 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
         iterations[idx] += 1
         h = info[idx]
         g = grad[idx]
+        th, lo_i, hi_i = theta[idx], lower[idx], upper[idx]
         # parameters held at a bound by the gradient are frozen for this step (active set)
-        held = ((theta[idx] <= lower[idx] + 1e-9) & (g > 0)) | \
-            ((theta[idx] >= upper[idx] - 1e-9) & (g < 0))
+        held = ((th <= lo_i + 1e-9) & (g > 0)) | ((th >= hi_i - 1e-9) & (g < 0))
         if held.any():
             free = ~held
             h = h * free[:, :, None] * free[:, None, :] + held[:, :, None] * eye
             g = np.where(held, 0.0, g)
         diag = np.maximum(np.diagonal(h, axis1=1, axis2=2), 1e-12)
         damped = h + lam[idx, None, None] * diag[:, :, None] * eye
-        try:
-            step = -np.linalg.solve(damped, g[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            step = -g / diag
-        step = np.clip(step, -MAX_STEP, MAX_STEP)
-        trial = np.clip(theta[idx] + step, lower[idx], upper[idx])
+        step = np.clip(-_solve(damped, g, diag), -MAX_STEP, MAX_STEP)
+        trial = np.clip(th + step, lo_i, hi_i)
         out = fun(trial, idx)
         o_t, g_t, i_t = out[0], out[1], out[2]
         ok = np.isfinite(o_t) & (o_t <= obj[idx])
@@ -131,8 +127,10 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
         if extra is not None:
             extra[acc] = np.asarray(out[3])[ok]
         gain = obj[acc] - o_t[ok]
-        moved = np.abs(trial[ok] - theta[acc]).max(axis=1)
-        theta[acc], obj[acc], grad[acc], info[acc] = trial[ok], o_t[ok], g_t[ok], i_t[ok]
+        size = np.abs(trial - th).max(axis=1)
+        moved = size[ok]
+        new, g_new = trial[ok], g_t[ok]
+        theta[acc], obj[acc], grad[acc], info[acc] = new, o_t[ok], g_new, i_t[ok]
         lam[acc] = np.maximum(lam[acc] / 10.0, 1e-12)
         rej = idx[~ok]
         lam[rej] *= 10.0
@@ -140,18 +138,17 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
         # objective cannot tell the points apart -- converged (not a stall to damp out)
         rounding = np.isfinite(o_t[~ok]) & \
             (o_t[~ok] - obj[rej] <= ROUNDING * (1.0 + np.abs(obj[rej]))) & \
-            (np.abs(trial[~ok] - theta[rej]).max(axis=1) <= xtol)
+            (size[~ok] <= xtol)
         converged[rej[rounding]] = True
         active[rej[rounding]] = False
         done = (gain <= tol * (1.0 + np.abs(obj[acc]))) & (moved <= xtol)
         # tiny gains with larger steps also count once the gradient is negligible
-        at_bound = (theta[acc] <= lower[acc] + 1e-9) | (theta[acc] >= upper[acc] - 1e-9)
-        gnorm = np.abs(np.where(at_bound, 0.0, grad[acc])
-                       * np.maximum(np.abs(theta[acc]), 1.0)).max(axis=1)
+        at_bound = (new <= lo_i[ok] + 1e-9) | (new >= hi_i[ok] - 1e-9)
+        gnorm = np.abs(np.where(at_bound, 0.0, g_new) * np.maximum(np.abs(new), 1.0)).max(axis=1)
         done |= (gain <= tol * (1.0 + np.abs(obj[acc]))) & (gnorm <= 1e-6)
         if reference is not None:
             ref_theta, ref_obj = reference
-            near = (np.abs(theta[acc] - ref_theta[acc]).max(axis=1) <= reference_tol[0]) & \
+            near = (np.abs(new - ref_theta[acc]).max(axis=1) <= reference_tol[0]) & \
                 (np.abs(obj[acc] - ref_obj[acc]) <= reference_tol[1])
             for r in acc[near & ~done]:
                 message[r] = "reached the optimum found from the first start"
@@ -176,3 +173,21 @@ def minimise(fun: Callable[[np.ndarray, np.ndarray], tuple], theta0: np.ndarray,
     for r in np.flatnonzero(active):
         message[r] = f"not converged in {max_iter} iterations"
     return Solution(theta, obj, grad, info, converged, iterations, message, extra)
+
+
+def _solve(a: np.ndarray, g: np.ndarray, diag: np.ndarray) -> np.ndarray:
+    """``a^-1 g`` for a stack of small positive definite matrices: closed form for 2 x 2
+    (Cramer's rule), else LAPACK; a singular matrix takes the scaled gradient step
+    ``g / diag``."""
+    if a.shape[1] == 2:
+        det = a[:, 0, 0] * a[:, 1, 1] - a[:, 0, 1] * a[:, 1, 0]
+        ok = np.isfinite(det) & (np.abs(det) > 1e-300)
+        det = np.where(ok, det, 1.0)
+        x0 = (a[:, 1, 1] * g[:, 0] - a[:, 0, 1] * g[:, 1]) / det
+        x1 = (a[:, 0, 0] * g[:, 1] - a[:, 1, 0] * g[:, 0]) / det
+        out = np.stack([x0, x1], axis=1)
+        return np.where(ok[:, None], out, g / diag)
+    try:
+        return np.linalg.solve(a, g[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        return g / diag

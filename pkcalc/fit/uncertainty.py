@@ -10,7 +10,7 @@ import numpy as np
 from .. import model
 from ..core import FitOptions
 from .objective import Batch, evaluate
-from .result import Z95, Estimate, wald_quantile
+from .result import Estimate, wald_quantile
 from .solver import minimise
 
 CHI2_95 = 3.841458820694124
@@ -32,16 +32,6 @@ def observed_hessian(batch: Batch, theta: np.ndarray, h: float = 1e-5) -> np.nda
     return 0.5 * (hess + np.swapaxes(hess, 1, 2))
 
 
-def log_estimate(lnvalue: float, var: float | None, quantile: float = Z95) -> Estimate:
-    """Estimate with a Wald interval on the log scale, ``exp(ln x +- q SE)``."""
-    value = math.exp(lnvalue)
-    if var is None or not np.isfinite(var) or var < 0 or var > 25.0:
-        return Estimate(value)  # SE of the log above 5: no meaningful interval
-    se = math.sqrt(var)
-    return Estimate(value, value * se, 100 * se, math.exp(lnvalue - quantile * se),
-                    math.exp(lnvalue + quantile * se))
-
-
 def structural_estimates(batch: Batch, theta: np.ndarray, cov: np.ndarray, kind: str
                           ) -> list[dict[str, Estimate]]:
     """Clearance, volume, elimination rate and half-life of every row (vectorised).
@@ -49,9 +39,7 @@ def structural_estimates(batch: Batch, theta: np.ndarray, cov: np.ndarray, kind:
     ``ln k = ln CL - ln V`` and ``ln t1/2 = ln ln2 - ln k`` share the variance
     ``var(ln CL) + var(ln V) - 2 cov``; intervals are ``exp(ln x +- q SE)``.
     """
-    n = batch.n_obs
-    p = 3 if kind == "least_squares" else theta.shape[1]
-    q = np.array([wald_quantile(int(k), p, kind) for k in n])
+    q = wald_quantiles(batch.n_obs, 3 if kind == "least_squares" else theta.shape[1], kind)
     var_k = cov[:, 0, 0] + cov[:, 1, 1] - 2 * cov[:, 0, 1]
     lnk = theta[:, 0] - theta[:, 1]
     columns = {"clearance": (theta[:, 0], cov[:, 0, 0]), "volume": (theta[:, 1], cov[:, 1, 1]),
@@ -59,16 +47,32 @@ def structural_estimates(batch: Batch, theta: np.ndarray, cov: np.ndarray, kind:
                "half_life": (math.log(model.LN2) - lnk, var_k)}
     out: list[dict[str, Estimate]] = [{} for _ in range(theta.shape[0])]
     for name, (ln, var) in columns.items():
-        value = np.exp(ln)
-        ok = np.isfinite(var) & (var >= 0) & (var <= 25.0)
-        se_log = np.sqrt(np.where(ok, var, 0.0))
-        lo, hi = np.exp(ln - q * se_log), np.exp(ln + q * se_log)
-        # plain Python floats once per column (not a numpy scalar per element)
-        rows = zip(ok.tolist(), value.tolist(), (value * se_log).tolist(),
-                   (100 * se_log).tolist(), lo.tolist(), hi.tolist(), strict=True)
-        for d, (good, v, se, rse, a, b) in zip(out, rows, strict=True):
-            d[name] = Estimate(v, se, rse, a, b) if good else Estimate(v)
+        for d, e in zip(out, log_estimates(ln, var, q), strict=True):
+            d[name] = e
     return out
+
+
+def wald_quantiles(n_obs: np.ndarray, n_params: int, kind: str) -> np.ndarray:
+    """:func:`wald_quantile` of every row (once per distinct number of levels)."""
+    n_obs = np.asarray(n_obs, dtype=int)
+    distinct, where = np.unique(n_obs, return_inverse=True)
+    return np.array([wald_quantile(int(k), n_params, kind) for k in distinct])[where]
+
+
+def log_estimates(ln: np.ndarray, var: np.ndarray, quantile: np.ndarray) -> list[Estimate]:
+    """Estimates ``exp(ln)`` with Wald intervals on the log scale,
+    ``exp(ln +- quantile SE)``, for every row at once; no SE or interval where ``var``
+    is NaN, negative or above 25 (an SE of the log above 5 means no meaningful
+    interval)."""
+    value = np.exp(ln)
+    ok = np.isfinite(var) & (var >= 0) & (var <= 25.0)
+    se_log = np.sqrt(np.where(ok, var, 0.0))
+    lo, hi = np.exp(ln - quantile * se_log), np.exp(ln + quantile * se_log)
+    # plain Python floats once per column (not a numpy scalar per element)
+    rows = zip(ok.tolist(), value.tolist(), (value * se_log).tolist(),
+               (100 * se_log).tolist(), lo.tolist(), hi.tolist(), strict=True)
+    return [Estimate(v, se, rse, a, b) if good else Estimate(v)
+            for good, v, se, rse, a, b in rows]
 
 
 def covariances(batch: Batch, obj: np.ndarray, hess: np.ndarray, kind: str):

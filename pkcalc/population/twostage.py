@@ -46,9 +46,9 @@ from ..engines import Engine
 from ..fit import fit_subjects
 from ..fit.data import prepare_batch
 from ..fit.objective import Batch, evaluate, exact_hessian, positive_definite
+from ..fit.result import Z95
 from ..fit.solver import minimise
 from ..fit.starts import starting_values
-from ..fit.uncertainty import Z95
 from .result import PopulationResult
 
 __all__ = [

@@ -20,7 +20,7 @@ import numpy as np
 from .. import model
 from ..core import FitOptions, PopulationOptions, Prior, SamplingProblem, SubjectData
 from ..engines import Engine, map_ordered
-from ..fit.uncertainty import Z95
+from ..fit.result import Z95
 from .optimise import Evaluator
 from .result import DesignEvaluation, SimulationSummary
 

@@ -47,7 +47,7 @@ def test_bench_fits_per_second_and_curve_fit_ratio():
     subs, truth = simulate(1000)
     fit_subjects(subs[:10], FitOptions())  # warm-up (imports)
     t_ours = math.inf
-    for _ in range(3):  # best of 3: the machine is shared and noisy
+    for _ in range(5):  # best of 5: the machine is shared and noisy
         t0 = time.perf_counter()
         res, _ = fit_subjects(subs, FitOptions())
         t_ours = min(t_ours, time.perf_counter() - t0)
@@ -61,7 +61,7 @@ def test_bench_fits_per_second_and_curve_fit_ratio():
                                   sigma=s.conc)
 
     t_cf = math.inf
-    for _ in range(2):  # best of 2
+    for _ in range(3):  # best of 3
         cf_ok = 0
         t0 = time.perf_counter()
         with warnings.catch_warnings():
@@ -76,11 +76,11 @@ def test_bench_fits_per_second_and_curve_fit_ratio():
     rate = len(subs) / t_ours
     ratio = t_cf / t_ours
     err = np.median(np.abs(np.array([r.clearance for r in res]) / truth[:, 0] - 1))
-    print(f"\n[bench] pkcalc fit: {len(subs)} subjects in {t_ours:.3f} s (best of 3) = "
+    print(f"\n[bench] pkcalc fit: {len(subs)} subjects in {t_ours:.3f} s (best of 5) = "
           f"{rate:.0f} fits/s (target >= 30,000: {'met' if rate >= 30_000 else 'NOT met'}); "
           f"converged {ours_ok}/{len(subs)}; "
           f"median |CL error| {err:.2%}")
-    print(f"[bench] scipy curve_fit (FD Jacobian, fixed start): {t_cf:.3f} s (best of 2), "
+    print(f"[bench] scipy curve_fit (FD Jacobian, fixed start): {t_cf:.3f} s (best of 3), "
           f"converged "
           f"{cf_ok}/{len(subs)}; ratio curve_fit / pkcalc = {ratio:.1f} (target >= 10: "
           f"{'met' if ratio >= 10 else 'NOT met'})")
