@@ -256,7 +256,8 @@ def _structural(batch: Batch, theta: np.ndarray, second: bool):
 
 
 def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None = None,
-             predictions: tuple[np.ndarray, np.ndarray] | None = None):
+             predictions: tuple[np.ndarray, np.ndarray] | None = None,
+             information: bool = True):
     """Objective, gradient and scoring matrix for each row.
 
     Parameters
@@ -272,6 +273,9 @@ def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None 
     predictions : (ndarray (B, N), ndarray (q, B, N)), optional
         :func:`structural` of these rows, computed once and reused (the model does not
         depend on the error or prior parameters that differ between rows).
+    information : bool
+        Whether to build the scoring matrix (``info`` is None without it: callers that
+        need the objective and gradient only skip its Gram sums).
 
     Returns
     -------
@@ -287,17 +291,17 @@ def evaluate(batch: Batch, theta: np.ndarray, *, sigma_floor: np.ndarray | None 
     # the objective infinite: such a trial point is rejected by the solvers, so the
     # overflow on the way there is not a warning for the user
     with np.errstate(over="ignore", invalid="ignore"):
-        return _evaluate(batch, theta, f, jac, sigma_floor)
+        return _evaluate(batch, theta, f, jac, sigma_floor, information)
 
 
 def _evaluate(batch: Batch, theta: np.ndarray, f: np.ndarray, jac: np.ndarray,
-              sigma_floor: np.ndarray | None):
+              sigma_floor: np.ndarray | None, information: bool = True):
     if batch.kind == "least_squares":
         r = np.where(batch.obs, batch.y - f, 0.0)
         wr = batch.w * r
         obj = _dot(wr, r)
         grad = -2 * _block_sum(wr, [], jac)
-        info = 2 * _gram(batch.w * batch.obs, jac)
+        info = 2 * _gram(batch.w * batch.obs, jac) if information else None
         return obj, grad, info, f
     if sigma_floor is not None:
         theta = np.concatenate([theta, profiled_sigma(batch, f, sigma_floor)[:, None]], axis=1)
@@ -315,9 +319,11 @@ def _evaluate(batch: Batch, theta: np.ndarray, f: np.ndarray, jac: np.ndarray,
     grad = _block_sum(a * dv_df - m, [a * e for e in dv_err], jac)
     # Fisher information: 2/v dmean dmean' + 1/v^2 dvar dvar' (one Gram for the structural
     # block: weight 2/v + (dv_df/v)^2)
-    inv2 = np.where(o, inv * inv, 0.0)
-    info = _block_gram(inv2, dv_df, dv_err, jac,
-                       structural_weight=np.where(o, 2 * inv, 0.0) + inv2 * dv_df * dv_df)
+    info = None
+    if information:
+        inv2 = np.where(o, inv * inv, 0.0)
+        info = _block_gram(inv2, dv_df, dv_err, jac,
+                           structural_weight=np.where(o, 2 * inv, 0.0) + inv2 * dv_df * dv_df)
     if batch.cens.any():
         c = batch.cens
         sd = np.sqrt(var)
@@ -330,19 +336,23 @@ def _evaluate(batch: Batch, theta: np.ndarray, f: np.ndarray, jac: np.ndarray,
         obj = obj + _rowsum(np.where(c, -2 * log_cdf, 0.0))
         g = np.where(c, -2 * lam, 0.0)
         grad = grad + _block_sum(g * s_z, [g * e for e in e_z], jac)
-        info = info + _block_gram(np.where(c, 2 * lam * (z + lam), 0.0), s_z, e_z, jac)
-    if sigma_floor is not None:
+        if information:
+            info = info + _block_gram(np.where(c, 2 * lam * (z + lam), 0.0), s_z, e_z, jac)
+    if sigma_floor is not None and information:
         p = batch.n_structural
         i_ss, i_se, i_ee = info[:, :p, :p], info[:, :p, p], info[:, p, p]
         info = i_ss - i_se[:, :, None] * i_se[:, None, :] / np.maximum(i_ee, 1e-300)[:, None,
                                                                                    None]
         return obj, grad[:, :p], info, f
+    if sigma_floor is not None:
+        return obj, grad[:, :batch.n_structural], info, f
     if batch.kind == "map":
         d = theta[:, :2] - batch.mu
         od = np.einsum("bij,bj->bi", batch.omega_inv, d)
         obj = obj + np.einsum("bi,bi->b", d, od)
         grad[:, :2] += 2 * od
-        info[:, :2, :2] += 2 * batch.omega_inv
+        if information:
+            info[:, :2, :2] += 2 * batch.omega_inv
     return obj, grad, info, f
 
 
@@ -355,7 +365,8 @@ def positive_definite(m: np.ndarray) -> np.ndarray:
 
 
 def exact_hessian(batch: Batch, theta: np.ndarray, *,
-                  predictions: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None):
+                  predictions: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
+                  information: bool = True):
     """The ``map`` objective with its exact Hessian in ``ln CL, ln V`` (one compartment).
 
     Per level, with ``r = y - f``, ``v = sa^2 + sp^2 f^2``, ``v' = 2 sp^2 f`` and
@@ -376,6 +387,8 @@ def exact_hessian(batch: Batch, theta: np.ndarray, *,
     theta : ndarray, shape (B, 2)
     predictions : (f, J, d2f), optional
         :func:`structural` with ``second=True`` of these rows, computed once and reused.
+    information : bool
+        As for :func:`evaluate`.
 
     Returns
     -------
@@ -383,14 +396,15 @@ def exact_hessian(batch: Batch, theta: np.ndarray, *,
     grad : ndarray, shape (B, 2)
     hess : ndarray, shape (B, 2, 2)
         The exact Hessian (not necessarily positive definite away from a mode).
-    info : ndarray, shape (B, 2, 2)
-        The scoring matrix of :func:`evaluate` (positive semi-definite).
+    info : ndarray, shape (B, 2, 2), or None
+        The scoring matrix of :func:`evaluate` (positive semi-definite); None with
+        ``information=False``.
     """
     if batch.kind != "map":
         raise ValueError("the exact Hessian is that of the map objective")
     f, jac, jac2 = structural(batch, theta, second=True) if predictions is None \
         else predictions
-    obj, grad, info, _ = evaluate(batch, theta, predictions=(f, jac))
+    obj, grad, info, _ = evaluate(batch, theta, predictions=(f, jac), information=information)
     with np.errstate(over="ignore", invalid="ignore"):   # see evaluate
         hess = _exact_hessian(batch, f, jac, jac2)
     return obj, grad, hess, info

@@ -85,7 +85,7 @@ def map_objective(subject: SubjectData, options: FitOptions, theta: np.ndarray) 
         part = theta[i:i + BLOCK]
         rows = batch.rows(np.zeros(part.shape[0], dtype=int))
         with np.errstate(all="ignore"):   # far nodes: predictions that underflow
-            out[i:i + BLOCK] = evaluate(rows, part)[0]
+            out[i:i + BLOCK] = evaluate(rows, part, information=False)[0]
     # a node whose objective is not a number has no posterior weight
     return np.where(np.isnan(out), np.inf, out)
 

@@ -26,8 +26,8 @@ def observed_hessian(batch: Batch, theta: np.ndarray, h: float = 1e-5) -> np.nda
     plus = np.repeat(theta[:, None, :], q, axis=1) + h * np.eye(q)
     minus = np.repeat(theta[:, None, :], q, axis=1) - h * np.eye(q)
     rows = np.repeat(np.arange(b), q)
-    _, gp, _, _ = evaluate(batch.rows(rows), plus.reshape(-1, q))
-    _, gm, _, _ = evaluate(batch.rows(rows), minus.reshape(-1, q))
+    _, gp, _, _ = evaluate(batch.rows(rows), plus.reshape(-1, q), information=False)
+    _, gm, _, _ = evaluate(batch.rows(rows), minus.reshape(-1, q), information=False)
     hess = ((gp - gm) / (2 * h)).reshape(b, q, q)
     return 0.5 * (hess + np.swapaxes(hess, 1, 2))
 

@@ -52,7 +52,7 @@ def tangent_gradient(self, psi: np.ndarray, theta: np.ndarray) -> np.ndarray:
     psi = np.asarray(psi, float)
     p = psi.size
     b0, _, _, _ = self._rows(psi[None])
-    _, _, hess, _ = exact_hessian(b0, theta)
+    _, _, hess, _ = exact_hessian(b0, theta, information=False)
     pd = positive_definite(hess)
     out = np.zeros((self.n, p))
     per = self._vectors_per_block()
@@ -68,7 +68,7 @@ def _tangent_part(self, psi, theta, hess, pd, js: np.ndarray) -> np.ndarray:
     e = np.eye(psi.size)[js]
     # d G / d psi_j at the fixed modes
     bs, _, _, ok_s = self._rows(np.concatenate([psi + DPSI_STEP * e, psi - DPSI_STEP * e]))
-    _, grad_s, _, _ = evaluate(bs, np.repeat(theta, 2 * m, axis=0))
+    _, grad_s, _, _ = evaluate(bs, np.repeat(theta, 2 * m, axis=0), information=False)
     grad_s = grad_s.reshape(n, 2 * m, 2)
     d_g = (grad_s[:, :m] - grad_s[:, m:]) / (2 * DPSI_STEP)          # (n, m, 2)
     tangent = np.zeros_like(d_g)
@@ -158,26 +158,30 @@ def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logde
     else:
         nodes, given = theta[:, None, :] + math.sqrt(2.0) * np.einsum(
             "nij,kj->nki", chol, grid), None
-    obj, grad, _ = _reused(self, b_all, nodes, v, given=given)   # (n, K, v), (n, K, v, 2)
+    obj, grad, _ = _reused(self, b_all, nodes, v, given=given,
+                           all_gradients=False)                  # (n, K, v), (n, K, 1, 2)
     h = obj + logdet[:, None, :]
     terms = lw[None, :] + (grid**2).sum(axis=1)[None, :] - 0.5 * h[:, :, 0]
     weights = np.exp(terms - terms.max(axis=1, keepdims=True))
     weights /= weights.sum(axis=1, keepdims=True)                         # (n, K)
     d_h_psi = (h[:, :, 1:p + 1] - h[:, :, p + 1:]) / (2 * dp)              # (n, K, p)
-    d_p = -2.0 * np.einsum("nab,npbc,ncd->npad", inv, total_dh, inv)       # (n, p, 2, 2)
+    d_p = -2.0 * (inv[:, None] @ total_dh @ inv[:, None])                 # (n, p, 2, 2)
     b_inv = np.linalg.inv(chol)
-    inner = np.einsum("nab,npbc,ndc->npad", b_inv, d_p, b_inv)
+    inner = b_inv[:, None] @ d_p @ np.swapaxes(b_inv, 1, 2)[:, None]
     phi = np.tril(inner)
     phi[..., 0, 0] *= 0.5
     phi[..., 1, 1] *= 0.5
-    d_b = np.einsum("nab,npbc->npac", chol, phi)                          # (n, p, 2, 2)
-    move = tangent[:, None, :, :] + math.sqrt(2.0) * np.einsum(
-        "npab,kb->nkpa", d_b, grid)                                       # (n, K, p, 2)
-    d_h = d_h_psi + np.einsum("nka,nkpa->nkp", grad[:, :, 0], move)
+    d_b = chol[:, None] @ phi                                             # (n, p, 2, 2)
+    # G(eta_k)' (s_j + sqrt(2) dB_j x_k) as batched products: (n, K, 2) @ (n, 2, p) and
+    # (n, K, 4) @ (n, 4, p), the 4 being the (a, b) pairs of G_a x_b and dB_ab
+    g_k = grad[:, :, 0]                                                   # (n, K, 2)
+    gx = (g_k[:, :, :, None] * grid[None, :, None, :]).reshape(g_k.shape[0], -1, 4)
+    d_h = d_h_psi + g_k @ np.swapaxes(tangent, 1, 2) + math.sqrt(2.0) * (
+        gx @ np.swapaxes(d_b.reshape(d_b.shape[0], -1, 4), 1, 2))         # (n, K, p)
     return d_logdet + np.einsum("nk,nkp->np", weights, d_h)
 
 def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = False,
-            given: tuple[np.ndarray, np.ndarray] | None = None):
+            given: tuple[np.ndarray, np.ndarray] | None = None, all_gradients: bool = True):
     """The inner objective and its gradient (and, with ``hessian``, its exact Hessian)
     at points ``pts`` (n, K, 2) of every subject under each of the ``v`` outer vectors
     of ``b_all`` (rows ``i v + j``).
@@ -187,21 +191,27 @@ def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = Fals
     residual error among the vectors (most shifted vectors move a typical value or
     ``Omega`` only), and the prior part, which needs no model, per vector; in blocks
     of subjects of at most :data:`quadrature.CELL_BLOCK` cells.  ``given``: the model's
-    predictions at ``pts`` (rows ``i K + k``), when the objective kept them."""
+    predictions at ``pts`` (rows ``i K + k``), when the objective kept them.  Without
+    ``all_gradients`` the gradient is that under the first vector only (n, K, 1, 2)."""
     n, k = pts.shape[:2]
     errors = np.stack([b_all.sa[:v], b_all.sp[:v]], axis=1)
     distinct, which = np.unique(errors, axis=0, return_inverse=True)
     which = which.reshape(-1)
     u = len(distinct)
     levels = self.__dict__.get("_levels_only")
-    if levels is None:                      # the levels without the event geometry
-        levels = self._levels_only = replace(self.batch, kind="map", geometry=())
+    if levels is None:      # the levels only: no event geometry, times or doses to copy
+        none = np.empty((self.n, 0))
+        levels = self._levels_only = replace(
+            self.batch, kind="map", geometry=(), t=none, w=none, start=none, amount=none,
+            duration=none, sa=None, sp=None, mu=None, omega_inv=None)
     mu_all = b_all.mu.reshape(n, v, 2)
     oinv = b_all.omega_inv.reshape(n, v, 2, 2)[0]                  # (v, 2, 2)
+    a00, a01, a10, a11 = oinv[:, 0, 0], oinv[:, 0, 1], oinv[:, 1, 0], oinv[:, 1, 1]
     cells = self.batch.t.shape[1] * max(self.batch.start.shape[1], 1)
     per = max(1, quadrature.CELL_BLOCK // (k * max(u * self.batch.t.shape[1], cells)))
+    vg = v if all_gradients else 1
     obj = np.empty((n, k, v))
-    grad = np.empty((n, k, v, 2))
+    grad = np.empty((n, k, vg, 2))
     hess = np.empty((n, k, v, 2, 2)) if hessian else None
     zero_prior = np.zeros((1, 2, 2))
     for a in range(0, n, per):                                 # subjects in blocks
@@ -213,20 +223,26 @@ def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = Fals
         else:
             span = slice(a * k, (a + s) * k)
             pred = (given[0][span], given[1][:, span])
-        rep = np.repeat(np.arange(s * k), u)                    # each point x u errors
         rows = replace(levels.rows(np.repeat(subs, k * u)),
                        sa=np.tile(distinct[:, 0], s * k), sp=np.tile(distinct[:, 1], s * k),
                        mu=np.zeros((s * k * u, 2)),
                        omega_inv=np.broadcast_to(zero_prior, (s * k * u, 2, 2)))
-        at_rows = (pred[0][rep], *(d[:, rep] for d in pred[1:]))
+        if u == 1:                              # one residual error: the rows are the points
+            at_rows, at = pred, flat
+        else:                                   # each point x u errors
+            rep = np.repeat(np.arange(s * k), u)
+            at_rows, at = (pred[0][rep], *(d[:, rep] for d in pred[1:])), flat[rep]
         if hessian:
-            o, g, h, _ = exact_hessian(rows, flat[rep], predictions=at_rows)
+            o, g, h, _ = exact_hessian(rows, at, predictions=at_rows, information=False)
             hess[subs] = h.reshape(s, k, u, 2, 2)[:, :, which] + 2 * oinv
         else:
-            o, g, _, _ = evaluate(rows, flat[rep], predictions=at_rows)
-        d = pts[subs][:, :, None, :] - mu_all[subs][:, None, :, :]           # (s, k, v, 2)
-        od = np.stack([oinv[:, 0, 0] * d[..., 0] + oinv[:, 0, 1] * d[..., 1],
-                       oinv[:, 1, 0] * d[..., 0] + oinv[:, 1, 1] * d[..., 1]], axis=-1)
-        obj[subs] = o.reshape(s, k, u)[:, :, which] + np.einsum("skva,skva->skv", d, od)
-        grad[subs] = g.reshape(s, k, u, 2)[:, :, which] + 2 * od
+            o, g, _, _ = evaluate(rows, at, predictions=at_rows, information=False)
+        # the prior part, (eta - mu)' Omega^-1 (eta - mu), per vector
+        d0 = pts[subs][:, :, None, 0] - mu_all[subs][:, None, :, 0]        # (s, k, v)
+        d1 = pts[subs][:, :, None, 1] - mu_all[subs][:, None, :, 1]
+        od0, od1 = a00 * d0 + a01 * d1, a10 * d0 + a11 * d1
+        obj[subs] = o.reshape(s, k, u)[:, :, which] + d0 * od0 + d1 * od1
+        g = g.reshape(s, k, u, 2)[:, :, which[:vg]]
+        grad[subs, :, :, 0] = g[..., 0] + 2 * od0[:, :, :vg]
+        grad[subs, :, :, 1] = g[..., 1] + 2 * od1[:, :, :vg]
     return obj, grad, hess

@@ -51,7 +51,7 @@ def at_nodes(b: Batch, pts: np.ndarray, *, keep: bool = False):
         idx = np.arange(a, min(a + per, r * k))
         rows = b.rows(idx // k)
         pred = structural(rows, flat[idx])
-        out[idx] = evaluate(rows, flat[idx], predictions=pred)[0]
+        out[idx] = evaluate(rows, flat[idx], predictions=pred, information=False)[0]
         if kept is not None:
             kept[0][idx], kept[1][:, idx] = pred
     out = out.reshape(r, k)
