@@ -36,13 +36,16 @@ def starting_values(batch: Batch, n_grid: int = 16) -> np.ndarray:
                               n_grid).T)                                  # (B, G) in 1/h
     mult = np.array([1.0, 2.5, 1 / 2.5])
 
+    measured = batch.obs & (batch.y > 0)
+    log_y = np.log(np.where(measured, batch.y, 1.0))[:, None, :]          # once, not per k
+
     def fit_v(k):  # k (B, G) -> (ln V, sse)
         s = model.concentration(batch.t[:, None, :], batch.start[:, None, :],
                                 batch.amount[:, None, :], batch.duration[:, None, :], k,
                                 np.ones_like(k))                           # V = 1
-        pos = batch.obs[:, None, :] & (batch.y[:, None, :] > 0) & (s > 0)
+        pos = measured[:, None, :] & (s > 0)
         with np.errstate(divide="ignore", invalid="ignore"):
-            d = np.where(pos, np.log(s) - np.log(np.where(pos, batch.y[:, None, :], 1.0)), 0.0)
+            d = np.where(pos, np.log(s) - log_y, 0.0)
         n = np.maximum(pos.sum(axis=2), 1)
         lnv = d.sum(axis=2) / n
         sse = np.where(pos, (d - lnv[..., None]) ** 2, 0.0).sum(axis=2)
