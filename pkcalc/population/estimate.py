@@ -146,11 +146,44 @@ def _from_result(problem: MarginalProblem, r: PopulationResult) -> np.ndarray:
     if r.psi is not None and r.parameter_names == problem.names():
         return np.array(r.psi, float)
     beta = problem.design.start(np.log([r.typical["clearance"], r.typical["volume"]]))
-    return _pack_result(problem, r, beta)
+    return _pack_result(problem, r, *_regressed(problem, r, beta))
 
 
-def _pack_result(problem: MarginalProblem, r: PopulationResult, beta) -> np.ndarray:
-    omega = np.array(r.omega, float)
+def _regressed(problem: MarginalProblem, r: PopulationResult, beta0: np.ndarray):
+    """Fixed effects and variability of this model from an earlier estimate of another
+    model: least squares of that estimate's conditional modes (its subject means plus
+    ``eta``) on this model's mean function, linearised at ``beta0`` (exact for effects
+    linear in their parameter); ``Omega`` loses the spread of the modes the new means
+    explain (``Omega + cov(eta_new) - cov(eta)``, where that stays positive definite).
+    ``(beta0, None)`` when the earlier estimate has no modes for these subjects or the
+    regression gives a mean that cannot be used."""
+    design = problem.design
+    k = design.n_beta
+    if r.eta is None or len(r.subject_means) != len(r.eta):
+        return beta0, None
+    index = {s: i for i, s in enumerate(r.subject_means)}
+    where = [index.get(s.subject) for s in problem.subjects]
+    if any(w is None for w in where):
+        return beta0, None
+    eta = r.eta[where]
+    modes = np.array([r.subject_means[s.subject] for s in problem.subjects]) + eta
+    h = 1e-4
+    mu = design.means_many(np.vstack([beta0, beta0 + h * np.eye(k)]))      # (N, k + 1, 2)
+    if not np.all(np.isfinite(mu)) or not np.all(np.isfinite(modes)):
+        return beta0, None
+    jac = np.swapaxes((mu[:, 1:] - mu[:, :1]) / h, 1, 2).reshape(-1, k)    # (2N, k)
+    step = np.linalg.lstsq(jac, (modes - mu[:, 0]).reshape(-1), rcond=None)[0]
+    beta = beta0 + step
+    new_mu = design.means(beta)
+    if not np.all(np.isfinite(new_mu)):
+        return beta0, None
+    omega = np.array(r.omega, float) + np.cov((modes - new_mu).T) - np.cov(eta.T)
+    return beta, (omega if np.linalg.eigvalsh(omega).min() > 1e-6 else None)
+
+
+def _pack_result(problem: MarginalProblem, r: PopulationResult, beta,
+                 omega: np.ndarray | None = None) -> np.ndarray:
+    omega = np.array(r.omega if omega is None else omega, float)
     omega = omega + np.eye(2) * 1e-4 if np.linalg.eigvalsh(omega).min() <= 1e-6 else omega
     sa = r.residual_error.get("additive") or 0.0
     sp = r.residual_error.get("proportional") or 0.0

@@ -58,6 +58,9 @@ HESS_GRAD_STEP = 1e-3
 HESS_STEP = 2e-3
 #: Largest gradient of -2 ln L at which the optimiser's "success" is not believed.
 GRADIENT_DISAGREES = 1.0
+#: The outer optimiser stops when no component of the gradient of -2 ln L (projected on
+#: the bounds) exceeds this.
+OUTER_GTOL = 1e-4
 #: Condition number of the information (correlation form) above which the covariance
 #: step warns that the estimates are nearly confounded (common practice: 1e3 is a
 #: warning sign, 1e6 a failure; we warn from 1e4).
@@ -532,14 +535,23 @@ class MarginalProblem:
         state = {"it": 0}
         history: list[float] = []
 
-        seen: dict[str, tuple[np.ndarray, float]] = {}
+        seen: dict[str, tuple] = {}
+        lower, upper = self.lower_bounds(), self.upper_bounds()
+        psi0 = np.clip(psi0, lower + 1e-3, upper - 1e-3)
+        self.subject_terms(psi0, update=True, both=True)
+        value0, grad0, scale = self._start_and_scale(psi0)
 
-        def fun(psi):
-            value, grad = self.value_and_gradient(psi)
-            seen["last"] = (np.array(psi, float), value)
-            return value, grad
+        def fun(z):
+            psi = psi0 + scale * z
+            if not np.any(z):                          # the start, evaluated above
+                value, grad = value0, grad0
+            else:
+                value, grad = self.value_and_gradient(psi)
+            seen["last"] = (psi, value, grad)
+            return value, grad * scale
 
-        def callback(psi):
+        def callback(z):
+            psi = psi0 + scale * z
             state["it"] += 1
             last = seen.get("last")
             if last is not None and np.array_equal(last[0], psi) and self.accept(psi):
@@ -553,14 +565,20 @@ class MarginalProblem:
                     np.max(np.abs(psi - reference[0])) < 0.01:
                 state["reached"] = True
                 raise StopIteration
+            if last is not None and np.array_equal(last[0], psi) and \
+                    _projected(last[2], psi, lower, upper) <= OUTER_GTOL:
+                state["small"] = True               # the stop, on the unscaled gradient
+                raise StopIteration
 
-        lower, upper = self.lower_bounds(), self.upper_bounds()
-        psi0 = np.clip(psi0, lower + 1e-3, upper - 1e-3)
-        self.subject_terms(psi0, update=True, both=True)
-        res = minimize(fun, psi0, jac=True, method="L-BFGS-B", callback=callback,
-                       bounds=[(lo, None if not math.isfinite(hi) else hi)
-                               for lo, hi in zip(lower, upper, strict=True)],
-                       options={"gtol": 5e-3, "ftol": 1e-12, "maxiter": max_iter})
+        bounds = [((lo - p0) / sc if math.isfinite(lo) else None,
+                   (hi - p0) / sc if math.isfinite(hi) else None)
+                  for lo, hi, p0, sc in zip(lower, upper, psi0, scale, strict=True)]
+        res = minimize(fun, np.zeros_like(psi0), jac=True, method="L-BFGS-B",
+                       callback=callback, bounds=bounds,
+                       options={"gtol": 0.0, "ftol": 1e-12, "maxiter": max_iter})
+        res.x = psi0 + scale * np.asarray(res.x, float)
+        if state.get("small"):
+            res.success = True
         psi = np.asarray(res.x, float)
         m2ll, theta, post = self.subject_terms(psi, update=True, both=True)
         value = float(np.sum(m2ll))
@@ -586,6 +604,26 @@ class MarginalProblem:
         return MarginalFit(psi, value, converged and math.isfinite(value), message,
                            int(res.nit), self.evaluations, cov, corr, cond, warnings, theta,
                            post, time.perf_counter() - t0, history)
+
+    def _start_and_scale(self, psi0: np.ndarray):
+        """The objective and gradient at the start, and a scale for each outer parameter:
+        ``1 / sqrt`` of the diagonal of the cross-product of the subjects' gradients
+        (the BHHH information, Berndt et al., Ann Econ Soc Meas 1974;3:653 -- from
+        memory), so that the optimiser starts from steps of the right size in every
+        direction; 1 where the subjects' gradients are not available."""
+        m2ll, parts = self.value_and_gradient_parts(psi0)
+        value = float(np.sum(m2ll))
+        if not math.isfinite(value):
+            return math.inf, np.zeros(psi0.size), np.ones(psi0.size)
+        scale = np.ones(psi0.size)
+        if parts is None:
+            parts = self.tangent_parts(psi0)
+        else:
+            info = 0.5 * np.einsum("np,np->p", parts, parts)
+            ok = np.isfinite(info) & (info > 0)
+            scale[ok] = np.clip(1.0 / np.sqrt(info[ok]), 1e-2, 1e2)
+        self.evaluations += 2 * psi0.size
+        return value, parts.sum(axis=0), scale
 
     def _covariance(self, psi: np.ndarray):
         """Covariance of the outer parameters from the observed information."""
@@ -616,3 +654,12 @@ class MarginalProblem:
                             "confounded and their standard errors unreliable")
         return cov, corr, cond, warnings
 
+
+
+def _projected(grad: np.ndarray, psi: np.ndarray, lower: np.ndarray, upper: np.ndarray
+               ) -> float:
+    """Largest component of the gradient projected on the box: a component at a bound
+    that points out of the box counts as 0."""
+    near = 1e-9 * (1.0 + np.abs(psi))
+    held = ((psi <= lower + near) & (grad > 0)) | ((psi >= upper - near) & (grad < 0))
+    return float(np.max(np.abs(np.where(held, 0.0, grad)), initial=0.0))
