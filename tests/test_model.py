@@ -618,3 +618,64 @@ def test_a_vanishing_infusion_is_a_bolus(d):
     np.testing.assert_allclose(c, bolus, rtol=1e-12)
     _, g, h = model.concentration_derivatives(t, [0.0], [100.0], [d], 2.0, 20.0)
     assert np.all(np.isfinite(g)) and np.all(np.isfinite(h))
+
+
+# --------------------------------------------------------------------------- compact layout
+def _ragged_rows(rng: np.random.Generator, n_rows: int = 5, initial: bool = True):
+    """Invented ragged rows padded like a study: many doses (boluses, infusions, with
+    ``initial`` sometimes an initial level), few levels, some levels before some doses;
+    padding amount 0."""
+    rows = []
+    for _ in range(n_rows):
+        start, amount, duration = random_regimen(rng, n_events=int(rng.integers(1, 8)))
+        if initial and rng.random() < 0.5:
+            start = np.append(start, 0.0)
+            amount = np.append(amount, rng.uniform(1, 5))
+            duration = np.append(duration, model.INITIAL_LEVEL)
+        t = np.sort(rng.uniform(0, 60, int(rng.integers(1, 5))))
+        rows.append((t, start, amount, duration))
+    n = max(r[0].size for r in rows)
+    e = max(r[1].size for r in rows)
+    t = np.zeros((n_rows, n))
+    s, a, d = np.zeros((n_rows, e)), np.zeros((n_rows, e)), np.zeros((n_rows, e))
+    for i, (ti, si, ai, di) in enumerate(rows):
+        t[i, :ti.size], s[i, :si.size], a[i, :ai.size], d[i, :di.size] = ti, si, ai, di
+    return t, s, a, d, rows
+
+
+@given(st.integers(0, 10_000))
+@settings(max_examples=25, deadline=None)
+def test_contributing_cells_give_the_padded_layout_results(seed):
+    """The compact layout (only the pairs that contribute) against the padded layout:
+    the same predictions, gradients and second derivatives (rounding only); and rows
+    taken in any order, repeated, equal the cells of those padded rows."""
+    rng = np.random.default_rng(seed)
+    t, s, a, d, _ = _ragged_rows(rng)
+    cl, v = rng.uniform(0.5, 10, t.shape[0]), rng.uniform(5, 100, t.shape[0])
+    cells = model.event_cells(t, s, a, d)
+    padded = model.concentration_derivatives(t, s, a, d, cl, v)
+    compact = model.concentration_derivatives(t, s, a, d, cl, v, geometry=cells)
+    for x, y in zip(padded, compact, strict=True):
+        np.testing.assert_allclose(y, x, rtol=1e-12, atol=1e-14)
+    c2, g2 = model.concentration_and_gradient(t, s, a, d, cl, v, geometry=cells)
+    np.testing.assert_allclose(c2, padded[0], rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(g2, padded[1], rtol=1e-12, atol=1e-14)
+    idx = rng.integers(0, t.shape[0], 7)
+    picked = cells.rows(idx)
+    direct = model.event_cells(t[idx], s[idx], a[idx], d[idx])
+    for name in ("u", "w", "amount", "duration", "row", "slot", "counts"):
+        np.testing.assert_array_equal(getattr(picked, name), getattr(direct, name))
+
+
+def test_contributing_cells_match_solve_ivp():
+    # Reference: scipy.integrate.solve_ivp on each row's own dosing history (an
+    # independent numerical solution), predictions through the compact layout.
+    rng = np.random.default_rng(7)
+    t, s, a, d, rows = _ragged_rows(rng, n_rows=4, initial=False)
+    cl, v = np.full(t.shape[0], 3.0), np.full(t.shape[0], 40.0)
+    cells = model.event_cells(t, s, a, d)
+    assert cells.u.size < t.size * s.shape[1]          # the layout is compact here
+    conc, _ = model.concentration_and_gradient(t, s, a, d, cl, v, geometry=cells)
+    for i, (ti, si, ai, di) in enumerate(rows):
+        ref = ode_reference(ti, si, ai, di, 3.0, 40.0)
+        np.testing.assert_allclose(conc[i, :ti.size], ref, rtol=1e-9, atol=1e-12)

@@ -33,6 +33,9 @@ __all__ = ["Batch", "build_batch", "evaluate", "exact_hessian", "n_error_params"
            "positive_definite", "profiled_sigma", "structural"]
 
 LOG_2PI = math.log(2 * math.pi)
+#: Below this share of contributing (time, dose) pairs in the padded layout, a batch
+#: evaluates the model on the contributing pairs only (:class:`pkcalc.model.EventCells`).
+SPARSE_CELLS = 0.5
 
 
 @dataclass(frozen=True)
@@ -72,13 +75,17 @@ class Batch:
     sp: np.ndarray | None = None
     mu: np.ndarray | None = None
     omega_inv: np.ndarray | None = None
-    geometry: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+    geometry: tuple[np.ndarray, np.ndarray, np.ndarray] | model.EventCells | None = None
     compartments: int = 1
 
     def __post_init__(self) -> None:
         if self.geometry is None:  # parameter-free part of the model, computed once
-            object.__setattr__(self, "geometry",
-                               model.event_geometry(self.t, self.start, self.duration))
+            geometry = model.event_geometry(self.t, self.start, self.duration)
+            used = geometry[2] & (self.amount[:, None, :] != 0)
+            if used.size and used.mean() < SPARSE_CELLS:   # many doses, few levels
+                geometry = model.event_cells(self.t, self.start, self.amount,
+                                             self.duration, geometry)
+            object.__setattr__(self, "geometry", geometry)
 
     def rows(self, idx: np.ndarray) -> Batch:
         """The batch restricted to some rows."""
@@ -88,7 +95,9 @@ class Batch:
                        cens=self.cens[idx], start=self.start[idx], amount=self.amount[idx],
                        duration=self.duration[idx], sa=sub(self.sa), sp=sub(self.sp),
                        mu=sub(self.mu), omega_inv=sub(self.omega_inv),
-                       geometry=tuple(g[idx] for g in self.geometry))
+                       geometry=self.geometry.rows(idx)
+                       if isinstance(self.geometry, model.EventCells)
+                       else tuple(g[idx] for g in self.geometry))
 
     def repeat(self, n: int) -> Batch:
         """Each row repeated ``n`` times consecutively (for several starts)."""
