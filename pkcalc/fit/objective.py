@@ -110,6 +110,14 @@ class Batch:
         return 2 if self.compartments == 1 else 4
 
     @property
+    def cells_per_row(self) -> int:
+        """(level, dose) pairs the model evaluates per row: the padded ``N x E``, or the
+        mean number of contributing pairs in the compact layout (for sizing blocks)."""
+        if isinstance(self.geometry, model.EventCells):
+            return max(1, -(-self.geometry.u.size // max(self.t.shape[0], 1)))
+        return self.t.shape[1] * max(self.start.shape[1], 1)
+
+    @property
     def n_obs(self) -> np.ndarray:
         return self.obs.sum(axis=1) + self.cens.sum(axis=1)
 

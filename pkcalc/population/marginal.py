@@ -305,7 +305,7 @@ class MarginalProblem:
     def _vectors_per_block(self) -> int:
         """Outer parameter vectors whose rows (every subject, x 2 for the Hessian's
         shifted points) fit in ``quadrature.CELL_BLOCK`` cells; at least one."""
-        cells = self.batch.t.shape[1] * max(self.batch.start.shape[1], 1)
+        cells = self.batch.cells_per_row
         return max(1, quadrature.CELL_BLOCK // (2 * self.n * cells))
 
     def _objective_parts(self, psis: np.ndarray) -> np.ndarray:

@@ -41,7 +41,7 @@ def at_nodes(b: Batch, pts: np.ndarray, *, keep: bool = False):
     :data:`KEEP_CELLS` numbers (else None)."""
     r, k = pts.shape[:2]
     flat = pts.reshape(r * k, -1)
-    cells = b.t.shape[1] * max(b.start.shape[1], 1)
+    cells = b.cells_per_row
     per = max(1, CELL_BLOCK // cells)
     out = np.empty(r * k)
     kept = None
