@@ -109,9 +109,12 @@ def covariances(batch: Batch, obj: np.ndarray, hess: np.ndarray, kind: str):
     eig_cv = np.linalg.eigvalsh(corr[:, :2, :2])
     identifiable = (eig_cv.min(axis=1) >= IDENTIFIABILITY_EIG) & (eig_all.min(axis=1) > 0)
     identifiable &= np.all(np.isfinite(info), axis=(1, 2)) & finite
-    with np.errstate(divide="ignore", invalid="ignore"):
+    # a row whose information is about 1e-300 (a parameter the levels do not see at
+    # all) overflows here: its covariance is not finite, and it is not identifiable
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         inv_corr = np.einsum("bij,bj,bkj->bik", vec, 1 / eig_all, vec)
         cov = inv_corr / (d[:, :, None] * d[:, None, :]) * scale[:, None, None]
+    identifiable &= np.all(np.isfinite(cov), axis=(1, 2)) | ~np.isfinite(scale)
     bad = ~identifiable | ~np.isfinite(scale)
     cov[bad] = np.nan
     return cov, identifiable, scale
