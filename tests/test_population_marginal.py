@@ -487,3 +487,20 @@ def test_bootstrap_of_the_marginal_estimate_is_seeded(run_cli, write):
     c = run_cli(*args, "--workers", "2")
     assert c.code == 0, c.err
     assert c.json()["bootstrap"] == boot
+
+
+def test_the_outer_optimiser_runs_blas_on_one_thread_and_restores_it():
+    """threadpoolctl's own account of the loaded BLAS libraries: one thread inside the
+    optimiser's context, the previous numbers after it (a user's settings survive)."""
+    from threadpoolctl import threadpool_info
+
+    from pkcalc.population.marginal import _one_blas_thread
+
+    before = {i["filepath"]: i["num_threads"] for i in threadpool_info()
+              if i["user_api"] == "blas"}
+    with _one_blas_thread():
+        inside = [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+    after = {i["filepath"]: i["num_threads"] for i in threadpool_info()
+             if i["user_api"] == "blas"}
+    assert inside and all(n == 1 for n in inside)
+    assert after == before

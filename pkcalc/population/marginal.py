@@ -573,9 +573,10 @@ class MarginalProblem:
         bounds = [((lo - p0) / sc if math.isfinite(lo) else None,
                    (hi - p0) / sc if math.isfinite(hi) else None)
                   for lo, hi, p0, sc in zip(lower, upper, psi0, scale, strict=True)]
-        res = minimize(fun, np.zeros_like(psi0), jac=True, method="L-BFGS-B",
-                       callback=callback, bounds=bounds,
-                       options={"gtol": 0.0, "ftol": 1e-12, "maxiter": max_iter})
+        with _one_blas_thread():
+            res = minimize(fun, np.zeros_like(psi0), jac=True, method="L-BFGS-B",
+                           callback=callback, bounds=bounds,
+                           options={"gtol": 0.0, "ftol": 1e-12, "maxiter": max_iter})
         res.x = psi0 + scale * np.asarray(res.x, float)
         if state.get("small"):
             res.success = True
@@ -663,3 +664,22 @@ def _projected(grad: np.ndarray, psi: np.ndarray, lower: np.ndarray, upper: np.n
     near = 1e-9 * (1.0 + np.abs(psi))
     held = ((psi <= lower + near) & (grad > 0)) | ((psi >= upper - near) & (grad < 0))
     return float(np.max(np.abs(np.where(held, 0.0, grad)), initial=0.0))
+
+
+_BLAS: list = []
+
+
+def _one_blas_thread():
+    """A context in which the BLAS libraries run on one thread.
+
+    scipy's L-BFGS-B calls BLAS routines that OpenBLAS hands to a second thread, which
+    then busy-waits between the calls: a whole core spent for as long as the outer
+    optimiser runs (measured on two cores: user time twice the wall time for the
+    phenobarbital estimate).  The arrays of the outer problem are small, so one
+    thread loses nothing.  threadpoolctl finds the libraries once (those loaded by
+    then: numpy's and scipy's)."""
+    if not _BLAS:
+        from threadpoolctl import ThreadpoolController
+
+        _BLAS.append(ThreadpoolController())
+    return _BLAS[0].limit(limits=1, user_api="blas")
