@@ -112,7 +112,9 @@ def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray, *,
     # the predictions are given: the rows need no event geometry (the big arrays)
     b_all = replace(b_all, geometry=())
     b_one = replace(self._rows(psi[None])[0], geometry=())
-    obj, grad0, h0 = _reused(self, b_all, theta[:, None, :], v, hessian=True)
+    kept = self.__dict__.get("_mode_kept")
+    given = kept[1] if kept is not None and kept[0] is theta else None
+    obj, grad0, h0 = _reused(self, b_all, theta[:, None, :], v, hessian=True, given=given)
     obj, grad0, h0 = obj[:, 0], grad0[:, 0], h0[:, 0]       # (n, v), (n, v, 2), (n, v, 2, 2)
     _, _, h1 = _reused(self, b_one, theta[:, None, :] + centres[None], 1, hessian=True)
     h1 = h1[:, :, 0]                                        # (n, 4, 2, 2) at the neighbours
@@ -181,7 +183,7 @@ def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logde
     return d_logdet + np.einsum("nk,nkp->np", weights, d_h)
 
 def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = False,
-            given: tuple[np.ndarray, np.ndarray] | None = None, all_gradients: bool = True):
+            given: tuple[np.ndarray, ...] | None = None, all_gradients: bool = True):
     """The inner objective and its gradient (and, with ``hessian``, its exact Hessian)
     at points ``pts`` (n, K, 2) of every subject under each of the ``v`` outer vectors
     of ``b_all`` (rows ``i v + j``).
@@ -191,7 +193,8 @@ def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = Fals
     residual error among the vectors (most shifted vectors move a typical value or
     ``Omega`` only), and the prior part, which needs no model, per vector; in blocks
     of subjects of at most :data:`quadrature.CELL_BLOCK` cells.  ``given``: the model's
-    predictions at ``pts`` (rows ``i K + k``), when the objective kept them.  Without
+    predictions at ``pts`` (rows ``i K + k``; with ``hessian`` also the second
+    derivatives), when the objective kept them.  Without
     ``all_gradients`` the gradient is that under the first vector only (n, K, 1, 2)."""
     n, k = pts.shape[:2]
     errors = np.stack([b_all.sa[:v], b_all.sp[:v]], axis=1)
@@ -222,7 +225,7 @@ def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = Fals
             pred = structural(self.batch.rows(np.repeat(subs, k)), flat, second=hessian)
         else:
             span = slice(a * k, (a + s) * k)
-            pred = (given[0][span], given[1][:, span])
+            pred = (given[0][span], *(d[:, span] for d in given[1:]))
         rows = replace(levels.rows(np.repeat(subs, k * u)),
                        sa=np.tile(distinct[:, 0], s * k), sp=np.tile(distinct[:, 1], s * k),
                        mu=np.zeros((s * k * u, 2)),

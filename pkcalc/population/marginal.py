@@ -42,7 +42,7 @@ import numpy as np
 
 from ..core import FitOptions, SubjectData
 from ..fit.data import prepare_batch
-from ..fit.objective import Batch, exact_hessian, positive_definite
+from ..fit.objective import Batch, exact_hessian, positive_definite, structural
 from ..fit.solver import minimise
 from . import quadrature
 from .covariates import Design
@@ -266,7 +266,10 @@ class MarginalProblem:
         ``theta`` (the conditional modes; no solve here), and the posterior covariance.
         With ``keep`` (the rows are the subjects under one vector) the quadrature nodes
         and the model's predictions there are kept for the gradient at that point."""
-        g, _, hess, info = exact_hessian(b, theta)
+        pred = structural(b, theta, second=True)
+        if keep:                    # the model at the modes, for the gradient there
+            self._mode_kept = (theta, pred)
+        g, _, hess, info = exact_hessian(b, theta, predictions=pred)
         # where the Hessian is not positive definite: the scoring matrix
         half = 0.5 * np.where(positive_definite(hess)[:, None, None], hess, info)
         post = np.linalg.inv(half)
