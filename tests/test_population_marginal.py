@@ -150,7 +150,8 @@ def test_objectives_at_many_points_equal_the_one_at_a_time_objective(nodes):
 
 @pytest.mark.parametrize(("nodes", "error", "diagonal", "blq"), [
     (1, "proportional", False, False), (1, "combined", True, True),
-    (3, "additive", False, False), (5, "combined", False, True)])
+    (3, "additive", False, False), (3, "proportional", True, False),
+    (5, "combined", False, True)])
 def test_implicit_function_gradient_equals_central_differences(nodes, error, diagonal, blq):
     # the outer gradient moves each mode along -H^-1 dG/dpsi instead of solving it again;
     # the reference: central differences of the objective with every mode re-solved,
@@ -504,3 +505,34 @@ def test_the_outer_optimiser_runs_blas_on_one_thread_and_restores_it():
              if i["user_api"] == "blas"}
     assert inside and all(n == 1 for n in inside)
     assert after == before
+
+
+@pytest.mark.parametrize("error", ["additive", "proportional"])
+def test_levels_part_rescaled_between_residual_errors_equals_evaluating_each(error,
+                                                                           monkeypatch):
+    """The quadrature gradient's levels' part under shifted residual errors, rescaled
+    from one evaluation (pure additive or proportional error), against evaluating the
+    objective under each error (the general path) -- same numbers up to rounding."""
+    from pkcalc.population import gradient
+
+    subs = invented_study(12, seed=21, levels=3)
+    design = build_design(subs, ())
+    prob = MarginalProblem(subs, design, error_model=error, blq="likelihood", nodes=3)
+    psi = prob.pack(np.log([5.0, 50.0]), np.array([[0.09, 0.01], [0.01, 0.04]]), 0.05,
+                    0.12)
+    _, theta, _ = prob.subject_terms(psi, update=True, both=True)
+    p = psi.size
+    vectors = np.concatenate([psi[None], psi + 1e-4 * np.eye(p), psi - 1e-4 * np.eye(p)])
+    b_all, _, _, usable = prob._rows(vectors)
+    assert usable.all()
+    rng = np.random.default_rng(3)
+    pts = theta[:, None, :] + rng.normal(0, 0.2, (theta.shape[0], 9, 2))
+    taken = []
+    rescale = gradient._scaled_errors
+    monkeypatch.setattr(gradient, "_scaled_errors",
+                        lambda *a: taken.append(rescale(*a) is not None) or rescale(*a))
+    fast = gradient._reused(prob, b_all, pts, len(vectors))
+    assert taken and all(taken)                       # the rescaled path was the one run
+    slow = gradient._reused(prob, b_all, pts, len(vectors), separable=False)
+    np.testing.assert_allclose(fast[0], slow[0], rtol=1e-12)
+    np.testing.assert_allclose(fast[1], slow[1], rtol=1e-9, atol=1e-9)

@@ -183,7 +183,8 @@ def _quadrature_part(self, b_all, theta, inv, total_dh, tangent, d_logdet, logde
     return d_logdet + np.einsum("nk,nkp->np", weights, d_h)
 
 def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = False,
-            given: tuple[np.ndarray, ...] | None = None, all_gradients: bool = True):
+            given: tuple[np.ndarray, ...] | None = None, all_gradients: bool = True,
+            separable: bool = True):
     """The inner objective and its gradient (and, with ``hessian``, its exact Hessian)
     at points ``pts`` (n, K, 2) of every subject under each of the ``v`` outer vectors
     of ``b_all`` (rows ``i v + j``).
@@ -195,7 +196,10 @@ def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = Fals
     of subjects of at most :data:`quadrature.CELL_BLOCK` cells.  ``given``: the model's
     predictions at ``pts`` (rows ``i K + k``; with ``hessian`` also the second
     derivatives), when the objective kept them.  Without
-    ``all_gradients`` the gradient is that under the first vector only (n, K, 1, 2)."""
+    ``all_gradients`` the gradient is that under the first vector only (n, K, 1, 2).
+    With ``separable`` (pure additive or proportional error, no BLQ level) the levels'
+    part under the other residual errors is rescaled from the first one's
+    (:func:`_scaled_errors`) instead of evaluated again."""
     n, k = pts.shape[:2]
     errors = np.stack([b_all.sa[:v], b_all.sp[:v]], axis=1)
     distinct, which = np.unique(errors, axis=0, return_inverse=True)
@@ -226,20 +230,27 @@ def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = Fals
         else:
             span = slice(a * k, (a + s) * k)
             pred = (given[0][span], *(d[:, span] for d in given[1:]))
-        rows = replace(levels.rows(np.repeat(subs, k * u)),
-                       sa=np.tile(distinct[:, 0], s * k), sp=np.tile(distinct[:, 1], s * k),
-                       mu=np.zeros((s * k * u, 2)),
-                       omega_inv=np.broadcast_to(zero_prior, (s * k * u, 2, 2)))
-        if u == 1:                              # one residual error: the rows are the points
-            at_rows, at = pred, flat
-        else:                                   # each point x u errors
-            rep = np.repeat(np.arange(s * k), u)
-            at_rows, at = (pred[0][rep], *(d[:, rep] for d in pred[1:])), flat[rep]
-        if hessian:
-            o, g, h, _ = exact_hessian(rows, at, predictions=at_rows, information=False)
-            hess[subs] = h.reshape(s, k, u, 2, 2)[:, :, which] + 2 * oinv
+        quick = None
+        if separable and u > 1 and not hessian:
+            quick = _scaled_errors(self.error, levels.rows(np.repeat(subs, k)), flat, pred,
+                                   distinct, zero_prior)
+        if quick is not None:
+            o, g = quick
         else:
-            o, g, _, _ = evaluate(rows, at, predictions=at_rows, information=False)
+            rows = replace(levels.rows(np.repeat(subs, k * u)),
+                           sa=np.tile(distinct[:, 0], s * k),
+                           sp=np.tile(distinct[:, 1], s * k), mu=np.zeros((s * k * u, 2)),
+                           omega_inv=np.broadcast_to(zero_prior, (s * k * u, 2, 2)))
+            if u == 1:                          # one residual error: the rows are the points
+                at_rows, at = pred, flat
+            else:                               # each point x u errors
+                rep = np.repeat(np.arange(s * k), u)
+                at_rows, at = (pred[0][rep], *(d[:, rep] for d in pred[1:])), flat[rep]
+            if hessian:
+                o, g, h, _ = exact_hessian(rows, at, predictions=at_rows, information=False)
+                hess[subs] = h.reshape(s, k, u, 2, 2)[:, :, which] + 2 * oinv
+            else:
+                o, g, _, _ = evaluate(rows, at, predictions=at_rows, information=False)
         # the prior part, (eta - mu)' Omega^-1 (eta - mu), per vector
         d0 = pts[subs][:, :, None, 0] - mu_all[subs][:, None, :, 0]        # (s, k, v)
         d1 = pts[subs][:, :, None, 1] - mu_all[subs][:, None, :, 1]
@@ -249,3 +260,46 @@ def _reused(self, b_all: Batch, pts: np.ndarray, v: int, *, hessian: bool = Fals
         grad[subs, :, :, 0] = g[..., 0] + 2 * od0[:, :, :vg]
         grad[subs, :, :, 1] = g[..., 1] + 2 * od1[:, :, :vg]
     return obj, grad, hess
+
+
+def _scaled_errors(error: str, rows: Batch, flat: np.ndarray, pred, distinct: np.ndarray,
+                   zero_prior: np.ndarray):
+    """The levels' part of ``h`` and its gradient in ``eta`` under each residual error of
+    ``distinct`` (u, 2), from one evaluation under the first: with a pure additive error
+    ``c = sa^2`` and a pure proportional one ``c = sp^2`` (variance ``c f^2``), a row with
+    ``n`` levels has ``l(c) = n ln(2 pi c) + sum ln f^2 [prop.] + S / c`` and gradient
+    ``A + B / c`` (``S`` the sum of ``r^2`` or ``(r/f)^2``, ``A`` the gradient of
+    ``sum ln f^2``: 0 for additive, ``sum 2 J/f`` for proportional), so
+    ``l(c) = l(c0) + n ln(c/c0) + S (1/c - 1/c0)`` and
+    ``grad(c) = A + (grad(c0) - A) c0/c`` [calc].  None (evaluate each error) when a
+    level is censored, or a variance would reach the objective's floor (a level
+    predicted at about 0 under proportional error)."""
+    if error not in ("additive", "proportional") or rows.cens.any():
+        return None
+    f, jac = pred[0], pred[1]
+    obs = rows.obs
+    col = 0 if error == "additive" else 1
+    c0, c = distinct[0, col] ** 2, distinct[:, col] ** 2                      # (u,)
+    f2 = f * f if error == "proportional" else 1.0
+    # the variance must stay above the objective's floor (1e-300) at every level
+    if (obs & ~(c.min() * f2 > 1e-290)).any():
+        return None
+    m = rows.t.shape[0]
+    one = replace(rows, sa=np.full(m, distinct[0, 0]), sp=np.full(m, distinct[0, 1]),
+                  mu=np.zeros((m, 2)), omega_inv=np.broadcast_to(zero_prior, (m, 2, 2)))
+    o0, g0, _, _ = evaluate(one, flat, predictions=(f, jac), information=False)
+    r = np.where(obs, rows.y - f, 0.0)
+    n_obs = obs.sum(axis=1)
+    if error == "additive":
+        s_sum = np.einsum("bn,bn->b", r, r)
+        a_part = np.zeros_like(g0)
+    else:
+        q = r / np.where(obs, f, 1.0)
+        s_sum = np.einsum("bn,bn->b", q, q)
+        inv_f = np.where(obs, 2.0 / np.where(obs, f, 1.0), 0.0)
+        a_part = np.stack([np.einsum("bn,bn->b", inv_f, jac[0]),
+                           np.einsum("bn,bn->b", inv_f, jac[1])], axis=1)
+    o = o0[:, None] + n_obs[:, None] * np.log(c / c0)[None, :] + \
+        s_sum[:, None] * (1.0 / c - 1.0 / c0)[None, :]
+    g = a_part[:, None, :] + (g0 - a_part)[:, None, :] * (c0 / c)[None, :, None]
+    return o.reshape(-1), g.reshape(-1, 2)
