@@ -659,7 +659,6 @@ class MarginalProblem:
         return cov, corr, cond, warnings
 
 
-
 def _projected(grad: np.ndarray, psi: np.ndarray, lower: np.ndarray, upper: np.ndarray
                ) -> float:
     """Largest component of the gradient projected on the box: a component at a bound
