@@ -33,6 +33,7 @@ Hessian of ``-2 ln L`` by central differences.
 
 from __future__ import annotations
 
+import functools
 import math
 import time
 from collections.abc import Callable
@@ -587,8 +588,7 @@ class MarginalProblem:
         m2ll, theta, post = self.subject_terms(psi, update=True, both=True)
         value = float(np.sum(m2ll))
         grad = self.gradient(psi)
-        free = ~((psi <= lower + 1e-6) & (grad > 0))        # at a floor, pushed down
-        gmax = float(np.max(np.abs(grad[free]))) if free.any() else 0.0
+        gmax = _projected(grad, psi, lower, upper, near=1e-6)   # a bound pushed on: 0
         # the optimiser's own success counts only where the gradient agrees: a line search
         # that cannot move (every trial step infinite) can end "successfully" far from it
         success = bool(res.success) and gmax < GRADIENT_DISAGREES
@@ -659,16 +659,22 @@ class MarginalProblem:
         return cov, corr, cond, warnings
 
 
-def _projected(grad: np.ndarray, psi: np.ndarray, lower: np.ndarray, upper: np.ndarray
-               ) -> float:
-    """Largest component of the gradient projected on the box: a component at a bound
-    that points out of the box counts as 0."""
-    near = 1e-9 * (1.0 + np.abs(psi))
+def _projected(grad: np.ndarray, psi: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+               near: float = 1e-9) -> float:
+    """Largest component of the gradient projected on the box: a component within
+    ``near (1 + |psi|)`` of a bound that points out of the box counts as 0."""
+    near = near * (1.0 + np.abs(psi))
     held = ((psi <= lower + near) & (grad > 0)) | ((psi >= upper - near) & (grad < 0))
     return float(np.max(np.abs(np.where(held, 0.0, grad)), initial=0.0))
 
 
-_BLAS: list = []
+@functools.cache
+def _blas_controller():
+    """threadpoolctl's view of the BLAS libraries loaded by now (numpy's and scipy's),
+    found once."""
+    from threadpoolctl import ThreadpoolController
+
+    return ThreadpoolController()
 
 
 def _one_blas_thread():
@@ -678,10 +684,5 @@ def _one_blas_thread():
     then busy-waits between the calls: a whole core spent for as long as the outer
     optimiser runs (measured on two cores: user time twice the wall time for the
     phenobarbital estimate).  The arrays of the outer problem are small, so one
-    thread loses nothing.  threadpoolctl finds the libraries once (those loaded by
-    then: numpy's and scipy's)."""
-    if not _BLAS:
-        from threadpoolctl import ThreadpoolController
-
-        _BLAS.append(ThreadpoolController())
-    return _BLAS[0].limit(limits=1, user_api="blas")
+    thread loses nothing."""
+    return _blas_controller().limit(limits=1, user_api="blas")
