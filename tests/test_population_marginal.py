@@ -536,3 +536,32 @@ def test_levels_part_rescaled_between_residual_errors_equals_evaluating_each(err
     slow = gradient._reused(prob, b_all, pts, len(vectors), separable=False)
     np.testing.assert_allclose(fast[0], slow[0], rtol=1e-12)
     np.testing.assert_allclose(fast[1], slow[1], rtol=1e-9, atol=1e-9)
+
+
+def test_a_compared_model_starts_from_the_earlier_modes_regressed_on_its_covariates():
+    """The start of a larger model from a base estimate: when the base's conditional
+    modes lie exactly on the larger model's mean function (built here by hand from
+    known effects: a weight exponent 0.75 on CL and a 1.3 factor for men on V), least
+    squares gives those effects back, and Omega loses the spread they explain."""
+    from types import SimpleNamespace
+
+    from pkcalc.population.estimate import _regressed
+
+    subs = invented_study(40, seed=31)
+    design = build_design(subs, (Effect("weight", "clearance", reference=70.0),
+                                 Effect("sex", "volume")))
+    prob = MarginalProblem(subs, design, error_model="proportional", blq="likelihood")
+    truth = np.array([math.log(5.0), math.log(50.0), 0.75, math.log(1.3)])
+    w = np.array([s.covariates["weight"] for s in subs])
+    male = np.array([s.covariates["sex"] == "M" for s in subs])
+    modes = np.column_stack([math.log(5.0) + 0.75 * np.log(w / 70.0),
+                             math.log(50.0) + np.where(male, math.log(1.3), 0.0)])
+    base_mean = modes.mean(axis=0)                     # the base model: no covariate
+    omega = np.cov((modes - base_mean).T) + np.diag([0.04, 0.02])
+    earlier = SimpleNamespace(eta=modes - base_mean, omega=omega,
+                              subject_means={s.subject: tuple(base_mean) for s in subs})
+    # the design's own parameters may order the sex levels either way: compare means
+    beta, new_omega = _regressed(prob, earlier, design.start(base_mean))
+    np.testing.assert_allclose(design.means(beta), modes, atol=1e-8)
+    assert design.n_beta == truth.size
+    np.testing.assert_allclose(new_omega, np.diag([0.04, 0.02]), atol=1e-8)
