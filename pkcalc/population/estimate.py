@@ -123,7 +123,8 @@ def _starts(problem: MarginalProblem, subjects, options: PopulationOptions,
             start: PopulationResult | None) -> list[np.ndarray]:
     """A few iterative two-stage steps (:data:`START_STEPS`), and the standard two-stage
     answer when the data allow one (otherwise the first start with doubled
-    variances)."""
+    variances); each carries the model's covariate effects regressed from its subjects'
+    estimates (:func:`_regressed`)."""
     if start is not None:
         return [_from_result(problem, start)]
     out = []
@@ -142,42 +143,62 @@ def _starts(problem: MarginalProblem, subjects, options: PopulationOptions,
 
 def _from_result(problem: MarginalProblem, r: PopulationResult) -> np.ndarray:
     """A start from an earlier estimate: its own parameters when it is the same model,
-    otherwise its typical values, variability and residual error (no covariate effect)."""
+    otherwise its typical values, variability and residual error, with this model's
+    covariate effects regressed from its subjects' estimates (:func:`_regressed`)."""
     if r.psi is not None and r.parameter_names == problem.names():
         return np.array(r.psi, float)
     beta = problem.design.start(np.log([r.typical["clearance"], r.typical["volume"]]))
-    return _pack_result(problem, r, *_regressed(problem, r, beta))
+    means, eta = _subject_estimates(r)
+    return _pack_result(problem, r, *_regressed(problem, means, eta, r.omega, beta))
 
 
-def _regressed(problem: MarginalProblem, r: PopulationResult, beta0: np.ndarray):
-    """Fixed effects and variability of this model from an earlier estimate of another
-    model: least squares of that estimate's conditional modes (its subject means plus
-    ``eta``) on this model's mean function, linearised at ``beta0`` (exact for effects
-    linear in their parameter); ``Omega`` loses the spread of the modes the new means
-    explain (``Omega + cov(eta_new) - cov(eta)``, where that stays positive definite).
-    ``(beta0, None)`` when the earlier estimate has no modes for these subjects or the
-    regression gives a mean that cannot be used."""
+def _subject_estimates(r: PopulationResult):
+    """An earlier estimate's subject means and each subject's deviation from them (ln CL,
+    ln V): its conditional modes, or -- a standard two-stage estimate -- the converged
+    individual estimates about the typical values.  ``({}, None)`` when it has neither."""
+    if r.eta is not None and len(r.subject_means) == len(r.eta):
+        return r.subject_means, np.asarray(r.eta, float)
+    fits = [f for f in r.subjects if f.converged and f.estimates["clearance"].se is not None]
+    if not fits:
+        return {}, None
+    typical = (math.log(r.typical["clearance"]), math.log(r.typical["volume"]))
+    eta = np.log([[f.clearance, f.volume] for f in fits]) - np.array(typical)
+    return {f.subject: typical for f in fits}, eta
+
+
+def _regressed(problem: MarginalProblem, means: dict[str, tuple[float, float]],
+               eta: np.ndarray | None, omega0: np.ndarray, beta0: np.ndarray):
+    """Fixed effects and variability of this model from an earlier estimate (of another
+    model, or a two-stage one): least squares of that estimate's subject estimates
+    (``means`` plus ``eta``, in the order of ``means``) on this model's mean function,
+    linearised at ``beta0`` (exact for effects linear in their parameter); ``Omega``
+    (``omega0`` before) loses the spread the new means explain (``Omega + cov(eta_new) -
+    cov(eta)``, where that stays positive definite).  Subjects the earlier estimate has
+    no estimate for are left out of the regression.  ``(beta0, None)`` when fewer than
+    ``k + 2`` subjects have one or the regression gives a mean that cannot be used."""
     design = problem.design
     k = design.n_beta
-    if r.eta is None or len(r.subject_means) != len(r.eta):
+    if eta is None:
         return beta0, None
-    index = {s: i for i, s in enumerate(r.subject_means)}
-    where = [index.get(s.subject) for s in problem.subjects]
-    if any(w is None for w in where):
+    index = {s: i for i, s in enumerate(means)}
+    where = [(j, index[s.subject]) for j, s in enumerate(problem.subjects)
+             if s.subject in index]
+    if len(where) < k + 2:
         return beta0, None
-    eta = r.eta[where]
-    modes = np.array([r.subject_means[s.subject] for s in problem.subjects]) + eta
+    rows = np.array([j for j, _ in where])
+    eta = eta[[i for _, i in where]]
+    modes = np.array([means[problem.subjects[j].subject] for j in rows]) + eta
     h = 1e-4
-    mu = design.means_many(np.vstack([beta0, beta0 + h * np.eye(k)]))      # (N, k + 1, 2)
+    mu = design.means_many(np.vstack([beta0, beta0 + h * np.eye(k)]))[rows]  # (n, k + 1, 2)
     if not np.all(np.isfinite(mu)) or not np.all(np.isfinite(modes)):
         return beta0, None
-    jac = np.swapaxes((mu[:, 1:] - mu[:, :1]) / h, 1, 2).reshape(-1, k)    # (2N, k)
+    jac = np.swapaxes((mu[:, 1:] - mu[:, :1]) / h, 1, 2).reshape(-1, k)    # (2n, k)
     step = np.linalg.lstsq(jac, (modes - mu[:, 0]).reshape(-1), rcond=None)[0]
     beta = beta0 + step
-    new_mu = design.means(beta)
+    new_mu = design.means(beta)[rows]
     if not np.all(np.isfinite(new_mu)):
         return beta0, None
-    omega = np.array(r.omega, float) + np.cov((modes - new_mu).T) - np.cov(eta.T)
+    omega = np.array(omega0, float) + np.cov((modes - new_mu).T) - np.cov(eta.T)
     return beta, (omega if np.linalg.eigvalsh(omega).min() > 1e-6 else None)
 
 
