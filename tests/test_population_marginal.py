@@ -589,3 +589,35 @@ def test_the_two_stage_start_carries_covariate_effects_regressed_from_individual
     for name, value in exponents.items():
         truth = 0.75 if "clearance" in name else 1.0
         assert abs(value - truth) < 0.25, (name, value)
+
+
+def test_the_modes_warm_start_moves_along_the_tangent_and_ends_at_the_same_modes():
+    """Once the optimiser accepts a point whose gradient at the modes is known, the next
+    inner solve starts from the modes moved along ``d theta^/d psi`` (implicit function
+    theorem): for a small outer step that
+    start is within O(step^2) of the new modes -- much nearer than the old modes, which
+    are O(step) away -- and the modes solved from it are those solved from the typical
+    values and the old modes together (checked to 1e-8, the inner tolerance)."""
+    subs = invented_study(30, seed=12, levels=3)
+    design = build_design(subs, (Effect("weight", "clearance", reference=70.0),))
+    prob = MarginalProblem(subs, design, error_model="proportional", blq="likelihood")
+    psi = prob.pack(np.array([math.log(5.0), math.log(50.0), 0.7]),
+                    np.array([[0.09, 0.01], [0.01, 0.04]]), 0.0, 0.12)
+    _, theta, _ = prob.subject_terms(psi, update=True, both=True)
+    assert prob._warm(psi[None]) is theta               # no tangent yet: the modes
+    assert gradient_at_modes(prob, psi, theta) is not None
+    assert prob._warm(psi[None]) is theta               # not until psi is accepted
+    assert prob.accept(psi)
+    step = np.random.default_rng(5).normal(0, 0.02, psi.size)
+    new = psi + step
+    reference = MarginalProblem(subs, design, error_model="proportional",
+                                blq="likelihood")
+    reference.theta = theta.copy()                      # no tangent: old modes and mu
+    _, exact, _ = reference.subject_terms(new, update=False, both=True)
+    warm = prob._warm(new[None])
+    assert np.abs(warm - exact).max() < 0.05 * np.abs(theta - exact).max()
+    _, solved, _ = prob.subject_terms(new, update=False)
+    np.testing.assert_allclose(solved, exact, atol=1e-8)
+    # the tangent belongs to those modes: other current modes start where they are
+    prob.theta = theta.copy()
+    assert prob._warm(new[None]) is prob.theta

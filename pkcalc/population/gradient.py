@@ -139,6 +139,7 @@ def gradient_at_modes(self, psi: np.ndarray, theta: np.ndarray, *,
                                logdet, v, p)
     if not np.all(np.isfinite(out)):
         return None
+    self.keep_tangent(psi, theta, tangent)                # warm starts of the next solve
     return out if per_subject else out.sum(axis=0)
 
 

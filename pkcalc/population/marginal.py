@@ -62,6 +62,8 @@ GRADIENT_DISAGREES = 1.0
 #: The outer optimiser stops when no component of the gradient of -2 ln L (projected on
 #: the bounds) exceeds this.
 OUTER_GTOL = 1e-4
+#: Largest move (log-parameters) of a mode's warm start along its tangent.
+WARM_MOVE = 0.5
 #: Condition number of the information (correlation form) above which the covariance
 #: step warns that the estimates are nearly confounded (common practice: 1e3 is a
 #: warning sign, 1e6 a failure; we warn from 1e4).
@@ -238,6 +240,34 @@ class MarginalProblem:
         small = np.abs(step).max(axis=1) < 0.1          # only a polish near the mode
         return np.where((exact & small)[:, None], theta - step, theta)
 
+    def _warm(self, psis: np.ndarray) -> np.ndarray | None:
+        """Warm starts of the modes under the outer vectors ``psis`` (P, p), one row per
+        subject and vector (row ``i P + j``): the current modes moved along their tangent
+        ``d theta^/d psi`` (kept by the gradient at those modes,
+        :func:`~pkcalc.population.gradient.gradient_at_modes`) to each vector -- the
+        first-order prediction of the new mode, so the inner solve starts nearer its end
+        (the mode it ends at is the same: it is solved to the same tolerance).  A move
+        larger than :data:`WARM_MOVE` in either log-parameter is not taken (the tangent is
+        local); the plain current modes where no tangent belongs to them.  Only the
+        optimiser's path uses it (:meth:`subject_terms`): the standard errors' shifted
+        points start from the current modes, so that they do not depend on whether a
+        tangent was kept (on Dask workers the modes set from the client have none)."""
+        theta = self.theta
+        if theta is None:
+            return None
+        kept = self.__dict__.get("_moving")
+        if kept is None or kept[1] is not theta:
+            return theta if len(psis) == 1 else np.repeat(theta, len(psis), axis=0)
+        move = np.einsum("npa,kp->nka", kept[2], psis - kept[0])          # (N, P, 2)
+        near = np.all(np.abs(move) <= WARM_MOVE, axis=2, keepdims=True)
+        return (theta[:, None, :] + np.where(near, move, 0.0)).reshape(-1, 2)
+
+    def keep_tangent(self, psi: np.ndarray, theta: np.ndarray, tangent: np.ndarray) -> None:
+        """Keep ``d theta^/d psi`` (N, p, 2) at the modes ``theta`` of ``psi``: when the
+        optimiser accepts ``psi`` (:meth:`accept`) the warm starts of :meth:`_warm` move
+        along it (while ``theta`` stays the current modes)."""
+        self._tangent = (np.array(psi, float), theta, tangent)
+
     def subject_terms(self, psi: np.ndarray, *, update: bool = True, both: bool = False):
         """Every subject's ``-2 ln L_i``, conditional modes and posterior covariances."""
         self.evaluations += 1
@@ -247,10 +277,12 @@ class MarginalProblem:
             return np.full(self.n, np.inf), None, None
         b = self._map_batch(mu, omega, sa, sp)
         logdet_omega = np.full(self.n, float(np.linalg.slogdet(omega)[1]))
-        m2ll, theta, post = self._terms(b, mu, logdet_omega, both, self.theta, keep=True)
+        m2ll, theta, post = self._terms(b, mu, logdet_omega, both,
+                                        self._warm(np.asarray(psi, float)[None]), keep=True)
         self._last = (np.array(psi, float), theta, m2ll)
         if update:
             self.theta = theta
+            self._moving = None
         return m2ll, theta, post
 
     def _terms(self, b: Batch, mu: np.ndarray, logdet_omega: np.ndarray, both: bool,
@@ -440,6 +472,8 @@ class MarginalProblem:
         last = self.__dict__.get("_last")
         if last is not None and np.array_equal(last[0], psi) and last[1] is not None:
             self.theta = last[1]
+            kept = self.__dict__.get("_tangent")
+            self._moving = kept if kept is not None and kept[1] is last[1] else None
             return True
         return False
 
