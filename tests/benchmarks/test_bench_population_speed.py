@@ -11,7 +11,8 @@ The baseline is the same estimate with the outer gradient of the previous releas
 central differences, one shifted objective at a time, every conditional mode solved
 again (the standard-error step is the new vectorised one in both), measured in the
 same run; the ratios are printed.  Times are in-process,
-imports excluded; user and system CPU time are printed beside them (system time is the
+imports excluded (the phenobarbital figures the fastest of 5 runs: the machine is shared
+and noisy); user and system CPU time are printed beside them (system time is the
 memory churn the speed work watches).  Where R with nlme is installed the same
 phenobarbital model is timed with nlme too; elsewhere that line says it was skipped.
 Targets are printed as met or not met -- a benchmark, not a test: it does not fail.
@@ -37,6 +38,9 @@ from pkcalc.schema.fitopts import parse_effects
 from ..test_population import sparse_subjects
 
 pytestmark = pytest.mark.bench
+
+#: Runs of each phenobarbital timing (a second or two each); the fastest is printed.
+RUNS = 5
 
 
 def phenobarb_with_apgar(tmp_path):
@@ -69,6 +73,12 @@ def timed(fn):
     wall = time.perf_counter() - t0
     r1 = resource.getrusage(resource.RUSAGE_SELF)
     return out, wall, r1.ru_utime - r0.ru_utime, r1.ru_stime - r0.ru_stime
+
+
+def best_of(fn, runs: int):
+    """:func:`timed` ``runs`` times; the fastest run (the machine is shared and noisy:
+    the minimum is the figure least disturbed by other load, as timeit reports)."""
+    return min((timed(fn) for _ in range(runs)), key=lambda r: r[1])
 
 
 def line(name: str, wall: float, user: float, system: float, target: float | None,
@@ -115,23 +125,24 @@ def test_bench_phenobarb_weight_and_apgar(tmp_path):
     full = model_of(FULL)
     lap_opts = PopulationOptions(error_model="additive", adequacy=False)
     marginal_estimate(subs, lap_opts, full, final_fits=False)    # warm-up: lazy imports
-    lap, t_lap, u_lap, s_lap = timed(lambda: marginal_estimate(subs, lap_opts, full,
-                                                               final_fits=False))
+    lap, t_lap, u_lap, s_lap = best_of(lambda: marginal_estimate(subs, lap_opts, full,
+                                                                 final_fits=False), RUNS)
     old, t_old, _, _ = with_previous_gradient(lambda: marginal_estimate(
         subs, lap_opts, full, final_fits=False))
     print()
-    print(line("phenobarbital, weight on CL and V + Apgar on V, Laplace", t_lap, u_lap,
-               s_lap, 0.5, t_old))
+    print(line(f"phenobarbital, weight on CL and V + Apgar on V, Laplace (best of {RUNS})",
+               t_lap, u_lap, s_lap, 0.5, t_old))
     rel = max(abs(math.log(lap.typical[k] / old.typical[k])) for k in lap.typical)
     print(f"[bench]   -2 ln L {lap.objective:.6f} (previous gradient {old.objective:.6f}); "
           f"largest relative change of a typical value {rel:.1e}")
     q_opts = PopulationOptions(error_model="additive", adequacy=False, nodes=9)
-    agq, t_q, u_q, s_q = timed(lambda: marginal_estimate(subs, q_opts, full,
-                                                         final_fits=False))
-    print(line("phenobarbital, same model, 9 quadrature nodes", t_q, u_q, s_q, 2.0))
+    agq, t_q, u_q, s_q = best_of(lambda: marginal_estimate(subs, q_opts, full,
+                                                           final_fits=False), RUNS)
+    print(line(f"phenobarbital, same model, 9 quadrature nodes (best of {RUNS})", t_q, u_q,
+               s_q, 2.0))
     models = (model_of(""), model_of("weight on clearance and volume"), full)
-    comp, t_c, u_c, s_c = timed(lambda: compare_models(subs, lap_opts, models))
-    print(line("three-model comparison, Laplace", t_c, u_c, s_c, 1.5))
+    comp, t_c, u_c, s_c = best_of(lambda: compare_models(subs, lap_opts, models), RUNS)
+    print(line(f"three-model comparison, Laplace (best of {RUNS})", t_c, u_c, s_c, 1.5))
     _nlme(tmp_path, t_lap)
     assert lap.converged and agq.converged and comp.best() is not None
 
