@@ -20,6 +20,24 @@ def subject_events(s: SubjectData) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
             np.append(s.dose_duration, model.INITIAL_LEVEL))
 
 
+def predictions_by_subject(batch: Batch, subjects: list[SubjectData], ln_cl: np.ndarray,
+                           ln_v: np.ndarray, *, block: int = 50_000) -> dict[str, np.ndarray]:
+    """Every subject's predicted levels at its own times (doses and initial level as in
+    ``batch``, the padded batch of ``subjects``) for clearance ``exp(ln_cl[i])`` and
+    volume ``exp(ln_v[i])``: one vectorised evaluation per block of rows of at most
+    ``block`` level x dose cells."""
+    n, width = batch.t.shape
+    per = max(1, block // max(width * batch.start.shape[1], 1))
+    out: dict[str, np.ndarray] = {}
+    for i0 in range(0, n, per):
+        sl = slice(i0, min(i0 + per, n))
+        f = model.concentration(batch.t[sl], batch.start[sl], batch.amount[sl],
+                                batch.duration[sl], np.exp(ln_cl[sl]), np.exp(ln_v[sl]))
+        for s, row in zip(subjects[sl], f, strict=True):
+            out[s.subject] = row[:s.time.size].copy()
+    return out
+
+
 def prepare_batch(subjects: list[SubjectData], opts: FitOptions):
     """All subjects as one padded batch after the BLQ method and the weights.
 

@@ -8,10 +8,9 @@ from collections.abc import Callable
 
 import numpy as np
 
-from .. import model
 from ..core import Effect, FitOptions, PopulationModel, PopulationOptions, SubjectData
 from ..fit import fit_subjects
-from ..fit.data import prepare_batch
+from ..fit.data import predictions_by_subject, prepare_batch
 from ..fit.result import Z95
 from .covariates import Design, build_design, weight_effects
 from .marginal import MarginalFit, MarginalProblem
@@ -320,10 +319,8 @@ def _assemble(problem: MarginalProblem, fit: MarginalFit, options: PopulationOpt
         for j, k in enumerate(("clearance", "volume"))}
     result.subject_means = {s.subject: (float(mu[i, 0]), float(mu[i, 1]))
                             for i, s in enumerate(problem.subjects)}
-    result.population_predictions = {
-        s.subject: model.concentration(s.time, s.dose_start, s.dose_amount, s.dose_duration,
-                                       math.exp(mu[i, 0]), math.exp(mu[i, 1]))
-        for i, s in enumerate(problem.subjects)}
+    result.population_predictions = predictions_by_subject(problem.batch, problem.subjects,
+                                                           mu[:, 0], mu[:, 1])
     how = "Laplace approximation" if options.nodes == 1 else (
         f"adaptive Gauss-Hermite quadrature, {options.nodes} nodes per dimension")
     result.notes.append(f"maximum marginal likelihood ({how}); {fit.message} after "

@@ -44,7 +44,7 @@ from .. import model
 from ..core import FitOptions, Prior, SubjectData
 from ..engines import Engine
 from ..fit import fit_subjects
-from ..fit.data import prepare_batch
+from ..fit.data import predictions_by_subject, prepare_batch
 from ..fit.objective import Batch, evaluate, exact_hessian, positive_definite
 from ..fit.result import Z95
 from ..fit.solver import minimise
@@ -339,10 +339,8 @@ def iterative_two_stage(subjects: list[SubjectData], *, error_model: str = "prop
     result.shrinkage_percent = {
         name: 100 * (1 - float(np.std(eta[:, j])) / math.sqrt(omega[j, j]))
         for j, name in enumerate(("clearance", "volume"))}
-    result.population_predictions = {
-        s.subject: model.concentration(s.time, s.dose_start, s.dose_amount, s.dose_duration,
-                                       math.exp(mu[i, 0]), math.exp(mu[i, 1]))
-        for i, s in enumerate(subjects)}
+    result.population_predictions = predictions_by_subject(batch, subjects, mu[:, 0],
+                                                           mu[:, 1])
     result.notes.append(
         f"convergence: largest change of the typical values (log scale) < {BETA_TOL:g}, "
         f"of the variances < {OMEGA_TOL:g} (relative) and of the residual error < "
