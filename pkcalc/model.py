@@ -463,10 +463,27 @@ def concentration_and_gradient(t, start, amount, duration, clearance, volume, *,
         u, w, active, amount, duration, clearance, volume)
     # k g'(k); for boluses and initial levels u = em1 = 0 and the first part vanishes
     d_term = coef * k * e_w * (u * (1.0 + em1) + w * em1 - point * w)
-    conc = total(term)
+    conc, d = total(term), total(d_term)
+    c_inf, _, c_bol, _ = _by_kind(total, term, None, conc, None, amount, infusion, bolus)
     # initial level (coef = C0, no V): dC/d lnCL = D, dC/d lnV = -D
-    grad = np.stack([total(d_term - infusion * term), total(-bolus * term - d_term)])
+    grad = np.stack([d - c_inf, -c_bol - d])
     return conc, grad
+
+
+def _by_kind(total, term, d_term, conc, d, amount, infusion, bolus):
+    """The infusions' and the boluses' parts of ``total(term)`` and ``total(d_term)``
+    (``conc`` and ``d``): the per-event factors of the derivatives differ by kind, and
+    the sums are linear, so each kind is summed once and the factors applied after.
+    Where every dosing event is an infusion (the usual study), or every one a bolus,
+    one kind's parts are the totals themselves and no extra sum is taken; ``d_term``
+    None skips its parts."""
+    used = np.asarray(amount, dtype=float)[..., None, :] != 0
+    if np.all((infusion > 0) | ~used):
+        return conc, d, 0.0, 0.0
+    if np.all((bolus > 0) | ~used):
+        return 0.0, 0.0, conc, d
+    return (total(infusion * term), None if d_term is None else total(infusion * d_term),
+            total(bolus * term), None if d_term is None else total(bolus * d_term))
 
 
 def concentration_derivatives(t, start, amount, duration, clearance, volume, *,
@@ -506,14 +523,16 @@ def concentration_derivatives(t, start, amount, duration, clearance, volume, *,
     term, (coef, k, e_w, em1, bolus, infusion, point) = _event_terms(
         u, w, active, amount, duration, clearance, volume)
     ck = coef * k * e_w
-    d_term = ck * (u * (1.0 + em1) + w * em1 - point * w)
-    d2_term = ck * k * (point * w * w - u * (u + 2.0 * w) * (1.0 + em1) - w * w * em1)
-    a_x, a_y = -infusion, -bolus
-    conc = total(term)
-    grad = np.stack([total(a_x * term + d_term), total(a_y * term - d_term)])
-    hess = np.stack([total(infusion * term + (1.0 + 2.0 * a_x) * d_term + d2_term),
-                     total((a_y - a_x - 1.0) * d_term - d2_term),
-                     total(bolus * term + (1.0 - 2.0 * a_y) * d_term + d2_term)])
+    one_em1 = 1.0 + em1
+    d_term = ck * (u * one_em1 + w * em1 - point * w)
+    d2_term = ck * k * (point * w * w - u * (u + 2.0 * w) * one_em1 - w * w * em1)
+    # with a_x = -[infusion] and a_y = -[bolus] per event, summed by kind (_by_kind)
+    conc, d, d2 = total(term), total(d_term), total(d2_term)
+    c_inf, d_inf, c_bol, d_bol = _by_kind(total, term, d_term, conc, d, amount, infusion,
+                                          bolus)
+    grad = np.stack([d - c_inf, -c_bol - d])
+    hess = np.stack([c_inf + d - 2.0 * d_inf + d2, d_inf - d_bol - d - d2,
+                     c_bol + d + 2.0 * d_bol + d2])
     return conc, grad, hess
 
 

@@ -429,6 +429,48 @@ def test_second_derivatives_match_sympy():
             assert hess[row, i] == pytest.approx(ref, rel=1e-9, abs=1e-13), (tt, row)
 
 
+@pytest.mark.parametrize("kind", ["infusions", "boluses"])
+def test_derivatives_of_one_kind_of_dose_match_sympy(kind):
+    # the usual study -- every dosing event an infusion, or every one a bolus -- sums
+    # each derivative once (no per-kind parts); with a padding slot (amount 0, duration
+    # 0) beside two doses, the first and second derivatives against sympy's of the
+    # closed form
+    cl_s, v_s, t_s = sp.symbols("CL V t", positive=True)
+    k = cl_s / v_s
+
+    def infusion(rate, start, dur):
+        during = rate / cl_s * (1 - sp.exp(-k * (t_s - start)))
+        after = rate / cl_s * (1 - sp.exp(-k * dur)) * sp.exp(-k * (t_s - start - dur))
+        return lambda tt: 0 if tt < start else (during if tt <= start + dur else after)
+
+    def bolus(dose, start):
+        return lambda tt: 0 if tt < start else dose / v_s * sp.exp(-k * (t_s - start))
+
+    if kind == "infusions":
+        first, second = infusion(100.0, 0.0, 2.0), infusion(60.0, 6.0, 0.5)
+        durations = [2.0, 0.5, 0.0]
+    else:
+        first, second = bolus(200.0, 0.0), bolus(30.0, 6.0)
+        durations = [0.0, 0.0, 0.0]
+    cl, v = 3.0, 40.0
+    times = np.array([0.5, 2.0, 5.0, 6.2, 20.0, 150.0])
+    args = (times, [0.0, 6.0, 0.0], [200.0, 30.0, 0.0], durations, cl, v)
+    _, grad, hess = model.concentration_derivatives(*args)
+    _, g1 = model.concentration_and_gradient(*args)
+    np.testing.assert_allclose(g1, grad, rtol=1e-12)
+    x, y = sp.symbols("x y")
+    for i, tt in enumerate(times):
+        expr = (first(tt) + second(tt)).subs({cl_s: sp.exp(x), v_s: sp.exp(y)},
+                                             simultaneous=True)
+        point = {x: math.log(cl), y: math.log(v), t_s: tt}
+        for row, a in enumerate((x, y)):
+            ref = float(sp.diff(expr, a).subs(point).evalf(30))
+            assert grad[row, i] == pytest.approx(ref, rel=1e-10, abs=1e-13), (tt, row)
+        for row, (a, b) in enumerate(((x, x), (x, y), (y, y))):
+            ref = float(sp.diff(expr, a, b).subs(point).evalf(30))
+            assert hess[row, i] == pytest.approx(ref, rel=1e-9, abs=1e-13), (tt, row)
+
+
 @settings(max_examples=40, deadline=None)
 @given(cl=st.floats(0.05, 50.0), v=st.floats(1.0, 500.0), t=st.floats(0.0, 200.0),
        d=st.floats(0.0, 24.0))
