@@ -16,7 +16,7 @@ from .covariates import Design, build_design, weight_effects
 from .marginal import MarginalFit, MarginalProblem
 from .result import PopulationResult
 from .shards import ShardedProblem, WorkerPool
-from .twostage import _as_prior, _cv, iterative_two_stage, two_stage
+from .twostage import _as_prior, _cv, iterative_two_stage, two_stage, usable_fits
 
 __all__ = ["individual_estimates", "marginal_estimate", "model_effects", "usable_subjects"]
 
@@ -157,7 +157,7 @@ def _subject_estimates(r: PopulationResult):
     individual estimates about the typical values.  ``({}, None)`` when it has neither."""
     if r.eta is not None and len(r.subject_means) == len(r.eta):
         return r.subject_means, np.asarray(r.eta, float)
-    fits = [f for f in r.subjects if f.converged and f.estimates["clearance"].se is not None]
+    fits = usable_fits(r.subjects)
     if not fits:
         return {}, None
     typical = (math.log(r.typical["clearance"]), math.log(r.typical["volume"]))

@@ -144,6 +144,12 @@ def _residual_update(batch: Batch, f: np.ndarray, jac: np.ndarray, cpost: np.nda
 
 
 # --------------------------------------------------------------------------- two-stage
+def usable_fits(fits: list) -> list:
+    """The individual fits the standard two-stage method uses: converged, with a
+    standard error of clearance."""
+    return [r for r in fits if r.converged and r.estimates["clearance"].se is not None]
+
+
 def two_stage(subjects: list[SubjectData], options: FitOptions | None = None, *,
               covariate: str = "none", reference_weight: float = 70.0) -> PopulationResult:
     """Standard two-stage estimates from individual fits.
@@ -152,7 +158,7 @@ def two_stage(subjects: list[SubjectData], options: FitOptions | None = None, *,
     weight model when one is given), CV % from the variance of ``ln theta_i``.
     """
     fits, failures = fit_subjects(subjects, options or FitOptions())
-    usable = [r for r in fits if r.converged and r.estimates["clearance"].se is not None]
+    usable = usable_fits(fits)
     kept = {id(r) for r in usable}          # identity: comparing results field by field
     dropped = [r.subject for r in fits if id(r) not in kept]   # is quadratic and slow
     if len(usable) < 2:
