@@ -179,6 +179,26 @@ def test_result_text_that_is_not_a_number_is_a_row_problem(text, value):
     assert f"PCSTRESN '{value}' is not a number" in " ".join(study.warnings)
 
 
+def test_an_empty_pcstresn_takes_the_number_written_in_pcstresc():
+    # SDTMIG v3.3 PC: PCSTRESN is PCSTRESC "copied in numeric format" (from memory): a
+    # package that left the copy empty still states the result in PCSTRESC
+    pc = pc_frame([0.5, 2.0, 4.0, 8.0], [0.0], [500.0], [1.0]).astype({"PCSTRESN": object})
+    pc["PCSTRESC"] = [f"{x:.6g}" for x in pc["PCSTRESN"]]
+    pc.loc[[1, 2], "PCSTRESN"] = np.nan
+    pc.loc[3, ["PCSTRESN", "PCSTRESC"]] = [np.nan, "see comment"]     # words: no result
+    study = load_sdtm({"pc": pc, "ex": pd.DataFrame([ex_row()])})
+    s = study.subjects[0]
+    np.testing.assert_allclose(s.time, [0.5, 2.0, 4.0])
+    expected = [pc["PCSTRESN"][0] / 1000] + [float(x) / 1000 for x in pc["PCSTRESC"][1:3]]
+    np.testing.assert_allclose(s.conc, expected, rtol=1e-12)
+    notes = study.import_report["notes"]
+    assert any(n.startswith("2 PC row(s) with PCSTRESN empty take the number written in "
+                            "PCSTRESC") and "row 2" in n for n in notes)
+    assert study.import_report["rows_skipped"]["pc"][
+        "no result (PCSTRESN empty, PCSTRESC neither a number nor a below-LLOQ text)"][
+        "count"] == 1
+
+
 def test_dose_text_with_a_unit_is_refused_not_misread():
     ex = pd.DataFrame([ex_row(EXDOSE="500 g")])
     with pytest.raises(PkcalcInputError, match=r"EXDOSE '500 g' is not a number"):

@@ -141,11 +141,12 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
     rows.drop_each(bad, lambda i: f"PCSTRESN '{pc.text('PCSTRESN').iloc[i]}' is not a number",
                    problem=True)
     text = pc.text("PCSTRESC")
+    value = _number_from_text(pc, value, rows, log)
     empty = np.flatnonzero(value.isna().to_numpy(bool))
     blq = np.zeros(len(pc), bool)
     blq[empty] = text.iloc[empty].str.match(_BLQ_TEXT.pattern, case=False).to_numpy(bool)
-    rows.drop(value.isna().to_numpy(bool) & ~blq, "no result (PCSTRESN empty and PCSTRESC not "
-              "a below-LLOQ text)")
+    rows.drop(value.isna().to_numpy(bool) & ~blq, "no result (PCSTRESN empty, PCSTRESC neither "
+              "a number nor a below-LLOQ text)")
 
     unit = pc.text("PCSTRESU")
     usual = unit[rows.keep & (unit != "").to_numpy()].mode()
@@ -186,6 +187,25 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
         "pcseq": pick("PCSEQ"), "visit": pick("VISIT"), "pctpt": pick("PCTPT"),
         "reference_dose": pick("PCRFTDTC"), "nominal_sec": nominal_sec[idx],
         "time_basis": basis})
+
+
+def _number_from_text(pc: Dataset, value: pd.Series, rows: Rows, log: ImportLog
+                      ) -> pd.Series:
+    """PCSTRESN with, where it is empty, the plain number PCSTRESC holds: in SDTM PCSTRESN
+    is the numeric copy of PCSTRESC, so a package that left the copy out still says the
+    result (a note counts such rows and names the first; a below-LLOQ text or other
+    words stay what they are)."""
+    if not pc.has("PCSTRESC"):
+        return value
+    from_text, _ = pc.number("PCSTRESC")
+    copy = (value.isna() & from_text.notna()).to_numpy(bool) & rows.keep
+    if not copy.any():
+        return value
+    idx = np.flatnonzero(copy)
+    log.notes.append(f"{idx.size} PC row(s) with PCSTRESN empty take the number written in "
+                     f"PCSTRESC (PCSTRESN is its numeric copy), e.g. "
+                     f"{', '.join(pc.labels_fast(idx[:3]))}")
+    return value.where(~copy, from_text)
 
 
 def _nominal(pc: Dataset, log: ImportLog) -> tuple[np.ndarray, np.ndarray]:
