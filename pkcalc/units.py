@@ -79,6 +79,8 @@ KIND_OF: dict[str, str] = {
 #: Kinds that may be given per kilogram of body weight.
 PER_KG_KINDS = frozenset({"amount", "volume", "clearance", "rate"})
 
+#: A unit per square metre of body surface (``mg/m2``, ``mg/m^2``, ``mg/m²``, ``mg/m2/h``).
+_PER_AREA = re.compile(r"/\s*m(?:\s*(?:\^|\*\*)?\s*2|²)\s*(?:/|$)", re.IGNORECASE)
 _NUMBER = re.compile(r"^\s*([-+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?)\s*(.*?)\s*$")
 _HEADER = re.compile(r"^\s*([^\[\]]*?)\s*\[\s*([^\[\]]*?)\s*\]\s*$")
 
@@ -148,13 +150,17 @@ def parse_unit(text: str, kind: str, *, field: str | None = None) -> UnitSpec:
         raise ValueError(f"unknown kind of quantity {kind!r}")
     if text is None or not str(text).strip():
         raise PkcalcInputError("no unit given", field=field, expected=KINDS[kind])
+    if kind in PER_KG_KINDS and _PER_AREA.search(str(text)):
+        raise PkcalcInputError(
+            f"'{text}' is per body-surface area, which pkcalc does not convert (that needs a "
+            "height and a choice of surface-area formula): give it in absolute units",
+            field=field, expected=KINDS[kind])
     try:
         unit = _unit(str(text).strip())
     except (pint.UndefinedUnitError, pint.DefinitionSyntaxError, AttributeError,
-            TypeError, ValueError, SyntaxError, AssertionError) as exc:
-        raise PkcalcInputError(
-            f"unknown unit '{text}' ({exc.__class__.__name__})", field=field, expected=KINDS[kind]
-        ) from None
+            TypeError, ValueError, SyntaxError, AssertionError):
+        raise PkcalcInputError(f"unknown unit '{text}'", field=field,
+                               expected=KINDS[kind]) from None
     canonical = _unit(CANONICAL[kind])
     if unit.dimensionality == canonical.dimensionality:
         factor = float(ureg.Quantity(1.0, unit).to(canonical).magnitude)

@@ -199,6 +199,12 @@ def test_an_empty_pcstresn_takes_the_number_written_in_pcstresc():
         "count"] == 1
 
 
+def test_an_empty_dose_is_named_as_empty():
+    ex = pd.DataFrame([ex_row(EXDOSE=np.nan)])
+    with pytest.raises(PkcalcInputError, match=r"EXDOSE is empty: the amount given is unknown"):
+        load_sdtm({"pc": pc_frame([0.5, 2.0], [0.0], [500.0], [1.0]), "ex": ex})
+
+
 def test_dose_text_with_a_unit_is_refused_not_misread():
     ex = pd.DataFrame([ex_row(EXDOSE="500 g")])
     with pytest.raises(PkcalcInputError, match=r"EXDOSE '500 g' is not a number"):

@@ -208,7 +208,8 @@ def _administrations(ds, p, rows: Rows, log, fails: Failures, subject, value, ba
          f"{PRECISION_WORDS[int(start.precision[i])]}: the administration cannot be placed",
          f"{p}STDTC")
     raw_dose = ds.text(f"{p}DOSE")
-    flag(bad_value | ~np.isfinite(value), lambda i: f"{p}DOSE '{raw_dose.iloc[i]}' is not a "
+    flag(bad_value | ~np.isfinite(value), lambda i: f"{p}DOSE is empty: the amount given is "
+         "unknown" if raw_dose.iloc[i] == "" else f"{p}DOSE '{raw_dose.iloc[i]}' is not a "
          f"number (a unit belongs in {p}DOSU)", f"{p}DOSE")
     flag(unit_problem != "", lambda i: f"{p}DOSU: {unit_problem[i]}", f"{p}DOSU")
     flag(tau_problem != "", lambda i: tau_problem[i], f"{p}DOSFRQ")
