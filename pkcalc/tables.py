@@ -7,12 +7,16 @@ One set of rules, one set of messages:
   the position of the first byte that is not UTF-8;
 - every column name appears once (pandas would silently rename a duplicate);
 - a row with more cells than the header is refused with its line number (pandas
-  would otherwise take the first column as an index and shift every column).
+  would otherwise take the first column as an index and shift every column), with a
+  word on decimal commas;
+- a header that is one column holding semicolons or tabs (a spreadsheet's regional
+  CSV) is refused saying so.
 """
 
 from __future__ import annotations
 
 import csv
+import re
 import warnings
 from collections.abc import Iterator
 from pathlib import Path
@@ -22,6 +26,9 @@ from .errors import PkcalcInputError, Problem
 __all__ = ["check_input_file", "read_csv", "read_csv_chunks", "read_header"]
 
 ENCODING = "utf-8-sig"
+_DECIMAL_COMMA = " (a decimal comma, as in '0,5', splits a number in two)"
+_COMMA_SEPARATED = ("a CSV table with commas between cells and '.' as the decimal mark "
+                    "(a spreadsheet's 'CSV (comma delimited)')")
 
 
 def check_input_file(path: str | Path, what: str = "a CSV table with a header row") -> Path:
@@ -60,6 +67,14 @@ def read_header(path: str | Path) -> list[str]:
     if not any(names):
         raise PkcalcInputError("the first line has no column names", file=str(path),
                                expected="a CSV table with a header row")
+    for sep, word in ((";", "semicolons"), ("\t", "tabs")):
+        if len(names) == 1 and sep in names[0]:
+            # a spreadsheet saved with its regional list separator (and often decimal
+            # commas): read as one column, every row would be misread or refused
+            shown = names[0][:60].replace("\t", " ")
+            raise PkcalcInputError(
+                f"the header is one column, '{shown}': the table is separated by {word}, "
+                "not commas", file=str(path), expected=_COMMA_SEPARATED)
     seen: set[str] = set()
     problems = []
     for name in names:
@@ -81,9 +96,15 @@ def _translate(path: str | Path, exc: BaseException, n_columns: int) -> PkcalcIn
         return _not_utf8(path, exc)
     if isinstance(exc, pd.errors.ParserWarning):
         return PkcalcInputError(f"a row has more cells than the header's {n_columns} "
-                                "columns", file=str(path),
+                                f"columns{_DECIMAL_COMMA}", file=str(path),
                                 expected="as many cells in every row as column names")
     text = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+    counts = re.search(r"Expected (\d+) fields in line (\d+), saw (\d+)", text)
+    if counts:
+        n, line, seen = counts.groups()
+        return PkcalcInputError(f"line {line} has more cells ({seen}) than the header's {n} columns"
+                                f"{_DECIMAL_COMMA}", file=str(path),
+                                expected="as many cells in every row as column names")
     if "Expected" in text and "fields" in text:
         return PkcalcInputError(f"a row has more cells than the header ({text})",
                                 file=str(path),

@@ -240,6 +240,12 @@ def file_cases() -> list[Case]:
 def study_cases() -> list[Case]:
     tables = [
         ("ragged", "S3", {"levels": LEVELS + "B,13,2.5,99\n"}, "more cells"),
+        # a spreadsheet's regional CSV: semicolons or tabs between cells, decimal commas
+        ("semicolons", "F1", {"levels": LEVELS.replace(",", ";")},
+         "separated by semicolons, not commas"),
+        ("tabs", "F1", {"doses": DOSES.replace(",", "\t")}, "separated by tabs, not commas"),
+        ("decimal-comma", "S3", {"levels": LEVELS.replace("A,2,7.2", "A,2,7,2")},
+         "a decimal comma, as in '0,5', splits a number in two"),
         ("duplicate-header", "S2", {"levels": LEVELS.replace(
             "concentration [mg/L]\n", "concentration [mg/L],time [h]\n", 1)
             .replace("\nA,1,8.1\n", "\nA,1,8.1,1\n")}, "appears twice"),
@@ -277,6 +283,7 @@ def batch_cases() -> list[Case]:
         ("ragged", "S3", BATCH + "5,8,30,1\n", 1, "the row has 4 cells, the header 3 (line 4)"),
         ("ragged-first-row", "S3", BATCH.replace("\n3,8,30\n", "\n3,8,30,9\n"), 2,
          "the first row has more cells"),
+        ("semicolons", "F1", BATCH.replace(",", ";"), 2, "separated by semicolons"),
         ("duplicate-header", "S2", "clearance [L/h],half_life [h],rate [mg/h],rate [mg/h]\n"
          "3,8,30,30\n", 2, "appears twice"),
         ("latin1", "F1", ("clearance [L/h],half_life [h],rate [mg/h],note\n3,8,30,caf\xe9\n"
