@@ -53,8 +53,10 @@ def _not_utf8(path: str | Path, exc: UnicodeDecodeError) -> PkcalcInputError:
         "a byte-order mark)")
 
 
-def read_header(path: str | Path) -> list[str]:
-    """Column names of the first line, checked for duplicates and encoding."""
+def read_header(path: str | Path, *, trailing_empty: bool = False) -> list[str]:
+    """Column names of the first line, checked for duplicates and encoding; a column
+    without a name is refused, except -- with ``trailing_empty`` -- after the last named
+    one (a spreadsheet's empty columns; the caller checks that they hold nothing)."""
     p = check_input_file(path)
     try:
         with open(p, encoding=ENCODING, newline="") as fh:
@@ -75,9 +77,16 @@ def read_header(path: str | Path) -> list[str]:
             raise PkcalcInputError(
                 f"the header is one column, '{shown}': the table is separated by {word}, "
                 "not commas", file=str(path), expected=_COMMA_SEPARATED)
+    last_named = max(i for i, n in enumerate(names) if n)
+    for i, name in enumerate(names):
+        if not name and (i < last_named or not trailing_empty):
+            raise PkcalcInputError(
+                f"column {i + 1} has no name in the header", file=str(path),
+                field=f"column {i + 1}", expected="a name for every column (empty columns "
+                "a spreadsheet added at the end can be deleted)")
     seen: set[str] = set()
     problems = []
-    for name in names:
+    for name in names[:last_named + 1]:
         key = name.lower()
         if key in seen:
             problems.append(Problem(f"column '{name}' appears twice in the header",
@@ -116,14 +125,35 @@ def read_csv(path: str | Path, **kwargs):
     """The whole table as a DataFrame, under the rules of this module."""
     import pandas as pd
 
-    header = read_header(path)
+    header = read_header(path, trailing_empty=True)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", pd.errors.ParserWarning)
-            return pd.read_csv(path, encoding=ENCODING, index_col=False, **kwargs)
+            frame = pd.read_csv(path, encoding=ENCODING, index_col=False, **kwargs)
     except (pd.errors.ParserError, pd.errors.ParserWarning, pd.errors.EmptyDataError,
             UnicodeDecodeError, ValueError) as exc:
         raise _translate(path, exc, len(header)) from None
+    return _without_empty_columns(frame, header, path)
+
+
+def _without_empty_columns(frame, header: list[str], path: str | Path):
+    """The frame without the unnamed columns at the end of the header, which must hold
+    nothing (a spreadsheet's empty columns); one with a value is refused with its line."""
+    import pandas as pd
+
+    n_named = max(i for i, n in enumerate(header) if n) + 1
+    if n_named == len(header):
+        return frame
+    extra = frame.iloc[:, n_named:]
+    filled = extra.notna() & (extra.astype(str).apply(lambda c: c.str.strip()) != "")
+    if filled.to_numpy().any():
+        row, col = (int(x[0]) for x in filled.to_numpy().nonzero())
+        value = extra.iat[row, col]
+        raise PkcalcInputError(
+            f"column {n_named + col + 1} has no name in the header but holds '{value}' "
+            f"(line {row + 2})", file=str(path), field=f"column {n_named + col + 1}",
+            expected="a name for every column that holds values")
+    return pd.DataFrame(frame.iloc[:, :n_named])
 
 
 def read_csv_chunks(path: str | Path, chunksize: int, **kwargs) -> Iterator:

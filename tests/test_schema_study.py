@@ -58,10 +58,27 @@ def test_study_toml(write, tables):
     assert study.files[0].endswith("study.toml")
 
 
+def test_a_spreadsheet_export_with_empty_columns_and_crlf_reads_as_the_clean_table(tables):
+    # trailing separators (empty columns a spreadsheet keeps) and CRLF line ends: the same
+    # study as the clean tables; an unnamed column that holds a value is refused
+    clean = load_study(*tables())
+    messy = "\r\n".join(line + ",," for line in LEVELS.strip().splitlines()) + "\r\n\r\n"
+    again = load_study(*tables(levels=messy))
+    for a, b in zip(clean.subjects, again.subjects, strict=True):
+        np.testing.assert_array_equal(a.time, b.time)
+        np.testing.assert_array_equal(a.conc, b.conc)
+        np.testing.assert_array_equal(a.blq, b.blq)
+    lv, ds, sb = tables(levels=messy.replace("A,120,3000,100,false,,", "A,120,3000,100,false,,x"))
+    with pytest.raises(PkcalcInputError, match=r"column 7 has no name in the header but holds "
+                                               r"'x' \(line 3\)"):
+        load_study(lv, ds, sb)
+
+
 @pytest.mark.parametrize(
     ("which", "text", "match"),
     [
         ("levels", "subject,time,concentration [mg/L]\nA,1,2\n", "declares no unit"),
+        ("levels", "subject,,concentration [mg/L]\nA,1,2\n", "column 2 has no name"),
         ("levels", "subject,time [h],concentration [mg]\nA,1,2\n", "dimension"),
         ("levels", "subject,time [h]\nA,1\n", "missing column 'concentration'"),
         ("levels", "subject,time [h],concentration [mg/L]\nA,1,two\n", "text or non-finite"),
