@@ -74,6 +74,38 @@ def test_a_spreadsheet_export_with_empty_columns_and_crlf_reads_as_the_clean_tab
         load_study(lv, ds, sb)
 
 
+def test_blq_written_in_the_concentration_column_is_a_blq_level(tables):
+    # '<100' (the limit in the column's unit) or 'BLQ' with the lloq column: the same
+    # study as the table that marks them with blq and lloq (common practice in
+    # laboratory exports), said in a warning naming the lines
+    marked = load_study(*tables())
+    texts = LEVELS.replace("A,600,,100,true", "A,600,<100,,").replace(
+        "B,240,80,100,false", "B,240,BLQ,100,")
+    study = load_study(*tables(levels=texts))
+    for a, b in zip(marked.subjects, study.subjects, strict=True):
+        np.testing.assert_array_equal(a.time, b.time)
+        np.testing.assert_array_equal(a.blq, b.blq)
+        np.testing.assert_allclose(a.lloq, b.lloq, rtol=1e-12)
+        np.testing.assert_array_equal(a.conc[~a.blq], b.conc[~b.blq])
+    assert any("2 concentration cell(s) written as below the limit of quantification are "
+               "BLQ levels (line 4: '<100', line 6: 'BLQ')" in w for w in study.warnings)
+    lv, ds, sb = tables(levels=texts.replace("A,600,<100,,", "A,600,<50,100,"))
+    with pytest.raises(PkcalcInputError, match=r"says below 50 \(0.05 mg/L\) but its lloq is "
+                                               r"0.1 mg/L \(line 4\)"):
+        load_study(lv, ds, sb)
+
+
+def test_a_frame_with_blq_texts_is_read_without_changing_it():
+    import pandas as pd
+    levels = pd.DataFrame({"subject": ["A", "A", "A"], "time [h]": [1.0, 4.0, 24.0],
+                           "concentration [mg/L]": ["8.1", "5.6", "< 0.5"]})
+    before = levels.copy()
+    doses = pd.DataFrame({"subject": ["A"], "start [h]": [0.0], "amount [mg]": [500.0]})
+    s = load_study(levels, doses).subjects[0]
+    assert s.blq.tolist() == [False, False, True] and s.lloq[2] == pytest.approx(0.5)
+    pd.testing.assert_frame_equal(levels, before)
+
+
 @pytest.mark.parametrize(
     ("which", "text", "match"),
     [

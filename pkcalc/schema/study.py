@@ -11,6 +11,7 @@ go on.
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from typing import Any
 
@@ -269,7 +270,7 @@ def study_from_tables(lv: Columns, ds: Columns, sb: Columns | None,
     if sb is not None:
         covariates = _read_subjects(sb, warnings)
         files.append(sb.file)
-    lvl = _read_levels(lv, problems)
+    lvl = _read_levels(lv, problems, warnings)
     dos = _read_doses(ds, problems)
     if ("clock" in lvl) != ("clock" in dos):
         problems.append(Problem("the levels and doses tables must both use clock times "
@@ -427,9 +428,43 @@ def _clock_column(cols: Columns, name: str, problems: list[Problem]):
     return clock
 
 
-def _read_levels(lv: Columns, problems: list[Problem]) -> dict[str, Any]:
+#: A concentration cell that says the level is below the limit: ``<0.5`` (the limit in
+#: the column's unit) or words (``BLQ``, ``BQL``, ``<LLOQ``, ``NQ``, ``below LLOQ``; the
+#: limit then comes from the ``lloq`` column).
+_BLQ_LIMIT = re.compile(r"^<\s*((?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?)$")
+_BLQ_WORDS = re.compile(r"^(?:BLQ|BQL|<\s*LLOQ|NQ|BELOW\s+(?:THE\s+)?LLOQ)$", re.IGNORECASE)
+
+
+def _blq_text(lv: Columns, warnings: list[str]) -> tuple[pd.Series, pd.Series] | None:
+    """Concentration cells written as a BLQ text: which rows, and the limit a ``<x`` cell
+    states (in the column's unit; NaN for words).  The cells are emptied in a copy of the
+    table so the column reads as numbers; None when there are none."""
+    col = lv.map["concentration"][0]
+    column = lv.frame[col]
+    if pd.api.types.is_numeric_dtype(column) and not pd.api.types.is_bool_dtype(column):
+        return None
+    raw = column.astype(str).str.strip()
+    limit = pd.to_numeric(raw.str.extract(_BLQ_LIMIT, expand=False), errors="coerce")
+    words = raw.str.match(_BLQ_WORDS)
+    mark = limit.notna() | words
+    if not mark.any():
+        return None
+    lv.frame = lv.frame.copy()
+    lv.frame[col] = raw.where(~mark, "")
+    rows = np.flatnonzero(mark.to_numpy())
+    shown = ", ".join(f"{lv.where(int(i))}: '{raw.iloc[i]}'" for i in rows[:3])
+    warnings.append(f"{lv.file}: {rows.size} concentration cell(s) written as below the "
+                    f"limit of quantification are BLQ levels ({shown}"
+                    f"{' ...' if rows.size > 3 else ''}); the limit is the number after '<', "
+                    "else the lloq column")
+    return mark, limit
+
+
+def _read_levels(lv: Columns, problems: list[Problem], warnings: list[str]
+                 ) -> dict[str, Any]:
     """The levels table's columns in canonical units (clock times kept as seconds
-    until the subject's first dose is known)."""
+    until the subject's first dose is known); BLQ texts in the concentration column
+    (:func:`_blq_text`) become BLQ levels."""
     out: dict[str, Any] = {"subject": lv.text("subject")}
     if _is_clock(lv, "time"):
         out["clock"] = _clock_column(lv, "time", problems)
@@ -437,12 +472,26 @@ def _read_levels(lv: Columns, problems: list[Problem]) -> dict[str, Any]:
                                 index=lv.frame.index)
     else:
         out["time"], _ = lv.numeric("time", "time", problems)
-    out["conc"], _ = lv.numeric("concentration", "concentration", problems)
+    texts = _blq_text(lv, warnings)
+    out["conc"], spec = lv.numeric("concentration", "concentration", problems)
     index = out["time"].index
     out["lloq"] = (lv.numeric("lloq", "concentration", problems)[0] if lv.has("lloq")
                    else pd.Series(np.nan, index=index))
     out["blq_mark"] = (_bool_column(lv, "blq", problems) if lv.has("blq")
                        else pd.Series(False, index=index))
+    if texts is not None:
+        mark, limit = texts
+        stated = limit * (spec.factor if spec is not None else np.nan)
+        given = out["lloq"]
+        differ = mark & stated.notna() & given.notna() & ~np.isclose(stated, given,
+                                                                     rtol=1e-9, atol=0)
+        for i in np.flatnonzero(differ.to_numpy())[:_MAX_LISTED]:
+            problems.append(Problem(
+                f"the level says below {limit.iloc[i]:g} ({stated.iloc[i]:g} mg/L) but its "
+                f"lloq is {given.iloc[i]:g} mg/L ({lv.where(int(i))})", file=lv.file,
+                field=lv.field("lloq"), expected="one limit per level"))
+        out["lloq"] = given.where(given.notna() | ~mark, stated)
+        out["blq_mark"] = out["blq_mark"] | mark
     if lv.has("reference_time"):                # the start of the dose each level refers to
         if _is_clock(lv, "reference_time"):
             out["reference_clock"] = _clock_column(lv, "reference_time", problems)
