@@ -53,10 +53,12 @@ def _not_utf8(path: str | Path, exc: UnicodeDecodeError) -> PkcalcInputError:
         "a byte-order mark)")
 
 
-def read_header(path: str | Path, *, trailing_empty: bool = False) -> list[str]:
-    """Column names of the first line, checked for duplicates and encoding; a column
-    without a name is refused, except -- with ``trailing_empty`` -- after the last named
-    one (a spreadsheet's empty columns; the caller checks that they hold nothing)."""
+def read_header(path: str | Path, *, named: bool = False) -> list[str]:
+    """Column names of the first line, checked for duplicates and encoding.  With
+    ``named`` (study tables) every column up to the last named one needs a name; the
+    unnamed ones after it (a spreadsheet's empty columns) are left to the caller to
+    check that they hold nothing.  Without it (batch tables, which carry unknown columns
+    through) an unnamed column is one more column."""
     p = check_input_file(path)
     try:
         with open(p, encoding=ENCODING, newline="") as fh:
@@ -77,16 +79,19 @@ def read_header(path: str | Path, *, trailing_empty: bool = False) -> list[str]:
             raise PkcalcInputError(
                 f"the header is one column, '{shown}': the table is separated by {word}, "
                 "not commas", file=str(path), expected=_COMMA_SEPARATED)
-    last_named = max(i for i, n in enumerate(names) if n)
-    for i, name in enumerate(names):
-        if not name and (i < last_named or not trailing_empty):
-            raise PkcalcInputError(
-                f"column {i + 1} has no name in the header", file=str(path),
-                field=f"column {i + 1}", expected="a name for every column (empty columns "
-                "a spreadsheet added at the end can be deleted)")
+    checked = names
+    if named:
+        last_named = max(i for i, n in enumerate(names) if n)
+        for i, name in enumerate(names[:last_named]):
+            if not name:
+                raise PkcalcInputError(
+                    f"column {i + 1} has no name in the header", file=str(path),
+                    field=f"column {i + 1}", expected="a name for every column (empty "
+                    "columns a spreadsheet added at the end can be deleted)")
+        checked = names[:last_named + 1]
     seen: set[str] = set()
     problems = []
-    for name in names[:last_named + 1]:
+    for name in checked:
         key = name.lower()
         if key in seen:
             problems.append(Problem(f"column '{name}' appears twice in the header",
@@ -125,7 +130,7 @@ def read_csv(path: str | Path, **kwargs):
     """The whole table as a DataFrame, under the rules of this module."""
     import pandas as pd
 
-    header = read_header(path, trailing_empty=True)
+    header = read_header(path, named=True)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", pd.errors.ParserWarning)

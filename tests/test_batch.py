@@ -87,6 +87,17 @@ def test_ids_are_carried_through_as_text(tmp_path):
     assert out["id"].tolist() == frame["id"].tolist()
 
 
+def test_an_unnamed_trailing_column_is_carried_through_and_named_in_the_warning(tmp_path):
+    # a spreadsheet's trailing separator: batch tables carry unknown columns through, so
+    # the empty one is one more (the study tables' stricter rule is not applied here)
+    src = tmp_path / "in.csv"
+    src.write_text("clearance [L/h],half_life [h],rate [mg/h],\n3,8,30,\n4,6,40,\n")
+    summary = run_batch(src, tmp_path / "o.csv", BatchOptions())
+    out = pd.read_csv(tmp_path / "o.csv")
+    np.testing.assert_allclose(out["plateau_concentration [mg/L]"], [10.0, 10.0])  # R0/CL
+    assert "columns not used (carried through): a column without a name" in summary.warnings
+
+
 # --------------------------------------------------------------------------- variability
 def test_zero_variability_collapses_to_the_point_prediction():
     frame = random_table(20, seed=3)

@@ -207,6 +207,15 @@ def at_label(t: float) -> str:
     return f"concentration_at_{t:g}h [mg/L]"
 
 
+def unused_columns_warning(spec: BatchSpec) -> str | None:
+    """The warning that names the input columns pkcalc does not use (carried through to
+    the output), or None when every column is used."""
+    if not spec.unknown:
+        return None
+    return ("columns not used (carried through): "
+            + ", ".join(name or "a column without a name" for name in spec.unknown))
+
+
 def parse_columns(headers: Sequence[str], *, file: str | None = None) -> BatchSpec:
     """Read the header once: units per column, required columns present.
 

@@ -24,7 +24,7 @@ from pathlib import Path
 
 from ..engines import Engine, dask_client
 from ..errors import PkcalcInputError
-from .columns import BatchOptions, BatchSummary, parse_columns
+from .columns import BatchOptions, BatchSummary, parse_columns, unused_columns_warning
 from .io import Writer, csv_chunks, parquet_chunks
 from .parts import (
     Part,
@@ -71,9 +71,8 @@ def run_partitioned(src: Path, dst: Path, fmt_in: str, fmt_out: str, options: Ba
     reader = csv_chunks if fmt_in == "csv" else parquet_chunks
     header, _ = reader(src, 1)
     spec = parse_columns(header, file=str(src))
-    if spec.unknown:
-        summary.warnings.append(f"columns not used (carried through): "
-                                f"{', '.join(spec.unknown)}")
+    if (unused := unused_columns_warning(spec)) is not None:
+        summary.warnings.append(unused)
     if partitioned:
         check_dataset_target(dst)
     plan = plan_partitions(src, fmt_in, chunk_rows)

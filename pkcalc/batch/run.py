@@ -18,6 +18,7 @@ from .columns import (
     BatchOptions,
     BatchSummary,
     parse_columns,
+    unused_columns_warning,
 )
 from .io import (
     csv_chunks,
@@ -134,9 +135,8 @@ def run_batch(input_path: str | Path, output_path: str | Path, options: BatchOpt
     else:
         header, chunks = parquet_chunks(src, chunk_rows)
     spec = parse_columns(header, file=str(src))
-    if spec.unknown:
-        summary.warnings.append(f"columns not used (carried through): "
-                                f"{', '.join(spec.unknown)}")
+    if (unused := unused_columns_warning(spec)) is not None:
+        summary.warnings.append(unused)
     block = chunk_rows if not options.population else max(
         1, min(chunk_rows, POPULATION_BLOCK * 4 // max(options.population, 1)))
     show = _progress(progress)
