@@ -173,6 +173,16 @@ def test_end_before_start_and_damaged_transport_file(tmp_path, run_cli):
     assert r.code == 2 and "SAS transport" in r.err
 
 
+def test_a_folder_of_adam_datasets_is_named_as_such(tmp_path, run_cli):
+    # ADaM analysis datasets (ADPC, ADEX) are derived tables, not the SDTM tabulation
+    # (CDISC ADaMIG naming, from memory): the refusal says what the folder holds
+    folder = _study(tmp_path, "csv")
+    (folder / "pc.csv").rename(folder / "adpc.csv")
+    r = run_cli("fit", "--sdtm", folder)
+    assert r.code == 2
+    assert "no PC dataset; adpc.csv is ADaM (analysis) data, not read" in r.err
+
+
 def test_a_study_file_can_name_an_sdtm_folder(tmp_path, run_cli):
     folder = _study(tmp_path, "csv", noise=0.05)
     (tmp_path / "study.toml").write_text(f'sdtm = "{folder.name}"\nanalyte = "INVDRG"\n')

@@ -45,6 +45,20 @@ _WANTED = {"pc": PC_VARIABLES, "ex": EXPOSURE_VARIABLES, "ec": EXPOSURE_VARIABLE
            "vs": VS_VARIABLES, "dm": DM_VARIABLES, "lb": LB_VARIABLES}
 
 
+def _adam_hint(source) -> str:
+    """A word when the folder holds ADaM analysis datasets (``adpc``, ``adex``...) instead
+    of SDTM: they are derived tables with other variables, not read here."""
+    if isinstance(source, dict):
+        return ""
+    adam = sorted(p.name for p in Path(source).iterdir()
+                  if p.is_file() and p.name.lower().startswith("ad")
+                  and p.suffix.lower() in (".xpt", ".json", ".csv"))
+    if not adam:
+        return ""
+    return (f"; {', '.join(adam[:3])} {'is' if len(adam) == 1 else 'are'} ADaM (analysis) "
+            "data, not read: pkcalc reads the SDTM tabulation datasets")
+
+
 def _datasets(source, log: ImportLog) -> dict[str, Dataset]:
     """The datasets of a folder, or given as DataFrames (``{"pc": frame, ...}``)."""
     out: dict[str, Dataset] = {}
@@ -76,10 +90,9 @@ def _datasets(source, log: ImportLog) -> dict[str, Dataset]:
                 problems += exc.located(file=str(path)).problems
         if problems:
             raise PkcalcInputError(problems)
-    for domain in ("pc",):
-        if domain not in out:
-            raise PkcalcInputError(f"no {domain.upper()} dataset", file=log.folder,
-                                   expected=f"{domain}.xpt, {domain}.json or {domain}.csv")
+    if "pc" not in out:
+        raise PkcalcInputError(f"no PC dataset{_adam_hint(source)}", file=log.folder,
+                               expected="pc.xpt, pc.json or pc.csv")
     if "ex" not in out and "ec" not in out:
         raise PkcalcInputError("no EX (or EC) dataset", file=log.folder,
                                expected="ex.xpt, ex.json or ex.csv")
