@@ -107,9 +107,35 @@ class UnitSpec:
     per_kg: bool
 
 
+#: Exponents as papers write them: ``h-1``, ``L.h-1``, ``h⁻¹``, ``m²`` (and ``/h`` for
+#: ``1/h``), read as the powers they mean.
+_SUPERSCRIPTS = str.maketrans({"⁻": "-", "¹": "1", "²": "2", "³": "3"})
+_MINUS_POWER = re.compile(r"(?<=[A-Za-zµμ])\s*-\s*(\d+)\b")
+_POWER = re.compile(r"(?<=[A-Za-zµμ])(\d+)\b")
+
+
 @lru_cache(maxsize=512)
 def _unit(text: str) -> pint.Unit:
-    return ureg.parse_units(text.replace("^", "**"))
+    text = text.replace("^", "**")
+    if any(c in text for c in "⁻¹²³"):
+        text = _POWER.sub(r"**\1", text.translate(_SUPERSCRIPTS))
+    if not text[:1].isdigit():              # '1e-3' is a number, not e to the -3
+        text = _MINUS_POWER.sub(r"**-\1", text)
+    if text.startswith("/"):
+        text = "1" + text
+    return ureg.parse_units(text)
+
+
+def _not_a_mass_or_volume(text: str, unit: pint.Unit | None) -> str | None:
+    """Why a unit of amount or concentration that is not a mass or a mass per volume
+    cannot be converted, in the trade's words (None when that is not the reason)."""
+    if re.search(r"(?i)\b[mkµμ]?(?:i\.?u\.?|units?|u)\b", text):
+        return (f"'{text}' counts units of biological activity, which have no fixed mass: "
+                "give the amount in mg (or a concentration in mg/L)")
+    if unit is not None and "[substance]" in unit.dimensionality:
+        return (f"'{text}' is a molar unit: converting it needs the molar mass, which "
+                "pkcalc does not assume; give mass units (mg, mg/L)")
+    return None
 
 
 def _has_per_mass(unit: pint.Unit) -> bool:
@@ -159,9 +185,14 @@ def parse_unit(text: str, kind: str, *, field: str | None = None) -> UnitSpec:
         unit = _unit(str(text).strip())
     except (pint.UndefinedUnitError, pint.DefinitionSyntaxError, AttributeError,
             TypeError, ValueError, SyntaxError, AssertionError):
-        raise PkcalcInputError(f"unknown unit '{text}'", field=field,
-                               expected=KINDS[kind]) from None
+        unit = None
     canonical = _unit(CANONICAL[kind])
+    if (unit is None or unit.dimensionality != canonical.dimensionality) and \
+            kind in ("amount", "concentration", "rate") and \
+            (why := _not_a_mass_or_volume(str(text).strip(), unit)) is not None:
+        raise PkcalcInputError(why, field=field, expected=KINDS[kind])
+    if unit is None:
+        raise PkcalcInputError(f"unknown unit '{text}'", field=field, expected=KINDS[kind])
     if unit.dimensionality == canonical.dimensionality:
         factor = float(ureg.Quantity(1.0, unit).to(canonical).magnitude)
         return UnitSpec(kind, str(text).strip(), factor, False)

@@ -39,6 +39,15 @@ from pkcalc.units import display_factor, parse_header, parse_unit, to_canonical
         ("1500 mL", "volume", 1.5),
         ("70 kg", "weight", 70.0),
         ("1e-3 L/h", "clearance", 1e-3),
+        # exponents as papers write them (h-1, L.h-1, h⁻¹, L·h⁻¹) and '/h' for 1/h
+        ("0.1 h-1", "elimination_rate", 0.1),
+        ("0.1 h⁻¹", "elimination_rate", 0.1),
+        ("0.1 /h", "elimination_rate", 0.1),
+        ("4.2 L.h-1", "clearance", 4.2),
+        ("4.2 L h-1", "clearance", 4.2),
+        ("4.2 L·h⁻¹", "clearance", 4.2),
+        ("35 mL.min-1", "clearance", 2.1),
+        ("100 mg·h·L⁻¹", "auc", 100.0),
     ],
 )
 def test_to_canonical(text, kind, expected):
@@ -54,6 +63,7 @@ def test_to_canonical(text, kind, expected):
         ("12.3 mL/min/kg", "clearance", 70.0, 12.3 * 60 * 70 / 1000),
         ("0.4 mg/kg/h", "rate", 70.0, 28.0),
         ("30 ug/kg/min", "rate", 70.0, 30 * 70 * 60 / 1000),
+        ("12.3 mL·min⁻¹·kg⁻¹", "clearance", 70.0, 12.3 * 60 * 70 / 1000),
     ],
 )
 def test_per_kg(text, kind, weight, expected):
@@ -81,6 +91,13 @@ def test_per_kg_needs_weight():
         ("100 mg/m2", "amount", "per body-surface area"),
         ("100 mg/m²", "amount", "per body-surface area"),
         ("10 mg/m^2/h", "rate", "per body-surface area"),
+        # activity units (IU) have no fixed mass, and molar units need the molar mass
+        # (facts of the trade): refused, said why
+        ("5000 IU", "amount", "units of biological activity"),
+        ("1000 units", "amount", "units of biological activity"),
+        ("2 mIU/mL", "concentration", "units of biological activity"),
+        ("12 µmol/L", "concentration", "molar unit.*molar mass"),
+        ("1e-3", "amount", "has no unit|unknown unit"),
         ("nan L/h", "clearance", "not a number"),
         ("inf L/h", "clearance", "not a number"),
         ("L/h", "clearance", "not a number"),
