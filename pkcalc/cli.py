@@ -466,6 +466,9 @@ def _demo(out: Path, args: argparse.Namespace) -> int:
         write_outputs(run, out / run.command)
     path = write_report(runs, out / "report.html", title="pkcalc demo (invented data)",
                         options=" ".join(args.argv))
+    from . import report
+
+    report.write_caution_file(out, [path])       # the top folder too (W7)
     _emit(f"wrote the demo outputs to {out}/ and the report to {path}")
     if getattr(args, "pdf", False):
         _print_pdf(Path(path), args)

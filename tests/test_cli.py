@@ -135,6 +135,13 @@ def test_demo_writes_outputs(demo_run):
     assert (folder / "predict" / "predict.json").exists()
     assert (folder / "design" / "design.json").exists()
     assert (folder / "sampling" / "sampling.json").exists()
+    # every folder written gets CAUTION.txt (docs/formats.md W7), the top one listing
+    # the report
+    top = (folder / "CAUTION.txt").read_text()
+    assert top.startswith(CAUTION) and "report.html" in top
+    assert all((folder / sub / "CAUTION.txt").exists() for sub in
+               ("predict", "design", "nca", "fit", "population", "sampling", "verify",
+                "batch"))
 
 
 def test_population_help_states_the_default_and_keeps_examples_apart(run_cli):
