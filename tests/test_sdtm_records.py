@@ -199,6 +199,21 @@ def test_an_empty_pcstresn_takes_the_number_written_in_pcstresc():
         "count"] == 1
 
 
+def test_a_below_limit_text_wins_over_a_number_in_pcstresn():
+    # some packages also put the LLOQ in PCSTRESN on a below-limit row: read as a number,
+    # a censored level would become a measured one at the limit
+    pc = pc_frame([0.5, 2.0, 4.0, 30.0], [0.0], [500.0], [1.0])
+    pc["PCSTRESC"] = [f"{x:.6g}" for x in pc["PCSTRESN"]]
+    pc.loc[3, ["PCSTRESN", "PCSTRESC"]] = [1.0, "<1"]       # ng/mL, PCLLOQ 1
+    study = load_sdtm({"pc": pc, "ex": pd.DataFrame([ex_row()])})
+    s = study.subjects[0]
+    assert s.blq.tolist() == [False, False, False, True]
+    assert s.lloq[3] == pytest.approx(1e-3)                  # 1 ng/mL in mg/L
+    assert any(n.startswith("1 PC row(s) whose PCSTRESC says the level is below the limit "
+                            "also carry a number in PCSTRESN") for n in
+               study.import_report["notes"])
+
+
 def test_an_empty_dose_is_named_as_empty():
     ex = pd.DataFrame([ex_row(EXDOSE=np.nan)])
     with pytest.raises(PkcalcInputError, match=r"EXDOSE is empty: the amount given is unknown"):

@@ -142,9 +142,8 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
                    problem=True)
     text = pc.text("PCSTRESC")
     value = _number_from_text(pc, value, rows, log)
-    empty = np.flatnonzero(value.isna().to_numpy(bool))
-    blq = np.zeros(len(pc), bool)
-    blq[empty] = text.iloc[empty].str.match(_BLQ_TEXT.pattern, case=False).to_numpy(bool)
+    blq = text.str.match(_BLQ_TEXT.pattern, case=False).to_numpy(bool)
+    value = _blq_over_number(pc, value, blq, rows, log)
     rows.drop(value.isna().to_numpy(bool) & ~blq, "no result (PCSTRESN empty, PCSTRESC neither "
               "a number nor a below-LLOQ text)")
 
@@ -206,6 +205,25 @@ def _number_from_text(pc: Dataset, value: pd.Series, rows: Rows, log: ImportLog
                      f"PCSTRESC (PCSTRESN is its numeric copy), e.g. "
                      f"{', '.join(pc.labels_fast(idx[:3]))}")
     return value.where(~copy, from_text)
+
+
+def _blq_over_number(pc: Dataset, value: pd.Series, blq: np.ndarray, rows: Rows,
+                     log: ImportLog) -> pd.Series:
+    """PCSTRESN emptied where PCSTRESC says the level is below the limit: some packages
+    also put a number there (often the LLOQ itself), which read as a measured level would
+    turn a censored level into a value at the limit.  A note counts such rows."""
+    both = blq & value.notna().to_numpy(bool) & rows.keep
+    if not both.any():
+        return value
+    idx = np.flatnonzero(both)
+    raw = pc.text("PCSTRESN")
+    shown = ", ".join(f"{label}: PCSTRESC '{pc.text('PCSTRESC').iloc[i]}', PCSTRESN "
+                      f"'{raw.iloc[i]}'" for label, i in zip(pc.labels_fast(idx[:3]),
+                                                              idx[:3], strict=True))
+    log.notes.append(f"{idx.size} PC row(s) whose PCSTRESC says the level is below the limit "
+                     f"also carry a number in PCSTRESN: taken as below the limit, as PCSTRESC "
+                     f"says ({shown})")
+    return value.where(~both)
 
 
 def _nominal(pc: Dataset, log: ImportLog) -> tuple[np.ndarray, np.ndarray]:
