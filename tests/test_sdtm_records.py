@@ -170,6 +170,24 @@ def test_an_imprecise_dose_time_fails_only_its_subject():
     assert "a date without a time of day" in str(study.failures[0][1])
 
 
+def test_a_subject_that_fails_names_its_rows_left_out():
+    # S2's levels after the dose are all left out (dates without a time, a text result),
+    # its pre-dose level is kept: its failure ("no level after the first dose") says why,
+    # so the user need not search the import report
+    pc = pd.concat([pc_frame([0.5, 2.0], [0.0], [500.0], [1.0]),
+                    pc_frame([-0.5, 0.5, 2.0, 4.0], [0.0], [500.0], [1.0], sid="S2")],
+                   ignore_index=True).astype({"PCSTRESN": object})
+    pc.loc[[3, 4], "PCDTC"] = pc.loc[[3, 4], "PCDTC"].str[:10]
+    pc.loc[5, "PCSTRESN"] = "abc"
+    study = load_sdtm({"pc": pc, "ex": pd.DataFrame([ex_row(), ex_row("S2")])})
+    assert [s.subject for s in study.subjects] == ["S1"]
+    (item, err), = study.failures
+    assert item == "subject 'S2'"
+    assert "no level after the first dose" in str(err)
+    assert ("of its PC rows, 3 were left out (PCDTC is a date without a time of day: 2; "
+            "PCSTRESN 'abc' is not a number: 1;") in str(err)
+
+
 @pytest.mark.parametrize(("text", "value"), [("1,5", "1,5"), ("abc", "abc"), ("n/a", "n/a")])
 def test_result_text_that_is_not_a_number_is_a_row_problem(text, value):
     pc = pc_frame([0.5, 2.0, 4.0], [0.0], [500.0], [1.0]).astype({"PCSTRESN": object})

@@ -66,6 +66,8 @@ class Rows:
         self.log = log
         self.subjects = subjects.to_numpy(object)
         self.keep = np.ones(len(ds), bool)
+        self.reason = np.zeros(len(ds), np.int32)     # 0: kept, k: self.reasons[k - 1]
+        self.reasons: list[str] = []
 
     def drop(self, mask, reason: str, *, problem: bool = False) -> None:
         """Leave out the rows of ``mask`` still kept, for ``reason``."""
@@ -75,6 +77,23 @@ class Rows:
             self.log.skip(self.ds.domain, reason, rows, self.subjects[rows[:50]],
                           self.ds.labels, problem=problem)
             self.keep &= ~mask
+            if reason not in self.reasons:
+                self.reasons.append(reason)
+            self.reason[rows] = self.reasons.index(reason) + 1
+
+    def left_out_of(self, subjects: set[str], *, by_design: tuple[str, ...] = ()
+                    ) -> dict[str, dict[str, int]]:
+        """For each of ``subjects``, its rows left out by reason (reasons starting with one
+        of ``by_design`` not counted)."""
+        pick = (self.reason > 0) & pd.Series(self.subjects).isin(subjects).to_numpy()
+        out: dict[str, dict[str, int]] = {}
+        for sid, code in zip(self.subjects[pick].tolist(), self.reason[pick].tolist(),
+                             strict=True):
+            why = self.reasons[code - 1]
+            if not why.startswith(by_design):
+                counts = out.setdefault(str(sid), {})
+                counts[why] = counts.get(why, 0) + 1
+        return out
 
     def drop_each(self, mask, reason, *, problem: bool = False) -> None:
         """Leave out the rows of ``mask``, each with its own reason: ``reason(i)`` for

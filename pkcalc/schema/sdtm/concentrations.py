@@ -167,6 +167,7 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
             r"(\d+(?:\.\d+)?)", expand=False), errors="coerce").to_numpy(float)
     lloq = np.where(np.isfinite(lloq_value), lloq_value, np.where(blq, from_text, np.nan))
     keep = rows.keep
+    log.pc_rows = rows                        # why a failed subject's rows were left out
     log_units(log, "pc", "PCSTRESU", "concentration", seen, keep)
     log.used["pc"] = int(keep.sum())
     idx = np.flatnonzero(keep)

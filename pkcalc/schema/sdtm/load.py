@@ -183,6 +183,7 @@ def load_sdtm(source, analyte: str | None = None, *, specimen: str | None = None
     _unmatched(levels, doses, fails, exposure, not_dosed)
     _count_pre_dose(levels, log, pre_dose)
     study = _study(levels, doses, subjects, data, exposure, fails, origins, pre_dose, log)
+    _with_rows_left_out(study, fails, log, data["pc"].name)
     study.warnings += dose_warnings + log.problems
     if log.apparent:
         study.warnings.insert(0, log.apparent[0].upper() + log.apparent[1:])
@@ -192,6 +193,30 @@ def load_sdtm(source, analyte: str | None = None, *, specimen: str | None = None
     study.import_lines = log.lines()
     study.tables = _tables(levels, doses, subjects, study)
     return study
+
+
+#: Reasons a PC row is left out by design, not worth naming beside a subject's failure.
+_BY_DESIGN = ("another analyte", "another specimen", "placebo subject")
+
+
+def _with_rows_left_out(study: Study, fails: Failures, log: ImportLog, pc_name: str) -> None:
+    """Beside each failed subject's problems, its PC rows that were left out and why: a
+    subject that fails with "no level after the first dose" often had its levels left
+    out for a reason the import report gives."""
+    rows = log.pc_rows
+    log.pc_rows = None
+    if rows is None or not study.failures:
+        return
+    label = {f"subject '{sid}'": sid for sid in fails.by_subject}
+    left = rows.left_out_of(set(label.values()), by_design=_BY_DESIGN)
+    for k, (item, err) in enumerate(study.failures):
+        counts = left.get(label.get(item, ""))
+        if counts:
+            n = sum(counts.values())
+            why = "; ".join(f"{reason}: {c}" for reason, c in counts.items())
+            study.failures[k] = (item, PkcalcInputError([*err.problems, Problem(
+                f"of its PC rows, {n} {'was' if n == 1 else 'were'} left out ({why}; the "
+                "import report names them)", file=pc_name, item=item)]))
 
 
 def _per_kg(doses: pd.DataFrame, weights: dict[str, float], fails: Failures,

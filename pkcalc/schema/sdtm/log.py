@@ -39,6 +39,9 @@ class ImportLog:
         self.time_basis: dict[str, int] = {}
         self.apparent: str | None = None
         self.notes: list[str] = []
+        #: The PC rows in play (:class:`~pkcalc.schema.sdtm.common.Rows`), for the rows
+        #: left out of a subject that fails; not part of the report.
+        self.pc_rows: Any = None
 
     def skip(self, domain: str, reason: str, rows, subjects, labels, *,
              problem: bool = False) -> None:
