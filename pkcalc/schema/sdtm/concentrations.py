@@ -19,7 +19,7 @@ import pandas as pd
 from ...clock import MINUTE, PRECISION_WORDS, parse_clock_array
 from ...errors import PkcalcInputError
 from .common import Rows, log_units, unit_specs
-from .datasets import Dataset
+from .datasets import Dataset, text_matches
 from .log import ImportLog
 from .terms import SYSTEMIC_SPECIMENS, iso_duration_hours
 
@@ -142,7 +142,7 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
                    problem=True)
     text = pc.text("PCSTRESC")
     value = _number_from_text(pc, value, rows, log)
-    blq = text.str.match(_BLQ_TEXT.pattern, case=False).to_numpy(bool)
+    blq = text_matches(text, _BLQ_TEXT.pattern)
     value = _blq_over_number(pc, value, blq, rows, log)
     rows.drop(value.isna().to_numpy(bool) & ~blq, "no result (PCSTRESN empty, PCSTRESC neither "
               "a number nor a below-LLOQ text)")
@@ -197,8 +197,15 @@ def _number_from_text(pc: Dataset, value: pd.Series, rows: Rows, log: ImportLog
     words stay what they are)."""
     if not pc.has("PCSTRESC"):
         return value
-    from_text, _ = pc.number("PCSTRESC")
-    copy = (value.isna() & from_text.notna()).to_numpy(bool) & rows.keep
+    empty = np.flatnonzero(value.isna().to_numpy(bool) & rows.keep)
+    if not empty.size:
+        return value
+    text = pc.text("PCSTRESC").iloc[empty]
+    from_text = pd.Series(np.nan, index=value.index)
+    from_text.iloc[empty] = pd.to_numeric(text.where(text != ""), errors="coerce").to_numpy(
+        float)
+    from_text[~np.isfinite(from_text)] = np.nan
+    copy = from_text.notna().to_numpy(bool)
     if not copy.any():
         return value
     idx = np.flatnonzero(copy)

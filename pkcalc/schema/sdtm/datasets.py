@@ -31,7 +31,7 @@ import pandas as pd
 
 from ...errors import PkcalcInputError
 
-__all__ = ["SUFFIXES", "Dataset", "find_datasets", "read_dataset"]
+__all__ = ["SUFFIXES", "Dataset", "find_datasets", "read_dataset", "text_matches"]
 
 #: Accepted dataset files, in the order preferred when a domain comes in several.
 SUFFIXES = (".xpt", ".json", ".ndjson", ".csv")
@@ -138,6 +138,19 @@ class Dataset:
             var = f"{self.domain.upper()}SEQ"
             self._seq = self.text(var).to_numpy(dtype=object) if self.has(var) else False
         return None if self._seq is False else self._seq
+
+
+def text_matches(text: pd.Series, pattern: str) -> np.ndarray:
+    """Which values of a text Series match the regular expression ``pattern`` at their
+    start, ignoring case (pyarrow's compute: several times faster than pandas' per-value
+    matching on SDTM-sized columns)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    anchored = pattern if pattern.startswith("^") else "^(?:" + pattern + ")"
+    found = pc.match_substring_regex(pa.array(text, type=pa.string()), anchored,
+                                     ignore_case=True)
+    return np.asarray(found.fill_null(False).to_numpy(zero_copy_only=False), bool)
 
 
 def _numbers(raw: pd.Series) -> pd.Series:
