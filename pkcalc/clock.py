@@ -32,6 +32,21 @@ _ISO = re.compile(r"^\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(:\d{2}(\.\d+)?)?(Z|[+-]\d{
 _LOOKS_LIKE_DATE = re.compile(r"\d{1,4}[-/.]\d{1,2}[-/.]\d{1,4}|^\d{4}-\d{2}-\d{2}$|^\d{1,2}:\d{2}")
 
 
+_ZONE_NAME = re.compile(r"^\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}(:\d{2}(\.\d+)?)?"
+                        r"\s*[A-Za-z][A-Za-z_/+-]*$")
+_ONE_DIGIT_HOUR = re.compile(r"^\d{4}-\d{2}-\d{2}[T ]\d:\d{2}")
+
+
+def _near_miss(text: str) -> str | None:
+    """Why an almost-ISO 8601 date-time is refused, in words (None for other text)."""
+    if _ZONE_NAME.match(text):
+        return ("a time-zone name cannot be read (abbreviations such as CST stand for "
+                "several zones): write the offset, e.g. +01:00, or Z for UTC")
+    if _ONE_DIGIT_HOUR.match(text):
+        return "the hour needs two digits (09:15, not 9:15)"
+    return None
+
+
 def is_clock(text: object) -> bool:
     """True when ``text`` is written like a date or a time (accepted or not)."""
     return isinstance(text, str) and bool(_LOOKS_LIKE_DATE.search(text.strip()))
@@ -54,7 +69,7 @@ def parse_clock(text: object, *, field: str | None = None) -> datetime:
         elif re.search(r"\d{1,2}[/.]\d{1,2}[/.]\d{2,4}", s):
             why = "day-first and month-first dates cannot be told apart"
         else:
-            why = "not an ISO 8601 date-time"
+            why = _near_miss(s) or "not an ISO 8601 date-time"
         raise PkcalcInputError(f"'{s}': {why}", field=field, expected=ISO_FORM)
     try:
         return datetime.fromisoformat(s.replace("Z", "+00:00"))
@@ -168,6 +183,8 @@ class ClockArray:
             return f"'{text}': day-first and month-first dates cannot be told apart"
         if p == INVALID and re.fullmatch(r"\d{1,2}:\d{2}(:\d{2})?", text.strip()):
             return f"'{text}': a time of day without a date"
+        if p == INVALID and (near := _near_miss(text.strip())) is not None:
+            return f"'{text}': {near}"
         return f"'{text}': {PRECISION_WORDS[p]}"
 
 

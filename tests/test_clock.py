@@ -6,6 +6,7 @@ Reference for the date-time arithmetic: Python's ``datetime.fromisoformat``
 
 from __future__ import annotations
 
+import re
 from datetime import datetime, timedelta
 
 import numpy as np
@@ -13,7 +14,7 @@ import pandas as pd
 import pytest
 
 import pkcalc
-from pkcalc.clock import hours_since, parse_clock
+from pkcalc.clock import hours_since, parse_clock, parse_clock_array
 from pkcalc.errors import PkcalcInputError
 
 from .conftest import SCENARIOS, map_scenario
@@ -29,10 +30,17 @@ def test_accepted_forms_equal_fromisoformat(text):
 @pytest.mark.parametrize(("text", "why"), [("2026-03-04", "without a time"),
                                            ("08:15", "without a date"),
                                            ("04/03/2026 08:15", "cannot be told apart"),
-                                           ("yesterday", "not an ISO 8601")])
+                                           ("yesterday", "not an ISO 8601"),
+                                           ("2026-03-04T09:15 CET", "time-zone name"),
+                                           ("2026-03-04 09:15 Europe/Berlin",
+                                            "time-zone name"),
+                                           ("2026-03-04 9:15", "hour needs two digits")])
 def test_refused_forms(text, why):
     with pytest.raises(PkcalcInputError, match=why):
         parse_clock(text)
+    # the array parser (study tables, SDTM) gives the same reason
+    clock = parse_clock_array([text])
+    assert re.search(why, clock.why(0, text))
 
 
 def test_hours_across_a_daylight_saving_change_written_with_offsets():
