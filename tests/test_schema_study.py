@@ -95,6 +95,19 @@ def test_blq_written_in_the_concentration_column_is_a_blq_level(tables):
         load_study(lv, ds, sb)
 
 
+@pytest.mark.parametrize(("cell", "blq"), [("not quantifiable", True), ("<LLOQ", True),
+                                           ("BQL", True), ("<100 ng/mL", False)])
+def test_which_concentration_texts_are_blq(tables, cell, blq):
+    # words, or '<x' alone; a text carrying another number and unit stays text (refused):
+    # its unit may not be the column's
+    lv, ds, sb = tables(levels=LEVELS.replace("A,600,,100,true", f"A,600,{cell},100,"))
+    if blq:
+        assert load_study(lv, ds, sb).subjects[0].blq.tolist() == [False, False, True]
+    else:
+        with pytest.raises(PkcalcInputError, match="text or non-finite"):
+            load_study(lv, ds, sb)
+
+
 def test_a_frame_with_blq_texts_is_read_without_changing_it():
     import pandas as pd
     levels = pd.DataFrame({"subject": ["A", "A", "A"], "time [h]": [1.0, 4.0, 24.0],

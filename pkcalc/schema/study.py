@@ -428,11 +428,12 @@ def _clock_column(cols: Columns, name: str, problems: list[Problem]):
     return clock
 
 
-#: A concentration cell that says the level is below the limit: ``<0.5`` (the limit in
-#: the column's unit) or words (``BLQ``, ``BQL``, ``<LLOQ``, ``NQ``, ``below LLOQ``; the
-#: limit then comes from the ``lloq`` column).
+#: A result text that says the level is below the limit of quantification: ``<0.5``,
+#: ``<LLOQ``, ``BLQ``, ``BQL``, ``NQ``, ``below LLOQ``, ``not quantifiable`` -- one rule
+#: for study tables and SDTM's PCSTRESC.
+BLQ_TEXT = re.compile(r"^\s*(?:<|BLQ|BQL|LLOQ|NQ|BELOW|NOT QUANTIFIABLE)", re.IGNORECASE)
+#: A study-table cell ``<x``: the limit in the column's unit.
 _BLQ_LIMIT = re.compile(r"^<\s*((?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?)$")
-_BLQ_WORDS = re.compile(r"^(?:BLQ|BQL|<\s*LLOQ|NQ|BELOW\s+(?:THE\s+)?LLOQ)$", re.IGNORECASE)
 
 
 def _blq_text(lv: Columns, warnings: list[str]) -> tuple[pd.Series, pd.Series] | None:
@@ -445,7 +446,9 @@ def _blq_text(lv: Columns, warnings: list[str]) -> tuple[pd.Series, pd.Series] |
         return None
     raw = column.astype(str).str.strip()
     limit = pd.to_numeric(raw.str.extract(_BLQ_LIMIT, expand=False), errors="coerce")
-    words = raw.str.match(_BLQ_WORDS)
+    # words only: a cell with another number in it ('<0.5 ng/mL') stays text, refused --
+    # its unit may not be the column's
+    words = raw.str.match(BLQ_TEXT) & ~raw.str.contains(r"\d")
     mark = limit.notna() | words
     if not mark.any():
         return None

@@ -11,13 +11,12 @@ traceability.
 
 from __future__ import annotations
 
-import re
-
 import numpy as np
 import pandas as pd
 
 from ...clock import MINUTE, PRECISION_WORDS, parse_clock_array
 from ...errors import PkcalcInputError
+from ..study import BLQ_TEXT
 from .common import Rows, log_units, unit_specs
 from .datasets import Dataset, text_matches
 from .log import ImportLog
@@ -28,7 +27,6 @@ __all__ = ["PC_VARIABLES", "choose_analyte", "map_levels"]
 PC_VARIABLES = {"STUDYID", "USUBJID", "PCSEQ", "PCTESTCD", "PCTEST", "PCSPEC", "PCSTAT", "PCDTC",
                 "PCSTRESN", "PCSTRESC", "PCSTRESU", "PCLLOQ", "PCRFTDTC", "PCELTM",
                 "PCTPTREF", "PCTPT", "PCTPTNUM", "VISIT", "VISITNUM"}
-_BLQ_TEXT = re.compile(r"^\s*(?:<|BLQ|BQL|LLOQ|NQ|BELOW|NOT QUANTIFIABLE)", re.IGNORECASE)
 _REQUIRED = ("USUBJID", "PCTESTCD", "PCSTRESN", "PCSTRESU", "PCDTC")
 
 
@@ -142,7 +140,7 @@ def map_levels(pc: Dataset, log: ImportLog, *, analyte: str, specimen: str | Non
                    problem=True)
     text = pc.text("PCSTRESC")
     value = _number_from_text(pc, value, rows, log)
-    blq = text_matches(text, _BLQ_TEXT.pattern)
+    blq = text_matches(text, BLQ_TEXT.pattern)
     value = _blq_over_number(pc, value, blq, rows, log)
     rows.drop(value.isna().to_numpy(bool) & ~blq, "no result (PCSTRESN empty, PCSTRESC neither "
               "a number nor a below-LLOQ text)")
